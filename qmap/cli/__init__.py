@@ -1,0 +1,112 @@
+"""The ``qmap`` command line: parse, call the library, map errors to exit codes.
+
+Exit codes: 0 success; 2 bad usage or bad input (one line on stderr, no
+traceback, no outputs left behind); 3 ``phantom``: an ROI out of tolerance;
+4 ``batch``: a session or series failed; 1 an unexpected internal error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import logging
+import sys
+import traceback
+
+from .. import __version__
+from ..errors import QmapError
+
+__all__ = ["main", "get_parser"]
+
+#: subcommand -> module in qmap.cli defining ``add_parser(subparsers)`` and ``run(args) -> int``
+COMMANDS = {
+    "t1-ir": "t1_ir",
+    "t1-vfa": "t1_vfa",
+    "t2": "t2",
+    "t2star": "t2star",
+    "b1": "b1",
+    "phantom": "phantom",
+    "simulate": "simulate",
+    "batch": "batch",
+    "demo": "demo",
+    "inspect": "inspect_voxel",
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors (exit code 2)."""
+
+    def error(self, message):
+        raise SystemExit(_usage_error(f"{self.prog}: {message} (see {self.prog} --help)"))
+
+
+def _usage_error(line: str) -> int:
+    sys.stderr.write(f"qmap: error: {line.removeprefix('qmap: ')}\n")
+    return 2
+
+
+class _OneLine(logging.Formatter):
+    def format(self, record):
+        return f"qmap: {record.levelname.lower()}: {record.getMessage()}"
+
+
+def _modules():
+    mods = {}
+    for cmd, modname in COMMANDS.items():
+        try:
+            mods[cmd] = importlib.import_module(f"qmap.cli.{modname}")
+        except ModuleNotFoundError as exc:
+            if exc.name != f"qmap.cli.{modname}":
+                raise
+    return mods
+
+
+def get_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="qmap",
+        description="Quantitative MRI relaxometry: T1, T2, T2* and B1 maps with standard errors, fit quality and "
+        "phantom QA. Times are seconds unless a unit is given (12ms); angles are degrees.",
+    )
+    parser.add_argument("--version", action="version", version=f"qmap {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for mod in _modules().values():
+        mod.add_parser(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(_OneLine())
+    log = logging.getLogger("qmap")
+    log.handlers[:] = [handler]
+    log.setLevel(logging.INFO)
+    log.propagate = False
+    try:
+        parser = get_parser()
+        args = parser.parse_args(argv)
+        if not getattr(args, "command", None):
+            parser.print_help(sys.stderr)
+            return 2
+        args.argv = ["qmap"] + argv
+        return int(args.run(args) or 0)
+    except SystemExit as exc:  # argparse: --help/--version (0) or our one-line errors (2)
+        return int(exc.code or 0) if isinstance(exc.code, int) or exc.code is None else 2
+    except QmapError as exc:
+        msg = " ".join(str(exc).split())
+        return _usage_error(msg)
+    except KeyboardInterrupt:
+        sys.stderr.write("qmap: interrupted; no outputs were written\n")
+        return 130
+    except MemoryError:
+        sys.stderr.write("qmap: error: out of memory; fit fewer voxels at a time (--chunk-size) or use a larger machine\n")
+        return 2
+    except Exception:  # a bug: keep the traceback for the report
+        traceback.print_exc()
+        sys.stderr.write(f"qmap: internal error (a bug in qmap {__version__}); please report it with the traceback above\n")
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,79 @@
+"""Options shared by every fitting command, and small parsing helpers."""
+
+from __future__ import annotations
+
+import argparse
+import logging
+
+from ..engine import DEFAULT_CHUNK
+from ..errors import UsageError
+from ..fitting.noise_floor import DEFAULT_MODE, MODES
+from ..pipeline import CommonOptions
+from ..units import parse_angle_list, parse_time_list
+
+log = logging.getLogger("qmap")
+
+__all__ = ["add_common", "common_from_args", "add_noise", "times", "angles", "finish"]
+
+
+def add_common(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("output and execution (every fitting command)")
+    g.add_argument("-o", "--out-dir", required=True, metavar="DIR", help="where outputs go (created if missing)")
+    g.add_argument("--prefix", metavar="NAME", help="output name stem (default: from the first input's file name)")
+    g.add_argument("--mask", default="auto", metavar="auto|none|FILE",
+                   help="voxels to fit: auto (default) thresholds the signal at half the Otsu level of each "
+                        "voxel's maximum; none fits every voxel; or a NIfTI mask (> 0 = fit)")
+    g.add_argument("-j", "--jobs", type=int, default=None, metavar="N", help="local worker threads (default: all cores)")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the voxel chunks on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
+                        "-j is then ignored")
+    g.add_argument("--overwrite", action="store_true", help="replace existing outputs")
+    g.add_argument("--units", choices=("s", "ms"), default="s", help="units of the written time maps (default s)")
+    g.add_argument("-q", "--quiet", action="store_true", help="no progress bar (warnings still go to stderr)")
+    g.add_argument("--preview", action="store_true", help="also write a PNG montage of every estimate map")
+    g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
+                   help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
+    g.add_argument("--chunk-size", type=int, default=DEFAULT_CHUNK, metavar="N",
+                   help=f"voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
+
+
+def common_from_args(args) -> CommonOptions:
+    if args.jobs is not None and args.jobs == 0:
+        raise UsageError("-j 0: give a positive number of workers (or leave -j out for all cores)")
+    if args.chunk_size < 1:
+        raise UsageError("--chunk-size must be a positive number of voxels")
+    if args.scheduler and args.jobs is not None:
+        log.warning("-j is ignored with --scheduler (the cluster's workers do the work)")
+    return CommonOptions(
+        out_dir=args.out_dir, prefix=args.prefix, mask=args.mask, n_jobs=args.jobs, scheduler=args.scheduler,
+        overwrite=args.overwrite, units=args.units, quiet=args.quiet, preview=args.preview, engine=args.engine,
+        chunk_size=args.chunk_size, command_line=args.argv,
+    )
+
+
+def add_noise(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("noise floor of magnitude data")
+    g.add_argument("--noise-floor", choices=MODES, default=DEFAULT_MODE,
+                   help=f"default {DEFAULT_MODE}: fit the Rician expectation of the magnitude (unbiased at low SNR; "
+                        "needs sigma); offset: add a constant C >= 0; truncate: drop echoes near the floor; "
+                        "none: plain exponential (biased where the decay reaches the floor)")
+    g.add_argument("--sigma", default="auto", metavar="auto|VALUE|NOISEMAP",
+                   help="noise sd: auto (default) estimates it from the image background; a value in signal units; "
+                        "or a NIfTI map of per-voxel sigma")
+    g.add_argument("--coils", type=int, default=1, metavar="N",
+                   help="rician: the magnitude is a sum of squares over N coils (noncentral chi); default 1")
+
+
+def times(text, key, option):
+    return None if text is None else parse_time_list(text, key=key, what=option)
+
+
+def angles(text, option="--fa"):
+    return None if text is None else parse_angle_list(text, what=option)
+
+
+def finish(report, args) -> int:
+    """Print the run summary (unless quiet) and return exit code 0."""
+    if not args.quiet:
+        print(report.summary())
+    return 0

@@ -1,0 +1,331 @@
+"""The vectorised fitter: variable-projection start + batched Levenberg-Marquardt.
+
+For a chunk of voxels ``y`` (n, m) and a :class:`~qmap.models.base.SeparableModel`:
+
+1. **Start.** The model's closed-form start if it has one, otherwise a grid
+   search over the non-linear parameters with the linear amplitudes solved in
+   closed form for every candidate (variable projection; with a basis shared
+   by all voxels this is one matrix product per grid block).
+2. **Refine.** Levenberg-Marquardt on all parameters at once for every voxel,
+   with the normal equations of each voxel solved by an element-wise batched
+   Cholesky (:mod:`qmap.fitting.linalg`). Non-linear parameters are kept in
+   their bounds by projection.
+3. **Noise floor.** :mod:`qmap.fitting.noise_floor` changes the objective
+   (offset column, truncation weights, or the Rician expectation of the
+   magnitude) for any model.
+4. **Uncertainty.** Covariance ``s^2 (J^T W J)^-1`` at the solution, with
+   ``s^2 = RSS / (m_used - P)`` (the residual variance, as
+   ``scipy.optimize.curve_fit`` with ``absolute_sigma=False``); when no
+   degrees of freedom remain and the noise sigma is known, ``s = sigma``.
+
+Every voxel's arithmetic after the grid search is element-wise, so results do
+not depend on the chunk size or on how many workers ran.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..models.base import SeparableModel
+from . import status as st
+from .linalg import chol_inverse, chol_solve
+
+__all__ = ["ChunkFit", "fit_chunk", "grid_start", "linear_amplitudes", "levenberg_marquardt"]
+
+#: columns of the grid handled per matrix product (bounds memory for 2D grids)
+GRID_BLOCK = 256
+
+
+@dataclass
+class ChunkFit:
+    """Fit of a chunk of voxels (arrays over the n voxels of the chunk)."""
+
+    params: np.ndarray  # (n, P)  [linear..., nonlinear...]
+    cov: np.ndarray  # (n, P, P)
+    rss: np.ndarray  # (n,)
+    r2: np.ndarray  # (n,)
+    rmse: np.ndarray  # (n,)
+    n_used: np.ndarray  # (n,) int
+    status: np.ndarray  # (n,) uint8
+    n_iter: np.ndarray  # (n,) int
+
+
+def _basis_grid(model: SeparableModel, grid: np.ndarray) -> np.ndarray:
+    return model.basis(grid, None)  # (G, m, L)
+
+
+def grid_start(model: SeparableModel, y: np.ndarray, w: np.ndarray, ctx: dict | None) -> np.ndarray:
+    """Best grid point of the non-linear parameters per voxel (variable projection).
+
+    Returns (n, Q). Only the *index* of the best grid point comes from the
+    (BLAS) matrix products; the returned values are the exact grid values.
+    """
+    grid = np.asarray(model.grid(), float)
+    n = y.shape[0]
+    best = np.full(n, -np.inf)
+    best_idx = np.zeros(n, dtype=np.intp)
+    yw = y * w
+    shared = not model.voxel_inputs
+    L = len(model.linear)
+    for g0 in range(0, grid.shape[0], GRID_BLOCK):
+        g = grid[g0 : g0 + GRID_BLOCK]
+        if shared:
+            phi = _basis_grid(model, g)  # (G, m, L)
+            b = np.stack([yw @ phi[:, :, k].T for k in range(L)], axis=-1)  # (n, G, L)
+            a = np.empty((n, g.shape[0], L, L))
+            for k in range(L):
+                for j in range(k, L):
+                    a[:, :, k, j] = w @ (phi[:, :, k] * phi[:, :, j]).T
+                    a[:, :, j, k] = a[:, :, k, j]
+        else:
+            b = np.empty((n, g.shape[0], L))
+            a = np.empty((n, g.shape[0], L, L))
+            for i in range(g.shape[0]):
+                phi = model.basis(np.broadcast_to(g[i], (n, g.shape[1])), ctx)  # (n, m, L)
+                b[:, i] = np.einsum("nml,nm->nl", phi, yw)
+                a[:, i] = np.einsum("nmk,nml,nm->nkl", phi, phi, w)
+        score = _projection_score(a, b)
+        score = np.where(np.isfinite(score), score, -np.inf)
+        i = np.argmax(score, axis=1)
+        s = score[np.arange(n), i]
+        better = s > best
+        best[better] = s[better]
+        best_idx[better] = i[better] + g0
+    return grid[best_idx].copy()
+
+
+def _projection_score(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """b^T a^-1 b for (n, G, L, L), (n, G, L): the part of ||y||^2 the basis explains."""
+    L = b.shape[-1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if L == 1:
+            return b[..., 0] ** 2 / a[..., 0, 0]
+        if L == 2:
+            det = a[..., 0, 0] * a[..., 1, 1] - a[..., 0, 1] ** 2
+            return (a[..., 1, 1] * b[..., 0] ** 2 - 2 * a[..., 0, 1] * b[..., 0] * b[..., 1]
+                    + a[..., 0, 0] * b[..., 1] ** 2) / det
+        x = np.linalg.solve(a, b[..., None])[..., 0]
+        return np.einsum("...l,...l->...", b, x)
+
+
+def linear_amplitudes(model: SeparableModel, y, w, theta, ctx) -> np.ndarray:
+    """Least-squares linear amplitudes (n, L) for fixed non-linear parameters."""
+    phi = model.basis(theta, ctx)
+    L = phi.shape[2]
+    if L == 1:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return (np.sum(phi[:, :, 0] * y * w, axis=1) / np.sum(phi[:, :, 0] ** 2 * w, axis=1))[:, None]
+    a = np.einsum("nmk,nml,nm->nkl", phi, phi, w)
+    b = np.einsum("nml,nm->nl", phi, y * w)
+    return chol_solve(a, b)
+
+
+def _normal(J, w, r):
+    """J^T W J (n, P, P) and J^T W r (n, P) for J (n, P, m); row-wise sums only."""
+    n, P, m = J.shape
+    Jw = J * w[:, None, :]
+    JTJ = np.empty((n, P, P))
+    g = np.empty((n, P))
+    for i in range(P):
+        g[:, i] = np.einsum("nm,nm->n", Jw[:, i], r)
+        for j in range(i, P):
+            JTJ[:, i, j] = np.einsum("nm,nm->n", Jw[:, i], J[:, j])
+            JTJ[:, j, i] = JTJ[:, i, j]
+    return JTJ, g
+
+
+def levenberg_marquardt(
+    evaluate,
+    y: np.ndarray,
+    w: np.ndarray,
+    p0: np.ndarray,
+    lo: np.ndarray,
+    hi: np.ndarray,
+    *,
+    max_iter: int = 60,
+    xtol: float = 1e-9,
+    ftol: float = 1e-13,
+):
+    """Batched, bounded Levenberg-Marquardt.
+
+    Parameters
+    ----------
+    evaluate : callable
+        ``evaluate(p, idx) -> (s, J)``: signal (k, m) and Jacobian (k, P, m)
+        of the voxels ``idx`` at parameters ``p`` (k, P).
+    y, w : (n, m) ndarray
+        Data and sample weights (0/1).
+    p0 : (n, P) ndarray
+        Start.
+    lo, hi : (P,) ndarray
+        Bounds (``-inf``/``inf`` for none); steps are projected onto them.
+
+    Returns
+    -------
+    p, rss, J, converged, n_iter
+    """
+    n, P = p0.shape
+    p = p0.copy()
+    s, J = evaluate(p, np.arange(n))
+    r = y - s
+    rss = np.einsum("nm,nm->n", w * r, r)
+    rss[~np.isfinite(rss)] = np.inf
+    converged = rss == 0
+    n_iter = np.zeros(n, int)
+    # the working set: compacted copies of the voxels still iterating, written
+    # back whenever it is compacted (avoids fancy indexing on every step)
+    idx = np.flatnonzero(np.isfinite(rss) & ~converged)
+    wp, wy, ww, wr, wJ, wrss = p[idx], y[idx], w[idx], r[idx], J[idx], rss[idx]
+    lam = np.full(idx.size, 1e-3)
+    live = np.ones(idx.size, bool)
+    wit = np.zeros(idx.size, int)
+
+    def write_back():
+        p[idx], rss[idx], J[idx], n_iter[idx] = wp, wrss, wJ, wit
+
+    for _ in range(max_iter):
+        if not live.any():
+            break
+        if live.sum() < 0.7 * live.size:  # compact
+            write_back()
+            converged[idx[~live]] = converged[idx[~live]]
+            keep = live
+            idx, wp, wy, ww, wr, wJ, wrss, lam, wit = (
+                idx[keep], wp[keep], wy[keep], ww[keep], wr[keep], wJ[keep], wrss[keep], lam[keep], wit[keep])
+            live = np.ones(idx.size, bool)
+        JTJ, g = _normal(wJ, ww, wr)
+        # active-set handling of bounds: a parameter sitting on a bound with the
+        # gradient pointing outwards is frozen for this step
+        frozen = ((wp <= lo) & (g < 0)) | ((wp >= hi) & (g > 0))
+        if frozen.any():
+            for i in range(P):
+                f = frozen[:, i]
+                JTJ[f, i, :] = 0.0
+                JTJ[f, :, i] = 0.0
+                JTJ[f, i, i] = 1.0
+                g[f, i] = 0.0
+        d = np.einsum("npp->np", JTJ).copy()
+        d = np.maximum(d, 1e-12 * np.max(d, axis=1, keepdims=True) + 1e-300)
+        for i in range(P):
+            JTJ[:, i, i] += lam * d[:, i]
+        delta = chol_solve(JTJ, g)
+        pn = np.clip(wp + delta, lo, hi)
+        sn, Jn = evaluate(pn, idx)
+        rn = wy - sn
+        rssn = np.einsum("nm,nm->n", ww * rn, rn)
+        ok = live & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
+        wit += live
+        small_step = np.all(np.abs(pn - wp) <= xtol * (np.abs(wp) + xtol), axis=1)
+        small_drop = (wrss - rssn) <= ftol * wrss
+        np.copyto(wp, pn, where=ok[:, None])
+        np.copyto(wr, rn, where=ok[:, None])
+        np.copyto(wJ, Jn, where=ok[:, None, None])
+        np.copyto(wrss, rssn, where=ok)
+        lam = np.where(ok, np.maximum(lam * 0.2, 1e-12), lam * 10.0)
+        done = np.where(ok, small_step | small_drop | (rssn == 0), lam > 1e12)
+        done &= live
+        converged[idx[done]] = True
+        live &= ~done
+    write_back()
+    return p, rss, J, converged, n_iter
+
+
+def fit_chunk(
+    model: SeparableModel,
+    y: np.ndarray,
+    *,
+    ctx: dict | None = None,
+    noise=None,
+    sigma: np.ndarray | None = None,
+    max_iter: int = 60,
+) -> ChunkFit:
+    """Fit ``model`` to the voxels ``y`` (n, m); see the module docstring.
+
+    Parameters
+    ----------
+    model : SeparableModel
+    y : (n, m) ndarray
+        Finite samples (the engine screens out non-finite voxels).
+    ctx : dict, optional
+        Per-voxel model inputs, each (n,).
+    noise : qmap.fitting.noise_floor.NoiseFloor, optional
+        Noise-floor handling; None means plain least squares.
+    sigma : (n,) ndarray, optional
+        Noise standard deviation per voxel (needed by ``truncate`` and ``rician``).
+    """
+    from .noise_floor import NoiseFloor  # local import: noise_floor imports this module
+
+    noise = noise or NoiseFloor("none")
+    y = np.asarray(y, dtype=np.float64)
+    n, m = y.shape
+    fit_model = noise.wrap(model)
+    w = noise.weights(y, sigma)
+    n_used = w.sum(axis=1).astype(int)
+    P = len(fit_model.param_names)
+    L = len(fit_model.linear)
+    lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
+    lo = np.concatenate([noise.linear_lower(fit_model), lo_nl])
+    hi = np.concatenate([np.full(L, np.inf), hi_nl])
+
+    def evaluate(p, idx):
+        return fit_model.signal_jacobian(p, _take(ctx, idx))
+
+    best = None
+    for yc in model.candidates(y):
+        theta0 = model.initial_guess(yc, w, ctx)
+        if theta0 is None:
+            theta0 = grid_start(fit_model, yc, w, ctx)
+        theta0 = np.clip(theta0, lo_nl, hi_nl)
+        c0 = linear_amplitudes(fit_model, yc, w, theta0, ctx)
+        c0 = np.where(np.isfinite(c0), c0, 0.0)
+        c0 = np.maximum(c0, lo[:L])
+        p, rss, J, conv, nit = levenberg_marquardt(evaluate, yc, w, np.concatenate([c0, theta0], 1), lo, hi,
+                                                   max_iter=max_iter)
+        if best is None:
+            best = [p, rss, J, conv, nit, yc.copy()]
+        else:
+            take = rss < best[1]
+            for k, v in enumerate((p, rss, J, conv, nit, yc)):
+                best[k][take] = v[take]
+    p, rss, J, conv, nit, yfit = best
+
+    if noise.mode == "rician":
+        p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, w, p, rss, J, conv, nit, sigma, ctx, lo, hi,
+                                                   max_iter=max_iter)
+
+    # covariance
+    JTJ, _ = _normal(J, w, np.zeros_like(yfit))
+    inv = chol_inverse(JTJ)
+    dof = n_used - P
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
+    if sigma is not None:
+        s2 = np.where(dof > 0, s2, np.asarray(sigma, float) ** 2 * np.ones(n))
+    cov = inv * s2[:, None, None]
+    # quality
+    ybar = np.sum(w * yfit, axis=1) / np.maximum(n_used, 1)
+    tss = np.sum(w * (yfit - ybar[:, None]) ** 2, axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r2 = np.where(tss > 0, 1.0 - rss / tss, np.nan)
+        rmse = np.sqrt(rss / np.maximum(n_used, 1))
+    status = np.zeros(n, np.uint8)
+    status[~conv] = st.NOT_CONVERGED
+    theta = p[:, L:]
+    span = hi_nl - lo_nl
+    at_bound = np.any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span), axis=1)
+    status[at_bound] = st.AT_BOUND
+    diag = np.einsum("npp->np", inv)
+    ill = ~np.all(np.isfinite(diag) & (diag >= 0), axis=1)
+    status[ill & (status == 0)] = st.ILL_CONDITIONED
+    cov[ill] = np.inf
+    too_few = n_used < P
+    status[too_few] = st.TOO_FEW_SAMPLES
+    return ChunkFit(params=p, cov=cov, rss=rss, r2=r2, rmse=rmse, n_used=n_used, status=status, n_iter=nit)
+
+
+def _take(ctx: dict | None, idx) -> dict | None:
+    if not ctx:
+        return ctx
+    return {k: v[idx] for k, v in ctx.items()}

@@ -1,0 +1,29 @@
+"""Per-voxel status codes written to ``{prefix}_desc-status_fitmap.nii.gz`` (uint8)."""
+
+from __future__ import annotations
+
+__all__ = ["FITTED", "MASKED", "NONFINITE", "AT_BOUND", "NOT_CONVERGED", "ILL_CONDITIONED",
+           "OUTSIDE_B1", "TOO_FEW_SAMPLES", "NO_VALID_ANGLE", "STATUS_CODES"]
+
+FITTED = 0
+MASKED = 1
+NONFINITE = 2
+AT_BOUND = 3
+NOT_CONVERGED = 4
+ILL_CONDITIONED = 5
+OUTSIDE_B1 = 6
+TOO_FEW_SAMPLES = 7
+NO_VALID_ANGLE = 8
+
+#: code -> meaning, as written to provenance (``status_codes``)
+STATUS_CODES = {
+    FITTED: "fitted",
+    MASKED: "outside the mask, not fitted",
+    NONFINITE: "bad input: a sample is NaN or infinite, not fitted",
+    AT_BOUND: "an estimate hit a bound of its allowed range (value is the bound)",
+    NOT_CONVERGED: "the fit did not converge within the iteration limit",
+    ILL_CONDITIONED: "the fit is ill-conditioned: standard errors are not estimable",
+    OUTSIDE_B1: "outside the B1 map's field of view, not fitted",
+    TOO_FEW_SAMPLES: "too few samples above the noise floor to fit",
+    NO_VALID_ANGLE: "the signal ratio corresponds to no valid flip angle",
+}

@@ -1,0 +1,262 @@
+"""Writing maps, sidecars and provenance -- atomically.
+
+Every file is first written under a temporary name in the output folder and
+re-read to check it (shape, affine, finite where the status is 0). Only when
+all of them succeeded are they renamed to their final names; existing files
+(with ``overwrite``) are moved aside first and restored if anything fails, so
+an interrupted or failed run leaves the output folder exactly as it was.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+from ..errors import OutputError, OutputExistsError
+from .nifti import sidecar_path
+
+__all__ = ["OutputFile", "map_filename", "AtomicWriter", "sha256_file", "existing_outputs", "nifti_for"]
+
+NIFTI_INTENT = {"estimate": "estimate", "stderr": "estimate", "quality": "none", "status": "label"}
+
+
+def map_filename(prefix: str, param: str, kind: str) -> str:
+    """File name of a map: ``{prefix}_{P}map``, ``{prefix}_desc-stderr_{P}map``, ``{prefix}_desc-{q}_fitmap``."""
+    if kind == "estimate":
+        return f"{prefix}_{param}map.nii.gz"
+    if kind == "stderr":
+        return f"{prefix}_desc-stderr_{param}map.nii.gz"
+    if kind == "quality":
+        return f"{prefix}_desc-{param}_fitmap.nii.gz"
+    if kind == "status":
+        return f"{prefix}_desc-status_fitmap.nii.gz"
+    raise ValueError(kind)
+
+
+@dataclass
+class OutputFile:
+    """One NIfTI output: data plus what provenance and the sidecar say about it."""
+
+    name: str
+    data: np.ndarray
+    parameter: str
+    kind: str
+    units: str
+    description: str
+
+
+def sha256_file(path: str | Path, bufsize: int = 1 << 20) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(bufsize), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def existing_outputs(out_dir: str | Path, prefix: str) -> list[Path]:
+    """Files in ``out_dir`` that a run with ``prefix`` would replace."""
+    d = Path(out_dir)
+    if not d.is_dir():
+        return []
+    pats = [f"{prefix}_*map.nii.gz", f"{prefix}_*map.json", f"{prefix}_provenance.json", f"{prefix}_*map.png"]
+    found = set()
+    for pat in pats:
+        found.update(d.glob(pat))
+    return sorted(found)
+
+
+def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, parameter: str, units: str):
+    """A NIfTI-1 image of ``data`` on the grid of ``ref_header`` with a sensible header."""
+    dtype = np.uint8 if kind == "status" else np.float32
+    arr = np.asarray(data, dtype=dtype)
+    hdr = nib.Nifti1Header()
+    img = nib.Nifti1Image(arr, affine, header=hdr)
+    qcode = sform_code = 1
+    if ref_header is not None:
+        try:
+            qcode = int(ref_header["qform_code"]) or 1
+            sform_code = int(ref_header["sform_code"]) or 1
+            zooms = ref_header.get_zooms()[:3]
+            img.header.set_zooms(tuple(zooms[:3]) + tuple(img.header.get_zooms()[3:]))
+        except (KeyError, TypeError, ValueError, IndexError):
+            pass
+    img.set_qform(affine, code=qcode)
+    img.set_sform(affine, code=sform_code)
+    img.header.set_xyzt_units("mm", "sec")
+    img.header.set_intent(NIFTI_INTENT[kind], name=parameter[:16])
+    img.header["descrip"] = f"qmap {parameter} {kind} [{units}]"[:79].encode()
+    img.header["scl_slope"] = 1.0
+    img.header["scl_inter"] = 0.0
+    if kind != "status":
+        finite = arr[np.isfinite(arr)]
+        if finite.size:
+            img.header["cal_min"], img.header["cal_max"] = float(finite.min()), float(finite.max())
+    return img
+
+
+class AtomicWriter:
+    """Collects outputs under temporary names and commits them all at once.
+
+    Use as a context manager: on any exception (including KeyboardInterrupt)
+    the temporary files are removed, replaced files restored, and a folder the
+    writer created is removed again.
+    """
+
+    def __init__(self, out_dir: str | Path, *, overwrite: bool = False):
+        self.out_dir = Path(out_dir)
+        self.overwrite = overwrite
+        self._pending: list[tuple[Path, Path]] = []  # (tmp, final)
+        self._created: list[Path] = []
+        self._committed = False
+
+    # -- context management -------------------------------------------------
+    def __enter__(self):
+        try:
+            missing = []
+            p = self.out_dir.absolute()
+            while not p.exists():
+                missing.append(p)
+                p = p.parent
+            self.out_dir.mkdir(parents=True, exist_ok=True)
+            self._created = missing  # deepest first
+        except OSError as exc:
+            raise OutputError(f"cannot create the output folder {self.out_dir} ({exc.strerror}); choose another -o") from None
+        if not os.access(self.out_dir, os.W_OK | os.X_OK):
+            self._remove_created()
+            raise OutputError(f"the output folder {self.out_dir} is not writable; choose another -o or fix permissions")
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is not None or not self._committed:
+            self.abort()
+        return False
+
+    # -- staging ------------------------------------------------------------
+    def _tmp(self, name: str) -> Path:
+        return self.out_dir / f".qmap-tmp-{os.getpid()}-{name}"
+
+    def _final(self, name: str) -> Path:
+        final = self.out_dir / name
+        if final.exists() and not self.overwrite:
+            raise OutputExistsError(f"{final} exists already; pass --overwrite to replace it, or choose another -o")
+        return final
+
+    def stage_bytes(self, name: str, payload: bytes) -> Path:
+        final = self._final(name)
+        tmp = self._tmp(name)
+        self._pending.append((tmp, final))
+        try:
+            with open(tmp, "wb") as fh:
+                fh.write(payload)
+        except OSError as exc:
+            raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
+        return final
+
+    def stage_json(self, name: str, obj) -> Path:
+        return self.stage_bytes(name, (json.dumps(obj, indent=2, sort_keys=False, default=_json_default) + "\n").encode())
+
+    def stage_with(self, name: str, write_fn) -> Path:
+        """Stage a file written by ``write_fn(path)`` (e.g. a PNG figure)."""
+        final = self._final(name)
+        tmp = self._tmp(name)
+        self._pending.append((tmp, final))
+        try:
+            write_fn(tmp)
+        except OSError as exc:
+            raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
+        return final
+
+    def stage_nifti(self, out: OutputFile, affine, ref_header, status: np.ndarray | None = None) -> Path:
+        final = self._final(out.name)
+        tmp = self._tmp(out.name)
+        self._pending.append((tmp, final))
+        img = nifti_for(out.data, affine, ref_header, kind=out.kind, parameter=out.parameter, units=out.units)
+        try:
+            nib.save(img, str(tmp))  # the temporary name keeps the .nii.gz ending
+        except OSError as exc:
+            raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
+        self._verify(tmp, out, affine, status)
+        self.stage_json(sidecar_path(out.name).name, {"Units": out.units, "Description": out.description,
+                                                      "Parameter": out.parameter, "Kind": out.kind})
+        return final
+
+    def _verify(self, path: Path, out: OutputFile, affine, status):
+        img = nib.load(str(path), mmap=False)
+        data = np.asanyarray(img.dataobj)
+        if data.shape != np.shape(out.data) or not np.allclose(img.affine, affine, atol=1e-4):
+            raise OutputError(f"{out.name}: the written file does not read back as written (shape/affine)")
+        if status is not None and out.kind in ("estimate", "stderr"):
+            good = np.asarray(status) == 0
+            if out.kind == "estimate" and not np.all(np.isfinite(data[good])):
+                raise OutputError(f"{out.name}: a fitted voxel has a non-finite estimate (internal check failed)")
+
+    # -- commit / abort -------------------------------------------------------
+    def commit(self) -> list[Path]:
+        backups: list[tuple[Path, Path]] = []
+        done: list[Path] = []
+        try:
+            for tmp, final in self._pending:
+                if final.exists():
+                    bak = final.with_name(f".{final.name}.qmap-bak-{os.getpid()}")
+                    os.replace(final, bak)
+                    backups.append((bak, final))
+                os.replace(tmp, final)
+                done.append(final)
+        except BaseException:
+            for f in done:
+                try:
+                    f.unlink()
+                except OSError:
+                    pass
+            for bak, final in backups:
+                try:
+                    os.replace(bak, final)
+                except OSError:
+                    pass
+            raise
+        for bak, _ in backups:
+            try:
+                bak.unlink()
+            except OSError:
+                pass
+        self._committed = True
+        self._pending = []
+        return done
+
+    def abort(self) -> None:
+        for tmp, _ in self._pending:
+            try:
+                tmp.unlink()
+            except OSError:
+                pass
+        self._pending = []
+        self._remove_created()
+
+    def _remove_created(self):
+        for d in self._created:
+            try:
+                if d.exists() and not any(d.iterdir()):
+                    d.rmdir()
+                elif d.exists():
+                    # only our own leftovers would be here
+                    if all(p.name.startswith(".qmap-tmp-") for p in d.iterdir()):
+                        shutil.rmtree(d)
+            except OSError:
+                pass
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")

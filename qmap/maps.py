@@ -1,0 +1,156 @@
+"""Fitting a whole volume: masking, bad-voxel screening, the engine, and named maps."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .engine import DEFAULT_CHUNK, fit_voxels, status_counts
+from .fitting import status as st
+from .fitting.noise_floor import NoiseFloor
+from .models.base import SeparableModel
+
+__all__ = ["MapSet", "fit_volume"]
+
+
+@dataclass
+class MapSet:
+    """The maps of one fit, as volume-shaped arrays.
+
+    Attributes
+    ----------
+    estimates, stderr : dict of str -> (X, Y, Z) ndarray
+        Parameter estimates and their standard errors (1 sigma), seconds for
+        times, 1/s for rates, signal units for amplitudes.
+    units, descriptions : dict of str -> str
+    time_params : tuple of str
+        Parameters that are times (converted by ``--units ms`` on writing).
+    quality : dict of str -> (X, Y, Z) ndarray
+        ``rsquared`` and ``rmse`` (RMS residual, signal units), and
+        ``nsamples`` when samples were dropped.
+    status : (X, Y, Z) uint8 ndarray
+        Per-voxel status code (see :data:`qmap.fitting.status.STATUS_CODES`).
+    info : dict
+        Model, noise handling, sigma and counts, for provenance.
+
+    ``maps["T2star"]`` is short for ``maps.estimates["T2star"]``.
+    """
+
+    estimates: dict
+    stderr: dict
+    units: dict
+    descriptions: dict
+    time_params: tuple
+    quality: dict
+    status: np.ndarray
+    info: dict = field(default_factory=dict)
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        return self.estimates[name]
+
+    @property
+    def names(self) -> list[str]:
+        return list(self.estimates)
+
+    @property
+    def status_counts(self) -> dict[str, int]:
+        return status_counts(self.status)
+
+
+QUALITY_UNITS = {"rsquared": "1", "rmse": "a.u.", "nsamples": "1"}
+QUALITY_DESCRIPTIONS = {
+    "rsquared": "coefficient of determination R^2 of the fit (1 = perfect)",
+    "rmse": "root-mean-square residual of the fit, signal units",
+    "nsamples": "number of samples used by the fit",
+}
+
+
+def fit_volume(
+    model: SeparableModel,
+    data: np.ndarray,
+    *,
+    mask: np.ndarray | None = None,
+    ctx_maps: dict | None = None,
+    noise: NoiseFloor | None = None,
+    sigma=None,
+    n_jobs: int | None = None,
+    chunk_size: int = DEFAULT_CHUNK,
+    scheduler: str | None = None,
+    quiet: bool = True,
+    invalid_ctx_status: int = st.OUTSIDE_B1,
+    method: str = "fast",
+) -> MapSet:
+    """Fit ``model`` in every voxel of ``data`` (X, Y, Z, m) inside ``mask``.
+
+    Voxels with a non-finite sample are not fitted (status
+    :data:`~qmap.fitting.status.NONFINITE`) and do not affect their
+    neighbours; voxels whose per-voxel model input (``ctx_maps``, e.g. B1) is
+    not finite get ``invalid_ctx_status``.
+    """
+    data = np.asarray(data)
+    if data.ndim == 1:
+        data = data[None, :]
+    shape = data.shape[:-1]
+    m = data.shape[-1]
+    if m != model.n_samples:
+        raise ValueError(f"data has {m} samples per voxel, the model {model.n_samples}")
+    flat = data.reshape(-1, m)
+    nvox = flat.shape[0]
+    noise = noise or NoiseFloor("none")
+    finite = np.all(np.isfinite(flat), axis=1)
+    sel = np.ones(nvox, bool) if mask is None else np.asarray(mask, bool).reshape(-1).copy()
+    status = np.full(nvox, st.MASKED, np.uint8)
+    status[sel & ~finite] = st.NONFINITE
+    sel &= finite
+    ctx = None
+    if ctx_maps:
+        ctx_flat = {k: np.asarray(v, float).reshape(-1) for k, v in ctx_maps.items()}
+        ok = np.all([np.isfinite(v) for v in ctx_flat.values()], axis=0)
+        status[sel & ~ok] = invalid_ctx_status
+        sel &= ok
+    sig_flat = None
+    if sigma is not None:
+        sig_flat = np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1)
+        ok_sigma = np.isfinite(sig_flat) & (sig_flat > 0)
+        if noise.needs_sigma:
+            status[sel & ~ok_sigma] = st.NONFINITE
+            sel &= ok_sigma
+    idx = np.flatnonzero(sel)
+    if ctx_maps:
+        ctx = {k: v[idx] for k, v in ctx_flat.items()}
+    fit = fit_voxels(
+        model, flat[idx], ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
+        n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method,
+    )
+    status[idx] = fit.status
+    derived = noise.report(model, fit.params, fit.cov)
+    blank = np.full(nvox, np.nan)
+    # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
+    keep = np.isin(fit.status, (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED))
+
+    def scatter(values):
+        out = blank.copy()
+        out[idx[keep]] = np.asarray(values, float)[keep]
+        return out.reshape(shape)
+
+    estimates, stderr, units, descriptions, times = {}, {}, {}, {}, []
+    for d in derived:
+        estimates[d.name] = scatter(d.value)
+        stderr[d.name] = scatter(d.stderr)
+        units[d.name] = d.units
+        descriptions[d.name] = d.description
+        if d.is_time:
+            times.append(d.name)
+    quality = {"rsquared": scatter(fit.r2), "rmse": scatter(fit.rmse)}
+    if noise.mode == "truncate":
+        nsamp = np.zeros(nvox)
+        nsamp[idx] = fit.n_used
+        quality["nsamples"] = nsamp.reshape(shape)
+    info = {
+        "model": model.name,
+        "parameters": list(model.param_names),
+        "noise_floor": noise.mode,
+        "n_fitted": int(idx.size),
+    }
+    return MapSet(estimates, stderr, units, descriptions, tuple(times), quality, status.reshape(shape), info)

@@ -1,0 +1,283 @@
+"""From a loaded series to written maps: mask, noise level, fit, outputs, provenance.
+
+Every fitting command ends in :func:`run_fit`; the command-specific part (which
+series key, which model, which per-voxel inputs) lives in :mod:`qmap.commands`.
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .engine import DEFAULT_CHUNK
+from .errors import InputError, OutputExistsError, UsageError
+from .fitting import status as st
+from .fitting.noise_floor import NoiseFloor
+from .io.nifti import check_same_grid, image_data, load_image
+from .io.series import Series
+from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
+from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume
+
+__all__ = ["CommonOptions", "RunReport", "run_fit", "default_prefix", "resolve_mask", "resolve_sigma"]
+
+log = logging.getLogger("qmap")
+
+
+@dataclass
+class CommonOptions:
+    """Options shared by every fitting command (see the command-line reference)."""
+
+    out_dir: Path
+    prefix: str | None = None
+    mask: str = "auto"
+    n_jobs: int | None = None
+    scheduler: str | None = None
+    overwrite: bool = False
+    units: str = "s"
+    quiet: bool = True
+    preview: bool = False
+    engine: str = "fast"
+    chunk_size: int = DEFAULT_CHUNK
+    command_line: list | None = None
+
+    def __post_init__(self):
+        self.out_dir = Path(self.out_dir)
+        if self.units not in ("s", "ms"):
+            raise UsageError(f"--units {self.units!r}: expected s or ms")
+        if self.engine not in ("fast", "lmfit"):
+            raise UsageError(f"--engine {self.engine!r}: expected fast or lmfit")
+        if self.prefix is not None and (not self.prefix or "/" in self.prefix or self.prefix.startswith(".")):
+            raise UsageError(f"--prefix {self.prefix!r}: give a plain file-name stem such as sub-01_T2star")
+
+    def as_dict(self) -> dict:
+        return {
+            "out_dir": str(self.out_dir.absolute()),
+            "prefix": self.prefix,
+            "mask": self.mask,
+            "jobs": self.n_jobs,
+            "scheduler": self.scheduler,
+            "overwrite": self.overwrite,
+            "units": self.units,
+            "preview": self.preview,
+            "engine": self.engine,
+            "chunk_size": self.chunk_size,
+        }
+
+
+@dataclass
+class RunReport:
+    """What a fitting command did: the maps, the files written and the provenance."""
+
+    maps: MapSet
+    written: list
+    provenance: dict
+    prefix: str
+    out_dir: Path
+    notes: list = field(default_factory=list)
+
+    def summary(self) -> str:
+        lines = []
+        counts = self.provenance["status_counts"]
+        total = sum(counts.values())
+        fitted = counts.get("0", 0)
+        lines.append(f"fitted {fitted} of {total} voxels ({self.maps.info['n_fitted']} in the mask)")
+        for code, k in counts.items():
+            if code not in ("0", str(st.MASKED)) and k:
+                lines.append(f"  {k} voxels: status {code} = {st.STATUS_CODES[int(code)]}")
+        good = self.maps.status == 0
+        for name in self.maps.names:
+            v = self.maps.estimates[name][good]
+            if v.size and name in self.maps.time_params:
+                f = 1e3 if self.provenance["options"].get("units") == "ms" else 1.0
+                unit = "ms" if f == 1e3 else "s"
+                q = np.percentile(v, [5, 50, 95]) * f
+                lines.append(f"  {name}: median {q[1]:.4g} {unit} (5-95%: {q[0]:.4g}-{q[2]:.4g} {unit})")
+        lines.extend(f"  note: {n}" for n in self.notes)
+        lines.append(f"wrote {len(self.written)} files to {self.out_dir} (prefix {self.prefix})")
+        return "\n".join(lines)
+
+
+_SERIES_ENTITY = re.compile(r"_(echo|inv|flip|fa|ti|te)-[0-9a-zA-Z]+")
+
+
+def default_prefix(path: str | Path) -> str:
+    """Output stem from the first input: extension and per-volume entities removed."""
+    name = Path(path).name
+    for ext in (".nii.gz", ".nii"):
+        if name.endswith(ext):
+            name = name[: -len(ext)]
+    return _SERIES_ENTITY.sub("", name) or "qmap"
+
+
+def resolve_mask(spec, series: Series) -> tuple[np.ndarray, str]:
+    """The voxels to fit: ``"auto"``, ``"none"`` or a NIfTI file name. Returns (mask, description)."""
+    from .noise import auto_mask
+
+    spec = "auto" if spec is None else str(spec)
+    if spec == "none":
+        return np.ones(series.shape, bool), "none (every voxel)"
+    if spec == "auto":
+        return auto_mask(np.abs(series.data)), "auto (0.5 x Otsu threshold of the per-voxel maximum, holes filled)"
+    img = load_image(spec, what="--mask")
+    check_same_grid(series.data.shape, series.affine, img.shape, img.affine, ref_name="the series", name=f"--mask {spec}")
+    data = image_data(img, spec)
+    if data.ndim != 3:
+        raise InputError(f"--mask {spec}: expected a 3D image, got shape {data.shape}")
+    mask = np.isfinite(data) & (data > 0)
+    if not mask.any():
+        raise InputError(f"--mask {spec}: no voxel is > 0; the mask selects nothing")
+    return mask, f"file {Path(spec).absolute()}"
+
+
+def resolve_sigma(spec, series: Series) -> tuple[object, dict]:
+    """Noise sd from ``"auto"`` (image background), a number, or a NIfTI noise map."""
+    from .noise import auto_mask, estimate_sigma_background
+
+    spec = "auto" if spec is None else str(spec)
+    if spec == "auto":
+        obj = auto_mask(np.abs(series.data))
+        sigma, nvox = estimate_sigma_background(np.abs(series.data), obj)
+        return float(sigma), {"source": "auto (image background)", "value": float(sigma), "background_voxels": int(nvox)}
+    try:
+        value = float(spec)
+    except ValueError:
+        value = None
+    if value is not None:
+        if not np.isfinite(value) or value <= 0:
+            raise InputError(f"--sigma {spec}: must be a positive number in signal units, or auto, or a NIfTI noise map")
+        return value, {"source": "command line", "value": value}
+    img = load_image(spec, what="--sigma")
+    check_same_grid(series.data.shape, series.affine, img.shape, img.affine, ref_name="the series",
+                    name=f"--sigma {spec}")
+    data = image_data(img, spec)
+    if data.ndim != 3:
+        raise InputError(f"--sigma {spec}: expected a 3D noise map, got shape {data.shape}")
+    return data.astype(float), {"source": f"noise map {Path(spec).absolute()}", "value": float(np.nanmedian(data))}
+
+
+def check_signal(series: Series, *, magnitude: bool = True) -> None:
+    """Reject series with no signal at all, and negative 'magnitudes'."""
+    d = series.data
+    finite = d[np.isfinite(d)] if not np.iscomplexobj(d) else np.abs(d[np.isfinite(d)])
+    if finite.size == 0:
+        raise InputError(f"{series.paths[0]}: every sample is NaN or infinite; nothing to fit")
+    lo, hi = float(finite.min()), float(finite.max())
+    if hi == lo:
+        raise InputError(
+            f"{series.paths[0]}: the series holds no signal (every sample is {hi:g}); check the export"
+        )
+    if magnitude and not np.iscomplexobj(d) and lo < 0:
+        raise InputError(
+            f"{series.paths[0]}: holds negative values (min {lo:g}) but magnitude images are >= 0; "
+            f"is this a real/phase image? (t1-ir takes real data with --signal real)"
+        )
+
+
+def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
+    outs = []
+    for name in maps.names:
+        f = 1e3 if (units == "ms" and name in maps.time_params) else 1.0
+        u = "ms" if f == 1e3 else maps.units[name]
+        outs.append(OutputFile(map_filename(prefix, name, "estimate"), maps.estimates[name] * f, name, "estimate", u,
+                               maps.descriptions[name]))
+        outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name] * f, name, "stderr", u,
+                               f"standard error (1 sigma) of {name}"))
+    for q, arr in maps.quality.items():
+        outs.append(OutputFile(map_filename(prefix, q, "quality"), arr, q, "quality", QUALITY_UNITS[q],
+                               QUALITY_DESCRIPTIONS[q]))
+    outs.append(OutputFile(map_filename(prefix, "status", "status"), maps.status, "status", "status", "code",
+                           "per-voxel fit status; codes in the provenance file (status_codes)"))
+    return outs
+
+
+def check_outputs_free(common: CommonOptions, prefix: str) -> None:
+    if common.overwrite:
+        return
+    found = existing_outputs(common.out_dir, prefix)
+    if found:
+        raise OutputExistsError(
+            f"{found[0]} exists already (and {len(found) - 1} more outputs with prefix {prefix}); "
+            f"pass --overwrite to replace them, or choose another -o / --prefix"
+        )
+
+
+def run_fit(
+    series: Series,
+    model,
+    *,
+    common: CommonOptions,
+    noise: NoiseFloor | None = None,
+    sigma_spec=None,
+    ctx_maps: dict | None = None,
+    options: dict | None = None,
+    model_info: dict | None = None,
+    extra_inputs: list | None = None,
+    notes: list | None = None,
+    magnitude: bool = True,
+    t0: float | None = None,
+) -> RunReport:
+    """Mask, (noise level,) fit and write the outputs of one series; see the module docstring."""
+    t0 = time.perf_counter() if t0 is None else t0
+    prefix = common.prefix or default_prefix(series.paths[0])
+    check_outputs_free(common, prefix)
+    check_signal(series, magnitude=magnitude)
+    notes = list(notes or [])
+    mask, mask_desc = resolve_mask(common.mask, series)
+    sigma = None
+    noise_info = None
+    if noise is not None:
+        noise_info = {"mode": noise.mode, "sigma": None}
+        if noise.needs_sigma:
+            sigma, sinfo = resolve_sigma(sigma_spec, series)
+            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
+            if "background_voxels" in sinfo:
+                noise_info["background_voxels"] = sinfo["background_voxels"]
+                notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels")
+        if noise.mode == "truncate":
+            noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
+        if noise.mode == "rician":
+            noise_info["coils"] = noise.coils
+    maps = fit_volume(
+        model, np.abs(series.data) if magnitude and not np.iscomplexobj(series.data) else series.data,
+        mask=mask, ctx_maps=ctx_maps, noise=noise, sigma=sigma, n_jobs=common.n_jobs,
+        chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
+    )
+    outs = _outputs_for(maps, prefix, common.units)
+    inputs = [{"path": str(Path(p).absolute()), "sha256": sha256_file(p)} for p in list(series.paths) + list(extra_inputs or [])]
+    acquisition = {k: (np.asarray(v).tolist() if np.ndim(v) else float(v)) for k, v in series.acquisition.items()}
+    opts = dict(common.as_dict())
+    opts.update(options or {})
+    opts["mask"] = mask_desc
+    provenance = {
+        "qmap_version": __version__,
+        "command_line": list(common.command_line if common.command_line is not None else sys.argv),
+        "inputs": inputs,
+        "acquisition": acquisition,
+        "options": opts,
+        "model": dict(model_info or {"name": model.name}, parameters=list(model.param_names),
+                      engine=common.engine),
+        "noise": noise_info,
+        "status_counts": maps.status_counts,
+        "status_codes": {str(k): v for k, v in st.STATUS_CODES.items()},
+        "wall_time_s": None,
+        "outputs": {o.name: {"parameter": o.parameter, "kind": o.kind, "units": o.units} for o in outs},
+    }
+    with AtomicWriter(common.out_dir, overwrite=common.overwrite) as w:
+        for o in outs:
+            w.stage_nifti(o, series.affine, series.header, status=maps.status)
+        if common.preview:
+            from .plots import stage_previews
+
+            stage_previews(w, maps, prefix, units=common.units, mask=maps.status != st.MASKED)
+        provenance["wall_time_s"] = round(time.perf_counter() - t0, 3)
+        w.stage_json(f"{prefix}_provenance.json", provenance)
+        written = w.commit()
+    return RunReport(maps=maps, written=written, provenance=provenance, prefix=prefix, out_dir=common.out_dir,
+                     notes=notes)

@@ -1,0 +1,64 @@
+"""``qmap t2star`` (and the mono-exponential part of ``qmap t2``): multi-echo decay maps."""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
+from ..io.series import load_series
+from ..models.monoexp import MonoExponential
+from ..pipeline import CommonOptions, RunReport, run_fit
+
+__all__ = ["run_t2star", "noise_options"]
+
+
+def noise_options(noise_floor: str, sigma, coils: int, drop_first: bool = False) -> dict:
+    return {"noise_floor": noise_floor, "sigma": None if sigma is None else str(sigma), "coils": coils,
+            "drop_first_echo": drop_first}
+
+
+def run_t2star(
+    inputs,
+    *,
+    common: CommonOptions,
+    te=None,
+    noise_floor: str = DEFAULT_MODE,
+    sigma="auto",
+    coils: int = 1,
+    drop_first: bool = False,
+) -> RunReport:
+    """Fit T2*, R2* and M0 maps (with standard errors, quality and status) to a multi-echo GRE series.
+
+    Parameters
+    ----------
+    inputs : list of path-like
+        One 4D NIfTI or several 3D NIfTIs (one per echo).
+    common : CommonOptions
+        Output folder, prefix, mask, workers, ...
+    te : (m,) array_like, optional
+        Echo times in seconds; default from the BIDS sidecars (``EchoTime``).
+    noise_floor : {"rician", "offset", "truncate", "none"}
+    sigma : "auto", float, or path
+        Noise sd: from the image background, a value in signal units, or a NIfTI noise map.
+    coils : int
+        Sum-of-squares coils for the noncentral-chi expectation (``rician``).
+    drop_first : bool
+        Ignore the first echo.
+    """
+    t0 = time.perf_counter()
+    series = load_series(inputs, key="EchoTime", value=te, option="--te", min_volumes=2)
+    te_used = np.asarray(series.acquisition["EchoTime"])
+    notes = []
+    if drop_first:
+        series.data = series.data[..., 1:]
+        te_used = te_used[1:]
+        series.acquisition["EchoTime"] = te_used
+        notes.append("first echo dropped")
+    model = MonoExponential(te_used, param="T2star")
+    return run_fit(
+        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
+        options=noise_options(noise_floor, sigma, coils, drop_first),
+        model_info={"name": "monoexp", "equation": "S = M0 exp(-TE/T2star)"}, notes=notes, t0=t0,
+    )
