@@ -25,7 +25,7 @@ from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
 from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume
 
-__all__ = ["CommonOptions", "RunReport", "run_fit", "default_prefix", "resolve_mask", "resolve_sigma"]
+__all__ = ["CommonOptions", "RunReport", "run_fit", "write_run", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma"]
 
 log = logging.getLogger("qmap")
 
@@ -249,8 +249,29 @@ def run_fit(
         mask=mask, ctx_maps=ctx_maps, noise=noise, sigma=sigma, n_jobs=common.n_jobs,
         chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
     )
+    return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
+                     model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)),
+                     extra_inputs=extra_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
+
+
+def write_run(
+    series: Series,
+    maps: MapSet,
+    *,
+    common: CommonOptions,
+    prefix: str,
+    noise_info: dict | None,
+    options: dict | None,
+    model_info: dict,
+    extra_inputs: list | None = None,
+    notes: list | None = None,
+    t0: float,
+    mask_desc: str,
+) -> RunReport:
+    """Write the maps of ``maps`` (NIfTI + sidecars, previews) and the provenance, atomically."""
     outs = _outputs_for(maps, prefix, common.units)
-    inputs = [{"path": str(Path(p).absolute()), "sha256": sha256_file(p)} for p in list(series.paths) + list(extra_inputs or [])]
+    inputs = [{"path": str(Path(p).absolute()), "sha256": sha256_file(p)}
+              for p in list(series.paths) + list(extra_inputs or [])]
     acquisition = {k: (np.asarray(v).tolist() if np.ndim(v) else float(v)) for k, v in series.acquisition.items()}
     opts = dict(common.as_dict())
     opts.update(options or {})
@@ -261,8 +282,7 @@ def run_fit(
         "inputs": inputs,
         "acquisition": acquisition,
         "options": opts,
-        "model": dict(model_info or {"name": model.name}, parameters=list(model.param_names),
-                      engine=common.engine),
+        "model": dict(model_info, engine=common.engine),
         "noise": noise_info,
         "status_counts": maps.status_counts,
         "status_codes": {str(k): v for k, v in st.STATUS_CODES.items()},
@@ -280,4 +300,4 @@ def run_fit(
         w.stage_json(f"{prefix}_provenance.json", provenance)
         written = w.commit()
     return RunReport(maps=maps, written=written, provenance=provenance, prefix=prefix, out_dir=common.out_dir,
-                     notes=notes)
+                     notes=list(notes or []))
