@@ -1,0 +1,350 @@
+"""Pictures of maps and fits: PNG montages of estimate maps and single-voxel fit plots.
+
+Every figure is drawn on a :class:`matplotlib.figure.Figure` with the Agg
+canvas (no display, no pyplot state), at a fixed size in pixels, so the files
+are reproducible and their size is known in advance.
+
+Montage layout (our own): up to :data:`MAX_SLICES` axial slices (third array
+axis) spread over the slices that hold fitted voxels, in one row, the first
+array axis running left to right and the second bottom to top; voxels outside
+the mask (or without an estimate) are white inside a grey frame that marks
+the field of view, fitted voxels with a perceptually
+uniform colour map over a robust range (the 2nd to 98th percentile of the
+fitted values), and a colour bar labelled with the parameter and its units.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+__all__ = [
+    "MAX_SLICES",
+    "PREVIEW_SIZE_PX",
+    "VOXEL_PLOT_SIZE_PX",
+    "robust_range",
+    "pick_slices",
+    "colormap_for",
+    "montage",
+    "stage_previews",
+    "plot_voxel_fit",
+    "preview_name",
+]
+
+#: Most slices shown in one montage.
+MAX_SLICES = 6
+#: Resolution of every figure, dots per inch.
+DPI = 100
+#: Size of a map preview, (width, height) in pixels.
+PREVIEW_SIZE_PX = (1200, 330)
+#: Size of a single-voxel fit plot, (width, height) in pixels.
+VOXEL_PLOT_SIZE_PX = (900, 700)
+#: Colour of voxels outside the mask / without an estimate.
+BACKGROUND = "white"
+#: Percentiles of the fitted values spanned by the colour scale.
+ROBUST_PERCENTILES = (2.0, 98.0)
+
+# Perceptually uniform colour maps (matplotlib's), chosen per kind of parameter.
+# None of them reaches white, so the white background (inside a grey frame = the field of view) stays distinct.
+_CMAPS = {"time": "viridis", "rate": "plasma", "b1": "cividis", "amplitude": "cividis", "other": "viridis"}
+
+
+def _canvas(width_px: int, height_px: int) -> Figure:
+    fig = Figure(figsize=(width_px / DPI, height_px / DPI), dpi=DPI)
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _save(fig: Figure, path: str | Path) -> None:
+    # no bbox_inches="tight": the file must have exactly the size asked for
+    fig.savefig(str(path), format="png", dpi=DPI, facecolor="white")
+
+
+def preview_name(prefix: str, param: str) -> str:
+    """File name of the preview of parameter ``param``: ``{prefix}_{param}map.png``."""
+    return f"{prefix}_{param}map.png"
+
+
+def robust_range(values: np.ndarray, percentiles: tuple[float, float] = ROBUST_PERCENTILES) -> tuple[float, float]:
+    """Colour range from percentiles of the finite ``values``; never empty.
+
+    Parameters
+    ----------
+    values : ndarray
+        Values to span (any shape; non-finite entries are ignored).
+    percentiles : (float, float)
+        Lower and upper percentile, 0-100.
+
+    Returns
+    -------
+    (vmin, vmax) : tuple of float
+        ``vmin < vmax`` always (a constant image gets a small symmetric span).
+    """
+    v = np.asarray(values, float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return 0.0, 1.0
+    lo, hi = (float(x) for x in np.percentile(v, percentiles))
+    if not hi > lo:
+        span = abs(lo) * 0.05 or 1.0
+        lo, hi = lo - span, hi + span
+    return lo, hi
+
+
+def pick_slices(mask: np.ndarray, n: int = MAX_SLICES) -> list[int]:
+    """Up to ``n`` slice indices (third axis), evenly spread over the slices holding ``mask`` voxels.
+
+    Parameters
+    ----------
+    mask : (X, Y, Z) ndarray of bool
+    n : int
+
+    Returns
+    -------
+    list of int
+        Sorted, distinct; all slices when there are at most ``n``; the middle
+        slices of the volume when the mask is empty.
+    """
+    mask = np.asarray(mask, bool)
+    nz = mask.shape[2]
+    occupied = np.flatnonzero(mask.any(axis=(0, 1)))
+    if occupied.size == 0:
+        occupied = np.arange(nz)
+    if occupied.size <= n:
+        return [int(k) for k in occupied]
+    # centres of n equal parts of the occupied range (avoids the thin end slices)
+    pos = (np.arange(n) + 0.5) / n * occupied.size
+    return sorted({int(occupied[int(p)]) for p in pos})
+
+
+def colormap_for(param: str, units: str) -> str:
+    """Name of the matplotlib colour map used for ``param`` (perceptually uniform)."""
+    if param == "TB1" or units == "fraction":
+        return _CMAPS["b1"]
+    if units in ("s", "ms"):
+        return _CMAPS["time"]
+    if units == "1/s":
+        return _CMAPS["rate"]
+    if units == "a.u.":
+        return _CMAPS["amplitude"]
+    return _CMAPS["other"]
+
+
+def _units_label(units: str) -> str:
+    return {"1": "dimensionless", "a.u.": "a.u. (signal units)", "fraction": "fraction of nominal (1 = nominal)"}.get(
+        units, units
+    )
+
+
+def montage(
+    path: str | Path,
+    volume: np.ndarray,
+    *,
+    mask: np.ndarray | None,
+    param: str,
+    units: str,
+    title: str,
+    description: str = "",
+    slices: Sequence[int] | None = None,
+) -> tuple[float, float]:
+    """Write a PNG montage of a 3D map.
+
+    Parameters
+    ----------
+    path : path-like
+        PNG file to write (:data:`PREVIEW_SIZE_PX` pixels).
+    volume : (X, Y, Z) ndarray
+        The map, already in the units given (e.g. ms).
+    mask : (X, Y, Z) ndarray of bool, optional
+        Voxels to colour; the rest is background. Default: finite voxels.
+    param, units : str
+        Parameter name (``T1``) and units string (``ms``) for the colour bar.
+    title : str
+        Figure title.
+    description : str
+        A short line under the title (e.g. the parameter's description).
+    slices : sequence of int, optional
+        Slices to show (default :func:`pick_slices`).
+
+    Returns
+    -------
+    (vmin, vmax) : tuple of float
+        The colour range used.
+    """
+    vol = np.asarray(volume, float)
+    if vol.ndim == 2:
+        vol = vol[:, :, None]
+    shown = np.isfinite(vol) if mask is None else (np.asarray(mask, bool) & np.isfinite(vol))
+    vmin, vmax = robust_range(vol[shown])
+    if slices is None:
+        slices = pick_slices(shown)
+    cmap = _colormap(colormap_for(param, units))
+    fig = _canvas(*PREVIEW_SIZE_PX)
+    n = max(len(slices), 1)
+    # axes geometry in figure fractions: n equal panels, then the colour bar
+    left, right, bottom, top = 0.015, 0.88, 0.04, 0.80
+    gap = 0.008
+    width = (right - left - gap * (n - 1)) / n
+    aspect = vol.shape[1] / vol.shape[0]
+    im = None
+    for i, k in enumerate(slices):
+        ax = fig.add_axes((left + i * (width + gap), bottom, width, top - bottom))
+        ax.set_facecolor(BACKGROUND)
+        sl = np.where(shown[:, :, k], vol[:, :, k], np.nan)
+        im = ax.imshow(sl.T, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax, interpolation="nearest",
+                       aspect="equal" if 0.2 < aspect < 5 else "auto")
+        ax.set_xticks([])
+        ax.set_yticks([])
+        for s in ax.spines.values():
+            s.set_color("#9a9a9a")
+        ax.text(0.03, 0.97, f"slice z = {k}", transform=ax.transAxes, color="white", fontsize=9, va="top", ha="left",
+                bbox={"boxstyle": "round,pad=0.15", "fc": "black", "ec": "none", "alpha": 0.55})
+    cax = fig.add_axes((0.905, bottom + 0.04, 0.016, top - bottom - 0.08))
+    if im is not None:
+        cb = fig.colorbar(im, cax=cax, extend="both")
+        cb.set_label(f"{param} [{_units_label(units)}]", fontsize=9)
+        cb.ax.tick_params(labelsize=8)
+    fig.text(0.015, 0.955, title, fontsize=12, fontweight="bold", va="top", ha="left")
+    sub = (f"colour range {vmin:.4g} to {vmax:.4g} {units} (2nd-98th percentile of {int(shown.sum())} fitted voxels); "
+           f"white = not fitted")
+    if description:
+        sub = f"{description}; {sub}"
+    fig.text(0.015, 0.875, sub, fontsize=9, va="top", ha="left", color="#333333")
+    _save(fig, path)
+    return vmin, vmax
+
+
+def _colormap(name: str):
+    import matplotlib
+
+    cmap = matplotlib.colormaps[name].copy()
+    cmap.set_bad(BACKGROUND)
+    return cmap
+
+
+def stage_previews(writer, maps, prefix: str, *, units: str, mask: np.ndarray) -> list[Path]:
+    """Stage a PNG montage of every estimate map of ``maps`` through ``writer``.
+
+    Parameters
+    ----------
+    writer : qmap.io.writer.AtomicWriter
+        The open writer of the run (files appear only when it commits).
+    maps : qmap.maps.MapSet
+        The fitted maps (seconds for time maps).
+    prefix : str
+        Output name stem; files are ``{prefix}_{P}map.png``.
+    units : {"s", "ms"}
+        Units of the written time maps (the previews match them).
+    mask : (X, Y, Z) ndarray of bool
+        Voxels that were fitted (the rest is drawn as background).
+
+    Returns
+    -------
+    list of Path
+        The final paths of the staged previews.
+    """
+    out = []
+    fitted = np.asarray(mask, bool) & (np.asarray(maps.status) == 0)
+    for name in maps.names:
+        factor = 1e3 if (units == "ms" and name in maps.time_params) else 1.0
+        u = "ms" if factor == 1e3 else maps.units[name]
+        vol = np.asarray(maps.estimates[name], float) * factor
+        title = f"{prefix}  {name} map"
+        desc = maps.descriptions.get(name, "")
+
+        def draw(path, vol=vol, name=name, u=u, title=title, desc=desc):
+            montage(path, vol, mask=fitted, param=name, units=u, title=title, description=desc)
+
+        out.append(writer.stage_with(preview_name(prefix, name), draw))
+    return out
+
+
+def plot_voxel_fit(
+    path: str | Path,
+    *,
+    x: np.ndarray,
+    y: np.ndarray,
+    x_fine: np.ndarray,
+    curve: np.ndarray,
+    fitted_at_x: np.ndarray,
+    xlabel: str,
+    title: str,
+    lines: Sequence[str],
+    used: np.ndarray | None = None,
+    floor_curve: np.ndarray | None = None,
+    floor_label: str = "expected magnitude (noise floor)",
+    x_scale: float = 1.0,
+    x_unit: str = "",
+    curve_label: str = "fitted model",
+) -> None:
+    """Write a PNG of one voxel's fit: samples and fitted curve above, residuals below.
+
+    Parameters
+    ----------
+    path : path-like
+        PNG file (:data:`VOXEL_PLOT_SIZE_PX` pixels).
+    x : (m,) ndarray
+        Sample positions (seconds or degrees), e.g. echo times.
+    y : (m,) ndarray
+        Measured samples (signal units).
+    x_fine : (k,) ndarray
+        Fine grid for the fitted curve (same units as ``x``).
+    curve : (k,) ndarray
+        Fitted model on ``x_fine``.
+    fitted_at_x : (m,) ndarray
+        What the fit compares the samples with (model, or its noise-floor
+        expectation), for the residuals.
+    xlabel : str
+        Axis label of the sample positions (without units).
+    title : str
+    lines : sequence of str
+        Text shown in a box (parameter values with standard errors).
+    used : (m,) ndarray of bool, optional
+        Samples the fit used (others are drawn hollow).
+    floor_curve : (k,) ndarray, optional
+        The expected magnitude including the noise floor, drawn dashed.
+    x_scale : float
+        Multiply ``x`` by this for display (1e3 for ms).
+    x_unit : str
+        Display unit of the x axis.
+    """
+    x = np.asarray(x, float) * x_scale
+    xf = np.asarray(x_fine, float) * x_scale
+    y = np.asarray(y, float)
+    res = y - np.asarray(fitted_at_x, float)
+    used = np.ones(x.shape, bool) if used is None else np.asarray(used, bool)
+    fig = _canvas(*VOXEL_PLOT_SIZE_PX)
+    ax = fig.add_axes((0.10, 0.40, 0.58, 0.50))
+    axr = fig.add_axes((0.10, 0.08, 0.58, 0.24), sharex=ax)
+    ax.plot(xf, curve, color="#1b6ca8", lw=2, label=curve_label, zorder=2)
+    if floor_curve is not None:
+        ax.plot(xf, floor_curve, color="#1b6ca8", lw=1.2, ls="--", label=floor_label, zorder=2)
+    ax.plot(x[used], y[used], "o", color="#d1495b", ms=7, label="measured", zorder=3)
+    if not used.all():
+        ax.plot(x[~used], y[~used], "o", mfc="none", mec="#d1495b", ms=7, label="measured, not used by the fit",
+                zorder=3)
+    ax.axhline(0, color="#999999", lw=0.8, zorder=1)
+    ax.set_ylabel("signal [a.u.]")
+    ax.set_title(title, fontsize=11, loc="left")
+    ax.grid(alpha=0.3)
+    ax.legend(loc="best", fontsize=8, framealpha=0.85)
+    ax.tick_params(labelbottom=False)
+    axr.axhline(0, color="#1b6ca8", lw=1)
+    axr.vlines(x, 0, res, color="#d1495b", lw=1)
+    axr.plot(x[used], res[used], "o", color="#d1495b", ms=5)
+    if not used.all():
+        axr.plot(x[~used], res[~used], "o", mfc="none", mec="#d1495b", ms=5)
+    lim = np.nanmax(np.abs(res)) if np.any(np.isfinite(res)) else 1.0
+    lim = lim * 1.25 if lim > 0 else 1.0
+    axr.set_ylim(-lim, lim)
+    axr.set_ylabel("residual [a.u.]")
+    axr.set_xlabel(f"{xlabel} [{x_unit}]" if x_unit else xlabel)
+    axr.grid(alpha=0.3)
+    fig.text(0.72, 0.90, "\n".join(lines), fontsize=9, va="top", ha="left", family="monospace",
+             bbox={"boxstyle": "round,pad=0.5", "fc": "#f4f4f4", "ec": "#bbbbbb"})
+    _save(fig, path)
+
