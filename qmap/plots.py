@@ -280,6 +280,8 @@ def plot_voxel_fit(
     x_scale: float = 1.0,
     x_unit: str = "",
     curve_label: str = "fitted model",
+    noise_sd: float | None = None,
+    notes: Sequence[str] = (),
 ) -> None:
     """Write a PNG of one voxel's fit: samples and fitted curve above, residuals below.
 
@@ -311,18 +313,31 @@ def plot_voxel_fit(
         Multiply ``x`` by this for display (1e3 for ms).
     x_unit : str
         Display unit of the x axis.
+    curve_label : str
+        Legend entry of the fitted curve.
+    noise_sd : float, optional
+        Noise standard deviation (signal units), shaded around zero in the
+        residual panel.
+    notes : sequence of str
+        Further lines (model equation, noise handling) under the values.
     """
     x = np.asarray(x, float) * x_scale
     xf = np.asarray(x_fine, float) * x_scale
     y = np.asarray(y, float)
+    curve = np.asarray(curve, float)
     res = y - np.asarray(fitted_at_x, float)
     used = np.ones(x.shape, bool) if used is None else np.asarray(used, bool)
+    has_fit = xf.size > 0 and np.any(np.isfinite(curve))
     fig = _canvas(*VOXEL_PLOT_SIZE_PX)
     ax = fig.add_axes((0.10, 0.40, 0.58, 0.50))
     axr = fig.add_axes((0.10, 0.08, 0.58, 0.24), sharex=ax)
-    ax.plot(xf, curve, color="#1b6ca8", lw=2, label=curve_label, zorder=2)
-    if floor_curve is not None:
-        ax.plot(xf, floor_curve, color="#1b6ca8", lw=1.2, ls="--", label=floor_label, zorder=2)
+    if has_fit:
+        ax.plot(xf, curve, color="#1b6ca8", lw=2, label=curve_label, zorder=2)
+        if floor_curve is not None:
+            floor_curve = np.asarray(floor_curve, float)
+            # drawn only where it can be told apart from the model (near the noise floor)
+            if np.nanmax(np.abs(floor_curve - curve)) > 0.005 * np.nanmax(np.abs(curve)):
+                ax.plot(xf, floor_curve, color="#1b6ca8", lw=1.2, ls="--", label=floor_label, zorder=2)
     ax.plot(x[used], y[used], "o", color="#d1495b", ms=7, label="measured", zorder=3)
     if not used.all():
         ax.plot(x[~used], y[~used], "o", mfc="none", mec="#d1495b", ms=7, label="measured, not used by the fit",
@@ -333,18 +348,35 @@ def plot_voxel_fit(
     ax.grid(alpha=0.3)
     ax.legend(loc="best", fontsize=8, framealpha=0.85)
     ax.tick_params(labelbottom=False)
-    axr.axhline(0, color="#1b6ca8", lw=1)
-    axr.vlines(x, 0, res, color="#d1495b", lw=1)
-    axr.plot(x[used], res[used], "o", color="#d1495b", ms=5)
-    if not used.all():
-        axr.plot(x[~used], res[~used], "o", mfc="none", mec="#d1495b", ms=5)
-    lim = np.nanmax(np.abs(res)) if np.any(np.isfinite(res)) else 1.0
-    lim = lim * 1.25 if lim > 0 else 1.0
-    axr.set_ylim(-lim, lim)
+    if x.size and np.min(x) >= 0:
+        ax.set_xlim(left=0)
+    if has_fit:
+        axr.axhline(0, color="#1b6ca8", lw=1)
+        if noise_sd is not None and np.isfinite(noise_sd) and noise_sd > 0:
+            axr.axhspan(-noise_sd, noise_sd, color="#1b6ca8", alpha=0.12, lw=0, label="+/- noise sd")
+            axr.legend(loc="upper right", fontsize=8, framealpha=0.85)
+        axr.vlines(x, 0, res, color="#d1495b", lw=1)
+        axr.plot(x[used], res[used], "o", color="#d1495b", ms=5)
+        if not used.all():
+            axr.plot(x[~used], res[~used], "o", mfc="none", mec="#d1495b", ms=5)
+        lim = np.nanmax(np.abs(res)) if np.any(np.isfinite(res)) else 1.0
+        if noise_sd is not None and np.isfinite(noise_sd):
+            lim = max(lim, noise_sd)
+        lim = lim * 1.25 if lim > 0 else 1.0
+        axr.set_ylim(-lim, lim)
+    else:
+        axr.text(0.5, 0.5, "no fit at this voxel: no residuals", transform=axr.transAxes, ha="center", va="center",
+                 color="#555555")
+        axr.set_yticks([])
     axr.set_ylabel("residual [a.u.]")
     axr.set_xlabel(f"{xlabel} [{x_unit}]" if x_unit else xlabel)
     axr.grid(alpha=0.3)
     fig.text(0.72, 0.90, "\n".join(lines), fontsize=9, va="top", ha="left", family="monospace",
              bbox={"boxstyle": "round,pad=0.5", "fc": "#f4f4f4", "ec": "#bbbbbb"})
+    if notes:
+        import textwrap
+
+        wrapped = "\n".join(textwrap.fill(t, 34) for t in notes)
+        fig.text(0.72, 0.90 - 0.024 * (len(lines) + 2), wrapped, fontsize=8, va="top", ha="left", color="#333333")
     _save(fig, path)
 

@@ -1,0 +1,28 @@
+"""``qmap inspect``: samples, fitted curve, residuals and numbers of one voxel of a finished fit."""
+
+from __future__ import annotations
+
+from ..workflows.inspect import inspect_voxel
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "inspect",
+        help="plot and print one voxel of a finished fit",
+        description="Re-read the series named in OUT_DIR/{prefix}_provenance.json, fit the chosen voxel again with "
+        "the recorded model, acquisition values and noise handling, and write a PNG with the measured samples, the "
+        "fitted curve on a fine grid and the residuals. Prints the parameter values with standard errors as "
+        "written in the maps (same units), the fit quality and the voxel's status.",
+    )
+    p.add_argument("out_dir", metavar="OUT_DIR", help="the -o folder of a fitting command")
+    p.add_argument("--voxel", required=True, metavar="I,J,K", help="0-based voxel indices in NIfTI array order")
+    p.add_argument("--prefix", metavar="NAME", help="which fit, when OUT_DIR holds several")
+    p.add_argument("-o", "--output", metavar="FILE.png",
+                   help="plot file (default OUT_DIR/{prefix}_voxel-I-J-K.png)")
+    p.set_defaults(run=run)
+
+
+def run(args) -> int:
+    report = inspect_voxel(args.out_dir, args.voxel, prefix=args.prefix, out_png=args.output)
+    print(report.text())
+    return 0

@@ -1,0 +1,400 @@
+"""``qmap inspect``: one voxel of a finished fit -- its samples, the fitted curve and the numbers.
+
+The fit is rebuilt from ``{prefix}_provenance.json`` alone: the series files
+(absolute paths), the acquisition values actually used, the model and its
+settings, the noise handling and sigma, and the per-voxel inputs (B1). The
+voxel is fitted again with the same engine (the solvers give the same result
+for one voxel as inside a volume) to draw the curve; the numbers printed are
+read from the written maps, so they equal the maps exactly.
+
+What a workflow must record for its fits to be inspectable
+----------------------------------------------------------
+* ``model["name"]``: a key of :data:`MODELS` (``"monoexp"``, ``"ir"``, ...);
+* ``model["parameters"]``: the fitted parameter names (``run_fit`` adds them);
+* the model's constructor settings under ``model`` (``"signal"`` and
+  ``"look_locker"`` for ``ir``; ``"refocus_deg"``, ``"t1"`` for ``epg``; ...);
+* ``acquisition``: the varied key (one value per volume used, in the order
+  fitted) and scalars such as ``RepetitionTime``;
+* ``options["drop_first_echo"]`` when the first volume was not fitted;
+* per-voxel inputs as ``options["b1"]`` (absolute path of the B1 map) and
+  ``options["b1_scale"]`` (``"fraction"`` or ``"percent"``);
+* the series files first in ``inputs``, extra inputs (B1 map) after them.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError, UsageError
+from ..io.nifti import image_data, load_image, read_sidecar
+from ..io.writer import AtomicWriter, sha256_file
+
+__all__ = ["inspect_voxel", "find_prefixes", "parse_voxel", "VoxelReport", "ModelSpec", "MODELS"]
+
+log = logging.getLogger("qmap")
+
+
+@dataclass
+class VoxelReport:
+    """What ``qmap inspect`` found at one voxel."""
+
+    prefix: str
+    voxel: tuple[int, int, int]
+    status: int
+    status_text: str
+    values: list = field(default_factory=list)  # (parameter, value, stderr, units), as in the maps
+    quality: dict = field(default_factory=dict)  # name -> (value, units)
+    png: Path | None = None
+    notes: list = field(default_factory=list)
+
+    def text(self) -> str:
+        i, j, k = self.voxel
+        out = [f"{self.prefix}: voxel ({i}, {j}, {k}), status {self.status} ({self.status_text})"]
+        for name, v, se, units in self.values:
+            u = "" if units in ("1",) else f" {units}"
+            out.append(f"  {name} = {_num(v)} +/- {_num(se)}{u}")
+        for name, (v, units) in self.quality.items():
+            u = "" if units in ("1",) else f" {units}"
+            out.append(f"  fit {name} = {_num(v)}{u}")
+        out.extend(f"  note: {n}" for n in self.notes)
+        if self.png is not None:
+            out.append(f"plot: {self.png}")
+        return "\n".join(out)
+
+
+def _num(v) -> str:
+    """The map value as written (float32), shortest text that reads back to it."""
+    return "nan" if not np.isfinite(v) else str(np.float32(v))
+
+
+def find_prefixes(out_dir: str | Path) -> list[str]:
+    """Prefixes of the fits in ``out_dir`` (one per ``{prefix}_provenance.json``)."""
+    d = Path(out_dir)
+    return sorted(p.name[: -len("_provenance.json")] for p in d.glob("*_provenance.json"))
+
+
+def parse_voxel(text: str) -> tuple[int, int, int]:
+    """``"I,J,K"`` -> (I, J, K), 0-based indices."""
+    parts = [t.strip() for t in str(text).split(",")]
+    try:
+        ijk = tuple(int(t) for t in parts)
+    except ValueError:
+        ijk = ()
+    if len(ijk) != 3 or min(ijk) < 0:
+        raise UsageError(f"--voxel {text!r}: expected three 0-based indices I,J,K such as 12,30,4")
+    return ijk  # type: ignore[return-value]
+
+
+def _choose_prefix(out_dir: Path, prefix: str | None) -> str:
+    if not out_dir.is_dir():
+        raise InputError(f"{out_dir}: no such folder; give the -o folder of a qmap fit")
+    found = find_prefixes(out_dir)
+    if prefix is not None:
+        if prefix not in found:
+            avail = ", ".join(found) if found else "none"
+            raise InputError(f"{out_dir}: no {prefix}_provenance.json (fits found: {avail}); check --prefix")
+        return prefix
+    if not found:
+        raise InputError(f"{out_dir}: holds no qmap fit (no *_provenance.json); give the -o folder of a fitting command")
+    if len(found) > 1:
+        raise UsageError(f"{out_dir} holds {len(found)} fits ({', '.join(found)}); choose one with --prefix NAME")
+    return found[0]
+
+
+def _read_json(path: Path) -> dict:
+    import json
+
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return json.load(fh)
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: not a readable provenance file ({exc}); rerun the fit") from None
+
+
+def _map_value(path: Path, ijk) -> float:
+    img = load_image(path, what="map")
+    return float(np.asarray(img.dataobj[ijk[0], ijk[1], ijk[2]]))
+
+
+def _series_paths(prov: dict, n_volumes: int) -> list[Path]:
+    """The leading ``inputs`` that hold the ``n_volumes`` volumes of the series."""
+    paths, total = [], 0
+    for entry in prov.get("inputs", []):
+        p = Path(entry["path"])
+        img = load_image(p, what="series (from the provenance)")
+        shape = img.shape
+        total += int(shape[3]) if len(shape) > 3 else 1
+        paths.append(p)
+        if sha256_file(p) != entry.get("sha256"):
+            log.warning("%s has changed since the fit (SHA-256 differs); the plot shows the file as it is now", p)
+        if total >= n_volumes:
+            break
+    if total != n_volumes:
+        raise InputError(
+            f"the inputs named in the provenance hold {total} volumes, the fit used {n_volumes}; "
+            f"were the series files replaced?"
+        )
+    return paths
+
+
+def _voxel_samples(paths: list[Path], ijk, key: str, used: np.ndarray, drop_first: bool) -> np.ndarray:
+    """The voxel's samples in the order the fit used them (sorted by ``key``, first dropped if so)."""
+    i, j, k = ijk
+    vals, sc_vals = [], []
+    for p in paths:
+        img = load_image(p, what="series")
+        if not all(a < b for a, b in zip(ijk, img.shape[:3])):
+            raise UsageError(f"--voxel {i},{j},{k} lies outside the series grid {img.shape[:3]} ({p})")
+        v = np.atleast_1d(np.asarray(img.dataobj[i, j, k]))
+        vals.append(v.reshape(-1))
+        sc = read_sidecar(p).get(key)
+        sc_vals.append(np.atleast_1d(np.asarray(sc, float)).reshape(-1) if isinstance(sc, (int, float, list)) else None)
+    y = np.concatenate(vals)
+    if all(s is not None for s in sc_vals):
+        s = np.concatenate(sc_vals)
+        if s.size == y.size:
+            order = np.argsort(s, kind="stable")
+            cand = s[order][1:] if drop_first else s[order]
+            if cand.size == used.size and np.allclose(cand, used, rtol=1e-3, atol=1e-9):
+                y = y[order]
+    return y[1:] if drop_first else y
+
+
+def inspect_voxel(
+    out_dir: str | Path,
+    voxel,
+    *,
+    prefix: str | None = None,
+    out_png: str | Path | None = None,
+) -> VoxelReport:
+    """Print-ready report and PNG plot of one voxel of a finished fit.
+
+    Parameters
+    ----------
+    out_dir : path-like
+        The ``-o`` folder of a fitting command.
+    voxel : str or (3,) sequence of int
+        0-based indices in NIfTI array order (``"12,30,4"``).
+    prefix : str, optional
+        Which fit, when ``out_dir`` holds several.
+    out_png : path-like, optional
+        Plot file (default ``out_dir/{prefix}_voxel-I-J-K.png``).
+
+    Returns
+    -------
+    VoxelReport
+    """
+    from ..plots import plot_voxel_fit
+
+    out_dir = Path(out_dir)
+    ijk = parse_voxel(voxel) if isinstance(voxel, str) else tuple(int(v) for v in voxel)
+    prefix = _choose_prefix(out_dir, prefix)
+    prov = _read_json(out_dir / f"{prefix}_provenance.json")
+    outputs = prov.get("outputs", {})
+    status_file = next((n for n, o in outputs.items() if o.get("kind") == "status"), None)
+    if status_file is None or not (out_dir / status_file).exists():
+        raise InputError(f"{out_dir}: the status map of {prefix} is missing; rerun the fit")
+    shape = load_image(out_dir / status_file).shape[:3]
+    if not all(0 <= a < b for a, b in zip(ijk, shape)) or len(ijk) != 3:
+        raise UsageError(f"--voxel {','.join(map(str, ijk))} lies outside the map grid {tuple(shape)} "
+                         f"(indices are 0-based: 0..{shape[0] - 1}, 0..{shape[1] - 1}, 0..{shape[2] - 1})")
+    status = int(round(_map_value(out_dir / status_file, ijk)))
+    codes = prov.get("status_codes", {})
+    rep = VoxelReport(prefix=prefix, voxel=ijk, status=status, status_text=codes.get(str(status), "unknown code"))
+    # the numbers: straight from the written maps
+    by_param = {}
+    for name, o in outputs.items():
+        if o.get("kind") in ("estimate", "stderr"):
+            by_param.setdefault(o["parameter"], {})[o["kind"]] = (name, o.get("units", ""))
+    for param, kinds in by_param.items():
+        if "estimate" not in kinds:
+            continue
+        v = _map_value(out_dir / kinds["estimate"][0], ijk)
+        se = _map_value(out_dir / kinds["stderr"][0], ijk) if "stderr" in kinds else float("nan")
+        rep.values.append((param, v, se, kinds["estimate"][1]))
+    for name, o in outputs.items():
+        if o.get("kind") == "quality":
+            rep.quality[o["parameter"]] = (_map_value(out_dir / name, ijk), o.get("units", ""))
+    # the curve: rebuild the model and fit this voxel again
+    mname = prov.get("model", {}).get("name")
+    spec: ModelSpec | None = MODELS.get(mname)
+    if spec is None:
+        raise UsageError(f"{prefix}: inspect cannot redraw fits of model {mname!r} (it knows {', '.join(MODELS)})")
+    fig = _figure(spec, prov, ijk, rep)
+    png = Path(out_png) if out_png is not None else out_dir / f"{prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
+    with AtomicWriter(png.parent, overwrite=True) as w:
+        w.stage_with(png.name, lambda p: plot_voxel_fit(p, **fig))
+        w.commit()
+    rep.png = png
+    return rep
+
+
+def _voxel_inputs(prov: dict, ijk, key: str):
+    """Samples of the voxel (order and selection as fitted) and the values of ``key`` used."""
+    acq = prov.get("acquisition", {})
+    if key not in acq:
+        raise InputError(f"the provenance lacks acquisition {key}; rerun the fit with this qmap version")
+    used = np.atleast_1d(np.asarray(acq[key], float))
+    drop = bool(prov.get("options", {}).get("drop_first_echo", False))
+    paths = _series_paths(prov, used.size + (1 if drop else 0))
+    return _voxel_samples(paths, ijk, key, used, drop), used, paths
+
+
+def voxel_of_image(path: str | Path, ijk, series_path: str | Path, *, order: int = 1) -> float:
+    """Value of the image ``path`` at voxel ``ijk`` of the series grid (resampled through the affines)."""
+    from ..io.nifti import resample_to_grid, same_grid
+
+    ref = load_image(series_path)
+    img = load_image(path, what="per-voxel input")
+    if same_grid(img.shape, img.affine, ref.shape, ref.affine):
+        return float(np.asarray(img.dataobj[ijk[0], ijk[1], ijk[2]]))
+    data = image_data(img, path)
+    data = data.reshape(data.shape[:3])
+    # resample only the one voxel: a 1x1x1 grid whose affine is the voxel's
+    aff = np.array(ref.affine, float)
+    aff[:3, 3] = aff[:3, :3] @ np.asarray(ijk, float) + aff[:3, 3]
+    return float(resample_to_grid(data, img.affine, (1, 1, 1), aff, order=order)[0, 0, 0])
+
+
+# ----------------------------------------------------------------------------
+# Registry: provenance model name -> how to rebuild the model
+# ----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """How to rebuild a fitted model from its provenance.
+
+    Attributes
+    ----------
+    key : str
+        BIDS key of the varied acquisition parameter.
+    build : callable
+        ``build(provenance, x) -> SeparableModel`` for sample positions ``x``
+        (seconds / degrees); called with the acquired values and a fine grid.
+    xlabel : str
+        Axis label of the sample positions.
+    angles : bool
+        The positions are flip angles (degrees), not times.
+    """
+
+    key: str
+    build: object
+    xlabel: str
+    angles: bool = False
+
+
+def _build_monoexp(prov, x):
+    from ..models.monoexp import MonoExponential
+
+    params = prov["model"].get("parameters", ["M0", "T2star"])
+    param = next((p for p in params if p in ("T2", "T2star")), "T2star")
+    return MonoExponential(x, param=param)
+
+
+def _build_ir(prov, x):
+    from ..models.ir import InversionRecovery
+
+    m = prov["model"]
+    return InversionRecovery(x, signal=m.get("signal", "magnitude"), look_locker=bool(m.get("look_locker", False)))
+
+
+#: provenance ``model["name"]`` -> :class:`ModelSpec`
+MODELS: dict[str, ModelSpec] = {
+    "monoexp": ModelSpec("EchoTime", _build_monoexp, "echo time"),
+    "ir": ModelSpec("InversionTime", _build_ir, "inversion time"),
+}
+
+
+def _noise(prov, ijk):
+    from ..fitting.noise_floor import NoiseFloor
+
+    info = prov.get("noise") or {}
+    mode = info.get("mode") or "none"
+    kw = {k: info[k2] for k, k2 in (("coils", "coils"), ("factor", "truncate_factor"), ("min_samples", "min_samples"))
+          if info.get(k2) is not None}
+    noise = NoiseFloor(mode, **kw)
+    sigma = None
+    src = str(info.get("sigma_source") or "")
+    if src.startswith("noise map "):
+        sigma = _map_value(Path(src[len("noise map "):]), ijk)
+    elif info.get("sigma") is not None:
+        sigma = float(info["sigma"])
+    return noise, sigma
+
+
+def _ctx(model, prov, ijk, series_path):
+    if "b1" not in getattr(model, "voxel_inputs", ()):
+        return None
+    opts = prov.get("options", {})
+    path = opts.get("b1") or opts.get("b1_map")
+    if not path:
+        return {"b1": np.ones(1)}
+    scale = 0.01 if opts.get("b1_scale") == "percent" else 1.0
+    return {"b1": np.array([voxel_of_image(path, ijk, series_path) * scale])}
+
+
+def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
+    """Keyword arguments of :func:`qmap.plots.plot_voxel_fit` for this voxel (refits it for the curve)."""
+    from ..engine import fit_voxels
+    from ..fitting import status as st
+    from ..noise import rician_mean
+
+    y, x, paths = _voxel_inputs(prov, ijk, spec.key)
+    model = spec.build(prov, x)
+    magnitude = not np.iscomplexobj(y) and getattr(model, "signal", "magnitude") == "magnitude"
+    y = np.abs(y).astype(float) if magnitude else np.real(y).astype(float)
+    noise, sigma = _noise(prov, ijk)
+    ctx = _ctx(model, prov, ijk, paths[0])
+    hi = float(np.max(x))
+    xf = np.linspace(0.5, min(180.0, 1.15 * hi), 400) if spec.angles else np.linspace(0.0, 1.05 * hi, 400)
+    lines = [f"{name} = {v:.4g} +/- {se:.2g} {u}" for name, v, se, u in rep.values if np.isfinite(v)]
+    lines += [f"{q} = {v:.4g}" for q, (v, _) in rep.quality.items() if np.isfinite(v)]
+    notes = []
+    if prov.get("model", {}).get("equation"):
+        notes.append(f"model: {prov['model']['equation']}")
+    notes.append(f"noise floor: {noise.mode}" + (f", sigma {sigma:.4g}" if sigma else ""))
+    common = {
+        "x": x, "y": y, "xlabel": spec.xlabel, "lines": lines or ["no estimates at this voxel"],
+        "x_scale": 1.0 if spec.angles else 1e3, "x_unit": "deg" if spec.angles else "ms",
+        "noise_sd": sigma, "notes": notes,
+    }
+    title = f"{rep.prefix}  voxel ({ijk[0]}, {ijk[1]}, {ijk[2]})  status {rep.status}: {rep.status_text}"
+    keep = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
+    ok_ctx = ctx is None or all(np.isfinite(v).all() for v in ctx.values())
+    if rep.status not in keep or not np.all(np.isfinite(y)) or not ok_ctx:
+        rep.notes.append("this voxel was not fitted; the plot shows its samples only")
+        return dict(common, x_fine=x[:0], curve=x[:0], fitted_at_x=np.full_like(y, np.nan), title=title)
+    sig = None if sigma is None else np.array([sigma])
+    fit = fit_voxels(model, y[None, :], ctx=ctx, noise=noise, sigma=sig, n_jobs=1,
+                     method=prov.get("model", {}).get("engine", "fast"))
+    _check_refit(noise.report(model, fit.params, fit.cov), rep)
+    curve = noise.wrap(spec.build(prov, xf)).predict(fit.params, ctx)[0]
+    at_x = noise.wrap(model).predict(fit.params, ctx)[0]
+    if magnitude:
+        curve, at_x = np.abs(curve), np.abs(at_x)
+    floor = None
+    if noise.mode == "rician" and sigma:
+        floor = rician_mean(curve, sigma, coils=noise.coils)
+        at_x = rician_mean(at_x, sigma, coils=noise.coils)
+    used = noise.weights(y[None, :], sig)[0] > 0
+    label = "fitted model" + (" (magnitude)" if magnitude and getattr(model, "name", "") == "ir" else "")
+    return dict(common, x_fine=xf, curve=curve, fitted_at_x=at_x, title=title, used=used, floor_curve=floor,
+                curve_label=label)
+
+
+def _check_refit(derived, rep: VoxelReport) -> None:
+    """Note when the refit of the voxel does not reproduce the written maps."""
+    by_name = {d.name: d for d in derived}
+    for name, v, _, units in rep.values:
+        d = by_name.get(name)
+        if d is None or not np.isfinite(v):
+            continue
+        ref = float(np.asarray(d.value)[0]) * (1e3 if units == "ms" else 1.0)
+        if not np.isclose(ref, v, rtol=1e-4, atol=0):
+            rep.notes.append(f"refitting this voxel gave {name} = {ref:.6g} {units}, the map holds {v:.6g}; "
+                             f"the curve shows the refit")
