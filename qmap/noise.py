@@ -35,7 +35,7 @@ import math
 
 import numpy as np
 import numpy.typing as npt
-from scipy import ndimage, special, stats
+from scipy import ndimage, special
 
 from .errors import InputError
 
@@ -368,7 +368,9 @@ def estimate_sigma_background(
     volumes have decayed into the noise is not rejected).
     """
     coils = _check_coils(coils)
-    data = np.asarray(data, dtype=np.float64)
+    data = np.asanyarray(data)  # no float64 copy of the whole series: only the background is taken
+    if not np.issubdtype(data.dtype, np.floating):
+        data = data.astype(np.float64)
     mask = np.asarray(object_mask, dtype=bool)
     if data.ndim not in (3, 4) or mask.shape != data.shape[:3]:
         raise InputError(
@@ -389,7 +391,7 @@ def estimate_sigma_background(
             f"cannot estimate the noise: only {n_voxels} background voxels outside the object "
             f"(at least {min_voxels} needed; the image is probably cropped tightly); {hint}"
         )
-    bg = values[usable]
+    bg = values[usable].astype(np.float64)
     if bg.size > _MAX_SAMPLES:  # an even stride; a million values fix the median to 0.1 %
         bg = bg[:: -(-bg.size // _MAX_SAMPLES)]
     if np.count_nonzero(bg < 0) > 0.01 * bg.size:
@@ -448,6 +450,8 @@ def _clipped_sigma(bg: np.ndarray, coils: int) -> tuple[float, float]:
 @functools.lru_cache(maxsize=64)
 def _chi_tail(coils: int) -> float:
     """The ``1 - 1e-6`` quantile of the chi distribution with ``2 * coils`` dof."""
+    from scipy import stats  # imported here: scipy.stats costs ~0.7 s at start-up
+
     return float(stats.chi(2 * int(coils)).isf(1e-6))
 
 
@@ -456,6 +460,8 @@ def _chi_median(coils: int) -> float:
     """Median of the chi distribution with ``2 * coils`` degrees of freedom."""
     if coils == 1:
         return math.sqrt(2.0 * math.log(2.0))
+    from scipy import stats
+
     return float(stats.chi(2 * int(coils)).median())
 
 
@@ -552,11 +558,12 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
        so that dark structures inside the object (e.g. a voxel at its null,
        fluid, an air bubble in a phantom) are kept.
     """
-    a = np.asarray(data, dtype=np.float64)
+    a = np.asanyarray(data)
     if a.ndim not in (3, 4):
         raise InputError(f"cannot build a mask: expected a 3D volume or 4D series, got shape {a.shape}")
-    a = np.where(np.isfinite(a), a, 0.0)
-    peak = a.max(axis=3) if a.ndim == 4 else a
+    # per-voxel maximum without a float64 copy of the series (fmax skips NaN)
+    peak = np.fmax.reduce(a, axis=3) if a.ndim == 4 else np.array(a)
+    peak = np.where(np.isfinite(peak), peak, 0.0).astype(np.float64)
     nonzero = peak[peak != 0]
     if nonzero.size == 0:
         return np.zeros(peak.shape, dtype=bool)

@@ -116,15 +116,25 @@ def default_prefix(path: str | Path) -> str:
     return _SERIES_ENTITY.sub("", name) or "qmap"
 
 
-def resolve_mask(spec, series: Series) -> tuple[np.ndarray, str]:
-    """The voxels to fit: ``"auto"``, ``"none"`` or a NIfTI file name. Returns (mask, description)."""
+def object_mask(series: Series) -> np.ndarray:
+    """The automatically detected object (cached on the series: used by ``--mask auto`` and ``--sigma auto``)."""
     from .noise import auto_mask
 
+    cached = getattr(series, "_object_mask", None)
+    if cached is None:
+        data = series.data
+        cached = auto_mask(np.abs(data) if np.iscomplexobj(data) or np.nanmin(data) < 0 else data)
+        series._object_mask = cached
+    return cached
+
+
+def resolve_mask(spec, series: Series) -> tuple[np.ndarray, str]:
+    """The voxels to fit: ``"auto"``, ``"none"`` or a NIfTI file name. Returns (mask, description)."""
     spec = "auto" if spec is None else str(spec)
     if spec == "none":
         return np.ones(series.shape, bool), "none (every voxel)"
     if spec == "auto":
-        return auto_mask(np.abs(series.data)), "auto (0.5 x Otsu threshold of the per-voxel maximum, holes filled)"
+        return object_mask(series), "auto (0.5 x Otsu threshold of the per-voxel maximum, opened, holes filled)"
     img = load_image(spec, what="--mask")
     check_same_grid(series.data.shape, series.affine, img.shape, img.affine, ref_name="the series", name=f"--mask {spec}")
     data = image_data(img, spec)
@@ -138,12 +148,12 @@ def resolve_mask(spec, series: Series) -> tuple[np.ndarray, str]:
 
 def resolve_sigma(spec, series: Series) -> tuple[object, dict]:
     """Noise sd from ``"auto"`` (image background), a number, or a NIfTI noise map."""
-    from .noise import auto_mask, estimate_sigma_background
+    from .noise import estimate_sigma_background
 
     spec = "auto" if spec is None else str(spec)
     if spec == "auto":
-        obj = auto_mask(np.abs(series.data))
-        sigma, nvox = estimate_sigma_background(np.abs(series.data), obj)
+        data = np.abs(series.data) if np.iscomplexobj(series.data) else series.data
+        sigma, nvox = estimate_sigma_background(data, object_mask(series))
         return float(sigma), {"source": "auto (image background)", "value": float(sigma), "background_voxels": int(nvox)}
     try:
         value = float(spec)
@@ -164,16 +174,19 @@ def resolve_sigma(spec, series: Series) -> tuple[object, dict]:
 
 def check_signal(series: Series, *, magnitude: bool = True) -> None:
     """Reject series with no signal at all, and negative 'magnitudes'."""
-    d = series.data
-    finite = d[np.isfinite(d)] if not np.iscomplexobj(d) else np.abs(d[np.isfinite(d)])
-    if finite.size == 0:
-        raise InputError(f"{series.paths[0]}: every sample is NaN or infinite; nothing to fit")
-    lo, hi = float(finite.min()), float(finite.max())
+    d = np.abs(series.data) if np.iscomplexobj(series.data) else series.data
+    with np.errstate(invalid="ignore"):
+        lo, hi = float(np.fmin.reduce(d, axis=None)), float(np.fmax.reduce(d, axis=None))  # skip NaN, no copy
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        finite = d[np.isfinite(d)]
+        if finite.size == 0:
+            raise InputError(f"{series.paths[0]}: every sample is NaN or infinite; nothing to fit")
+        lo, hi = float(finite.min()), float(finite.max())
     if hi == lo:
         raise InputError(
             f"{series.paths[0]}: the series holds no signal (every sample is {hi:g}); check the export"
         )
-    if magnitude and not np.iscomplexobj(d) and lo < 0:
+    if magnitude and not np.iscomplexobj(series.data) and lo < 0:
         raise InputError(
             f"{series.paths[0]}: holds negative values (min {lo:g}) but magnitude images are >= 0; "
             f"is this a real/phase image? (t1-ir takes real data with --signal real)"
@@ -245,7 +258,7 @@ def run_fit(
         if noise.mode == "rician":
             noise_info["coils"] = noise.coils
     maps = fit_volume(
-        model, np.abs(series.data) if magnitude and not np.iscomplexobj(series.data) else series.data,
+        model, series.data,  # magnitude data were checked to be >= 0 (check_signal)
         mask=mask, ctx_maps=ctx_maps, noise=noise, sigma=sigma, n_jobs=common.n_jobs,
         chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
     )

@@ -143,7 +143,8 @@ class NoiseFloor:
             e, de = rician_mean_grad(s0, sig_sel[idx, None], coils=coils)
             return e, j0 * de[:, None, :]
 
-        p2, rss2, J2, conv2, nit2 = levenberg_marquardt(evaluate, y[sel], w[sel], p[sel], lo, hi, max_iter=max_iter)
+        p2, rss2, J2, conv2, nit2 = levenberg_marquardt(evaluate, y[sel], None if w is None else w[sel], p[sel], lo,
+                                                        hi, max_iter=max_iter)
         p, rss, J, conv, nit = p.copy(), rss.copy(), J.copy(), conv.copy(), nit.copy()
         p[sel], rss[sel], J[sel], conv[sel] = p2, rss2, J2, conv2
         nit[sel] += nit2

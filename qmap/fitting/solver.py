@@ -66,7 +66,8 @@ def grid_start(model: SeparableModel, y: np.ndarray, w: np.ndarray, ctx: dict | 
     n = y.shape[0]
     best = np.full(n, -np.inf)
     best_idx = np.zeros(n, dtype=np.intp)
-    yw = y * w
+    uniform = bool(np.all(w == 1.0))
+    yw = y if uniform else y * w
     shared = not model.voxel_inputs
     L = len(model.linear)
     for g0 in range(0, grid.shape[0], GRID_BLOCK):
@@ -74,11 +75,14 @@ def grid_start(model: SeparableModel, y: np.ndarray, w: np.ndarray, ctx: dict | 
         if shared:
             phi = _basis_grid(model, g)  # (G, m, L)
             b = np.stack([yw @ phi[:, :, k].T for k in range(L)], axis=-1)  # (n, G, L)
-            a = np.empty((n, g.shape[0], L, L))
-            for k in range(L):
-                for j in range(k, L):
-                    a[:, :, k, j] = w @ (phi[:, :, k] * phi[:, :, j]).T
-                    a[:, :, j, k] = a[:, :, k, j]
+            if uniform:  # the Gram matrices are the same for every voxel
+                a = np.broadcast_to(np.einsum("gmk,gml->gkl", phi, phi), (n, g.shape[0], L, L))
+            else:
+                a = np.empty((n, g.shape[0], L, L))
+                for k in range(L):
+                    for j in range(k, L):
+                        a[:, :, k, j] = w @ (phi[:, :, k] * phi[:, :, j]).T
+                        a[:, :, j, k] = a[:, :, k, j]
         else:
             b = np.empty((n, g.shape[0], L))
             a = np.empty((n, g.shape[0], L, L))
@@ -110,6 +114,33 @@ def _projection_score(a: np.ndarray, b: np.ndarray) -> np.ndarray:
         return np.einsum("...l,...l->...", b, x)
 
 
+def refine_grid_1d(model: SeparableModel, y, w, ctx, theta0) -> np.ndarray:
+    """Parabolic interpolation of the projection score around the best grid point (one non-linear parameter).
+
+    The scores at the grid point and its two neighbours are recomputed
+    element-wise (not by BLAS), so the refined start is bit-identical for any
+    chunk size; the parabola is fitted in log(theta) (grids are log-spaced).
+    """
+    grid = np.asarray(model.grid(), float)[:, 0]
+    i = np.clip(np.searchsorted(grid, theta0[:, 0]), 1, grid.size - 2)
+    scores = []
+    for k in (-1, 0, 1):
+        th = grid[i + k][:, None]
+        phi = model.basis(th, ctx)
+        b = np.einsum("nml,nm->nl", phi, y * w)
+        a = np.einsum("nmk,nml,nm->nkl", phi, phi, w)
+        scores.append(_projection_score(a[:, None], b[:, None])[:, 0])
+    s0, s1, s2 = scores
+    den = s0 - 2 * s1 + s2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        delta = np.where(den < 0, 0.5 * (s0 - s2) / den, 0.0)
+    delta = np.clip(np.nan_to_num(delta), -1.0, 1.0)
+    lg = np.log(grid)
+    step = np.where(delta >= 0, lg[i + 1] - lg[i], lg[i] - lg[i - 1])
+    better = np.isfinite(s1) & (s1 >= np.maximum(s0, s2))  # only inside a bracketed maximum
+    return np.where(better, np.exp(lg[i] + delta * step), grid[i])[:, None]
+
+
 def linear_amplitudes(model: SeparableModel, y, w, theta, ctx) -> np.ndarray:
     """Least-squares linear amplitudes (n, L) for fixed non-linear parameters."""
     phi = model.basis(theta, ctx)
@@ -123,9 +154,9 @@ def linear_amplitudes(model: SeparableModel, y, w, theta, ctx) -> np.ndarray:
 
 
 def _normal(J, w, r):
-    """J^T W J (n, P, P) and J^T W r (n, P) for J (n, P, m); row-wise sums only."""
+    """J^T W J (n, P, P) and J^T W r (n, P) for J (n, P, m); row-wise sums only. ``w`` None = all ones."""
     n, P, m = J.shape
-    Jw = J * w[:, None, :]
+    Jw = J if w is None else J * w[:, None, :]
     JTJ = np.empty((n, P, P))
     g = np.empty((n, P))
     for i in range(P):
@@ -145,7 +176,7 @@ def levenberg_marquardt(
     hi: np.ndarray,
     *,
     max_iter: int = 60,
-    xtol: float = 1e-9,
+    xtol: float = 1e-8,
     ftol: float = 1e-13,
 ):
     """Batched, bounded Levenberg-Marquardt.
@@ -156,7 +187,7 @@ def levenberg_marquardt(
         ``evaluate(p, idx) -> (s, J)``: signal (k, m) and Jacobian (k, P, m)
         of the voxels ``idx`` at parameters ``p`` (k, P).
     y, w : (n, m) ndarray
-        Data and sample weights (0/1).
+        Data and sample weights (0/1); ``w`` None means all ones.
     p0 : (n, P) ndarray
         Start.
     lo, hi : (P,) ndarray
@@ -170,14 +201,15 @@ def levenberg_marquardt(
     p = p0.copy()
     s, J = evaluate(p, np.arange(n))
     r = y - s
-    rss = np.einsum("nm,nm->n", w * r, r)
+    rss = np.einsum("nm,nm->n", r if w is None else w * r, r)
     rss[~np.isfinite(rss)] = np.inf
     converged = rss == 0
     n_iter = np.zeros(n, int)
     # the working set: compacted copies of the voxels still iterating, written
     # back whenever it is compacted (avoids fancy indexing on every step)
     idx = np.flatnonzero(np.isfinite(rss) & ~converged)
-    wp, wy, ww, wr, wJ, wrss = p[idx], y[idx], w[idx], r[idx], J[idx], rss[idx]
+    wp, wy, wr, wJ, wrss = p[idx], y[idx], r[idx], J[idx], rss[idx]
+    ww = None if w is None else w[idx]
     lam = np.full(idx.size, 1e-3)
     live = np.ones(idx.size, bool)
     wit = np.zeros(idx.size, int)
@@ -192,8 +224,9 @@ def levenberg_marquardt(
             write_back()
             converged[idx[~live]] = converged[idx[~live]]
             keep = live
-            idx, wp, wy, ww, wr, wJ, wrss, lam, wit = (
-                idx[keep], wp[keep], wy[keep], ww[keep], wr[keep], wJ[keep], wrss[keep], lam[keep], wit[keep])
+            idx, wp, wy, wr, wJ, wrss, lam, wit = (
+                idx[keep], wp[keep], wy[keep], wr[keep], wJ[keep], wrss[keep], lam[keep], wit[keep])
+            ww = None if ww is None else ww[keep]
             live = np.ones(idx.size, bool)
         JTJ, g = _normal(wJ, ww, wr)
         # active-set handling of bounds: a parameter sitting on a bound with the
@@ -214,7 +247,7 @@ def levenberg_marquardt(
         pn = np.clip(wp + delta, lo, hi)
         sn, Jn = evaluate(pn, idx)
         rn = wy - sn
-        rssn = np.einsum("nm,nm->n", ww * rn, rn)
+        rssn = np.einsum("nm,nm->n", rn if ww is None else ww * rn, rn)
         ok = live & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
         wit += live
         small_step = np.all(np.abs(pn - wp) <= xtol * (np.abs(wp) + xtol), axis=1)
@@ -224,7 +257,9 @@ def levenberg_marquardt(
         np.copyto(wJ, Jn, where=ok[:, None, None])
         np.copyto(wrss, rssn, where=ok)
         lam = np.where(ok, np.maximum(lam * 0.2, 1e-12), lam * 10.0)
-        done = np.where(ok, small_step | small_drop | (rssn == 0), lam > 1e12)
+        # converged: the proposed step is negligible (accepted or not: at the minimum, rounding can
+        # make a negligible step look uphill), or the RSS no longer drops, or no downhill step exists
+        done = small_step | np.where(ok, small_drop | (rssn == 0), lam > 1e12)
         done &= live
         converged[idx[done]] = True
         live &= ~done
@@ -263,6 +298,7 @@ def fit_chunk(
     fit_model = noise.wrap(model)
     w = noise.weights(y, sigma)
     n_used = w.sum(axis=1).astype(int)
+    wl = None if noise.mode != "truncate" else w  # all-ones weights are skipped in the hot loop
     P = len(fit_model.param_names)
     L = len(fit_model.linear)
     lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
@@ -277,11 +313,13 @@ def fit_chunk(
         theta0 = model.initial_guess(yc, w, ctx)
         if theta0 is None:
             theta0 = grid_start(fit_model, yc, w, ctx)
+            if theta0.shape[1] == 1:
+                theta0 = refine_grid_1d(fit_model, yc, w, ctx, theta0)
         theta0 = np.clip(theta0, lo_nl, hi_nl)
         c0 = linear_amplitudes(fit_model, yc, w, theta0, ctx)
         c0 = np.where(np.isfinite(c0), c0, 0.0)
         c0 = np.maximum(c0, lo[:L])
-        p, rss, J, conv, nit = levenberg_marquardt(evaluate, yc, w, np.concatenate([c0, theta0], 1), lo, hi,
+        p, rss, J, conv, nit = levenberg_marquardt(evaluate, yc, wl, np.concatenate([c0, theta0], 1), lo, hi,
                                                    max_iter=max_iter)
         if best is None:
             best = [p, rss, J, conv, nit, yc.copy()]
@@ -292,11 +330,11 @@ def fit_chunk(
     p, rss, J, conv, nit, yfit = best
 
     if noise.mode == "rician":
-        p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, w, p, rss, J, conv, nit, sigma, ctx, lo, hi,
+        p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
                                                    max_iter=max_iter)
 
     # covariance
-    JTJ, _ = _normal(J, w, np.zeros_like(yfit))
+    JTJ, _ = _normal(J, wl, np.zeros_like(yfit))
     inv = chol_inverse(JTJ)
     dof = n_used - P
     with np.errstate(divide="ignore", invalid="ignore"):

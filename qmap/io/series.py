@@ -48,6 +48,7 @@ class Series:
     sources: dict = field(default_factory=dict)
     paths: list = field(default_factory=list)
     sidecars: list = field(default_factory=list)
+    _object_mask: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def shape(self) -> tuple[int, int, int]:

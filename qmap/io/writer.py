@@ -76,8 +76,8 @@ def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, pa
     """A NIfTI-1 image of ``data`` on the grid of ``ref_header`` with a sensible header."""
     dtype = np.uint8 if kind == "status" else np.float32
     arr = np.asarray(data, dtype=dtype)
-    hdr = nib.Nifti1Header()
-    img = nib.Nifti1Image(arr, affine, header=hdr)
+    img = nib.Nifti1Image(arr, affine)
+    img.set_data_dtype(dtype)
     qcode = sform_code = 1
     if ref_header is not None:
         try:
@@ -92,8 +92,7 @@ def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, pa
     img.header.set_xyzt_units("mm", "sec")
     img.header.set_intent(NIFTI_INTENT[kind], name=parameter[:16])
     img.header["descrip"] = f"qmap {parameter} {kind} [{units}]"[:79].encode()
-    img.header["scl_slope"] = 1.0
-    img.header["scl_inter"] = 0.0
+    img.header.set_slope_inter(None, None)  # no scaling: the stored values are the values
     if kind != "status":
         finite = arr[np.isfinite(arr)]
         if finite.size:

@@ -70,7 +70,7 @@ class MonoExponential(SeparableModel):
 
     def grid(self):
         lo, hi = self.bounds()
-        return np.geomspace(lo[0] * 1.05, hi[0] / 1.05, 48)[:, None]
+        return np.geomspace(lo[0] * 1.05, hi[0] / 1.05, 40)[:, None]
 
     def report(self, params, cov):
         t = params[:, 1]

@@ -1,0 +1,275 @@
+#!/usr/bin/env python3
+"""Speed and memory of qmap on whole-volume data, as ratios measured in one run.
+
+Cases (each run as a separate ``qmap`` process, timed from outside, peak RSS
+from the OS):
+
+* ``t2star`` -- 1M voxels x 12 echoes (float32 .nii.gz), ``--noise-floor none``
+  and the default (``rician`` with ``--sigma auto``), against
+  (a) a per-voxel ``scipy.optimize.curve_fit`` loop on a subsample, extrapolated
+      to the fitted voxels, and
+  (b) the I/O floor: nibabel load of the series + writing the same number of
+      gzipped float32 maps.
+* ``t1-ir`` -- 1M voxels x 10 TIs against its per-voxel curve_fit loop.
+* ``t2 --epg`` -- 1M voxels x 32 echoes against a per-voxel least-squares EPG
+  fit (scipy.optimize.least_squares on qmap.epg) on a subsample.
+* ``--max-memory`` -- the t2star fit of an uncompressed input read in slabs.
+
+Run: ``python scripts/benchmark.py [--voxels 1000000] [--cases t2star,t1-ir,t2-epg,memory] [--keep DIR]``.
+Prints one line per measurement and the ratios. Goals (from the issues): plain
+fit >= 100x the curve_fit loop and within 4x of the I/O floor; default noise
+mode >= 40x the loop; rician <= 4x the plain fit; t1-ir >= 100x its loop;
+t2 --epg >= 50x its loop; peak memory < 3x the input series.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+
+
+def shape_for(nvox: int) -> tuple[int, int, int]:
+    side = round(nvox ** (1 / 3))
+    return (side, side, max(1, nvox // (side * side)))
+
+
+def head_like(shape, rng):
+    """An ellipsoidal 'head' filling ~60 % of the volume, with smooth parameter variation, and background."""
+    x, y, z = (np.indices(shape).astype(np.float32) / (np.array(shape, np.float32)[:, None, None, None] - 1) - 0.5)
+    r = (x / 0.46) ** 2 + (y / 0.46) ** 2 + (z / 0.49) ** 2
+    obj = r < 1.0
+    smooth = 0.5 + 0.5 * np.sin(6 * x) * np.cos(5 * y)
+    return obj, smooth.astype(np.float32)
+
+
+def peak_rss_of(cmd: list[str]) -> tuple[float, float]:
+    """Wall time and peak RSS (MB) of one child, measured by a wrapper process so runs don't mix."""
+    wrapper = (
+        "import resource,subprocess,sys,time;t=time.perf_counter();"
+        "p=subprocess.run(sys.argv[1:],capture_output=True,text=True);dt=time.perf_counter()-t;"
+        "r=resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss/1024;"
+        "print(f'{dt} {r} {p.returncode}');sys.stderr.write(p.stderr if p.returncode else '')"
+    )
+    out = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True)
+    dt, rss, rc = out.stdout.split()
+    if int(rc) != 0:
+        sys.exit(f"benchmark: {' '.join(cmd)} failed ({rc}):\n{out.stderr}")
+    return float(dt), float(rss)
+
+
+def qmap_cmd() -> list[str]:
+    exe = shutil.which("qmap")
+    return [exe] if exe else [sys.executable, "-m", "qmap"]
+
+
+def write_series(path: Path, data: np.ndarray, affine, sidecar: dict) -> None:
+    nib.save(nib.Nifti1Image(data.astype(np.float32), affine), str(path))
+    name = path.name.removesuffix(".gz").removesuffix(".nii")
+    (path.parent / f"{name}.json").write_text(json.dumps(sidecar))
+
+
+def rician(sig, sigma, rng):
+    out = np.empty(sig.shape, np.float32)
+    # in slabs to keep the generator's memory small
+    for k in range(sig.shape[2]):
+        s = sig[:, :, k]
+        out[:, :, k] = np.abs(s + rng.normal(0, sigma, s.shape) + 1j * rng.normal(0, sigma, s.shape))
+    return out
+
+
+def io_floor(series: Path, n_maps: int, workdir: Path) -> float:
+    code = (
+        "import nibabel as nib,numpy as np,sys,time;t=time.perf_counter();"
+        f"img=nib.load({str(series)!r});d=np.asanyarray(img.dataobj);m=d[...,0].astype(np.float32);"
+        f"[nib.save(nib.Nifti1Image(m*(i+1),img.affine),{str(workdir)!r}+f'/floor{{i}}.nii.gz') for i in range({n_maps})];"
+        "print(time.perf_counter()-t)"
+    )
+    t = time.perf_counter()
+    subprocess.run([sys.executable, "-c", code], check=True, capture_output=True)
+    return time.perf_counter() - t
+
+
+def curve_fit_rate(model, x, y, p0, n=300) -> float:
+    """Voxels per second of a one-process per-voxel curve_fit loop."""
+    from scipy.optimize import curve_fit
+
+    t = time.perf_counter()
+    for i in range(min(n, y.shape[0])):
+        try:
+            curve_fit(model, x, y[i], p0=p0(y[i]), maxfev=2000)
+        except RuntimeError:
+            pass
+    return min(n, y.shape[0]) / (time.perf_counter() - t)
+
+
+def case_t2star(nvox, work: Path, rng):
+    shape = shape_for(nvox)
+    te = np.arange(1, 13) * 0.0035
+    obj, smooth = head_like(shape, rng)
+    t2s = np.where(obj, 0.015 + 0.05 * smooth, 0.03).astype(np.float32)
+    m0 = np.where(obj, 1000.0, 0.0).astype(np.float32)
+    sig = m0[..., None] * np.exp(-te / t2s[..., None]).astype(np.float32)
+    data = rician(sig, 12.0, rng)
+    del sig
+    series = work / "bench_MEGRE.nii.gz"
+    write_series(series, data, np.diag([1.0, 1.0, 1.0, 1.0]), {"EchoTime": te.tolist()})
+    n_fit = int(obj.sum())
+    sub = data[obj][:300].astype(float)
+    rate = curve_fit_rate(lambda t, a, b: a * np.exp(-t / b), te, sub, lambda v: (v[0] * 1.3, 0.03))
+    loop_s = n_fit / rate
+    q = qmap_cmd()
+    t_none, rss_none = peak_rss_of(q + ["t2star", str(series), "-o", str(work / "none"), "--noise-floor", "none", "-q"])
+    t_def, rss_def = peak_rss_of(q + ["t2star", str(series), "-o", str(work / "def"), "-q"])
+    n_maps = len(list((work / "none").glob("*.nii.gz")))
+    floor = io_floor(series, n_maps, work)
+    base_t, base_rss = peak_rss_of([sys.executable, "-c", "import qmap.cli, qmap.pipeline, qmap.noise, scipy.special"])
+    in_mb = data.nbytes / 2**20
+    print(f"t2star: {np.prod(shape)} voxels ({n_fit} in the object) x {te.size} echoes, input {in_mb:.0f} MB float32")
+    print(f"  curve_fit loop: {rate:.0f} voxels/s -> {loop_s:.1f} s extrapolated")
+    print(f"  I/O floor (load + write {n_maps} maps): {floor:.2f} s;  import-only process {base_t:.2f} s, "
+          f"{base_rss:.0f} MB")
+    print(f"  qmap t2star --noise-floor none: {t_none:.2f} s, peak RSS {rss_none:.0f} MB")
+    print(f"  qmap t2star (default rician, sigma auto): {t_def:.2f} s, peak RSS {rss_def:.0f} MB")
+    print(f"  ratio loop / none      = {loop_s / t_none:7.1f}   (goal >= 100)")
+    print(f"  ratio none / I/O floor = {t_none / floor:7.2f}   (goal <= 4)")
+    print(f"  ratio loop / default   = {loop_s / t_def:7.1f}   (goal >= 40)")
+    print(f"  ratio default / none   = {t_def / t_none:7.2f}   (goal <= 4)")
+    print(f"  peak memory / input    = {rss_none / in_mb:7.2f} (absolute); "
+          f"{(rss_none - base_rss) / in_mb:.2f} above the import-only baseline  (goal < 3)")
+    return series
+
+
+def case_t1_ir(nvox, work: Path, rng):
+    shape = shape_for(nvox)
+    ti = np.array([0.05, 0.1, 0.2, 0.4, 0.7, 1.0, 1.5, 2.2, 3.2, 4.5])
+    obj, smooth = head_like(shape, rng)
+    t1 = np.where(obj, 0.6 + 1.4 * smooth, 1.0).astype(np.float32)
+    m0 = np.where(obj, 1000.0, 0.0).astype(np.float32)
+    sig = m0[..., None] * (1 - 1.95 * np.exp(-ti / t1[..., None])).astype(np.float32)
+    data = rician(sig, 10.0, rng)
+    del sig
+    series = work / "bench_IRT1.nii.gz"
+    write_series(series, data, np.eye(4), {"InversionTime": ti.tolist()})
+    n_fit = int(obj.sum())
+    from scipy.optimize import curve_fit  # noqa: F401  (rate measured below)
+
+    sub = data[obj][:300].astype(float)
+
+    def mag(t, a, b, t1_):
+        return np.abs(a + b * np.exp(-t / t1_))
+
+    rate = curve_fit_rate(mag, ti, sub, lambda v: (v[-1], -2 * v[-1], 1.0))
+    loop_s = n_fit / rate
+    t_q, rss = peak_rss_of(qmap_cmd() + ["t1-ir", str(series), "-o", str(work / "ir"), "-q"])
+    print(f"t1-ir: {np.prod(shape)} voxels ({n_fit} fitted) x {ti.size} TIs")
+    print(f"  curve_fit loop (magnitude model): {rate:.0f} voxels/s -> {loop_s:.1f} s extrapolated")
+    print(f"  qmap t1-ir: {t_q:.2f} s, peak RSS {rss:.0f} MB;  ratio loop / qmap = {loop_s / t_q:.1f}  (goal >= 100)")
+
+
+def case_t2_epg(nvox, work: Path, rng):
+    from scipy.optimize import least_squares
+
+    from qmap.epg import cpmg_echoes
+
+    shape = shape_for(nvox)
+    n_e, esp = 32, 0.01
+    obj, smooth = head_like(shape, rng)
+    t2 = np.where(obj, 0.04 + 0.08 * smooth, 0.08).astype(np.float64).ravel()
+    b1 = np.where(obj, 0.85 + 0.15 * smooth, 1.0).astype(np.float64).ravel()
+    data = np.empty(t2.shape + (n_e,), np.float32)
+    for s in range(0, t2.size, 65536):
+        sl = slice(s, s + 65536)
+        data[sl] = 1000.0 * cpmg_echoes(t2[sl], b1[sl], esp=esp, n_echoes=n_e, refocus_deg=180.0)
+    data = data.reshape(shape + (n_e,))
+    data = np.where(obj[..., None], data, 0.0)
+    data = rician(data, 8.0, rng)
+    series = work / "bench_MESE.nii.gz"
+    te = (np.arange(1, n_e + 1) * esp).tolist()
+    write_series(series, data, np.eye(4), {"EchoTime": te})
+    n_fit = int(obj.sum())
+    sub = data[obj][:60].astype(float)
+    t = time.perf_counter()
+    for v in sub:
+        least_squares(lambda p, v=v: p[0] * cpmg_echoes(np.array([p[1]]), np.array([p[2]]), esp=esp,
+                                                         n_echoes=n_e)[0] - v,
+                      x0=[v[0] * 1.1, 0.08, 0.9], bounds=([0, 0.001, 0.5], [np.inf, 2.0, 1.2]))
+    rate = sub.shape[0] / (time.perf_counter() - t)
+    loop_s = n_fit / rate
+    t_q, rss = peak_rss_of(qmap_cmd() + ["t2", str(series), "-o", str(work / "epg"), "--epg", "-q"])
+    print(f"t2 --epg: {np.prod(shape)} voxels ({n_fit} fitted) x {n_e} echoes")
+    print(f"  per-voxel least_squares EPG loop: {rate:.1f} voxels/s -> {loop_s:.0f} s extrapolated")
+    print(f"  qmap t2 --epg: {t_q:.2f} s, peak RSS {rss:.0f} MB;  ratio loop / qmap = {loop_s / t_q:.1f}  (goal >= 50)")
+
+
+def case_memory(nvox, work: Path, rng, series_gz: Path):
+    img = nib.load(str(series_gz))
+    raw = work / "bench_MEGRE_raw.nii"
+    nib.save(nib.Nifti1Image(np.asanyarray(img.dataobj), img.affine), str(raw))
+    (work / "bench_MEGRE_raw.json").write_text((work / "bench_MEGRE.json").read_text())
+    size_mb = raw.stat().st_size / 2**20
+    budget = size_mb / 4
+    q = qmap_cmd()
+    t_full, rss_full = peak_rss_of(q + ["t2star", str(raw), "-o", str(work / "mem_full"), "--noise-floor", "none",
+                                        "--sigma", "12", "-q"])
+    t_slab, rss_slab = peak_rss_of(q + ["t2star", str(raw), "-o", str(work / "mem_slab"), "--noise-floor", "none",
+                                        "--sigma", "12", "-q", "--max-memory", f"{budget:.0f}MB"])
+    same = all(
+        np.array_equal(np.asanyarray(nib.load(str(p)).dataobj),
+                       np.asanyarray(nib.load(str(work / "mem_slab" / p.name.replace("mem_full", "mem_slab"))).dataobj),
+                       equal_nan=True)
+        for p in (work / "mem_full").glob("*.nii.gz")
+    )
+    base_t, base_rss = peak_rss_of([sys.executable, "-c", "import qmap.cli, qmap.pipeline, qmap.noise, scipy.special"])
+    out_mb = sum(p.stat().st_size for p in (work / "mem_full").glob("*.nii.gz")) / 2**20
+    n_maps = len(list((work / "mem_full").glob("*.nii.gz")))
+    maps_mb = n_maps * np.prod(img.shape[:3]) * 4 / 2**20
+    print(f"memory: uncompressed input {size_mb:.0f} MB, --max-memory {budget:.0f}MB")
+    print(f"  in memory: {t_full:.2f} s, peak RSS {rss_full:.0f} MB;  slabs: {t_slab:.2f} s, peak RSS {rss_slab:.0f} MB")
+    print(f"  import-only baseline {base_rss:.0f} MB; output maps {maps_mb:.0f} MB in memory ({out_mb:.0f} MB on disk)")
+    print(f"  slab peak above baseline = {rss_slab - base_rss:.0f} MB vs budget x 1.5 + maps = "
+          f"{1.5 * budget + maps_mb:.0f} MB;  maps identical: {same}")
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--voxels", type=int, default=1_000_000)
+    p.add_argument("--cases", default="t2star,t1-ir,t2-epg,memory")
+    p.add_argument("--keep", metavar="DIR", help="keep the synthetic data and outputs here")
+    p.add_argument("--seed", type=int, default=0)
+    args = p.parse_args(argv)
+    rng = np.random.default_rng(args.seed)
+    cases = set(args.cases.split(","))
+    work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="qmap-bench-"))
+    work.mkdir(parents=True, exist_ok=True)
+    print(f"qmap benchmark on {os.cpu_count()} cores, {args.voxels} voxels, work dir {work}")
+    try:
+        series = None
+        if "t2star" in cases or "memory" in cases:
+            series = case_t2star(args.voxels, work, rng)
+        if "memory" in cases:
+            case_memory(args.voxels, work, rng, series)
+        if "t1-ir" in cases:
+            case_t1_ir(args.voxels, work, rng)
+        if "t2-epg" in cases:
+            case_t2_epg(args.voxels, work, rng)
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
