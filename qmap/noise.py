@@ -569,5 +569,7 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
         return np.zeros(peak.shape, dtype=bool)
     clipped = np.minimum(nonzero, np.percentile(nonzero, 99.9))
     threshold = 0.5 * otsu_threshold(clipped)
-    mask = ndimage.binary_opening(peak > threshold)
+    # pad by repeating the edge so that the image border does not erode the object
+    # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
+    mask = ndimage.binary_opening(np.pad(peak > threshold, 1, mode="edge"))[1:-1, 1:-1, 1:-1]
     return ndimage.binary_fill_holes(mask)
