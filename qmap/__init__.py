@@ -1,3 +1,26 @@
-"""qmap: quantitative MRI relaxometry maps (T1, T2, T2*, B1) with uncertainties and phantom QA."""
+"""qmap: quantitative MRI relaxometry maps (T1, T2, T2*, B1) with uncertainties and phantom QA.
+
+Array-level API (numpy in, named maps out)::
+
+    maps = qmap.fit_t2star(data, te, noise_floor="rician", sigma=5.0)
+    maps["T2star"], maps.stderr["T2star"], maps.quality["rsquared"], maps.status
+
+File-level workflows (one per command) live in :mod:`qmap.workflows`.
+"""
 
 __version__ = "0.1.0"
+
+from .api import fit_decay, fit_t2star  # noqa: E402
+from .errors import InputError, QmapError, UsageError  # noqa: E402
+from .maps import MapSet, fit_volume  # noqa: E402
+
+__all__ = [
+    "__version__",
+    "fit_decay",
+    "fit_t2star",
+    "fit_volume",
+    "MapSet",
+    "QmapError",
+    "InputError",
+    "UsageError",
+]
