@@ -11,7 +11,7 @@ from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .models.base import SeparableModel
 
-__all__ = ["MapSet", "fit_volume"]
+__all__ = ["MapSet", "fit_volume", "concat_mapsets"]
 
 
 @dataclass
@@ -80,6 +80,7 @@ def fit_volume(
     quiet: bool = True,
     invalid_ctx_status: int = st.OUTSIDE_B1,
     method: str = "fast",
+    label: str = "fitting",
 ) -> MapSet:
     """Fit ``model`` in every voxel of ``data`` (X, Y, Z, m) inside ``mask``.
 
@@ -121,7 +122,7 @@ def fit_volume(
         ctx = {k: v[idx] for k, v in ctx_flat.items()}
     fit = fit_voxels(
         model, flat[idx], ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
-        n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method,
+        n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
     )
     status[idx] = fit.status
     derived = noise.report(model, fit.params, fit.cov)
@@ -154,3 +155,20 @@ def fit_volume(
         "n_fitted": int(idx.size),
     }
     return MapSet(estimates, stderr, units, descriptions, tuple(times), quality, status.reshape(shape), info)
+
+
+def concat_mapsets(parts: list[MapSet], axis: int = 2) -> MapSet:
+    """Join the maps of slabs fitted separately (same model and options) along ``axis``."""
+    if len(parts) == 1:
+        return parts[0]
+    first = parts[0]
+
+    def cat(get):
+        return {k: np.concatenate([get(p)[k] for p in parts], axis=axis) for k in get(first)}
+
+    info = dict(first.info, n_fitted=sum(p.info.get("n_fitted", 0) for p in parts))
+    return MapSet(
+        estimates=cat(lambda p: p.estimates), stderr=cat(lambda p: p.stderr), units=dict(first.units),
+        descriptions=dict(first.descriptions), time_params=first.time_params, quality=cat(lambda p: p.quality),
+        status=np.concatenate([p.status for p in parts], axis=axis), info=info,
+    )

@@ -377,19 +377,57 @@ def estimate_sigma_background(
             f"noise estimate: data of shape {data.shape} and object mask of shape {mask.shape} do not match; "
             "expected (X,Y,Z[,n]) data with an (X,Y,Z) mask"
         )
-    hint = "give the noise level with --sigma VALUE"
     if not mask.any():
-        raise InputError(f"cannot estimate the noise: no object was found in the image to set apart; {hint}")
-    grown = ndimage.binary_dilation(mask, iterations=dilate) if dilate > 0 else mask
+        raise InputError(f"cannot estimate the noise: no object was found in the image to set apart; {_HINT}")
+    grown = background_exclusion(mask, dilate)
     values = data[~grown]  # (n_bg,) or (n_bg, n)
+    obj = data[mask]
+    if obj.ndim == 2:
+        obj = np.max(np.where(np.isfinite(obj), obj, -np.inf), axis=1)
+    return sigma_from_samples(values, obj, coils=coils, min_voxels=min_voxels)
+
+
+_HINT = "give the noise level with --sigma VALUE"
+
+
+def background_exclusion(object_mask: np.ndarray, dilate: int = 3) -> np.ndarray:
+    """The object grown by ``dilate`` voxels: everything outside it counts as background."""
+    mask = np.asarray(object_mask, dtype=bool)
+    if not mask.any():
+        raise InputError(f"cannot estimate the noise: no object was found in the image to set apart; {_HINT}")
+    return ndimage.binary_dilation(mask, iterations=dilate) if dilate > 0 else mask
+
+
+def sigma_from_samples(
+    values: np.ndarray,
+    object_peak: np.ndarray,
+    *,
+    coils: int = 1,
+    min_voxels: int = 1000,
+    n_voxels: int | None = None,
+) -> tuple[float, int]:
+    """Noise sigma from background samples (the core of :func:`estimate_sigma_background`).
+
+    Parameters
+    ----------
+    values : (n_bg,) or (n_bg, n) ndarray
+        Background magnitudes (voxels x volumes), possibly a subsample.
+    object_peak : (k,) ndarray
+        Each object voxel's maximum over volumes (for the plausibility check).
+    n_voxels : int, optional
+        Number of usable background voxels when ``values`` is a subsample.
+    """
+    coils = _check_coils(coils)
+    values = np.asarray(values)
     if values.ndim == 1:
         values = values[:, None]
     usable = np.isfinite(values) & (values != 0)
-    n_voxels = int(np.count_nonzero(usable.any(axis=1)))
+    if n_voxels is None:
+        n_voxels = int(np.count_nonzero(usable.any(axis=1)))
     if n_voxels < min_voxels:
         raise InputError(
             f"cannot estimate the noise: only {n_voxels} background voxels outside the object "
-            f"(at least {min_voxels} needed; the image is probably cropped tightly); {hint}"
+            f"(at least {min_voxels} needed; the image is probably cropped tightly); {_HINT}"
         )
     bg = values[usable].astype(np.float64)
     if bg.size > _MAX_SAMPLES:  # an even stride; a million values fix the median to 0.1 %
@@ -397,27 +435,25 @@ def estimate_sigma_background(
     if np.count_nonzero(bg < 0) > 0.01 * bg.size:
         raise InputError(
             "cannot estimate the noise: the image background has negative values, so it is not a "
-            f"magnitude image; {hint}"
+            f"magnitude image; {_HINT}"
         )
     med_bg = float(np.median(bg))
-    obj = data[mask]
-    if obj.ndim == 2:
-        obj = np.max(np.where(np.isfinite(obj), obj, -np.inf), axis=1)
+    obj = np.asarray(object_peak, dtype=np.float64)
     obj = obj[np.isfinite(obj)]
     med_obj = float(np.median(obj)) if obj.size else 0.0
     if not med_bg * 3.0 <= med_obj:
         raise InputError(
             f"cannot estimate the noise: the image background is not pure noise (background median {med_bg:.4g} "
-            f"vs object median {med_obj:.4g}, expected below a third); {hint}"
+            f"vs object median {med_obj:.4g}, expected below a third); {_HINT}"
         )
     sigma, outliers = _clipped_sigma(bg, coils)
     if outliers > _MAX_OUTLIER_FRACTION:
         raise InputError(
             f"cannot estimate the noise: the image background is not pure noise ({100 * outliers:.0f} % of it is "
             f"far brighter than noise, expected below {100 * _MAX_OUTLIER_FRACTION:.0f} %; unmasked signal or "
-            f"strong artefacts); {hint}"
+            f"strong artefacts); {_HINT}"
         )
-    return sigma, n_voxels
+    return sigma, int(n_voxels)
 
 
 def _clipped_sigma(bg: np.ndarray, coils: int) -> tuple[float, float]:
@@ -561,9 +597,18 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
     a = np.asanyarray(data)
     if a.ndim not in (3, 4):
         raise InputError(f"cannot build a mask: expected a 3D volume or 4D series, got shape {a.shape}")
-    # per-voxel maximum without a float64 copy of the series (fmax skips NaN)
-    peak = np.fmax.reduce(a, axis=3) if a.ndim == 4 else np.array(a)
-    peak = np.where(np.isfinite(peak), peak, 0.0).astype(np.float64)
+    return mask_from_peak(peak_image(a))
+
+
+def peak_image(data: np.ndarray) -> np.ndarray:
+    """Each voxel's maximum over the volumes (float64, non-finite -> 0), without copying the series."""
+    a = np.asanyarray(data)
+    peak = np.fmax.reduce(a, axis=3) if a.ndim == 4 else np.array(a)  # fmax skips NaN
+    return np.where(np.isfinite(peak), peak, 0.0).astype(np.float64)
+
+
+def mask_from_peak(peak: np.ndarray) -> np.ndarray:
+    """The object mask from a peak image (see :func:`auto_mask`)."""
     nonzero = peak[peak != 0]
     if nonzero.size == 0:
         return np.zeros(peak.shape, dtype=bool)

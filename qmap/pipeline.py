@@ -23,7 +23,7 @@ from .fitting.noise_floor import NoiseFloor
 from .io.nifti import check_same_grid, image_data, load_image
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
-from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume
+from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, concat_mapsets, fit_volume
 
 __all__ = ["CommonOptions", "RunReport", "run_fit", "write_run", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma"]
 
@@ -46,6 +46,7 @@ class CommonOptions:
     engine: str = "fast"
     chunk_size: int = DEFAULT_CHUNK
     command_line: list | None = None
+    max_memory: float | None = None  # bytes; larger inputs are read in slabs
 
     def __post_init__(self):
         self.out_dir = Path(self.out_dir)
@@ -68,6 +69,7 @@ class CommonOptions:
             "preview": self.preview,
             "engine": self.engine,
             "chunk_size": self.chunk_size,
+            "max_memory_bytes": self.max_memory,
         }
 
 
@@ -116,27 +118,66 @@ def default_prefix(path: str | Path) -> str:
     return _SERIES_ENTITY.sub("", name) or "qmap"
 
 
-def object_mask(series: Series) -> np.ndarray:
-    """The automatically detected object (cached on the series: used by ``--mask auto`` and ``--sigma auto``)."""
-    from .noise import auto_mask
+def _peak(block: np.ndarray) -> np.ndarray:
+    """Per-voxel maximum magnitude over the volumes of a block, without copying it."""
+    from .noise import peak_image
 
-    cached = getattr(series, "_object_mask", None)
-    if cached is None:
-        data = series.data
-        cached = auto_mask(np.abs(data) if np.iscomplexobj(data) or np.nanmin(data) < 0 else data)
-        series._object_mask = cached
-    return cached
+    if np.iscomplexobj(block):
+        return peak_image(np.abs(block))
+    with np.errstate(invalid="ignore"):
+        lo = np.fmin.reduce(block, axis=3)
+        hi = np.fmax.reduce(block, axis=3)
+    peak = np.fmax(hi, -lo)  # real-valued data may be negative (phase-corrected IR)
+    return np.where(np.isfinite(peak), peak, 0.0).astype(np.float64)
 
 
-def resolve_mask(spec, series: Series) -> tuple[np.ndarray, str]:
+def object_mask(series: Series, max_bytes: float | None = None) -> np.ndarray:
+    """The automatically detected object (cached: used by ``--mask auto`` and ``--sigma auto``).
+
+    Computed slab by slab (only the per-voxel peak image is held), see :func:`qmap.noise.auto_mask`.
+    """
+    from .noise import mask_from_peak
+
+    if series._object_mask is None:
+        peak = np.concatenate([_peak(series.read(z0, z1)) for z0, z1 in series.slabs(max_bytes)], axis=2)
+        series._object_mask = mask_from_peak(peak)
+        series._peak = peak
+    return series._object_mask
+
+
+#: background samples collected for ``--sigma auto`` (every k-th voxel by flat index, so that the
+#: choice does not depend on how the volume is read)
+SIGMA_SAMPLES = 2_000_000
+
+
+def background_sigma(series: Series, *, coils: int = 1, max_bytes: float | None = None) -> tuple[float, int]:
+    """Noise sigma from the image background, reading the series slab by slab."""
+    from .noise import background_exclusion, sigma_from_samples
+
+    obj = object_mask(series, max_bytes)
+    bg = ~background_exclusion(obj)
+    k = max(1, -(-int(bg.sum()) * series.n // SIGMA_SAMPLES))
+    keep = bg & (np.arange(bg.size).reshape(bg.shape) % k == 0)
+    values, n_voxels = [], 0
+    for z0, z1 in series.slabs(max_bytes):
+        block = series.read(z0, z1)
+        block = np.abs(block) if np.iscomplexobj(block) else block
+        b = block[bg[:, :, z0:z1]]
+        n_voxels += int(np.count_nonzero((np.isfinite(b) & (b != 0)).any(axis=1)))
+        values.append(block[keep[:, :, z0:z1]])
+    return sigma_from_samples(np.concatenate(values, axis=0), series._peak[obj], coils=coils, n_voxels=n_voxels)
+
+
+def resolve_mask(spec, series: Series, max_bytes: float | None = None) -> tuple[np.ndarray, str]:
     """The voxels to fit: ``"auto"``, ``"none"`` or a NIfTI file name. Returns (mask, description)."""
     spec = "auto" if spec is None else str(spec)
     if spec == "none":
         return np.ones(series.shape, bool), "none (every voxel)"
     if spec == "auto":
-        return object_mask(series), "auto (0.5 x Otsu threshold of the per-voxel maximum, opened, holes filled)"
+        return (object_mask(series, max_bytes),
+                "auto (0.5 x Otsu threshold of the per-voxel maximum, opened, holes filled)")
     img = load_image(spec, what="--mask")
-    check_same_grid(series.data.shape, series.affine, img.shape, img.affine, ref_name="the series", name=f"--mask {spec}")
+    check_same_grid(series.shape, series.affine, img.shape, img.affine, ref_name="the series", name=f"--mask {spec}")
     data = image_data(img, spec)
     if data.ndim != 3:
         raise InputError(f"--mask {spec}: expected a 3D image, got shape {data.shape}")
@@ -146,14 +187,11 @@ def resolve_mask(spec, series: Series) -> tuple[np.ndarray, str]:
     return mask, f"file {Path(spec).absolute()}"
 
 
-def resolve_sigma(spec, series: Series) -> tuple[object, dict]:
+def resolve_sigma(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None) -> tuple[object, dict]:
     """Noise sd from ``"auto"`` (image background), a number, or a NIfTI noise map."""
-    from .noise import estimate_sigma_background
-
     spec = "auto" if spec is None else str(spec)
     if spec == "auto":
-        data = np.abs(series.data) if np.iscomplexobj(series.data) else series.data
-        sigma, nvox = estimate_sigma_background(data, object_mask(series))
+        sigma, nvox = background_sigma(series, coils=coils, max_bytes=max_bytes)
         return float(sigma), {"source": "auto (image background)", "value": float(sigma), "background_voxels": int(nvox)}
     try:
         value = float(spec)
@@ -164,29 +202,36 @@ def resolve_sigma(spec, series: Series) -> tuple[object, dict]:
             raise InputError(f"--sigma {spec}: must be a positive number in signal units, or auto, or a NIfTI noise map")
         return value, {"source": "command line", "value": value}
     img = load_image(spec, what="--sigma")
-    check_same_grid(series.data.shape, series.affine, img.shape, img.affine, ref_name="the series",
+    check_same_grid(series.shape, series.affine, img.shape, img.affine, ref_name="the series",
                     name=f"--sigma {spec}")
     data = image_data(img, spec)
     if data.ndim != 3:
         raise InputError(f"--sigma {spec}: expected a 3D noise map, got shape {data.shape}")
-    return data.astype(float), {"source": f"noise map {Path(spec).absolute()}", "value": float(np.nanmedian(data))}
+    return data.astype(float), {"source": f"noise map {Path(spec).absolute()}", "value": float(np.nanmedian(data)),
+                                "path": str(Path(spec).absolute())}
 
 
-def check_signal(series: Series, *, magnitude: bool = True) -> None:
+def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | None = None) -> None:
     """Reject series with no signal at all, and negative 'magnitudes'."""
-    d = np.abs(series.data) if np.iscomplexobj(series.data) else series.data
-    with np.errstate(invalid="ignore"):
-        lo, hi = float(np.fmin.reduce(d, axis=None)), float(np.fmax.reduce(d, axis=None))  # skip NaN, no copy
-    if not (np.isfinite(lo) and np.isfinite(hi)):
-        finite = d[np.isfinite(d)]
-        if finite.size == 0:
-            raise InputError(f"{series.paths[0]}: every sample is NaN or infinite; nothing to fit")
-        lo, hi = float(finite.min()), float(finite.max())
+    lo, hi = np.inf, -np.inf
+    for z0, z1 in series.slabs(max_bytes):
+        block = series.read(z0, z1)
+        d = np.abs(block) if np.iscomplexobj(block) else block
+        with np.errstate(invalid="ignore"):
+            blo, bhi = float(np.fmin.reduce(d, axis=None)), float(np.fmax.reduce(d, axis=None))  # skip NaN, no copy
+        if not (np.isfinite(blo) and np.isfinite(bhi)):
+            finite = d[np.isfinite(d)]
+            if finite.size == 0:
+                continue
+            blo, bhi = float(finite.min()), float(finite.max())
+        lo, hi = min(lo, blo), max(hi, bhi)
+    if not np.isfinite(lo):
+        raise InputError(f"{series.paths[0]}: every sample is NaN or infinite; nothing to fit")
     if hi == lo:
         raise InputError(
             f"{series.paths[0]}: the series holds no signal (every sample is {hi:g}); check the export"
         )
-    if magnitude and not np.iscomplexobj(series.data) and lo < 0:
+    if magnitude and not series._allow_complex and lo < 0:
         raise InputError(
             f"{series.paths[0]}: holds negative values (min {lo:g}) but magnitude images are >= 0; "
             f"is this a real/phase image? (t1-ir takes real data with --signal real)"
@@ -240,16 +285,23 @@ def run_fit(
     t0 = time.perf_counter() if t0 is None else t0
     prefix = common.prefix or default_prefix(series.paths[0])
     check_outputs_free(common, prefix)
-    check_signal(series, magnitude=magnitude)
+    budget = common.max_memory
+    check_signal(series, magnitude=magnitude, max_bytes=budget)
     notes = list(notes or [])
-    mask, mask_desc = resolve_mask(common.mask, series)
+    mask, mask_desc = resolve_mask(common.mask, series, budget)
+    # files that shape the result are inputs too (provenance lists them with their SHA-256)
+    file_inputs = list(extra_inputs or [])
+    if common.mask is not None and str(common.mask) not in ("auto", "none"):
+        file_inputs.append(common.mask)
     sigma = None
     noise_info = None
     if noise is not None:
         noise_info = {"mode": noise.mode, "sigma": None}
         if noise.needs_sigma:
-            sigma, sinfo = resolve_sigma(sigma_spec, series)
+            sigma, sinfo = resolve_sigma(sigma_spec, series, coils=noise.coils, max_bytes=budget)
             noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
+            if "path" in sinfo:
+                file_inputs.append(sinfo["path"])
             if "background_voxels" in sinfo:
                 noise_info["background_voxels"] = sinfo["background_voxels"]
                 notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels")
@@ -257,14 +309,22 @@ def run_fit(
             noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
         if noise.mode == "rician":
             noise_info["coils"] = noise.coils
-    maps = fit_volume(
-        model, series.data,  # magnitude data were checked to be >= 0 (check_signal)
-        mask=mask, ctx_maps=ctx_maps, noise=noise, sigma=sigma, n_jobs=common.n_jobs,
-        chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
-    )
+    slabs = series.slabs(budget)
+    if len(slabs) > 1:
+        notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
+    parts = []
+    for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
+        parts.append(fit_volume(
+            model, series.read(z0, z1), mask=mask[:, :, z0:z1],
+            ctx_maps=None if not ctx_maps else {k: np.asarray(v)[:, :, z0:z1] for k, v in ctx_maps.items()},
+            noise=noise, sigma=sigma if np.ndim(sigma) < 3 else sigma[:, :, z0:z1], n_jobs=common.n_jobs,
+            chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
+            label="fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}",
+        ))
+    maps = concat_mapsets(parts, axis=2)
     return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
                      model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)),
-                     extra_inputs=extra_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
+                     extra_inputs=file_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
 
 
 def write_run(
@@ -283,8 +343,8 @@ def write_run(
 ) -> RunReport:
     """Write the maps of ``maps`` (NIfTI + sidecars, previews) and the provenance, atomically."""
     outs = _outputs_for(maps, prefix, common.units)
-    inputs = [{"path": str(Path(p).absolute()), "sha256": sha256_file(p)}
-              for p in list(series.paths) + list(extra_inputs or [])]
+    paths = dict.fromkeys(str(Path(p).absolute()) for p in list(series.paths) + list(extra_inputs or []))
+    inputs = [{"path": p, "sha256": sha256_file(p)} for p in paths]
     acquisition = {k: (np.asarray(v).tolist() if np.ndim(v) else float(v)) for k, v in series.acquisition.items()}
     opts = dict(common.as_dict())
     opts.update(options or {})

@@ -28,7 +28,10 @@ class Series:
     Attributes
     ----------
     data : (X, Y, Z, n) ndarray
-        float32 (or complex64) voxel data, scaling slopes applied.
+        float32 (or complex64) voxel data, scaling slopes applied. For a
+        series opened lazily (``load_series(..., max_bytes=...)``) the data
+        stay on disk and :meth:`read` returns slabs; touching ``data`` then
+        loads everything.
     affine : (4, 4) ndarray
         Voxel-to-world affine of the first input.
     header : nibabel header
@@ -41,7 +44,7 @@ class Series:
         The input files, absolute.
     """
 
-    data: np.ndarray
+    _data: np.ndarray | None
     affine: np.ndarray
     header: object
     acquisition: dict = field(default_factory=dict)
@@ -49,14 +52,72 @@ class Series:
     paths: list = field(default_factory=list)
     sidecars: list = field(default_factory=list)
     _object_mask: np.ndarray | None = field(default=None, repr=False)
+    _proxies: list | None = field(default=None, repr=False)  # lazy: [4D proxy] or [3D proxies]
+    _order: np.ndarray | None = field(default=None, repr=False)  # volume order applied on reading
+    _shape4: tuple | None = field(default=None, repr=False)
+    _allow_complex: bool = field(default=False, repr=False)
+
+    @property
+    def data(self) -> np.ndarray:
+        if self._data is None:
+            self._data = self.read(0, self.shape[2])
+            self._proxies = None
+        return self._data
+
+    @data.setter
+    def data(self, value: np.ndarray) -> None:
+        self._data = value
+        self._proxies = None
+        self._order = None
+        self._shape4 = None
+
+    @property
+    def lazy(self) -> bool:
+        return self._data is None
 
     @property
     def shape(self) -> tuple[int, int, int]:
-        return tuple(self.data.shape[:3])
+        return tuple(self._shape4[:3]) if self._data is None else tuple(self._data.shape[:3])
 
     @property
     def n(self) -> int:
-        return int(self.data.shape[3])
+        return int(self._shape4[3]) if self._data is None else int(self._data.shape[3])
+
+    def select_volumes(self, index) -> None:
+        """Keep (and order) the volumes ``index`` -- without loading a lazy series."""
+        index = np.asarray(index)
+        if self._data is not None:
+            self._data = self._data[..., index]
+            return
+        base = np.arange(self._shape4[3]) if self._order is None else self._order
+        self._order = base[index]
+        self._shape4 = self._shape4[:3] + (len(self._order),)
+
+    def read(self, z0: int, z1: int) -> np.ndarray:
+        """Voxel data of the slices ``z0:z1`` as (X, Y, z1-z0, n) float32 / complex64."""
+        if self._data is not None:
+            return self._data[:, :, z0:z1]
+        dtype = np.complex64 if self._allow_complex else np.float32
+        if len(self._proxies) == 1:
+            raw = np.asanyarray(self._proxies[0][:, :, z0:z1, :])
+            if raw.ndim == 3:
+                raw = raw[:, :, :, None]
+        else:
+            raw = np.stack([np.asanyarray(p[:, :, z0:z1]).reshape(p.shape[:2] + (z1 - z0,)) for p in self._proxies],
+                           axis=-1)
+        if np.iscomplexobj(raw) and not self._allow_complex:
+            raise InputError(f"{self.paths[0]}: holds complex data but this fit expects magnitude images")
+        out = raw.astype(dtype, copy=False)
+        return out if self._order is None else out[..., self._order]
+
+    def slabs(self, max_bytes: float | None) -> list[tuple[int, int]]:
+        """Slice ranges along z whose data fit in about ``max_bytes`` / 2.5 each (one slab when in memory)."""
+        nz = self.shape[2]
+        if max_bytes is None or not self.lazy:
+            return [(0, nz)]
+        per_z = self.shape[0] * self.shape[1] * self.n * (8 if self._allow_complex else 4)
+        k = max(1, int(max_bytes / (2.5 * per_z)))
+        return [(z, min(z + k, nz)) for z in range(0, nz, k)]
 
 
 def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
@@ -160,7 +221,10 @@ def resolve_parameter(
             else:
                 raise InputError(f"{where}: sidecar {key} differs between volumes {sidecar.tolist()}; expected one value")
         if n is not None and sidecar.size not in (1, n):
-            raise InputError(f"{where}: sidecar {key} has {sidecar.size} values for {n} volumes")
+            raise InputError(
+                f"{where}: sidecar {key} has {sidecar.size} values for {n} volumes; fix the sidecar, "
+                f"or give {option} with {n} values"
+            )
     if cli is not None:
         value = np.atleast_1d(np.asarray(cli, float))
         src = "command line"
@@ -205,6 +269,7 @@ def load_series(
     sort: bool = True,
     min_volumes: int = 2,
     what: str = "series",
+    max_bytes: float | None = None,
 ) -> Series:
     """Load one 4D NIfTI or several 3D NIfTIs, with the varied acquisition parameter.
 
@@ -232,6 +297,9 @@ def load_series(
         (with a note). Duplicated values are rejected.
     min_volumes : int
         Smallest usable number of volumes.
+    max_bytes : float, optional
+        Memory budget: when the series would take more than this in memory,
+        it is left on disk and read in slabs (:meth:`Series.read`).
 
     Returns
     -------
@@ -240,8 +308,14 @@ def load_series(
     paths = [Path(p).expanduser().absolute() for p in (paths if isinstance(paths, (list, tuple)) else [paths])]
     if not paths:
         raise InputError(f"no {what} given; name one 4D NIfTI or several 3D NIfTIs")
-    data, first = _load_volumes(paths, allow_complex=allow_complex, what=what)
-    n = data.shape[3]
+    lazy = max_bytes is not None and _in_memory_bytes(paths, allow_complex) > max_bytes
+    if lazy:
+        proxies, first, shape4 = _open_volumes(paths, what=what)
+        data = None
+        n = shape4[3]
+    else:
+        data, first = _load_volumes(paths, allow_complex=allow_complex, what=what)
+        n = data.shape[3]
     sidecars = [read_sidecar(p) for p in paths]
     where = str(paths[0]) if len(paths) == 1 else f"{paths[0].name}..{paths[-1].name}"
     sc = _sidecar_values(paths, sidecars, key, n, what=what)
@@ -264,15 +338,48 @@ def load_series(
     if sort and np.any(np.diff(vals) < 0):
         order = np.argsort(vals, kind="stable")
         log.warning("volumes were not in increasing %s order; sorted them (%s)", key, _fmt(vals[order], key))
-        data = data[..., order]
         vals = vals[order]
         acquisition[key] = vals
-    return Series(
-        data=data,
+    else:
+        order = None
+    series = Series(
+        _data=data,
         affine=np.asarray(first.affine, float),
         header=first.header,
         acquisition=acquisition,
         sources=sources,
         paths=paths,
         sidecars=sidecars,
+        _proxies=proxies if lazy else None,
+        _shape4=shape4 if lazy else None,
+        _allow_complex=allow_complex,
     )
+    if order is not None:
+        series.select_volumes(order)
+    return series
+
+
+def _in_memory_bytes(paths, allow_complex: bool) -> float:
+    total = 0.0
+    for p in paths:
+        img = load_image(p)
+        total += float(np.prod(img.shape)) * (8 if allow_complex else 4)
+    return total
+
+
+def _open_volumes(paths: list[Path], *, what: str):
+    """Open the inputs lazily (array proxies), with the same checks as :func:`_load_volumes`."""
+    imgs = [load_image(p, what=what) for p in paths]
+    first = imgs[0]
+    if len(paths) == 1:
+        shape = first.shape
+        if len(shape) != 4 or shape[3] < 2:
+            raise InputError(
+                f"{paths[0]}: shape {shape}; a series is one 4D file (x, y, z, volume) or several 3D files"
+            )
+        return [first.dataobj], first, tuple(shape)
+    for p, img in zip(paths, imgs):
+        if len(img.shape) > 3 and not all(s == 1 for s in img.shape[3:]):
+            raise InputError(f"{p}: has shape {img.shape}; when several files are given each must be one 3D volume")
+        check_same_grid(first.shape, first.affine, img.shape, img.affine, ref_name=str(paths[0]), name=str(p))
+    return [img.dataobj for img in imgs], first, tuple(first.shape[:3]) + (len(paths),)

@@ -48,11 +48,12 @@ def run_t2star(
         Ignore the first echo.
     """
     t0 = time.perf_counter()
-    series = load_series(inputs, key="EchoTime", value=te, option="--te", min_volumes=2)
+    series = load_series(inputs, key="EchoTime", value=te, option="--te", min_volumes=3 if drop_first else 2,
+                         max_bytes=common.max_memory)
     te_used = np.asarray(series.acquisition["EchoTime"])
     notes = []
     if drop_first:
-        series.data = series.data[..., 1:]
+        series.select_volumes(np.arange(1, series.n))
         te_used = te_used[1:]
         series.acquisition["EchoTime"] = te_used
         notes.append("first echo dropped")
