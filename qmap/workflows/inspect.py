@@ -16,8 +16,9 @@ What a workflow must record for its fits to be inspectable
 * ``acquisition``: the varied key (one value per volume used, in the order
   fitted) and scalars such as ``RepetitionTime``;
 * ``options["drop_first_echo"]`` when the first volume was not fitted;
-* per-voxel inputs as ``options["b1"]`` (absolute path of the B1 map) and
-  ``options["b1_scale"]`` (``"fraction"`` or ``"percent"``);
+* per-voxel inputs as ``options["b1"]`` (absolute path of the B1 map),
+  ``options["b1_scale"]`` (``"fraction"`` or ``"percent"``) and
+  ``options["b1_smooth_fwhm_mm"]`` (as :func:`qmap.workflows.vfa.load_b1_map` takes them);
 * the series files first in ``inputs``, extra inputs (B1 map) after them.
 """
 
@@ -30,7 +31,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError, UsageError
-from ..io.nifti import image_data, load_image, read_sidecar
+from ..io.nifti import load_image, read_sidecar
 from ..io.writer import AtomicWriter, sha256_file
 
 __all__ = ["inspect_voxel", "find_prefixes", "parse_voxel", "VoxelReport", "ModelSpec", "MODELS"]
@@ -244,22 +245,6 @@ def _voxel_inputs(prov: dict, ijk, key: str):
     return _voxel_samples(paths, ijk, key, used, drop), used, paths
 
 
-def voxel_of_image(path: str | Path, ijk, series_path: str | Path, *, order: int = 1) -> float:
-    """Value of the image ``path`` at voxel ``ijk`` of the series grid (resampled through the affines)."""
-    from ..io.nifti import resample_to_grid, same_grid
-
-    ref = load_image(series_path)
-    img = load_image(path, what="per-voxel input")
-    if same_grid(img.shape, img.affine, ref.shape, ref.affine):
-        return float(np.asarray(img.dataobj[ijk[0], ijk[1], ijk[2]]))
-    data = image_data(img, path)
-    data = data.reshape(data.shape[:3])
-    # resample only the one voxel: a 1x1x1 grid whose affine is the voxel's
-    aff = np.array(ref.affine, float)
-    aff[:3, 3] = aff[:3, :3] @ np.asarray(ijk, float) + aff[:3, 3]
-    return float(resample_to_grid(data, img.affine, (1, 1, 1), aff, order=order)[0, 0, 0])
-
-
 # ----------------------------------------------------------------------------
 # Registry: provenance model name -> how to rebuild the model
 # ----------------------------------------------------------------------------
@@ -280,12 +265,17 @@ class ModelSpec:
         Axis label of the sample positions.
     angles : bool
         The positions are flip angles (degrees), not times.
+    refit : callable, optional
+        ``refit(provenance, model, y (1, m), ctx) -> fit`` (with ``params``
+        and ``cov``) when the workflow's estimator is not the solver's
+        least squares (e.g. the linear VFA method).
     """
 
     key: str
     build: object
     xlabel: str
     angles: bool = False
+    refit: object = None
 
 
 def _build_monoexp(prov, x):
@@ -303,10 +293,25 @@ def _build_ir(prov, x):
     return InversionRecovery(x, signal=m.get("signal", "magnitude"), look_locker=bool(m.get("look_locker", False)))
 
 
+def _build_spgr(prov, x):
+    from ..models.vfa import SpoiledGRE
+
+    return SpoiledGRE(x, float(prov["acquisition"]["RepetitionTime"]))
+
+
+def _refit_spgr(prov, model, y, ctx):
+    if prov["model"].get("method") != "linear":
+        return None
+    from ..models.vfa import despot1
+
+    return despot1(y, model.x, model.tr, b1=None if not ctx else ctx["b1"], t1_bounds=model.t1_bounds)
+
+
 #: provenance ``model["name"]`` -> :class:`ModelSpec`
 MODELS: dict[str, ModelSpec] = {
     "monoexp": ModelSpec("EchoTime", _build_monoexp, "echo time"),
     "ir": ModelSpec("InversionTime", _build_ir, "inversion time"),
+    "spgr": ModelSpec("FlipAngle", _build_spgr, "nominal flip angle", angles=True, refit=_refit_spgr),
 }
 
 
@@ -328,14 +333,19 @@ def _noise(prov, ijk):
 
 
 def _ctx(model, prov, ijk, series_path):
+    """Per-voxel model inputs as the workflow computed them (the B1 map resampled onto the series grid)."""
     if "b1" not in getattr(model, "voxel_inputs", ()):
         return None
     opts = prov.get("options", {})
-    path = opts.get("b1") or opts.get("b1_map")
+    path = opts.get("b1")
     if not path:
-        return {"b1": np.ones(1)}
-    scale = 0.01 if opts.get("b1_scale") == "percent" else 1.0
-    return {"b1": np.array([voxel_of_image(path, ijk, series_path) * scale])}
+        return None
+    from .vfa import load_b1_map
+
+    ref = load_image(series_path)
+    b1, _ = load_b1_map(path, shape=ref.shape[:3], affine=ref.affine, scale=opts.get("b1_scale"),
+                        smooth_fwhm_mm=opts.get("b1_smooth_fwhm_mm"))
+    return {"b1": np.array([b1[ijk[0], ijk[1], ijk[2]]])}
 
 
 def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
@@ -370,8 +380,10 @@ def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
         rep.notes.append("this voxel was not fitted; the plot shows its samples only")
         return dict(common, x_fine=x[:0], curve=x[:0], fitted_at_x=np.full_like(y, np.nan), title=title)
     sig = None if sigma is None else np.array([sigma])
-    fit = fit_voxels(model, y[None, :], ctx=ctx, noise=noise, sigma=sig, n_jobs=1,
-                     method=prov.get("model", {}).get("engine", "fast"))
+    fit = spec.refit(prov, model, y[None, :], ctx) if spec.refit else None
+    if fit is None:
+        fit = fit_voxels(model, y[None, :], ctx=ctx, noise=noise, sigma=sig, n_jobs=1,
+                         method=prov.get("model", {}).get("engine", "fast"))
     _check_refit(noise.report(model, fit.params, fit.cov), rep)
     curve = noise.wrap(spec.build(prov, xf)).predict(fit.params, ctx)[0]
     at_x = noise.wrap(model).predict(fit.params, ctx)[0]

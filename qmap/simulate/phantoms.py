@@ -1,0 +1,214 @@
+"""Digital phantoms: label images with relaxation properties, and a smooth transmit (B1) field.
+
+Two built-in phantoms, both invented for qmap:
+
+``vials``
+    A round container of fill liquid holding nine vials (eight on a ring,
+    one in the centre) whose relaxation times span T1 0.1-2 s and T2
+    0.02-0.5 s, with a linear temperature dependence. Values and
+    temperature coefficients are invented (no real phantom is described);
+    they are plausible for doped water.
+``head``
+    An axial slab through a simplified head: cerebrospinal fluid (CSF)
+    around the brain and in two ventricles, a folded grey-matter (GM) ribbon
+    and a white-matter (WM) core. Relaxation times at 3 T from published
+    ranges (see :data:`TISSUES`).
+
+Geometry is defined in normalised in-plane coordinates ``u, v`` in [-1, 1]
+across the field of view, so any matrix size gives the same picture; labels
+are crisp (no partial volume).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import UsageError
+
+__all__ = ["Tissue", "Phantom", "VIALS", "FILL", "TISSUES", "PHANTOMS", "vial_phantom", "head_phantom",
+           "make_phantom", "b1_field", "vial_properties", "TEMP_COEFF", "REFERENCE_TEMPERATURE_C"]
+
+
+@dataclass(frozen=True)
+class Tissue:
+    """Relaxation properties of one compartment (seconds; PD relative to water = 1)."""
+
+    label: int
+    name: str
+    t1: float
+    t2: float
+    t2star: float
+    pd: float
+
+
+@dataclass
+class Phantom:
+    """A labelled volume and the properties of each label.
+
+    Attributes
+    ----------
+    name : str
+        ``"vials"`` or ``"head"``.
+    labels : (X, Y, Z) ndarray of int
+        Compartment per voxel; 0 = air (no signal).
+    tissues : dict of int -> Tissue
+        Properties per label (label 0 absent).
+    roi : (X, Y, Z) ndarray of int
+        Labels for region statistics (vials shrunk by one voxel so that edge
+        voxels stay out; head: the tissue labels).
+    temperature_c : float or None
+        Temperature the vial values were taken at.
+    """
+
+    name: str
+    labels: np.ndarray
+    tissues: dict
+    roi: np.ndarray
+    temperature_c: float | None = None
+
+    def property_map(self, attr: str) -> np.ndarray:
+        """(X, Y, Z) map of ``attr`` (``"t1"``, ``"t2"``, ``"t2star"``, ``"pd"``); air is 0 (pd) or NaN."""
+        fill = 0.0 if attr == "pd" else np.nan
+        out = np.full(self.labels.shape, fill)
+        for lab, t in self.tissues.items():
+            out[self.labels == lab] = getattr(t, attr)
+        return out
+
+
+# ----------------------------------------------------------------------------- vials
+#: Temperature at which :data:`VIALS` holds its values, degrees C.
+REFERENCE_TEMPERATURE_C = 20.0
+#: Invented linear temperature coefficients (relative change per degree C) of T1, T2 and T2*.
+TEMP_COEFF = {"t1": 0.016, "t2": 0.011, "t2star": 0.008}
+#: Extra dephasing rate R2' of the vials (1/s), invented: T2* = 1 / (1/T2 + R2').
+R2PRIME = 20.0
+
+# label, name, T1 (s), T2 (s), PD at 20 C -- invented values spanning T1 0.1-2 s, T2 0.02-0.5 s
+_VIAL_TABLE = [
+    (1, "vial-A", 0.100, 0.020, 0.95),
+    (2, "vial-B", 0.200, 0.045, 0.96),
+    (3, "vial-C", 0.350, 0.070, 0.97),
+    (4, "vial-D", 0.500, 0.100, 0.98),
+    (5, "vial-E", 0.700, 0.140, 0.99),
+    (6, "vial-F", 0.950, 0.200, 1.00),
+    (7, "vial-G", 1.250, 0.280, 1.00),
+    (8, "vial-H", 1.600, 0.380, 1.00),
+    (9, "vial-I", 2.000, 0.500, 1.00),
+]
+VIALS = [Tissue(lab, name, t1, t2, 1.0 / (1.0 / t2 + R2PRIME), pd) for lab, name, t1, t2, pd in _VIAL_TABLE]
+#: The fill liquid around the vials (invented; label 10, not part of the reference table).
+FILL = Tissue(10, "fill", 1.400, 0.300, 1.0 / (1.0 / 0.300 + R2PRIME), 1.00)
+
+
+def vial_properties(tissue: Tissue, temperature_c: float) -> Tissue:
+    """``tissue`` at ``temperature_c`` by the invented linear coefficients :data:`TEMP_COEFF`."""
+    d = temperature_c - REFERENCE_TEMPERATURE_C
+    return Tissue(tissue.label, tissue.name, tissue.t1 * (1 + TEMP_COEFF["t1"] * d),
+                  tissue.t2 * (1 + TEMP_COEFF["t2"] * d), tissue.t2star * (1 + TEMP_COEFF["t2star"] * d), tissue.pd)
+
+
+def _grid(shape):
+    X, Y, Z = shape
+    u = (np.arange(X) + 0.5) / X * 2 - 1
+    v = (np.arange(Y) + 0.5) / Y * 2 - 1
+    w = (np.arange(Z) + 0.5) / Z * 2 - 1 if Z > 1 else np.zeros(1)
+    return np.meshgrid(u, v, w, indexing="ij")
+
+
+def vial_phantom(shape=(48, 48, 4), *, temperature_c: float = REFERENCE_TEMPERATURE_C) -> Phantom:
+    """The invented nine-vial relaxation phantom (see the module docstring).
+
+    Parameters
+    ----------
+    shape : (3,) tuple of int
+        Matrix size; at least 24 x 24 in-plane so the vials hold voxels.
+    temperature_c : float
+        Phantom temperature, degrees C (sets the relaxation times).
+    """
+    u, v, _ = _grid(shape)
+    labels = np.zeros(shape, np.int16)
+    roi = np.zeros(shape, np.int16)
+    container = u**2 + v**2 <= 0.75**2
+    labels[container] = FILL.label
+    vial_r = 0.15
+    centres = [(0.0, 0.0)] + [(0.46 * np.cos(a), 0.46 * np.sin(a)) for a in np.pi / 2 - np.arange(8) * np.pi / 4]
+    # vial 1 (shortest T1) in the centre, the others clockwise from 12 o'clock
+    voxel = 2.0 / min(shape[0], shape[1])
+    for t, (cu, cv) in zip(VIALS, centres):
+        d2 = (u - cu) ** 2 + (v - cv) ** 2
+        labels[d2 <= vial_r**2] = t.label
+        roi[d2 <= (vial_r - voxel) ** 2] = t.label
+    tissues = {t.label: vial_properties(t, temperature_c) for t in VIALS + [FILL]}
+    return Phantom("vials", labels, tissues, roi, temperature_c)
+
+
+# ----------------------------------------------------------------------------- head
+#: Tissue properties at 3 T. T1 and T2 of WM and GM: Stanisz GJ et al., Magn Reson
+#: Med 2005;54:507 (3 T: WM T1 1084 ms, T2 69 ms; GM T1 1820 ms, T2 99 ms) (memory).
+#: T2* of WM and GM: Wansapura JP et al., J Magn Reson Imaging 1999;9:531 (3 T: WM
+#: 53.2 ms, GM 66.0 ms) (memory). CSF (close to pure water at body temperature) and
+#: the proton densities (WM 0.69, GM 0.80, CSF 1.0) are rounded textbook values
+#: (memory; common practice).
+TISSUES = [
+    Tissue(1, "CSF", 4.000, 1.500, 0.500, 1.00),
+    Tissue(2, "GM", 1.820, 0.099, 0.0660, 0.80),
+    Tissue(3, "WM", 1.084, 0.069, 0.0532, 0.69),
+]
+
+
+def head_phantom(shape=(64, 64, 4)) -> Phantom:
+    """A simplified axial head slab (CSF, GM ribbon with folds, WM, ventricles); see the module docstring."""
+    u, v, w = _grid(shape)
+    theta = np.arctan2(v, u)
+    # brain outline slightly smaller towards the slab edges
+    shrink = 1.0 - 0.04 * w**2
+    r = np.sqrt((u / 0.72) ** 2 + (v / 0.86) ** 2) / shrink
+    labels = np.zeros(shape, np.int16)
+    labels[r <= 1.0] = 1  # CSF around the brain
+    folds = 0.05 * np.cos(9 * theta) + 0.02 * np.cos(23 * theta + 0.7)
+    labels[r <= 0.93 + 0.02 * np.cos(9 * theta)] = 2  # GM ribbon
+    labels[r <= 0.76 + folds] = 3  # WM core
+    for cu in (-0.12, 0.12):
+        vent = ((u - cu) / 0.07) ** 2 + ((v - 0.05) / 0.22) ** 2 <= 1.0
+        labels[vent] = 1
+    tissues = {t.label: t for t in TISSUES}
+    return Phantom("head", labels, tissues, labels.copy(), None)
+
+
+PHANTOMS = ("vials", "head")
+
+
+def make_phantom(name: str, shape, *, temperature_c: float = REFERENCE_TEMPERATURE_C) -> Phantom:
+    """Build the built-in phantom ``name`` (``vials`` or ``head``) on a matrix of ``shape``."""
+    shape = tuple(int(s) for s in shape)
+    if len(shape) != 3 or min(shape[:2]) < 24 or shape[2] < 1:
+        raise UsageError(f"--shape {shape}: expected X,Y,Z with X and Y at least 24 (e.g. 48,48,4)")
+    if name == "vials":
+        return vial_phantom(shape, temperature_c=temperature_c)
+    if name == "head":
+        return head_phantom(shape)
+    raise UsageError(f"--phantom {name!r}: expected one of {', '.join(PHANTOMS)}")
+
+
+def b1_field(shape, voxel_size=(1.0, 1.0, 1.0), *, low: float = 0.85, high: float = 1.15) -> np.ndarray:
+    """A smooth relative transmit field (fraction; 1 = nominal) between ``low`` and ``high``.
+
+    Brightest slightly off the centre and falling towards the edges (a
+    broad Gaussian bump with a weak tilt), as is typical of a volume coil at
+    3 T. The bump is isotropic in millimetres (its width is set by the
+    in-plane field of view, so a thin slab sees little change through the
+    slices); the field is rescaled so its extremes over the grid are ``low``
+    and ``high``.
+    """
+    if not 0 < low <= high:
+        raise UsageError(f"--b1-range {low},{high}: expected 0 < MIN <= MAX (fractions, e.g. 0.85,1.15)")
+    shape = tuple(int(s) for s in shape)
+    vs = np.asarray(voxel_size, float)
+    half = shape[0] * vs[0] / 2.0  # mm: normalise every axis by the half field of view along x
+    axes = [((np.arange(n) + 0.5) - n / 2.0) * v / half for n, v in zip(shape, vs)]
+    u, v, w = np.meshgrid(*axes, indexing="ij")
+    g = np.exp(-((u - 0.12) ** 2 + (v + 0.08) ** 2 + w**2) / 0.9) + 0.05 * u
+    g = (g - g.min()) / (g.max() - g.min()) if g.max() > g.min() else np.zeros_like(g)
+    return low + (high - low) * g

@@ -1,0 +1,164 @@
+"""Acquisition protocols of the simulator and their synthesis on a phantom.
+
+Each protocol is a set of volumes (one per inversion time, flip angle or
+echo) plus the BIDS sidecar entries of each volume. :func:`synthesise`
+turns a phantom, a B1 field and a protocol into noise-free volumes.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import UsageError
+from . import signals
+from .phantoms import Phantom
+
+__all__ = ["Protocols", "PROTOCOLS", "Series", "synthesise"]
+
+#: protocol names accepted by ``--protocol``
+PROTOCOLS = ("ir", "vfa", "mese", "megre", "b1")
+
+
+@dataclass
+class Protocols:
+    """Settings of every protocol (seconds, degrees). Defaults suit the vial phantom at 3 T.
+
+    Attributes
+    ----------
+    ir_ti : tuple of float
+        Inversion times of the inversion-recovery series.
+    ir_tr, ir_te, ir_efficiency : float
+        Time between inversions, spin-echo readout echo time, inversion efficiency.
+    vfa_fa : tuple of float
+        Nominal flip angles of the variable-flip-angle series.
+    vfa_tr, vfa_te : float
+    mese_esp, mese_echoes, mese_refocus, mese_tr
+        Echo spacing, number of echoes, nominal refocusing angle, TR (full recovery assumed).
+    megre_te : tuple of float
+        Echo times of the multi-echo gradient echo; ``megre_tr``, ``megre_fa`` its TR and flip angle.
+    b1_method : {"dam", "afi"}
+        B1 mapping inputs written at low resolution: double-angle (``dam_fa``, 2 ``dam_fa``, TR
+        ``dam_tr``) or actual flip-angle imaging (``afi_fa``, ``afi_tr`` = (TR1, TR2)).
+    b1_factor : int
+        The B1 inputs' voxels are this many main voxels wide in-plane (and
+        through-plane when the slice count allows).
+    """
+
+    ir_ti: tuple = (0.05, 0.1, 0.2, 0.35, 0.6, 1.0, 1.6, 2.6, 4.0, 6.0)
+    ir_tr: float = 10.0
+    ir_te: float = 0.012
+    ir_efficiency: float = 0.97
+    vfa_fa: tuple = (3.0, 6.0, 10.0, 15.0, 20.0, 30.0)
+    vfa_tr: float = 0.015
+    vfa_te: float = 0.003
+    mese_esp: float = 0.010
+    mese_echoes: int = 32
+    mese_refocus: float = 180.0
+    mese_tr: float = 10.0
+    megre_te: tuple = tuple(round(0.0025 + 0.004 * k, 6) for k in range(12))
+    megre_tr: float = 0.05
+    megre_fa: float = 20.0
+    b1_method: str = "dam"
+    dam_fa: float = 60.0
+    dam_tr: float = 12.0
+    afi_fa: float = 60.0
+    afi_tr: tuple = (0.020, 0.100)
+    b1_factor: int = 2
+
+    def __post_init__(self):
+        if self.b1_method not in ("dam", "afi"):
+            raise UsageError(f"--b1-method {self.b1_method!r}: expected dam or afi")
+        if self.ir_tr <= max(self.ir_ti):
+            raise UsageError(f"--ir-tr {self.ir_tr:g} s must exceed the longest inversion time {max(self.ir_ti):g} s")
+        if int(self.mese_echoes) < 2:
+            raise UsageError("--echoes: a spin-echo train needs at least 2 echoes")
+
+
+@dataclass
+class Series:
+    """Noise-free volumes of one protocol and what to write with them.
+
+    Attributes
+    ----------
+    name : str
+        Protocol (``ir``, ``vfa``, ``mese``, ``megre``, ``b1``).
+    suffix, entity : str
+        BIDS suffix (``IRT1``) and the entity that numbers the volumes (``inv``).
+    data : (X, Y, Z, n) ndarray
+        Signed noise-free signal (PD units).
+    key : str
+        BIDS key varied over the volumes.
+    values : (n,) ndarray
+    sidecar : dict
+        Entries shared by every volume.
+    lowres : bool
+        On the low-resolution B1 grid.
+    labels : list of str, optional
+        Entity values (default 1..n).
+    per_volume : dict
+        Further per-volume sidecar keys -> (n,) values.
+    """
+
+    name: str
+    suffix: str
+    entity: str
+    data: np.ndarray
+    key: str
+    values: np.ndarray
+    sidecar: dict
+    lowres: bool = False
+    labels: list | None = None
+    per_volume: dict = field(default_factory=dict)
+
+
+def _voxels(ph: Phantom, b1: np.ndarray):
+    """Signal-bearing voxels and their properties as (n,) arrays."""
+    sel = ph.labels > 0
+    return sel, {a: ph.property_map(a)[sel] for a in ("t1", "t2", "t2star", "pd")}, b1[sel]
+
+
+def _volume(sel: np.ndarray, values: np.ndarray) -> np.ndarray:
+    out = np.zeros(sel.shape + (values.shape[1],))
+    out[sel] = values
+    return out
+
+
+def synthesise(name: str, ph: Phantom, b1: np.ndarray, p: Protocols) -> Series:
+    """Noise-free series of protocol ``name`` for phantom ``ph`` in the transmit field ``b1`` (X, Y, Z)."""
+    sel, t, b = _voxels(ph, b1)
+    if name == "ir":
+        ti = np.asarray(p.ir_ti, float)
+        s = signals.ir(ti, tr=p.ir_tr, te=p.ir_te, t1=t["t1"], t2=t["t2"], pd=t["pd"], efficiency=p.ir_efficiency)
+        return Series("ir", "IRT1", "inv", _volume(sel, s), "InversionTime", ti,
+                      {"RepetitionTime": p.ir_tr, "EchoTime": p.ir_te, "FlipAngle": 90.0,
+                       "PulseSequenceType": "inversion recovery spin echo (simulated)"})
+    if name == "vfa":
+        fa = np.asarray(p.vfa_fa, float)
+        s = signals.spgr(fa, tr=p.vfa_tr, te=p.vfa_te, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
+        return Series("vfa", "VFA", "flip", _volume(sel, s), "FlipAngle", fa,
+                      {"RepetitionTime": p.vfa_tr, "EchoTime": p.vfa_te,
+                       "PulseSequenceType": "spoiled gradient echo (simulated)"})
+    if name == "mese":
+        te = p.mese_esp * np.arange(1, int(p.mese_echoes) + 1)
+        s = signals.mese(esp=p.mese_esp, n_echoes=int(p.mese_echoes), refocus_deg=p.mese_refocus, t1=t["t1"],
+                         t2=t["t2"], pd=t["pd"], b1=b)
+        return Series("mese", "MESE", "echo", _volume(sel, s), "EchoTime", te,
+                      {"RepetitionTime": p.mese_tr, "FlipAngle": 90.0, "RefocusingFlipAngle": p.mese_refocus,
+                       "PulseSequenceType": "CPMG multi-echo spin echo (simulated by extended phase graphs)"})
+    if name == "megre":
+        te = np.asarray(p.megre_te, float)
+        s = signals.megre(te, tr=p.megre_tr, fa_deg=p.megre_fa, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
+        return Series("megre", "MEGRE", "echo", _volume(sel, s), "EchoTime", te,
+                      {"RepetitionTime": p.megre_tr, "FlipAngle": p.megre_fa,
+                       "PulseSequenceType": "multi-echo spoiled gradient echo (simulated)"})
+    if name == "b1":
+        if p.b1_method == "dam":
+            s = signals.dam(p.dam_fa, tr=p.dam_tr, t1=t["t1"], pd=t["pd"], b1=b)
+            return Series("b1", "TB1DAM", "flip", _volume(sel, s), "FlipAngle",
+                          np.array([p.dam_fa, 2 * p.dam_fa]), {"RepetitionTime": p.dam_tr}, lowres=True)
+        s = signals.afi(p.afi_fa, tr1=p.afi_tr[0], tr2=p.afi_tr[1], t1=t["t1"], pd=t["pd"], b1=b)
+        return Series("b1", "TB1AFI", "acq", _volume(sel, s), "RepetitionTime", np.asarray(p.afi_tr, float),
+                      {"FlipAngle": p.afi_fa}, lowres=True, labels=["tr1", "tr2"])
+    raise UsageError(f"--protocol {name!r}: expected some of {', '.join(PROTOCOLS)}")
