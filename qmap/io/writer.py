@@ -198,17 +198,24 @@ class AtomicWriter:
 
     # -- commit / abort -------------------------------------------------------
     def commit(self) -> list[Path]:
+        """Rename every staged file to its final name; on any failure restore the folder as it was.
+
+        Each rename is recorded *before* it is made, so an interruption at any
+        point between two renames is rolled back completely (a rollback step
+        for a rename that did not happen fails harmlessly). An ``OSError``
+        (disk full, I/O error, folder removed) becomes an :class:`OutputError`.
+        """
         backups: list[tuple[Path, Path]] = []
         done: list[Path] = []
         try:
             for tmp, final in self._pending:
                 if final.exists():
                     bak = final.with_name(f".{final.name}.qmap-bak-{os.getpid()}")
-                    os.replace(final, bak)
                     backups.append((bak, final))
-                os.replace(tmp, final)
+                    os.replace(final, bak)
                 done.append(final)
-        except BaseException:
+                os.replace(tmp, final)
+        except BaseException as exc:
             for f in done:
                 try:
                     f.unlink()
@@ -219,6 +226,11 @@ class AtomicWriter:
                     os.replace(bak, final)
                 except OSError:
                     pass
+            if isinstance(exc, OSError):
+                raise OutputError(
+                    f"cannot move the outputs into place in {self.out_dir} ({exc.strerror or exc}); nothing was "
+                    f"changed -- check free space and permissions, then run again"
+                ) from None
             raise
         for bak, _ in backups:
             try:
