@@ -327,6 +327,23 @@ def run_fit(
                      extra_inputs=file_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
 
 
+def _stage_all(w: AtomicWriter, outs: list, series: Series, status, n_jobs) -> None:
+    """Compress and stage the NIfTI outputs, several at a time (zlib releases the GIL)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from .engine import resolve_jobs
+
+    workers = min(len(outs), resolve_jobs(n_jobs), 4)
+    if workers <= 1:
+        for o in outs:
+            w.stage_nifti(o, series.affine, series.header, status=status)
+        return
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        futures = [pool.submit(w.stage_nifti, o, series.affine, series.header, status=status) for o in outs]
+        for f in futures:
+            f.result()  # re-raises the first failure (the writer then rolls everything back)
+
+
 def write_run(
     series: Series,
     maps: MapSet,
@@ -363,8 +380,7 @@ def write_run(
         "outputs": {o.name: {"parameter": o.parameter, "kind": o.kind, "units": o.units} for o in outs},
     }
     with AtomicWriter(common.out_dir, overwrite=common.overwrite) as w:
-        for o in outs:
-            w.stage_nifti(o, series.affine, series.header, status=maps.status)
+        _stage_all(w, outs, series, maps.status, common.n_jobs)
         if common.preview:
             from .plots import stage_previews
 
