@@ -1,0 +1,351 @@
+"""``qmap batch``: fit every relaxometry series of a BIDS dataset into a derivatives folder.
+
+The plan (:mod:`qmap.batch_plan`) lists the series; each is one unit of work
+(:func:`qmap.batch_series.run_series`), run in this process (``n_jobs=1``), in
+local worker processes (joblib's loky backend, one single-threaded fit per
+process), or on a Dask distributed cluster (``scheduler=``; workers may be on
+other machines: they get absolute paths and need nothing from this process's
+working directory, but must see the dataset and the derivatives folder at the
+same paths).
+
+Semantics: a failing series never stops the others (the report lists each
+failure with its reason); a rerun skips every series whose outputs are up to
+date (same fit command, same input SHA-256, all outputs present), refits the
+ones whose inputs or fit options changed, and retries the failed ones;
+``overwrite`` refits everything; ``dry_run`` only plans and touches nothing.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from . import __version__
+from .batch_plan import BatchPlan, SeriesPlan, discover
+from .batch_series import SeriesResult, run_series, series_state
+from .errors import OutputError, UsageError
+
+__all__ = ["BIDS_VERSION", "BatchReport", "dataset_description", "run_batch"]
+
+#: BIDS version the derivative layout follows (qMRI suffixes and derivative
+#: dataset_description fields exist since 1.5 / 1.4; memory)
+BIDS_VERSION = "1.9.0"
+
+
+def dataset_description() -> dict:
+    """Content of ``DERIV_DIR/dataset_description.json`` (deterministic: no dates, no paths)."""
+    return {
+        "Name": "qmap relaxometry maps",
+        "BIDSVersion": BIDS_VERSION,
+        "DatasetType": "derivative",
+        "GeneratedBy": [{
+            "Name": "qmap",
+            "Version": __version__,
+            "Description": "T1, T2 and T2* maps with standard errors, fit quality and per-voxel status",
+        }],
+    }
+
+
+@dataclass
+class BatchReport:
+    """What a batch did (or, with ``dry_run``, would do).
+
+    Attributes
+    ----------
+    plan : BatchPlan
+    results : list of SeriesResult
+        One per planned series, same order (empty for a dry run).
+    actions : list of str
+        Dry run: what would happen to each series.
+    dry_run : bool
+    wall_time_s : float
+    notes : list of str
+    """
+
+    plan: BatchPlan
+    results: list = field(default_factory=list)
+    actions: list = field(default_factory=list)
+    dry_run: bool = False
+    wall_time_s: float = 0.0
+    notes: list = field(default_factory=list)
+
+    def _with(self, status: str) -> list[tuple[SeriesPlan, SeriesResult]]:
+        return [(p, r) for p, r in zip(self.plan.series, self.results) if r.status == status]
+
+    @property
+    def fitted(self):
+        return self._with("fitted")
+
+    @property
+    def skipped(self):
+        return self._with("skipped")
+
+    @property
+    def failed(self):
+        return self._with("failed")
+
+    @property
+    def exit_code(self) -> int:
+        """0, or 4 when any series failed."""
+        return 4 if self.failed else 0
+
+    def plan_table(self) -> str:
+        """The plan: one line per series with its subject/session labels, the fit chosen and the action."""
+        rows = [("sub", "ses", "series", "files", "fit", "action", "output prefix")]
+        for p, action in zip(self.plan.series, self.actions or [""] * len(self.plan.series)):
+            rows.append((p.subject, p.session or "-", p.label, str(len(p.inputs)), p.fit_description(), action,
+                         p.prefix))
+        widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+        lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
+        lines.insert(1, "  ".join("-" * w for w in widths))
+        n = len(self.plan.series)
+        lines.append(f"{n} series in {self.plan.n_sessions} subject/session folders of {self.plan.bids_dir}; "
+                     f"outputs to {self.plan.deriv_dir}")
+        for p in self.plan.series:
+            if p.error:
+                lines.append(f"  cannot fit {_who(p)}: {p.error}")
+            lines.extend(f"  note {_who(p)}: {n}" for n in p.notes)
+        lines.extend(f"  ignored {path}: {why}" for path, why in self.plan.ignored)
+        return "\n".join(lines)
+
+    def summary(self) -> str:
+        """Counts, then each failure with its reason, replaced outputs and warnings."""
+        n = len(self.plan.series)
+        head = (f"qmap batch: {n} series in {self.plan.n_sessions} subject/session folders: "
+                f"{len(self.fitted)} fitted, {len(self.skipped)} skipped (up to date), {len(self.failed)} failed "
+                f"({self.wall_time_s:.1f} s)")
+        lines = [head]
+        for p, r in self.failed:
+            lines.append(f"  FAILED {_who(p)}: {r.reason}")
+        for p, r in self.fitted:
+            if r.replaced:
+                lines.append(f"  refitted {_who(p)}: {r.replaced}")
+        for p, r in zip(self.plan.series, self.results):
+            lines.extend(f"  warning {_who(p)}: {w}" for w in r.warnings)
+        if self.plan.ignored:
+            lines.append(f"  {len(self.plan.ignored)} files not fitted (see --dry-run)")
+        lines.extend(f"  note: {x}" for x in self.notes)
+        lines.append(f"derivatives in {self.plan.deriv_dir}")
+        return "\n".join(lines)
+
+
+def _who(p: SeriesPlan) -> str:
+    ses = f" ses-{p.session}" if p.session else ""
+    return f"sub-{p.subject}{ses} {p.suffix} ({p.label})"
+
+
+class BatchProgress:
+    """Series done / failed on stderr: one updating line on a terminal, one line per series otherwise."""
+
+    def __init__(self, total: int, *, quiet: bool = True, stream=None):
+        self.total = total
+        self.quiet = quiet
+        self.stream = stream or sys.stderr
+        self.counts = {"fitted": 0, "skipped": 0, "failed": 0}
+        self.t0 = time.perf_counter()
+        try:
+            self.tty = self.stream.isatty()
+        except (AttributeError, ValueError):
+            self.tty = False
+
+    def update(self, plan: SeriesPlan, res: SeriesResult) -> None:
+        self.counts[res.status] += 1
+        if self.quiet:
+            return
+        done = sum(self.counts.values())
+        c = self.counts
+        if self.tty:
+            self.stream.write(f"\rqmap batch: {done}/{self.total} series done ({c['fitted']} fitted, "
+                              f"{c['skipped']} skipped, {c['failed']} failed)  {time.perf_counter() - self.t0:6.1f} s")
+            if done == self.total:
+                self.stream.write("\n")
+        else:
+            what = res.status if res.status != "failed" else f"FAILED: {res.reason}"
+            self.stream.write(f"qmap batch: [{done}/{self.total}] {_who(plan)}: {what} ({res.seconds:.1f} s)\n")
+        self.stream.flush()
+
+
+def _write_description(deriv: Path, overwrite: bool) -> str | None:
+    """Create ``dataset_description.json`` if missing (or, with overwrite, if it differs); a note or None."""
+    path = deriv / "dataset_description.json"
+    want = dataset_description()
+    if path.exists():
+        try:
+            have = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            have = None
+        if have == want or not overwrite:
+            if have != want and (not isinstance(have, dict) or have.get("DatasetType") != "derivative"):
+                return f"{path} was kept as found although it does not describe a derivative dataset"
+            return None
+    tmp = deriv / f".qmap-tmp-{os.getpid()}-dataset_description.json"
+    try:
+        deriv.mkdir(parents=True, exist_ok=True)
+        tmp.write_text(json.dumps(want, indent=2) + "\n", encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise OutputError(f"cannot write {path} ({exc.strerror}); choose another -o or fix permissions") from None
+    return None
+
+
+def _make_dirs(dirs: list[Path]) -> list[Path]:
+    """Create the output folders up front (no races between workers); returns those created, deepest first."""
+    created: list[Path] = []
+    for d in dirs:
+        missing = []
+        p = d
+        while not p.exists():
+            missing.append(p)
+            p = p.parent
+        try:
+            d.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise OutputError(f"cannot create {d} ({exc.strerror}); choose another -o or fix permissions") from None
+        created.extend(missing)
+    return sorted(set(created), key=lambda q: len(q.parts), reverse=True)
+
+
+def _remove_empty(created: list[Path]) -> None:
+    for d in created:
+        try:
+            d.rmdir()  # only when empty
+        except OSError:
+            pass
+
+
+def _run_local(todo, *, n_jobs, overwrite, progress):
+    from .engine import resolve_jobs
+
+    jobs = min(resolve_jobs(n_jobs), len(todo))
+    if jobs <= 1:
+        for p in todo:
+            res = run_series(p, overwrite=overwrite)
+            progress.update(p, res)
+            yield res
+        return
+    from joblib import Parallel, delayed
+
+    by_key = {p.key: p for p in todo}
+    par = Parallel(n_jobs=jobs, backend="loky", return_as="generator_unordered")
+    for res in par(delayed(run_series)(p, overwrite=overwrite) for p in todo):
+        progress.update(by_key[res.key], res)
+        yield res
+
+
+def _run_dask(todo, *, scheduler, overwrite, progress):
+    try:
+        from dask.distributed import Client, as_completed
+    except ImportError:
+        raise UsageError("--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])") from None
+    try:
+        client = Client(scheduler, timeout=20, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
+    futures = {}
+    try:
+        with client.as_current():
+            for p in todo:
+                fut = client.submit(run_series, p, overwrite=overwrite, exclusive_logs=False, pure=False)
+                futures[fut] = p
+            for fut in as_completed(list(futures)):
+                p = futures[fut]
+                try:
+                    res = fut.result()
+                except Exception as exc:  # noqa: BLE001 -- the worker died or could not run qmap: this series failed
+                    res = SeriesResult(key=p.key, status="failed",
+                                       reason=f"the Dask cluster could not run it ({type(exc).__name__}: {exc})")
+                progress.update(p, res)
+                yield res
+    finally:
+        pending = [f for f in futures if not f.done()]
+        if pending:
+            client.cancel(pending)
+        client.close()
+
+
+def run_batch(
+    bids_dir,
+    deriv_dir,
+    *,
+    dry_run: bool = False,
+    scheduler: str | None = None,
+    n_jobs: int | None = None,
+    overwrite: bool = False,
+    quiet: bool = True,
+    stream=None,
+) -> BatchReport:
+    """Fit every relaxometry series of a BIDS dataset; see the module docstring.
+
+    Parameters
+    ----------
+    bids_dir : path-like
+        Root of the raw BIDS dataset.
+    deriv_dir : path-like
+        Derivatives folder (created when something is fitted).
+    dry_run : bool
+        Only plan: report what would be done, create and write nothing.
+    scheduler : str, optional
+        Address of a Dask distributed scheduler; the series run on its workers.
+    n_jobs : int, optional
+        Local worker processes (default: all cores; 1 = in this process). Ignored with ``scheduler``.
+    overwrite : bool
+        Refit series whose outputs are up to date.
+    quiet : bool
+        No progress display.
+    stream : file-like, optional
+        Where the progress goes (default stderr).
+
+    Returns
+    -------
+    BatchReport
+        ``report.exit_code`` is 4 when a series failed.
+    """
+    t0 = time.perf_counter()
+    if n_jobs is not None and n_jobs == 0:
+        raise UsageError("-j 0: give a positive number of worker processes (or leave -j out for all cores)")
+    plan = discover(bids_dir, deriv_dir)
+    report = BatchReport(plan=plan, dry_run=dry_run)
+    if dry_run:
+        report.actions = [_planned_action(p, overwrite) for p in plan.series]
+        report.wall_time_s = round(time.perf_counter() - t0, 3)
+        return report
+    deriv = Path(plan.deriv_dir)
+    note = _write_description(deriv, overwrite)
+    if note:
+        report.notes.append(note)
+    todo = [p for p in plan.series if not p.error]
+    results: dict[str, SeriesResult] = {}
+    progress = BatchProgress(len(plan.series), quiet=quiet, stream=stream)
+    for p in plan.series:
+        if p.error:
+            results[p.key + "\0" + p.label] = res = SeriesResult(key=p.key, status="failed", reason=p.error)
+            progress.update(p, res)
+    created = _make_dirs(sorted({Path(p.out_dir) for p in todo}))
+    try:
+        if todo:
+            runner = (_run_dask(todo, scheduler=scheduler, overwrite=overwrite, progress=progress) if scheduler
+                      else _run_local(todo, n_jobs=n_jobs, overwrite=overwrite, progress=progress))
+            for res in runner:
+                results[res.key] = res
+    finally:
+        _remove_empty(created)
+    report.results = [results.get(p.key + "\0" + p.label) if p.error else results[p.key] for p in plan.series]
+    report.wall_time_s = round(time.perf_counter() - t0, 3)
+    return report
+
+
+def _planned_action(p: SeriesPlan, overwrite: bool) -> str:
+    if p.error:
+        return "cannot fit (see below)"
+    if overwrite:
+        return "fit (overwrite)"
+    try:
+        state, why = series_state(p)
+    except OSError as exc:
+        return f"fit ({exc.strerror})"
+    return {"missing": "fit", "current": "skip (up to date)"}.get(state, f"refit: {why}")

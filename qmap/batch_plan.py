@@ -1,0 +1,374 @@
+"""Planning a cohort batch: which relaxometry series a BIDS dataset holds, and which fit each gets.
+
+Discovery follows the BIDS quantitative-MRI file naming. In ``anat/`` of
+every subject (and session):
+
+========  ================  ===========  =================================
+suffix    volume entity     fit          acquisition keys (sidecars)
+========  ================  ===========  =================================
+IRT1      ``inv-<i>``       ``t1-ir``    InversionTime (RepetitionTime)
+VFA       ``flip-<i>``      ``t1-vfa``   FlipAngle, RepetitionTime
+MESE      ``echo-<i>``      ``t2``       EchoTime (EPG model)
+MEGRE     ``echo-<i>``      ``t2star``   EchoTime
+========  ================  ===========  =================================
+
+Files of one suffix are grouped into a series by all their other entities
+(``acq-``, ``run-``, ...). Non-magnitude parts (``part-phase|real|imag``) are
+not fitted. A VFA series uses the ``fmap/*_TB1map`` of its subject/session
+when there is one (the one its sidecar ``IntendedFor`` names, or with the
+same ``acq`` label, when there are several).
+
+Outputs of a series go to ``DERIV/sub-<s>[/ses-<t>]/anat/`` with the prefix
+``sub-<s>[_ses-<t>]_acq-<acq><method>[_<other entities>]``: ``method`` is the
+lowercase suffix and ``acq`` the raw series' own acquisition label, if any.
+
+Everything here is plain data (picklable), so a plan can be shipped to local
+worker processes or Dask workers on other machines; every path is absolute.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .errors import InputError, UsageError
+from .io.nifti import read_sidecar
+
+__all__ = ["FIT_KINDS", "BatchPlan", "FitKind", "SeriesPlan", "discover", "parse_bids_name"]
+
+_NII = (".nii.gz", ".nii")
+_LABEL = re.compile(r"^[0-9a-zA-Z]+$")
+
+
+@dataclass(frozen=True)
+class FitKind:
+    """How one BIDS suffix is fitted."""
+
+    suffix: str  #: BIDS suffix of the raw files, e.g. ``"VFA"``
+    index: str  #: entity numbering the volumes of a series, e.g. ``"flip"``
+    method: str  #: lowercase method label used in the output prefix
+    command: str  #: the equivalent qmap command
+    module: str  #: workflow module
+    function: str  #: workflow function in ``module``
+
+
+FIT_KINDS = {
+    k.suffix: k
+    for k in (
+        FitKind("IRT1", "inv", "irt1", "t1-ir", "qmap.workflows.ir", "run_t1_ir"),
+        FitKind("VFA", "flip", "vfa", "t1-vfa", "qmap.workflows.vfa", "run_t1_vfa"),
+        FitKind("MESE", "echo", "mese", "t2", "qmap.workflows.t2", "run_t2"),
+        FitKind("MEGRE", "echo", "megre", "t2star", "qmap.workflows.decay", "run_t2star"),
+    )
+}
+
+#: ``part-`` labels that are magnitude images (absent = magnitude)
+_MAGNITUDE_PARTS = (None, "mag")
+
+#: sidecar ``Units`` of a TB1map -> scale name
+_B1_UNITS = {"fraction": "fraction", "ratio": "fraction", "1": "fraction", "percent": "percent", "%": "percent",
+             "pct": "percent"}
+
+
+def parse_bids_name(path: str | Path) -> tuple[list[tuple[str, str]], str] | None:
+    """Entities (in file order) and suffix of a BIDS NIfTI name; None when it is not one.
+
+    ``sub-01_ses-1_echo-2_MEGRE.nii.gz`` -> ``([("sub", "01"), ("ses", "1"), ("echo", "2")], "MEGRE")``.
+    """
+    name = Path(path).name
+    for ext in _NII:
+        if name.endswith(ext):
+            stem = name[: -len(ext)]
+            break
+    else:
+        return None
+    parts = stem.split("_")
+    if len(parts) < 2:
+        return None
+    entities = []
+    for part in parts[:-1]:
+        key, sep, value = part.partition("-")
+        if not sep or not key.isalnum() or not _LABEL.match(value):
+            return None
+        entities.append((key, value))
+    keys = [k for k, _ in entities]
+    if len(set(keys)) != len(keys):
+        return None
+    return entities, parts[-1]
+
+
+@dataclass
+class SeriesPlan:
+    """One series of one subject/session and the fit planned for it (plain data, absolute paths).
+
+    Attributes
+    ----------
+    subject, session : str, str or None
+        BIDS labels (without ``sub-`` / ``ses-``).
+    suffix : str
+        ``IRT1``, ``VFA``, ``MESE`` or ``MEGRE``.
+    label : str
+        Human-readable name of the raw series (``sub-01_echo-*_MEGRE``).
+    inputs : list of str
+        The NIfTI files of the series, ordered by their volume index.
+    prefix, out_dir : str
+        Output name stem and the (absolute) folder of the outputs.
+    b1, b1_scale : str or None
+        The TB1map used by a VFA fit and its scale (``fraction``/``percent``).
+    error : str or None
+        Why the series cannot be fitted as found (reported as a failure).
+    notes : list of str
+        Remarks on choices made while planning.
+    """
+
+    subject: str
+    session: str | None
+    suffix: str
+    label: str
+    inputs: list
+    prefix: str
+    out_dir: str
+    b1: str | None = None
+    b1_scale: str | None = None
+    error: str | None = None
+    notes: list = field(default_factory=list)
+
+    @property
+    def kind(self) -> FitKind:
+        return FIT_KINDS[self.suffix]
+
+    @property
+    def key(self) -> str:
+        """Unique name of the series in the batch: its output path stem."""
+        return str(Path(self.out_dir) / self.prefix)
+
+    @property
+    def all_inputs(self) -> list[str]:
+        """Every file the fit reads (series + B1 map), absolute."""
+        return list(self.inputs) + ([self.b1] if self.b1 else [])
+
+    def fit_description(self) -> str:
+        """Short text of the fit chosen, for the plan table."""
+        k = self.kind
+        if k.suffix == "IRT1":
+            return "t1-ir (magnitude)"
+        if k.suffix == "VFA":
+            if self.b1:
+                return f"t1-vfa (nonlinear, B1 {Path(self.b1).name} [{self.b1_scale or 'scale from its data'}])"
+            return "t1-vfa (nonlinear, no B1 map)"
+        if k.suffix == "MESE":
+            return "t2 (EPG)"
+        return "t2star (default noise floor)"
+
+
+@dataclass
+class BatchPlan:
+    """Every series found in a dataset, plus the files that were passed over and why."""
+
+    bids_dir: str
+    deriv_dir: str
+    series: list
+    ignored: list = field(default_factory=list)  #: (path, reason)
+    n_sessions: int = 0
+
+
+def _sessions(bids: Path) -> list[tuple[str, str | None, Path]]:
+    out = []
+    for sub in sorted(p for p in bids.glob("sub-*") if p.is_dir()):
+        s = sub.name[4:]
+        sessions = sorted(p for p in sub.glob("ses-*") if p.is_dir())
+        if sessions:
+            out.extend((s, ses.name[4:], ses) for ses in sessions)
+        else:
+            out.append((s, None, sub))
+    return out
+
+
+def _niftis(folder: Path) -> list[Path]:
+    if not folder.is_dir():
+        return []
+    return sorted(p for p in folder.iterdir() if p.is_file() and p.name.endswith(_NII) and not p.name.startswith("."))
+
+
+def _index_sort_key(value: str):
+    return (0, int(value), value) if value.isdigit() else (1, 0, value)
+
+
+def _matches_session(ents: dict, subject: str, session: str | None) -> bool:
+    return ents.get("sub") == subject and ents.get("ses") == session
+
+
+def _prefix(subject: str, session: str | None, acq: str | None, method: str, others: list[tuple[str, str]]) -> str:
+    head = f"sub-{subject}" + (f"_ses-{session}" if session else "")
+    tail = "".join(f"_{k}-{v}" for k, v in others)
+    return f"{head}_acq-{acq or ''}{method}{tail}"
+
+
+def _intended_for(meta: dict) -> list[str]:
+    v = meta.get("IntendedFor")
+    if isinstance(v, str):
+        v = [v]
+    if not isinstance(v, list):
+        return []
+    out = []
+    for item in v:
+        if isinstance(item, str):
+            out.append(item.removeprefix("bids::").replace("\\", "/"))
+    return out
+
+
+def _choose_b1(candidates: list[Path], series_files: list[Path], acq: str | None, bids: Path) -> tuple[Path | None, str | None]:
+    """The TB1map for a VFA series: (path, None) or (None, reason) when the choice is ambiguous."""
+    if not candidates:
+        return None, None
+    if len(candidates) == 1:
+        return candidates[0], None
+    wanted = {str(f.relative_to(bids)).replace("\\", "/") for f in series_files}
+    named = []
+    for c in candidates:
+        targets = _intended_for(read_sidecar(c))
+        # IntendedFor is relative to the subject folder (or, as a bids:: URI, to the dataset)
+        subj = c.relative_to(bids).parts[0]
+        full = {t if t.startswith("sub-") else f"{subj}/{t}" for t in targets}
+        if full & wanted:
+            named.append(c)
+    if len(named) == 1:
+        return named[0], None
+    pool = named or candidates
+    same_acq = [c for c in pool if dict(parse_bids_name(c)[0]).get("acq") == acq]
+    if len(same_acq) == 1:
+        return same_acq[0], None
+    names = ", ".join(c.name for c in pool)
+    return None, (f"several TB1 maps fit this VFA series ({names}); name the right one in its sidecar "
+                  f"IntendedFor, or keep one TB1map per session")
+
+
+def _b1_scale(path: Path) -> tuple[str | None, str | None]:
+    """Scale of a TB1map from its sidecar ``Units``: (scale, None) or (None, reason)."""
+    try:
+        meta = read_sidecar(path)
+    except InputError as exc:
+        return None, str(exc)
+    units = meta.get("Units")
+    if units is None or (isinstance(units, str) and not units.strip()):
+        return None, None  # the fit then takes fraction, and rejects a map whose values look like percent
+    scale = _B1_UNITS.get(str(units).strip().lower())
+    if scale is None:
+        return None, (f"{path}: sidecar Units {units!r}; a TB1map is expected in fraction (1 = nominal) or "
+                      f"percent (100 = nominal); fix the sidecar")
+    return scale, None
+
+
+def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
+    """Find every relaxometry series of a BIDS dataset and plan its fit.
+
+    Parameters
+    ----------
+    bids_dir : path-like
+        Root of the raw BIDS dataset (holds ``sub-*`` folders).
+    deriv_dir : path-like
+        Root of the derivatives the batch writes.
+
+    Returns
+    -------
+    BatchPlan
+        Series sorted by subject, session and output prefix.
+
+    Raises
+    ------
+    UsageError
+        When ``bids_dir`` is not a folder or the derivatives would go inside a subject folder.
+    InputError
+        When the dataset holds no ``sub-*`` folder or no relaxometry series at all.
+    """
+    bids = Path(bids_dir).expanduser().absolute()
+    deriv = Path(deriv_dir).expanduser().absolute()
+    if not bids.is_dir():
+        raise UsageError(f"{bids}: no such folder; give the root of a BIDS dataset (the folder holding sub-*)")
+    if deriv == bids:
+        raise UsageError(f"-o {deriv} is the raw dataset itself; write derivatives elsewhere "
+                         f"(e.g. {bids / 'derivatives' / 'qmap'})")
+    if deriv.is_relative_to(bids) and any(part.startswith("sub-") for part in deriv.relative_to(bids).parts):
+        raise UsageError(f"-o {deriv} lies inside a subject folder of {bids}; use e.g. {bids / 'derivatives' / 'qmap'}")
+    sessions = _sessions(bids)
+    if not sessions:
+        raise InputError(f"{bids}: holds no sub-* folders; is this the root of a BIDS dataset?")
+    plans: list[SeriesPlan] = []
+    ignored: list[tuple[str, str]] = []
+    for subject, session, folder in sessions:
+        groups: dict[tuple, list[tuple[str | None, Path]]] = {}
+        for f in _niftis(folder / "anat"):
+            parsed = parse_bids_name(f)
+            if parsed is None:
+                continue
+            ents_list, suffix = parsed
+            kind = FIT_KINDS.get(suffix)
+            if kind is None:
+                continue
+            ents = dict(ents_list)
+            if not _matches_session(ents, subject, session):
+                ignored.append((str(f), "its sub-/ses- entities do not match its folder"))
+                continue
+            if ents.get("part") not in _MAGNITUDE_PARTS:
+                ignored.append((str(f), f"part-{ents['part']}: only magnitude images are fitted"))
+                continue
+            key = (suffix,) + tuple((k, v) for k, v in ents_list if k not in (kind.index, "part"))
+            groups.setdefault(key, []).append((ents.get(kind.index), f))
+        fmap = [f for f in _niftis(folder / "fmap")
+                if (p := parse_bids_name(f)) and p[1] == "TB1map" and _matches_session(dict(p[0]), subject, session)]
+        for key, members in groups.items():
+            plans.append(_plan_series(bids, deriv, subject, session, key, members, fmap))
+    if not plans:
+        raise InputError(
+            f"{bids}: no relaxometry series in {len(sessions)} subject/session folders; expected anat/ files named "
+            f"*_inv-<i>_IRT1, *_flip-<i>_VFA, *_echo-<i>_MESE or *_echo-<i>_MEGRE (.nii/.nii.gz)"
+        )
+    plans.sort(key=lambda p: (p.subject, p.session or "", p.prefix, p.label))
+    _check_unique(plans)
+    return BatchPlan(bids_dir=str(bids), deriv_dir=str(deriv), series=plans, ignored=ignored,
+                     n_sessions=len({(p.subject, p.session) for p in plans}))
+
+
+def _plan_series(bids, deriv, subject, session, key, members, fmap) -> SeriesPlan:
+    suffix, others = key[0], list(key[1:])
+    kind = FIT_KINDS[suffix]
+    acq = dict(others).get("acq")
+    rest = [(k, v) for k, v in others if k not in ("sub", "ses", "acq")]
+    out_dir = deriv / f"sub-{subject}" / (f"ses-{session}" if session else "") / "anat"
+    prefix = _prefix(subject, session, acq, kind.method, rest)
+    numbered = sorted((m for m in members if m[0] is not None), key=lambda m: _index_sort_key(m[0]))
+    plain = [m for m in members if m[0] is None]
+    files = [f for _, f in numbered] + [f for _, f in plain]
+    stem = "_".join(f"{k}-{v}" for k, v in others)
+    label = f"{stem}_{kind.index}-*_{suffix}" if numbered else files[0].name
+    plan = SeriesPlan(subject=subject, session=session, suffix=suffix, label=label,
+                      inputs=[str(f) for f in files], prefix=prefix, out_dir=str(out_dir.absolute()))
+    if plain and numbered:
+        plan.error = (f"{plain[0]}: has no {kind.index}- entity while {len(numbered)} files of the same series have "
+                      f"one; name every volume file with {kind.index}-<index> (or keep one 4D file)")
+    elif len(plain) > 1:
+        plan.error = (f"{plain[0].name} and {plain[1].name}: several files of one series without a "
+                      f"{kind.index}- entity; number them with {kind.index}-<index>")
+    if suffix == "VFA" and plan.error is None:
+        b1, why = _choose_b1(fmap, files, acq, bids)
+        if why:
+            plan.error = why
+        elif b1 is not None:
+            scale, why = _b1_scale(b1)
+            plan.b1, plan.b1_scale, plan.error = str(b1), scale, why
+        else:
+            plan.notes.append("no fmap/*_TB1map for this session: fitted without B1 correction")
+    return plan
+
+
+def _check_unique(plans: list[SeriesPlan]) -> None:
+    """A series whose outputs would land on those of an earlier one is not fitted (reported)."""
+    seen: dict[str, SeriesPlan] = {}
+    for p in plans:
+        other = seen.get(p.key)
+        if other is not None:
+            p.error = (f"{p.label}: its outputs {p.prefix}_* would replace those of {other.label}; "
+                       f"give the two series different acq- labels")
+        else:
+            seen[p.key] = p

@@ -1,0 +1,64 @@
+"""``qmap batch``: every relaxometry series of a BIDS dataset, into a derivatives folder."""
+
+from __future__ import annotations
+
+import logging
+import sys
+
+from ..batch import run_batch
+
+log = logging.getLogger("qmap")
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "batch",
+        help="fit every relaxometry series of a BIDS dataset",
+        description="Find the relaxometry series of a BIDS dataset (anat/*_inv-<i>_IRT1, *_flip-<i>_VFA, "
+        "*_echo-<i>_MESE, *_echo-<i>_MEGRE, with fmap/*_TB1map for VFA) per subject and session, and fit them: "
+        "IRT1 -> t1-ir (magnitude), VFA -> t1-vfa (nonlinear, B1-corrected when a TB1map is there), MESE -> t2 "
+        "(EPG), MEGRE -> t2star. Outputs go to DERIV_DIR/sub-<s>[/ses-<t>]/anat/ as "
+        "sub-<s>[_ses-<t>]_acq-<acq><method>_*. A failing series does not stop the others (exit code 4 when any "
+        "failed). A rerun skips the series whose outputs were made from the same inputs (SHA-256) with the same "
+        "options, refits those whose inputs changed, and retries the failed ones.",
+    )
+    p.add_argument("bids_dir", metavar="BIDS_DIR", help="root of the BIDS dataset (the folder holding sub-*)")
+    p.add_argument("-o", "--out-dir", required=True, metavar="DERIV_DIR",
+                   help="derivatives folder (created if missing), e.g. BIDS_DIR/derivatives/qmap")
+    p.add_argument("--dry-run", action="store_true",
+                   help="print the plan (one line per series: subject, session, fit, action) and stop; "
+                        "creates nothing")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the series on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
+                        "its workers must see BIDS_DIR and DERIV_DIR at the same paths; -j is then ignored")
+    p.add_argument("-j", "--jobs", type=int, default=None, metavar="N",
+                   help="local worker processes, each fitting one series at a time (default: all cores)")
+    p.add_argument("--overwrite", action="store_true", help="refit every series, even those up to date")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress display and no summary (warnings and "
+                   "failures still go to stderr)")
+    p.set_defaults(run=run)
+
+
+def run(args) -> int:
+    if args.scheduler and args.jobs is not None and not args.dry_run:
+        log.warning("-j is ignored with --scheduler (the cluster's workers do the work)")
+    try:
+        report = run_batch(args.bids_dir, args.out_dir, dry_run=args.dry_run, scheduler=args.scheduler,
+                           n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet)
+    except KeyboardInterrupt:
+        sys.stderr.write("qmap: interrupted; the series completed so far keep their outputs, a rerun "
+                         "continues with the others\n")
+        return 130
+    if args.dry_run:
+        print(report.plan_table())
+        return 0
+    for _, res in report.failed:
+        if res.traceback:
+            sys.stderr.write(res.traceback)
+    if args.quiet:
+        for p, res in report.failed:
+            sys.stderr.write(f"qmap: series failed: sub-{p.subject}"
+                             f"{' ses-' + p.session if p.session else ''} {p.label}: {res.reason}\n")
+    else:
+        print(report.summary())
+    return report.exit_code
