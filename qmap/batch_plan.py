@@ -313,7 +313,7 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
             if ents.get("part") not in _MAGNITUDE_PARTS:
                 ignored.append((str(f), f"part-{ents['part']}: only magnitude images are fitted"))
                 continue
-            key = (suffix,) + tuple((k, v) for k, v in ents_list if k not in (kind.index, "part"))
+            key = (suffix,) + tuple((k, v) for k, v in ents_list if k != kind.index)
             groups.setdefault(key, []).append((ents.get(kind.index), f))
         fmap = [f for f in _niftis(folder / "fmap")
                 if (p := parse_bids_name(f)) and p[1] == "TB1map" and _matches_session(dict(p[0]), subject, session)]
@@ -334,17 +334,25 @@ def _plan_series(bids, deriv, subject, session, key, members, fmap) -> SeriesPla
     suffix, others = key[0], list(key[1:])
     kind = FIT_KINDS[suffix]
     acq = dict(others).get("acq")
-    rest = [(k, v) for k, v in others if k not in ("sub", "ses", "acq")]
+    rest = [(k, v) for k, v in others if k not in ("sub", "ses", "acq", "part")]
     out_dir = deriv / f"sub-{subject}" / (f"ses-{session}" if session else "") / "anat"
     prefix = _prefix(subject, session, acq, kind.method, rest)
     numbered = sorted((m for m in members if m[0] is not None), key=lambda m: _index_sort_key(m[0]))
     plain = [m for m in members if m[0] is None]
     files = [f for _, f in numbered] + [f for _, f in plain]
-    stem = "_".join(f"{k}-{v}" for k, v in others)
-    label = f"{stem}_{kind.index}-*_{suffix}" if numbered else files[0].name
+    label = files[0].name
+    if numbered:  # the raw name with the volume index as a wildcard: sub-01_acq-fast_echo-*_MEGRE
+        stem = label[: -len(".nii.gz")] if label.endswith(".nii.gz") else label[: -len(".nii")]
+        label = "_".join(f"{kind.index}-*" if part == f"{kind.index}-{numbered[0][0]}" else part
+                         for part in stem.split("_"))
     plan = SeriesPlan(subject=subject, session=session, suffix=suffix, label=label,
                       inputs=[str(f) for f in files], prefix=prefix, out_dir=str(out_dir.absolute()))
-    if plain and numbered:
+    labels = [m[0] for m in numbered]
+    if len(set(labels)) != len(labels):
+        dup = next(v for v in labels if labels.count(v) > 1)
+        plan.error = (f"{label}: several files with {kind.index}-{dup}; every volume of a series needs its own "
+                      f"{kind.index} index")
+    elif plain and numbered:
         plan.error = (f"{plain[0]}: has no {kind.index}- entity while {len(numbered)} files of the same series have "
                       f"one; name every volume file with {kind.index}-<index> (or keep one 4D file)")
     elif len(plain) > 1:

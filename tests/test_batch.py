@@ -169,8 +169,12 @@ def test_first_run_writes_the_derivatives_and_isolates_the_corrupt_series(datase
     root, layout = dataset
     deriv = tmp_path / "deriv"
     assert main(["batch", str(root), "-o", str(deriv), "-j", "1"]) == 4
-    out = capsys.readouterr().out
+    out, err = capsys.readouterr()
     good = [e for e in layout if e[:3] != CORRUPT]
+    # progress on stderr (not a terminal here: one line per series done, failures marked)
+    progress = [line for line in err.splitlines() if line.startswith("qmap batch: [")]
+    assert len(progress) == len(layout) and progress[-1].startswith(f"qmap batch: [{len(layout)}/{len(layout)}]")
+    assert sum("FAILED" in line for line in progress) == 1
     assert f"{len(good)} fitted, 0 skipped (up to date), 1 failed" in out
     failed = [line for line in out.splitlines() if "FAILED" in line]
     assert len(failed) == 1 and "sub-02 ses-2 MEGRE" in failed[0] and "truncated or corrupt" in failed[0]
@@ -211,9 +215,10 @@ def test_rerun_skips_everything_and_retries_the_failed_series(dataset, tmp_path,
     root, layout = dataset
     deriv = tmp_path / "deriv"
     assert main(["batch", str(root), "-o", str(deriv), "-j", "1", "-q"]) == 4
+    out, err = capsys.readouterr()
+    assert out == "" and err.count("\n") == 1 and "series failed: sub-02 ses-2" in err  # -q: just the failure
     before = state(deriv)
     time.sleep(0.01)
-    capsys.readouterr()
     assert main(["batch", str(root), "-o", str(deriv), "-j", "1"]) == 4
     out = capsys.readouterr().out
     n_good = len(layout) - 1
@@ -345,6 +350,16 @@ def test_discovery_groups_by_entities_and_skips_non_magnitude(tmp_path):
     assert len(plan.ignored) == 3 and all("part-phase" in why for _, why in plan.ignored)
     assert parse_bids_name("sub-01_echo-1_MEGRE.json") is None
     assert parse_bids_name("sub-01_ses-a_echo-2_MEGRE.nii") == ([("sub", "01"), ("ses", "a"), ("echo", "2")], "MEGRE")
+
+
+def test_series_that_would_share_outputs_are_not_fitted_over_each_other(tmp_path):
+    a = tmp_path / "bids/sub-07/anat"
+    for i in (1, 2):
+        _touch(a / f"sub-07_echo-{i}_MEGRE.nii.gz")
+        _touch(a / f"sub-07_echo-{i}_part-mag_MEGRE.nii.gz")  # same prefix sub-07_acq-megre
+    first, second = discover(tmp_path / "bids", tmp_path / "d").series
+    assert first.prefix == second.prefix == "sub-07_acq-megre"
+    assert first.error is None and "would replace those of" in second.error
 
 
 def test_b1_map_choice(tmp_path):
