@@ -15,7 +15,7 @@ output layout (S = --subject, default the phantom name):
                                           one 3D image + BIDS sidecar (InversionTime / FlipAngle / EchoTime,
                                           RepetitionTime, ...) per volume
   DIR/sub-S/anat/sub-S_desc-truth_{T1,T2,T2star,PD,TB1}map.nii.gz   ground truth (s, fraction)
-  DIR/sub-S/anat/sub-S_desc-<phantom>_dseg.nii.gz (+ .tsv)           labels (vials: shrunk by one voxel)
+  DIR/sub-S/anat/sub-S_desc-<phantom>_dseg.nii.gz (+ .tsv)           labels (vials: label 1-9 = vial, fill = 0)
   DIR/sub-S/fmap/sub-S_flip-<i>_TB1DAM.nii.gz (or _acq-tr<i>_TB1AFI), sub-S_TB1map.nii.gz
                                           B1-mapping inputs and the true B1 on a coarser grid (own affine)
   DIR/phantom_reference.csv               vials: truth at 20 and 24 C (for qmap phantom --reference)

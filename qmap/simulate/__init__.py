@@ -17,7 +17,6 @@ The low-resolution B1 inputs use ``b1_snr`` (default twice ``snr``).
 
 from __future__ import annotations
 
-import time
 from dataclasses import asdict
 
 import numpy as np
@@ -138,7 +137,6 @@ def simulate(
     dict
         The manifest written to ``simulation.json`` (paths relative to ``out_dir``).
     """
-    t0 = time.perf_counter()
     settings = settings or Protocols()
     protocols = list(dict.fromkeys(protocols))
     bad = [p for p in protocols if p not in PROTOCOLS]
@@ -201,7 +199,6 @@ def simulate(
             "Name": f"qmap simulated {phantom} phantom", "BIDSVersion": "1.9.0", "DatasetType": "raw",
             "GeneratedBy": [{"Name": "qmap simulate", "Version": __version__}],
         })
-        manifest["wall_time_s"] = round(time.perf_counter() - t0, 3)
         save_json(stage.path("simulation.json"), manifest)
         stage.commit()
     return manifest

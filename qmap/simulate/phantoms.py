@@ -56,8 +56,8 @@ class Phantom:
     tissues : dict of int -> Tissue
         Properties per label (label 0 absent).
     roi : (X, Y, Z) ndarray of int
-        Labels for region statistics (vials shrunk by one voxel so that edge
-        voxels stay out; head: the tissue labels).
+        Labels for region statistics (vials: the vials without the fill;
+        head: the tissue labels).
     temperature_c : float or None
         Temperature the vial values were taken at.
     """
@@ -135,11 +135,10 @@ def vial_phantom(shape=(48, 48, 4), *, temperature_c: float = REFERENCE_TEMPERAT
     vial_r = 0.15
     centres = [(0.0, 0.0)] + [(0.46 * np.cos(a), 0.46 * np.sin(a)) for a in np.pi / 2 - np.arange(8) * np.pi / 4]
     # vial 1 (shortest T1) in the centre, the others clockwise from 12 o'clock
-    voxel = 2.0 / min(shape[0], shape[1])
     for t, (cu, cv) in zip(VIALS, centres):
-        d2 = (u - cu) ** 2 + (v - cv) ** 2
-        labels[d2 <= vial_r**2] = t.label
-        roi[d2 <= (vial_r - voxel) ** 2] = t.label
+        inside = (u - cu) ** 2 + (v - cv) ** 2 <= vial_r**2
+        labels[inside] = t.label
+        roi[inside] = t.label
     tissues = {t.label: vial_properties(t, temperature_c) for t in VIALS + [FILL]}
     return Phantom("vials", labels, tissues, roi, temperature_c)
 
