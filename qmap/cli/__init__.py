@@ -83,6 +83,9 @@ def main(argv: list[str] | None = None) -> int:
     log.handlers[:] = [handler]
     log.setLevel(logging.INFO)
     log.propagate = False
+    from ..io import writer
+
+    commits_before = writer.COMMITS
     try:
         parser = get_parser()
         args = parser.parse_args(argv)
@@ -97,7 +100,10 @@ def main(argv: list[str] | None = None) -> int:
         msg = " ".join(str(exc).split())
         return _usage_error(msg)
     except KeyboardInterrupt:
-        sys.stderr.write("qmap: interrupted; no outputs were written\n")
+        if writer.COMMITS == commits_before:
+            sys.stderr.write("qmap: interrupted; no outputs were written (the output folder is as it was)\n")
+        else:  # the interrupt came after a complete set of outputs was put in place
+            sys.stderr.write("qmap: interrupted after the outputs were written; they are complete\n")
         return 130
     except MemoryError:
         sys.stderr.write("qmap: error: out of memory; fit fewer voxels at a time (--chunk-size) or use a larger machine\n")

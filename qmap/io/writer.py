@@ -24,6 +24,10 @@ from .nifti import sidecar_path
 
 __all__ = ["OutputFile", "map_filename", "AtomicWriter", "sha256_file", "existing_outputs", "nifti_for"]
 
+#: number of successful commits in this process (lets the command line tell an interrupt that came
+#: after the outputs were in place from one that left the output folder untouched)
+COMMITS = 0
+
 NIFTI_INTENT = {"estimate": "estimate", "stderr": "estimate", "quality": "none", "status": "label"}
 
 
@@ -232,13 +236,25 @@ class AtomicWriter:
                     f"changed -- check free space and permissions, then run again"
                 ) from None
             raise
-        for bak, _ in backups:
-            try:
-                bak.unlink()
-            except OSError:
-                pass
+        # the outputs are in place: from here on the run has succeeded. An interrupt while the
+        # replaced files are deleted is held back until they are all gone (no stray backups).
+        global COMMITS
         self._committed = True
         self._pending = []
+        COMMITS += 1
+        interrupted = None
+        for bak, _ in backups:
+            for _attempt in range(3):
+                try:
+                    bak.unlink()
+                except OSError:
+                    pass
+                except KeyboardInterrupt as exc:
+                    interrupted = exc
+                    continue
+                break
+        if interrupted is not None:
+            raise interrupted
         return done
 
     def abort(self) -> None:
