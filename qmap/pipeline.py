@@ -119,16 +119,24 @@ def default_prefix(path: str | Path) -> str:
 
 
 def _peak(block: np.ndarray) -> np.ndarray:
-    """Per-voxel maximum magnitude over the volumes of a block, without copying it."""
-    from .noise import peak_image
+    """Per-voxel maximum magnitude over the volumes of a block, without copying it.
 
-    if np.iscomplexobj(block):
-        return peak_image(np.abs(block))
+    Non-finite samples are skipped: a voxel with one inf sample keeps the peak of its other
+    samples, so that it stays in the automatic mask and the fit flags it (status 2) instead
+    of it silently counting as background (status 1).
+    """
     with np.errstate(invalid="ignore"):
-        lo = np.fmin.reduce(block, axis=3)
-        hi = np.fmax.reduce(block, axis=3)
-    peak = np.fmax(hi, -lo)  # real-valued data may be negative (phase-corrected IR)
-    return np.where(np.isfinite(peak), peak, 0.0).astype(np.float64)
+        if np.iscomplexobj(block):
+            peak = np.fmax.reduce(np.abs(block), axis=3)
+        else:
+            lo = np.fmin.reduce(block, axis=3)
+            hi = np.fmax.reduce(block, axis=3)
+            peak = np.fmax(hi, -lo)  # real-valued data may be negative (phase-corrected IR)
+    bad = ~np.isfinite(peak)
+    if bad.any():  # rare: only the voxels holding +-inf (or nothing finite at all) are looked at again
+        sub = np.abs(block[bad])
+        peak[bad] = np.max(np.where(np.isfinite(sub), sub, 0.0), axis=-1)
+    return peak.astype(np.float64)
 
 
 def object_mask(series: Series, max_bytes: float | None = None) -> np.ndarray:
