@@ -1,0 +1,771 @@
+"""Hostile inputs for every command: refuse cleanly, or proceed and say so (issue 10).
+
+Every refused case must give (INTERFACE.md, "Exit codes"): exit code 2, exactly
+one line on stderr naming the problem and the fix, no traceback, and no trace in
+the file system -- a fresh output folder is not created, and a folder holding a
+previous run's outputs (replaced with ``--overwrite``) is byte-identical
+afterwards. Inputs are never modified either: the whole ``tmp_path`` is
+snapshotted before and after each run.
+
+Cases where the run can proceed (NaN voxels, unsorted echo times, a sidecar
+disagreeing with the command line, integer data with scaling slopes) check the
+documented outcome against an independent reference run on clean input.
+
+The reference numbers are the NIfTI-1 standard (scl_slope / scl_inter: "y =
+scl_slope * x + scl_inter", nifti1.h, NIfTI DFWG 2004) and the BIDS
+specification (EchoTime / InversionTime / RepetitionTime in seconds,
+FlipAngle in degrees).
+"""
+
+from __future__ import annotations
+
+import errno
+import gzip
+import json
+import os
+import re
+import shutil
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+import qmap.io.writer as writer_mod
+from qmap.cli import main
+from tests.conftest import decay_phantom, snapshot, write_nifti
+
+TE = np.arange(1, 9) * 0.005  # 5..40 ms, 8 echoes
+TE_MS = ",".join(f"{t * 1e3:g}ms" for t in TE)
+AFFINE = np.diag([2.0, 2.0, 3.0, 1.0])
+
+
+def cli(argv, capsys):
+    """Run ``qmap`` in-process; returns (exit code, stdout, stderr)."""
+    capsys.readouterr()
+    rc = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return rc, out, err
+
+
+def one_line(err: str) -> str:
+    lines = err.strip("\n").splitlines()
+    assert "Traceback" not in err, err
+    assert len(lines) == 1, f"expected one line on stderr, got {len(lines)}:\n{err}"
+    return lines[0]
+
+
+@pytest.fixture(scope="module")
+def phantom():
+    """Rician-noise decay phantom (32x32x3, 8 echoes) shared by the module (read-only)."""
+    data, te, t2, obj = decay_phantom(te=TE)
+    return data.astype(np.float32), t2, obj
+
+
+# --------------------------------------------------------------------------- case builders
+# Each builder gets the input folder and the phantom and returns the argument list
+# after the command name (series and case-specific options).
+
+
+def _good4d(d: Path, data, name="sub-01_MEGRE.nii.gz", sidecar=True):
+    return write_nifti(d / name, data, affine=AFFINE, sidecar={"EchoTime": TE.tolist()} if sidecar else None)
+
+
+def _echo_files(d: Path, data, *, affines=None, shapes_cut=None, sidecar=lambda i: {"EchoTime": float(TE[i])}):
+    files = []
+    for i in range(data.shape[3]):
+        vol = data[..., i]
+        if shapes_cut is not None and i == shapes_cut:
+            vol = vol[:-1]
+        aff = AFFINE if affines is None else affines(i)
+        files.append(write_nifti(d / f"sub-01_echo-{i + 1}_MEGRE.nii.gz", vol, affine=aff, sidecar=sidecar(i)))
+    return files
+
+
+def b_truncated_gz(d, data):
+    p = _good4d(d, data)
+    raw = p.read_bytes()
+    p.write_bytes(raw[: len(raw) // 2])  # cut mid-stream: header readable, data not
+    return [p]
+
+
+def b_truncated_nii(d, data):
+    p = d / "sub-01_MEGRE.nii"
+    nib.save(nib.Nifti1Image(data, AFFINE), str(p))
+    raw = p.read_bytes()
+    p.write_bytes(raw[: len(raw) // 3])
+    return [p, "--te", TE_MS]
+
+
+def b_corrupt_gzip_payload(d, data):
+    p = d / "sub-01_MEGRE.nii.gz"
+    rng = np.random.default_rng(1)
+    p.write_bytes(gzip.compress(rng.integers(0, 256, 4096, dtype=np.uint8).tobytes()))  # valid gzip, no NIfTI inside
+    return [p, "--te", TE_MS]
+
+
+def b_bitflip_gz(d, data):
+    p = _good4d(d, data)
+    raw = bytearray(p.read_bytes())
+    for k in range(len(raw) // 2, len(raw) // 2 + 64):  # corrupt the deflate stream (CRC / stream error)
+        raw[k] ^= 0xFF
+    p.write_bytes(bytes(raw))
+    return [p]
+
+
+def b_text_as_nifti(d, data):
+    p = d / "sub-01_MEGRE.nii.gz"
+    p.write_text("EchoTime,Signal\n0.005,1000\n")
+    return [p, "--te", TE_MS]
+
+
+def b_png(d, data):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    p = d / "sub-01_MEGRE.png"
+    plt.imsave(p, np.random.default_rng(0).random((8, 8)))
+    return [p, "--te", TE_MS]
+
+
+def b_png_named_nifti(d, data):
+    src = b_png(d, data)[0]
+    p = d / "sub-01_MEGRE.nii.gz"
+    p.write_bytes(src.read_bytes())
+    src.unlink()
+    return [p, "--te", TE_MS]
+
+
+def b_empty_file(d, data):
+    p = d / "sub-01_MEGRE.nii.gz"
+    p.write_bytes(b"")
+    return [p, "--te", TE_MS]
+
+
+def b_missing_file(d, data):
+    return [d / "sub-01_MEGRE.nii.gz", "--te", TE_MS]
+
+
+def b_folder_as_series(d, data):
+    (d / "dicom").mkdir()
+    return [d / "dicom", "--te", TE_MS]
+
+
+def b_5d(d, data):
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", np.stack([data, data], axis=-1), affine=AFFINE,
+                        sidecar={"EchoTime": TE.tolist()})]
+
+
+def b_single_3d(d, data):
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", data[..., 0], affine=AFFINE, sidecar={"EchoTime": 0.005})]
+
+
+def b_mixed_4d_and_3d(d, data):
+    p4 = _good4d(d, data)
+    p3 = write_nifti(d / "extra.nii.gz", data[..., 0], affine=AFFINE, sidecar={"EchoTime": 0.045})
+    return [p4, p3]
+
+
+def b_complex(d, data):
+    ph = np.exp(1j * np.linspace(0, 2, data.shape[3]))
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", (data * ph).astype(np.complex64), affine=AFFINE,
+                        sidecar={"EchoTime": TE.tolist()})]
+
+
+def b_rgb(d, data):
+    rgb = np.zeros(data.shape, dtype=[("R", "u1"), ("G", "u1"), ("B", "u1")])
+    p = d / "sub-01_MEGRE.nii.gz"
+    nib.save(nib.Nifti1Image(rgb, AFFINE), str(p))
+    return [p, "--te", TE_MS]
+
+
+def b_all_zero(d, data):
+    return [_good4d(d, np.zeros_like(data))]
+
+
+def b_constant(d, data):
+    return [_good4d(d, np.full_like(data, 123.0))]
+
+
+def b_all_nan(d, data):
+    return [_good4d(d, np.full_like(data, np.nan))]
+
+
+def b_negative(d, data):
+    return [_good4d(d, data - 0.5 * data.max())]
+
+
+def b_te_count(d, data):
+    return [_good4d(d, data, sidecar=False), "--te", "5ms,10ms,15ms"]
+
+
+def b_sidecar_list_length(d, data):
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": TE[:5].tolist()})]
+
+
+def b_sidecar_scalar_for_4d(d, data):
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": 0.005})]
+
+
+def b_duplicated_te(d, data):
+    te = TE.copy()
+    te[4] = te[3]
+    return [_good4d(d, data, sidecar=False), "--te", ",".join(f"{t * 1e3:g}ms" for t in te)]
+
+
+def b_duplicated_te_sidecars(d, data):
+    return _echo_files(d, data, sidecar=lambda i: {"EchoTime": float(TE[min(i, 6)])})  # echoes 7 and 8 share 35 ms
+
+
+def b_bare_ms(d, data):
+    return [_good4d(d, data, sidecar=False), "--te", ",".join(f"{t * 1e3:g}" for t in TE)]
+
+
+def b_sidecar_ms(d, data):
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": (TE * 1e3).tolist()})]
+
+
+def b_te_zero(d, data):
+    return [_good4d(d, data, sidecar=False), "--te", "0," + ",".join(f"{t * 1e3:g}ms" for t in TE[1:])]
+
+
+def b_te_garbage(d, data):
+    return [_good4d(d, data, sidecar=False), "--te", "5ms;10ms"]
+
+
+def _sidecar_case(value):
+    def build(d, data):
+        return [write_nifti(d / "sub-01_MEGRE.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": value})]
+
+    return build
+
+
+def b_sidecar_missing_key(d, data):
+    return [write_nifti(d / "sub-01_MEGRE.nii.gz", data, affine=AFFINE, sidecar={"RepetitionTime": 0.05})]
+
+
+def b_sidecar_missing_one_file(d, data):
+    return _echo_files(d, data, sidecar=lambda i: {} if i == 5 else {"EchoTime": float(TE[i])})
+
+
+def b_sidecar_malformed(d, data):
+    p = _good4d(d, data, sidecar=False)
+    (d / "sub-01_MEGRE.json").write_text('{"EchoTime": [0.005, 0.010,')
+    return [p]
+
+
+def b_sidecar_not_object(d, data):
+    p = _good4d(d, data, sidecar=False)
+    (d / "sub-01_MEGRE.json").write_text(json.dumps(TE.tolist()))
+    return [p]
+
+
+def b_sidecar_binary(d, data):
+    p = _good4d(d, data, sidecar=False)
+    (d / "sub-01_MEGRE.json").write_bytes(b"\xff\xfe\x00\x01garbage")
+    return [p]
+
+
+def b_affine_differs(d, data):
+    def aff(i):
+        a = AFFINE.copy()
+        if i == 4:
+            a[0, 3] = 1.0  # echo 5 shifted by half a voxel
+        return a
+
+    return _echo_files(d, data, affines=aff)
+
+
+def b_shape_differs(d, data):
+    return _echo_files(d, data, shapes_cut=2)
+
+
+def b_mask_wrong_grid(d, data):
+    m = write_nifti(d / "mask.nii.gz", np.ones((5, 5, 5), np.uint8), affine=AFFINE)
+    return [_good4d(d, data), "--mask", m]
+
+
+def b_mask_empty(d, data):
+    m = write_nifti(d / "mask.nii.gz", np.zeros(data.shape[:3], np.uint8), affine=AFFINE)
+    return [_good4d(d, data), "--mask", m]
+
+
+def b_sigma_negative(d, data):
+    return [_good4d(d, data), "--sigma", "-3"]
+
+
+def b_sigma_no_background(d, data):
+    # the object fills the field of view: no background to estimate the noise from
+    return [_good4d(d, data[10:22, 10:22]), "--mask", "none"]
+
+
+def b_jobs_zero(d, data):
+    return [_good4d(d, data), "-j", "0"]
+
+
+def b_bad_prefix(d, data):
+    return [_good4d(d, data), "--prefix", "../escape"]
+
+
+def b_unknown_option(d, data):
+    return [_good4d(d, data), "--echo-times", TE_MS]
+
+
+def b_out_under_regular_file(d, data):
+    (d / "notes.txt").write_text("not a folder\n")
+    return [_good4d(d, data), "-o", d / "notes.txt" / "maps"]
+
+
+def b_out_is_regular_file(d, data):
+    (d / "notes.txt").write_text("not a folder\n")
+    return [_good4d(d, data), "-o", d / "notes.txt"]
+
+
+@dataclass
+class Case:
+    id: str
+    command: str
+    build: Callable
+    expect: tuple  # regexes the stderr line must match: what is wrong ... and how to fix it
+    own_out: bool = False  # the case sets -o itself
+    marks: list = field(default_factory=list)
+
+    def param(self):
+        return pytest.param(self, id=f"{self.command}-{self.id}", marks=self.marks)
+
+
+T2S = "t2star"
+REFUSED = [
+    # unreadable files
+    Case("truncated-gz", T2S, b_truncated_gz, (r"truncated|corrupt",)),
+    Case("truncated-nii", T2S, b_truncated_nii, (r"truncated|corrupt", r"sub-01_MEGRE\.nii")),
+    Case("gzip-of-noise", T2S, b_corrupt_gzip_payload, (r"not a readable NIfTI", r"\.nii")),
+    Case("bitflip-gz", T2S, b_bitflip_gz, (r"truncated|corrupt",)),
+    Case("text-named-nii-gz", T2S, b_text_as_nifti, (r"not a readable NIfTI", r"\.nii")),
+    Case("png", T2S, b_png, (r"\.png", r"NIfTI")),
+    Case("png-named-nii-gz", T2S, b_png_named_nifti, (r"not a readable NIfTI",)),
+    Case("empty-file", T2S, b_empty_file, (r"not a readable NIfTI|empty",)),
+    Case("missing-file", T2S, b_missing_file, (r"no such file", r"check the path")),
+    Case("folder-as-series", T2S, b_folder_as_series, (r"folder", r"NIfTI")),
+    # wrong dimensionality / kind of data
+    Case("5d", T2S, b_5d, (r"5D", r"4D series")),
+    Case("single-3d-volume", T2S, b_single_3d, (r"single 3D volume", r"several")),
+    Case("4d-mixed-with-3d", T2S, b_mixed_4d_and_3d, (r"3D volume", r"single 4D")),
+    Case("complex-for-magnitude", T2S, b_complex, (r"complex", r"magnitude")),
+    Case("rgb-voxels", T2S, b_rgb, (r"RGB|structured", r"scalar")),
+    # no usable signal
+    Case("all-zero", T2S, b_all_zero, (r"no signal", r"0")),
+    Case("constant", T2S, b_constant, (r"no signal", r"123")),
+    Case("all-nan", T2S, b_all_nan, (r"NaN",)),
+    Case("negative-magnitude", T2S, b_negative, (r"negative", r"magnitude")),
+    # acquisition parameters
+    Case("te-count-mismatch", T2S, b_te_count, (r"--te", r"3 values.*8 volumes", r"one per volume")),
+    Case("sidecar-list-length", T2S, b_sidecar_list_length, (r"EchoTime", r"5 values.*8 volumes", r"--te")),
+    Case("sidecar-scalar-for-4d", T2S, b_sidecar_scalar_for_4d, (r"one value.*8 volumes", r"--te")),
+    Case("duplicated-te", T2S, b_duplicated_te, (r"repeated EchoTime", r"own value")),
+    Case("duplicated-te-sidecars", T2S, b_duplicated_te_sidecars, (r"repeated EchoTime",)),
+    Case("te-bare-ms", T2S, b_bare_ms, (r"implausible", r"5ms,10ms")),
+    Case("sidecar-te-in-ms", T2S, b_sidecar_ms, (r"implausible", r"seconds", r"ms")),
+    Case("te-zero", T2S, b_te_zero, (r"EchoTime", r"positive")),
+    Case("te-unparsable", T2S, b_te_garbage, (r"5ms;10ms", r"unit")),
+    Case("sidecar-te-string", T2S, _sidecar_case("0.005,0.010"), (r"EchoTime", r"str", r"number")),
+    Case("sidecar-te-dict", T2S, _sidecar_case({"value": 0.005, "unit": "s"}), (r"EchoTime", r"dict", r"number")),
+    Case("sidecar-te-bool", T2S, _sidecar_case(True), (r"EchoTime", r"True", r"number")),
+    Case("sidecar-te-null", T2S, _sidecar_case(None), (r"EchoTime", r"None", r"number")),
+    Case("sidecar-te-nested", T2S, _sidecar_case([[t] for t in TE.tolist()]), (r"EchoTime", r"list of numbers")),
+    Case("sidecar-missing-key", T2S, b_sidecar_missing_key, (r"no EchoTime", r"--te")),
+    Case("sidecar-missing-in-one-file", T2S, b_sidecar_missing_one_file, (r"echo-6", r"lacks EchoTime")),
+    Case("sidecar-malformed-json", T2S, b_sidecar_malformed, (r"sub-01_MEGRE\.json", r"JSON", r"fix or remove")),
+    Case("sidecar-not-an-object", T2S, b_sidecar_not_object, (r"JSON object", r"list")),
+    Case("sidecar-not-utf8", T2S, b_sidecar_binary, (r"sub-01_MEGRE\.json", r"fix or remove")),
+    # grids
+    Case("affine-differs-between-echoes", T2S, b_affine_differs, (r"echo-5", r"affine", r"one voxel grid")),
+    Case("shape-differs-between-echoes", T2S, b_shape_differs, (r"echo-3", r"grid", r"resample")),
+    Case("mask-on-other-grid", T2S, b_mask_wrong_grid, (r"--mask", r"grid")),
+    Case("mask-selects-nothing", T2S, b_mask_empty, (r"--mask", r"selects nothing")),
+    # options
+    Case("sigma-negative", T2S, b_sigma_negative, (r"--sigma", r"positive")),
+    Case("sigma-auto-no-background", T2S, b_sigma_no_background, (r"noise", r"--sigma VALUE")),
+    Case("jobs-zero", T2S, b_jobs_zero, (r"-j 0", r"positive")),
+    Case("prefix-with-path", T2S, b_bad_prefix, (r"--prefix", r"file-name stem")),
+    Case("unknown-option", T2S, b_unknown_option, (r"--echo-times", r"--help")),
+    # output folder
+    Case("out-under-regular-file", T2S, b_out_under_regular_file, (r"output folder", r"-o"), own_out=True),
+    Case("out-is-regular-file", T2S, b_out_is_regular_file, (r"output folder|not a folder", r"-o"), own_out=True),
+]
+
+
+@pytest.fixture(scope="module")
+def previous_run(tmp_path_factory, phantom):
+    """A real earlier t2star run (prefix ``run``) to copy into output folders."""
+    data, *_ = phantom
+    d = tmp_path_factory.mktemp("previous")
+    p = _good4d(d, data)
+    out = d / "out"
+    assert main(["t2star", str(p), "-o", str(out), "--prefix", "run", "-q", "--sigma", "5"]) == 0
+    (out / "README.txt").write_text("an earlier run; must survive untouched\n")
+    return out
+
+
+def _assert_refused(case, rc, err, before, tmp_path):
+    line = one_line(err)
+    assert rc == 2, f"exit code {rc}: {line}"
+    assert line.startswith("qmap: error: "), line
+    for pat in case.expect:
+        assert re.search(pat, line, re.IGNORECASE), f"{pat!r} not in: {line}"
+    assert snapshot(tmp_path) == before, "files changed"
+
+
+@pytest.mark.parametrize("case", [c.param() for c in REFUSED])
+def test_refused_fresh_folder(case, tmp_path, phantom, capsys):
+    """Refused: exit 2, one line, and the output folder is not even created."""
+    data, *_ = phantom
+    inp = tmp_path / "in"
+    inp.mkdir()
+    args = case.build(inp, data)
+    out = tmp_path / "out"
+    before = snapshot(tmp_path)
+    rc, _, err = cli([case.command, "-o", out, "--prefix", "run", "-q", *args], capsys)
+    _assert_refused(case, rc, err, before, tmp_path)
+    assert not out.exists()
+
+
+@pytest.mark.parametrize("case", [c.param() for c in REFUSED if not c.own_out])
+def test_refused_leaves_previous_run_untouched(case, tmp_path, phantom, previous_run, capsys):
+    """Refused with --overwrite over an earlier run: the earlier outputs are byte-identical afterwards."""
+    data, *_ = phantom
+    inp = tmp_path / "in"
+    inp.mkdir()
+    args = case.build(inp, data)
+    out = tmp_path / "out"
+    shutil.copytree(previous_run, out)
+    before = snapshot(tmp_path)
+    rc, _, err = cli([case.command, "-o", out, "--prefix", "run", "--overwrite", "-q", *args], capsys)
+    _assert_refused(case, rc, err, before, tmp_path)
+
+
+# --------------------------------------------------------------------------- output folder faults
+
+
+def test_existing_outputs_without_overwrite(tmp_path, phantom, previous_run, capsys):
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "out"
+    shutil.copytree(previous_run, out)
+    before = snapshot(tmp_path)
+    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "-q", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 2 and re.search(r"exists already", line) and "--overwrite" in line, line
+    assert snapshot(tmp_path) == before
+
+
+@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0, reason="root may write into a mode-500 folder")
+def test_unwritable_output_folder(tmp_path, phantom, capsys):
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "locked"
+    out.mkdir()
+    out.chmod(0o500)
+    try:
+        before = snapshot(tmp_path)
+        rc, _, err = cli(["t2star", p, "-o", out, "-q", "--sigma", "5"], capsys)
+        line = one_line(err)
+        assert rc == 2 and "not writable" in line and "-o" in line, line
+        assert snapshot(tmp_path) == before
+    finally:
+        out.chmod(0o700)
+
+
+def test_unwritable_output_folder_below(tmp_path, phantom, capsys):
+    """A new folder inside a read-only one (root: below a regular file, which no permission makes a folder)."""
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    if hasattr(os, "geteuid") and os.geteuid() == 0:
+        parent = tmp_path / "notes.txt"
+        parent.write_text("a file\n")
+    else:
+        parent = tmp_path / "locked"
+        parent.mkdir()
+        parent.chmod(0o500)
+    try:
+        before = snapshot(tmp_path)
+        rc, _, err = cli(["t2star", p, "-o", parent / "a" / "b", "-q", "--sigma", "5"], capsys)
+        line = one_line(err)
+        assert rc == 2 and "output folder" in line and "-o" in line, line
+        assert snapshot(tmp_path) == before
+    finally:
+        if parent.is_dir():
+            parent.chmod(0o700)
+
+
+def _enospc():
+    return OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+
+class _FailAt:
+    """Wrap ``fn``: the ``k``-th call raises ``exc()`` instead (1-based); counts calls."""
+
+    def __init__(self, fn, k, exc):
+        self.fn, self.k, self.exc, self.calls = fn, k, exc, 0
+
+    def __call__(self, *a, **kw):
+        self.calls += 1
+        if self.calls == self.k:
+            raise self.exc()
+        return self.fn(*a, **kw)
+
+
+@pytest.mark.parametrize("k", [1, 4, 9])  # the first, a middle and the last NIfTI (t2star writes 9)
+@pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
+def test_disk_full_while_writing_nifti(k, fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "out"
+    if not fresh:
+        shutil.copytree(previous_run, out)
+    fail = _FailAt(nib.save, k, _enospc)
+    monkeypatch.setattr(writer_mod.nib, "save", fail)
+    before = snapshot(tmp_path)
+    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert fail.calls >= k  # the staging threads may finish the files they had started
+    assert rc == 2 and re.search(r"cannot write .*run_.*map\.nii\.gz", line) and "space" in line, line
+    assert snapshot(tmp_path) == before
+    assert out.exists() != fresh
+
+
+def _open_failing_for(suffix):
+    real_open = open
+
+    def fake(path, mode="r", *a, **kw):
+        if "w" in mode and str(path).endswith(suffix):
+            raise _enospc()
+        return real_open(path, mode, *a, **kw)
+
+    return fake
+
+
+@pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
+def test_disk_full_while_writing_provenance(fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
+    """The last file staged (the provenance JSON) fails: every map staged before it is discarded."""
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "out"
+    if not fresh:
+        shutil.copytree(previous_run, out)
+    monkeypatch.setattr(writer_mod, "open", _open_failing_for("run_provenance.json"), raising=False)
+    before = snapshot(tmp_path)
+    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 2 and "run_provenance.json" in line and "space" in line, line
+    assert snapshot(tmp_path) == before
+
+
+@pytest.mark.parametrize("k", [1, 10, 19])
+@pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
+def test_rename_fails_during_commit(k, fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
+    """An OSError between the renames of the commit (e.g. the folder vanished, EIO) rolls everything back."""
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "out"
+    if not fresh:
+        shutil.copytree(previous_run, out)
+    fail = _FailAt(os.replace, k, lambda: OSError(errno.EIO, os.strerror(errno.EIO)))
+    monkeypatch.setattr(writer_mod.os, "replace", fail)
+    before = snapshot(tmp_path)
+    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
+    monkeypatch.undo()
+    line = one_line(err)
+    assert fail.calls >= k
+    assert rc == 2 and "cannot" in line and str(out) in line, line
+    assert snapshot(tmp_path) == before
+    assert out.exists() != fresh
+
+
+# --------------------------------------------------------------------------- output integrity
+
+
+def _corrupting_save(kind):
+    real_save = nib.save
+
+    def save(img, path):
+        name = str(path)
+        if "_T2starmap.nii.gz" in name and "stderr" not in name:
+            data = np.asanyarray(img.dataobj)
+            aff = img.affine.copy()
+            if kind == "affine":
+                aff[0, 3] += 5.0
+            elif kind == "shape":
+                data = data[:-1]
+            elif kind == "nonfinite":
+                data = np.full_like(data, np.nan)
+            img = nib.Nifti1Image(data, aff)
+        return real_save(img, path)
+
+    return save
+
+
+@pytest.mark.parametrize("kind", ["affine", "shape", "nonfinite"])
+def test_written_file_that_does_not_read_back_is_refused(kind, tmp_path, phantom, previous_run, capsys, monkeypatch):
+    """AtomicWriter re-reads each NIfTI (shape, affine, finite where status 0) before anything is committed."""
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "out"
+    shutil.copytree(previous_run, out)
+    monkeypatch.setattr(writer_mod.nib, "save", _corrupting_save(kind))
+    before = snapshot(tmp_path)
+    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 2 and "run_T2starmap.nii.gz" in line, line
+    assert snapshot(tmp_path) == before
+
+
+# --------------------------------------------------------------------------- runs that proceed
+
+
+def _maps(folder: Path, prefix: str) -> dict:
+    return {p.name.removeprefix(prefix): np.asanyarray(nib.load(str(p)).dataobj)
+            for p in sorted(folder.glob(f"{prefix}_*.nii.gz"))}
+
+
+def _assert_same_maps(a: dict, b: dict):
+    assert a.keys() == b.keys() and a
+    for k in a:
+        assert np.array_equal(a[k], b[k], equal_nan=True), k
+
+
+def test_integer_data_with_scaling_slope_is_honoured(tmp_path, phantom, capsys):
+    """int16 + scl_slope 0.5 + scl_inter 10 gives the maps of the float series it encodes (NIfTI-1: y = slope*x + inter)."""
+    data, *_ = phantom
+    raw = np.round((data - 10.0) / 0.5).astype(np.int16)
+    assert raw.max() < np.iinfo(np.int16).max
+    img = nib.Nifti1Image(raw, AFFINE)
+    img.header.set_slope_inter(0.5, 10.0)
+    pi = tmp_path / "sub-01_acq-int_MEGRE.nii.gz"
+    nib.save(img, str(pi))
+    (tmp_path / "sub-01_acq-int_MEGRE.json").write_text(json.dumps({"EchoTime": TE.tolist()}))
+    decoded = raw.astype(np.float32) * np.float32(0.5) + np.float32(10.0)
+    pf = write_nifti(tmp_path / "sub-01_acq-float_MEGRE.nii.gz", decoded, affine=AFFINE,
+                     sidecar={"EchoTime": TE.tolist()})
+    for p, o in ((pi, "i"), (pf, "f")):
+        rc, _, err = cli(["t2star", p, "-o", tmp_path / o, "--prefix", "x", "-q", "--sigma", "5"], capsys)
+        assert rc == 0 and err == "", err
+    mi, mf = _maps(tmp_path / "i", "x"), _maps(tmp_path / "f", "x")
+    _assert_same_maps(mi, mf)
+    # and the amplitude is in the decoded units, not the stored integers (which are ~2x larger)
+    st = mi["_desc-status_fitmap.nii.gz"] == 0
+    m0 = mi["_M0map.nii.gz"][st]
+    assert np.nanmedian(m0) == pytest.approx(np.nanmedian(mf["_M0map.nii.gz"][st]))
+    assert 800 < np.nanmedian(m0) < 1200  # decay_phantom M0 = 1000
+
+
+def test_nonfinite_voxels_are_flagged_and_neighbours_unaffected(tmp_path, phantom, capsys):
+    """NaN / +inf / -inf samples: exit 0, status 2 there, NaN estimates, every other voxel as in the clean run."""
+    data, t2, obj = phantom
+    bad = data.copy()
+    spots = {(16, 16, 1, 3): np.nan, (14, 15, 0, 0): np.inf, (17, 14, 2, 7): -np.inf, (12, 18, 0, 5): np.nan}
+    for idx, v in spots.items():
+        bad[idx] = v
+    pc = write_nifti(tmp_path / "clean.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": TE.tolist()})
+    pb = write_nifti(tmp_path / "bad.nii.gz", bad, affine=AFFINE, sidecar={"EchoTime": TE.tolist()})
+    mask = write_nifti(tmp_path / "mask.nii.gz", obj.astype(np.uint8), affine=AFFINE)
+    for p, o in ((pc, "c"), (pb, "b")):
+        rc, _, err = cli(["t2star", p, "-o", tmp_path / o, "--prefix", "x", "-q", "--sigma", "5", "--mask", mask],
+                         capsys)
+        assert rc == 0 and err == "", err
+    mc, mb = _maps(tmp_path / "c", "x"), _maps(tmp_path / "b", "x")
+    hit = np.zeros(obj.shape, bool)
+    for idx in spots:
+        hit[idx[:3]] = True
+    assert np.all(mb["_desc-status_fitmap.nii.gz"][hit] == 2)
+    assert np.all(np.isnan(mb["_T2starmap.nii.gz"][hit])) and np.all(np.isnan(mb["_desc-stderr_T2starmap.nii.gz"][hit]))
+    for k in mc:
+        assert np.array_equal(mc[k][~hit], mb[k][~hit], equal_nan=True), k
+    prov = json.loads((tmp_path / "b" / "x_provenance.json").read_text())
+    assert prov["status_counts"]["2"] == len(spots)
+
+
+def test_nonfinite_voxels_flagged_with_auto_mask(tmp_path, phantom, capsys):
+    """With the default automatic mask too, an object voxel holding NaN / inf says 'bad input', not 'masked out'."""
+    data, t2, obj = phantom
+    bad = data.copy()
+    spots = [(16, 16, 0, 3, np.nan), (14, 15, 0, 0, np.inf), (17, 14, 2, 7, -np.inf), (15, 15, 1, 2, np.inf)]
+    for i, j, k, e, v in spots:
+        assert obj[i, j, k]
+        bad[i, j, k, e] = v
+    pb = write_nifti(tmp_path / "bad.nii.gz", bad, affine=AFFINE, sidecar={"EchoTime": TE.tolist()})
+    rc, _, err = cli(["t2star", pb, "-o", tmp_path / "b", "--prefix", "x", "-q", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    status = _maps(tmp_path / "b", "x")["_desc-status_fitmap.nii.gz"]
+    assert [int(status[i, j, k]) for i, j, k, *_ in spots] == [2] * len(spots)
+
+
+def test_unsorted_echo_files_are_sorted_with_a_warning(tmp_path, phantom, capsys):
+    """3D echo files given out of order: sorted by EchoTime, one warning line, maps equal to the ordered run."""
+    data, *_ = phantom
+    files = _echo_files(tmp_path, data)
+    order = [3, 0, 7, 1, 6, 2, 5, 4]
+    rc, _, err = cli(["t2star", *files, "-o", tmp_path / "ok", "--prefix", "x", "-q", "--sigma", "5"], capsys)
+    assert rc == 0 and err == ""
+    rc, _, err = cli(["t2star", *[files[i] for i in order], "-o", tmp_path / "shuf", "--prefix", "x", "-q",
+                      "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 0 and line.startswith("qmap: warning:") and "sorted" in line and "EchoTime" in line, line
+    _assert_same_maps(_maps(tmp_path / "ok", "x"), _maps(tmp_path / "shuf", "x"))
+    prov = json.loads((tmp_path / "shuf" / "x_provenance.json").read_text())
+    assert prov["acquisition"]["EchoTime"] == pytest.approx(TE.tolist())
+
+
+def test_unsorted_te_option_sorts_4d_volumes(tmp_path, phantom, capsys):
+    """A 4D series whose volumes and --te list are both permuted gives the maps of the ordered series."""
+    data, *_ = phantom
+    order = np.array([5, 2, 0, 7, 1, 3, 6, 4])
+    p_ok = write_nifti(tmp_path / "ok.nii.gz", data, affine=AFFINE)
+    p_sh = write_nifti(tmp_path / "sh.nii.gz", data[..., order], affine=AFFINE)
+    te_sh = ",".join(f"{TE[i] * 1e3:g}ms" for i in order)
+    assert cli(["t2star", p_ok, "--te", TE_MS, "-o", tmp_path / "a", "--prefix", "x", "-q", "--sigma", "5"],
+               capsys)[0] == 0
+    rc, _, err = cli(["t2star", p_sh, "--te", te_sh, "-o", tmp_path / "b", "--prefix", "x", "-q", "--sigma", "5"],
+                     capsys)
+    assert rc == 0 and "sorted" in one_line(err)
+    _assert_same_maps(_maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x"))
+
+
+def test_command_line_wins_over_disagreeing_sidecar(tmp_path, phantom, capsys):
+    """--te differing from the sidecar: one warning naming both, exit 0, the command-line values are used."""
+    data, *_ = phantom
+    te_cli = TE * 1.1
+    p_sc = write_nifti(tmp_path / "sc.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": TE.tolist()})
+    p_no = write_nifti(tmp_path / "no.nii.gz", data, affine=AFFINE)
+    te_arg = ",".join(f"{t * 1e3:.6g}ms" for t in te_cli)
+    rc, _, err = cli(["t2star", p_sc, "--te", te_arg, "-o", tmp_path / "a", "--prefix", "x", "-q", "--sigma", "5"],
+                     capsys)
+    line = one_line(err)
+    assert rc == 0 and line.startswith("qmap: warning:") and "--te" in line and "sidecar" in line, line
+    assert "command line" in line
+    rc, _, err = cli(["t2star", p_no, "--te", te_arg, "-o", tmp_path / "b", "--prefix", "x", "-q", "--sigma", "5"],
+                     capsys)
+    assert rc == 0 and err == ""
+    _assert_same_maps(_maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x"))
+    prov = json.loads((tmp_path / "a" / "x_provenance.json").read_text())
+    assert prov["acquisition"]["EchoTime"] == pytest.approx(te_cli.tolist(), rel=1e-6)
+
+
+def test_provenance_sha256_matches_the_input_bytes(tmp_path, phantom, capsys):
+    """Provenance ``inputs``: absolute paths with the SHA-256 of each file's bytes (hashlib, FIPS 180-4)."""
+    import hashlib
+
+    data, t2, obj = phantom
+    files = _echo_files(tmp_path, data)
+    mask = write_nifti(tmp_path / "mask.nii.gz", obj.astype(np.uint8), affine=AFFINE)
+    rc, _, err = cli(["t2star", *files, "--mask", mask, "-o", tmp_path / "o", "--prefix", "x", "-q", "--sigma", "5"],
+                     capsys)
+    assert rc == 0, err
+    prov = json.loads((tmp_path / "o" / "x_provenance.json").read_text())
+    listed = {e["path"]: e["sha256"] for e in prov["inputs"]}
+    for f in [*files, mask]:
+        assert listed[str(f.absolute())] == hashlib.sha256(f.read_bytes()).hexdigest(), f
