@@ -1,0 +1,370 @@
+"""Relative transmit field (B1) from two images: actual flip-angle imaging and the double-angle method.
+
+Both methods turn a signal ratio into the actual flip angle in closed form;
+the relative B1 is actual / nominal angle (1.0 = as prescribed). Voxels whose
+ratio corresponds to no flip angle get status 8
+(:data:`qmap.fitting.status.NO_VALID_ANGLE`) and a NaN value -- never a
+silent NaN with status 0.
+
+Actual flip-angle imaging (AFI; Yarnykh, Magn Reson Med 2007;57:192): two
+identical pulses with the delays TR1 < TR2 after them, echoes S1 (in the TR1
+interval) and S2 (in the TR2 interval). For TR1, TR2 << T1 and perfect
+spoiling
+
+.. math:: r = \\frac{S_2}{S_1} = \\frac{1 + n \\cos\\alpha}{n + \\cos\\alpha},
+          \\qquad n = TR_2/TR_1, \\qquad \\alpha = \\arccos\\frac{r n - 1}{n - r}.
+
+Valid magnitude ratios lie in ``[0, 1]`` (angles up to ``arccos(-1/n)``).
+
+Double-angle method (DAM; Insko & Bolinger, J Magn Reson A 1993;103:82): two
+acquisitions at a and 2a with TR >> T1 (full recovery), ``S(a) = M0 sin a``,
+so
+
+.. math:: \\alpha = \\arccos \\frac{S(2\\alpha)}{2 S(\\alpha)}.
+
+Magnitude images give ratios in ``[0, 1]``, i.e. actual angles up to 90 deg
+(2a up to 180 deg).
+
+Standard errors propagate Gaussian image noise ``sigma`` (high-SNR
+approximation; sigma e.g. from the image background) through the closed form
+to first order.
+
+:func:`load_b1_map` reads a relative B1 map (fraction or percent) and
+resamples it onto a data grid through the two affines, for B1 correction.
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+import numpy as np
+from scipy import ndimage
+
+from .errors import InputError, UsageError
+from .fitting import status as st
+from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
+
+__all__ = ["B1_METHODS", "B1_SCALES", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "dam_angle", "dam_b1",
+           "load_b1_map"]
+
+log = logging.getLogger("qmap")
+
+B1_METHODS = ("afi", "dam")
+B1_SCALES = ("fraction", "percent")
+#: plausible median of a relative B1 map (fraction)
+B1_MEDIAN_RANGE = (0.2, 5.0)
+
+
+def afi_ratio(fa_deg, n):
+    """AFI signal ratio ``r = S2/S1 = (1 + n cos a)/(n + cos a)`` for the actual angle ``fa_deg`` (degrees).
+
+    Examples
+    --------
+    >>> round(float(afi_ratio(60.0, 5.0)), 6)
+    0.636364
+    """
+    c = np.cos(np.deg2rad(np.asarray(fa_deg, float)))
+    n = np.asarray(n, float)
+    return (1.0 + n * c) / (n + c)
+
+
+def afi_angle(r, n):
+    """Actual flip angle (degrees) from the AFI ratio ``r = S2/S1`` and ``n = TR2/TR1``.
+
+    NaN where ``(r n - 1)/(n - r)`` lies outside ``[-1, 1]`` (no valid angle).
+
+    Examples
+    --------
+    >>> round(float(afi_angle(7.0 / 11.0, 5.0)), 9)
+    60.0
+    """
+    r = np.asarray(r, float)
+    n = np.asarray(n, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = (r * n - 1.0) / (n - r)
+        return np.degrees(np.arccos(np.where(np.abs(u) <= 1.0, u, np.nan)))
+
+
+def dam_angle(s1, s2):
+    """Actual flip angle (degrees) from the double-angle signals ``s1 = S(a)``, ``s2 = S(2a)``.
+
+    NaN where ``s2 / (2 s1)`` lies outside ``[-1, 1]`` or ``s1 = 0``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> round(float(dam_angle(np.sin(np.radians(50)), np.sin(np.radians(100)))), 9)
+    50.0
+    """
+    s1 = np.asarray(s1, float)
+    s2 = np.asarray(s2, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = s2 / (2.0 * s1)
+        return np.degrees(np.arccos(np.where(np.abs(u) <= 1.0, u, np.nan)))
+
+
+def _finish(angle_rad, d_angle, fa_nominal, finite_in, sel):
+    """Relative B1, its standard error and status from the angle (rad) and d(angle) per unit noise."""
+    valid = sel & finite_in & np.isfinite(angle_rad)
+    status = np.full(angle_rad.shape, st.MASKED, np.uint8)
+    status[sel & ~finite_in] = st.NONFINITE
+    status[sel & finite_in & ~np.isfinite(angle_rad)] = st.NO_VALID_ANGLE
+    status[valid] = st.FITTED
+    scale = 1.0 / np.deg2rad(fa_nominal)
+    tb1 = np.where(valid, angle_rad * scale, np.nan)
+    se = np.where(valid, d_angle * scale, np.nan)
+    return tb1, se, status
+
+
+def afi_b1(s1, s2, fa_nominal: float, n: float, *, mask=None, sigma=None):
+    """Relative B1 from AFI images.
+
+    Parameters
+    ----------
+    s1, s2 : (...) ndarray
+        Magnitudes of the echoes in the TR1 and TR2 intervals (TR1 < TR2).
+    fa_nominal : float
+        Nominal flip angle, degrees.
+    n : float
+        ``TR2 / TR1`` (> 1).
+    mask : (...) bool ndarray, optional
+        Voxels to compute (default: all).
+    sigma : float or (...) ndarray, optional
+        Image noise sd (signal units) for the standard error; NaN stderr without it.
+
+    Returns
+    -------
+    tb1, stderr : (...) ndarray
+        Relative B1 (fraction) and its standard error; NaN where status != 0.
+    status : (...) uint8 ndarray
+        0 valid, 1 masked, 2 non-finite input, 8 ratio with no valid angle
+        (outside ``[0, 1]`` for magnitudes, or ``S1 <= 0``).
+
+    Notes
+    -----
+    ``var(r) = sigma^2 (1 + r^2) / S1^2``; ``d a / d r = -(n^2 - 1) /
+    ((n - r)^2 sqrt(1 - u^2))`` with ``u = (r n - 1)/(n - r)``.
+    """
+    s1 = np.asarray(s1, float)
+    s2 = np.asarray(s2, float)
+    sel = np.ones(s1.shape, bool) if mask is None else np.asarray(mask, bool)
+    finite = np.isfinite(s1) & np.isfinite(s2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(s1 > 0, s2 / s1, np.nan)
+        r = np.where(r >= 0, r, np.nan)
+        u = (r * n - 1.0) / (n - r)
+        ang = np.arccos(np.where(np.abs(u) <= 1.0, u, np.nan))
+        sig = np.nan if sigma is None else np.asarray(sigma, float)
+        se_r = sig * np.sqrt(1.0 + r * r) / s1
+        d = (n * n - 1.0) / ((n - r) ** 2 * np.sqrt(1.0 - u * u)) * se_r
+    return _finish(ang, d, fa_nominal, finite, sel)
+
+
+def dam_b1(s_a, s_2a, fa_nominal: float, *, mask=None, sigma=None):
+    """Relative B1 from double-angle images ``S(a)``, ``S(2a)`` at the nominal angle ``fa_nominal`` (degrees).
+
+    Returns ``(tb1, stderr, status)`` as :func:`afi_b1`; status 8 where
+    ``S(2a)/(2 S(a))`` is outside ``[0, 1]`` or ``S(a) <= 0``.
+
+    Notes
+    -----
+    ``u = S(2a)/(2 S(a))``, ``var(u) = sigma^2 (1 + 4 u^2) / (4 S(a)^2)``,
+    ``se(a) = se(u) / sqrt(1 - u^2)``.
+    """
+    s_a = np.asarray(s_a, float)
+    s_2a = np.asarray(s_2a, float)
+    sel = np.ones(s_a.shape, bool) if mask is None else np.asarray(mask, bool)
+    finite = np.isfinite(s_a) & np.isfinite(s_2a)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = np.where(s_a > 0, s_2a / (2.0 * s_a), np.nan)
+        u = np.where((u >= 0) & (u <= 1), u, np.nan)
+        ang = np.arccos(u)
+        sig = np.nan if sigma is None else np.asarray(sigma, float)
+        se_u = sig * np.sqrt(1.0 + 4.0 * u * u) / (2.0 * s_a)
+        d = se_u / np.sqrt(1.0 - u * u)
+    return _finish(ang, d, fa_nominal, finite, sel)
+
+
+def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, sigma=None, info: dict | None = None):
+    """Relative B1 as a :class:`~qmap.maps.MapSet` (``maps["TB1"]``, stderr, quality, status).
+
+    Parameters
+    ----------
+    data : (..., 2) ndarray
+        The two magnitude images: AFI ``[S1 (TR1), S2 (TR2)]``; DAM ``[S(a), S(2a)]``.
+    method : {"afi", "dam"}
+    fa : float
+        Nominal flip angle ``a``, degrees.
+    n : float
+        AFI only: ``TR2 / TR1``.
+    mask : (...) bool ndarray, optional
+    sigma : float or (...) ndarray, optional
+        Image noise sd for the standard errors (NaN without it).
+
+    Notes
+    -----
+    The closed form passes through both samples exactly, so the quality maps
+    are R^2 = 1 and RMS residual 0 wherever the angle is valid (written for
+    uniformity with the other commands).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> s = np.stack([np.sin(np.radians([27.0, 33.0])), np.sin(np.radians([54.0, 66.0]))], -1)
+    >>> b1_maps(s, method="dam", fa=30.0)["TB1"].round(6).tolist()
+    [0.9, 1.1]
+    """
+    from .maps import MapSet
+
+    data = np.asarray(data, float)
+    if data.shape[-1] != 2:
+        raise ValueError(f"B1 mapping takes two images (last axis 2), got {data.shape[-1]}")
+    if method == "afi":
+        if n is None or not n > 1:
+            raise ValueError(f"AFI needs n = TR2/TR1 > 1, got {n}")
+        tb1, se, status = afi_b1(data[..., 0], data[..., 1], fa, n, mask=mask, sigma=sigma)
+    elif method == "dam":
+        tb1, se, status = dam_b1(data[..., 0], data[..., 1], fa, mask=mask, sigma=sigma)
+    else:
+        raise ValueError(f"method {method!r}; expected one of {B1_METHODS}")
+    ok = status == st.FITTED
+    tss = np.sum((data - data.mean(axis=-1, keepdims=True)) ** 2, axis=-1)
+    r2 = np.where(ok & (tss > 0), 1.0, np.nan)
+    rmse = np.where(ok, 0.0, np.nan)
+    how = ("actual flip-angle imaging (Yarnykh 2007)" if method == "afi"
+           else "the double-angle method (Insko & Bolinger 1993)")
+    desc = f"relative transmit field B1 (actual / nominal flip angle, 1.0 = nominal) by {how}"
+    minfo = {"model": method, "parameters": ["TB1"], "noise_floor": "none",
+             "n_fitted": int(np.count_nonzero((status != st.MASKED) & (status != st.NONFINITE)))}
+    minfo.update(info or {})
+    return MapSet(estimates={"TB1": tb1}, stderr={"TB1": se}, units={"TB1": "fraction"}, descriptions={"TB1": desc},
+                  time_params=(), quality={"rsquared": r2, "rmse": rmse}, status=status, info=minfo)
+
+
+def load_b1_map(
+    path,
+    *,
+    shape: tuple,
+    affine: np.ndarray,
+    scale: str | None = None,
+    smooth_fwhm_mm: float | None = None,
+) -> tuple[np.ndarray, dict]:
+    """Load a relative B1 map and resample it onto a data grid.
+
+    Parameters
+    ----------
+    path : path-like
+        3D NIfTI of relative B1 (actual / nominal angle).
+    shape : tuple
+        Data grid shape (X, Y, Z).
+    affine : (4, 4) ndarray
+        Data grid voxel-to-world affine.
+    scale : {"fraction", "percent"}, optional
+        Units of the map; default from its JSON sidecar ``Units`` when that
+        says ``percent`` / ``%``, else fraction.
+    smooth_fwhm_mm : float, optional
+        Gaussian smoothing (FWHM, mm) on the map's own grid before resampling.
+
+    Returns
+    -------
+    b1 : (X, Y, Z) ndarray
+        Relative B1 (fraction) on the data grid; NaN outside the map's field
+        of view and where the map holds no positive finite value.
+    info : dict
+        What was done, for provenance.
+
+    Notes
+    -----
+    Zero, negative and non-finite values are "no B1 here" (a relative B1 of
+    0 would mean no excitation at all). Smoothing and trilinear resampling
+    are normalised by the resampled coverage (value x valid and valid
+    interpolated alike, a voxel kept where at least half of its
+    interpolation weight is valid), so the edge of a masked B1 map is not
+    pulled towards 0.
+    """
+    path = Path(path)
+    img = load_image(path, what="--b1")
+    data = image_data(img, path)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(f"--b1 {path}: has shape {data.shape}, expected one 3D relative B1 map "
+                         f"(for AFI/DAM raw images run qmap b1 first and pass its TB1map)")
+    scale, source = _b1_scale(path, scale)
+    values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
+    nz = values[np.isfinite(values) & (values != 0)]
+    med = float(np.median(nz)) if nz.size else float("nan")
+    if not nz.size or not med > 0:
+        raise InputError(f"--b1 {path}: median value {med:g} is not positive; a relative B1 map holds values near 1 "
+                         f"(fraction) or 100 (percent) -- check the file")
+    lo, hi = B1_MEDIAN_RANGE
+    if not lo <= med <= hi:
+        if scale == "fraction" and med > 10:
+            raise InputError(f"--b1 {path}: median value {med:.4g} is far from 1 -- the map looks like percent; "
+                             f"pass --b1-scale percent (a flip-angle map in degrees must be divided by the nominal "
+                             f"angle first)")
+        if scale == "percent" and med < 0.05:
+            raise InputError(f"--b1 {path}: with --b1-scale percent the median is {med:.4g}; the map is already a "
+                             f"fraction -- drop --b1-scale percent")
+        raise InputError(f"--b1 {path}: median relative B1 {med:.4g} ({scale}) is implausible (expected "
+                         f"{lo:g}-{hi:g}); check --b1-scale and that this is a relative B1 map")
+    valid = np.isfinite(values) & (values > 0)
+    src_affine = np.asarray(img.affine, float)
+    voxel_mm = np.sqrt(np.sum(src_affine[:3, :3] ** 2, axis=0))
+    if smooth_fwhm_mm:
+        if not np.isfinite(smooth_fwhm_mm) or smooth_fwhm_mm < 0:
+            raise UsageError(f"--b1-smooth {smooth_fwhm_mm}: give a non-negative FWHM in mm")
+        sig = smooth_fwhm_mm / (2.0 * np.sqrt(2.0 * np.log(2.0))) / voxel_mm
+        sv = ndimage.gaussian_filter(np.where(valid, values, 0.0), sig, mode="constant", cval=0.0)
+        sw = ndimage.gaussian_filter(valid.astype(float), sig, mode="constant", cval=0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            values = np.where(valid, sv / sw, np.nan)
+    rv = resample_to_grid(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
+    rw = resample_to_grid(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        b1 = np.where(rw >= 0.5, rv / rw, np.nan)
+    covered = np.isfinite(b1)
+    if not covered.any():
+        raise InputError(
+            f"--b1 {path}: does not overlap the data (its field of view spans {_extent(src_affine, data.shape)} mm, "
+            f"the series {_extent(affine, shape)} mm in world coordinates); is it from another session or "
+            f"coordinate frame?"
+        )
+    info = {
+        "b1": str(path.absolute()),
+        "b1_scale": scale,
+        "b1_scale_source": source,
+        "b1_smooth_fwhm_mm": float(smooth_fwhm_mm) if smooth_fwhm_mm else None,
+        "b1_grid": [int(s) for s in data.shape],
+        "b1_voxel_mm": [round(float(v), 4) for v in voxel_mm],
+        "b1_median": med,
+        "b1_resampling": "trilinear through the affines, normalised by coverage",
+        "b1_grid_coverage": float(covered.mean()),
+    }
+    return b1, info
+
+
+def _b1_scale(path: Path, scale: str | None) -> tuple[str, str]:
+    units = read_sidecar(path).get("Units")
+    side = None
+    if isinstance(units, str):
+        u = units.strip().lower()
+        side = ("percent" if u in ("percent", "%", "pct")
+                else "fraction" if u in ("fraction", "1", "ratio", "") else None)
+    if scale is not None:
+        if scale not in B1_SCALES:
+            raise UsageError(f"--b1-scale {scale!r}: expected fraction or percent")
+        if side is not None and side != scale:
+            log.warning("--b1-scale %s differs from the B1 sidecar Units %r; using --b1-scale", scale, units)
+        return scale, "command line"
+    if side is not None:
+        return side, f"sidecar Units {units!r}"
+    return "fraction", "default"
+
+
+def _extent(affine, shape) -> str:
+    corners = np.array([[i, j, k, 1.0] for i in (-0.5, shape[0] - 0.5) for j in (-0.5, shape[1] - 0.5)
+                        for k in (-0.5, shape[2] - 0.5)])
+    w = (np.asarray(affine, float) @ corners.T)[:3]
+    return " ".join(f"{a:.0f}..{b:.0f}" for a, b in zip(w.min(axis=1), w.max(axis=1)))

@@ -1,0 +1,161 @@
+"""``qmap b1``: a relative B1 map (``TB1map``, fraction) from AFI or double-angle images.
+
+The closed forms live in :mod:`qmap.b1`; this module loads the two images with
+their acquisition parameters, masks, estimates the image noise for the
+standard errors, and writes the maps through :func:`qmap.pipeline.write_run`
+(the same outputs and provenance as every other command).
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from ..b1 import B1_METHODS, b1_maps
+from ..errors import InputError, UsageError
+from ..io.series import load_series
+from ..pipeline import (
+    CommonOptions,
+    RunReport,
+    check_outputs_free,
+    check_signal,
+    default_prefix,
+    resolve_mask,
+    resolve_sigma,
+    write_run,
+)
+
+__all__ = ["EQUATIONS", "run_b1"]
+
+EQUATIONS = {
+    "afi": "r = S2/S1, n = TR2/TR1, a = arccos((r n - 1)/(n - r)) (TR1, TR2 << T1; Yarnykh 2007); TB1 = a / nominal",
+    "dam": "a = arccos(S(2a) / (2 S(a))) (TR >> T1; Insko & Bolinger 1993); TB1 = a / nominal",
+}
+#: DAM needs full recovery; below this TR (s) the summary reminds the user (TR >= ~5 T1, common practice)
+DAM_TR_NOTE_S = 5.0
+
+
+def _load_afi(inputs, fa, tr):
+    if fa is not None and np.size(fa) != 1:
+        raise UsageError(f"--fa: AFI takes one nominal flip angle, got {np.size(fa)} values")
+    fa1 = None if fa is None else float(np.ravel(fa)[0])
+    series = load_series(inputs, key="RepetitionTime", value=tr, option="--tr",
+                         scalars={"FlipAngle": (fa1, "--fa", True, "FlipAngle")}, min_volumes=2,
+                         what="AFI images")
+    if series.n != 2:
+        raise InputError(f"{series.paths[0]}: AFI takes two images (TR1 and TR2), got {series.n}")
+    trs = np.asarray(series.acquisition["RepetitionTime"], float)
+    return series, float(series.acquisition["FlipAngle"]), float(trs[1] / trs[0])
+
+
+def _load_dam(inputs, fa, tr):
+    if fa is not None:
+        fa = np.atleast_1d(np.asarray(fa, float))
+        if fa.size == 1:
+            fa = np.array([fa[0], 2.0 * fa[0]])
+        elif fa.size != 2:
+            raise UsageError(f"--fa: DAM takes a or a,2a, got {fa.size} values")
+    if tr is not None and np.size(tr) != 1:
+        raise UsageError(f"--tr: DAM takes one repetition time, got {np.size(tr)} values")
+    tr1 = None if tr is None else float(np.ravel(tr)[0])
+    series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
+                         scalars={"RepetitionTime": (tr1, "--tr", False, "RepetitionTime")}, min_volumes=2,
+                         what="double-angle images")
+    if series.n != 2:
+        raise InputError(f"{series.paths[0]}: the double-angle method takes two images (a and 2a), got {series.n}")
+    a = np.asarray(series.acquisition["FlipAngle"], float)
+    if not np.isclose(a[1], 2.0 * a[0], rtol=1e-2):
+        raise InputError(f"--fa / FlipAngle {a[0]:g},{a[1]:g} deg: the double-angle method needs the angles a and 2a "
+                         f"(e.g. 60,120)")
+    return series, float(a[0]), None
+
+
+def run_b1(
+    inputs,
+    *,
+    common: CommonOptions,
+    method: str,
+    fa=None,
+    tr=None,
+    sigma=None,
+) -> RunReport:
+    """Compute a relative B1 map (``TB1``, fraction) with its standard error and status, and write it.
+
+    Parameters
+    ----------
+    inputs : list of path-like
+        Two 3D NIfTIs or one 4D NIfTI with two volumes: AFI in the order TR1,
+        TR2 (each image labelled by its ``RepetitionTime``); DAM at a and 2a.
+    common : CommonOptions
+    method : {"afi", "dam"}
+    fa : array_like, optional
+        Degrees. AFI: the nominal angle; DAM: ``a`` or ``a, 2a``. Default from
+        the sidecars (``FlipAngle``).
+    tr : array_like, optional
+        Seconds. AFI: ``TR1, TR2``; DAM: optional, the repetition time
+        (recorded, and checked against full recovery in the summary).
+        Default from the sidecars (``RepetitionTime``).
+    sigma : None, "auto", float or path
+        Image noise sd for the standard errors. None: from the image
+        background when possible, otherwise the standard errors are NaN (the
+        summary and provenance say why); ``"auto"`` makes that an error.
+
+    Notes
+    -----
+    Status codes: 0 valid, 1 masked, 2 non-finite input, 8 the signal ratio
+    corresponds to no flip angle (value NaN).
+    """
+    t0 = time.perf_counter()
+    if method not in B1_METHODS:
+        raise UsageError(f"--method {method!r}: expected afi or dam")
+    if common.engine != "fast":
+        raise UsageError("--engine does not apply to qmap b1: B1 is computed in closed form")
+    if method == "afi":
+        series, fa_nom, n = _load_afi(inputs, fa, tr)
+    else:
+        series, fa_nom, n = _load_dam(inputs, fa, tr)
+    prefix = common.prefix or default_prefix(series.paths[0])
+    check_outputs_free(common, prefix)
+    check_signal(series)
+    mask, mask_desc = resolve_mask(common.mask, series)
+    notes = []
+    noise_info = {"mode": "none", "sigma": None}
+    sig = None
+    if sigma is None:
+        try:
+            sig, sinfo = resolve_sigma("auto", series)
+        except InputError as exc:
+            reason = str(exc)
+            noise_info["stderr"] = f"not estimable: noise sigma unknown ({reason}); standard errors are NaN"
+            notes.append("standard errors are NaN: the noise could not be estimated from the background "
+                         "(give --sigma VALUE)")
+        else:
+            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
+    else:
+        sig, sinfo = resolve_sigma(sigma, series)
+        noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
+    if sig is not None:
+        noise_info["stderr"] = "first-order propagation of Gaussian image noise sigma through the closed form"
+    info = {}
+    if n is not None:
+        info["tr_ratio"] = n
+    maps = b1_maps(np.abs(series.data), method=method, fa=fa_nom, n=n, mask=mask, sigma=sig, info=info)
+    ok = maps.status == 0
+    if ok.any():
+        q = np.percentile(maps["TB1"][ok], [5, 50, 95])
+        notes.insert(0, f"TB1 (fraction): median {q[1]:.4g} (5-95%: {q[0]:.4g}-{q[2]:.4g})")
+    if method == "dam":
+        trv = series.acquisition.get("RepetitionTime")
+        if trv is None:
+            notes.append("the double-angle method assumes full recovery (TR >= ~5 T1); RepetitionTime unknown")
+        elif float(trv) < DAM_TR_NOTE_S:
+            notes.append(f"the double-angle method assumes full recovery (TR >= ~5 T1): with TR {float(trv):g} s, "
+                         f"tissue with T1 above {float(trv) / 5:.2g} s biases B1")
+    model_info = {"name": method, "equation": EQUATIONS[method], "parameters": ["TB1"],
+                  "nominal_flip_angle_deg": fa_nom}
+    if n is not None:
+        model_info["tr_ratio"] = n
+    options = {"method": method, "sigma": None if sigma is None else str(sigma)}
+    return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
+                     model_info=model_info, notes=notes, t0=t0, mask_desc=mask_desc)
