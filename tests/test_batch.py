@@ -20,10 +20,11 @@ equations, computed here independently of qmap:
 from __future__ import annotations
 
 import gzip
-import importlib.util
+import io
 import json
 import os
 import time
+from contextlib import redirect_stderr, redirect_stdout
 from pathlib import Path
 
 import nibabel as nib
@@ -35,6 +36,8 @@ from qmap.batch import run_batch
 from qmap.batch_plan import discover, parse_bids_name
 from qmap.batch_series import equivalent_argv
 from qmap.cli import get_parser, main
+from qmap.fitting.noise_floor import DEFAULT_MODE
+from qmap.io.writer import sha256_file
 
 SHAPE = (48, 48, 3)
 AFFINE = np.diag([2.0, 2.0, 3.0, 1.0])
@@ -46,12 +49,6 @@ TE_SE = [0.012 * k for k in range(1, 9)]
 FA = [3.0, 8.0, 16.0, 25.0]
 TR_VFA = 0.015
 TI = [0.05, 0.15, 0.4, 0.9, 1.8, 3.6]
-
-#: fits whose workflow exists in this tree (the batch plans all four)
-HAVE = {s for s, mod in (("MEGRE", "qmap.workflows.decay"), ("VFA", "qmap.workflows.vfa"),
-                         ("IRT1", "qmap.workflows.ir"), ("MESE", "qmap.workflows.t2"))
-        if importlib.util.find_spec(mod) is not None}
-
 
 def _obj():
     x, y, _ = np.indices(SHAPE)
@@ -124,15 +121,13 @@ def prefix(sub, ses, suffix, acq):
 
 
 def build_dataset(root: Path) -> tuple[Path, list]:
-    """Write the dataset; returns (root, the LAYOUT entries whose fit exists in this tree)."""
+    """Write the dataset; returns (root, LAYOUT)."""
     rng = np.random.default_rng(20240611)
     (root / "dataset_description.json").parent.mkdir(parents=True, exist_ok=True)
     (root / "dataset_description.json").write_text(json.dumps({"Name": "invented relaxometry cohort",
                                                                "BIDSVersion": "1.9.0"}))
     layout = []
     for sub, ses, suffix, acq in LAYOUT:
-        if suffix not in HAVE:
-            continue
         folder = root / f"sub-{sub}" / f"ses-{ses}" / "anat"
         stem = f"sub-{sub}_ses-{ses}" + (f"_acq-{acq}" if acq else "")
         BUILDERS[suffix](folder, stem, rng)
@@ -165,11 +160,24 @@ def dataset(tmp_path):
     return build_dataset(tmp_path / "bids")
 
 
-def test_first_run_writes_the_derivatives_and_isolates_the_corrupt_series(dataset, tmp_path, capsys):
-    root, layout = dataset
-    deriv = tmp_path / "deriv"
-    assert main(["batch", str(root), "-o", str(deriv), "-j", "1"]) == 4
-    out, err = capsys.readouterr()
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory):
+    """The dataset after one ``qmap batch -j 1`` run: (root, layout, deriv, exit code, stdout, stderr).
+
+    Shared by the tests that only read it (a rerun of a complete batch rewrites nothing).
+    """
+    base = tmp_path_factory.mktemp("fitted")
+    root, layout = build_dataset(base / "bids")
+    deriv = base / "deriv"
+    out, err = io.StringIO(), io.StringIO()
+    with redirect_stdout(out), redirect_stderr(err):
+        rc = main(["batch", str(root), "-o", str(deriv), "-j", "1"])
+    return root, layout, deriv, rc, out.getvalue(), err.getvalue()
+
+
+def test_first_run_writes_the_derivatives_and_isolates_the_corrupt_series(fitted):
+    root, layout, deriv, rc, out, err = fitted
+    assert rc == 4
     good = [e for e in layout if e[:3] != CORRUPT]
     # progress on stderr (not a terminal here: one line per series done, failures marked)
     progress = [line for line in err.splitlines() if line.startswith("qmap batch: [")]
@@ -193,68 +201,36 @@ def test_first_run_writes_the_derivatives_and_isolates_the_corrupt_series(datase
         for p in params[suffix]:
             assert (d / f"{pre}_{p}map.nii.gz").is_file() and (d / f"{pre}_desc-stderr_{p}map.nii.gz").is_file()
         status = np.asanyarray(nib.load(str(d / f"{pre}_desc-status_fitmap.nii.gz")).dataobj)
-        fitted = status == 0
-        assert fitted[obj].mean() > 0.8
+        fitted_vox = status == 0
+        assert fitted_vox[obj].mean() > 0.8
         truth = {"MEGRE": ("T2star", TRUTH["T2star"]), "MESE": ("T2", TRUTH["T2"]),
                  "VFA": ("T1", TRUTH["T1_vfa"]), "IRT1": ("T1", TRUTH["T1_ir"])}[suffix]
         est = nib.load(str(d / f"{pre}_{truth[0]}map.nii.gz")).get_fdata()
         # median over the disc within 3 % of the simulated value; for VFA this holds only with the
         # TB1map applied (85 % B1 -> an uncorrected T1 would be ~ 1/0.85^2 = 1.38x too long)
-        assert np.median(est[fitted & obj]) == pytest.approx(truth[1], rel=0.03), (pre, truth)
+        assert np.median(est[fitted_vox & obj]) == pytest.approx(truth[1], rel=0.03), (pre, truth)
         prov = json.loads((d / f"{pre}_provenance.json").read_text())
         if suffix == "VFA":
             tb1_path = str(root / f"sub-{sub}/ses-{ses}/fmap/sub-{sub}_ses-{ses}_TB1map.nii.gz")
             assert tb1_path in [i["path"] for i in prov["inputs"]]
             assert prov["command_line"][prov["command_line"].index("--b1-scale") + 1] == "percent"
-    # the failed session left no folder behind, and no temporary file anywhere
-    assert not (deriv / "sub-02/ses-2/anat").joinpath(prefix("02", "2", "MEGRE", None) + "_provenance.json").exists()
+    # the failed series wrote nothing, and no temporary file is left anywhere
+    assert not list((deriv / "sub-02/ses-2/anat").glob(prefix("02", "2", "MEGRE", None) + "_*"))
     assert not [p for p in deriv.rglob(".qmap-*")]
 
 
-def test_rerun_skips_everything_and_retries_the_failed_series(dataset, tmp_path, capsys):
-    root, layout = dataset
-    deriv = tmp_path / "deriv"
-    assert main(["batch", str(root), "-o", str(deriv), "-j", "1", "-q"]) == 4
-    out, err = capsys.readouterr()
-    assert out == "" and err.count("\n") == 1 and "series failed: sub-02 ses-2" in err  # -q: just the failure
+def test_rerun_skips_everything_and_still_reports_the_failed_series(fitted, capsys):
+    root, layout, deriv, *_ = fitted
     before = state(deriv)
     time.sleep(0.01)
     assert main(["batch", str(root), "-o", str(deriv), "-j", "1"]) == 4
     out = capsys.readouterr().out
-    n_good = len(layout) - 1
-    assert f"0 fitted, {n_good} skipped (up to date), 1 failed" in out
-    assert "FAILED sub-02 ses-2 MEGRE" in out  # still reported, and retried (not skipped)
+    assert f"0 fitted, {len(layout) - 1} skipped (up to date), 1 failed" in out
+    assert "FAILED sub-02 ses-2 MEGRE" in out  # retried (not skipped) and still reported
     assert state(deriv) == before  # nothing rewritten, not even dataset_description.json
-
-    # once the file is repaired, the rerun fits just that series
-    rng = np.random.default_rng(1)
-    megre(root / "sub-02/ses-2/anat", "sub-02_ses-2", rng)
-    report = run_batch(root, deriv, n_jobs=1)
-    assert report.exit_code == 0
-    assert [p.prefix for p, _ in report.fitted] == [prefix("02", "2", "MEGRE", None)]
-    assert len(report.skipped) == n_good
-    after = state(deriv)
-    assert {k: v for k, v in after.items() if k in before} == before
-
-
-def test_changed_input_refits_only_its_series(dataset, tmp_path):
-    root, _ = dataset
-    deriv = tmp_path / "deriv"
-    assert run_batch(root, deriv, n_jobs=1).exit_code == 4
-    before = state(deriv)
-    changed = root / "sub-01/ses-1/anat/sub-01_ses-1_echo-2_MEGRE.nii.gz"
-    img = nib.load(str(changed))
-    nib.save(nib.Nifti1Image(np.asarray(img.dataobj) * 1.01, img.affine), str(changed))
-    report = run_batch(root, deriv, n_jobs=1)
-    assert [p.prefix for p, _ in report.fitted] == [prefix("01", "1", "MEGRE", None)]
-    assert "changed" in report.fitted[0][1].replaced and "refitted" in report.summary()
-    pre = "sub-01/ses-1/anat/" + prefix("01", "1", "MEGRE", None)
-    after = state(deriv)
-    assert {k for k in after if after[k] != before.get(k)} == {k for k in after if k.startswith(pre)}
-    prov = json.loads((deriv / f"{pre}_provenance.json").read_text())
-    from qmap.io.writer import sha256_file
-
-    assert {i["path"]: i["sha256"] for i in prov["inputs"]}[str(changed)] == sha256_file(changed)
+    assert main(["batch", str(root), "-o", str(deriv), "-j", "1", "-q"]) == 4
+    out, err = capsys.readouterr()
+    assert out == "" and err.count("\n") == 1 and "series failed: sub-02 ses-2" in err  # -q: just the failure
 
 
 def test_dry_run_prints_the_plan_and_creates_nothing(dataset, tmp_path, capsys):
@@ -274,14 +250,39 @@ def test_dry_run_prints_the_plan_and_creates_nothing(dataset, tmp_path, capsys):
         assert cells[:2] == [sub, ses] and fits[suffix] in cells and "fit" in cells
     vfa_rows = [line for line in lines if "t1-vfa" in line]
     assert all("TB1map" in line and "percent" in line for line in vfa_rows)
-    # after a run the plan says what a rerun would do, still touching nothing
-    assert main(["batch", str(root), "-o", str(deriv), "-q", "-j", "1"]) == 4
-    done = state(deriv)
-    capsys.readouterr()
+
+
+def test_dry_run_after_a_run_says_what_a_rerun_would_do(fitted, capsys):
+    root, layout, deriv, *_ = fitted
+    before = state(deriv)
     assert main(["batch", str(root), "-o", str(deriv), "--dry-run"]) == 0
-    out = capsys.readouterr().out
-    assert out.count("skip (up to date)") == len(layout) - 1
-    assert state(deriv) == done
+    lines = capsys.readouterr().out.splitlines()
+    assert sum("skip (up to date)" in line for line in lines) == len(layout) - 1
+    failed_row = [line for line in lines if line.rstrip().endswith(prefix(*CORRUPT, None))]
+    assert len(failed_row) == 1 and " fit " in failed_row[0]  # the failed one would be retried
+    assert state(deriv) == before
+
+
+def test_retries_a_repaired_series_and_refits_one_whose_input_changed(dataset, tmp_path):
+    root, layout = dataset
+    deriv = tmp_path / "deriv"
+    assert run_batch(root, deriv, n_jobs=1).exit_code == 4
+    before = state(deriv)
+    megre(root / "sub-02/ses-2/anat", "sub-02_ses-2", np.random.default_rng(1))  # repaired
+    changed = root / "sub-01/ses-1/anat/sub-01_ses-1_echo-2_MEGRE.nii.gz"
+    img = nib.load(str(changed))
+    nib.save(nib.Nifti1Image(np.asarray(img.dataobj) * 1.01, img.affine), str(changed))
+    report = run_batch(root, deriv, n_jobs=1)
+    assert report.exit_code == 0
+    redone = {prefix("01", "1", "MEGRE", None), prefix("02", "2", "MEGRE", None)}
+    assert {p.prefix for p, _ in report.fitted} == redone and len(report.skipped) == len(layout) - 2
+    (_, res), = [(p, r) for p, r in report.fitted if p.subject == "01"]
+    assert "changed" in res.replaced and "refitted" in report.summary()
+    after = state(deriv)
+    touched = {k for k in after if after[k] != before.get(k)}
+    assert touched == {k for k in after if k.split("/")[-1].startswith(tuple(redone))}
+    prov = json.loads((deriv / f"sub-01/ses-1/anat/{prefix('01', '1', 'MEGRE', None)}_provenance.json").read_text())
+    assert {i["path"]: i["sha256"] for i in prov["inputs"]}[str(changed)] == sha256_file(changed)
 
 
 def test_overwrite_refits_with_identical_maps(dataset, tmp_path):
@@ -301,20 +302,19 @@ def test_overwrite_refits_with_identical_maps(dataset, tmp_path):
         assert np.array_equal(arr, maps[name], equal_nan=True), name
 
 
-def test_worker_processes_give_the_same_maps(dataset, tmp_path):
-    root, _ = dataset
-    one = run_batch(root, tmp_path / "one", n_jobs=1)
+def test_worker_processes_give_the_same_maps(fitted, tmp_path):
+    root, layout, deriv, *_ = fitted
     two = run_batch(root, tmp_path / "two", n_jobs=2)
-    assert [r.status for r in one.results] == [r.status for r in two.results]
-    a, b = maps_of(tmp_path / "one"), maps_of(tmp_path / "two")
+    assert len(two.fitted) == len(layout) - 1 and len(two.failed) == 1
+    a, b = maps_of(deriv), maps_of(tmp_path / "two")
     assert set(a) == set(b) and a
-    for name in a:
-        assert np.array_equal(a[name], b[name], equal_nan=True), name
+    for name, arr in a.items():
+        assert np.array_equal(arr, b[name], equal_nan=True), name
 
 
-def test_equivalent_command_lines_parse_as_the_single_fit_commands(dataset, tmp_path):
-    root, _ = dataset
-    plan = discover(root, tmp_path / "deriv")
+def test_equivalent_command_lines_parse_as_the_single_fit_commands(fitted):
+    root, _, deriv, *_ = fitted
+    plan = discover(root, deriv)
     parser = get_parser()
     for p in plan.series:
         argv = equivalent_argv(p)
@@ -323,6 +323,10 @@ def test_equivalent_command_lines_parse_as_the_single_fit_commands(dataset, tmp_
         assert args.out_dir == p.out_dir and args.prefix == p.prefix and args.series == p.inputs
         if p.suffix == "VFA":
             assert args.method == "nonlinear" and args.b1 == p.b1 and args.b1_scale == "percent"
+        assert args.epg if p.suffix == "MESE" else True
+        assert args.signal == "magnitude" if p.suffix == "IRT1" else True
+        assert args.noise_floor == DEFAULT_MODE if p.suffix in ("MEGRE", "MESE") else True
+    assert {p.suffix for p in plan.series} == {"MEGRE", "VFA", "IRT1", "MESE"}
 
 
 # -- discovery on names alone (no fitting) --------------------------------------------------------
