@@ -1,0 +1,159 @@
+"""``qmap t1-ir`` end to end: files in, maps and provenance out, exit codes.
+
+Synthetic series follow S = M0 (1 - (1 + k) exp(-TI/T1)) (Bernstein, King &
+Zhou, Handbook of MRI Pulse Sequences, 2004), written as NIfTI with BIDS
+sidecars (InversionTime in seconds; BIDS is an open standard).
+"""
+
+from __future__ import annotations
+
+import json
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from qmap.cli import main
+from qmap.models.ir import ir_signal
+
+TI = np.array([0.05, 0.1, 0.2, 0.35, 0.5, 0.75, 1.0, 1.5, 2.5, 5.0])
+AFFINE = np.diag([1.5, 1.5, 3.0, 1.0])
+SHAPE = (10, 8, 2)
+
+
+def phantom(seed: int = 0, *, sigma: float = 10.0):
+    """Two T1 compartments in a zero background; complex samples with a smooth receive phase."""
+    rng = np.random.default_rng(seed)
+    t1 = np.zeros(SHAPE)
+    t1[2:8, 2:6] = 0.9
+    t1[2:5, 2:6] = 1.8
+    obj = t1 > 0
+    s = np.where(obj[..., None], ir_signal(TI, np.where(obj, t1, 1.0)[..., None], m0=1000.0, efficiency=0.96), 0.0)
+    phase = 0.3 + 0.2 * np.arange(SHAPE[0])[:, None, None, None] * np.ones(SHAPE + (1,))
+    noise = sigma * (rng.standard_normal(s.shape) + 1j * rng.standard_normal(s.shape))
+    return t1, obj, (s + noise) * np.exp(1j * phase)
+
+
+def save(path, data, sidecar=None):
+    nib.save(nib.Nifti1Image(np.asarray(data), AFFINE), str(path))
+    if sidecar is not None:
+        path.with_name(path.name.replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
+    return str(path)
+
+
+def maps_in(out, prefix):
+    names = sorted(p.name for p in out.glob(f"{prefix}_*.nii.gz"))
+    return {n: np.asanyarray(nib.load(str(out / n)).dataobj) for n in names}
+
+
+def one_error_line(capsys) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    assert err[0].startswith("qmap: error: ")
+    return err[0]
+
+
+def test_4d_list_sidecar_and_3d_scalar_sidecars_give_identical_maps(tmp_path, capsys):
+    t1, obj, z = phantom()
+    mag = np.abs(z).astype(np.float32)
+    four = save(tmp_path / "sub-01_IRT1.nii.gz", mag, {"InversionTime": TI.tolist(), "RepetitionTime": 8.0})
+    threes = [save(tmp_path / f"sub-01_inv-{i + 1}_IRT1.nii.gz", mag[..., i],
+                   {"InversionTime": float(TI[i]), "RepetitionTime": 8.0}) for i in range(TI.size)]
+    shuffled = [threes[i] for i in np.random.default_rng(1).permutation(TI.size)]  # sorted by InversionTime
+    assert main(["t1-ir", four, "-o", str(tmp_path / "a"), "--prefix", "x", "-q"]) == 0
+    assert main(["t1-ir", *shuffled, "-o", str(tmp_path / "b"), "--prefix", "x", "-q"]) == 0
+    a, b = maps_in(tmp_path / "a", "x"), maps_in(tmp_path / "b", "x")
+    assert set(a) == set(b) and "x_T1map.nii.gz" in a and "x_desc-stderr_InversionEfficiencymap.nii.gz" in a
+    for name in a:
+        np.testing.assert_array_equal(a[name], b[name], err_msg=name)
+    # and the maps are right: median T1 per compartment within 1% (SNR 100)
+    for v in (0.9, 1.8):
+        assert abs(np.median(a["x_T1map.nii.gz"][t1 == v]) / v - 1) < 0.01
+    prov = json.loads((tmp_path / "a" / "x_provenance.json").read_text())
+    assert prov["acquisition"]["InversionTime"] == pytest.approx(TI.tolist())
+    assert prov["acquisition"]["RepetitionTime"] == 8.0
+    assert prov["noise"] is None
+    assert prov["model"]["look_locker"] is False and prov["model"]["signal"] == "magnitude"
+    assert prov["outputs"]["x_InversionEfficiencymap.nii.gz"] == {
+        "parameter": "InversionEfficiency", "kind": "estimate", "units": "fraction"}
+    assert prov["outputs"]["x_R1map.nii.gz"]["units"] == "1/s"
+
+
+def test_ti_count_mismatch_is_one_line_exit_2(tmp_path, capsys):
+    _, _, z = phantom()
+    path = save(tmp_path / "ir.nii.gz", np.abs(z).astype(np.float32))
+    out = tmp_path / "out"
+    assert main(["t1-ir", path, "--ti", "50ms,100ms,200ms", "-o", str(out)]) == 2
+    line = one_error_line(capsys)
+    assert "3 values" in line and "10 volumes" in line
+    assert not out.exists() or not any(out.iterdir())
+
+
+def test_bare_millisecond_tis_are_rejected_with_the_ms_hint(tmp_path, capsys):
+    _, _, z = phantom()
+    path = save(tmp_path / "ir.nii.gz", np.abs(z).astype(np.float32))
+    ms = ",".join(f"{v * 1e3:g}" for v in TI)  # 50,100,...,5000: bare numbers are seconds
+    assert main(["t1-ir", path, "--ti", ms, "-o", str(tmp_path / "out")]) == 2
+    line = one_error_line(capsys)
+    assert "50ms,100ms" in line
+
+
+def test_complex_nifti_and_magnitude_plus_phase_agree(tmp_path, capsys):
+    t1, obj, z = phantom(2)
+    cplx = save(tmp_path / "c.nii.gz", z.astype(np.complex64), {"InversionTime": TI.tolist()})
+    mag = save(tmp_path / "m.nii.gz", np.abs(z).astype(np.float32), {"InversionTime": TI.tolist()})
+    pha = save(tmp_path / "p.nii.gz", np.angle(z).astype(np.float32))
+    mask = save(tmp_path / "mask.nii.gz", obj.astype(np.uint8))
+    common = ["--mask", mask, "--prefix", "x", "-q"]
+    assert main(["t1-ir", cplx, "--signal", "complex", "-o", str(tmp_path / "c"), *common]) == 0
+    assert main(["t1-ir", mag, "--signal", "complex", "--phase", pha, "-o", str(tmp_path / "m"), *common]) == 0
+    a, b = maps_in(tmp_path / "c", "x"), maps_in(tmp_path / "m", "x")
+    fitted = a["x_desc-status_fitmap.nii.gz"] == 0
+    assert fitted[obj].all() and not fitted[~obj].any()
+    # float32 storage of magnitude and phase: agreement to ~1e-6 relative, far below the noise (~1%)
+    np.testing.assert_allclose(b["x_T1map.nii.gz"][fitted], a["x_T1map.nii.gz"][fitted], rtol=1e-4)
+    for v in (0.9, 1.8):
+        assert abs(np.median(a["x_T1map.nii.gz"][t1 == v]) / v - 1) < 0.01
+    prov = json.loads((tmp_path / "m" / "x_provenance.json").read_text())
+    paths = [i["path"] for i in prov["inputs"]]
+    assert paths[:2] == [mag, pha] and all(len(i["sha256"]) == 64 for i in prov["inputs"])
+    assert "longest TI" in prov["model"]["phase_correction"]
+
+
+def test_real_data_need_signal_real(tmp_path, capsys):
+    _, _, z = phantom(3)
+    real = save(tmp_path / "r.nii.gz", (z * np.exp(-1j * np.angle(z[..., -1:]))).real.astype(np.float32),
+                {"InversionTime": TI.tolist()})
+    assert main(["t1-ir", real, "-o", str(tmp_path / "o1")]) == 2
+    assert "--signal real" in one_error_line(capsys)
+    assert main(["t1-ir", real, "--signal", "real", "-o", str(tmp_path / "o2"), "-q"]) == 0
+
+
+def test_look_locker_is_recorded(tmp_path):
+    _, _, z = phantom(4)
+    path = save(tmp_path / "ll.nii.gz", np.abs(z).astype(np.float32), {"InversionTime": TI.tolist()})
+    assert main(["t1-ir", path, "--look-locker", "-o", str(tmp_path / "o"), "--prefix", "x", "-q"]) == 0
+    prov = json.loads((tmp_path / "o" / "x_provenance.json").read_text())
+    assert prov["model"]["look_locker"] is True and prov["options"]["look_locker"] is True
+    assert "Deichmann" in prov["model"]["look_locker_correction"]
+    assert "x_ApparentT1map.nii.gz" in prov["outputs"]
+    assert "x_InversionEfficiencymap.nii.gz" not in prov["outputs"]
+
+
+@pytest.mark.parametrize(
+    ("extra", "expect"),
+    [(["--tr", "2s"], "RepetitionTime"),  # TI up to 5 s cannot follow a 2 s TR
+     (["--phase", "p.nii.gz"], "--signal complex")],
+)
+def test_inconsistent_options_are_exit_2(tmp_path, capsys, extra, expect):
+    _, _, z = phantom()
+    path = save(tmp_path / "ir.nii.gz", np.abs(z).astype(np.float32), {"InversionTime": TI.tolist()})
+    assert main(["t1-ir", path, *extra, "-o", str(tmp_path / "out")]) == 2
+    assert expect in one_error_line(capsys)
+
+
+def test_help_describes_the_model(capsys):
+    assert main(["t1-ir", "--help"]) == 0
+    out = capsys.readouterr().out
+    for word in ("a + b exp(-TI/T1)", "InversionEfficiency", "--look-locker", "--phase", "50ms"):
+        assert word in out
