@@ -15,6 +15,7 @@ fitted values), and a colour bar labelled with the parameter and its units.
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -42,7 +43,7 @@ DPI = 100
 #: Size of a map preview, (width, height) in pixels.
 PREVIEW_SIZE_PX = (1200, 330)
 #: Size of a single-voxel fit plot, (width, height) in pixels.
-VOXEL_PLOT_SIZE_PX = (900, 700)
+VOXEL_PLOT_SIZE_PX = (1000, 700)
 #: Colour of voxels outside the mask / without an estimate.
 BACKGROUND = "white"
 #: Percentiles of the fitted values spanned by the colour scale.
@@ -135,9 +136,15 @@ def colormap_for(param: str, units: str) -> str:
 
 
 def _units_label(units: str) -> str:
-    return {"1": "dimensionless", "a.u.": "a.u. (signal units)", "fraction": "fraction of nominal (1 = nominal)"}.get(
-        units, units
-    )
+    return {"1": "dimensionless", "a.u.": "a.u.", "fraction": "fraction"}.get(units, units)
+
+
+def _fmt(v: float) -> str:
+    """Four significant digits without exponent noise (1279, 46.00, 0.9693)."""
+    if not np.isfinite(v) or v == 0:
+        return f"{v:g}"
+    d = max(0, 3 - int(np.floor(np.log10(abs(v)))))
+    return f"{v:.{d}f}"
 
 
 def montage(
@@ -150,6 +157,7 @@ def montage(
     title: str,
     description: str = "",
     slices: Sequence[int] | None = None,
+    range_mask: np.ndarray | None = None,
 ) -> tuple[float, float]:
     """Write a PNG montage of a 3D map.
 
@@ -169,6 +177,8 @@ def montage(
         A short line under the title (e.g. the parameter's description).
     slices : sequence of int, optional
         Slices to show (default :func:`pick_slices`).
+    range_mask : (X, Y, Z) ndarray of bool, optional
+        Voxels whose values set the colour range (default: those shown).
 
     Returns
     -------
@@ -179,41 +189,46 @@ def montage(
     if vol.ndim == 2:
         vol = vol[:, :, None]
     shown = np.isfinite(vol) if mask is None else (np.asarray(mask, bool) & np.isfinite(vol))
-    vmin, vmax = robust_range(vol[shown])
+    ranged = shown if range_mask is None else (shown & np.asarray(range_mask, bool))
+    vmin, vmax = robust_range(vol[ranged])
     if slices is None:
         slices = pick_slices(shown)
     cmap = _colormap(colormap_for(param, units))
     fig = _canvas(*PREVIEW_SIZE_PX)
+    W, H = PREVIEW_SIZE_PX
     n = max(len(slices), 1)
-    # axes geometry in figure fractions: n equal panels, then the colour bar
-    left, right, bottom, top = 0.015, 0.88, 0.04, 0.80
-    gap = 0.008
-    width = (right - left - gap * (n - 1)) / n
-    aspect = vol.shape[1] / vol.shape[0]
+    # geometry in pixels: panels as large as the height allows (image aspect kept), side by side from the
+    # left, the colour bar right after the last one
+    top_px, bottom_px, left_px, gap_px = 0.745 * H, 0.03 * H, 0.015 * W, 8.0
+    ph = top_px - bottom_px
+    aspect = vol.shape[0] / vol.shape[1]  # displayed width / height (first axis horizontal)
+    pw = min(ph * min(max(aspect, 0.2), 5.0), (0.86 * W - gap_px * (n - 1)) / n)
     im = None
     for i, k in enumerate(slices):
-        ax = fig.add_axes((left + i * (width + gap), bottom, width, top - bottom))
+        ax = fig.add_axes(((left_px + i * (pw + gap_px)) / W, bottom_px / H, pw / W, ph / H))
         ax.set_facecolor(BACKGROUND)
         sl = np.where(shown[:, :, k], vol[:, :, k], np.nan)
         im = ax.imshow(sl.T, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax, interpolation="nearest",
-                       aspect="equal" if 0.2 < aspect < 5 else "auto")
+                       aspect="auto")
         ax.set_xticks([])
         ax.set_yticks([])
         for s in ax.spines.values():
             s.set_color("#9a9a9a")
         ax.text(0.03, 0.97, f"slice z = {k}", transform=ax.transAxes, color="white", fontsize=9, va="top", ha="left",
                 bbox={"boxstyle": "round,pad=0.15", "fc": "black", "ec": "none", "alpha": 0.55})
-    cax = fig.add_axes((0.905, bottom + 0.04, 0.016, top - bottom - 0.08))
+    cb_left = left_px + n * (pw + gap_px) + 10.0
+    cax = fig.add_axes((cb_left / W, (bottom_px + 0.08 * ph) / H, 14.0 / W, 0.84 * ph / H))
     if im is not None:
         cb = fig.colorbar(im, cax=cax, extend="both")
         cb.set_label(f"{param} [{_units_label(units)}]", fontsize=9)
         cb.ax.tick_params(labelsize=8)
-    fig.text(0.015, 0.955, title, fontsize=12, fontweight="bold", va="top", ha="left")
-    sub = (f"colour range {vmin:.4g} to {vmax:.4g} {units} (2nd-98th percentile of {int(shown.sum())} fitted voxels); "
-           f"white = not fitted")
+    fig.text(0.015, 0.965, title, fontsize=12, fontweight="bold", va="top", ha="left")
     if description:
-        sub = f"{description}; {sub}"
-    fig.text(0.015, 0.875, sub, fontsize=9, va="top", ha="left", color="#333333")
+        fig.text(0.015, 0.885, textwrap.shorten(description, 190, placeholder=" ..."), fontsize=9, va="top",
+                 ha="left", color="#333333")
+    fig.text(0.015, 0.825, f"colour range {_fmt(vmin)} to {_fmt(vmax)} {units} (2nd-98th percentile of "
+             f"{int(ranged.sum())} fitted voxels); white = no estimate (not fitted)", fontsize=9, va="top",
+             ha="left", color="#333333")
     _save(fig, path)
     return vmin, vmax
 
@@ -257,7 +272,10 @@ def stage_previews(writer, maps, prefix: str, *, units: str, mask: np.ndarray) -
         desc = maps.descriptions.get(name, "")
 
         def draw(path, vol=vol, name=name, u=u, title=title, desc=desc):
-            montage(path, vol, mask=fitted, param=name, units=u, title=title, description=desc)
+            # every voxel with an estimate is drawn (values at a bound too); the colour range comes from
+            # the voxels fitted without remark (status 0)
+            montage(path, vol, mask=np.asarray(mask, bool), param=name, units=u, title=title, description=desc,
+                    range_mask=fitted)
 
         out.append(writer.stage_with(preview_name(prefix, name), draw))
     return out
@@ -329,15 +347,15 @@ def plot_voxel_fit(
     used = np.ones(x.shape, bool) if used is None else np.asarray(used, bool)
     has_fit = xf.size > 0 and np.any(np.isfinite(curve))
     fig = _canvas(*VOXEL_PLOT_SIZE_PX)
-    ax = fig.add_axes((0.10, 0.40, 0.58, 0.50))
-    axr = fig.add_axes((0.10, 0.08, 0.58, 0.24), sharex=ax)
+    ax = fig.add_axes((0.085, 0.40, 0.54, 0.52))
+    axr = fig.add_axes((0.085, 0.08, 0.54, 0.24), sharex=ax)
     if has_fit:
         ax.plot(xf, curve, color="#1b6ca8", lw=2, label=curve_label, zorder=2)
         if floor_curve is not None:
             floor_curve = np.asarray(floor_curve, float)
             # drawn only where it can be told apart from the model (near the noise floor)
             if np.nanmax(np.abs(floor_curve - curve)) > 0.005 * np.nanmax(np.abs(curve)):
-                ax.plot(xf, floor_curve, color="#1b6ca8", lw=1.2, ls="--", label=floor_label, zorder=2)
+                ax.plot(xf, floor_curve, color="#e07b00", lw=1.4, ls="--", label=floor_label, zorder=2)
     ax.plot(x[used], y[used], "o", color="#d1495b", ms=7, label="measured", zorder=3)
     if not used.all():
         ax.plot(x[~used], y[~used], "o", mfc="none", mec="#d1495b", ms=7, label="measured, not used by the fit",
@@ -346,7 +364,6 @@ def plot_voxel_fit(
     ax.set_ylabel("signal [a.u.]")
     ax.set_title(title, fontsize=11, loc="left")
     ax.grid(alpha=0.3)
-    ax.legend(loc="best", fontsize=8, framealpha=0.85)
     ax.tick_params(labelbottom=False)
     if x.size and np.min(x) >= 0:
         ax.set_xlim(left=0)
@@ -354,7 +371,6 @@ def plot_voxel_fit(
         axr.axhline(0, color="#1b6ca8", lw=1)
         if noise_sd is not None and np.isfinite(noise_sd) and noise_sd > 0:
             axr.axhspan(-noise_sd, noise_sd, color="#1b6ca8", alpha=0.12, lw=0, label="+/- noise sd")
-            axr.legend(loc="upper right", fontsize=8, framealpha=0.85)
         axr.vlines(x, 0, res, color="#d1495b", lw=1)
         axr.plot(x[used], res[used], "o", color="#d1495b", ms=5)
         if not used.all():
@@ -371,12 +387,19 @@ def plot_voxel_fit(
     axr.set_ylabel("residual [a.u.]")
     axr.set_xlabel(f"{xlabel} [{x_unit}]" if x_unit else xlabel)
     axr.grid(alpha=0.3)
-    fig.text(0.72, 0.90, "\n".join(lines), fontsize=9, va="top", ha="left", family="monospace",
+    box_x = 0.665
+    fig.text(box_x, 0.92, "\n".join(lines), fontsize=8.5, va="top", ha="left", family="monospace",
              bbox={"boxstyle": "round,pad=0.5", "fc": "#f4f4f4", "ec": "#bbbbbb"})
+    y = 0.92 - 0.026 * (len(lines) + 1.5)
     if notes:
         import textwrap
 
-        wrapped = "\n".join(textwrap.fill(t, 34) for t in notes)
-        fig.text(0.72, 0.90 - 0.024 * (len(lines) + 2), wrapped, fontsize=8, va="top", ha="left", color="#333333")
+        wrapped = "\n".join(textwrap.fill(t, 52) for t in notes)
+        fig.text(box_x, y, wrapped, fontsize=8, va="top", ha="left", color="#333333")
+        y -= 0.024 * (wrapped.count("\n") + 2)
+    handles, labels = ax.get_legend_handles_labels()
+    h2, l2 = axr.get_legend_handles_labels()
+    fig.legend(handles + h2, labels + l2, loc="upper left", bbox_to_anchor=(box_x - 0.005, y), fontsize=8.5,
+               frameon=False)
     _save(fig, path)
 

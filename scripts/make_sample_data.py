@@ -29,7 +29,7 @@ SETTINGS = {
     "protocols": ("ir", "vfa", "mese", "megre", "b1"),
     "shape": (48, 48, 4),
     "voxel_size": (2.0, 2.0, 4.0),
-    "snr": 100.0,
+    "snr": 150.0,
     "coils": 1,
     "seed": 20240611,
     "b1_range": (0.85, 1.15),

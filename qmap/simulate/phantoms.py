@@ -16,7 +16,9 @@ Two built-in phantoms, both invented for qmap:
 
 Geometry is defined in normalised in-plane coordinates ``u, v`` in [-1, 1]
 across the field of view, so any matrix size gives the same picture; labels
-are crisp (no partial volume).
+are those of the voxel centres, while the signals carry partial volume: each
+voxel's signal is the sum over its compartments weighted by their volume
+fractions (4 x 4 sub-samples in-plane).
 """
 
 from __future__ import annotations
@@ -56,10 +58,13 @@ class Phantom:
     tissues : dict of int -> Tissue
         Properties per label (label 0 absent).
     roi : (X, Y, Z) ndarray of int
-        Labels for region statistics (vials: the vials without the fill;
+        Labels for region statistics (vials: voxels entirely inside a vial;
         head: the tissue labels).
     temperature_c : float or None
         Temperature the vial values were taken at.
+    fractions : dict of int -> (X, Y, Z) ndarray
+        Volume fraction of each label per voxel (partial volume at edges);
+        the signal of a voxel is the fraction-weighted sum of its compartments.
     """
 
     name: str
@@ -67,6 +72,7 @@ class Phantom:
     tissues: dict
     roi: np.ndarray
     temperature_c: float | None = None
+    fractions: dict | None = None
 
     def property_map(self, attr: str) -> np.ndarray:
         """(X, Y, Z) map of ``attr`` (``"t1"``, ``"t2"``, ``"t2star"``, ``"pd"``); air is 0 (pd) or NaN."""
@@ -109,12 +115,54 @@ def vial_properties(tissue: Tissue, temperature_c: float) -> Tissue:
                   tissue.t2 * (1 + TEMP_COEFF["t2"] * d), tissue.t2star * (1 + TEMP_COEFF["t2star"] * d), tissue.pd)
 
 
-def _grid(shape):
+#: Sub-samples per voxel edge in-plane for partial volume (fractions of 1/16).
+SUPERSAMPLE = 4
+
+
+def _grid(shape, sub: int = 1):
+    """Normalised coordinates of the voxel centres (``sub = 1``) or of ``sub`` x ``sub`` in-plane sub-samples."""
     X, Y, Z = shape
-    u = (np.arange(X) + 0.5) / X * 2 - 1
-    v = (np.arange(Y) + 0.5) / Y * 2 - 1
+    off = (np.arange(sub) + 0.5) / sub
+    u = ((np.arange(X)[:, None] + off[None, :]).ravel()) / X * 2 - 1
+    v = ((np.arange(Y)[:, None] + off[None, :]).ravel()) / Y * 2 - 1
     w = (np.arange(Z) + 0.5) / Z * 2 - 1 if Z > 1 else np.zeros(1)
     return np.meshgrid(u, v, w, indexing="ij")
+
+
+def _vial_centres():
+    # vial A (shortest T1) in the centre, B-I clockwise from 12 o'clock
+    return [(0.0, 0.0)] + [(0.46 * np.cos(a), 0.46 * np.sin(a)) for a in np.pi / 2 - np.arange(8) * np.pi / 4]
+
+
+def _vial_labels(u, v, w):
+    labels = np.zeros(u.shape, np.int16)
+    labels[u**2 + v**2 <= 0.75**2] = FILL.label
+    for t, (cu, cv) in zip(VIALS, _vial_centres()):
+        labels[(u - cu) ** 2 + (v - cv) ** 2 <= 0.15**2] = t.label
+    return labels
+
+
+def _head_labels(u, v, w):
+    theta = np.arctan2(v, u)
+    shrink = 1.0 - 0.04 * w**2  # brain outline slightly smaller towards the slab edges
+    r = np.sqrt((u / 0.72) ** 2 + (v / 0.86) ** 2) / shrink
+    labels = np.zeros(u.shape, np.int16)
+    labels[r <= 1.0] = 1  # CSF around the brain
+    folds = 0.05 * np.cos(9 * theta) + 0.02 * np.cos(23 * theta + 0.7)
+    labels[r <= 0.93 + 0.02 * np.cos(9 * theta)] = 2  # GM ribbon
+    labels[r <= 0.76 + folds] = 3  # WM core
+    for cu in (-0.12, 0.12):
+        labels[((u - cu) / 0.07) ** 2 + ((v - 0.05) / 0.22) ** 2 <= 1.0] = 1  # ventricles
+    return labels
+
+
+def _fractions(label_fn, shape) -> dict:
+    """Volume fraction of every label in every voxel, from ``SUPERSAMPLE``^2 in-plane sub-samples."""
+    k = SUPERSAMPLE
+    fine = label_fn(*_grid(shape, k))
+    X, Y, Z = shape
+    blocks = fine.reshape(X, k, Y, k, Z)
+    return {int(lab): (blocks == lab).mean(axis=(1, 3)) for lab in np.unique(fine) if lab != 0}
 
 
 def vial_phantom(shape=(48, 48, 4), *, temperature_c: float = REFERENCE_TEMPERATURE_C) -> Phantom:
@@ -127,20 +175,14 @@ def vial_phantom(shape=(48, 48, 4), *, temperature_c: float = REFERENCE_TEMPERAT
     temperature_c : float
         Phantom temperature, degrees C (sets the relaxation times).
     """
-    u, v, _ = _grid(shape)
-    labels = np.zeros(shape, np.int16)
+    labels = _vial_labels(*_grid(shape))
+    fractions = _fractions(_vial_labels, shape)
+    # ROIs: voxels entirely inside a vial (no partial volume with the fill)
     roi = np.zeros(shape, np.int16)
-    container = u**2 + v**2 <= 0.75**2
-    labels[container] = FILL.label
-    vial_r = 0.15
-    centres = [(0.0, 0.0)] + [(0.46 * np.cos(a), 0.46 * np.sin(a)) for a in np.pi / 2 - np.arange(8) * np.pi / 4]
-    # vial 1 (shortest T1) in the centre, the others clockwise from 12 o'clock
-    for t, (cu, cv) in zip(VIALS, centres):
-        inside = (u - cu) ** 2 + (v - cv) ** 2 <= vial_r**2
-        labels[inside] = t.label
-        roi[inside] = t.label
+    for t in VIALS:
+        roi[fractions.get(t.label, np.zeros(shape)) >= 1.0] = t.label
     tissues = {t.label: vial_properties(t, temperature_c) for t in VIALS + [FILL]}
-    return Phantom("vials", labels, tissues, roi, temperature_c)
+    return Phantom("vials", labels, tissues, roi, temperature_c, fractions)
 
 
 # ----------------------------------------------------------------------------- head
@@ -159,21 +201,9 @@ TISSUES = [
 
 def head_phantom(shape=(64, 64, 4)) -> Phantom:
     """A simplified axial head slab (CSF, GM ribbon with folds, WM, ventricles); see the module docstring."""
-    u, v, w = _grid(shape)
-    theta = np.arctan2(v, u)
-    # brain outline slightly smaller towards the slab edges
-    shrink = 1.0 - 0.04 * w**2
-    r = np.sqrt((u / 0.72) ** 2 + (v / 0.86) ** 2) / shrink
-    labels = np.zeros(shape, np.int16)
-    labels[r <= 1.0] = 1  # CSF around the brain
-    folds = 0.05 * np.cos(9 * theta) + 0.02 * np.cos(23 * theta + 0.7)
-    labels[r <= 0.93 + 0.02 * np.cos(9 * theta)] = 2  # GM ribbon
-    labels[r <= 0.76 + folds] = 3  # WM core
-    for cu in (-0.12, 0.12):
-        vent = ((u - cu) / 0.07) ** 2 + ((v - 0.05) / 0.22) ** 2 <= 1.0
-        labels[vent] = 1
+    labels = _head_labels(*_grid(shape))
     tissues = {t.label: t for t in TISSUES}
-    return Phantom("head", labels, tissues, labels.copy(), None)
+    return Phantom("head", labels, tissues, labels.copy(), None, _fractions(_head_labels, shape))
 
 
 PHANTOMS = ("vials", "head")

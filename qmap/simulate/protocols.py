@@ -114,15 +114,28 @@ class Series:
 
 
 def _voxels(ph: Phantom, b1: np.ndarray):
-    """Signal-bearing voxels and their properties as (n,) arrays."""
-    sel = ph.labels > 0
-    return sel, {a: ph.property_map(a)[sel] for a in ("t1", "t2", "t2star", "pd")}, b1[sel]
+    """(voxel, compartment) pairs with signal: flat voxel index, volume fraction, properties, B1 -- (n,) each."""
+    idx, frac, b = [], [], []
+    props = {a: [] for a in ("t1", "t2", "t2star", "pd")}
+    fractions = ph.fractions or {lab: (ph.labels == lab).astype(float) for lab in ph.tissues}
+    for lab, f in sorted(fractions.items()):
+        sel = np.flatnonzero(f.ravel() > 0)
+        idx.append(sel)
+        frac.append(f.ravel()[sel])
+        b.append(b1.ravel()[sel])
+        for a in props:
+            props[a].append(np.full(sel.size, getattr(ph.tissues[lab], a)))
+    cat = np.concatenate
+    return (cat(idx), cat(frac)), {a: cat(v) for a, v in props.items()}, cat(b)
 
 
-def _volume(sel: np.ndarray, values: np.ndarray) -> np.ndarray:
-    out = np.zeros(sel.shape + (values.shape[1],))
-    out[sel] = values
-    return out
+def _volume(sel, values: np.ndarray, shape) -> np.ndarray:
+    """Sum the compartment signals ``values`` (n, m) of the pairs ``sel`` into an (X, Y, Z, m) volume."""
+    idx, frac = sel
+    out = np.zeros((int(np.prod(shape)), values.shape[1]))
+    for k in range(values.shape[1]):
+        out[:, k] = np.bincount(idx, weights=values[:, k] * frac, minlength=out.shape[0])
+    return out.reshape(tuple(shape) + (values.shape[1],))
 
 
 def synthesise(name: str, ph: Phantom, b1: np.ndarray, p: Protocols) -> Series:
@@ -131,34 +144,34 @@ def synthesise(name: str, ph: Phantom, b1: np.ndarray, p: Protocols) -> Series:
     if name == "ir":
         ti = np.asarray(p.ir_ti, float)
         s = signals.ir(ti, tr=p.ir_tr, te=p.ir_te, t1=t["t1"], t2=t["t2"], pd=t["pd"], efficiency=p.ir_efficiency)
-        return Series("ir", "IRT1", "inv", _volume(sel, s), "InversionTime", ti,
+        return Series("ir", "IRT1", "inv", _volume(sel, s, ph.labels.shape), "InversionTime", ti,
                       {"RepetitionTime": p.ir_tr, "EchoTime": p.ir_te, "FlipAngle": 90.0,
                        "PulseSequenceType": "inversion recovery spin echo (simulated)"})
     if name == "vfa":
         fa = np.asarray(p.vfa_fa, float)
         s = signals.spgr(fa, tr=p.vfa_tr, te=p.vfa_te, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
-        return Series("vfa", "VFA", "flip", _volume(sel, s), "FlipAngle", fa,
+        return Series("vfa", "VFA", "flip", _volume(sel, s, ph.labels.shape), "FlipAngle", fa,
                       {"RepetitionTime": p.vfa_tr, "EchoTime": p.vfa_te,
                        "PulseSequenceType": "spoiled gradient echo (simulated)"})
     if name == "mese":
         te = p.mese_esp * np.arange(1, int(p.mese_echoes) + 1)
         s = signals.mese(esp=p.mese_esp, n_echoes=int(p.mese_echoes), refocus_deg=p.mese_refocus, t1=t["t1"],
                          t2=t["t2"], pd=t["pd"], b1=b)
-        return Series("mese", "MESE", "echo", _volume(sel, s), "EchoTime", te,
+        return Series("mese", "MESE", "echo", _volume(sel, s, ph.labels.shape), "EchoTime", te,
                       {"RepetitionTime": p.mese_tr, "FlipAngle": 90.0, "RefocusingFlipAngle": p.mese_refocus,
                        "PulseSequenceType": "CPMG multi-echo spin echo (simulated by extended phase graphs)"})
     if name == "megre":
         te = np.asarray(p.megre_te, float)
         s = signals.megre(te, tr=p.megre_tr, fa_deg=p.megre_fa, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
-        return Series("megre", "MEGRE", "echo", _volume(sel, s), "EchoTime", te,
+        return Series("megre", "MEGRE", "echo", _volume(sel, s, ph.labels.shape), "EchoTime", te,
                       {"RepetitionTime": p.megre_tr, "FlipAngle": p.megre_fa,
                        "PulseSequenceType": "multi-echo spoiled gradient echo (simulated)"})
     if name == "b1":
         if p.b1_method == "dam":
             s = signals.dam(p.dam_fa, tr=p.dam_tr, t1=t["t1"], pd=t["pd"], b1=b)
-            return Series("b1", "TB1DAM", "flip", _volume(sel, s), "FlipAngle",
+            return Series("b1", "TB1DAM", "flip", _volume(sel, s, ph.labels.shape), "FlipAngle",
                           np.array([p.dam_fa, 2 * p.dam_fa]), {"RepetitionTime": p.dam_tr}, lowres=True)
         s = signals.afi(p.afi_fa, tr1=p.afi_tr[0], tr2=p.afi_tr[1], t1=t["t1"], pd=t["pd"], b1=b)
-        return Series("b1", "TB1AFI", "acq", _volume(sel, s), "RepetitionTime", np.asarray(p.afi_tr, float),
+        return Series("b1", "TB1AFI", "acq", _volume(sel, s, ph.labels.shape), "RepetitionTime", np.asarray(p.afi_tr, float),
                       {"FlipAngle": p.afi_fa}, lowres=True, labels=["tr1", "tr2"])
     raise UsageError(f"--protocol {name!r}: expected some of {', '.join(PROTOCOLS)}")

@@ -269,6 +269,9 @@ class ModelSpec:
         ``refit(provenance, model, y (1, m), ctx) -> fit`` (with ``params``
         and ``cov``) when the workflow's estimator is not the solver's
         least squares (e.g. the linear VFA method).
+    discrete : bool
+        The model exists only at the acquired positions (an echo train): the
+        "fine grid" is the echoes themselves, drawn as a connected line.
     """
 
     key: str
@@ -276,6 +279,7 @@ class ModelSpec:
     xlabel: str
     angles: bool = False
     refit: object = None
+    discrete: bool = False
 
 
 def _build_monoexp(prov, x):
@@ -307,11 +311,23 @@ def _refit_spgr(prov, model, y, ctx):
     return despot1(y, model.x, model.tr, b1=None if not ctx else ctx["b1"], t1_bounds=model.t1_bounds)
 
 
+def _build_epg(prov, x):
+    from ..models.epg_t2 import EpgT2
+
+    m = prov["model"]
+    n = int(m.get("n_echoes_in_train") or m["n_echoes"])
+    te = float(m["echo_spacing_s"]) * np.arange(1, n + 1)
+    start = m.get("start_dictionary", {})
+    kw = {k: int(start[s]) for k, s in (("n_t2", "T2"), ("n_scale", "RefocusScale")) if s in start}
+    return EpgT2(te, refocus_deg=float(m["refocus_deg"]), t1=float(m["t1_s"]), **kw)
+
+
 #: provenance ``model["name"]`` -> :class:`ModelSpec`
 MODELS: dict[str, ModelSpec] = {
     "monoexp": ModelSpec("EchoTime", _build_monoexp, "echo time"),
     "ir": ModelSpec("InversionTime", _build_ir, "inversion time"),
     "spgr": ModelSpec("FlipAngle", _build_spgr, "nominal flip angle", angles=True, refit=_refit_spgr),
+    "epg_t2": ModelSpec("EchoTime", _build_epg, "echo time", discrete=True),
 }
 
 
@@ -361,9 +377,15 @@ def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
     noise, sigma = _noise(prov, ijk)
     ctx = _ctx(model, prov, ijk, paths[0])
     hi = float(np.max(x))
-    xf = np.linspace(0.5, min(180.0, 1.15 * hi), 400) if spec.angles else np.linspace(0.0, 1.05 * hi, 400)
+    if spec.discrete:
+        xf = model.x
+    elif spec.angles:
+        xf = np.linspace(0.5, min(180.0, 1.15 * hi), 400)
+    else:
+        xf = np.linspace(0.0, 1.05 * hi, 400)
     lines = [f"{name} = {v:.4g} +/- {se:.2g} {u}" for name, v, se, u in rep.values if np.isfinite(v)]
-    lines += [f"{q} = {v:.4g}" for q, (v, _) in rep.quality.items() if np.isfinite(v)]
+    lines += [f"{q} = {v:.5f}" if q == "rsquared" else f"{q} = {v:.4g}" for q, (v, _) in rep.quality.items()
+              if np.isfinite(v)]
     notes = []
     if prov.get("model", {}).get("equation"):
         notes.append(f"model: {prov['model']['equation']}")
@@ -395,6 +417,8 @@ def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
         at_x = rician_mean(at_x, sigma, coils=noise.coils)
     used = noise.weights(y[None, :], sig)[0] > 0
     label = "fitted model" + (" (magnitude)" if magnitude and getattr(model, "name", "") == "ir" else "")
+    if spec.discrete:
+        label += " at the echoes"
     return dict(common, x_fine=xf, curve=curve, fitted_at_x=at_x, title=title, used=used, floor_curve=floor,
                 curve_label=label)
 
