@@ -325,6 +325,75 @@ def b_out_is_regular_file(d, data):
     return [_good4d(d, data), "-o", d / "notes.txt"]
 
 
+# -- t1-vfa and b1: signals from the textbook closed forms, written independently of qmap's models
+FA = np.array([3.0, 8.0, 15.0, 25.0])
+TR = 0.015
+
+
+def _disc(shape=(32, 32, 3)):
+    x, y, _ = np.indices(shape)
+    return x, y, (x - 15.5) ** 2 + (y - 15.5) ** 2 < 9.6**2
+
+
+def _vfa_data():
+    """Spoiled GRE steady state S = M0 sin(a) (1 - E1) / (1 - cos(a) E1), E1 = exp(-TR/T1) (Ernst & Anderson 1966)."""
+    x, _, obj = _disc()
+    t1 = np.where(obj, 0.5 + 1.5 * x / 31, 1.0)[..., None]
+    a = np.deg2rad(FA)
+    e1 = np.exp(-TR / t1)
+    s = np.where(obj[..., None], 3000 * np.sin(a) * (1 - e1) / (1 - np.cos(a) * e1), 0.0)
+    return _noisy(s, 1)
+
+
+def _noisy(s, seed):
+    rng = np.random.default_rng(seed)
+    return np.abs(s + rng.normal(0, 3, s.shape) + 1j * rng.normal(0, 3, s.shape)).astype(np.float32)
+
+
+def _afi_data(fa=60.0, tr1=0.02, tr2=0.1, t1=1.0):
+    """AFI steady state (Yarnykh 2007, eq. 2): S1, S2 for TR1, TR2 with the actual angle a = B1 * nominal."""
+    _, y, obj = _disc()
+    a = np.deg2rad(fa * np.where(obj, 0.8 + 0.4 * y / 31, 1.0))
+    e1, e2 = np.exp(-tr1 / t1), np.exp(-tr2 / t1)
+    den = 1 - e1 * e2 * np.cos(a) ** 2
+    s1 = np.sin(a) * (1 - e2 + (1 - e1) * e2 * np.cos(a)) / den
+    s2 = np.sin(a) * (1 - e1 + (1 - e2) * e1 * np.cos(a)) / den
+    return _noisy(np.where(obj[..., None], 3000 * np.stack([s1, s2], -1), 0.0), 2)
+
+
+def _dam_data(fa=45.0):
+    """Double angle with full recovery: S(a) = M0 sin(a) (Insko & Bolinger 1993)."""
+    _, y, obj = _disc()
+    b1 = np.where(obj, 0.8 + 0.4 * y / 31, 1.0)
+    a = np.deg2rad(fa * b1)[..., None] * np.array([1.0, 2.0])
+    return _noisy(np.where(obj[..., None], 3000 * np.sin(a), 0.0), 3)
+
+
+def _vfa(d, *, sidecar=True, data=None, name="sub-01_VFA.nii.gz", **sc):
+    meta = {"FlipAngle": FA.tolist(), "RepetitionTime": TR} if sidecar else None
+    if meta is not None:
+        meta.update(sc)
+    return write_nifti(d / name, _vfa_data() if data is None else data, affine=AFFINE, sidecar=meta)
+
+
+def _b1map(d, value=1.0, affine=AFFINE, shape=(32, 32, 3), name="b1.nii.gz"):
+    return write_nifti(d / name, np.full(shape, value, np.float32), affine=affine)
+
+
+def _far(dx=500.0):
+    a = AFFINE.copy()
+    a[:3, 3] = dx
+    return a
+
+
+def _afi(d, data=None):
+    return write_nifti(d / "sub-01_AFI.nii.gz", _afi_data() if data is None else data, affine=AFFINE)
+
+
+def _dam(d, data=None):
+    return write_nifti(d / "sub-01_DAM.nii.gz", _dam_data() if data is None else data, affine=AFFINE)
+
+
 @dataclass
 class Case:
     id: str
@@ -396,6 +465,69 @@ REFUSED = [
     # output folder
     Case("out-under-regular-file", T2S, b_out_under_regular_file, (r"output folder", r"-o"), own_out=True),
     Case("out-is-regular-file", T2S, b_out_is_regular_file, (r"output folder|not a folder", r"-o"), own_out=True),
+]
+
+VFA, B1 = "t1-vfa", "b1"
+REFUSED += [
+    Case("fa-count-mismatch", VFA, lambda d, _: [_vfa(d, sidecar=False), "--fa", "3,8,15", "--tr", "15ms"],
+         (r"--fa", r"3 values.*4 volumes", r"one per volume")),
+    Case("no-tr", VFA, lambda d, _: [_vfa(d, sidecar=False), "--fa", "3,8,15,25"], (r"no RepetitionTime", r"--tr")),
+    Case("tr-bare-ms", VFA, lambda d, _: [_vfa(d, sidecar=False), "--fa", "3,8,15,25", "--tr", "15"],
+         (r"implausible", r"15ms")),
+    Case("fa-radians", VFA, lambda d, _: [_vfa(d, sidecar=False), "--fa", "0.05,0.14,0.26,0.44", "--tr", "15ms"],
+         (r"radians", r"degrees")),
+    Case("fa-duplicated", VFA, lambda d, _: [_vfa(d, sidecar=False), "--fa", "3,8,8,25", "--tr", "15ms"],
+         (r"repeated FlipAngle",)),
+    Case("fa-above-180", VFA, lambda d, _: [_vfa(d, sidecar=False), "--fa", "3,8,15,250", "--tr", "15ms"],
+         (r"--fa", r"\(0, 180\]")),
+    Case("sidecar-tr-in-ms", VFA, lambda d, _: [_vfa(d, RepetitionTime=15)], (r"RepetitionTime", r"implausible")),
+    Case("sidecar-tr-per-volume-differs", VFA, lambda d, _: [_vfa(d, RepetitionTime=[0.015, 0.015, 0.02, 0.015])],
+         (r"RepetitionTime differs between volumes",)),
+    Case("sidecar-fa-string", VFA, lambda d, _: [_vfa(d, FlipAngle="3,8,15,25")], (r"FlipAngle", r"str", r"number")),
+    Case("single-angle", VFA, lambda d, _: [write_nifti(d / "one.nii.gz", _vfa_data()[..., :1], affine=AFFINE),
+                                            "--fa", "3", "--tr", "15ms"], (r"at least two|single 3D volume",)),
+    Case("complex-for-magnitude", VFA, lambda d, _: [_vfa(d, data=_vfa_data().astype(np.complex64))],
+         (r"complex", r"magnitude")),
+    Case("b1-no-overlap", VFA, lambda d, _: [_vfa(d), "--b1", _b1map(d, affine=_far())],
+         (r"--b1", r"does not overlap")),
+    Case("b1-percent-as-fraction", VFA, lambda d, _: [_vfa(d), "--b1", _b1map(d, 100.0), "--b1-scale", "fraction"],
+         (r"--b1", r"percent")),
+    Case("b1-4d", VFA, lambda d, _: [_vfa(d), "--b1", _b1map(d, shape=(32, 32, 3, 2))], (r"--b1", r"3D")),
+    Case("b1-all-nan", VFA, lambda d, _: [_vfa(d), "--b1", _b1map(d, np.nan)], (r"--b1", r"check the file")),
+    Case("b1-not-nifti", VFA, lambda d, _: [_vfa(d), "--b1", b_text_as_nifti(d, None)[0]],
+         (r"--b1", r"not a readable NIfTI")),
+    Case("afi-three-volumes", B1, lambda d, _: [_afi(d, np.concatenate([_afi_data()] * 2, -1)[..., :3]),
+                                                "--method", "afi", "--fa", "60", "--tr", "20ms,100ms,150ms"],
+         (r"AFI takes two images",)),
+    Case("afi-no-tr", B1, lambda d, _: [_afi(d), "--method", "afi", "--fa", "60"], (r"no RepetitionTime", r"--tr")),
+    Case("afi-one-tr", B1, lambda d, _: [_afi(d), "--method", "afi", "--fa", "60", "--tr", "20ms"],
+         (r"--tr", r"2 volumes")),
+    Case("afi-equal-tr", B1, lambda d, _: [_afi(d), "--method", "afi", "--fa", "60", "--tr", "20ms,20ms"],
+         (r"repeated RepetitionTime",)),
+    Case("afi-two-angles", B1, lambda d, _: [_afi(d), "--method", "afi", "--fa", "60,70", "--tr", "20ms,100ms"],
+         (r"--fa", r"one nominal flip angle")),
+    Case("afi-tr-bare-ms", B1, lambda d, _: [_afi(d), "--method", "afi", "--fa", "60", "--tr", "20,100"],
+         (r"implausible", r"20ms,100ms")),
+    Case("afi-images-in-swapped-order", B1,
+         lambda d, _: [_afi(d, _afi_data()[..., ::-1]), "--method", "afi", "--fa", "60", "--tr", "20ms,100ms"],
+         (r"order|swapped", r"TR"),
+         marks=[pytest.mark.xfail(strict=True, reason=(
+             "qmap/workflows/b1.py: S2/S1 > 1 in almost every voxel (the images or --tr are in the wrong order) "
+             "gives exit 0 with status 8 nearly everywhere; proposed: refuse (InputError) when most masked "
+             "voxels have no valid angle, naming the likely swap"))]),
+    Case("dam-angles-not-double", B1, lambda d, _: [_dam(d), "--method", "dam", "--fa", "45,80"],
+         (r"a and 2a",)),
+    Case("method-missing", B1, lambda d, _: [_dam(d), "--fa", "45,90"], (r"--method", r"--help")),
+    Case("negative-magnitude", B1, lambda d, _: [_dam(d, _dam_data() - 1000), "--method", "dam", "--fa", "45"],
+         (r"negative", r"magnitude")),
+    Case("complex-for-magnitude", B1, lambda d, _: [_dam(d, _dam_data().astype(np.complex64)), "--method", "dam",
+                                                    "--fa", "45"], (r"complex", r"magnitude")),
+    Case("affine-differs", B1, lambda d, _: [
+        write_nifti(d / "dam_fa-1.nii.gz", _dam_data()[..., 0], affine=AFFINE),
+        write_nifti(d / "dam_fa-2.nii.gz", _dam_data()[..., 1], affine=_far(1.0)), "--method", "dam", "--fa", "45,90"],
+         (r"affine", r"one voxel grid")),
+    Case("all-zero", B1, lambda d, _: [_dam(d, np.zeros((32, 32, 3, 2), np.float32)), "--method", "dam",
+                                       "--fa", "45"], (r"no signal",)),
 ]
 
 
@@ -769,3 +901,55 @@ def test_provenance_sha256_matches_the_input_bytes(tmp_path, phantom, capsys):
     listed = {e["path"]: e["sha256"] for e in prov["inputs"]}
     for f in [*files, mask]:
         assert listed[str(f.absolute())] == hashlib.sha256(f.read_bytes()).hexdigest(), f
+
+
+def test_vfa_command_line_tr_wins_over_sidecar(tmp_path, capsys):
+    """t1-vfa --tr differing from the sidecar: one warning, exit 0, maps as from the command-line TR alone."""
+    p_sc = _vfa(tmp_path)
+    p_no = _vfa(tmp_path, sidecar=False, name="plain_VFA.nii.gz")
+    rc, _, err = cli(["t1-vfa", p_sc, "--tr", "18ms", "-o", tmp_path / "a", "--prefix", "x", "-q"], capsys)
+    line = one_line(err)
+    assert rc == 0 and line.startswith("qmap: warning:") and "--tr" in line and "sidecar" in line, line
+    rc, _, err = cli(["t1-vfa", p_no, "--fa", "3,8,15,25", "--tr", "18ms", "-o", tmp_path / "b", "--prefix", "x",
+                      "-q"], capsys)
+    assert rc == 0 and err == "", err
+    _assert_same_maps(_maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x"))
+    prov = json.loads((tmp_path / "a" / "x_provenance.json").read_text())
+    assert prov["acquisition"]["RepetitionTime"] == pytest.approx(0.018)
+
+
+def test_dam_images_out_of_order_are_sorted(tmp_path, capsys):
+    """b1 --method dam with the 2a image first (3D files with FlipAngle sidecars): sorted with a warning."""
+    data = _dam_data()
+    f = [write_nifti(tmp_path / f"dam_fa-{i + 1}.nii.gz", data[..., i], affine=AFFINE,
+                     sidecar={"FlipAngle": 45.0 * (i + 1), "RepetitionTime": 8.0}) for i in range(2)]
+    rc, _, err = cli(["b1", *f, "--method", "dam", "-o", tmp_path / "a", "--prefix", "x", "-q"], capsys)
+    assert rc == 0 and err == "", err
+    rc, _, err = cli(["b1", f[1], f[0], "--method", "dam", "-o", tmp_path / "b", "--prefix", "x", "-q"], capsys)
+    line = one_line(err)
+    assert rc == 0 and "sorted" in line and "FlipAngle" in line, line
+    _assert_same_maps(_maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x"))
+
+
+def test_vfa_b1_map_covering_part_of_the_data(tmp_path, capsys):
+    """A B1 map reaching only part of the series: exit 0; voxels beyond its field of view get status 6
+    (INTERFACE.md: B1 maps are resampled; outside -> documented status), the rest are fitted."""
+    x, _, obj = _disc()
+    shifted = AFFINE.copy()
+    shifted[0, 3] = 40.0  # the B1 grid starts 20 voxels (40 mm) along x; voxel centres at x < 19.5 are outside
+    p = _vfa(tmp_path)
+    b1 = _b1map(tmp_path, 1.0, affine=shifted)
+    rc, _, err = cli(["t1-vfa", p, "--b1", b1, "-o", tmp_path / "o", "--prefix", "x", "-q"], capsys)
+    assert rc == 0 and err == "", err
+    m = _maps(tmp_path / "o", "x")
+    status, t1 = m["_desc-status_fitmap.nii.gz"], m["_T1map.nii.gz"]
+    outside = obj & (x < 20)
+    inside = obj & (x >= 20)
+    assert outside.any() and inside.any()
+    assert np.all(status[outside] == 6) and np.all(np.isnan(t1[outside]))
+    assert np.mean(status[inside] == 0) > 0.95
+    prov = json.loads((tmp_path / "o" / "x_provenance.json").read_text())
+    in_mask_outside_b1 = (status != 1) & (x < 20)  # the automatic mask also takes a rim of the disc
+    assert np.all(status[in_mask_outside_b1] == 6)
+    assert prov["status_counts"]["6"] == int(in_mask_outside_b1.sum())
+    assert str(b1.absolute()) in [e["path"] for e in prov["inputs"]]
