@@ -237,15 +237,21 @@ def _run_local(todo, *, n_jobs, overwrite, progress):
         yield res
 
 
-def _run_dask(todo, *, scheduler, overwrite, progress):
+def _connect(scheduler: str):
+    """A client of the Dask scheduler at ``scheduler`` (a one-line UsageError when unreachable)."""
     try:
-        from dask.distributed import Client, as_completed
+        from dask.distributed import Client
     except ImportError:
         raise UsageError("--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])") from None
     try:
-        client = Client(scheduler, timeout=20, set_as_default=False)
+        return Client(scheduler, timeout=20, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
         raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
+
+
+def _run_dask(todo, *, client, overwrite, progress):
+    from dask.distributed import as_completed
+
     futures = {}
     try:
         with client.as_current():
@@ -265,7 +271,6 @@ def _run_dask(todo, *, scheduler, overwrite, progress):
         pending = [f for f in futures if not f.done()]
         if pending:
             client.cancel(pending)
-        client.close()
 
 
 def run_batch(
@@ -314,27 +319,32 @@ def run_batch(
         report.actions = [_planned_action(p, overwrite) for p in plan.series]
         report.wall_time_s = round(time.perf_counter() - t0, 3)
         return report
-    deriv = Path(plan.deriv_dir)
-    note = _write_description(deriv, overwrite)
-    if note:
-        report.notes.append(note)
     todo = [p for p in plan.series if not p.error]
-    results: dict[str, SeriesResult] = {}
-    progress = BatchProgress(len(plan.series), quiet=quiet, stream=stream)
-    for p in plan.series:
-        if p.error:
-            results[p.key + "\0" + p.label] = res = SeriesResult(key=p.key, status="failed", reason=p.error)
-            progress.update(p, res)
-    created = _make_dirs(sorted({Path(p.out_dir) for p in todo}))
+    client = _connect(scheduler) if scheduler and todo else None  # before anything is written
     try:
-        if todo:
-            runner = (_run_dask(todo, scheduler=scheduler, overwrite=overwrite, progress=progress) if scheduler
-                      else _run_local(todo, n_jobs=n_jobs, overwrite=overwrite, progress=progress))
-            for res in runner:
-                results[res.key] = res
+        note = _write_description(Path(plan.deriv_dir), overwrite)
+        if note:
+            report.notes.append(note)
+        results: list = [None] * len(plan.series)
+        index = {p.key: i for i, p in enumerate(plan.series) if not p.error}  # keys are unique among these
+        progress = BatchProgress(len(plan.series), quiet=quiet, stream=stream)
+        for i, p in enumerate(plan.series):
+            if p.error:
+                results[i] = SeriesResult(key=p.key, status="failed", reason=p.error)
+                progress.update(p, results[i])
+        created = _make_dirs(sorted({Path(p.out_dir) for p in todo}))
+        try:
+            if todo:
+                runner = (_run_dask(todo, client=client, overwrite=overwrite, progress=progress) if client
+                          else _run_local(todo, n_jobs=n_jobs, overwrite=overwrite, progress=progress))
+                for res in runner:
+                    results[index[res.key]] = res
+        finally:
+            _remove_empty(created)
     finally:
-        _remove_empty(created)
-    report.results = [results.get(p.key + "\0" + p.label) if p.error else results[p.key] for p in plan.series]
+        if client is not None:
+            client.close()
+    report.results = results
     report.wall_time_s = round(time.perf_counter() - t0, 3)
     return report
 
