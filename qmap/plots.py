@@ -236,9 +236,7 @@ def montage(
 def _colormap(name: str):
     import matplotlib
 
-    cmap = matplotlib.colormaps[name].copy()
-    cmap.set_bad(BACKGROUND)
-    return cmap
+    return matplotlib.colormaps[name].with_extremes(bad=BACKGROUND)
 
 
 def stage_previews(writer, maps, prefix: str, *, units: str, mask: np.ndarray) -> list[Path]:

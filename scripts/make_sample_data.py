@@ -5,7 +5,7 @@ The sample data are synthetic: the invented nine-vial phantom of
 :mod:`qmap.simulate.phantoms` at 21.5 C, scanned with every protocol qmap fits
 (inversion recovery, variable flip angle, multi-echo spin echo, multi-echo
 gradient echo, double-angle B1 inputs on a coarser grid), Rician noise at SNR
-100, seed 20240611. The same qmap version and seed give byte-identical images.
+150, seed 20240611. The same qmap version and seed give byte-identical images.
 
 Usage::
 

@@ -1,0 +1,129 @@
+"""qmap demo on the bundled sample data: every fit runs, the phantom passes, the maps match the ground truth."""
+
+from __future__ import annotations
+
+import csv
+import importlib.util
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+from matplotlib import image as mpimg
+
+from qmap.cli import main
+from qmap.plots import PREVIEW_SIZE_PX
+from qmap.workflows.demo import sample_data_dir
+
+DATA = sample_data_dir()
+MANIFEST = json.loads((DATA / "simulation.json").read_text())
+SUB = "sub-phantom"
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "run"
+    import contextlib
+    import io
+
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        code = main(["demo", "-o", str(out), "-q"])
+    return out, code, buf.getvalue()
+
+
+def _truth_median(param, label):
+    truth = nib.load(str(DATA / SUB / "anat" / f"{SUB}_desc-truth_{param}map.nii.gz")).get_fdata()
+    labels = np.asarray(nib.load(str(DATA / MANIFEST["labels"])).dataobj)
+    return float(np.median(truth[labels == label]))
+
+
+def _fitted_median(out, prefix, param, label):
+    img = nib.load(str(out / "maps" / f"{prefix}_{param}map.nii.gz"))
+    units = json.loads((out / "maps" / f"{prefix}_{param}map.json").read_text())["Units"]
+    scale = 1e-3 if units == "ms" else 1.0
+    labels = np.asarray(nib.load(str(DATA / MANIFEST["labels"])).dataobj)
+    v = np.asarray(img.dataobj, float)[labels == label] * scale
+    v = v[np.isfinite(v)]
+    assert v.size >= 20, f"vial {label}: only {v.size} fitted voxels in {prefix}_{param}map"
+    return float(np.median(v))
+
+
+def test_demo_runs_and_the_phantom_passes(demo):
+    out, code, text = demo
+    assert code == 0, text
+    assert "phantom QA (tolerance 10 %): PASSED" in text
+    params = {}
+    for sub in ("phantom", "phantom-vfa"):
+        assert (out / sub / "phantom_report.html").is_file()
+        with open(out / sub / "phantom_results.csv") as fh:
+            rows = list(csv.DictReader(fh))
+        assert rows and all(r["pass"] == "true" for r in rows)
+        params[sub] = {r["parameter"] for r in rows}
+    assert params == {"phantom": {"T1", "T2", "T2star"}, "phantom-vfa": {"T1"}}
+
+
+@pytest.mark.parametrize("prefix,param", [("ir", "T1"), ("vfa", "T1"), ("mese", "T2")])
+def test_fitted_medians_match_the_ground_truth(demo, prefix, param):
+    # the requirement of the sample data: median per vial within 2 % of the simulation's truth (T1 and T2)
+    out = demo[0]
+    for label in range(1, 10):
+        truth = _truth_median(param, label)
+        fitted = _fitted_median(out, prefix, param, label)
+        assert abs(fitted - truth) / truth < 0.02, (prefix, param, label, fitted, truth)
+
+
+def test_t2star_and_b1_are_close_to_the_truth(demo):
+    out = demo[0]
+    for label in range(1, 10):
+        t = _truth_median("T2star", label)
+        assert abs(_fitted_median(out, "megre", "T2star", label) - t) / t < 0.02
+    # B1 on its own coarse grid against the true field there (double-angle method)
+    b1 = nib.load(str(out / "maps" / "b1_TB1map.nii.gz")).get_fdata()
+    ref = nib.load(str(DATA / MANIFEST["truth"]["TB1_lowres"])).get_fdata()
+    ok = np.isfinite(b1)
+    assert ok.sum() > 400
+    assert np.median(np.abs(b1[ok] - ref[ok])) < 0.01
+
+
+def test_printed_table_matches_the_maps(demo):
+    out, _, text = demo
+    row = next(ln for ln in text.splitlines() if ln.startswith("vial-E"))
+    printed_ir_t1_ms = float(row.split()[1])
+    assert printed_ir_t1_ms == pytest.approx(_fitted_median(out, "ir", "T1", 5) * 1e3, rel=1e-3)
+
+
+def test_previews_of_every_map(demo):
+    maps = demo[0] / "maps"
+    pngs = sorted(maps.glob("*map.png"))
+    names = {p.name for p in pngs}
+    assert {"ir_T1map.png", "vfa_T1map.png", "mese_T2map.png", "megre_T2starmap.png", "b1_TB1map.png"} <= names
+    for p in pngs:
+        img = mpimg.imread(str(p))
+        assert (img.shape[1], img.shape[0]) == PREVIEW_SIZE_PX
+
+
+def test_rerun_without_overwrite_is_refused(demo):
+    out = demo[0]
+    before = sorted(p.name for p in (out / "maps").iterdir())
+    assert main(["demo", "-o", str(out), "-q"]) == 2
+    assert sorted(p.name for p in (out / "maps").iterdir()) == before
+
+
+def test_sample_data_are_small_documented_and_regenerable(tmp_path):
+    files = [p for p in DATA.rglob("*") if p.is_file()]
+    assert sum(p.stat().st_size for p in files) < 5e6
+    readme = (DATA / "README.md").read_text()
+    assert "synthetic" in readme and "invented" in readme and "make_sample_data.py" in readme
+    # the generator script reproduces the shipped images
+    script = Path(__file__).resolve().parents[1] / "scripts" / "make_sample_data.py"
+    spec = importlib.util.spec_from_file_location("make_sample_data", script)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    assert mod.main(["--out", str(tmp_path / "regen")]) == 0
+    for rel in (MANIFEST["series"]["ir"]["files"][0], MANIFEST["series"]["mese"]["files"][-1],
+                MANIFEST["series"]["b1"]["files"][1], MANIFEST["labels"]):
+        a = np.asarray(nib.load(str(DATA / rel)).dataobj)
+        b = np.asarray(nib.load(str(tmp_path / "regen" / rel)).dataobj)
+        np.testing.assert_allclose(b, a, rtol=1e-5, atol=1e-4)
