@@ -153,9 +153,9 @@ def _block(nu: np.ndarray, sigma, coils: int, out_e: np.ndarray, out_d: np.ndarr
     """
     c, d, t_switch = _series(coils)
     a = np.abs(nu)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         t = np.divide(sigma, a)
-    t *= t
+        t *= t  # may overflow to inf for |nu| << sigma: the exact form takes those
     high = t <= t_switch  # NaN compares False: handled by the exact form
     np.minimum(t, t_switch, out=t)  # keeps the (discarded) series finite
     _horner(c, t, out_e)
@@ -550,7 +550,10 @@ def otsu_threshold(values: npt.ArrayLike) -> float:
     with np.errstate(divide="ignore", invalid="ignore"):
         between = w0 * w1 * (s0 / w0 - s1 / w1) ** 2
     between = np.where((w0 > 0) & (w1 > 0), between, -1.0)
-    k = int(np.argmax(between))
+    # with well separated classes the score is flat across the empty gap between them: take the
+    # middle of that plateau, not its first bin (which sits right on top of the lower class)
+    best = np.flatnonzero(between >= between.max() * (1 - 1e-9))
+    k = int(best[best.size // 2]) if np.all(np.diff(best) == 1) else int(best[0])
     return float(edges[k + 1])
 
 
