@@ -190,7 +190,7 @@ def _run_dask(chunks, args, scheduler, progress):
             "--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])"
         ) from None
     try:
-        client = Client(scheduler, timeout=20, set_as_default=False)
+        client = Client(scheduler, timeout=10, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
         raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
     try:

@@ -1,7 +1,7 @@
 """From a loaded series to written maps: mask, noise level, fit, outputs, provenance.
 
 Every fitting command ends in :func:`run_fit`; the command-specific part (which
-series key, which model, which per-voxel inputs) lives in :mod:`qmap.commands`.
+series key, which model, which per-voxel inputs) lives in :mod:`qmap.workflows`.
 """
 
 from __future__ import annotations
