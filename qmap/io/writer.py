@@ -121,15 +121,19 @@ class AtomicWriter:
 
     # -- context management -------------------------------------------------
     def __enter__(self):
+        missing = []
+        p = self.out_dir.absolute()
+        while not p.exists():
+            missing.append(p)
+            p = p.parent
+        if not p.is_dir():
+            raise OutputError(f"cannot use {self.out_dir} as the output folder: {p} is a file, not a folder; "
+                              f"choose another -o")
+        self._created = missing  # deepest first; removed again if anything fails, even mkdir half-way
         try:
-            missing = []
-            p = self.out_dir.absolute()
-            while not p.exists():
-                missing.append(p)
-                p = p.parent
             self.out_dir.mkdir(parents=True, exist_ok=True)
-            self._created = missing  # deepest first
         except OSError as exc:
+            self._remove_created()
             raise OutputError(f"cannot create the output folder {self.out_dir} ({exc.strerror}); choose another -o") from None
         if not os.access(self.out_dir, os.W_OK | os.X_OK):
             self._remove_created()
