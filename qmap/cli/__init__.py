@@ -106,7 +106,8 @@ def main(argv: list[str] | None = None) -> int:
             sys.stderr.write("qmap: interrupted after the outputs were written; they are complete\n")
         return 130
     except MemoryError:
-        sys.stderr.write("qmap: error: out of memory; fit fewer voxels at a time (--chunk-size) or use a larger machine\n")
+        sys.stderr.write("qmap: error: out of memory; fitting commands can read the series in slabs (--max-memory) "
+                         "and fit fewer voxels at a time (--chunk-size); otherwise use less data or a larger machine\n")
         return 2
     except Exception:  # a bug: keep the traceback for the report
         traceback.print_exc()
