@@ -1039,3 +1039,24 @@ def test_vfa_b1_map_covering_part_of_the_data(tmp_path, capsys):
     assert np.all(status[in_mask_outside_b1] == 6)
     assert prov["status_counts"]["6"] == int(in_mask_outside_b1.sum())
     assert str(b1.absolute()) in [e["path"] for e in prov["inputs"]]
+
+
+def test_batch_isolates_a_corrupt_series(tmp_path, phantom, capsys):
+    """batch: a corrupt series fails alone (exit 4, listed with its reason); the good one is complete and the
+    failed one leaves no file behind (INTERFACE.md, batch semantics)."""
+    data, *_ = phantom
+    bids = _bids(tmp_path, data=data, corrupt_mese=True)
+    before = snapshot(bids)
+    out = tmp_path / "deriv"
+    rc, stdout, err = cli(["batch", bids, "-o", out, "-q", "-j", "1"], capsys)
+    assert rc == 4, err
+    assert "Traceback" not in err
+    failed = [ln for ln in (stdout + err).splitlines() if "MESE" in ln]
+    assert failed and any("not a readable NIfTI" in ln for ln in failed), stdout + err
+    names = sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
+    assert "dataset_description.json" in names
+    assert "sub-01/anat/sub-01_acq-megre_provenance.json" in names
+    assert not [n for n in names if "mese" in n.lower() or ".qmap-" in n], names
+    prov = json.loads((out / "sub-01/anat/sub-01_acq-megre_provenance.json").read_text())
+    assert all((out / "sub-01/anat" / n).is_file() for n in prov["outputs"])
+    assert snapshot(bids) == before  # the dataset itself is never written to
