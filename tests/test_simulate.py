@@ -13,7 +13,7 @@ from scipy import stats
 from qmap.cli import main
 from qmap.simulate import grid_affine, lowres_grid, simulate
 from qmap.simulate import signals
-from qmap.simulate.phantoms import TEMP_COEFF, VIALS, b1_field, vial_properties
+from qmap.simulate.phantoms import TEMP_COEFF, VIALS, b1_field, make_phantom, vial_properties
 from tests.reference.bloch import afi_signals_bloch, ir_signal_bloch, spgr_signal_bloch
 
 
@@ -131,9 +131,11 @@ def test_reference_table_interpolates_to_the_simulated_truth(sim):
 def test_noise_level_in_the_background(sim):
     # background (air) voxels are pure Rayleigh noise: mean sigma sqrt(pi/2) (Gudbjartsson & Patz 1995)
     out, man = sim
-    lab_all = simulate.__globals__["make_phantom"]("vials", (32, 32, 4)).labels
+    ph = make_phantom("vials", (32, 32, 4))
+    air = sum(ph.fractions.values()) == 0  # no compartment at all in the voxel (partial volume excluded)
     vol = nib.load(str(out / man["series"]["ir"]["files"][0])).get_fdata()
-    bg = vol[lab_all == 0]
+    bg = vol[air]
+    assert bg.size > 1000
     sigma = man["series"]["ir"]["noise_sigma"]
     assert bg.mean() == pytest.approx(sigma * np.sqrt(np.pi / 2), rel=0.06)
 
@@ -151,6 +153,19 @@ def test_lowres_b1_grid_is_the_block_average(sim):
         np.testing.assert_allclose(lo.affine @ [*ijk, 1], np.mean(block, axis=0), atol=1e-9)
         want = hi.get_fdata()[2 * ijk[0]:2 * ijk[0] + 2, 2 * ijk[1]:2 * ijk[1] + 2, 2 * ijk[2]:2 * ijk[2] + 2].mean()
         assert lo.get_fdata()[ijk] == pytest.approx(want, rel=1e-6)
+
+
+def test_partial_volume_fractions():
+    ph = make_phantom("vials", (48, 48, 2))
+    total = sum(ph.fractions.values())
+    assert np.all(total <= 1 + 1e-12)
+    edge = (total > 0) & (total < 1)
+    assert edge.any()  # the container edge is partly filled
+    # the container (radius 0.75 of the half field of view) covers pi 0.75^2 / 4 of each slice
+    assert total[:, :, 0].sum() / 48**2 == pytest.approx(np.pi * 0.75**2 / 4, rel=0.01)
+    # region labels hold only voxels entirely inside a vial
+    for lab in range(1, 10):
+        np.testing.assert_allclose(ph.fractions[lab][ph.roi == lab], 1.0)
 
 
 def test_b1_field_is_smooth_and_spans_the_range():
