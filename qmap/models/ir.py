@@ -40,7 +40,7 @@ __all__ = ["ir_signal", "InversionRecovery", "SIGNALS", "t1_bounds"]
 SIGNALS = ("magnitude", "real", "complex")
 
 #: start-grid points per decade of T1
-GRID_PER_DECADE = 8
+GRID_PER_DECADE = 6
 
 
 def ir_signal(ti: ArrayLike, t1: ArrayLike, *, m0: ArrayLike = 1.0, efficiency: ArrayLike = 1.0) -> np.ndarray:
@@ -238,7 +238,7 @@ class InversionRecovery(SeparableModel):
 
 
 def vp_t1(ti: np.ndarray, y: np.ndarray, grid: np.ndarray, bounds, *, max_iter: int = 40,
-          rtol: float = 1e-11) -> np.ndarray:
+          rtol: float = 1e-12) -> np.ndarray:
     """Least-squares T1 of ``y = a + b exp(-TI/T1)`` per voxel, a and b eliminated (variable projection).
 
     Parameters
@@ -264,8 +264,9 @@ def vp_t1(ti: np.ndarray, y: np.ndarray, grid: np.ndarray, bounds, *, max_iter: 
     Newton iteration maximises ``g(r) = ln (c.y)^2 - ln |c|^2``. Only the
     index of the best grid point comes from a matrix product; everything
     after it is element-wise per voxel (results do not depend on which
-    voxels share a chunk). Each voxel stops updating once its own Newton
-    step (or its bracket) is below ``rtol`` relative.
+    voxels share a chunk). Each voxel stops once its own Newton step is
+    below ``sqrt(rtol)`` relative (the error after it is of order the step
+    squared) or its bracket is below ``rtol``.
     """
     m = ti.size
     t = ti[:, None]
@@ -274,13 +275,21 @@ def vp_t1(ti: np.ndarray, y: np.ndarray, grid: np.ndarray, bounds, *, max_iter: 
     c = e - e.mean(axis=1, keepdims=True)
     c /= np.sqrt(np.sum(c * c, axis=1, keepdims=True))
     best = np.argmax(np.abs(c @ y.T), axis=0)
-    r = 1.0 / grid[best]
-    r_lo, r_hi = 1.0 / bounds[1][0], 1.0 / bounds[0][0]
+    G = grid.size
+    below, above = np.maximum(best - 1, 0), np.minimum(best + 1, G - 1)
     rgrid = 1.0 / grid
-    lo = np.where(best + 1 < grid.size, rgrid[np.minimum(best + 1, grid.size - 1)], r_lo)
-    hi = np.where(best > 0, rgrid[np.maximum(best - 1, 0)], r_hi)
+    lo = np.where(best + 1 < G, rgrid[above], 1.0 / bounds[1][0])
+    hi = np.where(best > 0, rgrid[below], 1.0 / bounds[0][0])
     yt = y.T.copy()
     yt -= _colsum(yt) / m
+    # start: vertex of the parabola through the scores (c.y)^2 at the best grid point and its
+    # neighbours (grid uniform in log T1), recomputed element-wise
+    ct = c.T
+    f0, f1, f2 = (_colsum(ct[:, j] * yt) ** 2 for j in (below, best, above))
+    den = f0 - 2.0 * f1 + f2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d = np.where((den < 0) & (below != best) & (above != best), 0.5 * (f0 - f2) / den, 0.0)
+    r = rgrid[best] * (grid[0] / grid[1]) ** np.clip(d, -0.5, 0.5)
     # working set: compacted copies of the voxels still iterating (compacted when half are done)
     idx = np.arange(r.size)
     wr, wlo, whi, wy = r.copy(), lo, hi, yt
@@ -312,7 +321,8 @@ def vp_t1(ti: np.ndarray, y: np.ndarray, grid: np.ndarray, bounds, *, max_iter: 
             rn = wr + step
             rn = np.where(newton & (rn >= wlo) & (rn <= whi), rn, 0.5 * (wlo + whi))
             ok = np.isfinite(rn) & np.isfinite(g1)
-            done = ~ok | (newton & (np.abs(step) <= rtol * wr)) | (g1 == 0) | (whi - wlo <= rtol * wr)
+            # a Newton step below sqrt(rtol) leaves an error of order step^2: accept it and stop
+            done = ~ok | (newton & (np.abs(step) <= np.sqrt(rtol) * wr)) | (g1 == 0) | (whi - wlo <= rtol * wr)
             wr = np.where(live & ok, rn, wr)
             live &= ~done
             if not live.any():
