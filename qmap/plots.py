@@ -10,7 +10,9 @@ array axis running left to right and the second bottom to top; voxels outside
 the mask (or without an estimate) are white inside a grey frame that marks
 the field of view, fitted voxels with a perceptually
 uniform colour map over a robust range (the 2nd to 98th percentile of the
-fitted values), and a colour bar labelled with the parameter and its units.
+fitted values; logarithmic for times and rates whose range spans more than a
+factor of 8, so that short and long values both show), and a colour bar
+labelled with the parameter and its units.
 """
 
 from __future__ import annotations
@@ -21,6 +23,8 @@ from pathlib import Path
 
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import LogNorm, Normalize
+from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 from matplotlib.figure import Figure
 
 __all__ = [
@@ -46,6 +50,8 @@ PREVIEW_SIZE_PX = (1200, 330)
 VOXEL_PLOT_SIZE_PX = (1000, 700)
 #: Colour of voxels outside the mask / without an estimate.
 BACKGROUND = "white"
+#: Ratio of the colour range's ends above which time and rate maps get a logarithmic colour scale.
+LOG_SPAN = 8.0
 #: Percentiles of the fitted values spanned by the colour scale.
 ROBUST_PERCENTILES = (2.0, 98.0)
 
@@ -200,16 +206,22 @@ def montage(
     # geometry in pixels: panels as large as the height allows (image aspect kept), side by side from the
     # left, the colour bar right after the last one
     top_px, bottom_px, left_px, gap_px = 0.745 * H, 0.03 * H, 0.015 * W, 8.0
-    ph = top_px - bottom_px
+    ph_max = top_px - bottom_px
     aspect = vol.shape[0] / vol.shape[1]  # displayed width / height (first axis horizontal)
-    pw = min(ph * min(max(aspect, 0.2), 5.0), (0.86 * W - gap_px * (n - 1)) / n)
+    aspect = min(max(aspect, 0.2), 5.0)
+    pw = min(ph_max * aspect, (0.86 * W - gap_px * (n - 1)) / n)
+    ph = pw / aspect  # keep the image's proportions when the width is the limit
+    y0 = bottom_px + (ph_max - ph) / 2  # centred vertically
+    log = _use_log(units, vmin, vmax)
+    norm = LogNorm(vmin=vmin, vmax=vmax) if log else Normalize(vmin=vmin, vmax=vmax)
     im = None
     for i, k in enumerate(slices):
-        ax = fig.add_axes(((left_px + i * (pw + gap_px)) / W, bottom_px / H, pw / W, ph / H))
+        ax = fig.add_axes(((left_px + i * (pw + gap_px)) / W, y0 / H, pw / W, ph / H))
         ax.set_facecolor(BACKGROUND)
         sl = np.where(shown[:, :, k], vol[:, :, k], np.nan)
-        im = ax.imshow(sl.T, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax, interpolation="nearest",
-                       aspect="auto")
+        if log:
+            sl = np.where(sl > 0, sl, np.nan)
+        im = ax.imshow(sl.T, origin="lower", cmap=cmap, norm=norm, interpolation="nearest", aspect="auto")
         ax.set_xticks([])
         ax.set_yticks([])
         for s in ax.spines.values():
@@ -217,20 +229,29 @@ def montage(
         ax.text(0.03, 0.97, f"slice z = {k}", transform=ax.transAxes, color="white", fontsize=9, va="top", ha="left",
                 bbox={"boxstyle": "round,pad=0.15", "fc": "black", "ec": "none", "alpha": 0.55})
     cb_left = left_px + n * (pw + gap_px) + 10.0
-    cax = fig.add_axes((cb_left / W, (bottom_px + 0.08 * ph) / H, 14.0 / W, 0.84 * ph / H))
+    cax = fig.add_axes((cb_left / W, (y0 + 0.08 * ph) / H, 14.0 / W, 0.84 * ph / H))
     if im is not None:
         cb = fig.colorbar(im, cax=cax, extend="both")
         cb.set_label(f"{param} [{_units_label(units)}]", fontsize=9)
+        if log:  # plain numbers at 1, 2, 5 x 10^k instead of powers of ten
+            cb.ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+            cb.ax.yaxis.set_major_formatter(FormatStrFormatter("%g"))
+            cb.ax.yaxis.set_minor_formatter(NullFormatter())
         cb.ax.tick_params(labelsize=8)
     fig.text(0.015, 0.965, title, fontsize=12, fontweight="bold", va="top", ha="left")
     if description:
         fig.text(0.015, 0.885, textwrap.shorten(description, 190, placeholder=" ..."), fontsize=9, va="top",
                  ha="left", color="#333333")
     fig.text(0.015, 0.825, f"colour range {_fmt(vmin)} to {_fmt(vmax)} {units} (2nd-98th percentile of "
-             f"{int(ranged.sum())} fitted voxels); white = no estimate (not fitted)", fontsize=9, va="top",
+             f"{int(ranged.sum())} fitted voxels{'; logarithmic colour scale' if log else ''}); white = no estimate (not fitted)", fontsize=9, va="top",
              ha="left", color="#333333")
     _save(fig, path)
     return vmin, vmax
+
+
+def _use_log(units: str, vmin: float, vmax: float) -> bool:
+    """Logarithmic colours for times and rates spanning more than :data:`LOG_SPAN` (e.g. 20-500 ms)."""
+    return units in ("s", "ms", "1/s") and vmin > 0 and vmax / vmin > LOG_SPAN
 
 
 def _colormap(name: str):
