@@ -24,20 +24,20 @@ from pathlib import Path
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LogNorm, Normalize
-from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 from matplotlib.figure import Figure
+from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
 __all__ = [
     "MAX_SLICES",
     "PREVIEW_SIZE_PX",
     "VOXEL_PLOT_SIZE_PX",
-    "robust_range",
-    "pick_slices",
     "colormap_for",
     "montage",
-    "stage_previews",
+    "pick_slices",
     "plot_voxel_fit",
     "preview_name",
+    "robust_range",
+    "stage_previews",
 ]
 
 #: Most slices shown in one montage.

@@ -10,8 +10,15 @@ from qmap.cli import main
 from qmap.fitting import status as st
 from qmap.io.writer import AtomicWriter
 from qmap.maps import MapSet
-from qmap.plots import (PREVIEW_SIZE_PX, VOXEL_PLOT_SIZE_PX, montage, pick_slices, plot_voxel_fit, robust_range,
-                        stage_previews)
+from qmap.plots import (
+    PREVIEW_SIZE_PX,
+    VOXEL_PLOT_SIZE_PX,
+    montage,
+    pick_slices,
+    plot_voxel_fit,
+    robust_range,
+    stage_previews,
+)
 from tests.conftest import rician, write_nifti
 
 

@@ -11,8 +11,7 @@ import pytest
 from scipy import stats
 
 from qmap.cli import main
-from qmap.simulate import grid_affine, lowres_grid, simulate
-from qmap.simulate import signals
+from qmap.simulate import grid_affine, lowres_grid, signals, simulate
 from qmap.simulate.phantoms import TEMP_COEFF, VIALS, b1_field, make_phantom, vial_properties
 from tests.reference.bloch import afi_signals_bloch, ir_signal_bloch, spgr_signal_bloch
 
@@ -89,7 +88,7 @@ def sim(tmp_path_factory):
 
 def test_sidecars_and_manifest_agree(sim):
     out, man = sim
-    for name, s in man["series"].items():
+    for s in man["series"].values():
         for rel, value in zip(s["files"], s["values"]):
             side = json.loads((out / rel.replace(".nii.gz", ".json")).read_text())
             assert side[s["key"]] == pytest.approx(value)
@@ -117,7 +116,7 @@ def test_truth_maps_hold_the_phantom_values(sim):
 
 
 def test_reference_table_interpolates_to_the_simulated_truth(sim):
-    out, man = sim
+    out, _ = sim
     with open(out / "phantom_reference.csv") as fh:
         rows = list(csv.DictReader(fh))
     assert {float(r["temperature_C"]) for r in rows} == {20.0, 24.0}

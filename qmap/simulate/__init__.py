@@ -24,12 +24,11 @@ import numpy as np
 from .. import __version__
 from ..errors import UsageError
 from .output import StagedFolder, save_json, save_nifti, volume_names
-from .phantoms import (FILL, PHANTOMS, REFERENCE_TEMPERATURE_C, VIALS, Phantom, b1_field, make_phantom,
-                       vial_properties)
+from .phantoms import FILL, PHANTOMS, REFERENCE_TEMPERATURE_C, VIALS, Phantom, b1_field, make_phantom, vial_properties
 from .protocols import PROTOCOLS, Protocols, Series, synthesise
 from .signals import magnitude_noise
 
-__all__ = ["simulate", "Protocols", "PROTOCOLS", "PHANTOMS", "reference_rows", "grid_affine", "lowres_grid"]
+__all__ = ["PHANTOMS", "PROTOCOLS", "Protocols", "grid_affine", "lowres_grid", "reference_rows", "simulate"]
 
 #: temperatures of the reference table written for the vial phantom, degrees C
 REFERENCE_TEMPERATURES = (20.0, 24.0)
@@ -153,7 +152,7 @@ def simulate(
     shape = ph.labels.shape
     affine = grid_affine(shape, voxel_size)
     b1 = b1_field(shape, voxel_size, low=b1_range[0], high=b1_range[1])
-    lr_shape, lr_affine, lr_f = lowres_grid(shape, affine, settings.b1_factor)
+    _, lr_affine, lr_f = lowres_grid(shape, affine, settings.b1_factor)
     rng = np.random.default_rng(seed)
     sub = f"sub-{subject}"
     manifest = {

@@ -30,7 +30,7 @@ import numpy as np
 
 from ..errors import OutputError, OutputExistsError
 
-__all__ = ["StagedFolder", "save_nifti", "save_json", "volume_names"]
+__all__ = ["StagedFolder", "save_json", "save_nifti", "volume_names"]
 
 
 class StagedFolder:

@@ -29,8 +29,21 @@ import numpy as np
 
 from ..errors import UsageError
 
-__all__ = ["Tissue", "Phantom", "VIALS", "FILL", "TISSUES", "PHANTOMS", "vial_phantom", "head_phantom",
-           "make_phantom", "b1_field", "vial_properties", "TEMP_COEFF", "REFERENCE_TEMPERATURE_C"]
+__all__ = [
+    "FILL",
+    "PHANTOMS",
+    "REFERENCE_TEMPERATURE_C",
+    "TEMP_COEFF",
+    "TISSUES",
+    "VIALS",
+    "Phantom",
+    "Tissue",
+    "b1_field",
+    "head_phantom",
+    "make_phantom",
+    "vial_phantom",
+    "vial_properties",
+]
 
 
 @dataclass(frozen=True)

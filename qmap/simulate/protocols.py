@@ -7,7 +7,7 @@ turns a phantom, a B1 field and a protocol into noise-free volumes.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -15,7 +15,7 @@ from ..errors import UsageError
 from . import signals
 from .phantoms import Phantom
 
-__all__ = ["Protocols", "PROTOCOLS", "Series", "synthesise"]
+__all__ = ["PROTOCOLS", "Protocols", "Series", "synthesise"]
 
 #: protocol names accepted by ``--protocol``
 PROTOCOLS = ("ir", "vfa", "mese", "megre", "b1")
@@ -97,8 +97,6 @@ class Series:
         On the low-resolution B1 grid.
     labels : list of str, optional
         Entity values (default 1..n).
-    per_volume : dict
-        Further per-volume sidecar keys -> (n,) values.
     """
 
     name: str
@@ -110,7 +108,6 @@ class Series:
     sidecar: dict
     lowres: bool = False
     labels: list | None = None
-    per_volume: dict = field(default_factory=dict)
 
 
 def _voxels(ph: Phantom, b1: np.ndarray):
@@ -123,8 +120,8 @@ def _voxels(ph: Phantom, b1: np.ndarray):
         idx.append(sel)
         frac.append(f.ravel()[sel])
         b.append(b1.ravel()[sel])
-        for a in props:
-            props[a].append(np.full(sel.size, getattr(ph.tissues[lab], a)))
+        for a, values in props.items():
+            values.append(np.full(sel.size, getattr(ph.tissues[lab], a)))
     cat = np.concatenate
     return (cat(idx), cat(frac)), {a: cat(v) for a, v in props.items()}, cat(b)
 

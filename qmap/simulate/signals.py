@@ -18,7 +18,7 @@ import numpy as np
 
 from ..epg import cpmg_echoes
 
-__all__ = ["ir", "spgr", "mese", "megre", "afi", "dam", "magnitude_noise"]
+__all__ = ["afi", "dam", "ir", "magnitude_noise", "megre", "mese", "spgr"]
 
 
 def _col(a) -> np.ndarray:

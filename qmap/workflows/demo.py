@@ -32,10 +32,10 @@ import nibabel as nib
 import numpy as np
 
 from ..errors import InputError
-from ..plots import _fmt
 from ..pipeline import CommonOptions
+from ..plots import _fmt
 
-__all__ = ["run_demo", "sample_data_dir", "DemoReport", "FITS"]
+__all__ = ["FITS", "DemoReport", "run_demo", "sample_data_dir"]
 
 #: (prefix, map parameter, column title) of the maps compared with the truth, in print order
 FITS = (("ir", "T1", "T1 IR"), ("vfa", "T1", "T1 VFA+B1"), ("mese", "T2", "T2 EPG"), ("megre", "T2star", "T2*"))

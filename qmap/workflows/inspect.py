@@ -34,7 +34,7 @@ from ..errors import InputError, UsageError
 from ..io.nifti import load_image, read_sidecar
 from ..io.writer import AtomicWriter, sha256_file
 
-__all__ = ["inspect_voxel", "find_prefixes", "parse_voxel", "VoxelReport", "ModelSpec", "MODELS"]
+__all__ = ["MODELS", "ModelSpec", "VoxelReport", "find_prefixes", "inspect_voxel", "parse_voxel"]
 
 log = logging.getLogger("qmap")
 
@@ -203,7 +203,7 @@ def inspect_voxel(
     if not all(0 <= a < b for a, b in zip(ijk, shape)) or len(ijk) != 3:
         raise UsageError(f"--voxel {','.join(map(str, ijk))} lies outside the map grid {tuple(shape)} "
                          f"(indices are 0-based: 0..{shape[0] - 1}, 0..{shape[1] - 1}, 0..{shape[2] - 1})")
-    status = int(round(_map_value(out_dir / status_file, ijk)))
+    status = round(_map_value(out_dir / status_file, ijk))
     codes = prov.get("status_codes", {})
     rep = VoxelReport(prefix=prefix, voxel=ijk, status=status, status_text=codes.get(str(status), "unknown code"))
     # the numbers: straight from the written maps
