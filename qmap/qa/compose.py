@@ -84,10 +84,27 @@ def _history_figures(report, history_rows, trends, session):
     return out
 
 
+def _src(session, key) -> str:
+    src = session.sources[key]
+    return "" if src in ("none", "today") else f" (from {'the sidecar' if src == 'sidecar' else src})"
+
+
+def _date_text(session) -> str:
+    return "not given" if session.sources["date"] == "today" else f"{session.date}{_src(session, 'date')}"
+
+
+def _meta(session, version) -> str:
+    parts = [f"scan date: {session.date}" if session.sources["date"] != "today" else "scan date: not given"]
+    parts += [f"{k}: {getattr(session, k)}" for k in ("scanner", "protocol") if session.sources[k] != "none"]
+    parts.append(f"report generated {dt.datetime.now().strftime('%Y-%m-%d %H:%M')} by qmap {version}")
+    return " \u00b7 ".join(parts)
+
+
 def _settings_pairs(report, session, placed, views):
     s = report.settings
     pairs = [
-        ("session", f"{session.date}, scanner: {session.scanner}, protocol: {session.protocol}"),
+        ("session", "; ".join([f"scan date {_date_text(session)}"]
+                              + [f"{k} {getattr(session, k)}{_src(session, k)}" for k in ("scanner", "protocol")])),
         ("phantom temperature", f"{s['temperature_C']:g} \u00b0C" if s["temperature_C"] is not None
          else "not given"),
         ("reference table", s["reference"] + (f" (values interpolated to {s['temperature_C']:g} \u00b0C for "
@@ -96,8 +113,9 @@ def _settings_pairs(report, session, placed, views):
         ("verdict rule", (f"|error of the ROI {ERROR_BASIS}| <= tolerance (default \u00b1{s['tolerance_pct']:g}%, "
                          f"per-vial values from the table where given) and at least {s['min_voxels']} voxels "
                          f"with a value")),
-        ("ROIs", (f"{s['roi_source']}; eroded by {s['erode_voxels']} voxel(s) (6-connected) against partial "
-                 f"volume at the vial walls")),
+        ("ROIs", f"{s['roi_source']}; " + (
+            f"eroded by {s['erode_voxels']} voxel{'s' if s['erode_voxels'] > 1 else ''} (face neighbours) against "
+            f"partial volume at the vial walls" if s["erode_voxels"] else "used as drawn (not eroded)")),
     ]
     for v in views:
         m = v.map
@@ -132,8 +150,7 @@ def write_outputs(out_dir: Path, *, overwrite, report, views, session, placed, l
         which = ", ".join(f"vial {t.label} {t.parameter}" for t in flagged)
         headline += f" Drifting towards the tolerance limit: {which} (see Drift below)."
     content = ReportContent(
-        title="Relaxometry phantom check", meta=f"{session.date} \u00b7 scanner: {session.scanner} \u00b7 protocol: "
-        f"{session.protocol} \u00b7 generated {dt.datetime.now().strftime('%Y-%m-%d %H:%M')} by qmap {version}",
+        title="Relaxometry phantom check", meta=_meta(session, version),
         passed=report.passed, headline=headline, failures=[describe_failure(r) for r in report.failed],
         drift_lines=[f"vial {t.label} {t.parameter}: error changing by {t.slope_pct_per_day * 30:+.2f} percentage "
                      f"points per 30 days over the last "

@@ -9,7 +9,8 @@ Layout file (CSV)::
 
 ``label`` (the vial's number, as in the reference table), ``x_mm``,
 ``y_mm`` (vial centre in the phantom's own frame, mm), ``radius_mm`` (radius
-of the ROI to draw, mm -- smaller than the vial, to stay clear of its wall),
+of the ROI to draw, mm -- smaller than the vial, to stay clear of its wall;
+the drawn ROIs are therefore not eroded unless ``--erode`` asks for it),
 optional ``z_mm`` and ``name``.
 
 Geometry:
@@ -154,13 +155,14 @@ class LayoutResult:
     mirrored: bool
     residual_mm: dict  # label -> distance between matched layout vial and detection (mm)
     not_detected: list  # labels whose ROI was placed from the layout alone
+    rotation_deg: float  # angle of the rotation layout -> image (of its proper part when mirrored)
     warnings: list = field(default_factory=list)
 
     def summary(self) -> dict:
         return {
             "geometry": self.geometry, "detected_components": self.n_detected, "threshold": self.threshold,
             "matched_vials": len(self.match.pairs), "rms_residual_mm": self.match.rms_mm,
-            "max_residual_mm": self.match.max_mm, "rotation_deg": self.match.angle_deg,
+            "max_residual_mm": self.match.max_mm, "rotation_deg": self.rotation_deg,
             "mirrored": self.mirrored, "residual_mm": {str(k): v for k, v in self.residual_mm.items()},
             "not_detected": self.not_detected,
         }
@@ -231,6 +233,7 @@ def place_rois(image: np.ndarray, affine: np.ndarray, layout: Layout, *, source:
     elif mirrored:
         warnings.append(f"the layout {layout.path} matches the image only as its mirror image (x flipped); check "
                         f"phantom_labels.nii.gz, and flip x_mm in the layout if it was written from the other side")
+    rotation_deg = match.angle_deg  # of the proper rotation, before folding the mirror into the matrix
     if mirrored:
         match.rotation = match.rotation @ np.diag(flip)
     centres = match.apply(lay)
@@ -249,7 +252,7 @@ def place_rois(image: np.ndarray, affine: np.ndarray, layout: Layout, *, source:
         warnings.append(f"{overlap} voxels lie within the radius of two ROIs; each went to the nearer vial "
                         f"(radius_mm in the layout may be too large)")
     return LayoutResult(labels, affine, match, "3D" if three_d else "2D", len(blobs), thr, mirrored, residual,
-                        not_detected, warnings)
+                        not_detected, rotation_deg, warnings)
 
 
 def _draw(shape, affine, centres, layout: Layout, k_ranges, common, u, v) -> tuple[np.ndarray, int]:

@@ -86,6 +86,7 @@ def test_mirrored_layout_is_accepted_with_a_warning():
     flipped = LAYOUT_XY * [-1.0, 1.0]
     res = place_rois(image, AFFINE, _layout(flipped))
     assert res.mirrored and any("mirror" in w for w in res.warnings)
+    assert res.match.rms_mm < 1.0 and res.summary()["rotation_deg"] == pytest.approx(10.0, abs=1.0)
     assert min(_dice(res.labels == k, truth == k) for k in range(1, 9)) > 0.9
 
 
