@@ -698,6 +698,63 @@ REFUSED += [
     Case("tolerance-negative", PH, lambda d, _: _phantom(d, extra=("--temperature", "21.5", "--tolerance", "-5")),
          (r"--tolerance", r"positive")),
 ]
+
+TI = np.array([0.05, 0.15, 0.4, 0.8, 1.5, 3.0])
+TI_MS = ",".join(f"{t * 1e3:g}ms" for t in TI)
+
+
+def _ir_complex():
+    """Inversion recovery S = M0 (1 - 2 exp(-TI/T1)) (common practice) with a constant phase of 0.7 rad and noise."""
+    x, _, obj = _disc()
+    t1 = np.where(obj, 0.3 + 1.5 * x / 31, 1.0)[..., None]
+    rng = np.random.default_rng(4)
+    s = np.where(obj[..., None], 2000 * (1 - 2 * np.exp(-TI / t1)), 0.0) * np.exp(0.7j)
+    return (s + rng.normal(0, 5, s.shape) + 1j * rng.normal(0, 5, s.shape)).astype(np.complex64)
+
+
+def _ir(d, kind="magnitude", sidecar=True, n=None, name="sub-01_IRT1.nii.gz", **sc):
+    c = _ir_complex()
+    data = {"magnitude": np.abs(c), "complex": c, "real": (c * np.exp(-0.7j)).real, "phase": np.angle(c)}[kind]
+    data = data[..., :n] if n else data
+    meta = {"InversionTime": TI[: data.shape[-1]].tolist()} if sidecar else None
+    if meta is not None:
+        meta.update(sc)
+    return write_nifti(d / name, data, affine=AFFINE, sidecar=meta)
+
+
+IR = "t1-ir"
+REFUSED += [
+    Case("magnitude-as-complex", IR, lambda d, _: [_ir(d), "--signal", "complex"],
+         (r"--signal complex", r"real values", r"--phase")),
+    Case("complex-as-magnitude", IR, lambda d, _: [_ir(d, "complex")], (r"complex", r"--signal complex")),
+    Case("signed-real-as-magnitude", IR, lambda d, _: [_ir(d, "real")], (r"negative", r"--signal real")),
+    Case("phase-in-degrees", IR, lambda d, _: [
+        _ir(d), "--signal", "complex", "--phase",
+        write_nifti(d / "phase.nii.gz", np.degrees(np.angle(_ir_complex())), affine=AFFINE)],
+         (r"--phase", r"radians")),
+    Case("phase-count-mismatch", IR, lambda d, _: [
+        _ir(d), "--signal", "complex", "--phase", _ir(d, "phase", sidecar=False, n=3, name="phase.nii.gz")],
+         (r"--phase", r"3 phase volumes for 6", r"one phase image per inversion time")),
+    Case("phase-without-complex", IR, lambda d, _: [_ir(d), "--phase", _ir(d, "phase", False, name="ph.nii.gz")],
+         (r"--phase", r"--signal complex")),
+    Case("phase-with-complex-series", IR, lambda d, _: [
+        _ir(d, "complex"), "--signal", "complex", "--phase", _ir(d, "phase", False, name="ph.nii.gz")],
+         (r"--phase", r"not both")),
+    Case("ti-count-mismatch", IR, lambda d, _: [_ir(d, sidecar=False), "--ti", "50ms,150ms"],
+         (r"--ti", r"2 values.*6 volumes")),
+    Case("ti-bare-ms", IR, lambda d, _: [_ir(d, sidecar=False), "--ti", "50,150,400,800,1500,3000"],
+         (r"implausible", r"50ms,150ms")),
+    Case("ti-duplicated", IR, lambda d, _: [_ir(d, sidecar=False), "--ti", "50ms,150ms,150ms,800ms,1.5s,3s"],
+         (r"repeated InversionTime",)),
+    Case("ti-negative", IR, lambda d, _: [_ir(d, sidecar=False), "--ti=-50ms,150ms,400ms,800ms,1.5s,3s"],
+         (r"InversionTime", r"negative")),
+    Case("sidecar-ti-string", IR, lambda d, _: [_ir(d, InversionTime="50ms")], (r"InversionTime", r"str")),
+    Case("sidecar-ti-in-ms", IR, lambda d, _: [_ir(d, InversionTime=(TI * 1e3).tolist())],
+         (r"InversionTime", r"implausible", r"divide them by 1000")),
+    Case("too-few-inversion-times", IR, lambda d, _: [_ir(d, n=3)], (r"3 volumes", r"at least 4")),
+    Case("tr-shorter-than-ti", IR, lambda d, _: [_ir(d), "--tr", "1s"], (r"RepetitionTime", r"--tr")),
+]
+
 for _c in REFUSED:
     if _c.command in (INS,):
         _c.style = "none"
