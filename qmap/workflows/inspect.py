@@ -224,7 +224,8 @@ def inspect_voxel(
     mname = prov.get("model", {}).get("name")
     spec: ModelSpec | None = MODELS.get(mname)
     if spec is None:
-        raise UsageError(f"{prefix}: inspect cannot redraw fits of model {mname!r} (it knows {', '.join(MODELS)})")
+        raise UsageError(f"{prefix}: model {mname!r} has no fitted curve to draw; inspect redraws the fits of t1-ir, "
+                         f"t1-vfa, t2 and t2star (models {', '.join(MODELS)})")
     fig = _figure(spec, prov, ijk, rep)
     png = Path(out_png) if out_png is not None else out_dir / f"{prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
     with AtomicWriter(png.parent, overwrite=True) as w:
