@@ -186,6 +186,52 @@ def test_monoexp_with_offset_recovers_random_parameters(te, data):
                                atol=1e-6 * m0.max())
 
 
+@SETTINGS
+@given(data=st.data(), signal=st.sampled_from(["real", "magnitude"]))
+def test_inversion_recovery_recovers_random_parameters(data, signal):
+    """S = a + b exp(-TI/T1) with b = -a (1 + k), k the inversion efficiency (common practice)."""
+    from qmap.models.ir import InversionRecovery
+
+    m = data.draw(st.integers(5, 10))
+    ti0 = data.draw(st.floats(0.02, 0.1))
+    ratio = data.draw(st.floats(1.5, 2.5))
+    ti = ti0 * ratio ** np.arange(m)
+    model = InversionRecovery(ti, signal=signal)
+    n = 5
+    # T1 seen by the train: between twice the first TI and two thirds of the last
+    t1 = np.exp(data.draw(st.lists(st.floats(np.log(2 * ti[0]), np.log(ti[-1] / 1.5)), min_size=n, max_size=n)))
+    a = np.asarray(data.draw(st.lists(st.floats(100, 5000), min_size=n, max_size=n)))
+    k = np.asarray(data.draw(st.lists(st.floats(0.8, 1.0), min_size=n, max_size=n)))
+    params = np.column_stack([a, -a * (1 + k), t1])
+    y = model.predict(params)
+    if signal == "magnitude":
+        y = np.abs(y)
+    fit = fit_chunk(model, y)
+    assert np.all(fit.status == 0), fit.status
+    np.testing.assert_allclose(fit.params, params, rtol=1e-6)
+
+
+@SETTINGS
+@given(data=st.data())
+def test_spoiled_gre_recovers_random_parameters(data):
+    """S = M0 sin(B1 a) (1 - E1) / (1 - cos(B1 a) E1), E1 = exp(-TR/T1) (Ernst & Anderson 1966), per-voxel B1."""
+    from qmap.models.vfa import SpoiledGRE
+
+    tr = data.draw(st.floats(0.005, 0.03))
+    low = data.draw(st.floats(2.0, 5.0))
+    fa = np.array([low, low * 2.5, low * 5.0, low * 8.0])[: data.draw(st.integers(3, 4))]
+    model = SpoiledGRE(fa, tr)
+    n = 5
+    t1 = np.exp(data.draw(st.lists(st.floats(np.log(0.2), np.log(3.0)), min_size=n, max_size=n)))
+    m0 = data.draw(st.lists(st.floats(100, 1e4), min_size=n, max_size=n))
+    b1 = np.asarray(data.draw(st.lists(st.floats(0.7, 1.3), min_size=n, max_size=n)))
+    params = np.column_stack([m0, t1])
+    ctx = {"b1": b1}
+    fit = fit_chunk(model, model.predict(params, ctx), ctx=ctx)
+    assert np.all(fit.status == 0), fit.status
+    np.testing.assert_allclose(fit.params, params, rtol=1e-6)
+
+
 # --------------------------------------------------------------------------- determinism
 
 
