@@ -10,14 +10,32 @@ File-level workflows (one per command) live in :mod:`qmap.workflows`.
 
 __version__ = "0.1.0"
 
-from .api import fit_decay, fit_t2star  # noqa: E402
+from .api import b1_maps, fit_decay, fit_t1_ir, fit_t1_vfa, fit_t2, fit_t2star  # noqa: E402
 from .errors import InputError, QmapError, UsageError  # noqa: E402
 from .maps import MapSet, fit_volume  # noqa: E402
+
+
+def __getattr__(name):  # heavier entry points are imported on first use
+    if name == "run_batch":
+        from .batch import run_batch
+
+        return run_batch
+    if name == "run_phantom":
+        from .workflows.phantom import run_phantom
+
+        return run_phantom
+    raise AttributeError(f"module 'qmap' has no attribute {name!r}")
 
 __all__ = [
     "__version__",
     "fit_decay",
     "fit_t2star",
+    "fit_t2",
+    "fit_t1_ir",
+    "fit_t1_vfa",
+    "b1_maps",
+    "run_batch",
+    "run_phantom",
     "fit_volume",
     "MapSet",
     "QmapError",

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import logging
+import os
 import sys
 import traceback
 
@@ -105,6 +106,12 @@ def main(argv: list[str] | None = None) -> int:
         else:  # the interrupt came after a complete set of outputs was put in place
             sys.stderr.write("qmap: interrupted after the outputs were written; they are complete\n")
         return 130
+    except BrokenPipeError:  # e.g. `qmap ... | head`: the reader went away; not an error of ours
+        try:
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
+        except OSError:
+            pass
+        return 0
     except MemoryError:
         sys.stderr.write("qmap: error: out of memory; fitting commands can read the series in slabs (--max-memory) "
                          "and fit fewer voxels at a time (--chunk-size); otherwise use less data or a larger machine\n")
