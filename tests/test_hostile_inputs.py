@@ -1205,3 +1205,25 @@ def test_batch_isolates_a_corrupt_series(tmp_path, phantom, capsys):
     prov = json.loads((out / "sub-01/anat/sub-01_acq-megre_provenance.json").read_text())
     assert all((out / "sub-01/anat" / n).is_file() for n in prov["outputs"])
     assert snapshot(bids) == before  # the dataset itself is never written to
+
+
+_SIM_JSON_XFAIL = pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
+    "qmap/simulate/output.py save_json does not turn OSError into OutputError (save_nifti does): a full disk while "
+    "writing a sidecar is a traceback with exit 1; proposed: wrap the write in try/except OSError -> "
+    "OutputError(f'cannot write {path} ({exc.strerror}); check free space and permissions')"))
+
+
+@pytest.mark.parametrize("suffix", [".nii.gz", pytest.param(".json", marks=_SIM_JSON_XFAIL)])
+def test_simulate_disk_full(suffix, tmp_path, capsys, monkeypatch):
+    """simulate: a full disk while its files are written gives exit 2, one line, and no folder."""
+    import qmap.simulate.output as sim_out
+
+    if suffix == ".nii.gz":
+        monkeypatch.setattr(sim_out.nib, "save", _FailAt(sim_out.nib.save, 3, _enospc))
+    else:
+        monkeypatch.setattr(sim_out, "open", _open_failing_for(suffix), raising=False)
+    rc, _, err = cli(["simulate", "-o", tmp_path / "sim", "--protocol", "megre"], capsys)
+    monkeypatch.undo()
+    line = one_line(err)
+    assert rc == 2 and "space" in line, line
+    assert list(tmp_path.iterdir()) == []
