@@ -297,10 +297,6 @@ def test_interrupted_batch_keeps_no_partial_series(tmp_path, monkeypatch, capsys
     assert set(snapshot(tmp_path / "deriv")) <= {"dataset_description.json"}
 
 
-@pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-    "qmap/simulate/output.py StagedFolder.__enter__ creates the missing parents of -o (target.parent.mkdir("
-    "parents=True)) and never removes them; proposed: record the folders it created (as AtomicWriter does) and "
-    "remove them in __exit__ when the folder was not committed"))
 def test_interrupted_simulate_creates_nothing(tmp_path, monkeypatch, capsys):
     import qmap.simulate.output as sim_out
 

@@ -44,9 +44,15 @@ class StagedFolder:
             raise OutputExistsError(f"-o {self.target}: the folder is not empty; pass --overwrite to replace it, "
                                     f"or choose another -o")
         self.tmp = self.target.with_name(f".{self.target.name}.qmap-tmp-{os.getpid()}")
+        self._created: list[Path] = []  # parent folders this run made (removed again unless committed)
+        self._committed = False
 
     def __enter__(self):
         try:
+            p = self.target.parent
+            while not p.exists():
+                self._created.append(p)
+                p = p.parent
             self.target.parent.mkdir(parents=True, exist_ok=True)
             if self.tmp.exists():
                 shutil.rmtree(self.tmp)
@@ -58,6 +64,12 @@ class StagedFolder:
     def __exit__(self, exc_type, exc, tb):
         if self.tmp.exists():
             shutil.rmtree(self.tmp, ignore_errors=True)
+        if not self._committed:
+            for d in self._created:  # deepest first
+                try:
+                    d.rmdir()
+                except OSError:
+                    break
         return False
 
     def path(self, rel: str) -> Path:
@@ -73,6 +85,7 @@ class StagedFolder:
         os.replace(self.tmp, self.target)
         if old is not None:
             shutil.rmtree(old, ignore_errors=True)
+        self._committed = True
         return self.target
 
 
