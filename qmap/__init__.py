@@ -10,12 +10,20 @@ File-level workflows (one per command) live in :mod:`qmap.workflows`.
 
 __version__ = "0.1.0"
 
-from .api import b1_maps, fit_decay, fit_t1_ir, fit_t1_vfa, fit_t2, fit_t2star  # noqa: E402
 from .errors import InputError, QmapError, UsageError  # noqa: E402
-from .maps import MapSet, fit_volume  # noqa: E402
+
+_API = {"b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"}
 
 
-def __getattr__(name):  # heavier entry points are imported on first use
+def __getattr__(name):  # entry points are imported on first use (keeps `qmap --version` fast)
+    if name in _API:
+        from . import api
+
+        return getattr(api, name)
+    if name in ("MapSet", "fit_volume"):
+        from . import maps
+
+        return getattr(maps, name)
     if name == "run_batch":
         from .batch import run_batch
 

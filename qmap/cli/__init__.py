@@ -51,26 +51,27 @@ class _OneLine(logging.Formatter):
         return f"qmap: {record.levelname.lower()}: {record.getMessage()}"
 
 
-def _modules():
+def _modules(only: str | None = None):
     mods = {}
     for cmd, modname in COMMANDS.items():
-        try:
-            mods[cmd] = importlib.import_module(f"qmap.cli.{modname}")
-        except ModuleNotFoundError as exc:
-            if exc.name != f"qmap.cli.{modname}":
-                raise
+        if only is not None and cmd != only:
+            continue
+        mods[cmd] = importlib.import_module(f"qmap.cli.{modname}")
     return mods
 
 
-def get_parser() -> argparse.ArgumentParser:
+def get_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The argument parser; with ``only``, just that subcommand is loaded (fast start-up)."""
     parser = _Parser(
         prog="qmap",
         description="Quantitative MRI relaxometry: T1, T2, T2* and B1 maps with standard errors, fit quality and "
         "phantom QA. Times are seconds unless a unit is given (12ms); angles are degrees.",
+        epilog="Run 'qmap COMMAND --help' for the options of a command. Research tool, not a medical device: "
+        "results need review by qualified staff.",
     )
     parser.add_argument("--version", action="version", version=f"qmap {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for mod in _modules().values():
+    for mod in _modules(only).values():
         mod.add_parser(sub)
     return parser
 
@@ -88,7 +89,11 @@ def main(argv: list[str] | None = None) -> int:
 
     commits_before = writer.COMMITS
     try:
-        parser = get_parser()
+        if argv[:1] == ["--version"]:
+            print(f"qmap {__version__}")
+            return 0
+        # only the named command's module is imported (the others pull in matplotlib, scipy.stats, ...)
+        parser = get_parser(argv[0] if argv and argv[0] in COMMANDS else None)
         args = parser.parse_args(argv)
         if not getattr(args, "command", None):
             parser.print_help(sys.stderr)
