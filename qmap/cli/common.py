@@ -80,8 +80,19 @@ def add_noise(p: argparse.ArgumentParser) -> None:
     g.add_argument("--sigma", default="auto", metavar="auto|VALUE|NOISEMAP",
                    help="noise sd: auto (default) estimates it from the image background; a value in signal units; "
                         "or a NIfTI map of per-voxel sigma")
-    g.add_argument("--coils", type=int, default=1, metavar="N",
+    g.add_argument("--coils", type=_positive_int, default=1, metavar="N",
                    help="rician: the magnitude is a sum of squares over N coils (noncentral chi); default 1")
+
+
+def _positive_int(text: str) -> int:
+    """argparse type: a whole number >= 1 (a bad value is a one-line usage error, exit 2)."""
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a positive whole number")
+    return value
 
 
 def times(text, key, option):
