@@ -215,7 +215,11 @@ def resolve_sigma(spec, series: Series, *, coils: int = 1, max_bytes: float | No
     data = image_data(img, spec)
     if data.ndim != 3:
         raise InputError(f"--sigma {spec}: expected a 3D noise map, got shape {data.shape}")
-    return data.astype(float), {"source": f"noise map {Path(spec).absolute()}", "value": float(np.nanmedian(data)),
+    usable = np.isfinite(data) & (data > 0)
+    if not usable.any():
+        raise InputError(f"--sigma {spec}: holds no positive value; a noise map holds the noise sd (> 0) of each voxel "
+                         f"in signal units (voxels where it is not positive get status 2)")
+    return data.astype(float), {"source": f"noise map {Path(spec).absolute()}", "value": float(np.median(data[usable])),
                                 "path": str(Path(spec).absolute())}
 
 
