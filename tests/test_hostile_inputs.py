@@ -470,6 +470,19 @@ REFUSED = [
     # options
     Case("sigma-negative", T2S, b_sigma_negative, (r"--sigma", r"positive")),
     Case("sigma-auto-no-background", T2S, b_sigma_no_background, (r"noise", r"--sigma VALUE")),
+    Case("sigma-not-a-file", T2S, lambda d, data: [_good4d(d, data), "--sigma", "abc"], (r"--sigma abc", r"no such file")),
+    Case("sigma-map-other-grid", T2S, lambda d, data: [
+        _good4d(d, data), "--sigma", write_nifti(d / "sd.nii.gz", np.full((5, 5, 5), 5.0), affine=AFFINE)],
+         (r"--sigma", r"grid")),
+    Case("sigma-map-4d", T2S, lambda d, data: [
+        _good4d(d, data), "--sigma", write_nifti(d / "sd.nii.gz", np.full(data.shape, 5.0), affine=AFFINE)],
+         (r"--sigma", r"3D noise map")),
+    Case("sigma-map-not-positive", T2S, lambda d, data: [
+        _good4d(d, data), "--sigma", write_nifti(d / "sd.nii.gz", np.full(data.shape[:3], -5.0), affine=AFFINE)],
+         (r"--sigma", r"no positive value")),
+    Case("coils-zero", T2S, lambda d, data: [_good4d(d, data), "--coils", "0"], (r"--coils", r"positive")),
+    Case("noise-floor-unknown", T2S, lambda d, data: [_good4d(d, data), "--noise-floor", "bias"],
+         (r"--noise-floor", r"rician")),
     Case("jobs-zero", T2S, b_jobs_zero, (r"-j 0", r"positive")),
     Case("prefix-with-path", T2S, b_bad_prefix, (r"--prefix", r"file-name stem")),
     Case("unknown-option", T2S, b_unknown_option, (r"--echo-times", r"--help")),
