@@ -1,0 +1,82 @@
+"""``qmap t2``: T2 maps from multi-echo spin-echo (CPMG) trains."""
+
+from __future__ import annotations
+
+from ..errors import InputError, UsageError
+from ..units import parse_angle_list, parse_time_list
+from ..workflows.t2 import DEFAULT_REFOCUS, DEFAULT_T1, run_t2
+from .common import add_common, add_noise, common_from_args, finish, times
+
+#: a bare --t1 above this many seconds is taken to be milliseconds by mistake
+_T1_PLAUSIBLE_MAX_S = 10.0
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "t2",
+        help="T2 / R2 from multi-echo spin echo (mono-exponential or EPG with stimulated echoes)",
+        description="Fit T2 in every voxel of a multi-echo spin-echo (CPMG) magnitude series. By default "
+        "S(TE) = M0 exp(-TE/T2). With imperfect refocusing (B1 error, slice profile) the later echoes carry "
+        "stimulated echoes and that fit overestimates T2; --epg instead models the whole echo train by extended "
+        "phase graphs and fits M0, T2 and the refocusing angle per voxel. Writes T2, R2 and M0 maps (and "
+        "RefocusScale with --epg) with standard errors, R-squared / RMS-residual maps, a status map and provenance.",
+    )
+    p.add_argument("series", nargs="+", metavar="SERIES", help="one 4D NIfTI or several 3D NIfTIs (one per echo)")
+    p.add_argument("--te", metavar="LIST", help="echo times, e.g. 10ms,20ms,30ms (default: sidecar EchoTime)")
+    p.add_argument("--drop-first", action="store_true",
+                   help="do not fit the first echo. With imperfect refocusing the first echo of a CPMG train has no "
+                        "stimulated-echo contribution while the later echoes do, so it lies below the exponential "
+                        "trend of the rest and biases a mono-exponential fit; dropping it is common practice for "
+                        "mono-exponential T2. Not with --epg, which models the first echo and needs it")
+    g = p.add_argument_group("stimulated-echo correction (extended phase graphs)")
+    g.add_argument("--epg", action="store_true",
+                   help="fit the echo train by extended phase graphs: M0, T2 and a per-voxel refocusing scale "
+                        "(written as the RefocusScale map, actual / nominal angle). The echoes must be equally "
+                        "spaced at TE_k = k x ESP")
+    g.add_argument("--refocus", metavar="DEG",
+                   help=f"nominal refocusing flip angle in degrees (default {DEFAULT_REFOCUS:g}); the fitted angle is "
+                        "this times RefocusScale, at most 180")
+    g.add_argument("--t1", metavar="T",
+                   help=f"fixed T1 of the EPG model (default {DEFAULT_T1:g}s; e.g. 1.2s or 1200ms). It only affects the "
+                        "stimulated-echo pathways: none at 180 deg refocusing, and a T1 off by a factor of two changes "
+                        "the fitted T2 by less than 1%% for refocusing scales 0.8-1 (32 echoes, 10 ms spacing)")
+    add_noise(p)
+    add_common(p)
+    p.set_defaults(run=run)
+
+
+def _refocus(text) -> float:
+    if text is None:
+        return DEFAULT_REFOCUS
+    values = parse_angle_list(text, what="--refocus")
+    if values.size != 1:
+        raise UsageError(f"--refocus {text}: give one nominal refocusing angle in degrees, e.g. --refocus 160")
+    return float(values[0])
+
+
+def _t1(text) -> float:
+    if text is None:
+        return DEFAULT_T1
+    values = parse_time_list(text, key="T1", what="--t1")
+    if values.size != 1:
+        raise UsageError(f"--t1 {text}: give one T1, e.g. --t1 1.2s")
+    value = float(values[0])
+    if value > _T1_PLAUSIBLE_MAX_S:
+        raise InputError(f"--t1 {text}: {value:g} s is implausible for a tissue T1; bare numbers are seconds -- "
+                         f"if you meant milliseconds write {text.strip()}ms")
+    return value
+
+
+def run(args) -> int:
+    if not args.epg:
+        given = [opt for opt, v in (("--refocus", args.refocus), ("--t1", args.t1)) if v is not None]
+        if given:
+            verb, it = ("apply", "them") if len(given) > 1 else ("applies", "it")
+            raise UsageError(f"{' and '.join(given)} {verb} only to the EPG model; add --epg or leave {it} out")
+    common = common_from_args(args)
+    report = run_t2(
+        args.series, common=common, te=times(args.te, "EchoTime", "--te"), epg=args.epg,
+        refocus_deg=_refocus(args.refocus), t1=_t1(args.t1), noise_floor=args.noise_floor, sigma=args.sigma,
+        coils=args.coils, drop_first=args.drop_first,
+    )
+    return finish(report, args)

@@ -1,0 +1,400 @@
+"""T2 from a multi-echo spin-echo (CPMG) train with stimulated echoes: the EPG model.
+
+With imperfect refocusing (transmit-field error, slice profile) the later
+echoes of a CPMG train carry stimulated-echo pathways, and a mono-exponential
+fit overestimates T2. This model computes the echo train by extended phase
+graphs (Hennig, J Magn Reson 1988;78:397; Weigel, J Magn Reson Imaging
+2015;41:266) and fits
+
+.. math:: S_k = M_0 \\, E_k(T_2, \\alpha; \\mathrm{ESP}, T_1),
+          \\qquad \\alpha = \\kappa \\, \\alpha_\\mathrm{nom},
+
+with the refocusing scale ``kappa`` (RefocusScale) per voxel, the nominal
+angle ``alpha_nom`` (``--refocus``), an ideal 90 degree excitation and T1
+held fixed (Lebel & Wilman, Magn Reson Med 2010;64:1005; Prasloski et al.,
+Magn Reson Med 2012;67:1803).
+
+Conventions
+-----------
+* Echo k is at TE_k = k * ESP; the echo spacing comes from the echo times,
+  which must be equally spaced and start at ESP (a CPMG train). Every echo
+  is fitted: the first one, free of stimulated echoes, is what separates T2
+  from the refocusing angle (without it a very short T2 with a huge M0 and
+  a train carried by stored pathways can mimic a slow decay).
+* Only the refocusing angle is scaled (the convention of the papers above;
+  :func:`qmap.epg.cpmg_echoes` with ``scale_excitation=False``). The
+  excitation only multiplies the train, so T2 and the scale do not depend on
+  this choice; M0 is the amplitude for an ideal 90 degree excitation.
+* T1 only affects the decay of the stored (longitudinal) states between the
+  pulses: with 180 degree refocusing it has no effect at all, and for
+  refocusing scales 0.8-1 a factor of two error in T1 moves the fitted T2 by
+  well under 1 % (see the tests) -- hence a fixed default of 1 s.
+
+The refocusing angle as a fit parameter
+---------------------------------------
+The echo magnitudes are symmetric about 180 degrees (``a`` and ``360 - a``
+give the same train), so in terms of the angle a voxel with perfect
+refocusing sits at a stationary point on the edge of the allowed range: the
+derivative vanishes there, Levenberg-Marquardt crawls, and the covariance is
+singular. The recursion, however, depends on the angle only through
+``c = cos(a)`` (``sin^2(a/2) = (1 - c)/2``, ``sin^2(a) = 1 - c^2``, with the
+stored states carried as ``sin(a) Z``), polynomially, so the fitted non-linear
+parameter is ``c`` (``RefocusCos``), continued analytically slightly past
+``c = -1``. Perfectly refocused voxels are then interior points with a
+regular Jacobian; the estimator of ``c`` stays unbiased about 180 degrees
+(noise puts half of such voxels a little beyond), and the reported
+RefocusScale is ``arccos(max(c, -1)) / alpha_nom`` (at most ``180 /
+alpha_nom``). Its standard error is half the width of the +-1 SE interval of
+``c`` mapped through ``arccos`` (the delta method away from 180 degrees, and
+finite at 180 degrees, where the angle is determined to second order only).
+
+The recursion itself is that of :mod:`qmap.epg` (same rows, truncation and
+shifts) with the stored states rescaled by ``sin(a)``; the tests check it
+against an independent isochromat simulation and the closed forms to
+rounding, and for consistency against :func:`qmap.epg.cpmg_echoes_grad`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..epg import n_state_rows
+from ..errors import InputError
+from .base import Derived, SeparableModel, delta_se_inverse
+
+__all__ = ["EpgT2", "echo_spacing", "cpmg_cos"]
+
+#: smallest refocusing scale searched (90 degrees for a nominal 180)
+SCALE_MIN = 0.5
+#: lower bound of c = cos(refocusing angle): the analytic continuation past 180 degrees
+COS_MIN = -1.25
+#: relative tolerance on TE_k = k * ESP (sidecars round to microseconds)
+ESP_RTOL = 1e-3
+#: voxels per internal block of the recursion (state arrays stay in the CPU cache)
+_BLOCK = 2048
+
+
+def echo_spacing(te, *, where: str = "--te") -> float:
+    """Echo spacing ESP (s) of a CPMG train whose echo times are TE_k = k * ESP, k = 1..n.
+
+    Parameters
+    ----------
+    te : (n,) array_like
+        Echo times in seconds, in order.
+    where : str
+        Name used in the error message.
+
+    Returns
+    -------
+    float
+        The least-squares ESP through the origin.
+
+    Raises
+    ------
+    InputError
+        When the echoes are not at 1, 2, ..., n times one spacing.
+    """
+    te = np.asarray(te, float).ravel()
+    k = np.arange(1, te.size + 1)
+    # robust spacing for the check (one misplaced echo must not shift it), least squares for the value
+    esp0 = float(np.median(te / k)) if te.size else float("nan")
+    dev = np.abs(te - k * esp0)
+    tol = max(ESP_RTOL * esp0, 2e-6)
+    if te.size < 2 or not np.isfinite(esp0) or esp0 <= 0 or np.any(dev > tol):
+        i = int(np.argmax(dev)) if te.size else 0
+        shown = ",".join(f"{1e3 * t:g}ms" for t in te)
+        raise InputError(
+            f"{where}: --epg needs equally spaced echoes at TE_k = k x ESP (a CPMG train starting one spacing "
+            f"after excitation), got {shown} (echo {i + 1} is at {1e3 * te[i]:g} ms, expected "
+            f"{1e3 * (i + 1) * esp0:g} ms); give the whole train in acquisition order, or fit without --epg"
+        )
+    esp = float(np.sum(k * te) / np.sum(k * k))
+    return esp
+
+
+def cpmg_cos(t2, c, *, esp: float, n_echoes: int, t1: float = 1.0, grad: bool = False):
+    """CPMG echo magnitudes (ideal 90 degree excitation) as a function of c = cos(refocusing angle).
+
+    Parameters
+    ----------
+    t2 : (n,) ndarray
+        T2 in seconds (> 0).
+    c : (n,) ndarray
+        Cosine of the refocusing angle; values below -1 continue the train
+        analytically (see the module notes).
+    esp : float
+        Echo spacing, s; echo k at k * esp.
+    n_echoes : int
+        Echoes in the train.
+    t1 : float
+        Fixed T1, s.
+    grad : bool
+        Also return the derivatives with respect to T2 (1/s) and c.
+
+    Returns
+    -------
+    S : (n, n_echoes) ndarray
+        Echo magnitudes for M0 = 1.
+    dS_dT2, dS_dc : (n, n_echoes) ndarray
+        Only with ``grad``.
+
+    Notes
+    -----
+    Voxels run along the last axis of (rows, voxels) state arrays, in blocks
+    of ``_BLOCK`` voxels, with a Python loop over the echoes only; every voxel
+    sees the same element-wise operations whatever the call's size, so the
+    results do not depend on chunking.
+    """
+    t2 = np.ascontiguousarray(t2, dtype=np.float64).ravel()
+    c = np.ascontiguousarray(np.broadcast_to(np.asarray(c, np.float64), t2.shape))
+    n, E = t2.size, int(n_echoes)
+    S = np.empty((n, E))
+    dT = np.empty((n, E)) if grad else None
+    dC = np.empty((n, E)) if grad else None
+    e1 = float(np.exp(-esp / t1))
+    work = _Work(n_state_rows(E), E, min(_BLOCK, max(n, 1)), grad)
+    for i0 in range(0, n, _BLOCK):
+        sl = slice(i0, min(i0 + _BLOCK, n))
+        _train_block(work, t2[sl], c[sl], 0.5 * esp, E, e1, grad, S[sl], None if dT is None else dT[sl],
+                     None if dC is None else dC[sl])
+    return (S, dT, dC) if grad else S
+
+
+class _Work:
+    """State and scratch arrays of one block (allocated once per call)."""
+
+    def __init__(self, rows: int, E: int, nb: int, grad: bool):
+        self.nb = nb
+        k = 3 + 3 * 2 * grad  # state sets: values (+ d/dT2, d/dc)
+        self.states = np.zeros((k, rows, nb))
+        self.new = np.empty((k, rows, nb))
+        self.scratch = np.empty((4, rows, nb))
+        self.echo = np.empty((3 if grad else 1, E, nb))
+
+    def view(self, nb: int):
+        if nb == self.nb:
+            return self.states, self.new, self.scratch, self.echo
+        return self.states[..., :nb], self.new[..., :nb], self.scratch[..., :nb], self.echo[..., :nb]
+
+
+def _pulse(P, N, Y, a, s2, h, c, D, U, nP, nN, nY):
+    """Refocusing pulse on rows [:a]: D = N - P, U = s2 D + Y; P' = P + U, N' = N - U, Y' = h D + c Y."""
+    d, u = D[:a], U[:a]
+    np.subtract(N[:a], P[:a], out=d)
+    np.multiply(s2, d, out=u)
+    u += Y[:a]
+    np.add(P[:a], u, out=nP[:a])
+    np.subtract(N[:a], u, out=nN[:a])
+    np.multiply(h, d, out=nY[:a])
+    np.multiply(c, Y[:a], out=u)
+    nY[:a] += u
+
+
+def _shift(P, N, Y, a, e2, e1, nP, nN, nY):
+    """Relax over one echo spacing and move the transverse orders by two."""
+    np.multiply(e2, nP[:a], out=P[1 : a + 1])
+    np.multiply(e2, nN[0], out=P[0])
+    np.multiply(e2, nN[1:a], out=N[: a - 1])
+    N[a - 1].fill(0.0)
+    np.multiply(e1, nY[:a], out=Y[:a])
+
+
+def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC):
+    states, new, scratch, echoes = work.view(t2.size)
+    states.fill(0.0)
+    P, N, Y = states[0], states[1], states[2]
+    nP, nN, nY = new[0], new[1], new[2]
+    D, U, V, W = scratch
+    echo = echoes[0]
+    with np.errstate(over="ignore"):
+        x = half_esp / t2
+    e2h = np.exp(-x)
+    e2 = e2h * e2h
+    s2 = 0.5 * (1.0 - c)
+    h = 0.5 * (1.0 - c * c)
+    P[0] = e2h
+    if grad:
+        Pt, Nt, Yt, Pc, Nc, Yc = states[3:]
+        nPt, nNt, nYt, nPc, nNc, nYc = new[3:]
+        echo_t, echo_c = echoes[1], echoes[2]
+        with np.errstate(over="ignore", invalid="ignore"):
+            de2h = np.where(e2h > 0.0, e2h * x / t2, 0.0)
+        de2 = 2.0 * e2h * de2h
+        Pt[0] = de2h
+    for m in range(1, E + 1):
+        a = min(m, E - m + 1)
+        _pulse(P, N, Y, a, s2, h, c, D, U, nP, nN, nY)
+        np.multiply(e2h, nN[0], out=echo[m - 1])
+        if grad:
+            # the pulse is linear in the states: the same map acts on the derivative states
+            _pulse(Pt, Nt, Yt, a, s2, h, c, V, W, nPt, nNt, nYt)
+            _pulse(Pc, Nc, Yc, a, s2, h, c, V, W, nPc, nNc, nYc)
+            # plus d(coefficients)/dc on the value states: ds2/dc = -1/2, dh/dc = -c, d(c)/dc = 1,
+            # with D = N - P of the values from the pulse above
+            d, w = D[:a], W[:a]
+            np.multiply(0.5, d, out=w)
+            nPc[:a] -= w
+            nNc[:a] += w
+            nYc[:a] += Y[:a]
+            np.multiply(c, d, out=w)
+            nYc[:a] -= w
+            np.multiply(e2h, nNt[0], out=echo_t[m - 1])
+            np.multiply(de2h, nN[0], out=W[0])
+            echo_t[m - 1] += W[0]
+            np.multiply(e2h, nNc[0], out=echo_c[m - 1])
+        if m == E:
+            break
+        _shift(P, N, Y, a, e2, e1, nP, nN, nY)
+        if grad:
+            _shift(Pt, Nt, Yt, a, e2, e1, nPt, nNt, nYt)
+            w = W[:a]
+            np.multiply(de2, nP[:a], out=w)  # product rule on e2
+            Pt[1 : a + 1] += w
+            np.multiply(de2, nN[:a], out=w)
+            Pt[0] += w[0]
+            Nt[: a - 1] += w[1:a]
+            _shift(Pc, Nc, Yc, a, e2, e1, nPc, nNc, nYc)
+    # magnitudes: the real CPMG amplitude can change sign from echo to echo
+    if grad:
+        neg = echo < 0.0
+        np.negative(echo_t, out=echo_t, where=neg)
+        np.negative(echo_c, out=echo_c, where=neg)
+        dT[...] = echo_t.T
+        dC[...] = echo_c.T
+    np.abs(echo, out=echo)
+    S[...] = echo.T
+
+
+class EpgT2(SeparableModel):
+    """CPMG echo train by extended phase graphs; fits M0, T2 and the refocusing angle.
+
+    Parameters
+    ----------
+    te : (n,) array_like
+        Echo times of the whole train in seconds, TE_k = k * ESP.
+    refocus_deg : float
+        Nominal refocusing angle in degrees, (0, 180].
+    t1 : float
+        Fixed longitudinal relaxation time in seconds (default 1 s).
+    n_t2, n_scale : int
+        Size of the start dictionary: log-spaced T2 values x refocusing
+        scales from 0.5 to 180 / refocus_deg.
+
+    Notes
+    -----
+    The non-linear parameters are ``T2`` (s) and ``RefocusCos``, the cosine
+    of the actual refocusing angle (see the module notes); the reported maps
+    are T2, R2, M0 and RefocusScale.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> m = EpgT2(np.arange(1, 5) * 0.01)
+    >>> m.predict(np.array([[1.0, 0.05, -1.0]])).round(4).tolist()  # 180 deg: exp(-TE/T2)
+    [[0.8187, 0.6703, 0.5488, 0.4493]]
+    """
+
+    name = "epg_t2"
+    linear = ("M0",)
+    nonlinear = ("T2", "RefocusCos")
+
+    def __init__(self, te, *, refocus_deg: float = 180.0, t1: float = 1.0, n_t2: int = 60, n_scale: int = 25):
+        te = np.asarray(te, float).ravel()
+        self.esp = echo_spacing(te)
+        self.n_echoes = int(te.size)
+        refocus_deg = float(refocus_deg)
+        if not np.isfinite(refocus_deg) or not 0.0 < refocus_deg <= 180.0:
+            raise InputError(f"--refocus {refocus_deg:g}: the nominal refocusing angle must be degrees in (0, 180]")
+        t1 = float(t1)
+        if not np.isfinite(t1) or t1 <= 0:
+            raise InputError(f"--t1 {t1:g}: T1 must be a positive number of seconds (e.g. 1s)")
+        self.refocus_deg = refocus_deg
+        self.t1 = t1
+        self.x = self.esp * np.arange(1, self.n_echoes + 1)
+        if self.x.size < 4:
+            raise InputError(
+                f"--epg fits M0, T2 and the refocusing angle and needs at least 4 echoes, got {self.x.size}"
+            )
+        #: refocusing scale at which the angle is 180 degrees (largest reported scale)
+        self.scale_180 = 180.0 / refocus_deg
+        self.n_t2 = int(n_t2)
+        self.n_scale = int(n_scale)
+
+    # ------------------------------------------------------------------ physics
+    def _train(self, theta, grad=False):
+        return cpmg_cos(theta[:, 0], theta[:, 1], esp=self.esp, n_echoes=self.n_echoes, t1=self.t1, grad=grad)
+
+    def basis(self, theta, ctx=None):
+        return self._train(theta)[:, :, None]
+
+    def dbasis(self, theta, ctx=None):
+        _, d_t2, d_c = self._train(theta, grad=True)
+        return np.stack([d_t2, d_c], axis=-1)[:, :, None, :]
+
+    def signal_jacobian(self, params, ctx=None):
+        # one pass of the recursion gives the train and both derivatives (forward mode)
+        s, d_t2, d_c = self._train(params[:, 1:], grad=True)
+        m0 = params[:, 0:1]
+        J = np.empty((params.shape[0], 3, self.x.size))
+        J[:, 0] = s
+        np.multiply(m0, d_t2, out=J[:, 1])
+        np.multiply(m0, d_c, out=J[:, 2])
+        return m0 * J[:, 0], J
+
+    def bounds(self):
+        lo = np.array([self.esp / 20.0, COS_MIN])
+        hi = np.array([self.x.max() * 200.0, np.cos(np.deg2rad(SCALE_MIN * self.refocus_deg))])
+        return lo, hi
+
+    def grid(self):
+        """Start dictionary (G, 2): log-spaced T2 x refocusing scales 0.5 .. 180/refocus_deg (as cosines)."""
+        lo, hi = self.bounds()
+        t2 = np.geomspace(lo[0] * 1.05, hi[0] / 1.05, self.n_t2)
+        scale = np.linspace(SCALE_MIN, self.scale_180, self.n_scale)
+        tt, cc = np.meshgrid(t2, self.from_scale(scale), indexing="ij")
+        return np.column_stack([tt.ravel(), cc.ravel()])
+
+    # ------------------------------------------------------- angle <-> scale
+    def from_scale(self, scale) -> np.ndarray:
+        """cos of the refocusing angle for a refocusing scale (exactly -1 at 180 degrees)."""
+        deg = np.asarray(scale, float) * self.refocus_deg
+        return np.where(deg == 180.0, -1.0, np.cos(np.deg2rad(deg)))
+
+    def to_scale(self, c) -> np.ndarray:
+        """Refocusing scale for c = cos(angle); c <= -1 maps to 180 degrees."""
+        return np.rad2deg(np.arccos(np.clip(c, -1.0, 1.0))) / self.refocus_deg
+
+    def info(self) -> dict:
+        """Model description for provenance."""
+        return {
+            "name": self.name,
+            "equation": "S_k = M0 * EPG_k(T2, RefocusScale x refocus_deg; ESP, T1), TE_k = k ESP",
+            "method": "extended phase graphs, CPMG (Hennig 1988; Weigel 2015); refocusing-angle fit "
+                      "(Lebel & Wilman 2010; Prasloski et al. 2012)",
+            "refocus_deg": self.refocus_deg,
+            "excitation_deg": 90.0,
+            "excitation_scaled": False,
+            "t1_s": self.t1,
+            "echo_spacing_s": self.esp,
+            "n_echoes": self.n_echoes,
+            "fitted_angle_parameter": "RefocusCos = cos(refocusing angle), continued past 180 deg down to "
+                                      f"{COS_MIN}",
+            "start_dictionary": {"T2": self.n_t2, "RefocusScale": self.n_scale},
+        }
+
+    def report(self, params, cov):
+        t2 = params[:, 1]
+        se_t2 = np.sqrt(cov[:, 1, 1])
+        c = params[:, 2]
+        se_c = np.sqrt(cov[:, 2, 2])
+        with np.errstate(invalid="ignore"):
+            se_scale = 0.5 * (self.to_scale(c + se_c) - self.to_scale(c - se_c))
+            se_scale = np.abs(np.where(np.isfinite(se_c), se_scale, se_c))
+        return [
+            Derived("T2", t2, se_t2, "s", "T2 from the EPG fit of the spin-echo train", is_time=True),
+            Derived("R2", 1.0 / t2, delta_se_inverse(t2, se_t2), "1/s", "R2 relaxation rate (1/T2)"),
+            Derived("M0", params[:, 0], np.sqrt(cov[:, 0, 0]), "a.u.",
+                    "echo-train amplitude for an ideal 90 deg excitation (signal units)"),
+            Derived("RefocusScale", self.to_scale(c), se_scale, "fraction",
+                    f"actual / nominal ({self.refocus_deg:g} deg) refocusing angle, at most 180 deg"),
+        ]

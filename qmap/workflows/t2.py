@@ -1,0 +1,192 @@
+"""``qmap t2``: T2 maps from multi-echo spin-echo (CPMG) trains.
+
+Two models share the rest of the machinery (noise-floor handling, solver,
+engine, outputs) with ``qmap t2star``:
+
+* the mono-exponential decay ``S = M0 exp(-TE/T2)``
+  (:class:`qmap.models.monoexp.MonoExponential`), optionally without the first
+  echo, and
+* with ``epg=True`` the extended-phase-graph model of the echo train with a
+  fitted refocusing angle (:class:`qmap.models.epg_t2.EpgT2`), which removes
+  the T2 overestimation that stimulated echoes cause under imperfect
+  refocusing.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from ..errors import UsageError
+from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
+from ..io.series import load_series
+from ..maps import MapSet, fit_volume
+from ..models.base import SeparableModel
+from ..models.epg_t2 import EpgT2
+from ..models.monoexp import MonoExponential
+from ..pipeline import CommonOptions, RunReport, run_fit
+from .decay import noise_options
+
+__all__ = ["fit_t2", "run_t2", "t2_model", "DEFAULT_T1", "DEFAULT_REFOCUS"]
+
+#: fixed T1 of the EPG model, s (its influence on T2 is small; see qmap.models.epg_t2)
+DEFAULT_T1 = 1.0
+#: nominal refocusing angle, degrees
+DEFAULT_REFOCUS = 180.0
+
+
+def t2_model(
+    te,
+    *,
+    epg: bool = False,
+    refocus_deg: float = DEFAULT_REFOCUS,
+    t1: float = DEFAULT_T1,
+    drop_first: bool = False,
+) -> tuple[SeparableModel, dict]:
+    """The T2 model for a train with echo times ``te`` (s), and its provenance description.
+
+    With ``epg`` the model describes the whole train (equally spaced, TE_k =
+    k * ESP, every echo fitted); otherwise the mono-exponential model gets the
+    echo times that are fitted (without the first with ``drop_first``).
+
+    Raises
+    ------
+    UsageError
+        ``epg`` together with ``drop_first``.
+    """
+    te = np.asarray(te, float).ravel()
+    if epg:
+        if drop_first:
+            raise UsageError(
+                "--drop-first is for the mono-exponential fit: the EPG model (--epg) describes the first echo and "
+                "needs it to tell T2 from the refocusing angle; leave out one of the two options"
+            )
+        model = EpgT2(te, refocus_deg=refocus_deg, t1=t1)
+        return model, model.info()
+    model = MonoExponential(te[1:] if drop_first else te, param="T2")
+    return model, {"name": "monoexp", "equation": "S = M0 exp(-TE/T2)"}
+
+
+def fit_t2(
+    data,
+    te,
+    *,
+    epg: bool = False,
+    refocus_deg: float = DEFAULT_REFOCUS,
+    t1: float = DEFAULT_T1,
+    noise_floor: str = DEFAULT_MODE,
+    sigma=None,
+    coils: int = 1,
+    drop_first: bool = False,
+    mask=None,
+    n_jobs: int | None = None,
+    engine: str = "fast",
+    chunk_size: int | None = None,
+    scheduler: str | None = None,
+) -> MapSet:
+    """Fit T2 in every voxel of a multi-echo spin-echo magnitude series (array API).
+
+    Parameters
+    ----------
+    data : (..., m) array_like
+        Magnitudes; the last axis runs over the echoes of the whole train.
+    te : (m,) array_like
+        Echo times in seconds. With ``epg`` they must be TE_k = k * ESP.
+    epg : bool
+        Fit the extended-phase-graph model (M0, T2 and the refocusing scale)
+        instead of a mono-exponential.
+    refocus_deg : float
+        ``epg``: nominal refocusing angle in degrees (default 180).
+    t1 : float
+        ``epg``: fixed T1 in seconds (default 1).
+    noise_floor : {"rician", "offset", "truncate", "none"}
+        Noise-floor handling (see :mod:`qmap.fitting.noise_floor`); default
+        ``rician``, which needs ``sigma``.
+    sigma : float or (...) ndarray, optional
+        Noise sd in signal units.
+    coils : int
+        ``rician``: coils combined by sum of squares.
+    drop_first : bool
+        Do not fit the first echo (mono-exponential only).
+    mask : (...) array_like of bool, optional
+        Voxels to fit (default: all).
+    n_jobs, engine, chunk_size, scheduler
+        Execution (see :func:`qmap.maps.fit_volume`).
+
+    Returns
+    -------
+    MapSet
+        ``maps["T2"]``, ``maps["R2"]``, ``maps["M0"]`` (and with ``epg``
+        ``maps["RefocusScale"]``, the actual / nominal refocusing angle), with
+        ``stderr``, ``quality`` and ``status``; ``maps.info["model_info"]``
+        describes the model.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> te = np.arange(1, 17) * 0.01
+    >>> data = 1000 * np.exp(-te / 0.08) * np.ones((2, 2, 1, 1))
+    >>> maps = fit_t2(data, te, epg=True, noise_floor="none")
+    >>> float(np.round(maps["T2"][0, 0, 0], 6)), float(np.round(maps["RefocusScale"][0, 0, 0], 4))
+    (0.08, 1.0)
+    """
+    data = np.asarray(data)
+    model, info = t2_model(te, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
+    if drop_first:
+        data = data[..., 1:]
+    noise = NoiseFloor(noise_floor, coils=coils)
+    if noise.needs_sigma and sigma is None:
+        raise ValueError(f"noise_floor={noise_floor!r} needs sigma (the noise sd in signal units)")
+    kw = {} if chunk_size is None else {"chunk_size": chunk_size}
+    maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs, method=engine,
+                      scheduler=scheduler, **kw)
+    maps.info["model_info"] = info
+    return maps
+
+
+def run_t2(
+    inputs,
+    *,
+    common: CommonOptions,
+    te=None,
+    epg: bool = False,
+    refocus_deg: float = DEFAULT_REFOCUS,
+    t1: float = DEFAULT_T1,
+    noise_floor: str = DEFAULT_MODE,
+    sigma="auto",
+    coils: int = 1,
+    drop_first: bool = False,
+) -> RunReport:
+    """Fit T2, R2 and M0 (and with ``epg`` RefocusScale) maps to a multi-echo spin-echo series.
+
+    Parameters
+    ----------
+    inputs : list of path-like
+        One 4D NIfTI or several 3D NIfTIs (one per echo).
+    common : CommonOptions
+        Output folder, prefix, mask, workers, ...
+    te : (m,) array_like, optional
+        Echo times in seconds; default from the BIDS sidecars (``EchoTime``).
+    epg, refocus_deg, t1, noise_floor, sigma, coils, drop_first
+        As in :func:`fit_t2` (``sigma`` may also be ``"auto"`` or a noise-map path).
+    """
+    t0 = time.perf_counter()
+    series = load_series(inputs, key="EchoTime", value=te, option="--te", min_volumes=2)
+    te_all = np.asarray(series.acquisition["EchoTime"], float)
+    model, info = t2_model(te_all, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
+    notes = []
+    if drop_first:
+        series.data = series.data[..., 1:]
+        series.acquisition["EchoTime"] = te_all[1:]
+        notes.append("first echo dropped")
+    options = noise_options(noise_floor, sigma, coils, drop_first)
+    options.update(epg=bool(epg))
+    if epg:
+        options.update(refocus_deg=float(refocus_deg), t1_s=float(t1))
+        notes.append(f"EPG model: echo spacing {1e3 * model.esp:.4g} ms, refocusing {refocus_deg:g} deg x fitted "
+                     f"scale, T1 fixed at {t1:g} s")
+    return run_fit(
+        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
+        options=options, model_info=info, notes=notes, t0=t0,
+    )
