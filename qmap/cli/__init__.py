@@ -76,6 +76,12 @@ def get_parser(only: str | None = None) -> argparse.ArgumentParser:
     return parser
 
 
+def _commits() -> int:
+    """Output sets committed so far in this process (without importing the writer for ``--version``)."""
+    writer = sys.modules.get("qmap.io.writer")
+    return int(getattr(writer, "COMMITS", 0))
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     argv = list(sys.argv[1:] if argv is None else argv)
@@ -85,9 +91,7 @@ def main(argv: list[str] | None = None) -> int:
     log.handlers[:] = [handler]
     log.setLevel(logging.INFO)
     log.propagate = False
-    from ..io import writer
-
-    commits_before = writer.COMMITS
+    commits_before = _commits()
     try:
         if argv[:1] == ["--version"]:
             print(f"qmap {__version__}")
@@ -106,7 +110,7 @@ def main(argv: list[str] | None = None) -> int:
         msg = " ".join(str(exc).split())
         return _usage_error(msg)
     except KeyboardInterrupt:
-        if writer.COMMITS == commits_before:
+        if _commits() == commits_before:
             sys.stderr.write("qmap: interrupted; no outputs were written (the output folder is as it was)\n")
         else:  # the interrupt came after a complete set of outputs was put in place
             sys.stderr.write("qmap: interrupted after the outputs were written; they are complete\n")
