@@ -138,11 +138,13 @@ class InversionRecovery(SeparableModel):
         return np.exp(-self.x[None, :] / t1)
 
     def basis(self, theta, ctx=None):
+        # stored basis-major, (2, n, m), and returned as an (n, m, 2) view: numpy's einsum over
+        # the samples (the solver's amplitude step) runs several times faster on this layout
         e = self._exp(theta[:, 0:1])
-        out = np.empty(e.shape + (2,))
-        out[:, :, 0] = 1.0
-        out[:, :, 1] = e
-        return out
+        out = np.empty((2,) + e.shape)
+        out[0] = 1.0
+        out[1] = e
+        return np.moveaxis(out, 0, 2)
 
     def dbasis(self, theta, ctx=None):
         t1 = theta[:, 0:1]

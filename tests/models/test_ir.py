@@ -184,7 +184,7 @@ def test_magnitude_bias_efficiency_and_calibration(snr, max_bias):
 
 def test_real_data_estimator_is_efficient_at_snr_30():
     # With Gaussian noise on phase-corrected real data the bound of Kay (1993) applies exactly:
-    # every T1 within 1.3x of it (measured 0.99-1.03), no bias beyond 1.5%.
+    # every T1 within 1.3x of it (measured 0.98-1.04), no bias beyond 1.5%.
     t1, k, sigma, y = simulate(30, magnitude=False, seed=8)
     maps = fit_t1_ir(y, TI, signal="real")
     u = (maps["T1"] - t1) / crlb_t1(t1, k, M0, sigma)
