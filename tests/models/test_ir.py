@@ -85,7 +85,7 @@ def test_candidates_flip_around_each_voxels_minimum():
 
 
 def test_jacobian_matches_central_differences():
-    # analytic d s / d (a, b, T1) against central differences of the model's own prediction
+    # analytic d s / d (a, b, T1) against central differences (common practice) of the prediction
     model = InversionRecovery(TI)
     p = np.array([[900.0, -1800.0, 0.7], [-50.0, 120.0, 2.5], [1.0, -1.9, 0.05]])
     s, jac = model.signal_jacobian(p)
