@@ -58,6 +58,15 @@ class WithOffset(SeparableModel):
         d = self.base.dbasis(theta, ctx)
         return np.concatenate([d, np.zeros(d.shape[:2] + (1, d.shape[3]))], axis=2)
 
+    def signal_jacobian(self, params, ctx=None):
+        # the base model's (possibly specialised) signal and Jacobian, plus the constant
+        k = len(self.base.linear)
+        base = np.concatenate([params[:, :k], params[:, k + 1 :]], axis=1)
+        s, J = self.base.signal_jacobian(base, ctx)
+        s = s + params[:, k : k + 1]
+        J = np.concatenate([J[:, :k], np.ones((J.shape[0], 1, J.shape[2])), J[:, k:]], axis=1)
+        return s, J
+
     def bounds(self):
         return self.base.bounds()
 

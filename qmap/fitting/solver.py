@@ -198,6 +198,7 @@ def levenberg_marquardt(
     p, rss, J, converged, n_iter
     """
     n, P = p0.shape
+    m_dof = y.shape[1] - P
     p = p0.copy()
     s, J = evaluate(p, np.arange(n))
     r = y - s
@@ -211,6 +212,7 @@ def levenberg_marquardt(
     wp, wy, wr, wJ, wrss = p[idx], y[idx], r[idx], J[idx], rss[idx]
     ww = None if w is None else w[idx]
     lam = np.full(idx.size, 1e-3)
+    nu = np.full(idx.size, 2.0)
     live = np.ones(idx.size, bool)
     wit = np.zeros(idx.size, int)
 
@@ -224,8 +226,8 @@ def levenberg_marquardt(
             write_back()
             converged[idx[~live]] = converged[idx[~live]]
             keep = live
-            idx, wp, wy, wr, wJ, wrss, lam, wit = (
-                idx[keep], wp[keep], wy[keep], wr[keep], wJ[keep], wrss[keep], lam[keep], wit[keep])
+            idx, wp, wy, wr, wJ, wrss, lam, nu, wit = (
+                idx[keep], wp[keep], wy[keep], wr[keep], wJ[keep], wrss[keep], lam[keep], nu[keep], wit[keep])
             ww = None if ww is None else ww[keep]
             live = np.ones(idx.size, bool)
         JTJ, g = _normal(wJ, ww, wr)
@@ -241,22 +243,41 @@ def levenberg_marquardt(
                 g[f, i] = 0.0
         d = np.einsum("npp->np", JTJ).copy()
         d = np.maximum(d, 1e-12 * np.max(d, axis=1, keepdims=True) + 1e-300)
+        H = JTJ.copy()
         for i in range(P):
             JTJ[:, i, i] += lam * d[:, i]
         delta = chol_solve(JTJ, g)
         pn = np.clip(wp + delta, lo, hi)
+        # predicted RSS decrease of the (projected) step from the linear model: dc^T (2 g - H dc)
+        dc = pn - wp
+        pred = np.einsum("np,np->n", dc, 2 * g - np.einsum("npq,nq->np", H, dc))
         sn, Jn = evaluate(pn, idx)
         rn = wy - sn
         rssn = np.einsum("nm,nm->n", rn if ww is None else ww * rn, rn)
         ok = live & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
         wit += live
-        small_step = np.all(np.abs(pn - wp) <= xtol * (np.abs(wp) + xtol), axis=1)
+        step = np.abs(pn - wp)
+        small_step = np.all(step <= xtol * (np.abs(wp) + xtol), axis=1)
+        # ... or negligible against the statistical uncertainty: below 1e-3 of s / sqrt(H_ii), a lower
+        # bound of each parameter's standard error (s^2 = RSS / dof)
+        if m_dof > 0:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                se_floor = np.sqrt(wrss / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", H))
+            small_step |= np.all(step <= 1e-3 * se_floor, axis=1)
         small_drop = (wrss - rssn) <= ftol * wrss
+        # damping after Nielsen (1999; Madsen, Nielsen & Tingleff, "Methods for non-linear least
+        # squares problems", 2004): shrink by how well the linear model predicted the decrease
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rho = np.where(pred > 0, (wrss - rssn) / pred, 0.0)
+        shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
         np.copyto(wp, pn, where=ok[:, None])
         np.copyto(wr, rn, where=ok[:, None])
         np.copyto(wJ, Jn, where=ok[:, None, None])
         np.copyto(wrss, rssn, where=ok)
-        lam = np.where(ok, np.maximum(lam * 0.2, 1e-12), lam * 10.0)
+        # a small step only means convergence when it was not made small by heavy damping
+        small_step &= lam <= 1.0
+        lam = np.where(ok, np.maximum(lam * shrink, 1e-12), lam * nu)
+        nu = np.where(ok, 2.0, nu * 2.0)
         # converged: the proposed step is negligible (accepted or not: at the minimum, rounding can
         # make a negligible step look uphill), or the RSS no longer drops, or no downhill step exists
         done = small_step | np.where(ok, small_drop | (rssn == 0), lam > 1e12)
