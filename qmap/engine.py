@@ -39,14 +39,15 @@ def resolve_jobs(n_jobs: int | None) -> int:
 
 
 class Progress:
-    """A one-line progress display on stderr (silent when ``quiet`` or not a terminal in tests)."""
+    """A one-line progress display on stderr (silent when ``quiet`` or when stderr is not a terminal)."""
 
     def __init__(self, total: int, label: str, *, quiet: bool = False, stream=None):
         self.total = max(int(total), 1)
         self.done = 0
         self.label = label
-        self.quiet = quiet
         self.stream = stream or sys.stderr
+        # a progress bar is for a person at a terminal; logs and pipelines get none
+        self.quiet = quiet or not getattr(self.stream, "isatty", lambda: False)()
         self.t0 = time.perf_counter()
         self._last = -1.0
 
