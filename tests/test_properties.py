@@ -232,6 +232,28 @@ def test_spoiled_gre_recovers_random_parameters(data):
     np.testing.assert_allclose(fit.params, params, rtol=1e-6)
 
 
+@settings(deadline=None, max_examples=20, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
+@given(data=st.data())
+def test_epg_t2_recovers_random_parameters(data):
+    """CPMG echo train by extended phase graphs (Hennig 1988; Weigel 2015): M0, T2 and the refocusing angle."""
+    from qmap.models.epg_t2 import EpgT2
+
+    esp = data.draw(st.floats(0.005, 0.012))
+    n_echoes = data.draw(st.integers(8, 32))
+    refocus = data.draw(st.floats(150.0, 180.0))
+    model = EpgT2(esp * np.arange(1, n_echoes + 1), refocus_deg=refocus)
+    n = 4
+    # T2 from 3 echo spacings to a third of the train x 10 (the decay is seen), refocusing 0.75-1 of nominal
+    t2 = np.exp(data.draw(st.lists(st.floats(np.log(3 * esp), np.log(3 * esp * n_echoes)), min_size=n, max_size=n)))
+    scale = np.asarray(data.draw(st.lists(st.floats(0.75, 1.0), min_size=n, max_size=n)))
+    m0 = data.draw(st.lists(st.floats(100, 1e4), min_size=n, max_size=n))
+    params = np.column_stack([m0, t2, model.from_scale(scale)])
+    fit = fit_chunk(model, model.predict(params))
+    assert np.all(fit.status == 0), fit.status
+    np.testing.assert_allclose(fit.params[:, :2], params[:, :2], rtol=1e-5)
+    np.testing.assert_allclose(model.to_scale(fit.params[:, 2]), scale, rtol=1e-5)
+
+
 # --------------------------------------------------------------------------- determinism
 
 
