@@ -203,9 +203,9 @@ def test_interrupt_after_commit_keeps_complete_new_outputs(tmp_path, inputs, pre
 
 @pytest.fixture(scope="module")
 def others(tmp_path_factory):
-    """Inputs for t1-vfa (+ B1 map), b1 (DAM), t1-ir and phantom."""
+    """Inputs for t1-vfa (+ B1 map), b1 (DAM), t1-ir, t2 (EPG) and phantom."""
     from tests.qa import phantom_factory as pf
-    from tests.test_hostile_inputs import _b1map, _dam, _ir, _vfa
+    from tests.test_hostile_inputs import _b1map, _dam, _ir, _mese, _vfa
 
     d = tmp_path_factory.mktemp("others")
     ph = pf.make_phantom(d / "ph")
@@ -214,6 +214,7 @@ def others(tmp_path_factory):
         "t1-vfa": ["t1-vfa", _vfa(d), "--b1", _b1map(d, 1.0)],
         "b1": ["b1", _dam(d), "--method", "dam", "--fa", "45"],
         "t1-ir": ["t1-ir", _ir(d)],
+        "t2": ["t2", _mese(d), "--epg", "--sigma", "5"],
         "phantom": ["phantom", "--labels", ph["labels"], "--reference", ph["ref"], "--map", ph["t1"], "--map", ph["t2"],
                     "--temperature", "21.5", "--history", d / "history.csv", "--date", "2026-01-05",
                     "--scanner", "s1"],
@@ -231,6 +232,8 @@ OTHER_STAGES = {
     "b1-commit": ("b1", "qmap.io.writer", "os.replace", 5),
     "t1-ir-fit": ("t1-ir", "qmap.engine", "fit_chunk", 1),
     "t1-ir-last-nifti": ("t1-ir", "qmap.io.writer", "nib.save", 11),
+    "t2-epg-fit": ("t2", "qmap.engine", "fit_chunk", 1),
+    "t2-epg-4th-nifti": ("t2", "qmap.io.writer", "nib.save", 4),
     "phantom-3rd-file": ("phantom", "qmap.io.writer", "open", 3),
     "phantom-commit": ("phantom", "qmap.io.writer", "os.replace", 4),
 }

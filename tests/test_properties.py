@@ -8,8 +8,9 @@
 * Time parser: random times written in s / ms / us (bare numbers = seconds,
   INTERFACE.md) parse back to the same seconds; implausible bare numbers are
   refused with an ``ms`` suggestion.
-* Models: random valid parameters -> the model's own ``predict`` -> fit on
-  noise-free data recovers them (a noise-free separable least-squares problem
+* Models (mono-exponential with and without offset, inversion recovery,
+  spoiled GRE with per-voxel B1, EPG T2): random valid parameters -> the
+  model's own ``predict`` -> fit on noise-free data recovers them (a noise-free separable least-squares problem
   has its exact solution as the global minimum; Golub & Pereyra 1973).
 * Determinism: the maps are bit-identical for any chunk size and number of
   workers (ARCH.md: per-voxel element-wise arithmetic after the grid search).
