@@ -11,7 +11,6 @@ result is identical for any number of workers, chunk size and backend.
 
 from __future__ import annotations
 
-import ctypes
 import os
 import sys
 import time
@@ -67,22 +66,6 @@ class Progress:
         self.stream.flush()
 
 
-def _tune_allocator() -> None:
-    """Keep glibc from returning large freed buffers to the OS after every array operation.
-
-    Measured on this kind of machine: trimming/mmap-ing every large temporary
-    cost 1.3-1.6x in the fit through page faults. Linux/glibc only; no-op elsewhere.
-    """
-    if not sys.platform.startswith("linux"):
-        return
-    try:
-        libc = ctypes.CDLL("libc.so.6")
-        libc.mallopt(-1, 512 * 1024 * 1024)  # M_TRIM_THRESHOLD
-        libc.mallopt(-3, 256 * 1024 * 1024)  # M_MMAP_THRESHOLD
-    except (OSError, AttributeError):
-        return
-
-
 def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast"):
     if method == "lmfit":
         from .fitting.lmfit_engine import fit_chunk_lmfit
@@ -111,7 +94,8 @@ def fit_voxels(
     label: str = "fitting",
     max_iter: int = 60,
     method: str = "fast",
-) -> ChunkFit:
+    on_chunk=None,
+) -> ChunkFit | None:
     """Fit every row of ``y`` (n, m) with ``model``; returns a :class:`ChunkFit` over all rows.
 
     Parameters
@@ -134,8 +118,11 @@ def fit_voxels(
         No progress display.
     method : {"fast", "lmfit"}
         The vectorised solver, or the per-voxel lmfit reference engine.
+    on_chunk : callable, optional
+        ``on_chunk(start, stop, ChunkFit)`` receives each chunk's result as it
+        arrives (in order) instead of collecting them: the caller keeps only
+        what it needs (bounded memory); ``fit_voxels`` then returns None.
     """
-    _tune_allocator()
     n = y.shape[0]
     chunk_size = max(1, int(chunk_size))
     chunks = [_Chunk(i, min(i + chunk_size, n)) for i in range(0, n, chunk_size)]
@@ -150,37 +137,39 @@ def fit_voxels(
                 method)
 
     results: list[ChunkFit] = []
+
+    def consume(c: _Chunk, res: ChunkFit) -> None:
+        if on_chunk is None:
+            results.append(res)
+        else:
+            on_chunk(c.start, c.stop, res)
+        progress.update()
+
     if n == 0:
         pass
     elif scheduler:
-        results = _run_dask(chunks, args, scheduler, progress)
+        _run_dask(chunks, args, scheduler, consume)
     else:
-        jobs = min(resolve_jobs(n_jobs), len(chunks))
-        results = _run_local(chunks, args, jobs, progress)
-    return _concat(results, model, noise, n, y.shape[1])
+        _run_local(chunks, args, min(resolve_jobs(n_jobs), len(chunks)), consume)
+    return _concat(results, model, noise, n, y.shape[1]) if on_chunk is None else None
 
 
-def _run_local(chunks, args, jobs, progress):
+def _run_local(chunks, args, jobs, consume):
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1):
         if jobs <= 1:
-            out = []
             for c in chunks:
-                out.append(_fit_one(*args(c)))
-                progress.update()
-            return out
+                consume(c, _fit_one(*args(c)))
+            return
         from joblib import Parallel, delayed
 
-        out = []
         par = Parallel(n_jobs=jobs, prefer="threads", return_as="generator")
-        for res in par(delayed(_fit_one)(*args(c)) for c in chunks):
-            out.append(res)
-            progress.update()
-        return out
+        for c, res in zip(chunks, par(delayed(_fit_one)(*args(c)) for c in chunks)):
+            consume(c, res)
 
 
-def _run_dask(chunks, args, scheduler, progress):
+def _run_dask(chunks, args, scheduler, consume):
     from .errors import UsageError
 
     try:
@@ -197,11 +186,8 @@ def _run_dask(chunks, args, scheduler, progress):
     try:
         with client.as_current(), parallel_config(backend="dask", wait_for_workers_timeout=60):
             par = Parallel(return_as="generator")
-            out = []
-            for res in par(delayed(_fit_one)(*args(c)) for c in chunks):
-                out.append(res)
-                progress.update()
-            return out
+            for c, res in zip(chunks, par(delayed(_fit_one)(*args(c)) for c in chunks)):
+                consume(c, res)
     finally:
         client.close()
 

@@ -96,10 +96,11 @@ def fit_volume(
     m = data.shape[-1]
     if m != model.n_samples:
         raise ValueError(f"data has {m} samples per voxel, the model {model.n_samples}")
-    flat = data.reshape(-1, m)
-    nvox = flat.shape[0]
+    nvox = int(np.prod(shape))
     noise = noise or NoiseFloor("none")
-    finite = np.all(np.isfinite(flat), axis=1)
+    # no reshaped copy of the series: NIfTI arrays are Fortran-ordered, so data.reshape(-1, m) would
+    # copy it all; only the selected voxels are gathered below (in C order, matching ``idx``)
+    finite = np.all(np.isfinite(data), axis=-1).reshape(-1)
     sel = np.ones(nvox, bool) if mask is None else np.asarray(mask, bool).reshape(-1).copy()
     status = np.full(nvox, st.MASKED, np.uint8)
     status[sel & ~finite] = st.NONFINITE
@@ -120,34 +121,43 @@ def fit_volume(
     idx = np.flatnonzero(sel)
     if ctx_maps:
         ctx = {k: v[idx] for k, v in ctx_flat.items()}
-    fit = fit_voxels(
-        model, flat[idx], ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
-        n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
-    )
-    status[idx] = fit.status
-    derived = noise.report(model, fit.params, fit.cov)
-    blank = np.full(nvox, np.nan)
-    # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
-    keep = np.isin(fit.status, (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED))
-
-    def scatter(values):
-        out = blank.copy()
-        out[idx[keep]] = np.asarray(values, float)[keep]
-        return out.reshape(shape)
-
-    estimates, stderr, units, descriptions, times = {}, {}, {}, {}, []
-    for d in derived:
-        estimates[d.name] = scatter(d.value)
-        stderr[d.name] = scatter(d.stderr)
-        units[d.name] = d.units
-        descriptions[d.name] = d.description
-        if d.is_time:
-            times.append(d.name)
-    quality = {"rsquared": scatter(fit.r2), "rmse": scatter(fit.rmse)}
+    # the maps are filled chunk by chunk as results arrive: no all-voxel copy of parameters and
+    # covariances is ever held
+    P = len(noise.wrap(model).param_names)
+    template = noise.report(model, np.ones((1, P)), np.ones((1, P, P)))
+    estimates = {d.name: np.full(nvox, np.nan) for d in template}
+    stderr = {d.name: np.full(nvox, np.nan) for d in template}
+    units = {d.name: d.units for d in template}
+    descriptions = {d.name: d.description for d in template}
+    times = [d.name for d in template if d.is_time]
+    quality = {"rsquared": np.full(nvox, np.nan), "rmse": np.full(nvox, np.nan)}
     if noise.mode == "truncate":
-        nsamp = np.zeros(nvox)
-        nsamp[idx] = fit.n_used
-        quality["nsamples"] = nsamp.reshape(shape)
+        quality["nsamples"] = np.zeros(nvox)
+    # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
+    kept_codes = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
+
+    def on_chunk(a: int, b: int, fit) -> None:
+        sub = idx[a:b]
+        status[sub] = fit.status
+        keep = np.isin(fit.status, kept_codes)
+        at = sub[keep]
+        for d in noise.report(model, fit.params, fit.cov):
+            estimates[d.name][at] = np.asarray(d.value, float)[keep]
+            stderr[d.name][at] = np.asarray(d.stderr, float)[keep]
+        quality["rsquared"][at] = fit.r2[keep]
+        quality["rmse"][at] = fit.rmse[keep]
+        if "nsamples" in quality:
+            quality["nsamples"][sub] = fit.n_used
+
+    sel_nd = sel.reshape(shape)
+    fit_voxels(
+        model, data[sel_nd], ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
+        n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
+        on_chunk=on_chunk,
+    )
+    estimates = {k: v.reshape(shape) for k, v in estimates.items()}
+    stderr = {k: v.reshape(shape) for k, v in stderr.items()}
+    quality = {k: v.reshape(shape) for k, v in quality.items()}
     info = {
         "model": model.name,
         "parameters": list(model.param_names),

@@ -255,10 +255,10 @@ def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
     for name in maps.names:
         f = 1e3 if (units == "ms" and name in maps.time_params) else 1.0
         u = "ms" if f == 1e3 else maps.units[name]
-        outs.append(OutputFile(map_filename(prefix, name, "estimate"), maps.estimates[name] * f, name, "estimate", u,
-                               maps.descriptions[name]))
-        outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name] * f, name, "stderr", u,
-                               f"standard error (1 sigma) of {name}"))
+        outs.append(OutputFile(map_filename(prefix, name, "estimate"), maps.estimates[name], name, "estimate", u,
+                               maps.descriptions[name], scale=f))
+        outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name], name, "stderr", u,
+                               f"standard error (1 sigma) of {name}", scale=f))
     for q, arr in maps.quality.items():
         outs.append(OutputFile(map_filename(prefix, q, "quality"), arr, q, "quality", QUALITY_UNITS[q],
                                QUALITY_DESCRIPTIONS[q]))

@@ -54,6 +54,7 @@ class OutputFile:
     kind: str
     units: str
     description: str
+    scale: float = 1.0  # applied on writing (e.g. 1000 for s -> ms), so no scaled copy is held
 
 
 def sha256_file(path: str | Path, bufsize: int = 1 << 20) -> str:
@@ -184,7 +185,8 @@ class AtomicWriter:
         final = self._final(out.name)
         tmp = self._tmp(out.name)
         self._pending.append((tmp, final))
-        img = nifti_for(out.data, affine, ref_header, kind=out.kind, parameter=out.parameter, units=out.units)
+        data = out.data if out.scale == 1.0 else np.asarray(out.data) * out.scale
+        img = nifti_for(data, affine, ref_header, kind=out.kind, parameter=out.parameter, units=out.units)
         try:
             nib.save(img, str(tmp))  # the temporary name keeps the .nii.gz ending
         except OSError as exc:
