@@ -188,7 +188,10 @@ def _write_description(deriv: Path, overwrite: bool) -> str | None:
         tmp.write_text(json.dumps(want, indent=2) + "\n", encoding="utf-8")
         os.replace(tmp, path)
     except OSError as exc:
-        tmp.unlink(missing_ok=True)
+        try:
+            tmp.unlink(missing_ok=True)
+        except OSError:  # e.g. -o below a regular file: there is no temporary file to remove
+            pass
         raise OutputError(f"cannot write {path} ({exc.strerror}); choose another -o or fix permissions") from None
     return None
 

@@ -534,11 +534,7 @@ REFUSED += [
          (r"implausible", r"20ms,100ms")),
     Case("afi-images-in-swapped-order", B1,
          lambda d, _: [_afi(d, _afi_data()[..., ::-1]), "--method", "afi", "--fa", "60", "--tr", "20ms,100ms"],
-         (r"order|swapped", r"TR"),
-         marks=[pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-             "qmap/workflows/b1.py: S2/S1 > 1 in almost every voxel (the images or --tr are in the wrong order) "
-             "gives exit 0 with status 8 nearly everywhere; proposed: refuse (InputError) when most masked "
-             "voxels have no valid angle, naming the likely swap"))]),
+         (r"order|swapped", r"TR")),
     Case("dam-angles-not-double", B1, lambda d, _: [_dam(d), "--method", "dam", "--fa", "45,80"],
          (r"a and 2a",)),
     Case("method-missing", B1, lambda d, _: [_dam(d), "--fa", "45,90"], (r"--method", r"--help")),
@@ -613,9 +609,7 @@ REFUSED += [
     Case("jobs-zero", BAT, lambda d, data: [_bids(d, data=data), "-j", "0"], (r"-j 0", r"positive")),
     Case("out-below-a-file", BAT, lambda d, data: [_bids(d, data=data), "-o",
                                                    _a_file(d) / "deriv"], (r"-o",),
-         own_out=True, marks=[pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-             "qmap/batch.py _write_description: tmp.unlink(missing_ok=True) inside 'except OSError' raises "
-             "NotADirectoryError again (traceback, exit 1); proposed: wrap that unlink in try/except OSError"))]),
+         own_out=True),
     Case("shape-2d", SIM, lambda d, _: ["--shape", "48,48"], (r"--shape", r"X,Y,Z")),
     Case("snr-negative", SIM, lambda d, _: ["--snr", "-5"], (r"--snr", r"positive")),
     Case("protocol-unknown", SIM, lambda d, _: ["--protocol", "ir,fse"], (r"--protocol", r"ir, vfa")),
@@ -665,13 +659,6 @@ def _far_from(pf):
     return a
 
 
-def _no_overlap_xfail(what):
-    return [pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-        f"qmap phantom: {what} -- every vial has 0 usable voxels, so it exits 3 ('out of tolerance') with one warning "
-        "per vial and writes a report; proposed (phantom workflow): refuse with InputError when no labelled voxel "
-        "has a finite map value after resampling, naming both fields of view (as t1-vfa does for --b1)"))]
-
-
 PH = "phantom"
 _int_labels = lambda pf: pf.true_labels().astype(np.int16)  # noqa: E731
 REFUSED += [
@@ -684,12 +671,12 @@ REFUSED += [
     Case("labels-negative", PH, lambda d, _: _phantom(d, labels=_labels(lambda pf: -_int_labels(pf))),
          (r"--labels", r"negative")),
     Case("labels-no-overlap", PH, lambda d, _: _phantom(d, labels=_labels(_int_labels, _far_from)),
-         (r"--labels", r"overlap"), marks=_no_overlap_xfail("a label image far from the maps")),
+         (r"--labels", r"overlap")),
     Case("map-no-overlap", PH, lambda d, _: _phantom(d, maps=_map(lambda pf: np.ones((10, 10, 3)),
                                                                    affine_fn=_far_from)),
-         (r"--map", r"overlap"), marks=_no_overlap_xfail("a map far from the label image")),
+         (r"--map", r"overlap")),
     Case("map-all-nan", PH, lambda d, _: _phantom(d, maps=_map(lambda pf: np.full(pf.SHAPE, np.nan))),
-         (r"--map", r"finite|NaN"), marks=_no_overlap_xfail("a map holding only NaN")),
+         (r"--map", r"finite|NaN")),
     Case("map-4d", PH, lambda d, _: _phantom(d, maps=_map(lambda pf: np.ones(pf.SHAPE + (2,)))), (r"--map", r"3D")),
     Case("map-unknown-units", PH, lambda d, _: _phantom(d, maps=_map(lambda pf: np.ones(pf.SHAPE), units="furlong")),
          (r"Units 'furlong'", r"fix the sidecar")),
@@ -795,11 +782,7 @@ REFUSED += [
     Case("refocus-without-epg", T2, lambda d, _: [_mese(d), "--refocus", "160"], (r"--refocus", r"add --epg")),
     Case("t1-without-epg", T2, lambda d, _: [_mese(d), "--t1", "1s"], (r"--t1", r"add --epg")),
     Case("refocus-above-180", T2, lambda d, _: [_mese(d), "--epg", "--refocus", "200"], (r"--refocus", r"180")),
-    Case("refocus-in-radians", T2, lambda d, _: [_mese(d), "--epg", "--refocus", "2.8"], (r"--refocus", r"radians"),
-         marks=[pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-             "qmap/cli/t2.py: --refocus 2.8 (radians for 160 deg) is taken as 2.8 degrees and fitted (exit 0); "
-             "check_angles only catches values below 0.5; proposed: refuse a nominal refocusing angle below 60 deg "
-             "(no CPMG protocol refocuses with less) naming radians as the likely cause"))]),
+    Case("refocus-in-radians", T2, lambda d, _: [_mese(d), "--epg", "--refocus", "2.8"], (r"--refocus", r"radians")),
     Case("refocus-two-values", T2, lambda d, _: [_mese(d), "--epg", "--refocus", "160,170"],
          (r"--refocus", r"one nominal refocusing angle")),
     Case("t1-bare-ms", T2, lambda d, _: [_mese(d), "--epg", "--t1", "1200"], (r"implausible", r"1200ms")),
@@ -1264,13 +1247,7 @@ def test_batch_isolates_a_corrupt_series(tmp_path, phantom, capsys):
     assert snapshot(bids) == before  # the dataset itself is never written to
 
 
-_SIM_JSON_XFAIL = pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-    "qmap/simulate/output.py save_json does not turn OSError into OutputError (save_nifti does): a full disk while "
-    "writing a sidecar is a traceback with exit 1; proposed: wrap the write in try/except OSError -> "
-    "OutputError(f'cannot write {path} ({exc.strerror}); check free space and permissions')"))
-
-
-@pytest.mark.parametrize("suffix", [".nii.gz", pytest.param(".json", marks=_SIM_JSON_XFAIL)])
+@pytest.mark.parametrize("suffix", [".nii.gz", ".json"])
 def test_simulate_disk_full(suffix, tmp_path, capsys, monkeypatch):
     """simulate: a full disk while its files are written gives exit 2, one line, and no folder."""
     import qmap.simulate.output as sim_out

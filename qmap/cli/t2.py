@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import numpy as np
+
 from ..errors import InputError, UsageError
 from ..units import parse_angle_list, parse_time_list
 from ..workflows.t2 import DEFAULT_REFOCUS, DEFAULT_T1, run_t2
@@ -51,6 +53,9 @@ def _refocus(text) -> float:
     values = parse_angle_list(text, what="--refocus")
     if values.size != 1:
         raise UsageError(f"--refocus {text}: give one nominal refocusing angle in degrees, e.g. --refocus 160")
+    if values[0] < 60:
+        raise UsageError(f"--refocus {text}: a nominal refocusing angle below 60 deg is implausible for a CPMG train "
+                         f"(radians? {text} rad = {np.degrees(float(values[0])):.0f} deg); give degrees, e.g. 160")
     return float(values[0])
 
 

@@ -104,9 +104,12 @@ def save_nifti(path: Path, data: np.ndarray, affine: np.ndarray, *, dtype=np.flo
 
 
 def save_json(path: Path, obj) -> None:
-    with open(path, "w", encoding="utf-8") as fh:
-        json.dump(obj, fh, indent=2, default=_default)
-        fh.write("\n")
+    try:
+        with open(path, "w", encoding="utf-8") as fh:
+            json.dump(obj, fh, indent=2, default=_default)
+            fh.write("\n")
+    except OSError as exc:
+        raise OutputError(f"cannot write {path} ({exc.strerror}); check free space and permissions") from None
 
 
 def _default(o):

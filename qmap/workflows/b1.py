@@ -14,6 +14,7 @@ import numpy as np
 
 from ..b1 import B1_METHODS, b1_maps
 from ..errors import InputError, UsageError
+from ..fitting import status as st
 from ..io.series import load_series
 from ..pipeline import (
     CommonOptions,
@@ -142,6 +143,14 @@ def run_b1(
         info["tr_ratio"] = n
     maps = b1_maps(np.abs(series.data), method=method, fa=fa_nom, n=n, mask=mask, sigma=sig, info=info)
     ok = maps.status == 0
+    fitted = maps.status != st.MASKED
+    if fitted.any() and np.mean(maps.status[fitted] == st.NO_VALID_ANGLE) > 0.5:
+        swap = ("the two images (or --tr TR1,TR2) are probably in the wrong order" if method == "afi"
+                else "the two images are probably in the wrong order (give S(a) first, then S(2a))")
+        raise InputError(
+            f"{series.paths[0]}: {np.mean(maps.status[fitted] == st.NO_VALID_ANGLE):.0%} of the object has a signal "
+            f"ratio that corresponds to no flip angle; {swap}"
+        )
     if ok.any():
         q = np.percentile(maps["TB1"][ok], [5, 50, 95])
         notes.insert(0, f"TB1 (fraction): median {q[1]:.4g} (5-95%: {q[0]:.4g}-{q[2]:.4g})")

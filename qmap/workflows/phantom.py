@@ -307,6 +307,15 @@ def run_phantom(
     return report
 
 
+def _fov(shape, affine) -> str:
+    """World-coordinate bounding box of a grid, for messages."""
+    corners = np.array([[i, j, k, 1] for i in (0, shape[0] - 1) for j in (0, shape[1] - 1)
+                        for k in (0, (shape[2] if len(shape) > 2 else 1) - 1)], float)
+    w = corners @ np.asarray(affine, float).T
+    lo, hi = w[:, :3].min(0), w[:, :3].max(0)
+    return "x {:.0f}..{:.0f}, y {:.0f}..{:.0f}, z {:.0f}..{:.0f} mm".format(lo[0], hi[0], lo[1], hi[1], lo[2], hi[2])
+
+
 def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxels, notes):
     """ROI statistics of every map x vial with a reference; appends warnings to ``notes``."""
     rows, views = [], []
@@ -316,6 +325,14 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
         factor = conversion(m.param, m.unit, unit)
         wanted = [k for k in table.labels if m.param in entries[k].values]
         rois = roi_masks(lab_m, wanted, erode_voxels=erode)
+        labelled = np.isin(lab_m, wanted)
+        if not np.any(labelled & np.isfinite(m.data)):
+            why = ("the label image and the map do not overlap" if not labelled.any()
+                   else "the map has no finite value inside any labelled vial")
+            raise InputError(
+                f"{m.path.name}: {why} (map field of view {_fov(m.data.shape, m.affine)}, labels "
+                f"{_fov(lab.shape, lab_aff)}); check that --labels and --map belong to the same scan"
+            )
         for k in wanted:
             e = entries[k]
             r = roi_statistics(m.data[rois[k]] * factor, label=k, name=e.name, parameter=m.param, unit=unit,
