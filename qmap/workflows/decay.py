@@ -11,12 +11,24 @@ from ..io.series import load_series
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
 
-__all__ = ["run_t2star", "noise_options"]
+__all__ = ["run_t2star", "noise_options", "load_echoes"]
 
 
 def noise_options(noise_floor: str, sigma, coils: int, drop_first: bool = False) -> dict:
     return {"noise_floor": noise_floor, "sigma": None if sigma is None else str(sigma), "coils": coils,
             "drop_first_echo": drop_first}
+
+
+def load_echoes(inputs, *, te, drop_first: bool, common: CommonOptions, min_volumes: int = 2):
+    """Load a multi-echo series (``EchoTime``), optionally without its first echo; returns (series, notes)."""
+    series = load_series(inputs, key="EchoTime", value=te, option="--te",
+                         min_volumes=min_volumes + 1 if drop_first else min_volumes, max_bytes=common.max_memory)
+    notes = []
+    if drop_first:
+        series.select_volumes(np.arange(1, series.n))
+        series.acquisition["EchoTime"] = np.asarray(series.acquisition["EchoTime"])[1:]
+        notes.append("first echo dropped")
+    return series, notes
 
 
 def run_t2star(
@@ -48,16 +60,8 @@ def run_t2star(
         Ignore the first echo.
     """
     t0 = time.perf_counter()
-    series = load_series(inputs, key="EchoTime", value=te, option="--te", min_volumes=3 if drop_first else 2,
-                         max_bytes=common.max_memory)
-    te_used = np.asarray(series.acquisition["EchoTime"])
-    notes = []
-    if drop_first:
-        series.select_volumes(np.arange(1, series.n))
-        te_used = te_used[1:]
-        series.acquisition["EchoTime"] = te_used
-        notes.append("first echo dropped")
-    model = MonoExponential(te_used, param="T2star")
+    series, notes = load_echoes(inputs, te=te, drop_first=drop_first, common=common)
+    model = MonoExponential(series.acquisition["EchoTime"], param="T2star")
     return run_fit(
         series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
         options=noise_options(noise_floor, sigma, coils, drop_first),

@@ -20,13 +20,12 @@ import numpy as np
 
 from ..errors import UsageError
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
-from ..io.series import load_series
 from ..maps import MapSet, fit_volume
 from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
-from .decay import noise_options
+from .decay import load_echoes, noise_options
 
 __all__ = ["fit_t2", "run_t2", "t2_model", "DEFAULT_T1", "DEFAULT_REFOCUS"]
 
@@ -172,12 +171,11 @@ def run_t2(
         As in :func:`fit_t2` (``sigma`` may also be ``"auto"`` or a noise-map path).
     """
     t0 = time.perf_counter()
-    series = load_series(inputs, key="EchoTime", value=te, option="--te", min_volumes=2)
+    series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
     te_all = np.asarray(series.acquisition["EchoTime"], float)
     model, info = t2_model(te_all, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
-    notes = []
-    if drop_first:
-        series.data = series.data[..., 1:]
+    if drop_first:  # after t2_model, which checks the echo spacing on the whole train
+        series.select_volumes(np.arange(1, series.n))
         series.acquisition["EchoTime"] = te_all[1:]
         notes.append("first echo dropped")
     options = noise_options(noise_floor, sigma, coils, drop_first)
