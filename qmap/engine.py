@@ -24,7 +24,7 @@ from .fitting.solver import ChunkFit, fit_chunk
 
 __all__ = ["fit_voxels", "DEFAULT_CHUNK", "Progress", "resolve_jobs"]
 
-DEFAULT_CHUNK = 16384
+DEFAULT_CHUNK = 8192
 
 
 def resolve_jobs(n_jobs: int | None) -> int:

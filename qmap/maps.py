@@ -11,7 +11,7 @@ from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .models.base import SeparableModel
 
-__all__ = ["MapSet", "fit_volume", "concat_mapsets"]
+__all__ = ["MapSet", "fit_volume", "place_slab"]
 
 
 @dataclass
@@ -81,6 +81,7 @@ def fit_volume(
     invalid_ctx_status: int = st.OUTSIDE_B1,
     method: str = "fast",
     label: str = "fitting",
+    dtype=np.float64,
 ) -> MapSet:
     """Fit ``model`` in every voxel of ``data`` (X, Y, Z, m) inside ``mask``.
 
@@ -125,14 +126,14 @@ def fit_volume(
     # covariances is ever held
     P = len(noise.wrap(model).param_names)
     template = noise.report(model, np.ones((1, P)), np.ones((1, P, P)))
-    estimates = {d.name: np.full(nvox, np.nan) for d in template}
-    stderr = {d.name: np.full(nvox, np.nan) for d in template}
+    estimates = {d.name: np.full(nvox, np.nan, dtype) for d in template}
+    stderr = {d.name: np.full(nvox, np.nan, dtype) for d in template}
     units = {d.name: d.units for d in template}
     descriptions = {d.name: d.description for d in template}
     times = [d.name for d in template if d.is_time]
-    quality = {"rsquared": np.full(nvox, np.nan), "rmse": np.full(nvox, np.nan)}
+    quality = {"rsquared": np.full(nvox, np.nan, dtype), "rmse": np.full(nvox, np.nan, dtype)}
     if noise.mode == "truncate":
-        quality["nsamples"] = np.zeros(nvox)
+        quality["nsamples"] = np.zeros(nvox, dtype)
     # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
     kept_codes = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
 
@@ -167,18 +168,17 @@ def fit_volume(
     return MapSet(estimates, stderr, units, descriptions, tuple(times), quality, status.reshape(shape), info)
 
 
-def concat_mapsets(parts: list[MapSet], axis: int = 2) -> MapSet:
-    """Join the maps of slabs fitted separately (same model and options) along ``axis``."""
-    if len(parts) == 1:
-        return parts[0]
-    first = parts[0]
+def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int) -> MapSet:
+    """Copy the maps of the slab ``z0:z1`` into ``full`` (allocated on the first slab) -- one copy of the maps only."""
+    if full is None:
+        def blank(d, fill=np.nan):
+            return {k: np.full(shape, fill, dtype=v.dtype) for k, v in d.items()}
 
-    def cat(get):
-        return {k: np.concatenate([get(p)[k] for p in parts], axis=axis) for k in get(first)}
-
-    info = dict(first.info, n_fitted=sum(p.info.get("n_fitted", 0) for p in parts))
-    return MapSet(
-        estimates=cat(lambda p: p.estimates), stderr=cat(lambda p: p.stderr), units=dict(first.units),
-        descriptions=dict(first.descriptions), time_params=first.time_params, quality=cat(lambda p: p.quality),
-        status=np.concatenate([p.status for p in parts], axis=axis), info=info,
-    )
+        full = MapSet(blank(part.estimates), blank(part.stderr), dict(part.units), dict(part.descriptions),
+                      part.time_params, blank(part.quality), np.zeros(shape, np.uint8), dict(part.info, n_fitted=0))
+    for dst, src in ((full.estimates, part.estimates), (full.stderr, part.stderr), (full.quality, part.quality)):
+        for k, v in src.items():
+            dst[k][:, :, z0:z1] = v
+    full.status[:, :, z0:z1] = part.status
+    full.info["n_fitted"] += part.info.get("n_fitted", 0)
+    return full

@@ -23,7 +23,7 @@ from .fitting.noise_floor import NoiseFloor
 from .io.nifti import check_same_grid, image_data, load_image
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
-from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, concat_mapsets, fit_volume
+from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 
 __all__ = ["CommonOptions", "RunReport", "run_fit", "write_run", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma"]
 
@@ -324,16 +324,17 @@ def run_fit(
     slabs = series.slabs(budget)
     if len(slabs) > 1:
         notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
-    parts = []
+    maps = None
     for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
-        parts.append(fit_volume(
+        part = fit_volume(
             model, series.read(z0, z1), mask=mask[:, :, z0:z1],
             ctx_maps=None if not ctx_maps else {k: np.asarray(v)[:, :, z0:z1] for k, v in ctx_maps.items()},
             noise=noise, sigma=sigma if np.ndim(sigma) < 3 else sigma[:, :, z0:z1], n_jobs=common.n_jobs,
             chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
             label="fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}",
-        ))
-    maps = concat_mapsets(parts, axis=2)
+            dtype=np.float32,  # held in the precision they are written in
+        )
+        maps = part if len(slabs) == 1 else place_slab(maps, part, series.shape, z0, z1)
     return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
                      model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)),
                      extra_inputs=file_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
@@ -345,7 +346,7 @@ def _stage_all(w: AtomicWriter, outs: list, series: Series, status, n_jobs) -> N
 
     from .engine import resolve_jobs
 
-    workers = min(len(outs), resolve_jobs(n_jobs), 4)
+    workers = min(len(outs), resolve_jobs(n_jobs), 2)
     if workers <= 1:
         for o in outs:
             w.stage_nifti(o, series.affine, series.header, status=status)
