@@ -136,7 +136,7 @@ def _peak(block: np.ndarray) -> np.ndarray:
     if bad.any():  # rare: only the voxels holding +-inf (or nothing finite at all) are looked at again
         sub = np.abs(block[bad])
         peak[bad] = np.max(np.where(np.isfinite(sub), sub, 0.0), axis=-1)
-    return peak.astype(np.float64)
+    return peak.astype(np.float32)
 
 
 def object_mask(series: Series, max_bytes: float | None = None) -> np.ndarray:
@@ -321,6 +321,7 @@ def run_fit(
             noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
         if noise.mode == "rician":
             noise_info["coils"] = noise.coils
+    series._peak = None  # only the mask and the noise estimate needed it
     slabs = series.slabs(budget)
     if len(slabs) > 1:
         notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
