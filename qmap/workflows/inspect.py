@@ -365,6 +365,27 @@ def _ctx(model, prov, ijk, series_path):
     return {"b1": np.array([b1[ijk[0], ijk[1], ijk[2]]])}
 
 
+def _complex_ir_samples(prov: dict, ijk, y: np.ndarray, ti: np.ndarray) -> np.ndarray:
+    """Complex IR data as the workflow fitted them: phase-corrected real part (qmap.workflows.ir.phase_correct).
+
+    ``y`` holds complex samples (complex NIfTI) or magnitudes whose phase images are named in the
+    provenance options (``phase``, radians, same order).
+    """
+    from .ir import phase_correct
+
+    if not np.iscomplexobj(y):
+        phase_files = prov.get("options", {}).get("phase") or []
+        if not phase_files:
+            raise InputError("the provenance names no phase images for this complex fit; cannot rebuild its data")
+        i, j, k = ijk
+        ph = np.concatenate([np.atleast_1d(np.asarray(load_image(p, what="phase").dataobj[i, j, k])).reshape(-1)
+                             for p in phase_files]).astype(float)
+        if ph.size != y.size:
+            raise InputError(f"the phase images hold {ph.size} volumes, the series {y.size}")
+        y = y * np.exp(1j * ph)
+    return phase_correct(y[None, :], ti)[0]
+
+
 def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
     """Keyword arguments of :func:`qmap.plots.plot_voxel_fit` for this voxel (refits it for the curve)."""
     from ..engine import fit_voxels
@@ -373,6 +394,8 @@ def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
 
     y, x, paths = _voxel_inputs(prov, ijk, spec.key)
     model = spec.build(prov, x)
+    if getattr(model, "signal", None) == "complex":
+        y = _complex_ir_samples(prov, ijk, y, x)
     magnitude = not np.iscomplexobj(y) and getattr(model, "signal", "magnitude") == "magnitude"
     y = np.abs(y).astype(float) if magnitude else np.real(y).astype(float)
     noise, sigma = _noise(prov, ijk)
