@@ -378,6 +378,8 @@ def fit_chunk(
     diag = np.einsum("npp->np", inv)
     ill = ~np.all(np.isfinite(diag) & (diag >= 0), axis=1)
     status[ill & (status == 0)] = st.ILL_CONDITIONED
+    # all samples equal: the non-linear parameters are not determined by the data at all
+    status[(tss == 0) & (status == 0)] = st.ILL_CONDITIONED
     cov[ill] = np.inf
     too_few = n_used < P
     status[too_few] = st.TOO_FEW_SAMPLES

@@ -107,3 +107,13 @@ def test_nan_voxel_flagged_and_neighbours_unaffected():
     assert np.isnan(dirty["T2star"][10])
     others = np.setdiff1d(np.arange(50), [10, 20])
     assert np.array_equal(clean["T2star"][others], dirty["T2star"][others])
+
+
+def test_constant_voxel_is_flagged_not_fitted_silently():
+    # a voxel whose samples are all equal determines no relaxation time: status 5 (ill-conditioned),
+    # not status 0 with an arbitrary T1 and a zero standard error
+    from qmap.models.ir import InversionRecovery
+
+    ti = np.array([0.05, 0.15, 0.3, 0.6, 1.0, 1.6, 2.5, 4.0])
+    fit = fit_chunk(InversionRecovery(ti), np.full((2, ti.size), 500.0))
+    assert np.all(fit.status == 5)
