@@ -10,7 +10,7 @@ File-level workflows (one per command) live in :mod:`qmap.workflows`.
 
 __version__ = "0.1.0"
 
-from .errors import InputError, QmapError, UsageError  # noqa: E402
+from .errors import InputError, QmapError, UsageError
 
 _API = {"b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"}
 
@@ -35,18 +35,18 @@ def __getattr__(name):  # entry points are imported on first use (keeps `qmap --
     raise AttributeError(f"module 'qmap' has no attribute {name!r}")
 
 __all__ = [
-    "__version__",
-    "fit_decay",
-    "fit_t2star",
-    "fit_t2",
-    "fit_t1_ir",
-    "fit_t1_vfa",
-    "b1_maps",
-    "run_batch",
-    "run_phantom",
-    "fit_volume",
+    "InputError",
     "MapSet",
     "QmapError",
-    "InputError",
     "UsageError",
+    "__version__",
+    "b1_maps",
+    "fit_decay",
+    "fit_t1_ir",
+    "fit_t1_vfa",
+    "fit_t2",
+    "fit_t2star",
+    "fit_volume",
+    "run_batch",
+    "run_phantom",
 ]

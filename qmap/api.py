@@ -14,7 +14,7 @@ from .fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from .maps import MapSet, fit_volume
 from .models.monoexp import MonoExponential
 
-__all__ = ["fit_t2star", "fit_decay", "fit_t2", "fit_t1_ir", "fit_t1_vfa", "b1_maps"]
+__all__ = ["b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"]
 
 
 def fit_decay(
@@ -87,7 +87,7 @@ def fit_t2star(data, te, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma=No
 
 
 # the other models' array-level functions live beside their workflows; re-exported here
-from .b1 import b1_maps  # noqa: E402
-from .workflows.ir import fit_t1_ir  # noqa: E402
-from .workflows.t2 import fit_t2  # noqa: E402
-from .workflows.vfa import fit_t1_vfa  # noqa: E402
+from .b1 import b1_maps
+from .workflows.ir import fit_t1_ir
+from .workflows.t2 import fit_t2
+from .workflows.vfa import fit_t1_vfa

@@ -22,7 +22,7 @@ from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .fitting.solver import ChunkFit, fit_chunk
 
-__all__ = ["fit_voxels", "DEFAULT_CHUNK", "Progress", "resolve_jobs"]
+__all__ = ["DEFAULT_CHUNK", "Progress", "fit_voxels", "resolve_jobs"]
 
 DEFAULT_CHUNK = 8192
 

@@ -8,11 +8,11 @@ prints the message as one line; anything else is a bug (exit code 1).
 from __future__ import annotations
 
 __all__ = [
-    "QmapError",
     "InputError",
-    "UsageError",
-    "OutputExistsError",
     "OutputError",
+    "OutputExistsError",
+    "QmapError",
+    "UsageError",
 ]
 
 

@@ -25,7 +25,7 @@ from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
 from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 
-__all__ = ["CommonOptions", "RunReport", "run_fit", "write_run", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma"]
+__all__ = ["CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "write_run"]
 
 log = logging.getLogger("qmap")
 
@@ -113,8 +113,7 @@ def default_prefix(path: str | Path) -> str:
     """Output stem from the first input: extension and per-volume entities removed."""
     name = Path(path).name
     for ext in (".nii.gz", ".nii"):
-        if name.endswith(ext):
-            name = name[: -len(ext)]
+        name = name.removesuffix(ext)
     return _SERIES_ENTITY.sub("", name) or "qmap"
 
 

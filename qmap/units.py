@@ -19,11 +19,11 @@ from .errors import InputError
 
 __all__ = [
     "PLAUSIBLE_MAX_S",
+    "check_angles",
+    "check_times",
+    "parse_angle_list",
     "parse_time",
     "parse_time_list",
-    "parse_angle_list",
-    "check_times",
-    "check_angles",
 ]
 
 #: Largest plausible value, in seconds, of each BIDS timing key. A bare number

@@ -25,9 +25,9 @@ import json
 import os
 import re
 import shutil
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import nibabel as nib
 import numpy as np
@@ -660,7 +660,7 @@ def _far_from(pf):
 
 
 PH = "phantom"
-_int_labels = lambda pf: pf.true_labels().astype(np.int16)  # noqa: E731
+_int_labels = lambda pf: pf.true_labels().astype(np.int16)
 REFUSED += [
     Case("labels-not-integer", PH, lambda d, _: _phantom(d, labels=_labels(lambda pf: _int_labels(pf) + 0.3)),
          (r"--labels", r"non-integer", r"integer label image")),

@@ -17,7 +17,7 @@ import traceback
 from .. import __version__
 from ..errors import QmapError
 
-__all__ = ["main", "get_parser"]
+__all__ = ["get_parser", "main"]
 
 #: subcommand -> module in qmap.cli defining ``add_parser(subparsers)`` and ``run(args) -> int``
 COMMANDS = {

@@ -13,7 +13,7 @@ from ..units import parse_angle_list, parse_time_list
 
 log = logging.getLogger("qmap")
 
-__all__ = ["add_common", "common_from_args", "add_noise", "times", "angles", "finish"]
+__all__ = ["add_common", "add_noise", "angles", "common_from_args", "finish", "times"]
 
 
 def add_common(p: argparse.ArgumentParser) -> None:

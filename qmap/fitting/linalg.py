@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["cholesky", "chol_solve", "chol_inverse"]
+__all__ = ["chol_inverse", "chol_solve", "cholesky"]
 
 
 def cholesky(a: np.ndarray) -> np.ndarray:

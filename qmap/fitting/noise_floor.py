@@ -29,7 +29,7 @@ import numpy as np
 from ..models.base import Derived, SeparableModel
 from .solver import levenberg_marquardt
 
-__all__ = ["NoiseFloor", "MODES", "DEFAULT_MODE", "WithOffset", "RICIAN_SWITCH"]
+__all__ = ["DEFAULT_MODE", "MODES", "RICIAN_SWITCH", "NoiseFloor", "WithOffset"]
 
 MODES = ("none", "offset", "truncate", "rician")
 #: default for t2 and t2star: the mode that stays unbiased on low-SNR magnitude data

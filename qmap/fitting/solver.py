@@ -32,7 +32,7 @@ from ..models.base import SeparableModel
 from . import status as st
 from .linalg import chol_inverse, chol_solve
 
-__all__ = ["ChunkFit", "fit_chunk", "grid_start", "linear_amplitudes", "levenberg_marquardt"]
+__all__ = ["ChunkFit", "fit_chunk", "grid_start", "levenberg_marquardt", "linear_amplitudes"]
 
 #: columns of the grid handled per matrix product (bounds memory for 2D grids)
 GRID_BLOCK = 256

@@ -2,8 +2,18 @@
 
 from __future__ import annotations
 
-__all__ = ["FITTED", "MASKED", "NONFINITE", "AT_BOUND", "NOT_CONVERGED", "ILL_CONDITIONED",
-           "OUTSIDE_B1", "TOO_FEW_SAMPLES", "NO_VALID_ANGLE", "STATUS_CODES"]
+__all__ = [
+           "AT_BOUND",
+           "FITTED",
+           "ILL_CONDITIONED",
+           "MASKED",
+           "NONFINITE",
+           "NOT_CONVERGED",
+           "NO_VALID_ANGLE",
+           "OUTSIDE_B1",
+           "STATUS_CODES",
+           "TOO_FEW_SAMPLES",
+]
 
 FITTED = 0
 MASKED = 1

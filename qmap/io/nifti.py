@@ -14,13 +14,13 @@ from scipy import ndimage
 from ..errors import InputError
 
 __all__ = [
+    "check_same_grid",
+    "image_data",
     "load_image",
     "read_sidecar",
-    "sidecar_path",
-    "same_grid",
-    "check_same_grid",
     "resample_to_grid",
-    "image_data",
+    "same_grid",
+    "sidecar_path",
 ]
 
 #: Affines may differ by this much (mm, and unitless for the rotation part)

@@ -22,7 +22,7 @@ import numpy as np
 from ..errors import OutputError, OutputExistsError
 from .nifti import sidecar_path
 
-__all__ = ["OutputFile", "map_filename", "AtomicWriter", "sha256_file", "existing_outputs", "nifti_for"]
+__all__ = ["AtomicWriter", "OutputFile", "existing_outputs", "map_filename", "nifti_for", "sha256_file"]
 
 #: number of successful commits in this process (lets the command line tell an interrupt that came
 #: after the outputs were in place from one that left the output folder untouched)

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["SeparableModel", "Derived", "OUTPUT_KINDS"]
+__all__ = ["OUTPUT_KINDS", "Derived", "SeparableModel"]
 
 OUTPUT_KINDS = ("estimate", "stderr", "quality", "status")
 

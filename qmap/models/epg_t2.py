@@ -62,7 +62,7 @@ from ..epg import n_state_rows
 from ..errors import InputError
 from .base import Derived, SeparableModel, delta_se_inverse
 
-__all__ = ["EpgT2", "echo_spacing", "cpmg_cos"]
+__all__ = ["EpgT2", "cpmg_cos", "echo_spacing"]
 
 #: smallest refocusing scale searched (90 degrees for a nominal 180)
 SCALE_MIN = 0.5

@@ -34,7 +34,7 @@ from numpy.typing import ArrayLike
 
 from .base import Derived, SeparableModel, delta_se_inverse
 
-__all__ = ["ir_signal", "InversionRecovery", "SIGNALS", "t1_bounds"]
+__all__ = ["SIGNALS", "InversionRecovery", "ir_signal", "t1_bounds"]
 
 #: accepted signal types
 SIGNALS = ("magnitude", "real", "complex")

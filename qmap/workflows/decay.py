@@ -11,7 +11,7 @@ from ..io.series import load_series
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
 
-__all__ = ["run_t2star", "noise_options", "load_echoes"]
+__all__ = ["load_echoes", "noise_options", "run_t2star"]
 
 
 def noise_options(noise_floor: str, sigma, coils: int, drop_first: bool = False) -> dict:

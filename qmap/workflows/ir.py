@@ -35,7 +35,7 @@ from ..maps import MapSet, fit_volume
 from ..models.ir import SIGNALS, InversionRecovery
 from ..pipeline import CommonOptions, RunReport, run_fit
 
-__all__ = ["run_t1_ir", "fit_t1_ir", "phase_correct"]
+__all__ = ["fit_t1_ir", "phase_correct", "run_t1_ir"]
 
 log = logging.getLogger("qmap")
 

@@ -313,7 +313,7 @@ def _fov(shape, affine) -> str:
                         for k in (0, (shape[2] if len(shape) > 2 else 1) - 1)], float)
     w = corners @ np.asarray(affine, float).T
     lo, hi = w[:, :3].min(0), w[:, :3].max(0)
-    return "x {:.0f}..{:.0f}, y {:.0f}..{:.0f}, z {:.0f}..{:.0f} mm".format(lo[0], hi[0], lo[1], hi[1], lo[2], hi[2])
+    return f"x {lo[0]:.0f}..{hi[0]:.0f}, y {lo[1]:.0f}..{hi[1]:.0f}, z {lo[2]:.0f}..{hi[2]:.0f} mm"
 
 
 def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxels, notes):

@@ -27,7 +27,7 @@ from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
 from .decay import load_echoes, noise_options
 
-__all__ = ["fit_t2", "run_t2", "t2_model", "DEFAULT_T1", "DEFAULT_REFOCUS"]
+__all__ = ["DEFAULT_REFOCUS", "DEFAULT_T1", "fit_t2", "run_t2", "t2_model"]
 
 #: fixed T1 of the EPG model, s (its influence on T2 is small; see qmap.models.epg_t2)
 DEFAULT_T1 = 1.0

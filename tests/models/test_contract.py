@@ -56,7 +56,7 @@ def test_jacobian_matches_numerical_derivative(name):
     for i in range(params.shape[0]):
         ci = None if ctx is None else {k: v[i : i + 1] for k, v in ctx.items()}
         for m in range(model.n_samples):
-            f = lambda p, m=m, ci=ci: model.predict(p[None, :], ci)[0, m]  # noqa: E731
+            f = lambda p, m=m, ci=ci: model.predict(p[None, :], ci)[0, m]
             eps = np.abs(params[i]) * 1e-7 + 1e-10
             num = approx_fprime(params[i], f, eps)
             np.testing.assert_allclose(J[i, :, m], num, rtol=2e-4, atol=1e-6 * np.abs(s[i]).max())

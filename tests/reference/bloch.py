@@ -24,22 +24,22 @@ Times are in seconds, angles in degrees, magnetisation in units of M0.
 from __future__ import annotations
 
 import math
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy.integrate import solve_ivp
 
 __all__ = [
+    "ATOL",
     "GAMMA",
     "RTOL",
-    "ATOL",
+    "afi_signals_bloch",
+    "ir_signal_bloch",
     "relax",
     "rf_pulse",
-    "spoil",
-    "ir_signal_bloch",
     "spgr_signal_bloch",
-    "afi_signals_bloch",
+    "spoil",
 ]
 
 #: Proton gyromagnetic ratio, rad s^-1 T^-1 (CODATA value, common practice).
