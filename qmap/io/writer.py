@@ -168,7 +168,7 @@ class AtomicWriter:
         return final
 
     def stage_json(self, name: str, obj) -> Path:
-        return self.stage_bytes(name, (json.dumps(obj, indent=2, sort_keys=False, default=_json_default) + "\n").encode())
+        return self.stage_bytes(name, (json.dumps(obj, indent=2, sort_keys=False, default=json_default) + "\n").encode())
 
     def stage_with(self, name: str, write_fn) -> Path:
         """Stage a file written by ``write_fn(path)`` (e.g. a PNG figure)."""
@@ -285,7 +285,8 @@ class AtomicWriter:
                 pass
 
 
-def _json_default(o):
+def json_default(o):
+    """``json.dump(default=...)`` for numpy scalars/arrays and paths."""
     if isinstance(o, np.generic):
         return o.item()
     if isinstance(o, np.ndarray):

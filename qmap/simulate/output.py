@@ -29,6 +29,7 @@ import nibabel as nib
 import numpy as np
 
 from ..errors import OutputError, OutputExistsError
+from ..io.writer import json_default
 
 __all__ = ["StagedFolder", "save_json", "save_nifti", "volume_names"]
 
@@ -106,20 +107,12 @@ def save_nifti(path: Path, data: np.ndarray, affine: np.ndarray, *, dtype=np.flo
 def save_json(path: Path, obj) -> None:
     try:
         with open(path, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=2, default=_default)
+            json.dump(obj, fh, indent=2, default=json_default)
             fh.write("\n")
     except OSError as exc:
         raise OutputError(f"cannot write {path} ({exc.strerror}); check free space and permissions") from None
 
 
-def _default(o):
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    if isinstance(o, Path):
-        return str(o)
-    raise TypeError(type(o).__name__)
 
 
 def volume_names(n: int, labels: list | None = None) -> list[str]:
