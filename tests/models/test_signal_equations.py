@@ -2,7 +2,7 @@
 
 The reference is ``tests/reference/bloch.py``: scipy ``solve_ivp`` on the Bloch
 equations (rotating frame, on resonance) with finite rectangular RF blocks; it
-shares no code with qmap. Worked values from ``/work/shared/REFERENCES.md`` are
+shares no code with qmap. Worked values from the project's reference list (REFERENCES.md) are
 checked as transcribed AND re-derived here from the published formula.
 
 Finite-pulse error budget: the closed forms assume instantaneous pulses. With
