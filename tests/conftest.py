@@ -8,6 +8,11 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from hypothesis import settings
+
+# property-based tests: reproducible in CI (fixed example sequence) and no wall-clock deadline
+settings.register_profile("qmap", deadline=None, derandomize=True)
+settings.load_profile("qmap")
 
 
 def write_nifti(path: Path, data, affine=None, sidecar: dict | None = None) -> Path:
