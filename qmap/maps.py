@@ -66,6 +66,21 @@ QUALITY_DESCRIPTIONS = {
 }
 
 
+class _Gather:
+    """Rows ``idx`` (flat C-order voxel indices) of a (..., m) array, gathered a chunk at a time.
+
+    Avoids holding a copy of every selected voxel's samples: the engine asks for ``rows[a:b]``.
+    """
+
+    def __init__(self, data: np.ndarray, idx: np.ndarray):
+        self.data = data
+        self.idx = idx
+        self.shape = (idx.size, data.shape[-1])
+
+    def __getitem__(self, sl: slice) -> np.ndarray:
+        return self.data[np.unravel_index(self.idx[sl], self.data.shape[:-1])]
+
+
 def fit_volume(
     model: SeparableModel,
     data: np.ndarray,
@@ -101,7 +116,10 @@ def fit_volume(
     noise = noise or NoiseFloor("none")
     # no reshaped copy of the series: NIfTI arrays are Fortran-ordered, so data.reshape(-1, m) would
     # copy it all; only the selected voxels are gathered below (in C order, matching ``idx``)
-    finite = np.all(np.isfinite(data), axis=-1).reshape(-1)
+    finite = np.ones(shape, bool)
+    for k in range(m):  # one volume at a time: no (voxels x samples) temporary
+        finite &= np.isfinite(data[..., k])
+    finite = finite.reshape(-1)
     sel = np.ones(nvox, bool) if mask is None else np.asarray(mask, bool).reshape(-1).copy()
     status = np.full(nvox, st.MASKED, np.uint8)
     status[sel & ~finite] = st.NONFINITE
@@ -150,9 +168,8 @@ def fit_volume(
         if "nsamples" in quality:
             quality["nsamples"][sub] = fit.n_used
 
-    sel_nd = sel.reshape(shape)
     fit_voxels(
-        model, data[sel_nd], ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
+        model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
         n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
         on_chunk=on_chunk,
     )
