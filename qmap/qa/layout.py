@@ -45,6 +45,7 @@ import numpy as np
 
 from ..errors import InputError
 from .detect import find_blobs
+from .reference import read_text_table
 from .register import MatchFailure, RigidMatch, register_points
 
 __all__ = ["Layout", "LayoutResult", "place_rois", "plane_basis", "read_layout"]
@@ -85,12 +86,7 @@ def _field(rec, cols, key, where, required=True) -> float:
 def read_layout(path: str | Path) -> Layout:
     """Read a layout CSV (see the module docstring)."""
     p = Path(path)
-    if not p.is_file():
-        raise InputError(f"--layout {p}: no such file; check the path")
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"--layout {p}: cannot be read as UTF-8 text ({exc})") from None
+    text = read_text_table(p, what=f"--layout {p}", missing_hint="check the path")
     lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
     if not lines:
         raise InputError(f"--layout {p}: the file is empty; expected label,x_mm,y_mm,radius_mm columns")

@@ -159,13 +159,18 @@ def _trange(t) -> str:
 def read_reference(path: str | Path) -> ReferenceTable:
     """Read and validate a reference CSV (see the module docstring)."""
     p = Path(path)
-    if not p.is_file():
-        raise InputError(f"reference table {p}: no such file; check the --reference path")
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"reference table {p}: cannot be read as UTF-8 text ({exc}); save it as CSV") from None
+    text = read_text_table(p, what=f"reference table {p}", missing_hint="check the --reference path")
     return parse_reference(text, where=str(p))
+
+
+def read_text_table(p: Path, *, what: str, missing_hint: str) -> str:
+    """The text of a small CSV table (BOM tolerated), with one-line errors naming ``what``."""
+    if not p.is_file():
+        raise InputError(f"{what}: no such file; {missing_hint}")
+    try:
+        return p.read_text(encoding="utf-8-sig")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"{what}: cannot be read as UTF-8 text ({exc}); save it as CSV") from None
 
 
 def _delimiter(header: str) -> str:
