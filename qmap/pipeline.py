@@ -24,6 +24,7 @@ from .io.nifti import check_same_grid, image_data, load_image
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
 from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
+from .noise_level import background_sigma, object_mask
 
 __all__ = ["CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "write_run"]
 
@@ -115,64 +116,6 @@ def default_prefix(path: str | Path) -> str:
     for ext in (".nii.gz", ".nii"):
         name = name.removesuffix(ext)
     return _SERIES_ENTITY.sub("", name) or "qmap"
-
-
-def _peak(block: np.ndarray) -> np.ndarray:
-    """Per-voxel maximum magnitude over the volumes of a block, without copying it.
-
-    Non-finite samples are skipped: a voxel with one inf sample keeps the peak of its other
-    samples, so that it stays in the automatic mask and the fit flags it (status 2) instead
-    of it silently counting as background (status 1).
-    """
-    with np.errstate(invalid="ignore"):
-        if np.iscomplexobj(block):
-            peak = np.fmax.reduce(np.abs(block), axis=3)
-        else:
-            lo = np.fmin.reduce(block, axis=3)
-            hi = np.fmax.reduce(block, axis=3)
-            peak = np.fmax(hi, -lo)  # real-valued data may be negative (phase-corrected IR)
-    bad = ~np.isfinite(peak)
-    if bad.any():  # rare: only the voxels holding +-inf (or nothing finite at all) are looked at again
-        sub = np.abs(block[bad])
-        peak[bad] = np.max(np.where(np.isfinite(sub), sub, 0.0), axis=-1)
-    return peak.astype(np.float32)
-
-
-def object_mask(series: Series, max_bytes: float | None = None) -> np.ndarray:
-    """The automatically detected object (cached: used by ``--mask auto`` and ``--sigma auto``).
-
-    Computed slab by slab (only the per-voxel peak image is held), see :func:`qmap.noise.auto_mask`.
-    """
-    from .noise import mask_from_peak
-
-    if series._object_mask is None:
-        peak = np.concatenate([_peak(series.read(z0, z1)) for z0, z1 in series.slabs(max_bytes)], axis=2)
-        series._object_mask = mask_from_peak(peak)
-        series._peak = peak
-    return series._object_mask
-
-
-#: background samples collected for ``--sigma auto`` (every k-th voxel by flat index, so that the
-#: choice does not depend on how the volume is read)
-SIGMA_SAMPLES = 2_000_000
-
-
-def background_sigma(series: Series, *, coils: int = 1, max_bytes: float | None = None) -> tuple[float, int]:
-    """Noise sigma from the image background, reading the series slab by slab."""
-    from .noise import background_exclusion, sigma_from_samples
-
-    obj = object_mask(series, max_bytes)
-    bg = ~background_exclusion(obj)
-    k = max(1, -(-int(bg.sum()) * series.n // SIGMA_SAMPLES))
-    keep = bg & (np.arange(bg.size).reshape(bg.shape) % k == 0)
-    values, n_voxels = [], 0
-    for z0, z1 in series.slabs(max_bytes):
-        block = series.read(z0, z1)
-        block = np.abs(block) if np.iscomplexobj(block) else block
-        b = block[bg[:, :, z0:z1]]
-        n_voxels += int(np.count_nonzero((np.isfinite(b) & (b != 0)).any(axis=1)))
-        values.append(block[keep[:, :, z0:z1]])
-    return sigma_from_samples(np.concatenate(values, axis=0), series._peak[obj], coils=coils, n_voxels=n_voxels)
 
 
 def resolve_mask(spec, series: Series, max_bytes: float | None = None) -> tuple[np.ndarray, str]:

@@ -40,6 +40,7 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 #: what a fitting run imports before it touches data: the baseline for "memory above the imports"
 BASELINE_IMPORTS = ("import qmap.cli.t2star, qmap.workflows.decay, qmap.engine, qmap.fitting.solver, qmap.noise, "
+                    "qmap.noise_level, "
                     "joblib, threadpoolctl, scipy.ndimage, scipy.special, nibabel")
 
 

@@ -26,7 +26,7 @@ import pytest
 import qmap.engine as engine_mod
 import qmap.io.series as series_mod
 import qmap.io.writer as writer_mod
-import qmap.noise as noise_mod
+import qmap.noise_level as noise_mod
 from qmap.cli import main
 from tests.conftest import decay_phantom, snapshot, write_nifti
 

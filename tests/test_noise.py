@@ -12,11 +12,12 @@ import math
 
 import numpy as np
 import pytest
-from scipy import special, stats
+from scipy import ndimage, special, stats
 
 from qmap import noise
 from qmap.errors import InputError
-from qmap.noise import auto_mask, estimate_sigma_background, otsu_threshold, rician_mean, rician_mean_grad
+from qmap.noise import rician_mean, rician_mean_grad
+from qmap.noise_level import auto_mask, estimate_sigma_background, otsu_threshold
 
 
 def _rice_mean_reference(b: float, scale: float) -> float:
@@ -274,7 +275,7 @@ def test_sigma_from_pure_noise_background(coils):
         data = np.sqrt(sum(_noisy_magnitude(rng, amp / math.sqrt(coils), sigma) ** 2 for _ in range(coils)))
     est, n = estimate_sigma_background(data, obj, coils=coils)
     assert est == pytest.approx(sigma, rel=0.05)
-    assert n == np.count_nonzero(~noise.ndimage.binary_dilation(obj, iterations=3))
+    assert n == np.count_nonzero(~ndimage.binary_dilation(obj, iterations=3))
 
 
 def test_sigma_pools_volumes_ignores_zero_fill_and_resists_ghosts():
@@ -295,7 +296,7 @@ def test_sigma_pools_volumes_ignores_zero_fill_and_resists_ghosts():
     data[ghosts] *= 30.0
     est, n = estimate_sigma_background(data, obj)
     assert est == pytest.approx(sigma, rel=0.02)
-    bg = ~noise.ndimage.binary_dilation(obj, iterations=3)
+    bg = ~ndimage.binary_dilation(obj, iterations=3)
     bg[:, :4] = False
     assert n == np.count_nonzero(bg)
 

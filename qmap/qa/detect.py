@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
-from ..noise import otsu_threshold
+from ..noise_level import otsu_threshold
 
 __all__ = ["MIN_COMPACTNESS", "Blob", "find_blobs"]
 
