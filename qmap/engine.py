@@ -66,12 +66,12 @@ class Progress:
         self.stream.flush()
 
 
-def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast"):
+def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast", stderr="noise"):
     if method == "lmfit":
         from .fitting.lmfit_engine import fit_chunk_lmfit
 
-        return fit_chunk_lmfit(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter)
-    return fit_chunk(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter)
+        return fit_chunk_lmfit(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter, stderr=stderr)
+    return fit_chunk(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter, stderr=stderr)
 
 
 @dataclass
@@ -95,6 +95,7 @@ def fit_voxels(
     max_iter: int = 60,
     method: str = "fast",
     on_chunk=None,
+    stderr: str = "noise",
 ) -> ChunkFit | None:
     """Fit every row of ``y`` (n, m) with ``model``; returns a :class:`ChunkFit` over all rows.
 
@@ -122,6 +123,9 @@ def fit_voxels(
         ``on_chunk(start, stop, ChunkFit)`` receives each chunk's result as it
         arrives (in order) instead of collecting them: the caller keeps only
         what it needs (bounded memory); ``fit_voxels`` then returns None.
+    stderr : {"noise", "residual"}
+        Covariance convention when ``sigma`` is given (see
+        :mod:`qmap.fitting.uncertainty`); without ``sigma``: residual.
     """
     n = y.shape[0]
     chunk_size = max(1, int(chunk_size))
@@ -134,7 +138,7 @@ def fit_voxels(
         sl = slice(c.start, c.stop)
         cctx = None if not ctx else {k: np.asarray(v[sl], float) for k, v in ctx.items()}
         return (model, np.asarray(y[sl], float), cctx, noise, None if sig is None else np.array(sig[sl]), max_iter,
-                method)
+                method, stderr)
 
     results: list[ChunkFit] = []
 

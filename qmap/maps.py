@@ -58,11 +58,13 @@ class MapSet:
         return status_counts(self.status)
 
 
-QUALITY_UNITS = {"rsquared": "1", "rmse": "a.u.", "nsamples": "1"}
+QUALITY_UNITS = {"rsquared": "1", "rmse": "a.u.", "nsamples": "1", "residualsd": "a.u."}
 QUALITY_DESCRIPTIONS = {
     "rsquared": "coefficient of determination R^2 of the fit (1 = perfect)",
     "rmse": "root-mean-square residual of the fit, signal units",
     "nsamples": "number of samples used by the fit",
+    "residualsd": "per-voxel residual sd sqrt(RSS/(m_used - P)), signal units: about the noise sd where the model "
+                  "fits; the scale of the standard errors under --stderr residual",
 }
 
 
@@ -97,6 +99,8 @@ def fit_volume(
     method: str = "fast",
     label: str = "fitting",
     dtype=np.float64,
+    stderr: str = "noise",
+    input_se: dict | None = None,
 ) -> MapSet:
     """Fit ``model`` in every voxel of ``data`` (X, Y, Z, m) inside ``mask``.
 
@@ -104,7 +108,18 @@ def fit_volume(
     :data:`~qmap.fitting.status.NONFINITE`) and do not affect their
     neighbours; voxels whose per-voxel model input (``ctx_maps``, e.g. B1) is
     not finite get ``invalid_ctx_status``.
+
+    Standard errors (:mod:`qmap.fitting.uncertainty`): with ``sigma`` given
+    and ``stderr="noise"`` (default) the inverse Fisher information with that
+    noise sd; otherwise the per-voxel residual variance. ``input_se`` maps a
+    ``ctx_maps`` name to the standard error of that input (same shape as the
+    volume), propagated to first order into the covariance.
+    ``maps.info["stderr"]`` records the convention.
     """
+    from .fitting.uncertainty import CONVENTION_TEXT, CONVENTIONS, add_input_covariance, input_sensitivity
+
+    if stderr not in CONVENTIONS:
+        raise ValueError(f"stderr={stderr!r}; expected one of {', '.join(CONVENTIONS)}")
     data = np.asarray(data)
     if data.ndim == 1:
         data = data[None, :]
@@ -145,36 +160,47 @@ def fit_volume(
     P = len(noise.wrap(model).param_names)
     template = noise.report(model, np.ones((1, P)), np.ones((1, P, P)))
     estimates = {d.name: np.full(nvox, np.nan, dtype) for d in template}
-    stderr = {d.name: np.full(nvox, np.nan, dtype) for d in template}
+    stderr_maps = {d.name: np.full(nvox, np.nan, dtype) for d in template}
     units = {d.name: d.units for d in template}
     descriptions = {d.name: d.description for d in template}
     times = [d.name for d in template if d.is_time]
-    quality = {"rsquared": np.full(nvox, np.nan, dtype), "rmse": np.full(nvox, np.nan, dtype)}
+    quality = {"rsquared": np.full(nvox, np.nan, dtype), "rmse": np.full(nvox, np.nan, dtype),
+               "residualsd": np.full(nvox, np.nan, dtype)}
     if noise.mode == "truncate":
         quality["nsamples"] = np.zeros(nvox, dtype)
     # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
     kept_codes = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
+    fit_model = noise.wrap(model)
+    se_in = {k: np.broadcast_to(np.asarray(v, float), shape).reshape(-1)[idx] for k, v in (input_se or {}).items()}
 
     def on_chunk(a: int, b: int, fit) -> None:
         sub = idx[a:b]
         status[sub] = fit.status
         keep = np.isin(fit.status, kept_codes)
         at = sub[keep]
-        for d in noise.report(model, fit.params, fit.cov):
+        cov = fit.cov
+        for name, se in se_in.items():  # an input's own uncertainty (e.g. the B1 map's), to first order
+            cctx = {k: v[a:b] for k, v in ctx.items()}
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                cov = add_input_covariance(cov, input_sensitivity(fit_model, fit.params, cctx, name), se[a:b])
+        for d in noise.report(model, fit.params, cov):
             estimates[d.name][at] = np.asarray(d.value, float)[keep]
-            stderr[d.name][at] = np.asarray(d.stderr, float)[keep]
+            stderr_maps[d.name][at] = np.asarray(d.stderr, float)[keep]
         quality["rsquared"][at] = fit.r2[keep]
         quality["rmse"][at] = fit.rmse[keep]
+        dof = fit.n_used[keep] - P
+        with np.errstate(invalid="ignore", divide="ignore"):
+            quality["residualsd"][at] = np.where(dof > 0, np.sqrt(fit.rss[keep] / np.maximum(dof, 1)), np.nan)
         if "nsamples" in quality:
             quality["nsamples"][sub] = fit.n_used
 
     fit_voxels(
         model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
         n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
-        on_chunk=on_chunk,
+        on_chunk=on_chunk, stderr=stderr,
     )
     estimates = {k: v.reshape(shape) for k, v in estimates.items()}
-    stderr = {k: v.reshape(shape) for k, v in stderr.items()}
+    stderr_out = {k: v.reshape(shape) for k, v in stderr_maps.items()}
     quality = {k: v.reshape(shape) for k, v in quality.items()}
     info = {
         "model": model.name,
@@ -182,7 +208,11 @@ def fit_volume(
         "noise_floor": noise.mode,
         "n_fitted": int(idx.size),
     }
-    return MapSet(estimates, stderr, units, descriptions, tuple(times), quality, status.reshape(shape), info)
+    used = stderr if sigma is not None else "residual"
+    info["stderr"] = {"convention": used, "meaning": CONVENTION_TEXT[used]}
+    if se_in:
+        info["stderr"]["propagated_inputs"] = sorted(se_in)
+    return MapSet(estimates, stderr_out, units, descriptions, tuple(times), quality, status.reshape(shape), info)
 
 
 def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int) -> MapSet:

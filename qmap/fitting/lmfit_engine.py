@@ -18,8 +18,14 @@ from .solver import ChunkFit, grid_start, linear_amplitudes
 __all__ = ["fit_chunk_lmfit"]
 
 
-def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int = 60) -> ChunkFit:
-    """Fit each voxel of ``y`` (n, m) with lmfit; same outputs as :func:`qmap.fitting.solver.fit_chunk`."""
+def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int = 60,
+                    stderr: str = "noise") -> ChunkFit:
+    """Fit each voxel of ``y`` (n, m) with lmfit; same outputs as :func:`qmap.fitting.solver.fit_chunk`.
+
+    With ``sigma`` given and ``stderr="noise"`` the covariance is lmfit's
+    divided by its reduced chi-square and multiplied by sigma^2 (the inverse
+    Fisher information; Gaussian noise model).
+    """
     import lmfit
 
     from ..noise import rician_mean
@@ -75,6 +81,10 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
         out.n_iter[i] = res.nfev
         if res.covar is not None and res.covar.shape == (P, P):
             out.cov[i] = res.covar
+            if sig is not None and stderr == "noise":
+                nfree = int(np.sum(w[i] > 0)) - P
+                redchi = rss / nfree if nfree > 0 else np.nan
+                out.cov[i] = res.covar / redchi * sig[i] ** 2 if redchi > 0 else np.nan
         else:
             out.status[i] = st.ILL_CONDITIONED
         if not res.success:
@@ -88,4 +98,5 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
         span = hi_nl - lo_nl
         if np.any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span)):
             out.status[i] = st.AT_BOUND
+            out.cov[i] = np.inf
     return out

@@ -13,10 +13,13 @@ For a chunk of voxels ``y`` (n, m) and a :class:`~qmap.models.base.SeparableMode
 3. **Noise floor.** :mod:`qmap.fitting.noise_floor` changes the objective
    (offset column, truncation weights, or the Rician expectation of the
    magnitude) for any model.
-4. **Uncertainty.** Covariance ``s^2 (J^T W J)^-1`` at the solution, with
-   ``s^2 = RSS / (m_used - P)`` (the residual variance, as
-   ``scipy.optimize.curve_fit`` with ``absolute_sigma=False``); when no
-   degrees of freedom remain and the noise sigma is known, ``s = sigma``.
+4. **Uncertainty.** Covariance ``s^2 (J^T W J)^-1`` at the solution
+   (:mod:`qmap.fitting.uncertainty`): with the noise sigma known ``s = sigma``
+   (the inverse Fisher information, ``curve_fit`` with ``absolute_sigma=True``;
+   a Rician sandwich where the noise floor is modelled), otherwise -- or with
+   ``stderr="residual"`` -- ``s^2 = RSS / (m_used - P)`` (``absolute_sigma=False``).
+   Voxels with an estimate at a bound get an infinite covariance: the
+   linearised interval means nothing there.
 
 Every voxel's arithmetic after the grid search is element-wise, so results do
 not depend on the chunk size or on how many workers ran.
@@ -296,6 +299,7 @@ def fit_chunk(
     noise=None,
     sigma: np.ndarray | None = None,
     max_iter: int = 60,
+    stderr: str = "noise",
 ) -> ChunkFit:
     """Fit ``model`` to the voxels ``y`` (n, m); see the module docstring.
 
@@ -310,6 +314,11 @@ def fit_chunk(
         Noise-floor handling; None means plain least squares.
     sigma : (n,) ndarray, optional
         Noise standard deviation per voxel (needed by ``truncate`` and ``rician``).
+    stderr : {"noise", "residual"}
+        Covariance convention when ``sigma`` is given: the inverse Fisher
+        information with the known noise sd (default), or the per-voxel
+        residual variance RSS/(m_used - P). Without ``sigma`` the residual
+        variance is used (and sigma nowhere).
     """
     from .noise_floor import NoiseFloor  # local import: noise_floor imports this module
 
@@ -354,15 +363,24 @@ def fit_chunk(
         p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
                                                    max_iter=max_iter)
 
-    # covariance
+    # covariance (see qmap.fitting.uncertainty for the two conventions)
     JTJ, _ = _normal(J, wl, np.zeros_like(yfit))
     inv = chol_inverse(JTJ)
     dof = n_used - P
     with np.errstate(divide="ignore", invalid="ignore"):
         s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
     if sigma is not None:
-        s2 = np.where(dof > 0, s2, np.asarray(sigma, float) ** 2 * np.ones(n))
+        sig2 = np.broadcast_to(np.asarray(sigma, float), (n,)) ** 2
+        if stderr == "noise":  # voxels without a usable sigma (a noise map's holes) keep the residual variance
+            s2 = np.where(np.isfinite(sig2) & (sig2 > 0), sig2, s2)
+        else:
+            s2 = np.where(dof > 0, s2, sig2)
     cov = inv * s2[:, None, None]
+    if sigma is not None and stderr == "noise":
+        if noise.mode == "rician":
+            cov = _rician_covariance(fit_model, p, J, inv, cov, wl, sigma, ctx, noise.coils)
+        if getattr(model, "sign_ambiguous", False):
+            cov = _widen_near_null(fit_model, p, J, cov, wl, s2, ctx)
     # quality
     ybar = np.sum(w * yfit, axis=1) / np.maximum(n_used, 1)
     tss = np.sum(w * (yfit - ybar[:, None]) ** 2, axis=1)
@@ -375,6 +393,7 @@ def fit_chunk(
     span = hi_nl - lo_nl
     at_bound = np.any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span), axis=1)
     status[at_bound] = st.AT_BOUND
+    cov[at_bound] = np.inf  # never a small standard error for an estimate pinned at a bound
     diag = np.einsum("npp->np", inv)
     ill = ~np.all(np.isfinite(diag) & (diag >= 0), axis=1)
     status[ill & (status == 0)] = st.ILL_CONDITIONED
@@ -384,6 +403,61 @@ def fit_chunk(
     too_few = n_used < P
     status[too_few] = st.TOO_FEW_SAMPLES
     return ChunkFit(params=p, cov=cov, rss=rss, r2=r2, rmse=rmse, n_used=n_used, status=status, n_iter=nit)
+
+
+def _rician_covariance(fit_model, p, J, inv, cov, w, sigma, ctx, coils):
+    """Sandwich covariance with the Rician sample variances, for the voxels near the noise floor.
+
+    ``J`` there is already the Jacobian of the Rician expectation (the fit's
+    own model); far from the floor (lowest sample above ``RICIAN_SWITCH``
+    sigma) the variance is sigma^2 to better than 0.25 % and ``cov`` is kept.
+    """
+    from .noise_floor import RICIAN_SWITCH
+    from .uncertainty import rician_sample_variance, sandwich
+
+    n = p.shape[0]
+    sig = np.broadcast_to(np.asarray(sigma, float), (n,))
+    s = fit_model.predict(p, ctx)
+    sel = np.flatnonzero(np.min(s, axis=1) < RICIAN_SWITCH * sig)
+    if sel.size == 0:
+        return cov
+    var = rician_sample_variance(s[sel], sig[sel, None], coils=coils)
+    cov = cov.copy()
+    cov[sel] = sandwich(J[sel], inv[sel], var, None if w is None else w[sel])
+    return cov
+
+
+#: magnitude samples whose fitted signal is below this many sigma carry no information in the standard errors
+NEAR_NULL_SIGMA = 2.0
+
+
+def _widen_near_null(fit_model, p, J, cov, w, s2, ctx):
+    """Covariance without the samples near the null of a sign-restored magnitude fit (a wider interval).
+
+    Below about 2 sigma a magnitude sample's sign is a guess and its error is
+    Rician, not Gaussian, so the linearised interval that counts it is too
+    narrow (measured for magnitude inversion recovery: 92 % instead of 95 %
+    coverage among the voxels with such a sample at SNR 30, 90 % at SNR 8).
+    The rule: those samples are left out of the Fisher information, which
+    gives 95 % (SNR 30 and 15) and 93 % (SNR 8) coverage over all voxels.
+    Voxels whose remaining samples do not determine the parameters get an
+    infinite covariance.
+    """
+    s = fit_model.predict(p, ctx)
+    near = np.abs(s) < NEAR_NULL_SIGMA * np.sqrt(s2)[:, None]
+    sel = np.flatnonzero(near.any(axis=1) & np.isfinite(s2))
+    if sel.size == 0:
+        return cov
+    keep = (~near[sel]).astype(float)
+    if w is not None:
+        keep = keep * w[sel]
+    JTJ, _ = _normal(J[sel], keep, np.zeros(keep.shape))
+    inv = chol_inverse(JTJ)
+    bad = ~np.all(np.isfinite(np.einsum("npp->np", inv)) & (np.einsum("npp->np", inv) >= 0), axis=1)
+    cov = cov.copy()
+    cov[sel] = inv * s2[sel, None, None]
+    cov[sel[bad]] = np.inf
+    return cov
 
 
 def _take(ctx: dict | None, idx) -> dict | None:

@@ -61,6 +61,9 @@ class SeparableModel(ABC):
     linear: tuple[str, ...] = ("M0",)
     nonlinear: tuple[str, ...] = ()
     voxel_inputs: tuple[str, ...] = ()
+    #: magnitude data whose sign the fit restores (inversion recovery): samples near the null get no weight in the
+    #: standard errors when the noise level is known (:func:`qmap.fitting.solver.fit_chunk`)
+    sign_ambiguous: bool = False
     #: the sample-axis values the model is evaluated at (seconds / degrees)
     x: np.ndarray
 

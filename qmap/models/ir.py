@@ -130,6 +130,7 @@ class InversionRecovery(SeparableModel):
             raise ValueError(f"signal {signal!r}; expected one of {', '.join(SIGNALS)}")
         self.x = np.asarray(ti, dtype=float).ravel()
         self.signal = signal
+        self.sign_ambiguous = signal == "magnitude"
         self.look_locker = bool(look_locker)
         self.nonlinear = ("ApparentT1",) if self.look_locker else ("T1",)
 
