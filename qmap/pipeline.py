@@ -199,8 +199,9 @@ def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
         u = "ms" if f == 1e3 else maps.units[name]
         outs.append(OutputFile(map_filename(prefix, name, "estimate"), maps.estimates[name], name, "estimate", u,
                                maps.descriptions[name], scale=f))
-        outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name], name, "stderr", u,
-                               f"standard error (1 sigma) of {name}", scale=f))
+        if name in maps.stderr:  # a map without any noise information (e.g. a lookup) has no stderr file
+            outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name], name, "stderr", u,
+                                   f"standard error (1 sigma) of {name}", scale=f))
     for q, arr in maps.quality.items():
         outs.append(OutputFile(map_filename(prefix, q, "quality"), arr, q, "quality", QUALITY_UNITS[q],
                                QUALITY_DESCRIPTIONS[q]))

@@ -31,6 +31,7 @@ COMMANDS = {
     "batch": "batch",
     "demo": "demo",
     "inspect": "inspect_voxel",
+    "t1-mp2rage": "t1_mp2rage",
 }
 
 

@@ -11,6 +11,7 @@ __all__ = [
            "NOT_CONVERGED",
            "NO_VALID_ANGLE",
            "OUTSIDE_B1",
+           "OUTSIDE_LOOKUP",
            "STATUS_CODES",
            "TOO_FEW_SAMPLES",
 ]
@@ -24,6 +25,7 @@ ILL_CONDITIONED = 5
 OUTSIDE_B1 = 6
 TOO_FEW_SAMPLES = 7
 NO_VALID_ANGLE = 8
+OUTSIDE_LOOKUP = 9
 
 #: code -> meaning, as written to provenance (``status_codes``)
 STATUS_CODES = {
@@ -36,4 +38,5 @@ STATUS_CODES = {
     OUTSIDE_B1: "outside the B1 map's field of view, not fitted",
     TOO_FEW_SAMPLES: "too few samples above the noise floor to fit",
     NO_VALID_ANGLE: "the signal ratio corresponds to no valid flip angle",
+    OUTSIDE_LOOKUP: "the value (MP2RAGE UNI) lies outside the range the lookup table can invert at this voxel's B1",
 }

@@ -1,0 +1,459 @@
+"""``qmap t1-mp2rage``: T1 from the combined MP2RAGE image by a lookup of the signal model, with B1 correction.
+
+UNI -> T1 through :class:`qmap.models.mp2rage.Mp2rageLookup` (a table over T1 x
+B1, interpolated; no fitting). The UNI image may be a float image in
+[-0.5, 0.5] or the 12-bit integer export 0..4095 (UNI = value / 4095 - 0.5;
+common practice), told apart by its range. With the two inversion images
+(``inv1``, ``inv2``: magnitude, complex, or magnitude with a phase image) the
+workflow also writes M0 (least squares of the two magnitudes on the model
+signals) and standard errors of T1, R1 and M0: the noise sd of the inversion
+images (:func:`qmap.pipeline.resolve_sigma`, as every command) propagated
+through UNI to first order at the model signals.
+
+Status codes: 0 inverted, 1 outside the mask, 2 UNI not finite, 6 outside the
+B1 map, 9 UNI outside the range the lookup can invert at that voxel's B1
+(T1 outside the range where UNI is monotonic in T1, or B1 outside 0.2-3).
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from pathlib import Path
+
+import numpy as np
+
+from ..b1 import load_b1_map
+from ..errors import InputError, UsageError
+from ..fitting import status as st
+from ..io.nifti import check_same_grid, image_data, load_image, read_sidecar
+from ..io.series import Series, resolve_parameter
+from ..maps import MapSet
+from ..models.mp2rage import (
+    DEFAULT_EFFICIENCY,
+    Mp2rageLookup,
+    MP2RAGEProtocol,
+    mp2rage_signals,
+    uni_stderr,
+)
+from ..pipeline import CommonOptions, RunReport, check_outputs_free, default_prefix, resolve_sigma, write_run
+
+__all__ = ["B1_TABLE_RANGE", "UNI_ENCODINGS", "decode_uni", "fit_t1_mp2rage", "run_t1_mp2rage"]
+
+log = logging.getLogger("qmap")
+
+#: relative B1 values the lookup table may cover; voxels outside get status 9
+B1_TABLE_RANGE = (0.2, 3.0)
+UNI_ENCODINGS = {
+    "float": "float UNI in [-0.5, 0.5]",
+    "12bit": "12-bit integer export 0..4095, UNI = value/4095 - 0.5 (common practice)",
+}
+#: relative step of the central difference for dUNI/dT1
+_H = 1e-4
+NO_B1_NOTE = ("no B1 correction: nominal flip angles assumed (UNI depends on the transmit field, most for long "
+              "T1; pass --b1 B1MAP to correct)")
+EQUATION = ("UNI = S1 S2/(S1^2 + S2^2), S1, S2 the k-space-centre signals of the periodic steady state of "
+            "inversion (efficiency e) + two gradient-echo blocks with angles B1 x FlipAngle (Marques et al. 2010)")
+
+
+def decode_uni(values: np.ndarray, where: str) -> tuple[np.ndarray, str]:
+    """UNI in [-0.5, 0.5] from a float or 12-bit integer image, recognised by the range of its finite values."""
+    v = np.asarray(values)
+    finite = v[np.isfinite(v)] if np.issubdtype(v.dtype, np.floating) else v.reshape(-1)
+    if finite.size == 0:
+        raise InputError(f"{where}: every UNI value is NaN or infinite; nothing to invert")
+    lo, hi = float(finite.min()), float(finite.max())
+    if lo == hi:
+        raise InputError(f"{where}: the UNI image holds no signal (every value is {lo:g}); check the export")
+    tol = 1e-6
+    if lo >= -0.5 - tol and hi <= 0.5 + tol:
+        return np.clip(v.astype(np.float32), -0.5, 0.5), "float"
+    if lo >= 0 and hi <= 4095 + tol and hi > 1.0:
+        return (v.astype(np.float32) / np.float32(4095.0) - np.float32(0.5)), "12bit"
+    hint = " (rescaled to [0, 1]? subtract 0.5)" if lo >= 0 and hi <= 1 else ""
+    raise InputError(f"{where}: UNI values span {lo:g}..{hi:g}, neither a float UNI in [-0.5, 0.5] nor the 12-bit "
+                     f"integer export 0..4095{hint}; pass the combined MP2RAGE image (UNI/UNIT1) as exported")
+
+
+def _merged_sidecar(uni, inv1, inv2) -> tuple[dict, str]:
+    """The protocol keys from the UNI sidecar, completed from the inversion images' sidecars (one value each)."""
+    sc = dict(read_sidecar(uni))
+    if inv1 is None or inv2 is None:
+        return sc, str(uni)
+    s1, s2 = read_sidecar(inv1), read_sidecar(inv2)
+    for key in ("InversionTime", "FlipAngle"):
+        if key not in sc and key in s1 and key in s2:
+            sc[key] = [s1[key], s2[key]]
+    for key in ("RepetitionTimePreparation", "RepetitionTimeExcitation", "NumberShots"):
+        if key not in sc:
+            vals = [s[key] for s in (s1, s2) if key in s]
+            if vals:
+                if len(vals) == 2 and vals[0] != vals[1]:
+                    raise InputError(f"{inv1}, {inv2}: sidecars disagree on {key} ({vals[0]} vs {vals[1]}); one "
+                                     f"MP2RAGE acquisition has one value")
+                sc[key] = vals[0]
+    return sc, str(uni)
+
+
+def _numbers(sc: dict, key: str, where: str):
+    if key not in sc:
+        return None
+    v = sc[key]
+    vals = v if isinstance(v, list) else [v]
+    if not vals or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in vals):
+        raise InputError(f"{where}: sidecar {key} is {v!r}; expected a number or a list of numbers")
+    return np.asarray(vals, float)
+
+
+def resolve_protocol(sidecar: dict, where: str, *, ti=None, fa=None, tr_prep=None, tr_exc=None, shots=None,
+                     efficiency: float | None = None) -> tuple[MP2RAGEProtocol, dict]:
+    """The protocol from the command line (wins, with a warning on disagreement) and the sidecar keys."""
+    if fa is not None and np.size(fa) != 2:
+        raise UsageError(f"--fa: MP2RAGE has two flip angles (one per block), got {np.size(fa)}: "
+                         f"{','.join(f'{a:g}' for a in np.atleast_1d(fa))}")
+    if ti is not None and np.size(ti) != 2:
+        raise UsageError(f"--ti: MP2RAGE has two inversion times, got {np.size(ti)}")
+    sources = {}
+    tiv, sources["InversionTime"] = resolve_parameter("InversionTime", ti, _numbers(sidecar, "InversionTime", where),
+                                                      2, option="--ti", where=where)
+    fav, sources["FlipAngle"] = resolve_parameter("FlipAngle", fa, _numbers(sidecar, "FlipAngle", where), 2,
+                                                  option="--fa", where=where)
+    tp, sources["RepetitionTimePreparation"] = resolve_parameter(
+        "RepetitionTimePreparation", tr_prep, _numbers(sidecar, "RepetitionTimePreparation", where), None,
+        option="--tr-prep", where=where, check_key="RepetitionTime")
+    te, sources["RepetitionTimeExcitation"] = resolve_parameter(
+        "RepetitionTimeExcitation", tr_exc, _numbers(sidecar, "RepetitionTimeExcitation", where), None,
+        option="--tr-exc", where=where, check_key="RepetitionTimeSpoiled")
+    side_shots = _numbers(sidecar, "NumberShots", where)
+    if side_shots is not None and (side_shots.size != 1 or side_shots[0] != int(side_shots[0])):
+        raise InputError(f"{where}: sidecar NumberShots {sidecar['NumberShots']!r}; expected one whole number "
+                         f"(excitations per block)")
+    if shots is not None:
+        n, sources["NumberShots"] = int(shots), "command line"
+        if side_shots is not None and int(side_shots[0]) != n:
+            log.warning("--shots %d differs from the sidecar NumberShots %d; using the command line", n,
+                        int(side_shots[0]))
+    elif side_shots is not None:
+        n, sources["NumberShots"] = int(side_shots[0]), "sidecar"
+    else:
+        raise InputError(f"{where}: no NumberShots found; give --shots or add NumberShots to the BIDS sidecar")
+    eff = DEFAULT_EFFICIENCY if efficiency is None else float(efficiency)
+    sources["InversionEfficiency"] = "default" if efficiency is None else "command line"
+    proto = MP2RAGEProtocol(ti=(float(tiv[0]), float(tiv[1])), fa=(float(fav[0]), float(fav[1])), tr_prep=float(tp),
+                            tr_exc=float(te), shots=n, efficiency=eff).check()
+    return proto, sources
+
+
+def fit_t1_mp2rage(
+    uni,
+    protocol: MP2RAGEProtocol,
+    *,
+    b1=None,
+    mask=None,
+    inv1=None,
+    inv2=None,
+    sigma=None,
+) -> MapSet:
+    """T1 and R1 (and with the inversion images M0 and standard errors) from UNI by the lookup.
+
+    Parameters
+    ----------
+    uni : (...) array_like
+        UNI in [-0.5, 0.5].
+    protocol : MP2RAGEProtocol
+    b1 : (...) array_like, optional
+        Relative B1 per voxel (NaN: status 6). Without it B1 = 1.
+    mask : (...) bool array_like, optional
+        Voxels to invert (default: all).
+    inv1, inv2 : (...) array_like, optional
+        The inversion images (magnitudes, or complex: their magnitudes are
+        used). Needed for M0 and the standard errors.
+    sigma : float or (...) ndarray, optional
+        Noise sd per real/imaginary channel of the inversion images (signal
+        units); without it the standard errors are NaN.
+
+    Returns
+    -------
+    MapSet
+        ``T1`` (s), ``R1`` (1/s), and with ``inv1``/``inv2`` ``M0`` (a.u.)
+        with standard errors and the ``rmse`` quality map (RMS residual of
+        the two magnitudes against M0 x model).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from qmap.models.mp2rage import MP2RAGEProtocol, mp2rage_uni
+    >>> p = MP2RAGEProtocol((0.7, 2.5), (4.0, 5.0), 5.0, 0.007, 176)
+    >>> maps = fit_t1_mp2rage(mp2rage_uni(np.array([0.9, 1.6]), p), p)
+    >>> np.round(maps["T1"], 4).tolist()
+    [0.9, 1.6]
+    """
+    u = np.asarray(uni, np.float32)
+    shape = u.shape
+    nvox = u.size
+    sel = np.ones(nvox, bool) if mask is None else np.asarray(mask, bool).reshape(-1).copy()
+    uf = u.reshape(-1)
+    status = np.full(nvox, st.MASKED, np.uint8)
+    finite = np.isfinite(uf)
+    status[sel & ~finite] = st.NONFINITE
+    sel &= finite
+    b1f = None
+    if b1 is not None:
+        b1f = np.broadcast_to(np.asarray(b1, np.float32), shape).reshape(-1)
+        okb = np.isfinite(b1f)
+        status[sel & ~okb] = st.OUTSIDE_B1
+        sel &= okb
+    idx = np.flatnonzero(sel)
+    if b1f is None:
+        lut = Mp2rageLookup(protocol)
+        bsel = None
+    else:
+        bsel = b1f[idx].astype(float)
+        inside = (bsel >= B1_TABLE_RANGE[0]) & (bsel <= B1_TABLE_RANGE[1])
+        lo, hi = (float(bsel[inside].min()), float(bsel[inside].max())) if inside.any() else (1.0, 1.0)
+        lut = Mp2rageLookup(protocol, b1_range=(lo, hi))
+    t1 = lut.t1(uf[idx].astype(float), bsel)
+    ok = np.isfinite(t1)
+    status[idx] = np.where(ok, st.FITTED, st.OUTSIDE_LOOKUP)
+    good = idx[ok]
+    t1g = t1[ok]
+    bg = None if bsel is None else bsel[ok]
+
+    def volume(values=None, at=good):
+        out = np.full(nvox, np.nan, np.float32)
+        if values is not None:
+            out[at] = values
+        return out.reshape(shape)
+
+    est = {"T1": volume(t1g), "R1": volume(1.0 / t1g)}
+    units = {"T1": "s", "R1": "1/s"}
+    desc = {"T1": "longitudinal relaxation time T1 from the MP2RAGE UNI image (lookup of the signal model)",
+            "R1": "longitudinal relaxation rate R1 = 1/T1"}
+    stderr: dict = {}
+    quality: dict = {}
+    if inv1 is not None and inv2 is not None:
+        m0, se = _m0_and_errors(t1g, bg, protocol, np.asarray(inv1).reshape(-1)[good],
+                                np.asarray(inv2).reshape(-1)[good],
+                                None if sigma is None else np.broadcast_to(np.asarray(sigma, float),
+                                                                           shape).reshape(-1)[good])
+        est["M0"] = volume(m0["M0"])
+        units["M0"] = "a.u."
+        desc["M0"] = ("apparent M0 (least squares of the two inversion magnitudes on the model signals; includes "
+                      "receive sensitivity and T2* decay)")
+        stderr = {k: volume(v) for k, v in se.items()}
+        quality["rmse"] = volume(m0["rmse"])
+    info = {"model": "mp2rage", "parameters": list(est), "noise_floor": "none", "n_fitted": int(idx.size),
+            "t1_lookup_range_s": [float(np.nanmin(lut.limits[:, 0])), float(np.nanmax(lut.limits[:, 1]))],
+            "b1_table": [float(lut.b1[0]), float(lut.b1[-1])]}
+    return MapSet(est, stderr, units, desc, ("T1",), quality, status.reshape(shape), info)
+
+
+def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma):
+    """M0 by least squares of the magnitudes, and first-order standard errors of T1, R1, M0."""
+    b = 1.0 if b1 is None else b1
+    f1, f2 = mp2rage_signals(t1, protocol, b)
+    a1, a2 = np.abs(inv1).astype(float), np.abs(inv2).astype(float)
+    ff = f1 * f1 + f2 * f2
+    m0 = (a1 * np.abs(f1) + a2 * np.abs(f2)) / ff
+    rmse = np.sqrt(((a1 - m0 * np.abs(f1)) ** 2 + (a2 - m0 * np.abs(f2)) ** 2) / 2.0)
+    se = {}
+    if sigma is not None:
+        # dUNI/dT1 and dM0/dT1 (at fixed magnitudes) by central differences of the model
+        p1, p2 = mp2rage_signals(t1 * (1 + _H), protocol, b)
+        q1, q2 = mp2rage_signals(t1 * (1 - _H), protocol, b)
+        dt = 2 * _H * t1
+        du_dt = ((p1 * p2) / (p1 * p1 + p2 * p2) - (q1 * q2) / (q1 * q1 + q2 * q2)) / dt
+        m0p = (a1 * np.abs(p1) + a2 * np.abs(p2)) / (p1 * p1 + p2 * p2)
+        m0q = (a1 * np.abs(q1) + a2 * np.abs(q2)) / (q1 * q1 + q2 * q2)
+        dm0_dt = (m0p - m0q) / dt
+        s1, s2 = m0 * f1, m0 * f2  # the model signals (signed): the Fisher-information convention
+        pp = s1 * s1 + s2 * s2
+        du_ds1 = s2 * (s2 * s2 - s1 * s1) / pp**2
+        du_ds2 = s1 * (s1 * s1 - s2 * s2) / pp**2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dt_ds1, dt_ds2 = du_ds1 / du_dt, du_ds2 / du_dt
+            se_t1 = uni_stderr(s1, s2, sigma) / np.abs(du_dt)
+        # M0 = (|S1| |f1| + |S2| |f2|)/(f1^2 + f2^2) with f depending on T1(S1, S2); at the model signals
+        # d|S_k|/dS_k = sign(f_k), so the direct term is f_k/(f1^2 + f2^2)
+        g1 = f1 / ff + dm0_dt * dt_ds1
+        g2 = f2 / ff + dm0_dt * dt_ds2
+        se = {"T1": se_t1, "R1": se_t1 / t1**2, "M0": sigma * np.sqrt(g1 * g1 + g2 * g2)}
+    else:
+        nan = np.full(t1.shape, np.nan)
+        se = {"T1": nan, "R1": nan, "M0": nan}
+    return {"M0": m0, "rmse": rmse}, se
+
+
+def _load_3d(path, what: str, *, allow_complex: bool = False):
+    img = load_image(path, what=what)
+    shape = img.shape
+    if len(shape) > 3 and not all(s == 1 for s in shape[3:]):
+        raise InputError(f"{what} {path}: has shape {shape}; expected one 3D volume")
+    data = image_data(img, path, dtype=np.float32, allow_complex=allow_complex)
+    return img, data.reshape(shape[:3])
+
+
+def _load_inversion(path, phase, what: str, ref_img):
+    img, data = _load_3d(path, what, allow_complex=True)
+    check_same_grid(ref_img.shape, ref_img.affine, img.shape, img.affine, ref_name="the UNI image",
+                    name=f"{what} {path}")
+    if phase is not None:
+        if np.iscomplexobj(data):
+            raise UsageError(f"{what}-phase: {path} already holds complex data; give a complex image or a magnitude "
+                             f"with its phase, not both")
+        pimg, ph = _load_3d(phase, f"{what}-phase")
+        check_same_grid(ref_img.shape, ref_img.affine, pimg.shape, pimg.affine, ref_name="the UNI image",
+                        name=f"{what}-phase {phase}")
+        peak = float(np.nanmax(np.abs(ph))) if np.isfinite(ph).any() else 0.0
+        if peak > 3.1416:
+            raise InputError(f"{what}-phase {phase}: values reach {peak:g}, expected radians in [-pi, pi]; convert the "
+                             f"phase first (e.g. integer-coded -4096..4095: multiply by pi/4096)")
+        data = np.abs(data) * np.exp(1j * ph.astype(np.float32))
+    elif not np.iscomplexobj(data) and np.nanmin(data) < 0:
+        raise InputError(f"{what} {path}: holds negative values but a magnitude image is >= 0; give the magnitude, "
+                         f"a complex image, or the magnitude with --{what.lstrip('-')}-phase")
+    return data
+
+
+def run_t1_mp2rage(
+    uni,
+    *,
+    common: CommonOptions,
+    inv1=None,
+    inv2=None,
+    inv1_phase=None,
+    inv2_phase=None,
+    ti=None,
+    fa=None,
+    tr_prep: float | None = None,
+    tr_exc: float | None = None,
+    shots: int | None = None,
+    efficiency: float | None = None,
+    b1=None,
+    b1_scale: str | None = None,
+    b1_smooth: float | None = None,
+    sigma_spec=None,
+) -> RunReport:
+    """T1, R1 (and with the inversion images M0 and standard errors) maps from an MP2RAGE UNI image.
+
+    Parameters
+    ----------
+    uni : path-like
+        The combined image (3D NIfTI): float in [-0.5, 0.5] or 12-bit integer 0..4095.
+    common : CommonOptions
+    inv1, inv2 : path-like, optional
+        The two inversion images (magnitude or complex), same grid as UNI.
+    inv1_phase, inv2_phase : path-like, optional
+        Phase images (radians) of magnitude inversion images.
+    ti, fa : two values each, optional
+        Inversion times (s) and nominal flip angles (deg); default from the sidecars.
+    tr_prep, tr_exc : float, optional
+        ``RepetitionTimePreparation`` and ``RepetitionTimeExcitation``, s.
+    shots : int, optional
+        ``NumberShots`` (excitations per block).
+    efficiency : float, optional
+        Inversion efficiency (default :data:`~qmap.models.mp2rage.DEFAULT_EFFICIENCY`).
+    b1 : path-like, optional
+        Relative B1 map (any grid, resampled through the affines).
+    b1_scale, b1_smooth
+        As for ``t1-vfa``.
+    sigma_spec : str, optional
+        ``--sigma`` (auto, a value or a noise map) for the inversion images' noise.
+    """
+    t0 = time.perf_counter()
+    if (inv1 is None) != (inv2 is None):
+        raise UsageError("--inv1 and --inv2 go together: give both inversion images, or neither")
+    if (inv1_phase is not None and inv1 is None) or (inv2_phase is not None and inv2 is None) or (
+            (inv1_phase is None) != (inv2_phase is None)):
+        raise UsageError("--inv1-phase/--inv2-phase: give the phase of both inversion images, with --inv1/--inv2")
+    if sigma_spec not in (None, "auto") and inv1 is None:
+        raise UsageError("--sigma is the noise of the inversion images: it needs --inv1/--inv2")
+    if (b1_scale is not None or b1_smooth) and b1 is None:
+        raise UsageError("--b1-scale / --b1-smooth need --b1 B1MAP")
+    if efficiency is not None and not (0 < efficiency <= 1):
+        raise UsageError(f"--inversion-efficiency {efficiency:g}: expected a number in (0, 1] (1 = perfect)")
+    upath = Path(uni).expanduser().absolute()
+    img, raw = _load_3d(upath, "UNI")
+    sidecar, where = _merged_sidecar(upath, inv1, inv2)
+    protocol, sources = resolve_protocol(sidecar, where, ti=ti, fa=fa, tr_prep=tr_prep, tr_exc=tr_exc, shots=shots,
+                                         efficiency=efficiency)
+    prefix = common.prefix or default_prefix(upath)
+    check_outputs_free(common, prefix)
+    u, encoding = decode_uni(raw, str(upath))
+    del raw
+    shape, affine = u.shape, np.asarray(img.affine, float)
+    extra = []
+    notes = []
+    i1 = i2 = None
+    inv_series = None
+    if inv1 is not None:
+        i1 = _load_inversion(inv1, inv1_phase, "--inv1", img)
+        i2 = _load_inversion(inv2, inv2_phase, "--inv2", img)
+        extra += [Path(p).expanduser().absolute() for p in (inv1, inv2, inv1_phase, inv2_phase) if p is not None]
+        mags = np.stack([np.abs(i1), np.abs(i2)], axis=-1).astype(np.float32)
+        inv_series = Series(_data=mags, affine=affine, header=img.header, paths=[Path(inv1).absolute()])
+    # the voxels to invert
+    if common.mask == "none" or common.mask is None:
+        mask, mask_desc = np.ones(shape, bool), "none (every voxel)"
+    elif common.mask == "auto":
+        if inv_series is not None:
+            from ..pipeline import object_mask
+
+            mask = object_mask(inv_series)
+            mask_desc = "auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, holes filled)"
+        else:
+            mask = np.isfinite(u)
+            mask_desc = ("auto without inversion images: every voxel with a finite UNI (UNI has no usable object "
+                         "contrast; pass --mask or --inv1/--inv2 to exclude the background)")
+    else:
+        mpath = Path(common.mask)
+        mimg, mdata = _load_3d(mpath, "--mask")
+        check_same_grid(shape, affine, mimg.shape, mimg.affine, ref_name="the UNI image", name=f"--mask {mpath}")
+        mask = np.isfinite(mdata) & (mdata > 0)
+        if not mask.any():
+            raise InputError(f"--mask {mpath}: no voxel is > 0; the mask selects nothing")
+        mask_desc = f"file {mpath.absolute()}"
+        extra.append(mpath.absolute())
+    sigma, noise_info = None, None
+    if inv_series is not None:
+        sigma, sinfo = resolve_sigma(sigma_spec, inv_series)
+        noise_info = {"mode": "none", "sigma": sinfo["value"], "sigma_source": sinfo["source"],
+                      "stderr": "first-order propagation of complex Gaussian noise (sd sigma per channel) on both "
+                                "inversion images through UNI, at the model signals"}
+        if "path" in sinfo:
+            extra.append(Path(sinfo["path"]))
+        if "background_voxels" in sinfo:
+            noise_info["background_voxels"] = sinfo["background_voxels"]
+            notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels of "
+                         f"the inversion images")
+    b1_map: np.ndarray | None = None
+    b1_info: dict = {"b1": None}
+    if b1 is not None:
+        b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, scale=b1_scale, smooth_fwhm_mm=b1_smooth)
+        extra.append(Path(b1).expanduser().absolute())
+        b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
+                   f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")
+    else:
+        b1_desc = NO_B1_NOTE
+    maps = fit_t1_mp2rage(u, protocol, b1=b1_map, mask=mask, inv1=i1, inv2=i2, sigma=sigma)
+    series = Series(_data=u[..., None], affine=affine, header=img.header, acquisition=protocol.as_acquisition(),
+                    sources=sources, paths=[upath])
+    delays = {k: round(v, 6) for k, v in protocol.delays().items()}
+    options = {"inversion_efficiency": protocol.efficiency, "uni_encoding": UNI_ENCODINGS[encoding],
+               "b1_correction": b1 is not None, "parameter_sources": sources,
+               "inversion_images": inv1 is not None}
+    options.update(b1_info)
+    model_info = {"name": "mp2rage", "parameters": maps.names, "equation": EQUATION,
+                  "estimator": "lookup: UNI tabulated over a log-spaced T1 grid per B1, restricted to the monotonic "
+                               "range, interpolated bilinearly in (B1, UNI) on ln T1",
+                  "delays_s": delays, "t1_lookup_range_s": maps.info["t1_lookup_range_s"],
+                  "b1_correction": b1_desc,
+                  "status_9": "UNI outside the range the lookup can invert at the voxel's B1"}
+    if np.count_nonzero(maps.status == st.OUTSIDE_LOOKUP):
+        notes.append(f"{np.count_nonzero(maps.status == st.OUTSIDE_LOOKUP)} voxels have a UNI the lookup cannot "
+                     f"invert (status 9; invertible T1 range {maps.info['t1_lookup_range_s'][0]:.3g}-"
+                     f"{maps.info['t1_lookup_range_s'][1]:.3g} s)")
+    report = write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
+                       model_info=model_info, extra_inputs=extra, notes=notes, t0=t0, mask_desc=mask_desc)
+    report.notes.insert(0, f"UNI read as {UNI_ENCODINGS[encoding]}; {b1_desc}")
+    return report
