@@ -36,7 +36,16 @@ from ..models.mp2rage import (
     mp2rage_signals,
     uni_stderr,
 )
-from ..pipeline import CommonOptions, RunReport, check_outputs_free, default_prefix, resolve_sigma, write_run
+from ..noise_level import object_mask
+from ..pipeline import (
+    CommonOptions,
+    RunReport,
+    check_outputs_free,
+    default_prefix,
+    resolve_mask,
+    resolve_sigma,
+    write_run,
+)
 
 __all__ = ["B1_TABLE_RANGE", "UNI_ENCODINGS", "decode_uni", "fit_t1_mp2rage", "run_t1_mp2rage"]
 
@@ -392,28 +401,23 @@ def run_t1_mp2rage(
         extra += [Path(p).expanduser().absolute() for p in (inv1, inv2, inv1_phase, inv2_phase) if p is not None]
         mags = np.stack([np.abs(i1), np.abs(i2)], axis=-1).astype(np.float32)
         inv_series = Series(_data=mags, affine=affine, header=img.header, paths=[Path(inv1).absolute()])
-    # the voxels to invert
-    if common.mask == "none" or common.mask is None:
-        mask, mask_desc = np.ones(shape, bool), "none (every voxel)"
-    elif common.mask == "auto":
+    # the voxels to invert: the common mask options, except that "auto" needs the inversion images (UNI has no
+    # usable object contrast: its background is noise spread over the whole range)
+    series = Series(_data=u[..., None], affine=affine, header=img.header, acquisition=protocol.as_acquisition(),
+                    sources=sources, paths=[upath])
+    if common.mask == "auto" or common.mask is None:
         if inv_series is not None:
-            from ..pipeline import object_mask
-
             mask = object_mask(inv_series)
-            mask_desc = "auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, holes filled)"
+            mask_desc = ("auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, "
+                         "holes filled)")
         else:
             mask = np.isfinite(u)
-            mask_desc = ("auto without inversion images: every voxel with a finite UNI (UNI has no usable object "
-                         "contrast; pass --mask or --inv1/--inv2 to exclude the background)")
+            mask_desc = ("auto without inversion images: every voxel with a finite UNI (pass --mask or --inv1/--inv2 "
+                         "to exclude the background)")
     else:
-        mpath = Path(common.mask)
-        mimg, mdata = _load_3d(mpath, "--mask")
-        check_same_grid(shape, affine, mimg.shape, mimg.affine, ref_name="the UNI image", name=f"--mask {mpath}")
-        mask = np.isfinite(mdata) & (mdata > 0)
-        if not mask.any():
-            raise InputError(f"--mask {mpath}: no voxel is > 0; the mask selects nothing")
-        mask_desc = f"file {mpath.absolute()}"
-        extra.append(mpath.absolute())
+        mask, mask_desc = resolve_mask(common.mask, series)
+        if common.mask != "none":
+            extra.append(Path(common.mask).expanduser().absolute())
     sigma, noise_info = None, None
     if inv_series is not None:
         sigma, sinfo = resolve_sigma(sigma_spec, inv_series)
@@ -436,8 +440,6 @@ def run_t1_mp2rage(
     else:
         b1_desc = NO_B1_NOTE
     maps = fit_t1_mp2rage(u, protocol, b1=b1_map, mask=mask, inv1=i1, inv2=i2, sigma=sigma)
-    series = Series(_data=u[..., None], affine=affine, header=img.header, acquisition=protocol.as_acquisition(),
-                    sources=sources, paths=[upath])
     delays = {k: round(v, 6) for k, v in protocol.delays().items()}
     options = {"inversion_efficiency": protocol.efficiency, "uni_encoding": UNI_ENCODINGS[encoding],
                "b1_correction": b1 is not None, "parameter_sources": sources,
