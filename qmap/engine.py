@@ -67,6 +67,9 @@ class Progress:
 
 
 def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast", stderr="noise"):
+    own = getattr(model, "fit_chunk", None)  # a model with its own chunk fitter (e.g. the T2 spectrum)
+    if own is not None:
+        return own(y, ctx=ctx, sigma=sigma)
     if method == "lmfit":
         from .fitting.lmfit_engine import fit_chunk_lmfit
 

@@ -58,13 +58,19 @@ class MapSet:
         return status_counts(self.status)
 
 
-QUALITY_UNITS = {"rsquared": "1", "rmse": "a.u.", "nsamples": "1", "residualsd": "a.u."}
+QUALITY_UNITS = {"rsquared": "1", "rmse": "a.u.", "nsamples": "1", "residualsd": "a.u.", "chi2": "1",
+                 "regweight": "1", "snr": "1"}
 QUALITY_DESCRIPTIONS = {
     "rsquared": "coefficient of determination R^2 of the fit (1 = perfect)",
     "rmse": "root-mean-square residual of the fit, signal units",
     "nsamples": "number of samples used by the fit",
     "residualsd": "per-voxel residual sd sqrt(RSS/(m_used - P)), signal units: about the noise sd where the model "
                   "fits; the scale of the standard errors under --stderr residual",
+    "chi2": "chi-squared of the fit: sum of squared residuals / sigma^2 (about the number of samples when the model "
+            "fits and sigma is right)",
+    "regweight": "regularisation weight mu of the T2 spectrum, relative to the mean squared norm of the basis trains "
+                 "(0 = not regularised)",
+    "snr": "signal-to-noise ratio of the first echo (fitted amplitude / sigma)",
 }
 
 

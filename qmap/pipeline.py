@@ -314,9 +314,14 @@ def write_run(
     notes: list | None = None,
     t0: float,
     mask_desc: str,
+    extra_outputs: list | None = None,
 ) -> RunReport:
-    """Write the maps of ``maps`` (NIfTI + sidecars, previews) and the provenance, atomically."""
-    outs = _outputs_for(maps, prefix, common.units)
+    """Write the maps of ``maps`` (NIfTI + sidecars, previews) and the provenance, atomically.
+
+    ``extra_outputs`` (list of :class:`~qmap.io.writer.OutputFile`) are written beside the maps of
+    ``maps`` (e.g. a 4D spectrum or maps with their own names) and listed in the provenance too.
+    """
+    outs = _outputs_for(maps, prefix, common.units) + list(extra_outputs or [])
     paths = dict.fromkeys(str(Path(p).absolute()) for p in list(series.paths) + list(extra_inputs or []))
     inputs = [{"path": p, "sha256": sha256_file(p)} for p in paths]
     acquisition = {k: (np.asarray(v).tolist() if np.ndim(v) else float(v)) for k, v in series.acquisition.items()}

@@ -25,6 +25,7 @@ COMMANDS = {
     "t1-vfa": "t1_vfa",
     "t2": "t2",
     "t2star": "t2star",
+    "t2-spectrum": "t2_spectrum",
     "b1": "b1",
     "phantom": "phantom",
     "simulate": "simulate",

@@ -6,6 +6,7 @@ __all__ = [
            "AT_BOUND",
            "FITTED",
            "ILL_CONDITIONED",
+           "LOW_SNR",
            "MASKED",
            "NONFINITE",
            "NOT_CONVERGED",
@@ -26,6 +27,7 @@ OUTSIDE_B1 = 6
 TOO_FEW_SAMPLES = 7
 NO_VALID_ANGLE = 8
 OUTSIDE_LOOKUP = 9
+LOW_SNR = 10
 
 #: code -> meaning, as written to provenance (``status_codes``)
 STATUS_CODES = {
@@ -39,4 +41,5 @@ STATUS_CODES = {
     TOO_FEW_SAMPLES: "too few samples above the noise floor to fit",
     NO_VALID_ANGLE: "the signal ratio corresponds to no valid flip angle",
     OUTSIDE_LOOKUP: "the value (MP2RAGE UNI) lies outside the range the lookup table can invert at this voxel's B1",
+    LOW_SNR: "signal-to-noise ratio too low for a reliable T2 spectrum (values kept; see --min-snr)",
 }

@@ -55,6 +55,8 @@ class OutputFile:
     units: str
     description: str
     scale: float = 1.0  # applied on writing (e.g. 1000 for s -> ms), so no scaled copy is held
+    sidecar: dict | None = None  # extra sidecar fields (e.g. the T2 grid of a spectrum)
+    allow_nonfinite: bool = False  # NaN is a valid value in fitted voxels (e.g. the mean T2 of an empty part)
 
 
 def sha256_file(path: str | Path, bufsize: int = 1 << 20) -> str:
@@ -193,7 +195,8 @@ class AtomicWriter:
             raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
         self._verify(tmp, out, affine, status)
         self.stage_json(sidecar_path(out.name).name, {"Units": out.units, "Description": out.description,
-                                                      "Parameter": out.parameter, "Kind": out.kind})
+                                                      "Parameter": out.parameter, "Kind": out.kind,
+                                                      **(out.sidecar or {})})
         return final
 
     def _verify(self, path: Path, out: OutputFile, affine, status):
@@ -203,7 +206,7 @@ class AtomicWriter:
             raise OutputError(f"{out.name}: the written file does not read back as written (shape/affine)")
         if status is not None and out.kind in ("estimate", "stderr"):
             good = np.asarray(status) == 0
-            if out.kind == "estimate" and not np.all(np.isfinite(data[good])):
+            if out.kind == "estimate" and not out.allow_nonfinite and not np.all(np.isfinite(data[good])):
                 raise OutputError(f"{out.name}: a fitted voxel has a non-finite estimate (internal check failed)")
 
     # -- commit / abort -------------------------------------------------------

@@ -1,0 +1,417 @@
+"""``qmap t2-spectrum``: multi-component T2 (short-T2 fraction, T2 distributions) from a CPMG train.
+
+Loads a multi-echo spin-echo series, fits a regularised non-negative T2
+spectrum with an extended-phase-graph basis and a per-voxel refocusing angle
+in every masked voxel (:mod:`qmap.models.t2_spectrum`), estimates the
+standard error of the short fraction by a parametric bootstrap on a subsample
+(:func:`qmap.models.t2_spectrum.calibrate_fraction_se`), and writes the maps
+through the same machinery as every fitting command.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+
+import numpy as np
+
+from ..engine import fit_voxels
+from ..errors import InputError, UsageError
+from ..fitting import status as st
+from ..io.writer import OutputFile
+from ..maps import QUALITY_DESCRIPTIONS, MapSet, _Gather
+from ..models.epg_t2 import echo_spacing
+from ..models.t2_spectrum import (
+    DEFAULT_CHI2_FACTOR,
+    DEFAULT_MIN_SNR,
+    DEFAULT_N_T2,
+    DEFAULT_T2_RANGE,
+    DEFAULT_WINDOW,
+    SpectrumModel,
+    calibrate_fraction_se,
+    fraction_se,
+    spectrum_basis,
+)
+from ..pipeline import (
+    CommonOptions,
+    RunReport,
+    check_outputs_free,
+    check_signal,
+    default_prefix,
+    resolve_mask,
+    resolve_sigma,
+    write_run,
+)
+from .decay import load_echoes
+
+__all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
+
+log = logging.getLogger("qmap")
+
+#: fewest echoes a spectrum is fitted from
+MIN_ECHOES = 8
+#: voxels of the bootstrap subsample that calibrates the standard error of the fraction
+SE_SUBSAMPLE = 200
+#: noisy replicates per subsample voxel
+SE_REPLICATES = 16
+
+_KEPT = (st.FITTED, st.AT_BOUND, st.LOW_SNR, st.NOT_CONVERGED)
+
+
+def _check_protocol(te, window, chi2_factor, n_t2, t2_range) -> float:
+    te = np.asarray(te, float).ravel()
+    if te.size < MIN_ECHOES:
+        raise InputError(f"t2-spectrum needs at least {MIN_ECHOES} echoes to resolve a T2 spectrum, got {te.size}; "
+                         f"give the whole echo train (typically 32 echoes)")
+    try:
+        esp = echo_spacing(te)
+    except InputError:
+        shown = ",".join(f"{1e3 * t:g}ms" for t in te)
+        raise InputError(f"--te: t2-spectrum needs equally spaced echoes at TE_k = k x ESP (a CPMG train), got "
+                         f"{shown}; give the whole train in acquisition order") from None
+    lo, hi = window
+    if not (0 < lo < hi):
+        raise UsageError(f"--window {lo:g},{hi:g} s: give LO,HI with 0 < LO < HI, e.g. --window 10ms,40ms")
+    if not chi2_factor >= 1.0:
+        raise UsageError(f"--chi2-factor {chi2_factor:g}: must be >= 1 (1.02 allows 2% more misfit; 1 = no "
+                         f"regularisation)")
+    if int(n_t2) < 10:
+        raise UsageError(f"--n-t2 {n_t2}: use at least 10 T2 values (default {DEFAULT_N_T2})")
+    if not (0 < t2_range[0] < t2_range[1]):
+        raise UsageError("--t2-range LO,HI: give 0 < LO < HI, e.g. 10ms,2s")
+    return esp
+
+
+def _refocus_angle(series, given: float | None) -> float:
+    """The nominal refocusing angle: the command line's, else the sidecars' ``RefocusingFlipAngle``, else 180."""
+    found = {float(sc["RefocusingFlipAngle"]) for sc in series.sidecars
+             if isinstance(sc, dict) and isinstance(sc.get("RefocusingFlipAngle"), (int, float))}
+    if given is not None:
+        if found and any(abs(v - given) > 0.5 for v in found):
+            log.warning(f"--refocus {given:g} deg differs from the sidecar RefocusingFlipAngle "
+                        f"{', '.join(f'{v:g}' for v in sorted(found))}; using {given:g}")
+        return float(given)
+    if len(found) > 1:
+        raise InputError(f"the sidecars give different RefocusingFlipAngle values ({sorted(found)}); give the nominal "
+                         f"angle with --refocus DEG")
+    if found:
+        value = found.pop()
+        if not 60.0 <= value <= 180.0:
+            raise InputError(f"sidecar RefocusingFlipAngle {value:g} is not a refocusing angle in degrees (60-180); "
+                             f"give the nominal angle with --refocus DEG")
+        return value
+    return 180.0
+
+
+def _model(te, *, refocus_deg, t1, window, chi2_factor, n_t2, t2_range, min_snr) -> SpectrumModel:
+    esp = _check_protocol(te, window, chi2_factor, n_t2, t2_range)
+    basis = spectrum_basis(round(esp, 9), int(np.size(te)), t1=float(t1), refocus_deg=float(refocus_deg),
+                           t2_range=(float(t2_range[0]), float(t2_range[1])), n_t2=int(n_t2))
+    return SpectrumModel(basis, window=window, chi2_factor=chi2_factor, min_snr=min_snr)
+
+
+class _Collect:
+    """Flat per-voxel result arrays filled chunk by chunk."""
+
+    names = ("fraction", "angle", "angle_se", "t2_short", "t2_long", "chi2", "mu", "rmse", "rsquared", "snr",
+             "sigma")
+
+    def __init__(self, nvox: int, n_t2: int):
+        self.arr = {k: np.full(nvox, np.nan, np.float32) for k in self.names}
+        self.spectrum = np.full((nvox, n_t2), np.nan, np.float32)
+        self.status = np.full(nvox, st.MASKED, np.uint8)
+
+    def put(self, sub, fit) -> None:
+        self.status[sub] = fit.status
+        for k in self.names:
+            self.arr[k][sub] = getattr(fit, k)
+        self.spectrum[sub] = fit.spectrum
+
+
+def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet, label, out: _Collect) -> int:
+    """Fit the voxels of ``data`` (X, Y, Z, m) inside ``mask`` into ``out`` (flat C-order voxel index)."""
+    shape = data.shape[:-1]
+    finite = np.ones(shape, bool)
+    for k in range(data.shape[-1]):
+        finite &= np.isfinite(data[..., k])
+    finite = finite.reshape(-1)
+    sel = np.asarray(mask, bool).reshape(-1).copy()
+    flat = np.arange(sel.size)
+    out.status[flat[sel & ~finite]] = st.NONFINITE
+    sel &= finite
+    sig = None
+    if sigma is not None:
+        sig = np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1)
+        good = np.isfinite(sig) & (sig > 0)
+        out.status[flat[sel & ~good]] = st.NONFINITE
+        sel &= good
+    idx = np.flatnonzero(sel)
+
+    def on_chunk(a, b, fit):
+        out.put(flat[idx[a:b]], fit)
+
+    fit_voxels(model, _Gather(data, idx),  # type: ignore[arg-type]  # rows gathered a chunk at a time
+               sigma=None if sig is None else sig[idx], n_jobs=n_jobs,
+               chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, label=label, on_chunk=on_chunk)
+    return idx.size
+
+
+def _calibrate(model, out: _Collect, *, n_sub: int, replicates: int) -> dict:
+    good = np.flatnonzero((out.status == st.FITTED) & np.isfinite(out.arr["snr"]) & (out.arr["snr"] > 0))
+    if good.size == 0:
+        return {"k0": float("nan"), "k1": 0.0, "n_voxels": 0, "replicates": replicates}
+    pick = good[np.unique(np.linspace(0, good.size - 1, min(n_sub, good.size)).astype(int))]
+    cal = calibrate_fraction_se(model, out.spectrum[pick].astype(float), out.arr["angle"][pick].astype(float),
+                                out.arr["sigma"][pick].astype(float), replicates=replicates)
+    return cal
+
+
+def _mapset(model, out: _Collect, shape, se, n_fitted: int) -> MapSet:
+    kept = np.isin(out.status, _KEPT)
+
+    def vol(a):
+        a = np.where(kept, a, np.nan).astype(np.float32)
+        return a.reshape(shape)
+
+    angle_se = np.where(np.isfinite(out.arr["angle_se"]), out.arr["angle_se"], np.nan)
+    estimates = {"MWF": vol(out.arr["fraction"]), "RefocusAngle": vol(out.arr["angle"])}
+    stderr = {"MWF": vol(se), "RefocusAngle": vol(angle_se)}
+    units = {"MWF": "fraction", "RefocusAngle": "deg"}
+    lo, hi = model.window
+    descriptions = {
+        "MWF": f"fraction of the T2 spectrum with T2 in [{1e3 * lo:g}, {1e3 * hi:g}] ms (short-T2 / myelin water "
+               f"fraction)",
+        "RefocusAngle": "fitted refocusing flip angle of the echo train, degrees",
+    }
+    quality = {"rsquared": vol(out.arr["rsquared"]), "rmse": vol(out.arr["rmse"]), "chi2": vol(out.arr["chi2"]),
+               "regweight": vol(out.arr["mu"]), "snr": vol(out.arr["snr"])}
+    info = {"model": model.name, "parameters": list(model.param_names), "noise_floor": "none",
+            "n_fitted": int(n_fitted)}
+    return MapSet(estimates, stderr, units, descriptions, (), quality, out.status.reshape(shape), info)
+
+
+def _extra_outputs(model, out: _Collect, shape, prefix: str, units: str) -> list[OutputFile]:
+    kept = np.isin(out.status, _KEPT)
+    f = 1e3 if units == "ms" else 1.0
+    u = "ms" if units == "ms" else "s"
+    lo, hi = model.window
+    res = []
+    texts = (f"geometric-mean T2 of the spectrum inside [{1e3 * lo:g}, {1e3 * hi:g}] ms (NaN where that part is empty)",
+             f"geometric-mean T2 of the spectrum above {1e3 * hi:g} ms (NaN where that part is empty)")
+    for key, desc, text in (("t2_short", "short", texts[0]), ("t2_long", "long", texts[1])):
+        data = np.where(kept, out.arr[key], np.nan).astype(np.float32).reshape(shape)
+        res.append(OutputFile(f"{prefix}_desc-{desc}_T2map.nii.gz", data, f"T2{desc}", "estimate", u, text, scale=f,
+                              allow_nonfinite=True))
+    spec = np.where(kept[:, None], out.spectrum, np.nan).astype(np.float32).reshape(*shape, -1)
+    grid = model.basis.t2 * f
+    res.append(OutputFile(
+        f"{prefix}_desc-spectrum_T2distmap.nii.gz", spec, "T2spectrum", "estimate", "a.u.",
+        "regularised NNLS T2 spectrum: amplitude (signal units) at each T2 of the grid along the 4th axis",
+        sidecar={"T2Values": [float(v) for v in grid], "T2Units": u}, allow_nonfinite=True,
+    ))
+    return res
+
+
+def fit_t2_spectrum(
+    data,
+    te,
+    *,
+    refocus_deg: float = 180.0,
+    t1: float = 1.0,
+    window=DEFAULT_WINDOW,
+    chi2_factor: float = DEFAULT_CHI2_FACTOR,
+    n_t2: int = DEFAULT_N_T2,
+    t2_range=DEFAULT_T2_RANGE,
+    min_snr: float = DEFAULT_MIN_SNR,
+    sigma=None,
+    mask=None,
+    n_jobs: int | None = None,
+    chunk_size: int = 2048,
+    se_subsample: int = SE_SUBSAMPLE,
+) -> tuple[MapSet, dict]:
+    """Fit T2 spectra in every voxel of a multi-echo spin-echo magnitude series (array API).
+
+    Parameters
+    ----------
+    data : (X, Y, Z, m) array_like
+        Magnitudes of the whole echo train (m >= 8).
+    te : (m,) array_like
+        Echo times, s, equally spaced at TE_k = k * ESP.
+    refocus_deg : float
+        Nominal refocusing angle, degrees (searched from half of it to 180).
+    t1 : float
+        Fixed T1 of the EPG basis, s.
+    window : (float, float)
+        Short-T2 window, s.
+    chi2_factor : float
+        Allowed chi^2 increase of the regularised spectrum.
+    n_t2, t2_range
+        T2 grid: ``n_t2`` log-spaced values over ``t2_range`` (s).
+    min_snr : float
+        First-echo SNR below which a voxel gets status LOW_SNR.
+    sigma : float or (X, Y, Z) ndarray, optional
+        Noise sd, signal units; default: per voxel from the unregularised residuals.
+    mask : (X, Y, Z) array_like of bool, optional
+    n_jobs, chunk_size
+        Execution (results do not depend on them).
+    se_subsample : int
+        Voxels of the bootstrap that calibrates the standard error of the fraction.
+
+    Returns
+    -------
+    maps : MapSet
+        ``maps["MWF"]`` (fraction), ``maps["RefocusAngle"]`` (deg) with
+        standard errors, quality maps and status.
+    extra : dict
+        ``t2_short``, ``t2_long`` (s), ``spectrum`` (X, Y, Z, n), ``t2`` (the
+        grid, s) and ``se_calibration``.
+    """
+    data = np.asarray(data)
+    if data.ndim == 2:
+        data = data[:, None, None, :]
+    model = _model(te, refocus_deg=refocus_deg, t1=t1, window=window, chi2_factor=chi2_factor, n_t2=n_t2,
+                   t2_range=t2_range, min_snr=min_snr)
+    shape = data.shape[:-1]
+    mask = np.ones(shape, bool) if mask is None else np.asarray(mask, bool)
+    out = _Collect(int(np.prod(shape)), model.basis.t2.size)
+    n = _fit_flat(model, data, mask, sigma, n_jobs=n_jobs, chunk_size=chunk_size, scheduler=None, quiet=True,
+                  label="fitting", out=out)
+    cal = _calibrate(model, out, n_sub=se_subsample, replicates=SE_REPLICATES)
+    se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
+    maps = _mapset(model, out, shape, se, n)
+    kept = np.isin(out.status, _KEPT)
+    extra = {
+        "t2_short": np.where(kept, out.arr["t2_short"], np.nan).reshape(shape),
+        "t2_long": np.where(kept, out.arr["t2_long"], np.nan).reshape(shape),
+        "spectrum": np.where(kept[:, None], out.spectrum, np.nan).reshape(*shape, -1),
+        "t2": model.basis.t2.copy(),
+        "se_calibration": cal,
+    }
+    return maps, extra
+
+
+def run_t2_spectrum(
+    inputs,
+    *,
+    common: CommonOptions,
+    te=None,
+    refocus_deg: float | None = None,
+    t1: float = 1.0,
+    window=DEFAULT_WINDOW,
+    chi2_factor: float = DEFAULT_CHI2_FACTOR,
+    n_t2: int = DEFAULT_N_T2,
+    t2_range=DEFAULT_T2_RANGE,
+    min_snr: float = DEFAULT_MIN_SNR,
+    sigma="auto",
+    se_subsample: int = SE_SUBSAMPLE,
+) -> RunReport:
+    """Fit T2 spectra to a multi-echo spin-echo series and write the maps (see the module docstring).
+
+    Parameters
+    ----------
+    inputs : list of path-like
+        One 4D NIfTI or several 3D NIfTIs (one per echo).
+    common : CommonOptions
+        Output folder, prefix, mask, workers, ...
+    te : (m,) array_like, optional
+        Echo times, s (default: sidecar ``EchoTime``).
+    refocus_deg : float, optional
+        Nominal refocusing angle, degrees; default: the sidecar's
+        ``RefocusingFlipAngle`` when present, else 180.
+    t1, window, chi2_factor, n_t2, t2_range, min_snr, se_subsample
+        As in :func:`fit_t2_spectrum`.
+    sigma : "auto", float or path
+        Noise sd: from the image background (falling back to the pooled fit
+        residuals when there is no usable background), a value, or a noise map.
+    """
+    t0 = time.perf_counter()
+    series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
+    te_all = np.asarray(series.acquisition["EchoTime"], float)
+    refocus_deg = _refocus_angle(series, refocus_deg)
+    model = _model(te_all, refocus_deg=refocus_deg, t1=t1, window=window, chi2_factor=chi2_factor, n_t2=n_t2,
+                   t2_range=t2_range, min_snr=min_snr)
+    prefix = common.prefix or default_prefix(series.paths[0])
+    check_outputs_free(common, prefix)
+    budget = common.max_memory
+    check_signal(series, magnitude=True, max_bytes=budget)
+    mask, mask_desc = resolve_mask(common.mask, series, budget)
+    file_inputs = []
+    if common.mask is not None and str(common.mask) not in ("auto", "none"):
+        file_inputs.append(common.mask)
+    try:
+        sig, sinfo = resolve_sigma(sigma, series, max_bytes=budget)
+    except InputError:
+        if sigma not in (None, "auto"):
+            raise
+        sig, sinfo = None, {"source": "per voxel from the unregularised NNLS residuals (no usable background)",
+                            "value": None}
+    noise_info = {"mode": "gaussian (magnitude above the noise floor)", "sigma": sinfo["value"],
+                  "sigma_source": sinfo["source"]}
+    if "path" in sinfo:
+        file_inputs.append(sinfo["path"])
+    if sinfo["value"] is not None:
+        notes.append(f"noise sigma {sinfo['value']:.4g} ({sinfo['source']})")
+    series._peak = None
+    shape = series.shape
+    out = _Collect(int(np.prod(shape)), model.basis.t2.size)
+    n_fitted = 0
+    slabs = series.slabs(budget)
+    for k, (z0, z1) in enumerate(slabs):
+        block = series.read(z0, z1)
+        label = "fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}"
+        slab_sig = sig[:, :, z0:z1] if isinstance(sig, np.ndarray) and sig.ndim == 3 else sig
+        if len(slabs) == 1:
+            n_fitted += _fit_flat(model, block, mask, slab_sig, n_jobs=common.n_jobs, chunk_size=common.chunk_size,
+                                  scheduler=common.scheduler, quiet=common.quiet, label=label, out=out)
+            continue
+        # the flat C-order indices of a z-slab are not contiguous in the volume: fit it as its own volume
+        sub = _Collect(int(np.prod(block.shape[:-1])), model.basis.t2.size)
+        n_fitted += _fit_flat(model, block, mask[:, :, z0:z1], slab_sig, n_jobs=common.n_jobs,
+                              chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet,
+                              label=label, out=sub)
+        dst = np.ravel_multi_index(np.nonzero(np.ones(block.shape[:-1], bool)), shape) + z0
+        out.status[dst] = sub.status
+        for name in out.names:
+            out.arr[name][dst] = sub.arr[name]
+        out.spectrum[dst] = sub.spectrum
+    cal = _calibrate(model, out, n_sub=se_subsample, replicates=SE_REPLICATES)
+    se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
+    maps = _mapset(model, out, shape, se, n_fitted)
+    if sig is None:
+        fitted = out.status == st.FITTED
+        if fitted.any():
+            noise_info["sigma"] = float(np.median(out.arr["sigma"][fitted]))
+    b = model.basis
+    options = {
+        "refocus_deg": float(refocus_deg), "t1_s": float(t1), "window_s": [float(window[0]), float(window[1])],
+        "chi2_factor": float(chi2_factor), "n_t2": int(n_t2), "t2_range_s": [float(t2_range[0]), float(t2_range[1])],
+        "min_snr": float(min_snr), "sigma": None if sigma is None else str(sigma), "se_subsample": int(se_subsample),
+    }
+    model_info = {
+        "name": "t2spectrum",
+        "equation": "y_k = sum_j s_j E_k(T2_j, alpha; ESP, T1), s_j >= 0; min ||A s - y||^2 + mu ||s||^2 with "
+                    "chi2 = chi2_factor x chi2_min",
+        "basis": "extended phase graphs (qmap.epg.cpmg_echoes), ideal 90 deg excitation, T1 fixed",
+        "echo_spacing_s": b.esp,
+        "t2_grid_s": [float(v) for v in b.t2],
+        "angle_search_deg": [float(v) for v in b.angles],
+        "angle_step_deg": float(b.fine_angles[1] - b.fine_angles[0]),
+        "stderr": {"MWF": "parametric bootstrap on a subsample calibrating SE = (k0 + k1 MWF) / SNR",
+                   "RefocusAngle": "curvature of the NNLS residual over the angle: var = 2 sigma^2 / RSS''"},
+        "se_calibration": cal,
+        "references": ["Whittall & MacKay, J Magn Reson 1989;84:134",
+                       "Prasloski et al., Magn Reson Med 2012;67:1803"],
+    }
+    notes.append(f"T2 grid: {b.t2.size} values {1e3 * b.t2[0]:g} ms - {b.t2[-1]:g} s; echo spacing "
+                 f"{1e3 * b.esp:.4g} ms; refocusing angle searched {b.angles[0]:g}-180 deg")
+    if np.isfinite(cal.get("k0", np.nan)):
+        notes.append(f"standard error of MWF calibrated on {cal['n_voxels']} voxels x {cal['replicates']} replicates "
+                     f"(median SD {cal['median_sd']:.3g})")
+    extra = _extra_outputs(model, out, shape, prefix, common.units)
+    return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
+                     model_info=dict(model_info, parameters=list(model.param_names)), extra_inputs=file_inputs,
+                     notes=notes, t0=t0, mask_desc=mask_desc, extra_outputs=extra)
+
+
+# documented quality maps of this command (for the README and --help)
+QUALITY = {k: QUALITY_DESCRIPTIONS[k] for k in ("rsquared", "rmse", "chi2", "regweight", "snr")}

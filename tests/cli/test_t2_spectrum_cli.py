@@ -1,0 +1,123 @@
+"""`qmap t2-spectrum` end to end through the command line (issue 17).
+
+Two-pool CPMG trains from the independent complex-state EPG
+(tests/reference/epg_states.py), Rician noise, integer storage with a scale
+factor and a zero-filled (noise-free) background, as real exports have.
+"""
+
+from __future__ import annotations
+
+import json
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from qmap.cli import main
+from tests.conftest import rician, snapshot, write_nifti
+from tests.reference.epg_states import cpmg_reference
+
+ESP, N_ECHOES = 0.010, 32
+TE = ESP * np.arange(1, N_ECHOES + 1)
+SIGMA = 4.0
+
+
+def _volume(shape=(8, 6, 2), seed=1):
+    """Short fraction rising along x (0-0.3), B1 0.8-1.0 along y; a one-voxel zero border."""
+    rng = np.random.default_rng(seed)
+    x, y, _ = np.indices(shape)
+    frac = 0.3 * x / (shape[0] - 1)
+    b1 = 0.8 + 0.2 * y / (shape[1] - 1)
+    short = cpmg_reference(np.full(frac.size, 0.02), 180 * b1.ravel(), esp=ESP, n_echoes=N_ECHOES)
+    long_ = cpmg_reference(np.full(frac.size, 0.08), 180 * b1.ravel(), esp=ESP, n_echoes=N_ECHOES)
+    clean = 1200.0 * (frac.ravel()[:, None] * short + (1 - frac.ravel())[:, None] * long_)
+    data = rician(clean.reshape(*shape, N_ECHOES), SIGMA, rng)
+    obj = np.zeros(shape, bool)
+    obj[1:-1, 1:-1, :] = True
+    data[~obj] = 0.0
+    return data, frac, b1, obj
+
+
+@pytest.fixture
+def series(tmp_path):
+    data, frac, b1, obj = _volume()
+    img = nib.Nifti1Image(np.round(data / 0.5).astype(np.int16), np.diag([2.0, 2.0, 3.0, 1.0]))
+    img.header.set_slope_inter(0.5, 0.0)  # integer storage with a scale factor
+    path = tmp_path / "sub-01_MESE.nii.gz"
+    nib.save(img, str(path))
+    (tmp_path / "sub-01_MESE.json").write_text(json.dumps({"EchoTime": TE.tolist(), "RefocusingFlipAngle": 180}))
+    return path, frac, b1, obj
+
+
+def test_outputs_values_and_provenance(series, tmp_path):
+    path, frac, b1, obj = series
+    out = tmp_path / "out"
+    code = main(["t2-spectrum", str(path), "-o", str(out), "--mask", "none", "--sigma", str(SIGMA), "-q",
+                 "--units", "ms", "--se-subsample", "24", "-j", "2", "--chunk-size", "20"])
+    assert code == 0
+    pre = "sub-01_MESE"
+    mwf = nib.load(out / f"{pre}_MWFmap.nii.gz").get_fdata()
+    status = nib.load(out / f"{pre}_desc-status_fitmap.nii.gz").get_fdata()
+    fitted = obj & (status == 0)
+    assert fitted.sum() >= 0.9 * obj.sum()
+    assert np.median(np.abs(mwf[fitted] - frac[fitted])) < 0.03
+    assert (status[~obj] == 5).all()  # zero-filled background: all samples equal, nothing to fit
+    assert np.isnan(mwf[~obj]).all()
+    angle = nib.load(out / f"{pre}_RefocusAnglemap.nii.gz").get_fdata()
+    assert np.median(np.abs(angle[fitted] - 180 * b1[fitted])) < 4.0
+    long_ = nib.load(out / f"{pre}_desc-long_T2map.nii.gz").get_fdata()
+    assert np.median(long_[fitted]) == pytest.approx(80.0, rel=0.05)  # ms (--units ms)
+    se = nib.load(out / f"{pre}_desc-stderr_MWFmap.nii.gz").get_fdata()
+    assert np.all(se[fitted] > 0) and np.median(se[fitted]) < 0.05
+    spec = nib.load(out / f"{pre}_desc-spectrum_T2distmap.nii.gz")
+    side = json.loads((out / f"{pre}_desc-spectrum_T2distmap.json").read_text())
+    assert spec.shape == (*frac.shape, 40) and len(side["T2Values"]) == 40 and side["T2Units"] == "ms"
+    assert side["T2Values"][0] == pytest.approx(10.0) and side["Units"] == "a.u."
+    prov = json.loads((out / f"{pre}_provenance.json").read_text())
+    assert list(prov) == ["qmap_version", "command_line", "inputs", "acquisition", "options", "model", "noise",
+                          "status_counts", "status_codes", "wall_time_s", "outputs"]
+    assert sum(prov["status_counts"].values()) == frac.size
+    assert prov["outputs"][f"{pre}_MWFmap.nii.gz"] == {"parameter": "MWF", "kind": "estimate", "units": "fraction"}
+    assert prov["outputs"][f"{pre}_desc-short_T2map.nii.gz"]["units"] == "ms"
+    assert "10" in prov["status_codes"] and prov["model"]["se_calibration"]["n_voxels"] == 24
+    for name in prov["outputs"]:
+        assert (out / name).exists()
+        assert json.loads((out / name.replace(".nii.gz", ".json")).read_text())["Units"]
+    for q in ("rsquared", "rmse", "chi2", "regweight", "snr"):
+        assert (out / f"{pre}_desc-{q}_fitmap.nii.gz").exists()
+
+
+def _series_files(tmp_path, te, shape=(4, 4, 1)):
+    rng = np.random.default_rng(0)
+    clean = 1000 * np.exp(-np.asarray(te) / 0.08)
+    data = rician(np.broadcast_to(clean, (*shape, len(te))), 3.0, rng)
+    return write_nifti(tmp_path / "bad_MESE.nii.gz", data, sidecar={"EchoTime": list(map(float, te))})
+
+
+@pytest.mark.parametrize("te, extra, message", [
+    (ESP * np.arange(1, 7), [], "at least 8 echoes"),
+    (np.r_[ESP * np.arange(1, 16), 0.2], [], "equally spaced"),
+    (ESP * np.arange(1, 17), ["--refocus", "3.1"], "radians"),
+    (ESP * np.arange(1, 17), ["--refocus", "abc"], "--refocus"),
+    (ESP * np.arange(1, 17), ["--window", "40ms,10ms"], "--window"),
+    (ESP * np.arange(1, 17), ["--chi2-factor", "0.9"], "--chi2-factor"),
+])
+def test_bad_input_exit_2_nothing_written(tmp_path, capsys, te, extra, message):
+    path = _series_files(tmp_path, te)
+    before = snapshot(tmp_path)
+    code = main(["t2-spectrum", str(path), "-o", str(tmp_path / "out"), "-q", "--mask", "none", *extra])
+    assert code == 2
+    err = capsys.readouterr().err.strip()
+    assert message in err and len(err.splitlines()) == 1
+    assert snapshot(tmp_path) == before and not (tmp_path / "out").exists()
+
+
+def test_sidecar_refocusing_angle_without_value_is_refused(tmp_path, capsys):
+    """A sidecar that names a refocusing angle must give a number of degrees (not radians, not text)."""
+    path = _series_files(tmp_path, ESP * np.arange(1, 17))
+    side = tmp_path / "bad_MESE.json"
+    meta = json.loads(side.read_text())
+    meta["RefocusingFlipAngle"] = 3.14
+    side.write_text(json.dumps(meta))
+    assert main(["t2-spectrum", str(path), "-o", str(tmp_path / "out"), "-q", "--mask", "none"]) == 2
+    assert "RefocusingFlipAngle" in capsys.readouterr().err
