@@ -45,8 +45,8 @@ from .errors import InputError, UsageError
 from .fitting import status as st
 from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
 
-__all__ = ["B1_METHODS", "B1_SCALES", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "dam_angle", "dam_b1",
-           "load_b1_map"]
+__all__ = ["B1_METHODS", "B1_SCALES", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
+           "dam_b1", "load_b1_map", "load_b1_stderr"]
 
 log = logging.getLogger("qmap")
 
@@ -343,6 +343,76 @@ def load_b1_map(
         "b1_grid_coverage": float(covered.mean()),
     }
     return b1, info
+
+
+def b1_stderr_beside(b1_path) -> Path | None:
+    """The standard-error map written beside a B1 map, if there is one.
+
+    ``qmap b1`` writes ``{prefix}_TB1map.nii.gz`` and
+    ``{prefix}_desc-stderr_TB1map.nii.gz``; for any map named
+    ``{stem}_{suffix}.nii[.gz]`` this looks for ``{stem}_desc-stderr_{suffix}``
+    with either extension.
+    """
+    path = Path(b1_path)
+    name = path.name
+    for ext in (".nii.gz", ".nii"):
+        if name.endswith(ext):
+            base = name[: -len(ext)]
+            break
+    else:
+        return None
+    stem, sep, suffix = base.rpartition("_")
+    if not sep or "desc-stderr" in base:
+        return None
+    for ext in (".nii.gz", ".nii"):
+        cand = path.with_name(f"{stem}_desc-stderr_{suffix}{ext}")
+        if cand.exists():
+            return cand
+    return None
+
+
+def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "fraction") -> tuple[np.ndarray, dict]:
+    """Load the standard error of a relative B1 map and resample it onto a data grid.
+
+    Parameters
+    ----------
+    path : path-like
+        3D NIfTI of the B1 map's standard error, in the units of the map.
+    shape, affine
+        Data grid (as :func:`load_b1_map`).
+    scale : {"fraction", "percent"}
+        Units of the B1 map it belongs to (percent is divided by 100).
+
+    Returns
+    -------
+    se : (X, Y, Z) ndarray
+        Standard error (fraction) on the data grid, trilinear; NaN where the
+        map holds no finite non-negative value (nothing is added there).
+    info : dict
+        For provenance.
+    """
+    path = Path(path)
+    img = load_image(path, what="--b1-stderr")
+    data = image_data(img, path)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(f"--b1-stderr {path}: has shape {data.shape}, expected one 3D standard-error map")
+    values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
+    valid = np.isfinite(values) & (values >= 0)
+    if not valid.any():
+        raise InputError(f"--b1-stderr {path}: holds no finite non-negative value; give the B1 map's standard "
+                         f"error (e.g. the desc-stderr TB1map of qmap b1) or --b1-stderr none")
+    med = float(np.median(values[valid]))
+    if med > 0.5:
+        raise InputError(f"--b1-stderr {path}: median {med:.3g} ({scale}) is not a plausible standard error of a "
+                         f"relative B1 map (expected about 0.005-0.1); is it the B1 map itself, or percent?")
+    src_affine = np.asarray(img.affine, float)
+    rv = resample_to_grid(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
+    rw = resample_to_grid(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        se = np.where(rw >= 0.5, rv / rw, np.nan)
+    return se, {"b1_stderr_median": med, "b1_stderr_resampling": "trilinear through the affines"}
 
 
 def _b1_scale(path: Path, scale: str | None) -> tuple[str, str]:

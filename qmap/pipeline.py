@@ -26,7 +26,7 @@ from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename,
 from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 from .noise_level import background_sigma, object_mask
 
-__all__ = ["CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "write_run"]
+__all__ = ["CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "sigma_for_stderr", "write_run"]
 
 log = logging.getLogger("qmap")
 
@@ -48,9 +48,12 @@ class CommonOptions:
     chunk_size: int = DEFAULT_CHUNK
     command_line: list | None = None
     max_memory: float | None = None  # bytes; larger inputs are read in slabs
+    stderr: str = "noise"  # covariance convention with a known noise level (qmap.fitting.uncertainty)
 
     def __post_init__(self):
         self.out_dir = Path(self.out_dir)
+        if self.stderr not in ("noise", "residual"):
+            raise UsageError(f"--stderr {self.stderr!r}: expected noise or residual")
         if self.units not in ("s", "ms"):
             raise UsageError(f"--units {self.units!r}: expected s or ms")
         if self.engine not in ("fast", "lmfit"):
@@ -71,6 +74,7 @@ class CommonOptions:
             "engine": self.engine,
             "chunk_size": self.chunk_size,
             "max_memory_bytes": self.max_memory,
+            "stderr": self.stderr,
         }
 
 
@@ -165,6 +169,49 @@ def resolve_sigma(spec, series: Series, *, coils: int = 1, max_bytes: float | No
                                 "path": str(Path(spec).absolute())}
 
 
+#: ``--sigma`` values that ask qmap to estimate the noise level (a failure falls back, see sigma_for_stderr)
+ESTIMATED_SIGMA = ("auto", "local")
+
+
+def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None,
+                     notes: list | None = None) -> tuple[object, dict]:
+    """The noise level for the standard errors of a command that does not model the noise floor.
+
+    Resolved as ``--sigma`` (:func:`resolve_sigma`). When it is to be
+    estimated (``auto``, ``local``) and cannot be, the command still runs:
+    the standard errors fall back to the per-voxel residual variance, with a
+    warning (and a note in ``notes``). A given value or file that is wrong is
+    an error as usual.
+
+    Returns
+    -------
+    sigma : float, (X, Y, Z) ndarray or None
+        None when the fallback applies.
+    info : dict
+        ``sigma``, ``sigma_source`` and, for the fallback, ``stderr_fallback``
+        (the reason), for the provenance's ``noise`` entry.
+    """
+    spec = "auto" if spec is None else spec
+    try:
+        sigma, sinfo = resolve_sigma(spec, series, coils=coils, max_bytes=max_bytes)
+    except InputError as exc:
+        if str(spec) not in ESTIMATED_SIGMA:
+            raise
+        reason = str(exc)
+        log.warning("%s -- the standard errors use the per-voxel residual variance instead", reason.rstrip("."))
+        if notes is not None:
+            notes.append("standard errors from the per-voxel residual variance: the noise level could not be "
+                         "estimated (give --sigma VALUE)")
+        return None, {"sigma": None, "stderr_fallback": reason}
+    info = {"sigma": sinfo["value"], "sigma_source": sinfo["source"]}
+    if notes is not None:
+        notes.append(f"standard errors from the noise sd {sinfo['value']:.4g} ({sinfo['source']})")
+    for k, v in sinfo.items():
+        if k not in ("value", "source"):
+            info[k] = v
+    return sigma, info
+
+
 def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | None = None) -> None:
     """Reject series with no signal at all, and negative 'magnitudes'."""
     lo, hi = np.inf, -np.inf
@@ -201,13 +248,22 @@ def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
                                maps.descriptions[name], scale=f))
         if name in maps.stderr:  # a map without any noise information (e.g. a lookup) has no stderr file
             outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name], name, "stderr", u,
-                                   f"standard error (1 sigma) of {name}", scale=f))
+                                   f"standard error (1 sigma) of {name}{_convention_note(maps)}", scale=f))
     for q, arr in maps.quality.items():
         outs.append(OutputFile(map_filename(prefix, q, "quality"), arr, q, "quality", QUALITY_UNITS[q],
                                QUALITY_DESCRIPTIONS[q]))
     outs.append(OutputFile(map_filename(prefix, "status", "status"), maps.status, "status", "status", "code",
                            "per-voxel fit status; codes in the provenance file (status_codes)"))
     return outs
+
+
+def _convention_note(maps: MapSet) -> str:
+    conv = (maps.info.get("stderr") or {}).get("convention")
+    if conv == "noise":
+        return "; from the noise sd (inverse Fisher information)"
+    if conv == "residual":
+        return "; from the per-voxel residual variance RSS/(m-P)"
+    return ""
 
 
 def check_outputs_free(common: CommonOptions, prefix: str) -> None:
@@ -264,6 +320,11 @@ def run_fit(
             noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
         if noise.mode == "rician":
             noise_info["coils"] = noise.coils
+    if sigma is None and common.stderr == "noise":  # no noise-floor model: the noise level is for the SEs only
+        sigma, sinfo = sigma_for_stderr(sigma_spec, series, max_bytes=budget, notes=notes)
+        noise_info = dict(noise_info or {"mode": "none"}, **sinfo)
+        if "path" in sinfo:
+            file_inputs.append(sinfo["path"])
     series._peak = None  # only the mask and the noise estimate needed it
     slabs = series.slabs(budget)
     if len(slabs) > 1:
@@ -277,11 +338,21 @@ def run_fit(
             chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
             label="fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}",
             dtype=np.float32,  # held in the precision they are written in
+            stderr=common.stderr,
         )
         maps = part if len(slabs) == 1 else place_slab(maps, part, series.shape, z0, z1)
     return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
                      model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)),
                      extra_inputs=file_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
+
+
+def _output_entry(o: OutputFile, maps: MapSet) -> dict:
+    """The provenance ``outputs`` entry of one file; standard-error maps also name their convention."""
+    entry = {"parameter": o.parameter, "kind": o.kind, "units": o.units}
+    conv = (maps.info.get("stderr") or {}).get("convention")
+    if o.kind == "stderr" and conv:
+        entry["convention"] = conv
+    return entry
 
 
 def _stage_all(w: AtomicWriter, outs: list, series: Series, status, n_jobs) -> None:
@@ -339,8 +410,11 @@ def write_run(
         "status_counts": maps.status_counts,
         "status_codes": {str(k): v for k, v in st.STATUS_CODES.items()},
         "wall_time_s": None,
-        "outputs": {o.name: {"parameter": o.parameter, "kind": o.kind, "units": o.units} for o in outs},
+        "outputs": {o.name: _output_entry(o, maps) for o in outs},
     }
+    stderr_info = maps.info.get("stderr")
+    if stderr_info and provenance["noise"] is not None:
+        provenance["noise"] = dict(provenance["noise"], stderr=stderr_info)
     with AtomicWriter(common.out_dir, overwrite=common.overwrite) as w:
         _stage_all(w, outs, series, maps.status, common.n_jobs)
         if common.preview:

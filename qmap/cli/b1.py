@@ -26,9 +26,10 @@ def add_parser(sub) -> None:
     p.add_argument("--tr", metavar="TR1,TR2",
                    help="afi: the two repetition times, e.g. 20ms,100ms; dam: optionally the one TR "
                         "(default: sidecar RepetitionTime)")
-    p.add_argument("--sigma", default=None, metavar="auto|VALUE|NOISEMAP",
-                   help="image noise sd for the standard errors (default: from the image background when "
-                        "possible, otherwise the standard errors are NaN)")
+    p.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|FILE",
+                   help="image noise sd for the standard errors (first-order propagation through the closed form): "
+                        "auto (default) estimates it from the images, local a smooth noise map; when it cannot be "
+                        "estimated the standard errors are NaN, with a warning; or a value, or a NIfTI noise map")
     add_common(p)
     p.set_defaults(run=run)
 

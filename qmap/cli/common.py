@@ -13,7 +13,7 @@ from ..units import parse_angle_list, parse_time_list
 
 log = logging.getLogger("qmap")
 
-__all__ = ["add_common", "add_noise", "angles", "common_from_args", "finish", "times"]
+__all__ = ["add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
 
 
 def add_common(p: argparse.ArgumentParser) -> None:
@@ -40,6 +40,25 @@ def add_common(p: argparse.ArgumentParser) -> None:
                         "slabs (fastest from uncompressed .nii); results are identical")
 
 
+SIGMA_HELP = ("noise sd in signal units: auto (default) estimates it from the data (image background, else inside "
+              "the object); local estimates a smooth noise map; a value; or a NIfTI map of per-voxel sigma")
+STDERR_HELP = ("convention of the standard-error maps: noise (default) = from the noise sd, sigma^2 (J^T J)^-1, so "
+               "that +/-1.96 SE covers the truth ~95%% of the time; residual = from each voxel's residual variance "
+               "RSS/(m-P) (t-distributed with few samples). Without a usable noise level: residual, with a warning")
+
+
+def add_stderr(g) -> None:
+    """``--stderr noise|residual`` (every command that fits a model)."""
+    g.add_argument("--stderr", choices=("noise", "residual"), default="noise", help=STDERR_HELP)
+
+
+def add_sigma(p: argparse.ArgumentParser) -> None:
+    """``--sigma`` and ``--stderr`` for commands without a noise-floor model (t1-ir, t1-vfa)."""
+    g = p.add_argument_group("noise level and standard errors")
+    g.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|FILE", help=SIGMA_HELP)
+    add_stderr(g)
+
+
 def common_from_args(args) -> CommonOptions:
     if args.jobs is not None and args.jobs == 0:
         raise UsageError("-j 0: give a positive number of workers (or leave -j out for all cores)")
@@ -51,6 +70,7 @@ def common_from_args(args) -> CommonOptions:
         out_dir=args.out_dir, prefix=args.prefix, mask=args.mask, n_jobs=args.jobs, scheduler=args.scheduler,
         overwrite=args.overwrite, units=args.units, quiet=args.quiet, preview=args.preview, engine=args.engine,
         chunk_size=args.chunk_size, command_line=args.argv, max_memory=parse_size(args.max_memory),
+        stderr=getattr(args, "stderr", "noise"),
     )
 
 
@@ -77,9 +97,8 @@ def add_noise(p: argparse.ArgumentParser) -> None:
                    help=f"default {DEFAULT_MODE}: fit the Rician expectation of the magnitude (unbiased at low SNR; "
                         "needs sigma); offset: add a constant C >= 0; truncate: drop echoes near the floor; "
                         "none: plain exponential (biased where the decay reaches the floor)")
-    g.add_argument("--sigma", default="auto", metavar="auto|VALUE|NOISEMAP",
-                   help="noise sd: auto (default) estimates it from the image background; a value in signal units; "
-                        "or a NIfTI map of per-voxel sigma")
+    g.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|FILE", help=SIGMA_HELP)
+    add_stderr(g)
     g.add_argument("--coils", type=_positive_int, default=1, metavar="N",
                    help="rician: the magnitude is a sum of squares over N coils (noncentral chi); default 1")
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from ..models.ir import SIGNALS
 from ..units import parse_time
 from ..workflows.ir import run_t1_ir
-from .common import add_common, common_from_args, finish, times
+from .common import add_common, add_sigma, common_from_args, finish, times
 
 
 def add_parser(sub) -> None:
@@ -42,6 +42,7 @@ def add_parser(sub) -> None:
                    help="Look-Locker (continuous readout) series: the fitted recovery time is the apparent T1*; "
                         "report T1 = T1* (B/A - 1) for S = A - B exp(-TI/T1*) (Deichmann & Haase 1992) and "
                         "ApparentT1 instead of InversionEfficiency")
+    add_sigma(p)
     add_common(p)
     p.set_defaults(run=run)
 
@@ -51,6 +52,6 @@ def run(args) -> int:
     tr = None if args.tr is None else parse_time(args.tr, key="RepetitionTime", what="--tr")
     report = run_t1_ir(
         args.series, common=common, ti=times(args.ti, "InversionTime", "--ti"), tr=tr, signal=args.signal,
-        look_locker=args.look_locker, phase=args.phase,
+        look_locker=args.look_locker, phase=args.phase, sigma=args.sigma,
     )
     return finish(report, args)

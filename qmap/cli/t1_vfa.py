@@ -5,7 +5,7 @@ from __future__ import annotations
 from ..b1 import B1_SCALES
 from ..units import parse_time
 from ..workflows.vfa import METHODS, T1_TYPICAL, run_t1_vfa
-from .common import add_common, angles, common_from_args, finish
+from .common import add_common, add_sigma, angles, common_from_args, finish
 
 
 def add_parser(sub) -> None:
@@ -34,9 +34,14 @@ def add_parser(sub) -> None:
                         "map's sidecar Units, else fraction")
     g.add_argument("--b1-smooth", type=float, default=None, metavar="FWHM_MM",
                    help="Gaussian smoothing of the B1 map before resampling, FWHM in mm (default: none)")
+    g.add_argument("--b1-stderr", default="auto", metavar="auto|none|FILE",
+                   help="standard error of the B1 map, propagated into the T1 standard error (first order): auto "
+                        "(default) uses the desc-stderr map that qmap b1 writes beside its TB1map when present; none "
+                        "switches the propagation off; or a NIfTI map in the B1 map's units")
     p.add_argument("--t1-typical", metavar="T", default=None,
                    help=f"T1 assumed by the protocol note (Ernst angle and optimal angle pair), default "
                         f"{T1_TYPICAL:g}s")
+    add_sigma(p)
     add_common(p)
     p.set_defaults(run=run)
 
@@ -48,6 +53,7 @@ def run(args) -> int:
                                                                         what="--t1-typical")
     report = run_t1_vfa(
         args.series, common=common, fa=angles(args.fa), tr=tr, b1=args.b1, b1_scale=args.b1_scale,
-        b1_smooth=args.b1_smooth, method=args.method, t1_typical=t1_typical,
+        b1_smooth=args.b1_smooth, method=args.method, t1_typical=t1_typical, sigma=args.sigma,
+        b1_se=args.b1_stderr,
     )
     return finish(report, args)

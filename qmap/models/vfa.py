@@ -250,6 +250,7 @@ def despot1(
     passes: int = LINEAR_PASSES,
     t1_bounds: tuple[float, float] | None = None,
     sigma: np.ndarray | None = None,
+    stderr: str = "noise",
 ) -> LinearFit:
     """Linearised VFA regression (DESPOT1), iteratively reweighted, for n voxels at once.
 
@@ -269,8 +270,11 @@ def despot1(
     t1_bounds : (float, float), optional
         T1 range, seconds; estimates outside it are set to the bound (status 3).
     sigma : float or (n,) ndarray, optional
-        Noise sd (signal units), used for the standard errors only when no
-        residual degrees of freedom remain (two angles), as the solver does.
+        Noise sd (signal units): with ``stderr="noise"`` the standard errors
+        use it (``s = sigma``); otherwise only when no residual degrees of
+        freedom remain (two angles), as the solver does.
+    stderr : {"noise", "residual"}
+        Covariance convention when ``sigma`` is given.
 
     Returns
     -------
@@ -349,7 +353,9 @@ def despot1(
         dof = n_used - 2
         s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
         if sigma is not None:
-            s2 = np.where(dof > 0, s2, np.asarray(sigma, float) ** 2 * np.ones(n))
+            sig2 = np.asarray(sigma, float) ** 2 * np.ones(n)
+            usable = np.isfinite(sig2) & (sig2 > 0)
+            s2 = np.where(usable, sig2, s2) if stderr == "noise" else np.where(dof > 0, s2, sig2)
         v_e, v_c, c_ec = s2 * sw / dd, s2 * sxx / dd, -s2 * sx / dd
         icpt = m0 * (1.0 - e1)
         lg = np.log(e1)

@@ -8,6 +8,7 @@ standard errors, and writes the maps through :func:`qmap.pipeline.write_run`
 
 from __future__ import annotations
 
+import logging
 import time
 
 import numpy as np
@@ -17,6 +18,7 @@ from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..io.series import load_series
 from ..pipeline import (
+    ESTIMATED_SIGMA,
     CommonOptions,
     RunReport,
     check_outputs_free,
@@ -28,6 +30,8 @@ from ..pipeline import (
 )
 
 __all__ = ["EQUATIONS", "run_b1"]
+
+log = logging.getLogger("qmap")
 
 EQUATIONS = {
     "afi": "r = S2/S1, n = TR2/TR1, a = arccos((r n - 1)/(n - r)) (TR1, TR2 << T1; Yarnykh 2007); TB1 = a / nominal",
@@ -97,10 +101,11 @@ def run_b1(
         Seconds. AFI: ``TR1, TR2``; DAM: optional, the repetition time
         (recorded, and checked against full recovery in the summary).
         Default from the sidecars (``RepetitionTime``).
-    sigma : None, "auto", float or path
-        Image noise sd for the standard errors. None: from the image
-        background when possible, otherwise the standard errors are NaN (the
-        summary and provenance say why); ``"auto"`` makes that an error.
+    sigma : None, "auto", "local", float or path
+        Image noise sd for the standard errors. None / ``"auto"`` /
+        ``"local"``: estimated from the images when possible, otherwise the
+        standard errors are NaN with a warning (the summary and provenance
+        say why; two images leave no residual to fall back on).
 
     Notes
     -----
@@ -123,14 +128,15 @@ def run_b1(
     notes = []
     noise_info = {"mode": "none", "sigma": None}
     sig = None
-    if sigma is None:
+    if sigma is None or str(sigma) in ESTIMATED_SIGMA:
         try:
-            sig, sinfo = resolve_sigma("auto", series)
+            sig, sinfo = resolve_sigma("auto" if sigma is None else sigma, series)
         except InputError as exc:
             reason = str(exc)
+            log.warning("the noise level could not be estimated (%s): the TB1 standard errors are NaN (give "
+                        "--sigma VALUE)", reason)
             noise_info["stderr"] = f"not estimable: noise sigma unknown ({reason}); standard errors are NaN"
-            notes.append("standard errors are NaN: the noise could not be estimated from the background "
-                         "(give --sigma VALUE)")
+            notes.append("standard errors are NaN: the noise could not be estimated (give --sigma VALUE)")
         else:
             noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
     else:
@@ -142,6 +148,8 @@ def run_b1(
     if n is not None:
         info["tr_ratio"] = n
     maps = b1_maps(np.abs(series.data), method=method, fa=fa_nom, n=n, mask=mask, sigma=sig, info=info)
+    if sig is not None:  # two images, no residual: the standard error is the noise propagated through the closed form
+        maps.info["stderr"] = {"convention": "noise", "meaning": noise_info["stderr"]}
     ok = maps.status == 0
     fitted = maps.status != st.MASKED
     if fitted.any() and np.mean(maps.status[fitted] == st.NO_VALID_ANGLE) > 0.5:

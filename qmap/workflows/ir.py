@@ -119,6 +119,7 @@ def run_t1_ir(
     signal: str = "magnitude",
     look_locker: bool = False,
     phase=None,
+    sigma="auto",
 ) -> RunReport:
     """Fit T1, R1, M0 and inversion-efficiency maps (with standard errors, quality and status) to an IR series.
 
@@ -143,6 +144,10 @@ def run_t1_ir(
     phase : list of path-like, optional
         Phase images in radians for ``signal="complex"`` (same order and
         volume count as ``inputs``).
+    sigma : "auto", "local", float or path
+        Noise sd for the standard errors (``common.stderr == "noise"``); when
+        it cannot be estimated the standard errors fall back to the residual
+        variance with a warning.
 
     Returns
     -------
@@ -191,9 +196,9 @@ def run_t1_ir(
     if look_locker:
         model_info["look_locker_correction"] = LOOK_LOCKER
     options = {"signal": signal, "look_locker": bool(look_locker),
-               "phase": [str(p) for p in extra] if extra else None}
-    report = run_fit(series, model, common=common, noise=None, options=options, model_info=model_info,
-                     extra_inputs=extra, magnitude=signal == "magnitude", t0=t0)
+               "phase": [str(p) for p in extra] if extra else None, "sigma": None if sigma is None else str(sigma)}
+    report = run_fit(series, model, common=common, noise=None, sigma_spec=sigma, options=options,
+                     model_info=model_info, extra_inputs=extra, magnitude=signal == "magnitude", t0=t0)
     good = report.maps.status == 0
     if tr_used is not None and not look_locker and good.any():
         t1_med = float(np.median(report.maps["T1"][good]))

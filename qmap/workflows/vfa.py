@@ -22,11 +22,12 @@ from pathlib import Path
 
 import numpy as np
 
-from ..b1 import load_b1_map
+from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
 from ..engine import DEFAULT_CHUNK
-from ..errors import InputError, UsageError
+from ..errors import UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
+from ..fitting.uncertainty import CONVENTION_TEXT, add_input_covariance, input_sensitivity
 from ..io.series import load_series
 from ..maps import MapSet, fit_volume
 from ..models.vfa import LINEAR_PASSES, SpoiledGRE, despot1, ernst_angle, optimal_angle_pair, t1_crlb
@@ -37,7 +38,7 @@ from ..pipeline import (
     check_signal,
     default_prefix,
     resolve_mask,
-    resolve_sigma,
+    sigma_for_stderr,
     write_run,
 )
 
@@ -99,7 +100,7 @@ def protocol_check(fa, tr: float, t1_typical: float = T1_TYPICAL) -> tuple[dict,
 
 # ------------------------------------------------------------------ fitting
 def _linear_volume(model: SpoiledGRE, data: np.ndarray, *, mask=None, b1=None, sigma=None,
-                   chunk_size: int = DEFAULT_CHUNK) -> MapSet:
+                   chunk_size: int = DEFAULT_CHUNK, stderr: str = "noise", b1_se=None) -> MapSet:
     """The ``linear`` method over a volume, with the same screening and outputs as :func:`qmap.maps.fit_volume`."""
     data = np.asarray(data)
     shape, m = data.shape[:-1], data.shape[-1]
@@ -118,11 +119,17 @@ def _linear_volume(model: SpoiledGRE, data: np.ndarray, *, mask=None, b1=None, s
         sel &= ok
     idx = np.flatnonzero(sel)
     sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1)
+    b1sef = None if b1_se is None else np.broadcast_to(np.asarray(b1_se, float), shape).reshape(-1)
     parts = []
     for i in range(0, idx.size, max(1, int(chunk_size))):
         j = idx[i : i + chunk_size]
-        parts.append(despot1(flat[j].astype(float), model.x, model.tr, b1=None if b1f is None else b1f[j],
-                             t1_bounds=model.t1_bounds, sigma=None if sig is None else sig[j]))
+        part = despot1(flat[j].astype(float), model.x, model.tr, b1=None if b1f is None else b1f[j],
+                       t1_bounds=model.t1_bounds, sigma=None if sig is None else sig[j], stderr=stderr)
+        if b1sef is not None:  # the B1 map's own error, to first order (as for the nonlinear method)
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                g = input_sensitivity(model, part.params, {"b1": b1f[j]}, "b1")
+                part.cov = add_input_covariance(part.cov, g, b1sef[j])
+        parts.append(part)
     cat = (lambda f: np.concatenate([getattr(p, f) for p in parts])) if parts else None
     if parts:
         params, cov, r2, rmse, fst = cat("params"), cat("cov"), cat("r2"), cat("rmse"), cat("status")
@@ -143,9 +150,20 @@ def _linear_volume(model: SpoiledGRE, data: np.ndarray, *, mask=None, b1=None, s
         units[d.name], desc[d.name] = d.units, d.description
         if d.is_time:
             times.append(d.name)
+    used = stderr if sigma is not None else "residual"
     info = {"model": model.name, "parameters": list(model.param_names), "noise_floor": "none",
-            "n_fitted": int(idx.size), "method": "linear"}
-    return MapSet(est, se, units, desc, tuple(times), {"rsquared": scatter(r2), "rmse": scatter(rmse)},
+            "n_fitted": int(idx.size), "method": "linear",
+            "stderr": {"convention": used, "meaning": CONVENTION_TEXT[used]}}
+    if b1sef is not None:
+        info["stderr"]["propagated_inputs"] = ["b1"]
+    if parts:
+        dof = cat("n_used") - 2
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rsd = np.where(dof > 0, np.sqrt(cat("rss") / np.maximum(dof, 1)), np.nan)
+    else:
+        rsd = np.zeros(0)
+    return MapSet(est, se, units, desc, tuple(times),
+                  {"rsquared": scatter(r2), "rmse": scatter(rmse), "residualsd": scatter(rsd)},
                   status.reshape(shape), info)
 
 
@@ -163,6 +181,8 @@ def fit_t1_vfa(
     chunk_size: int | None = None,
     scheduler: str | None = None,
     quiet: bool = True,
+    stderr: str = "noise",
+    b1_se=None,
 ) -> MapSet:
     """Fit T1, R1 and M0 to variable-flip-angle spoiled gradient-echo magnitudes.
 
@@ -182,11 +202,17 @@ def fit_t1_vfa(
     mask : (...) array_like of bool, optional
         Voxels to fit (default: all).
     sigma : float or (...) ndarray, optional
-        Noise sd (signal units); used for the standard errors only where no
-        residual degrees of freedom remain (two flip angles). Otherwise the
-        standard errors use s^2 = RSS/(m-2).
+        Noise sd (signal units). With ``stderr="noise"`` the standard errors
+        come from it (inverse Fisher information); otherwise, and without
+        ``sigma``, from s^2 = RSS/(m-2) (sigma only where no residual degrees
+        of freedom remain: two flip angles).
     engine : {"fast", "lmfit"}
         ``nonlinear`` only: the vectorised solver or the per-voxel lmfit reference.
+    stderr : {"noise", "residual"}
+        Standard-error convention (see :mod:`qmap.fitting.uncertainty`).
+    b1_se : (...) array_like, optional
+        Standard error of ``b1`` (fraction), propagated to first order into
+        the covariance (``dp/dB1`` from the model at the solution).
 
     Returns
     -------
@@ -214,13 +240,16 @@ def fit_t1_vfa(
         raise ValueError(f"data has {data.shape[-1]} samples per voxel for {fa.size} flip angles")
     model = SpoiledGRE(fa, tr)
     kw = {} if chunk_size is None else {"chunk_size": chunk_size}
+    if b1_se is not None and b1 is None:
+        raise ValueError("b1_se= needs b1=")
     if method == "linear":
-        return _linear_volume(model, data, mask=mask, b1=b1, sigma=sigma, **kw)
+        return _linear_volume(model, data, mask=mask, b1=b1, sigma=sigma, stderr=stderr, b1_se=b1_se, **kw)
     ctx = None
     if b1 is not None:
         ctx = {"b1": np.broadcast_to(np.asarray(b1, float), data.shape[:-1])}
     maps = fit_volume(model, data, mask=mask, ctx_maps=ctx, noise=NoiseFloor("none"), sigma=sigma, n_jobs=n_jobs,
-                      method=engine, scheduler=scheduler, quiet=quiet, **kw)
+                      method=engine, scheduler=scheduler, quiet=quiet, stderr=stderr,
+                      input_se=None if b1_se is None else {"b1": b1_se}, **kw)
     maps.info["method"] = "nonlinear"
     return maps
 
@@ -236,6 +265,8 @@ def run_t1_vfa(
     b1_smooth: float | None = None,
     method: str = "nonlinear",
     t1_typical: float = T1_TYPICAL,
+    sigma="auto",
+    b1_se="auto",
 ) -> RunReport:
     """Fit T1, R1 and M0 maps (with standard errors, quality and status) to a VFA series.
 
@@ -258,6 +289,15 @@ def run_t1_vfa(
     method : {"nonlinear", "linear"}
     t1_typical : float
         T1 (s) assumed for the protocol note.
+    sigma : "auto", "local", float or path
+        Noise sd for the standard errors (``common.stderr == "noise"``, and
+        always with two flip angles); when it cannot be estimated the
+        standard errors fall back to the residual variance with a warning.
+    b1_se : "auto", "none" or path
+        Standard error of the B1 map, propagated into the T1 standard error
+        (:func:`qmap.fitting.uncertainty.input_sensitivity`): ``"auto"`` uses
+        the ``desc-stderr`` map that ``qmap b1`` writes beside its TB1map
+        when there is one; ``"none"`` switches the propagation off.
     """
     t0 = time.perf_counter()
     if method not in METHODS:
@@ -289,7 +329,8 @@ def run_t1_vfa(
     else:
         b1_desc = NO_B1_NOTE
     proto, proto_note = protocol_check(fa_used, tr_used, t1_typical)
-    options = {"method": method, "t1_typical_s": float(t1_typical), "b1_correction": b1 is not None}
+    options = {"method": method, "t1_typical_s": float(t1_typical), "b1_correction": b1 is not None,
+               "sigma": None if sigma is None else str(sigma)}
     options.update(b1_info)
     model = SpoiledGRE(fa_used, tr_used)
     model_info = {"name": model.name, "equation": EQUATION, "method": method,
@@ -297,31 +338,51 @@ def run_t1_vfa(
                   "b1_correction": b1_desc, "protocol": proto}
     if proto_note:
         notes.append(proto_note)
-    # one path for both methods (run_fit's steps, plus the noise sd for the two-angle standard errors)
+    # one path for both methods (run_fit's steps, plus the noise sd for the standard errors)
     mask, mask_desc = resolve_mask(common.mask, series)
-    sigma, noise_info = None, {"mode": "none", "sigma": None}
-    if fa_used.size == 2:
-        try:
-            sigma, sinfo = resolve_sigma("auto", series)
-        except InputError:
-            noise_info["stderr"] = "NaN: two flip angles leave no residual degrees of freedom and the background " \
-                                   "is too small to estimate the noise"
-            notes.append("two flip angles leave no residual degrees of freedom and the noise could not be "
-                         "estimated from the background: standard errors are NaN")
-        else:
-            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"],
-                              stderr="from the background noise sigma (two flip angles: no residual degrees of "
-                                     "freedom)")
-            notes.append(f"two flip angles: standard errors from the background noise sigma {sigma:.4g}")
+    sig, noise_info = None, {"mode": "none", "sigma": None}
+    extra_inputs = [b1] if b1 is not None else []
+    if common.stderr == "noise" or fa_used.size == 2:  # two angles: no residual degrees of freedom either way
+        sig, sinfo = sigma_for_stderr(sigma, series, notes=notes)
+        noise_info.update(sinfo)
+        if "path" in sinfo:
+            extra_inputs.append(sinfo["path"])
+        if sig is None and fa_used.size == 2:
+            notes.append("two flip angles leave no residual degrees of freedom: standard errors are NaN")
+    b1_se_map = None
+    if b1 is not None:
+        b1_se_map, se_info = _b1_stderr(b1, b1_se, series, b1_info["b1_scale"])
+        options["b1_stderr"] = se_info
+        if b1_se_map is not None:
+            extra_inputs.append(se_info["path"])
+            notes.append(f"the B1 map's standard error ({Path(se_info['path']).name}) is propagated into the T1 "
+                         f"standard error")
+    elif b1_se not in (None, "auto", "none"):
+        raise UsageError("--b1-stderr FILE needs --b1 B1MAP")
     data = np.abs(series.data)
-    maps = fit_t1_vfa(data, fa_used, tr_used, b1=b1_map, method=method, mask=mask, sigma=sigma,
+    maps = fit_t1_vfa(data, fa_used, tr_used, b1=b1_map, method=method, mask=mask, sigma=sig,
                       n_jobs=common.n_jobs, engine=common.engine, chunk_size=common.chunk_size,
-                      scheduler=common.scheduler, quiet=common.quiet)
+                      scheduler=common.scheduler, quiet=common.quiet, stderr=common.stderr, b1_se=b1_se_map)
     report = write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
                        model_info=dict(model_info, parameters=list(model.param_names)),
-                       extra_inputs=[b1] if b1 is not None else None, notes=notes, t0=t0, mask_desc=mask_desc)
+                       extra_inputs=extra_inputs or None, notes=notes, t0=t0, mask_desc=mask_desc)
     _b1_summary(report, b1_map, b1_desc)
     return report
+
+
+def _b1_stderr(b1, spec, series, scale: str) -> tuple[np.ndarray | None, dict]:
+    """The B1 map's standard error on the data grid, for ``--b1-stderr auto|none|FILE``; (map or None, provenance)."""
+    spec = "auto" if spec is None else str(spec)
+    if spec == "none":
+        return None, {"propagated": False, "reason": "--b1-stderr none"}
+    if spec == "auto":
+        path = b1_stderr_beside(b1)
+        if path is None:
+            return None, {"propagated": False, "reason": "no standard-error map beside the B1 map"}
+    else:
+        path = Path(spec)
+    se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, scale=scale)
+    return se, dict(info, propagated=True, path=str(Path(path).absolute()))
 
 
 def _b1_summary(report: RunReport, b1_map, b1_desc: str) -> None:

@@ -180,7 +180,9 @@ def test_linear_method_close_to_nonlinear_on_noisy_data(vfa, tmp_path):
     # both are efficient at this SNR (tests/models/test_vfa.py): they differ far less than the noise (~1.5 %)
     assert np.median(np.abs(t_lin[good] / t_nl[good] - 1)) < 2e-3
     assert prov["options"]["method"] == "linear" and "DESPOT1" in prov["model"]["estimator"]
-    assert prov["noise"] == {"mode": "none", "sigma": None}
+    # the noise level from the background gives the standard errors (the inverse Fisher information)
+    assert prov["noise"]["mode"] == "none" and prov["noise"]["sigma"] > 0
+    assert prov["noise"]["stderr"]["convention"] == "noise"
 
 
 def _bad(args, tmp_path, capsys):
@@ -232,7 +234,7 @@ def test_two_angles_standard_error_from_background(vfa, tmp_path, capsys):
     files = [str(vfa["files"][0]), str(vfa["files"][3])]
     out = tmp_path / "two"
     assert main(["t1-vfa", *files, "--b1", str(vfa["b1"]), "-o", str(out)]) == 0
-    assert "background noise sigma" in capsys.readouterr().out
+    assert "standard errors from the noise sd" in capsys.readouterr().out
     t1, status, prov = _maps(out)
     se = nib.load(str(out / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
     good = vfa["obj"] & (status == 0)
