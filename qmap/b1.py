@@ -346,29 +346,10 @@ def load_b1_map(
 
 
 def b1_stderr_beside(b1_path) -> Path | None:
-    """The standard-error map written beside a B1 map, if there is one.
+    """The standard-error map that ``qmap b1`` writes beside its TB1map (``{prefix}_desc-stderr_TB1map``), if any."""
+    from .io.writer import stderr_map_beside
 
-    ``qmap b1`` writes ``{prefix}_TB1map.nii.gz`` and
-    ``{prefix}_desc-stderr_TB1map.nii.gz``; for any map named
-    ``{stem}_{suffix}.nii[.gz]`` this looks for ``{stem}_desc-stderr_{suffix}``
-    with either extension.
-    """
-    path = Path(b1_path)
-    name = path.name
-    for ext in (".nii.gz", ".nii"):
-        if name.endswith(ext):
-            base = name[: -len(ext)]
-            break
-    else:
-        return None
-    stem, sep, suffix = base.rpartition("_")
-    if not sep or "desc-stderr" in base:
-        return None
-    for ext in (".nii.gz", ".nii"):
-        cand = path.with_name(f"{stem}_desc-stderr_{suffix}{ext}")
-        if cand.exists():
-            return cand
-    return None
+    return stderr_map_beside(b1_path)
 
 
 def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "fraction") -> tuple[np.ndarray, dict]:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 
 import nibabel as nib
@@ -133,3 +134,21 @@ def test_inspect_rebuilds_complex_ir_from_magnitude_and_phase(tmp_path, capsys):
     assert "refitting this voxel" not in captured.out, captured.out
     t1_map = nib.load(str(out / "mag_T1map.nii.gz")).get_fdata()[10, 10, 1]
     assert abs(t1_map - 0.7) < 0.05
+
+
+def test_states_the_standard_error_convention(fits, capsys):
+    # the line names the convention the provenance records for the stderr maps
+    from qmap.workflows.inspect import CONVENTIONS_SHOWN
+
+    for prefix in ("ir", "megre"):
+        assert main(["inspect", str(fits), "--prefix", prefix, "--voxel", "33,24,1"]) == 0
+        prov = json.loads((fits / f"{prefix}_provenance.json").read_text())
+        conv = prov["outputs"][f"{prefix}_desc-stderr_T1map.nii.gz" if prefix == "ir"
+                               else f"{prefix}_desc-stderr_T2starmap.nii.gz"]["convention"]
+        assert conv == ("noise" if prov["noise"]["sigma"] else "residual")
+        assert f"  (+/- is 1 standard error, {CONVENTIONS_SHOWN[conv]})" in capsys.readouterr().out.splitlines()
+    # qmap b1 could not estimate its noise either: its standard-error map is NaN, so t1-vfa found it beside
+    # the TB1map but had nothing to propagate (and ran)
+    prov = json.loads((fits / "vfa_provenance.json").read_text())
+    assert prov["options"]["b1_stderr"]["propagated"] is False
+    assert prov["options"]["b1_stderr"]["path"].endswith("b1_desc-stderr_TB1map.nii.gz")

@@ -44,6 +44,32 @@ def map_filename(prefix: str, param: str, kind: str) -> str:
     raise ValueError(kind)
 
 
+def stderr_map_beside(path) -> Path | None:
+    """The standard-error map written beside a map, if there is one.
+
+    A fitting command writes ``{prefix}_{P}map.nii.gz`` and
+    ``{prefix}_desc-stderr_{P}map.nii.gz``; for any map named
+    ``{stem}_{suffix}.nii[.gz]`` this looks for
+    ``{stem}_desc-stderr_{suffix}.nii[.gz]``.
+    """
+    path = Path(path)
+    name = path.name
+    for ext in (".nii.gz", ".nii"):
+        if name.endswith(ext):
+            base = name[: -len(ext)]
+            break
+    else:
+        return None
+    stem, sep, suffix = base.rpartition("_")
+    if not sep or "desc-" in base:
+        return None
+    for ext in (".nii.gz", ".nii"):
+        cand = path.with_name(f"{stem}_desc-stderr_{suffix}{ext}")
+        if cand.exists():
+            return cand
+    return None
+
+
 @dataclass
 class OutputFile:
     """One NIfTI output: data plus what provenance and the sidecar say about it."""

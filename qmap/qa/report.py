@@ -79,10 +79,12 @@ def _e(x) -> str:
 
 
 def _table(rows) -> str:
+    with_se = any(r.mean_se == r.mean_se for r in rows)  # a standard-error map was found for some map
+    se_head = "<th title='mean standard error from the fit (about the SD when the spread is noise)'>mean SE</th>"
     head = ("<tr><th>vial</th><th class='l'>name</th><th class='l'>parameter</th><th class='l'>unit</th>"
             "<th>reference</th><th>median</th>"
-            "<th>mean</th><th>SD</th><th>robust SD</th><th>voxels</th><th>error of median</th><th>tolerance</th>"
-            "<th class='l'>result</th></tr>")
+            f"<th>mean</th><th>SD</th>{se_head if with_se else ''}<th>robust SD</th><th>voxels</th>"
+            "<th>error of median</th><th>tolerance</th><th class='l'>result</th></tr>")
     out = [f"<table>{head}"]
     for r in rows:
         u = _e(r.unit)
@@ -97,7 +99,8 @@ def _table(rows) -> str:
             f"<tr class='{'pass' if r.pass_ else 'fail'}'><td>{r.label}</td><td class='l'>{_e(r.name)}</td>"
             f"<td class='l'>{_e(r.parameter)}</td><td class='l'>{u}</td><td>{fmt(r.reference, 5)}</td>"
             f"<td>{fmt(r.median, 5)}</td>"
-            f"<td>{fmt(r.mean, 5)}</td><td>{fmt(r.sd, 3)}</td><td>{fmt(r.robust_sd, 3)}</td><td>{r.n_voxels}</td>"
+            f"<td>{fmt(r.mean, 5)}</td><td>{fmt(r.sd, 3)}</td>{f'<td>{fmt(r.mean_se, 3)}</td>' if with_se else ''}"
+            f"<td>{fmt(r.robust_sd, 3)}</td><td>{r.n_voxels}</td>"
             f"<td>{err}</td><td>\u00b1{r.tolerance_pct:g}%</td>{res}</tr>")
     out.append("</table>")
     return "\n".join(out)

@@ -51,6 +51,9 @@ class RoiResult:
     too_small: bool
     pass_: bool
     map: str = ""
+    #: mean of the standard-error map over the same voxels (NaN when no standard-error map was found):
+    #: about the SD when the spread in the ROI is noise only
+    mean_se: float = math.nan
 
     def as_dict(self) -> dict:
         d = asdict(self)
@@ -59,7 +62,8 @@ class RoiResult:
 
 
 def roi_statistics(values: np.ndarray, *, label: int, name: str, parameter: str, unit: str, reference: float,
-                   tolerance_pct: float, min_voxels: int, map_name: str = "") -> RoiResult:
+                   tolerance_pct: float, min_voxels: int, map_name: str = "",
+                   stderr_values: np.ndarray | None = None) -> RoiResult:
     """Statistics of the voxel ``values`` of one ROI (already in ``unit``) against ``reference``.
 
     Parameters
@@ -72,6 +76,9 @@ def roi_statistics(values: np.ndarray, *, label: int, name: str, parameter: str,
         Allowed absolute percent error of the median.
     min_voxels : int
         Fewer finite voxels than this fail the vial (too small to judge).
+    stderr_values : (n,) ndarray, optional
+        The map's standard errors at the same voxels (same unit); their mean
+        over the voxels with a finite value and standard error is ``mean_se``.
     """
     v = np.asarray(values, float).ravel()
     finite = v[np.isfinite(v)]
@@ -84,5 +91,10 @@ def roi_statistics(values: np.ndarray, *, label: int, name: str, parameter: str,
     err = 100.0 * (median - reference) / reference if n else nan
     too_small = n < min_voxels
     ok = (not too_small) and math.isfinite(err) and abs(err) <= tolerance_pct
+    mean_se = nan
+    if stderr_values is not None:
+        se = np.asarray(stderr_values, float).ravel()
+        se = se[np.isfinite(v) & np.isfinite(se)]
+        mean_se = float(se.mean()) if se.size else nan
     return RoiResult(int(label), name, parameter, unit, float(reference), mean, median, sd, rsd, n,
-                     int(v.size - n), err, float(tolerance_pct), too_small, bool(ok), map_name)
+                     int(v.size - n), err, float(tolerance_pct), too_small, bool(ok), map_name, mean_se)

@@ -51,6 +51,7 @@ class VoxelReport:
     quality: dict = field(default_factory=dict)  # name -> (value, units)
     png: Path | None = None
     notes: list = field(default_factory=list)
+    convention: str | None = None  # how the standard errors were computed ("noise" / "residual")
 
     def text(self) -> str:
         i, j, k = self.voxel
@@ -58,6 +59,8 @@ class VoxelReport:
         for name, v, se, units in self.values:
             u = "" if units in ("1",) else f" {units}"
             out.append(f"  {name} = {_num(v)} +/- {_num(se)}{u}")
+        if self.convention:
+            out.append(f"  (+/- is 1 standard error, {CONVENTIONS_SHOWN.get(self.convention, self.convention)})")
         for name, (v, units) in self.quality.items():
             u = "" if units in ("1",) else f" {units}"
             out.append(f"  fit {name} = {_num(v)}{u}")
@@ -65,6 +68,11 @@ class VoxelReport:
         if self.png is not None:
             out.append(f"plot: {self.png}")
         return "\n".join(out)
+
+
+#: how ``inspect`` names each standard-error convention (see qmap.fitting.uncertainty)
+CONVENTIONS_SHOWN = {"noise": "from the noise sd: sigma^2 (J^T J)^-1",
+                     "residual": "from this voxel's residual variance RSS/(m-P)"}
 
 
 def _num(v) -> str:
@@ -217,6 +225,8 @@ def inspect_voxel(
         v = _map_value(out_dir / kinds["estimate"][0], ijk)
         se = _map_value(out_dir / kinds["stderr"][0], ijk) if "stderr" in kinds else float("nan")
         rep.values.append((param, v, se, kinds["estimate"][1]))
+    rep.convention = next((o["convention"] for o in outputs.values() if o.get("kind") == "stderr"
+                           and o.get("convention")), None)
     for name, o in outputs.items():
         if o.get("kind") == "quality":
             rep.quality[o["parameter"]] = (_map_value(out_dir / name, ijk), o.get("units", ""))

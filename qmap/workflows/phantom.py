@@ -333,11 +333,13 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
                 f"{m.path.name}: {why} (map field of view {_fov(m.data.shape, m.affine)}, labels "
                 f"{_fov(lab.shape, lab_aff)}); check that --labels and --map belong to the same scan"
             )
+        se_map = _stderr_map(m)
         for k in wanted:
             e = entries[k]
             r = roi_statistics(m.data[rois[k]] * factor, label=k, name=e.name, parameter=m.param, unit=unit,
                                reference=e.values[m.param], tolerance_pct=e.tolerance_pct.get(m.param, tolerance),
-                               min_voxels=min_voxels, map_name=m.path.name)
+                               min_voxels=min_voxels, map_name=m.path.name,
+                               stderr_values=None if se_map is None else se_map[rois[k]] * factor)
             rows.append(r)
             if r.too_small:
                 notes.append(f"vial {k} {m.param}: {r.n_voxels} usable voxels in the ROI, fewer than the minimum "
@@ -348,6 +350,19 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
         notes.extend(_unit_sanity(m, [r for r in rows if r.parameter == m.param]))
         views.append(MapView(m, lab_m, rois, factor, unit, resampled))
     return rows, views
+
+
+def _stderr_map(m: MapInput) -> np.ndarray | None:
+    """The standard-error map a fit wrote beside ``m`` (same grid), for the ROI table's mean SE; else None."""
+    from ..io.writer import stderr_map_beside
+
+    path = stderr_map_beside(m.path)
+    if path is None:
+        return None
+    img = load_image(path, what="standard-error map")
+    if tuple(img.shape[:3]) != tuple(m.data.shape) or not np.allclose(img.affine, m.affine, atol=1e-3):
+        return None
+    return np.abs(image_data(img, path).reshape(m.data.shape))
 
 
 def _update_history(history, old_history, rows, session, entries, notes):

@@ -24,7 +24,7 @@ import numpy as np
 
 from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
 from ..engine import DEFAULT_CHUNK
-from ..errors import UsageError
+from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
 from ..fitting.uncertainty import CONVENTION_TEXT, add_input_covariance, input_sensitivity
@@ -379,9 +379,14 @@ def _b1_stderr(b1, spec, series, scale: str) -> tuple[np.ndarray | None, dict]:
         path = b1_stderr_beside(b1)
         if path is None:
             return None, {"propagated": False, "reason": "no standard-error map beside the B1 map"}
+        try:
+            se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, scale=scale)
+        except InputError as exc:  # e.g. all NaN: qmap b1 had no noise level; nothing known to propagate
+            return None, {"propagated": False, "reason": f"the standard-error map beside the B1 map is not usable "
+                                                         f"({exc})", "path": str(path.absolute())}
     else:
         path = Path(spec)
-    se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, scale=scale)
+        se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, scale=scale)
     return se, dict(info, propagated=True, path=str(Path(path).absolute()))
 
 

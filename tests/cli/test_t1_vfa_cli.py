@@ -258,3 +258,33 @@ def test_protocol_note_in_summary(vfa, tmp_path, capsys):
 def test_help_exits_zero(capsys):
     assert main(["t1-vfa", "--help"]) == 0
     assert "--b1-scale" in capsys.readouterr().out
+
+
+def test_b1_standard_error_beside_the_map_is_propagated(vfa, tmp_path, capsys):
+    # a B1 map with its standard error beside it (the layout qmap b1 writes): --b1-stderr auto adds
+    # (dT1/dB1 x SE_B1)^2 to the variance of T1; --b1-stderr none leaves it out. For small angles
+    # T1 ~ B1^2 (the DESPOT1 slope E1 depends on the actual angles through tan/sin; Deoni et al. 2003), so
+    # dT1/dB1 ~ 2 T1 / B1: the added sd is about 2 T1 SE_B1 / B1
+    d = tmp_path / "b1"
+    d.mkdir()
+    b1 = d / "sub-01_TB1map.nii.gz"
+    shutil_copy = __import__("shutil").copy
+    shutil_copy(vfa["b1"], b1)
+    img = nib.load(str(b1))
+    _save(d / "sub-01_desc-stderr_TB1map.nii.gz", np.full(img.shape, 0.02), img.affine)
+    files = [str(f) for f in vfa["files"]]
+    assert main(["t1-vfa", *files, "--b1", str(b1), "-o", str(tmp_path / "with"), "-q"]) == 0
+    assert main(["t1-vfa", *files, "--b1", str(b1), "--b1-stderr", "none", "-o", str(tmp_path / "without"),
+                 "-q"]) == 0
+    t1, status, prov = _maps(tmp_path / "with")
+    _, _, prov_none = _maps(tmp_path / "without")
+    se_with = nib.load(str(tmp_path / "with" / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
+    se_none = nib.load(str(tmp_path / "without" / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
+    good = vfa["obj"] & (status == 0) & _inside_b1_fov(1.0)
+    added = np.sqrt(se_with[good] ** 2 - se_none[good] ** 2)
+    expected = 2.0 * t1[good] * 0.02 / vfa["b1_true"][good]
+    assert np.median(added / expected) == pytest.approx(1.0, abs=0.15)
+    assert prov["options"]["b1_stderr"]["propagated"] is True
+    assert prov["noise"]["stderr"]["propagated_inputs"] == ["b1"]
+    assert prov_none["options"]["b1_stderr"] == {"propagated": False, "reason": "--b1-stderr none"}
+    assert any(i["path"].endswith("sub-01_desc-stderr_TB1map.nii.gz") for i in prov["inputs"])

@@ -254,3 +254,20 @@ def test_map_in_ms_without_sidecar_units_is_flagged(tmp_path, capsys):
     (tmp_path / "in/sess_T1map.json").unlink()  # no Units: seconds assumed, values are 1000x too large
     assert _run(p, tmp_path / "out", maps=("t1",)) == 3
     assert "probably wrong" in capsys.readouterr().err
+
+
+def test_roi_table_shows_the_mean_standard_error_beside_the_sd(tmp_path):
+    # a standard-error map beside the T1 map (as a fitting command writes it): the ROI table gains a
+    # "mean SE" column, the mean of the SE map over the ROI in the table's unit
+    p = make_phantom(tmp_path / "in")
+    t1 = nib.load(str(p["t1"]))
+    se = np.where(np.isfinite(np.asarray(t1.dataobj)), 0.02, np.nan)  # seconds, like the map
+    nib.save(nib.Nifti1Image(se.astype(np.float32), t1.affine), str(tmp_path / "in" / "sess_desc-stderr_T1map.nii.gz"))
+    out = tmp_path / "out"
+    _run(p, out)
+    rows = json.loads((out / "phantom_results.json").read_text())["rows"]
+    t1_rows = [r for r in rows if r["parameter"] == "T1"]
+    assert t1_rows and all(r["mean_se"] == pytest.approx(20.0 if r["unit"] == "ms" else 0.02, rel=1e-5)
+                           for r in t1_rows)
+    assert all(r["mean_se"] is None for r in rows if r["parameter"] == "T2")  # no SE map beside the T2 map
+    assert "mean SE</th>" in (out / "phantom_report.html").read_text()
