@@ -35,16 +35,16 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from qmap.fitting import status as st  # noqa: E402
-from qmap.fitting.noise_floor import NoiseFloor  # noqa: E402
-from qmap.maps import fit_volume  # noqa: E402
-from qmap.models.epg_t2 import EpgT2  # noqa: E402
-from qmap.models.ir import InversionRecovery  # noqa: E402
-from qmap.models.monoexp import MonoExponential  # noqa: E402
-from qmap.models.vfa import SpoiledGRE  # noqa: E402
-from qmap.noise_level import ArraySource  # noqa: E402
-from qmap.pipeline import resolve_sigma  # noqa: E402
-from tests.reference.isochromat import cpmg_isochromats  # noqa: E402
+from qmap.fitting import status as st
+from qmap.fitting.noise_floor import NoiseFloor
+from qmap.maps import fit_volume
+from qmap.models.epg_t2 import EpgT2
+from qmap.models.ir import InversionRecovery
+from qmap.models.monoexp import MonoExponential
+from qmap.models.vfa import SpoiledGRE
+from qmap.noise_level import ArraySource
+from qmap.pipeline import resolve_sigma
+from tests.reference.isochromat import cpmg_isochromats
 
 M0 = 1000.0
 
