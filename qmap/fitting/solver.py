@@ -35,7 +35,7 @@ from ..models.base import SeparableModel
 from . import status as st
 from .linalg import chol_inverse, chol_solve
 
-__all__ = ["ChunkFit", "fit_chunk", "grid_start", "levenberg_marquardt", "linear_amplitudes"]
+__all__ = ["ChunkFit", "fit_chunk", "fit_chunk_unit", "grid_start", "levenberg_marquardt", "linear_amplitudes", "voxel_scale"]
 
 #: columns of the grid handled per matrix product (bounds memory for 2D grids)
 GRID_BLOCK = 256
@@ -291,6 +291,19 @@ def levenberg_marquardt(
     return p, rss, J, converged, n_iter
 
 
+def voxel_scale(y: np.ndarray) -> np.ndarray:
+    """Per-voxel intensity scale used to normalise the data before fitting, (n,).
+
+    The largest absolute sample of each voxel (1 where that is 0 or not
+    finite). Dividing the data (and sigma) by it makes every fit independent of
+    the intensity scale of the input: amplitudes come out in units of this
+    scale and are multiplied back afterwards, while the non-linear parameters,
+    R-squared and the status are those of the normalised problem.
+    """
+    s = np.max(np.abs(y), axis=1) if y.shape[1] else np.ones(y.shape[0])
+    return np.where(np.isfinite(s) & (s > 0), s, 1.0)
+
+
 def fit_chunk(
     model: SeparableModel,
     y: np.ndarray,
@@ -302,6 +315,44 @@ def fit_chunk(
     stderr: str = "noise",
 ) -> ChunkFit:
     """Fit ``model`` to the voxels ``y`` (n, m); see the module docstring.
+
+    Each voxel is divided by its :func:`voxel_scale` (and ``sigma`` with it)
+    before fitting, and the amplitudes, their covariances, the RSS and the RMS
+    residual are scaled back: the answer is the same (to rounding) for data
+    multiplied by any positive factor. Without this, the damping of the
+    Levenberg-Marquardt step (relative to the largest curvature over
+    parameters with different units) froze the decay times of voxels with
+    large amplitudes (data x 1e6 moved T2* by 1.6 %, EPG T2 by 3.8 %).
+    Parameters as for :func:`fit_chunk_unit`.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    scale = voxel_scale(y)
+    sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), y.shape[:1]) / scale
+    fit = fit_chunk_unit(model, y / scale[:, None], ctx=ctx, noise=noise, sigma=sig, max_iter=max_iter,
+                         stderr=stderr)
+    from .noise_floor import NoiseFloor  # local import: noise_floor imports this module
+
+    L = len((noise or NoiseFloor("none")).wrap(model).linear)
+    f = np.ones(fit.params.shape)
+    f[:, :L] = scale[:, None]
+    fit.params *= f
+    fit.cov *= f[:, :, None] * f[:, None, :]
+    fit.rss *= scale**2
+    fit.rmse *= scale
+    return fit
+
+
+def fit_chunk_unit(
+    model: SeparableModel,
+    y: np.ndarray,
+    *,
+    ctx: dict | None = None,
+    noise=None,
+    sigma: np.ndarray | None = None,
+    max_iter: int = 60,
+    stderr: str = "noise",
+) -> ChunkFit:
+    """Fit ``model`` to the voxels ``y`` (n, m) as given (no normalisation); see the module docstring.
 
     Parameters
     ----------
