@@ -2,7 +2,9 @@
 
 Exit codes: 0 success; 2 bad usage or bad input (one line on stderr, no
 traceback, no outputs left behind); 3 ``phantom``: an ROI out of tolerance;
-4 ``batch``: a session or series failed; 1 an unexpected internal error.
+4 ``batch``: a session or series failed; 130 interrupted (Ctrl-C), 143
+terminated (SIGTERM) -- both leave the outputs as they were; 1 an unexpected
+internal error.
 """
 
 from __future__ import annotations
@@ -11,7 +13,9 @@ import argparse
 import importlib
 import logging
 import os
+import signal
 import sys
+import threading
 import traceback
 
 from .. import __version__
@@ -34,6 +38,24 @@ COMMANDS = {
     "inspect": "inspect_voxel",
     "t1-mp2rage": "t1_mp2rage",
 }
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised in the main thread: handled exactly like Ctrl-C (every clean-up runs), exit code 143."""
+
+
+def _on_sigterm(signum, frame):
+    raise Terminated
+
+
+def _catch_sigterm():
+    """Install the SIGTERM handler for the run (main thread only); returns the previous handler or None."""
+    if threading.current_thread() is not threading.main_thread():
+        return None
+    try:
+        return signal.signal(signal.SIGTERM, _on_sigterm)
+    except (ValueError, OSError):  # pragma: no cover - no signals here
+        return None
 
 
 class _Parser(argparse.ArgumentParser):
@@ -94,6 +116,7 @@ def main(argv: list[str] | None = None) -> int:
     log.setLevel(logging.INFO)
     log.propagate = False
     commits_before = _commits()
+    previous_handler = _catch_sigterm()
     try:
         if argv[:1] == ["--version"]:
             print(f"qmap {__version__}")
@@ -111,12 +134,13 @@ def main(argv: list[str] | None = None) -> int:
     except QmapError as exc:
         msg = " ".join(str(exc).split())
         return _usage_error(msg)
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
+        what = "terminated (SIGTERM)" if isinstance(exc, Terminated) else "interrupted"
         if _commits() == commits_before:
-            sys.stderr.write("qmap: interrupted; no outputs were written (the output folder is as it was)\n")
+            sys.stderr.write(f"qmap: {what}; no outputs were written (the output folder is as it was)\n")
         else:  # the interrupt came after a complete set of outputs was put in place
-            sys.stderr.write("qmap: interrupted after the outputs were written; they are complete\n")
-        return 130
+            sys.stderr.write(f"qmap: {what} after the outputs were written; they are complete\n")
+        return 128 + (signal.SIGTERM if isinstance(exc, Terminated) else signal.SIGINT)
     except BrokenPipeError:  # e.g. `qmap ... | head`: the reader went away; not an error of ours
         try:
             sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
@@ -131,6 +155,9 @@ def main(argv: list[str] | None = None) -> int:
         traceback.print_exc()
         sys.stderr.write(f"qmap: internal error (a bug in qmap {__version__}); please report it with the traceback above\n")
         return 1
+    finally:
+        if previous_handler is not None:
+            signal.signal(signal.SIGTERM, previous_handler)
 
 
 if __name__ == "__main__":  # pragma: no cover

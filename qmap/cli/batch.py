@@ -45,10 +45,13 @@ def run(args) -> int:
     try:
         report = run_batch(args.bids_dir, args.out_dir, dry_run=args.dry_run, scheduler=args.scheduler,
                            n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet)
-    except KeyboardInterrupt:
-        sys.stderr.write("qmap: interrupted; the series completed so far keep their outputs, a rerun "
-                         "continues with the others\n")
-        return 130
+    except KeyboardInterrupt as exc:
+        from . import Terminated
+
+        term = isinstance(exc, Terminated)
+        sys.stderr.write(f"qmap: {'terminated (SIGTERM)' if term else 'interrupted'}; the series completed so far "
+                         f"keep their outputs, a rerun continues with the others\n")
+        return 143 if term else 130
     if args.dry_run:
         print(report.plan_table())
         return 0

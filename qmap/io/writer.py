@@ -13,6 +13,7 @@ import hashlib
 import json
 import os
 import shutil
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -27,6 +28,11 @@ __all__ = ["AtomicWriter", "OutputFile", "existing_outputs", "map_filename", "ni
 #: number of successful commits in this process (lets the command line tell an interrupt that came
 #: after the outputs were in place from one that left the output folder untouched)
 COMMITS = 0
+
+#: lock file that serialises the writing of outputs by several qmap processes into one folder
+LOCK_NAME = ".qmap-lock"
+#: seconds a run waits for another qmap process to finish writing into the same folder before giving up
+LOCK_WAIT_S = 60.0
 
 NIFTI_INTENT = {"estimate": "estimate", "stderr": "estimate", "quality": "none", "status": "label"}
 
@@ -139,6 +145,14 @@ class AtomicWriter:
     Use as a context manager: on any exception (including KeyboardInterrupt)
     the temporary files are removed, replaced files restored, and a folder the
     writer created is removed again.
+
+    While it is open the writer holds an exclusive lock on the output folder
+    (``.qmap-lock``, an advisory ``flock``; removed on exit), so two qmap
+    processes writing into one folder take turns: the second waits up to
+    :data:`LOCK_WAIT_S` seconds and is then refused with an
+    :class:`~qmap.errors.OutputError`. Outputs that already exist are
+    re-checked under the lock (``overwrite``), so a run never mixes its files
+    with another run's.
     """
 
     def __init__(self, out_dir: str | Path, *, overwrite: bool = False):
@@ -147,6 +161,7 @@ class AtomicWriter:
         self._pending: list[tuple[Path, Path]] = []  # (tmp, final)
         self._created: list[Path] = []
         self._committed = False
+        self._lock_fd: int | None = None
 
     # -- context management -------------------------------------------------
     def __enter__(self):
@@ -167,12 +182,71 @@ class AtomicWriter:
         if not os.access(self.out_dir, os.W_OK | os.X_OK):
             self._remove_created()
             raise OutputError(f"the output folder {self.out_dir} is not writable; choose another -o or fix permissions")
+        try:
+            self._lock()
+        except BaseException:
+            self._unlock()
+            self._remove_created()
+            raise
         return self
 
     def __exit__(self, exc_type, exc, tb):
-        if exc_type is not None or not self._committed:
-            self.abort()
+        try:
+            if exc_type is not None or not self._committed:
+                self.abort()
+        finally:
+            self._unlock()
         return False
+
+    # -- one writer per folder ----------------------------------------------
+    def _lock(self) -> None:
+        try:
+            import fcntl
+        except ImportError:  # pragma: no cover - no advisory locks on this platform
+            return
+        path = self.out_dir / LOCK_NAME
+        deadline = time.monotonic() + LOCK_WAIT_S
+        while True:
+            try:
+                fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+            except OSError as exc:
+                raise OutputError(f"cannot write {path} ({exc.strerror}); check free space and permissions") from None
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                os.close(fd)
+                if time.monotonic() >= deadline:
+                    raise OutputError(
+                        f"another qmap process{_lock_owner(path)} is writing into {self.out_dir} and did not finish "
+                        f"within {LOCK_WAIT_S:g} s; wait for it to finish, or choose another -o"
+                    ) from None
+                time.sleep(0.05)
+                continue
+            # the holder before us may have removed the file after we opened it: lock the file that is there now
+            try:
+                same = os.fstat(fd).st_ino == os.stat(path).st_ino
+            except OSError:
+                same = False
+            if not same:
+                os.close(fd)
+                continue
+            try:  # the owner's pid, for the message of a run that waits in vain (informative only)
+                os.ftruncate(fd, 0)
+                os.write(fd, f"{os.getpid()}\n".encode())
+            except OSError:
+                pass
+            self._lock_fd = fd
+            return
+
+    def _unlock(self) -> None:
+        fd, self._lock_fd = self._lock_fd, None
+        if fd is None:
+            return
+        try:
+            (self.out_dir / LOCK_NAME).unlink()  # removed while still locked: no one locks a stale file
+        except OSError:
+            pass
+        os.close(fd)
 
     # -- staging ------------------------------------------------------------
     def _tmp(self, name: str) -> Path:
@@ -299,6 +373,7 @@ class AtomicWriter:
             except OSError:
                 pass
         self._pending = []
+        self._unlock()
         self._remove_created()
 
     def _remove_created(self):
@@ -312,6 +387,15 @@ class AtomicWriter:
                         shutil.rmtree(d)
             except OSError:
                 pass
+
+
+def _lock_owner(path: Path) -> str:
+    """`` (pid N)`` from a lock file, or nothing when it cannot be read."""
+    try:
+        pid = int(path.read_text().strip())
+    except (OSError, ValueError):
+        return ""
+    return f" (pid {pid})"
 
 
 def json_default(o):
