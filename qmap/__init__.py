@@ -28,6 +28,10 @@ def __getattr__(name):  # entry points are imported on first use (keeps `qmap --
         from .batch import run_batch
 
         return run_batch
+    if name == "plan":  # protocol design (qmap plan); the module is qmap.planning
+        from .planning import plan
+
+        return plan
     if name == "run_phantom":
         from .workflows.phantom import run_phantom
 
@@ -47,6 +51,7 @@ __all__ = [
     "fit_t2",
     "fit_t2star",
     "fit_volume",
+    "plan",
     "run_batch",
     "run_phantom",
 ]

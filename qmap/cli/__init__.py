@@ -37,6 +37,7 @@ COMMANDS = {
     "demo": "demo",
     "inspect": "inspect_voxel",
     "t1-mp2rage": "t1_mp2rage",
+    "plan": "plan",
 }
 
 
