@@ -27,6 +27,7 @@ at 3 T (Stanisz et al. 2005; Wansapura et al. 1999; see qmap.simulate.phantoms).
 
 example:
   qmap simulate -o sim --phantom vials --protocol ir,vfa,mese,megre,b1 --snr 100 --seed 1
+  qmap simulate -o pools --phantom pools --protocol mese --snr 300 --shape 32,32,1   (for t2-spectrum)
 """
 
 
@@ -61,8 +62,10 @@ def add_parser(sub) -> None:
     )
     p.add_argument("-o", "--out-dir", required=True, metavar="DIR", help="folder to create (must be empty or absent)")
     p.add_argument("--phantom", choices=PHANTOMS, default="vials",
-                   help="vials: nine invented vials (T1 0.1-2 s, T2 0.02-0.5 s) in a fill; head: CSF/GM/WM slab "
-                        "(default vials)")
+                   help="vials: nine invented vials (T1 0.1-2 s, T2 0.02-0.5 s) in a fill; head: CSF/GM/WM slab; "
+                        "pools: multi-pool disc for t2-spectrum -- two pools (T2 20 ms + 80 ms) in one half, three "
+                        "(+ free water, T2 1 s, 20 %%) in the other, the 20 ms fraction rising 0-0.3 across "
+                        "(truth in desc-truth_MWFmap) (default vials)")
     p.add_argument("--protocol", default=",".join(PROTOCOLS), metavar="LIST",
                    help=f"series to simulate, comma separated from {','.join(PROTOCOLS)} (default all)")
     p.add_argument("--shape", default="48,48,4", metavar="X,Y,Z", help="matrix size (default 48,48,4)")

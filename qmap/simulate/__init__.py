@@ -219,7 +219,12 @@ def _write_truth(stage, manifest, ph: Phantom, b1, affine, sub):
     manifest["truth"]["TB1"] = rel
     rel = f"{sub}/anat/{sub}_desc-{ph.name}_dseg.nii.gz"
     save_nifti(stage.path(rel), ph.roi, affine, dtype=np.int16, intent="label")
-    names = {lab: t.name for lab, t in ph.tissues.items() if lab != FILL.label or ph.name != "vials"}
+    names = ph.roi_names or {lab: t.name for lab, t in ph.tissues.items() if lab != FILL.label or ph.name != "vials"}
+    for param, (arr, units, desc) in (ph.extra_truth or {}).items():
+        rel_x = f"{sub}/anat/{sub}_desc-truth_{param}map.nii.gz"
+        save_nifti(stage.path(rel_x), arr, affine)
+        save_json(stage.path(rel_x.replace(".nii.gz", ".json")), {"Units": units, "Description": desc})
+        manifest["truth"][param] = rel_x
     tsv = "index\tname\n" + "".join(f"{k}\t{v}\n" for k, v in sorted(names.items()) if np.any(ph.roi == k))
     stage.path(rel.replace(".nii.gz", ".tsv")).write_text(tsv)
     manifest["labels"] = rel

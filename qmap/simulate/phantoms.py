@@ -1,6 +1,6 @@
 """Digital phantoms: label images with relaxation properties, and a smooth transmit (B1) field.
 
-Two built-in phantoms, both invented for qmap:
+Three built-in phantoms, all invented for qmap:
 
 ``vials``
     A round container of fill liquid holding nine vials (eight on a ring,
@@ -8,6 +8,9 @@ Two built-in phantoms, both invented for qmap:
     0.02-0.5 s, with a linear temperature dependence. Values and
     temperature coefficients are invented (no real phantom is described);
     they are plausible for doped water.
+``pools``
+    A disc of multi-pool voxels (two pools in one half, three in the other)
+    for multi-component T2; see :func:`pools_phantom`.
 ``head``
     An axial slab through a simplified head: cerebrospinal fluid (CSF)
     around the brain and in two ventricles, a folded grey-matter (GM) ribbon
@@ -41,6 +44,7 @@ __all__ = [
     "b1_field",
     "head_phantom",
     "make_phantom",
+    "pools_phantom",
     "vial_phantom",
     "vial_properties",
 ]
@@ -86,6 +90,8 @@ class Phantom:
     roi: np.ndarray
     temperature_c: float | None = None
     fractions: dict | None = None
+    roi_names: dict | None = None  # names of the ``roi`` labels when they are regions, not tissues
+    extra_truth: dict | None = None  # name -> (map, units, description), e.g. the short-T2 fraction
 
     def property_map(self, attr: str) -> np.ndarray:
         """(X, Y, Z) map of ``attr`` (``"t1"``, ``"t2"``, ``"t2star"``, ``"pd"``); air is 0 (pd) or NaN."""
@@ -219,7 +225,45 @@ def head_phantom(shape=(64, 64, 4)) -> Phantom:
     return Phantom("head", labels, tissues, labels.copy(), None, _fractions(_head_labels, shape))
 
 
-PHANTOMS = ("vials", "head")
+# ----------------------------------------------------------------------------- pools
+#: Compartments of the invented multi-pool phantom: a short-T2 pool (like myelin water), an intermediate pool
+#: (like intra/extracellular water) and a free-water pool; values invented, in the ranges of brain studies.
+POOLS = [
+    Tissue(1, "short-pool", 0.50, 0.020, 0.015, 1.0),
+    Tissue(2, "intermediate-pool", 1.00, 0.080, 0.050, 1.0),
+    Tissue(3, "free-pool", 3.00, 1.000, 0.300, 1.0),
+]
+#: largest short-pool fraction (reached at the right edge of the object)
+POOLS_MAX_SHORT = 0.30
+#: free-pool fraction of the three-pool half
+POOLS_FREE = 0.20
+
+
+def pools_phantom(shape=(48, 48, 4)) -> Phantom:
+    """An invented disc of multi-pool voxels for multi-component T2.
+
+    The upper half (v < 0) holds two pools (short + intermediate), the lower
+    half three (short + intermediate + free water, the free pool at
+    :data:`POOLS_FREE`). The short-pool fraction rises linearly from 0 at the
+    left edge of the disc to :data:`POOLS_MAX_SHORT` at the right. Every
+    compartment has PD 1, so volume fractions are signal fractions at TE = 0.
+    ``roi``: 1 = two-pool half, 2 = three-pool half; ``extra_truth`` holds the
+    short-pool fraction (``MWF``).
+    """
+    u, v, _ = _grid(shape)
+    obj = (u**2 + v**2) < 0.85**2
+    short = np.where(obj, POOLS_MAX_SHORT * np.clip((u + 0.85) / 1.7, 0.0, 1.0), 0.0)
+    free = np.where(obj & (v >= 0), POOLS_FREE, 0.0)
+    fractions = {1: short, 2: np.where(obj, 1.0 - short - free, 0.0), 3: free}
+    labels = np.where(obj, 2, 0).astype(np.int16)  # the dominant pool: the truth T1/T2 maps show it
+    roi = np.where(obj, np.where(v < 0, 1, 2), 0).astype(np.int16)
+    extra = {"MWF": (np.where(obj, short, np.nan), "fraction",
+                     "true short-pool (T2 20 ms) fraction of the signal at TE = 0 (simulated)")}
+    return Phantom("pools", labels, {t.label: t for t in POOLS}, roi, None, fractions,
+                   roi_names={1: "two-pool", 2: "three-pool"}, extra_truth=extra)
+
+
+PHANTOMS = ("vials", "head", "pools")
 
 
 def make_phantom(name: str, shape, *, temperature_c: float = REFERENCE_TEMPERATURE_C) -> Phantom:
@@ -231,6 +275,8 @@ def make_phantom(name: str, shape, *, temperature_c: float = REFERENCE_TEMPERATU
         return vial_phantom(shape, temperature_c=temperature_c)
     if name == "head":
         return head_phantom(shape)
+    if name == "pools":
+        return pools_phantom(shape)
     raise UsageError(f"--phantom {name!r}: expected one of {', '.join(PHANTOMS)}")
 
 

@@ -156,6 +156,24 @@ def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet,
     return idx.size
 
 
+def _pool_sigma(out: _Collect, min_snr: float) -> float | None:
+    """Replace per-voxel residual sigmas by their median over the fitted voxels (rescaling SNR, chi2, angle SE)."""
+    fitted = np.isin(out.status, (st.FITTED, st.LOW_SNR, st.AT_BOUND)) & np.isfinite(out.arr["sigma"])
+    if not fitted.any():
+        return None
+    pooled = float(np.median(out.arr["sigma"][fitted]))
+    if not pooled > 0:
+        return None
+    ratio = out.arr["sigma"] / np.float32(pooled)  # old / new
+    out.arr["snr"] *= ratio
+    out.arr["chi2"] *= ratio * ratio
+    out.arr["angle_se"] /= ratio
+    out.arr["sigma"][:] = np.where(np.isfinite(out.arr["sigma"]), pooled, np.nan)
+    low = np.isin(out.status, (st.FITTED, st.LOW_SNR))
+    out.status[low] = np.where(out.arr["snr"][low] < min_snr, st.LOW_SNR, st.FITTED)
+    return pooled
+
+
 def _calibrate(model, out: _Collect, *, n_sub: int, replicates: int) -> dict:
     good = np.flatnonzero((out.status == st.FITTED) & np.isfinite(out.arr["snr"]) & (out.arr["snr"] > 0))
     if good.size == 0:
@@ -374,13 +392,15 @@ def run_t2_spectrum(
         for name in out.names:
             out.arr[name][dst] = sub.arr[name]
         out.spectrum[dst] = sub.spectrum
+    if sig is None:
+        pooled = _pool_sigma(out, model.min_snr)
+        if pooled is not None:
+            noise_info.update(sigma=pooled, sigma_source="median of the per-voxel residual sd sqrt(RSS/(echoes - "
+                                                         "peaks)) of the unregularised spectra (no usable background)")
+            notes.append(f"noise sigma {pooled:.4g} from the fit residuals (no usable image background)")
     cal = _calibrate(model, out, n_sub=se_subsample, replicates=SE_REPLICATES)
     se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
     maps = _mapset(model, out, shape, se, n_fitted)
-    if sig is None:
-        fitted = out.status == st.FITTED
-        if fitted.any():
-            noise_info["sigma"] = float(np.median(out.arr["sigma"][fitted]))
     b = model.basis
     options = {
         "refocus_deg": float(refocus_deg), "t1_s": float(t1), "window_s": [float(window[0]), float(window[1])],
