@@ -174,7 +174,7 @@ ESTIMATED_SIGMA = ("auto", "local")
 
 
 def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None,
-                     notes: list | None = None) -> tuple[object, dict]:
+                     notes: list | None = None, magnitude: bool = True) -> tuple[object, dict]:
     """The noise level for the standard errors of a command that does not model the noise floor.
 
     Resolved as ``--sigma`` (:func:`resolve_sigma`). When it is to be
@@ -192,6 +192,15 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
         (the reason), for the provenance's ``noise`` entry.
     """
     spec = "auto" if spec is None else spec
+    if not magnitude and str(spec) in ESTIMATED_SIGMA:
+        # signed (phase-corrected) data: the background is Gaussian, not Rayleigh, and the magnitude
+        # statistics of the estimator would give about 0.57 sigma -- too small standard errors
+        reason = "the noise of signed (real / phase-corrected) data is not estimated from the background"
+        log.warning("%s; the standard errors use the per-voxel residual variance (give --sigma VALUE for "
+                    "noise-based ones)", reason)
+        if notes is not None:
+            notes.append("standard errors from the per-voxel residual variance (signed data: give --sigma VALUE)")
+        return None, {"sigma": None, "stderr_fallback": reason}
     try:
         sigma, sinfo = resolve_sigma(spec, series, coils=coils, max_bytes=max_bytes)
     except InputError as exc:
@@ -321,7 +330,7 @@ def run_fit(
         if noise.mode == "rician":
             noise_info["coils"] = noise.coils
     if sigma is None and common.stderr == "noise":  # no noise-floor model: the noise level is for the SEs only
-        sigma, sinfo = sigma_for_stderr(sigma_spec, series, max_bytes=budget, notes=notes)
+        sigma, sinfo = sigma_for_stderr(sigma_spec, series, max_bytes=budget, notes=notes, magnitude=magnitude)
         noise_info = dict(noise_info or {"mode": "none"}, **sinfo)
         if "path" in sinfo:
             file_inputs.append(sinfo["path"])

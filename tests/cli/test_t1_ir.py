@@ -134,6 +134,13 @@ def test_real_data_need_signal_real(tmp_path, capsys):
     assert main(["t1-ir", real, "-o", str(tmp_path / "o1")]) == 2
     assert "--signal real" in one_error_line(capsys)
     assert main(["t1-ir", real, "--signal", "real", "-o", str(tmp_path / "o2"), "-q"]) == 0
+    # signed data: the background is Gaussian, not Rayleigh, so --sigma auto does not estimate the noise
+    # there (a Rayleigh estimator would give ~0.57 sigma); the standard errors use the residual variance
+    prov = json.loads(next((tmp_path / "o2").glob("*_provenance.json")).read_text())
+    assert "signed" in prov["noise"]["stderr_fallback"] and prov["noise"]["stderr"]["convention"] == "residual"
+    assert main(["t1-ir", real, "--signal", "real", "--sigma", "10", "-o", str(tmp_path / "o3"), "-q"]) == 0
+    prov = json.loads(next((tmp_path / "o3").glob("*_provenance.json")).read_text())
+    assert prov["noise"]["sigma"] == 10.0 and prov["noise"]["stderr"]["convention"] == "noise"
 
 
 def test_look_locker_is_recorded(tmp_path):
