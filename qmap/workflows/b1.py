@@ -133,8 +133,8 @@ def run_b1(
             sig, sinfo = resolve_sigma("auto" if sigma is None else sigma, series)
         except InputError as exc:
             reason = str(exc)
-            log.warning("the noise level could not be estimated (%s): the TB1 standard errors are NaN (give "
-                        "--sigma VALUE)", reason)
+            if sigma is not None:  # asked for (the command line's default): say so; the library default stays quiet
+                log.warning("%s -- the TB1 standard errors are NaN", reason.rstrip("."))
             noise_info["stderr"] = f"not estimable: noise sigma unknown ({reason}); standard errors are NaN"
             notes.append("standard errors are NaN: the noise could not be estimated (give --sigma VALUE)")
         else:
