@@ -128,6 +128,15 @@ def test_epg_t2_snr80_coverage_against_isochromat_truth():
     ok = maps.status == st.FITTED
     assert ok.mean() > 0.97
     _check(maps["T2"][ok], truth[ok], maps.stderr["T2"][ok])
+    # reference: the Cramer-Rao bound of (M0, T2, angle) from the isochromat simulation itself, for the pairs
+    # whose train stays well above the noise floor (Gaussian bound), below 180 deg (inside the angle's range)
+    for j, (t2, ang) in enumerate(pairs):
+        if t2 < 0.09 or ang == 180.0:
+            continue
+        crlb = _crlb(lambda p: p[0] * cpmg_isochromats(p[1], t1, esp, n_echoes, p[2], n_iso=512), [M0, t2, ang],
+                     sigma, 1)
+        sel = slice(j * reps, (j + 1) * reps)
+        assert np.median(maps.stderr["T2"][sel][ok[sel]]) / crlb == pytest.approx(1.0, abs=0.05)
 
 
 # --------------------------------------------------------------------- magnitude IR, SNR 30, T1 <= 3 s
