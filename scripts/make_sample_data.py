@@ -4,7 +4,7 @@
 The sample data are synthetic: the invented nine-vial phantom of
 :mod:`qmap.simulate.phantoms` at 21.5 C, scanned with every protocol qmap fits
 (inversion recovery, variable flip angle, multi-echo spin echo, multi-echo
-gradient echo, double-angle B1 inputs on a coarser grid), Rician noise at SNR
+gradient echo, double-angle B1 inputs on a coarser grid, MP2RAGE), Rician noise at SNR
 150, seed 20240611. The same qmap version and seed give byte-identical images.
 
 Usage::
@@ -26,7 +26,7 @@ from qmap.simulate import simulate
 #: the settings of the shipped data (see sample_data/README.md)
 SETTINGS = {
     "phantom": "vials",
-    "protocols": ("ir", "vfa", "mese", "megre", "b1"),
+    "protocols": ("ir", "vfa", "mese", "megre", "b1", "mp2rage"),
     "shape": (48, 48, 4),
     "voxel_size": (2.0, 2.0, 4.0),
     "snr": 150.0,

@@ -18,6 +18,8 @@ output layout (S = --subject, default the phantom name):
   DIR/sub-S/anat/sub-S_desc-<phantom>_dseg.nii.gz (+ .tsv)           labels (vials: label 1-9 = vial, fill = 0)
   DIR/sub-S/fmap/sub-S_flip-<i>_TB1DAM.nii.gz (or _acq-tr<i>_TB1AFI), sub-S_TB1map.nii.gz
                                           B1-mapping inputs and the true B1 on a coarser grid (own affine)
+  DIR/sub-S/anat/sub-S_inv-<i>_MP2RAGE.nii.gz, sub-S_UNIT1.nii.gz
+                                          MP2RAGE inversion magnitudes and UNI (12-bit integer export)
   DIR/phantom_reference.csv               vials: truth at 20 and 24 C (for qmap phantom --reference)
 
 noise: complex Gaussian noise, magnitude taken (Rician; noncentral chi with --coils N); sigma = the series'
@@ -54,7 +56,7 @@ def add_parser(sub) -> None:
         help="write synthetic series with known ground truth (phantom + protocols + noise)",
         description="Simulate magnitude MRI series of a digital phantom -- inversion recovery, variable flip angle, "
         "multi-echo spin echo (extended phase graphs, imperfect refocusing from the B1 field), multi-echo gradient "
-        "echo and low-resolution B1-mapping inputs -- in a smooth transmit field with Rician noise, and write them "
+        "echo, low-resolution B1-mapping inputs and MP2RAGE -- in a smooth transmit field with Rician noise, and write them "
         "as a BIDS-style folder with sidecars, the true maps and a label image. Times are seconds unless a unit is "
         "given (12ms); angles are degrees.",
         epilog=_EPILOG,

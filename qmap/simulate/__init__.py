@@ -3,8 +3,8 @@
 A phantom (:mod:`qmap.simulate.phantoms`: nine invented vials, or a simple
 head slab) is placed in a smooth transmit field; each requested protocol
 (:mod:`qmap.simulate.protocols`: inversion recovery, variable flip angle,
-multi-echo spin echo by extended phase graphs, multi-echo gradient echo, and
-low-resolution B1-mapping inputs) is synthesised noise-free, complex Gaussian
+multi-echo spin echo by extended phase graphs, multi-echo gradient echo,
+low-resolution B1-mapping inputs, and MP2RAGE) is synthesised noise-free, complex Gaussian
 noise is added and the magnitude taken (Rician; noncentral chi for several
 coils), and everything is written as a BIDS-style folder with sidecars, the
 true maps, the label image and a manifest (:mod:`qmap.simulate.output`).
@@ -13,6 +13,9 @@ Noise level: for every series, sigma (per real channel) is the series'
 reference signal divided by ``snr``, the reference being the 95th percentile
 over the object of each voxel's largest noise-free magnitude in the series.
 The low-resolution B1 inputs use ``b1_snr`` (default twice ``snr``).
+MP2RAGE: the two inversion images get complex noise on one channel (``coils``
+does not apply); their magnitudes are written with the combined image UNI as
+the 12-bit integer export (``sub-S_UNIT1``).
 """
 
 from __future__ import annotations
@@ -107,7 +110,7 @@ def simulate(
         Folder to create (must be empty or absent unless ``overwrite``).
     phantom : {"vials", "head"}
     protocols : sequence of str
-        Any of ``ir``, ``vfa``, ``mese``, ``megre``, ``b1``.
+        Any of ``ir``, ``vfa``, ``mese``, ``megre``, ``b1``, ``mp2rage``.
     shape : (3,) tuple of int
         Matrix of the main grid.
     voxel_size : (3,) tuple of float
@@ -174,18 +177,35 @@ def simulate(
                 grid_aff, folder = lr_affine, "fmap"
             s.data = data
             sigma = _sigma(s, obj, b1_snr or 2 * snr) if s.lowres else _sigma(s, obj, snr)
-            noisy = magnitude_noise(data, sigma, rng, coils=int(coils))
+            uni = None
+            if name == "mp2rage":  # complex images (one channel): the magnitudes and the combined UNI image
+                z = data + rng.normal(0.0, sigma, data.shape) + 1j * rng.normal(0.0, sigma, data.shape)
+                noisy = np.abs(z)
+                uni = np.real(np.conj(z[..., 0]) * z[..., 1]) / (noisy[..., 0] ** 2 + noisy[..., 1] ** 2)
+            else:
+                noisy = magnitude_noise(data, sigma, rng, coils=int(coils))
             files = []
             for k, lab in enumerate(volume_names(data.shape[3], s.labels)):
                 rel = f"{sub}/{folder}/{sub}_{s.entity}-{lab}_{s.suffix}.nii.gz"
                 save_nifti(stage.path(rel), noisy[..., k], grid_aff)
                 side = dict(s.sidecar, **{s.key: float(s.values[k])}, MagneticFieldStrength=3.0,
                             Manufacturer="qmap simulate (synthetic)")
+                side.update({key: vals[k] for key, vals in (s.per_volume or {}).items()})
                 save_json(stage.path(rel.replace(".nii.gz", ".json")), side)
                 files.append(rel)
             manifest["series"][name] = {"suffix": s.suffix, "files": files, "key": s.key,
                                         "values": [float(v) for v in s.values], "sidecar": s.sidecar,
                                         "noise_sigma": sigma, "grid": "low-resolution B1 grid" if s.lowres else "main"}
+            if uni is not None:  # the 12-bit integer export of UNI (common practice), with the whole protocol
+                rel = f"{sub}/anat/{sub}_UNIT1.nii.gz"
+                save_nifti(stage.path(rel), np.round((uni + 0.5) * 4095), grid_aff, dtype=np.uint16)
+                save_json(stage.path(rel.replace(".nii.gz", ".json")), dict(
+                    s.sidecar, InversionTime=[float(v) for v in s.values], **(s.per_volume or {}),
+                    MagneticFieldStrength=3.0, Manufacturer="qmap simulate (synthetic)",
+                    Description="UNI = Re(S1* S2)/(|S1|^2 + |S2|^2) of the two inversion images, stored as "
+                                "round((UNI + 0.5) x 4095)"))
+                manifest["series"][name]["uni"] = rel
+                manifest["series"][name]["per_volume"] = s.per_volume
         _write_truth(stage, manifest, ph, b1, affine, sub)
         if "b1" in protocols:
             rel = f"{sub}/fmap/{sub}_TB1map.nii.gz"

@@ -18,7 +18,7 @@ import numpy as np
 
 from ..epg import cpmg_echoes
 
-__all__ = ["afi", "dam", "ir", "magnitude_noise", "megre", "mese", "spgr"]
+__all__ = ["afi", "dam", "ir", "magnitude_noise", "megre", "mese", "mp2rage", "spgr"]
 
 
 def _col(a) -> np.ndarray:
@@ -85,6 +85,47 @@ def afi(fa_deg: float, *, tr1: float, tr2: float, t1, pd, b1) -> np.ndarray:
 def dam(fa_deg: float, *, tr: float, t1, pd, b1) -> np.ndarray:
     """Double-angle method: saturation-recovery GRE at the nominal angles a and 2a (TR finite), (n, 2)."""
     return spgr([fa_deg, 2 * fa_deg], tr=tr, te=0.0, t1=t1, t2star=np.inf, pd=pd, b1=b1)
+
+
+def mp2rage(*, ti, fa_deg, tr_prep: float, tr_exc: float, shots: int, efficiency: float, te: float, t1, t2star,
+            pd, b1, tol: float = 1e-12, max_cycles: int = 500) -> np.ndarray:
+    """MP2RAGE k-space-centre signals of both blocks, event by event to the periodic steady state, (n, 2).
+
+    Independent of the closed form in :mod:`qmap.models.mp2rage`: Mz is stepped
+    through every event of a cycle (inversion ``Mz -> -e Mz`` at 0; excitations
+    of block k at ``TI_k + (j - shots // 2) tr_exc`` with angle ``b1 x fa_k``,
+    ``Mz -> Mz cos a`` and signal ``Mz sin a``, ideal spoiling; exact T1
+    relaxation in between) and cycles are repeated until Mz at the start of a
+    cycle changes by less than ``tol``. The signals are real and signed (the
+    receive phase removed) and decay with ``exp(-te / T2*)``.
+    """
+    t1 = np.ravel(np.asarray(t1, float))
+    b1 = np.broadcast_to(np.ravel(np.asarray(b1, float)), t1.shape)
+    centre = int(shots) // 2
+    times = [(ti[k] + (j - centre) * tr_exc, k, j) for k in range(2) for j in range(int(shots))]
+    times.sort()
+    if times[0][0] < 0 or times[-1][0] >= tr_prep:
+        raise ValueError("MP2RAGE protocol: the excitations do not fit between two inversions")
+    cos = [np.cos(np.deg2rad(b1 * fa_deg[k])) for k in range(2)]
+    sin = [np.sin(np.deg2rad(b1 * fa_deg[k])) for k in range(2)]
+    mz = np.ones_like(t1)
+    sig = np.zeros((t1.size, 2))
+    for _ in range(max_cycles):
+        start = mz.copy()
+        mz = -efficiency * mz
+        t = 0.0
+        for time, k, j in times:
+            e = np.exp(-(time - t) / t1)
+            mz = mz * e + (1.0 - e)
+            t = time
+            if j == centre:
+                sig[:, k] = mz * sin[k]
+            mz = mz * cos[k]
+        e = np.exp(-(tr_prep - t) / t1)
+        mz = mz * e + (1.0 - e)
+        if np.max(np.abs(mz - start)) < tol:
+            break
+    return _col(pd) * np.exp(-te / _col(t2star)) * sig
 
 
 def magnitude_noise(signal: np.ndarray, sigma: float, rng: np.random.Generator, *, coils: int = 1) -> np.ndarray:

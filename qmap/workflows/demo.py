@@ -8,13 +8,14 @@ temperature and the true relaxation times. The demo
 
 1. fits T1 by inversion recovery, B1 by the double-angle method, T1 by
    variable flip angle with that B1 map (it lies on a coarser grid with its
-   own affine and is resampled), T2 by extended phase graphs and T2* by the
-   mono-exponential with the Rician noise floor -- each with PNG previews --
-   into ``DIR/maps``;
+   own affine and is resampled), T1 from the MP2RAGE UNI image (12-bit
+   export) and its inversion images with the same B1 map, T2 by extended
+   phase graphs and T2* by the mono-exponential with the Rician noise floor
+   -- each with PNG previews -- into ``DIR/maps``;
 2. runs the phantom QA of every relaxation map against the bundled reference
    table (at the phantom's temperature): IR T1, T2 and T2* into
-   ``DIR/phantom``, VFA T1 into ``DIR/phantom-vfa`` (one map per parameter
-   and report);
+   ``DIR/phantom``, VFA T1 into ``DIR/phantom-vfa``, MP2RAGE T1 into
+   ``DIR/phantom-mp2rage`` (one map per parameter and report);
 3. prints, per vial, the median of each map and its error against the true
    value the data were simulated with;
 4. simulates a small invented multi-pool disc (:func:`qmap.simulate.phantoms.pools_phantom`:
@@ -43,9 +44,10 @@ from ..plots import _fmt
 __all__ = ["FITS", "DemoReport", "run_demo", "sample_data_dir"]
 
 #: (prefix, map parameter, column title) of the maps compared with the truth, in print order
-FITS = (("ir", "T1", "T1 IR"), ("vfa", "T1", "T1 VFA+B1"), ("mese", "T2", "T2 EPG"), ("megre", "T2star", "T2*"))
+FITS = (("ir", "T1", "T1 IR"), ("vfa", "T1", "T1 VFA+B1"), ("mp2rage", "T1", "T1 MP2RAGE+B1"),
+        ("mese", "T2", "T2 EPG"), ("megre", "T2star", "T2*"))
 #: phantom QA runs (output subfolder -> map prefixes); one map per parameter in each
-QA_RUNS = {"phantom": ("ir", "mese", "megre"), "phantom-vfa": ("vfa",)}
+QA_RUNS = {"phantom": ("ir", "mese", "megre"), "phantom-vfa": ("vfa",), "phantom-mp2rage": ("mp2rage",)}
 
 
 def sample_data_dir(stack: ExitStack | None = None) -> Path:
@@ -141,6 +143,7 @@ def run_demo(out_dir, *, n_jobs: int | None = None, overwrite: bool = False, qui
     from .b1 import run_b1
     from .decay import run_t2star
     from .ir import run_t1_ir
+    from .mp2rage import run_t1_mp2rage
     from .phantom import run_phantom
     from .t2 import run_t2
     from .vfa import run_t1_vfa
@@ -162,6 +165,9 @@ def run_demo(out_dir, *, n_jobs: int | None = None, overwrite: bool = False, qui
         rep.fits["b1"] = run_b1(_files(data, manifest, "b1"), common=common("b1"), method="dam")
         rep.fits["vfa"] = run_t1_vfa(_files(data, manifest, "vfa"), common=common("vfa"),
                                      b1=maps_dir / "b1_TB1map.nii.gz")
+        inv = _files(data, manifest, "mp2rage")
+        rep.fits["mp2rage"] = run_t1_mp2rage(data / manifest["series"]["mp2rage"]["uni"], common=common("mp2rage"),
+                                             inv1=inv[0], inv2=inv[1], b1=maps_dir / "b1_TB1map.nii.gz")
         refocus = manifest["series"]["mese"]["sidecar"].get("RefocusingFlipAngle", 180.0)
         rep.fits["mese"] = run_t2(_files(data, manifest, "mese"), common=common("mese"), epg=True,
                                 refocus_deg=refocus)
