@@ -39,7 +39,6 @@ import logging
 from pathlib import Path
 
 import numpy as np
-from scipy import ndimage
 
 from .errors import InputError, UsageError
 from .fitting import status as st
@@ -316,6 +315,7 @@ def load_b1_map(
         if not np.isfinite(smooth_fwhm_mm) or smooth_fwhm_mm < 0:
             raise UsageError(f"--b1-smooth {smooth_fwhm_mm}: give a non-negative FWHM in mm")
         sig = smooth_fwhm_mm / (2.0 * np.sqrt(2.0 * np.log(2.0))) / voxel_mm
+        from scipy import ndimage  # imported on use (start-up time)
         sv = ndimage.gaussian_filter(np.where(valid, values, 0.0), sig, mode="constant", cval=0.0)
         sw = ndimage.gaussian_filter(valid.astype(float), sig, mode="constant", cval=0.0)
         with np.errstate(divide="ignore", invalid="ignore"):

@@ -32,7 +32,6 @@ import math
 
 import numpy as np
 import numpy.typing as npt
-from scipy import special
 
 __all__ = ["rician_mean", "rician_mean_grad"]
 
@@ -105,6 +104,8 @@ def _exact(nu: np.ndarray, sigma, coils: int, grad: bool) -> tuple[np.ndarray, n
     ``nu`` may be negative (the mean is even in it); ``sigma`` a scalar or an
     array of the same shape as ``nu``.
     """
+    from scipy import special  # imported on use (start-up time of commands that never need it)
+
     a = np.abs(nu)
     with np.errstate(divide="ignore", invalid="ignore"):
         snr = a / sigma

@@ -32,7 +32,6 @@ from typing import Protocol
 
 import numpy as np
 import numpy.typing as npt
-from scipy import ndimage
 
 from .errors import InputError
 from .noise import _check_coils
@@ -209,6 +208,7 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     threshold = 0.5 * otsu_threshold(clipped)
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
+    from scipy import ndimage  # imported on use (start-up time)
     mask = ndimage.binary_opening(np.pad(peak > threshold, 1, mode="edge"))[1:-1, 1:-1, 1:-1]
     return ndimage.binary_fill_holes(mask)
 
@@ -281,6 +281,7 @@ def background_exclusion(object_mask: np.ndarray, dilate: int = 3) -> np.ndarray
     mask = np.asarray(object_mask, dtype=bool)
     if not mask.any():
         raise InputError(f"cannot estimate the noise: no object was found in the image to set apart; {_HINT}")
+    from scipy import ndimage  # imported on use (start-up time)
     return ndimage.binary_dilation(mask, iterations=dilate) if dilate > 0 else mask
 
 

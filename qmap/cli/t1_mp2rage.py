@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 
-from ..b1 import B1_SCALES
 from ..models.mp2rage import DEFAULT_EFFICIENCY
 from ..units import parse_time
 from ..workflows.mp2rage import run_t1_mp2rage
@@ -52,7 +51,7 @@ def add_parser(sub) -> None:
     b = p.add_argument_group("transmit field (B1) correction")
     b.add_argument("--b1", metavar="B1MAP", help="relative B1 map (actual / nominal angle) on any grid, resampled "
                    "through the affines; voxels outside it get status 6")
-    b.add_argument("--b1-scale", choices=B1_SCALES, default=None,
+    b.add_argument("--b1-scale", choices=("fraction", "percent"), default=None,
                    help="units of the B1 map (default: its sidecar Units, else fraction)")
     b.add_argument("--b1-smooth", type=float, default=None, metavar="FWHM_MM",
                    help="Gaussian smoothing of the B1 map before resampling, FWHM in mm (default: none)")

@@ -9,7 +9,6 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
-from scipy import ndimage
 
 from ..errors import InputError
 
@@ -161,6 +160,7 @@ def resample_to_grid(
         ii = np.rint(srcc).astype(np.intp)
         out = data[ii[0], ii[1], ii[2]]
     else:
+        from scipy import ndimage  # imported on use (start-up time)
         out = ndimage.map_coordinates(np.asarray(data, float), srcc, order=order, mode="nearest")
     if not inside.all():
         if np.isnan(cval) and not np.issubdtype(out.dtype, np.floating):

@@ -362,31 +362,32 @@ class Mp2rageLookup:
         step of its end), B1 outside the table, or non-finite input.
         """
         uni = np.asarray(uni, float)
-        b1 = np.ones_like(uni) if b1 is None else np.broadcast_to(np.asarray(b1, float), uni.shape)
         nb, nu = self.b1.size, self.uni.size
-        du = self.uni[1] - self.uni[0]
-        fu = (uni - self.uni[0]) / du
+        # direct indexing into the regular grids (np.interp's search is ~10x slower here)
+        fu = (uni - self.uni[0]) * (1.0 / (self.uni[1] - self.uni[0]))
         with np.errstate(invalid="ignore"):
-            ok = np.isfinite(fu) & (fu >= 0) & (fu <= nu - 1)
-        if nb == 1:
+            ok = (fu >= 0) & (fu <= nu - 1)  # False for NaN
+        if nb > 1 or b1 is not None:
+            b1 = np.broadcast_to(np.asarray(b1 if b1 is not None else 1.0, float), uni.shape)
+            fb = (b1 - self.b1[0]) * (1.0 / B1_STEP)
             with np.errstate(invalid="ignore"):
-                ok &= np.abs(b1 - self.b1[0]) < 1e-9
-            fb = np.zeros_like(fu)
-        else:
-            fb = (b1 - self.b1[0]) / B1_STEP
-            with np.errstate(invalid="ignore"):
-                ok &= np.isfinite(fb) & (fb >= 0) & (fb <= nb - 1)
-        fu = np.where(ok, fu, 0.0)
-        fb = np.where(ok, fb, 0.0)
+                ok &= (fb >= 0) & (fb <= nb - 1) if nb > 1 else np.abs(fb) < 1e-7
+        fu[~ok] = 0.0
         iu = np.minimum(fu.astype(np.intp), nu - 2)
-        ib = np.minimum(fb.astype(np.intp), max(nb - 2, 0))
-        wu = fu - iu
-        wb = fb - ib
+        fu -= iu  # the weight of the upper UNI node
         flat = self.log_t1.reshape(-1)
-        k = ib * nu + iu
-        if nb == 1:
-            lt = flat[k] * (1 - wu) + flat[k + 1] * wu
-        else:
-            lt = ((flat[k] * (1 - wu) + flat[k + 1] * wu) * (1 - wb)
-                  + (flat[k + nu] * (1 - wu) + flat[k + nu + 1] * wu) * wb)
-        return np.where(ok, np.exp(lt), np.nan)
+        lo = flat[iu]
+        lo += (flat[iu + 1] - lo) * fu
+        if nb > 1:
+            fb[~ok] = 0.0
+            ib = np.minimum(fb.astype(np.intp), nb - 2)
+            fb -= ib
+            iu += ib * nu
+            lo = flat[iu]
+            lo += (flat[iu + 1] - lo) * fu
+            iu += nu
+            hi = flat[iu]
+            hi += (flat[iu + 1] - hi) * fu
+            lo += (hi - lo) * fb
+        lo[~ok] = np.nan
+        return np.exp(lo, out=lo)

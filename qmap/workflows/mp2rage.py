@@ -23,7 +23,6 @@ from pathlib import Path
 
 import numpy as np
 
-from ..b1 import load_b1_map
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..io.nifti import check_same_grid, image_data, load_image, read_sidecar
@@ -36,7 +35,6 @@ from ..models.mp2rage import (
     mp2rage_signals,
     uni_stderr,
 )
-from ..noise_level import object_mask
 from ..pipeline import (
     CommonOptions,
     RunReport,
@@ -407,6 +405,8 @@ def run_t1_mp2rage(
                     sources=sources, paths=[upath])
     if common.mask == "auto" or common.mask is None:
         if inv_series is not None:
+            from ..noise_level import object_mask
+
             mask = object_mask(inv_series)
             mask_desc = ("auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, "
                          "holes filled)")
@@ -433,6 +433,8 @@ def run_t1_mp2rage(
     b1_map: np.ndarray | None = None
     b1_info: dict = {"b1": None}
     if b1 is not None:
+        from ..b1 import load_b1_map
+
         b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, scale=b1_scale, smooth_fwhm_mm=b1_smooth)
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
