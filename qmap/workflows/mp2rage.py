@@ -368,6 +368,8 @@ def run_t1_mp2rage(
         ``--sigma`` (auto, a value or a noise map) for the inversion images' noise.
     """
     t0 = time.perf_counter()
+    if common.engine != "fast":
+        raise UsageError("--engine lmfit: t1-mp2rage fits nothing (UNI -> T1 is a table lookup); leave --engine out")
     if (inv1 is None) != (inv2 is None):
         raise UsageError("--inv1 and --inv2 go together: give both inversion images, or neither")
     if (inv1_phase is not None and inv1 is None) or (inv2_phase is not None and inv2 is None) or (
