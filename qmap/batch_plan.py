@@ -10,13 +10,17 @@ IRT1      ``inv-<i>``       ``t1-ir``    InversionTime (RepetitionTime)
 VFA       ``flip-<i>``      ``t1-vfa``   FlipAngle, RepetitionTime
 MESE      ``echo-<i>``      ``t2``       EchoTime (EPG model)
 MEGRE     ``echo-<i>``      ``t2star``   EchoTime
+MP2RAGE   ``inv-<i>``       ``t1-mp2rage``  the UNIT1 image, InversionTime, FlipAngle, ...
 ========  ================  ===========  =================================
 
 Files of one suffix are grouped into a series by all their other entities
 (``acq-``, ``run-``, ...). Non-magnitude parts (``part-phase|real|imag``) are
-not fitted. A VFA series uses the ``fmap/*_TB1map`` of its subject/session
-when there is one (the one its sidecar ``IntendedFor`` names, or with the
-same ``acq`` label, when there are several).
+not fitted. An MP2RAGE series is its ``*_UNIT1`` image (the same entities, no
+``inv-``) with the two ``*_inv-<i>_MP2RAGE`` magnitudes when present (then M0
+and standard errors are written too); a UNIT1 alone is fitted from its own
+sidecar. A VFA or MP2RAGE series uses the ``fmap/*_TB1map`` of its
+subject/session when there is one (the one its sidecar ``IntendedFor`` names,
+or with the same ``acq`` label, when there are several).
 
 Outputs of a series go to ``DERIV/sub-<s>[/ses-<t>]/anat/`` with the prefix
 ``sub-<s>[_ses-<t>]_acq-<acq><method>[_<other entities>]``: ``method`` is the
@@ -60,8 +64,13 @@ FIT_KINDS = {
         FitKind("VFA", "flip", "vfa", "t1-vfa", "qmap.workflows.vfa", "run_t1_vfa"),
         FitKind("MESE", "echo", "mese", "t2", "qmap.workflows.t2", "run_t2"),
         FitKind("MEGRE", "echo", "megre", "t2star", "qmap.workflows.decay", "run_t2star"),
+        FitKind("MP2RAGE", "inv", "mp2rage", "t1-mp2rage", "qmap.workflows.mp2rage", "run_t1_mp2rage"),
     )
 }
+#: the combined MP2RAGE image that goes with ``*_inv-<i>_MP2RAGE`` files of the same entities
+UNI_SUFFIX = "UNIT1"
+#: suffixes whose fit uses the session's TB1map
+_B1_CORRECTED = ("VFA", "MP2RAGE")
 
 #: ``part-`` labels that are magnitude images (absent = magnitude)
 _MAGNITUDE_PARTS = (None, "mag")
@@ -115,7 +124,9 @@ class SeriesPlan:
     prefix, out_dir : str
         Output name stem and the (absolute) folder of the outputs.
     b1, b1_scale : str or None
-        The TB1map used by a VFA fit and its scale (``fraction``/``percent``).
+        The TB1map used by a VFA or MP2RAGE fit and its scale (``fraction``/``percent``).
+    uni : str or None
+        MP2RAGE: the UNIT1 image (``inputs`` then holds the inversion images, possibly none).
     error : str or None
         Why the series cannot be fitted as found (reported as a failure).
     notes : list of str
@@ -133,6 +144,7 @@ class SeriesPlan:
     b1_scale: str | None = None
     error: str | None = None
     notes: list = field(default_factory=list)
+    uni: str | None = None
 
     @property
     def kind(self) -> FitKind:
@@ -145,8 +157,8 @@ class SeriesPlan:
 
     @property
     def all_inputs(self) -> list[str]:
-        """Every file the fit reads (series + B1 map), absolute."""
-        return list(self.inputs) + ([self.b1] if self.b1 else [])
+        """Every file the fit reads (series + UNIT1 + B1 map), absolute."""
+        return ([self.uni] if self.uni else []) + list(self.inputs) + ([self.b1] if self.b1 else [])
 
     def fit_description(self) -> str:
         """Short text of the fit chosen, for the plan table."""
@@ -159,6 +171,10 @@ class SeriesPlan:
             return "t1-vfa (nonlinear, no B1 map)"
         if k.suffix == "MESE":
             return "t2 (EPG)"
+        if k.suffix == "MP2RAGE":
+            inv = "with the inversion images" if self.inputs else "UNIT1 only"
+            b1 = f"B1 {Path(self.b1).name}" if self.b1 else "no B1 map"
+            return f"t1-mp2rage ({inv}, {b1})"
         return "t2star (default noise floor)"
 
 
@@ -219,7 +235,7 @@ def _intended_for(meta: dict) -> list[str]:
 
 
 def _choose_b1(candidates: list[Path], series_files: list[Path], acq: str | None, bids: Path) -> tuple[Path | None, str | None]:
-    """The TB1map for a VFA series: (path, None) or (None, reason) when the choice is ambiguous."""
+    """The TB1map for a VFA or MP2RAGE series: (path, None) or (None, reason) when the choice is ambiguous."""
     if not candidates:
         return None, None
     if len(candidates) == 1:
@@ -240,7 +256,7 @@ def _choose_b1(candidates: list[Path], series_files: list[Path], acq: str | None
     if len(same_acq) == 1:
         return same_acq[0], None
     names = ", ".join(c.name for c in pool)
-    return None, (f"several TB1 maps fit this VFA series ({names}); name the right one in its sidecar "
+    return None, (f"several TB1 maps fit this series ({names}); name the right one in its sidecar "
                   f"IntendedFor, or keep one TB1map per session")
 
 
@@ -298,11 +314,19 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
     ignored: list[tuple[str, str]] = []
     for subject, session, folder in sessions:
         groups: dict[tuple, list[tuple[str | None, Path]]] = {}
+        unis: dict[tuple, Path] = {}
         for f in _niftis(folder / "anat"):
             parsed = parse_bids_name(f)
             if parsed is None:
                 continue
             ents_list, suffix = parsed
+            if suffix == UNI_SUFFIX:  # joins the MP2RAGE series of the same entities
+                ents = dict(ents_list)
+                if _matches_session(ents, subject, session) and ents.get("part") in _MAGNITUDE_PARTS:
+                    key = ("MP2RAGE",) + tuple((k, v) for k, v in ents_list if k != "part")
+                    unis[key] = f
+                    groups.setdefault(key, [])
+                continue
             kind = FIT_KINDS.get(suffix)
             if kind is None:
                 continue
@@ -313,16 +337,18 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
             if ents.get("part") not in _MAGNITUDE_PARTS:
                 ignored.append((str(f), f"part-{ents['part']}: only magnitude images are fitted"))
                 continue
-            key = (suffix,) + tuple((k, v) for k, v in ents_list if k != kind.index)
+            key = (suffix,) + tuple((k, v) for k, v in ents_list
+                                    if k != kind.index and not (suffix == "MP2RAGE" and k == "part"))
             groups.setdefault(key, []).append((ents.get(kind.index), f))
         fmap = [f for f in _niftis(folder / "fmap")
                 if (p := parse_bids_name(f)) and p[1] == "TB1map" and _matches_session(dict(p[0]), subject, session)]
         for key, members in groups.items():
-            plans.append(_plan_series(bids, deriv, subject, session, key, members, fmap))
+            plans.append(_plan_series(bids, deriv, subject, session, key, members, fmap, unis.get(key)))
     if not plans:
         raise InputError(
             f"{bids}: no relaxometry series in {len(sessions)} subject/session folders; expected anat/ files named "
-            f"*_inv-<i>_IRT1, *_flip-<i>_VFA, *_echo-<i>_MESE or *_echo-<i>_MEGRE (.nii/.nii.gz)"
+            f"*_inv-<i>_IRT1, *_flip-<i>_VFA, *_echo-<i>_MESE, *_echo-<i>_MEGRE or *_UNIT1 (+ *_inv-<i>_MP2RAGE) "
+            f"(.nii/.nii.gz)"
         )
     plans.sort(key=lambda p: (p.subject, p.session or "", p.prefix, p.label))
     _check_unique(plans)
@@ -330,7 +356,7 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
                      n_sessions=len({(p.subject, p.session) for p in plans}))
 
 
-def _plan_series(bids, deriv, subject, session, key, members, fmap) -> SeriesPlan:
+def _plan_series(bids, deriv, subject, session, key, members, fmap, uni=None) -> SeriesPlan:
     suffix, others = key[0], list(key[1:])
     kind = FIT_KINDS[suffix]
     acq = dict(others).get("acq")
@@ -340,7 +366,7 @@ def _plan_series(bids, deriv, subject, session, key, members, fmap) -> SeriesPla
     numbered = sorted((m for m in members if m[0] is not None), key=lambda m: _index_sort_key(m[0]))
     plain = [m for m in members if m[0] is None]
     files = [f for _, f in numbered] + [f for _, f in plain]
-    label = files[0].name
+    label = files[0].name if files else uni.name
     if numbered:  # the raw name with the volume index as a wildcard: sub-01_acq-fast_echo-*_MEGRE
         stem = label[: -len(".nii.gz")] if label.endswith(".nii.gz") else label[: -len(".nii")]
         label = "_".join(f"{kind.index}-*" if part == f"{kind.index}-{numbered[0][0]}" else part
@@ -348,7 +374,17 @@ def _plan_series(bids, deriv, subject, session, key, members, fmap) -> SeriesPla
     plan = SeriesPlan(subject=subject, session=session, suffix=suffix, label=label,
                       inputs=[str(f) for f in files], prefix=prefix, out_dir=str(out_dir.absolute()))
     labels = [m[0] for m in numbered]
-    if len(set(labels)) != len(labels):
+    if suffix == "MP2RAGE":
+        plan.uni = None if uni is None else str(uni)
+        if uni is None:
+            plan.error = (f"{label}: MP2RAGE inversion images without the combined image; qmap t1-mp2rage needs the "
+                          f"*_UNIT1 image of the same entities beside them")
+        elif files and len(files) != 2:
+            plan.error = (f"{label}: {len(files)} MP2RAGE inversion images; expected two (inv-1 and inv-2) beside "
+                          f"{uni.name}")
+    if plan.error is not None:
+        pass
+    elif len(set(labels)) != len(labels):
         dup = next(v for v in labels if labels.count(v) > 1)
         plan.error = (f"{label}: several files with {kind.index}-{dup}; every volume of a series needs its own "
                       f"{kind.index} index")
@@ -358,8 +394,8 @@ def _plan_series(bids, deriv, subject, session, key, members, fmap) -> SeriesPla
     elif len(plain) > 1:
         plan.error = (f"{plain[0].name} and {plain[1].name}: several files of one series without a "
                       f"{kind.index}- entity; number them with {kind.index}-<index>")
-    if suffix == "VFA" and plan.error is None:
-        b1, why = _choose_b1(fmap, files, acq, bids)
+    if suffix in _B1_CORRECTED and plan.error is None:
+        b1, why = _choose_b1(fmap, files + ([uni] if uni is not None else []), acq, bids)
         if why:
             plan.error = why
         elif b1 is not None:

@@ -24,7 +24,7 @@ from .batch_plan import SeriesPlan
 from .errors import InputError, QmapError
 from .io.writer import existing_outputs, sha256_file
 
-__all__ = ["SeriesResult", "equivalent_argv", "fit_call", "run_series", "series_state"]
+__all__ = ["SeriesResult", "equivalent_argv", "fit_call", "positional", "run_series", "series_state"]
 
 log = logging.getLogger("qmap")
 
@@ -65,7 +65,24 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
         return kwargs, opts
     if suffix == "MESE":
         return {"epg": True}, ["--epg"]
+    if suffix == "MP2RAGE":
+        kwargs, opts = {}, []
+        if plan.inputs:
+            kwargs.update(inv1=plan.inputs[0], inv2=plan.inputs[1])
+            opts += ["--inv1", plan.inputs[0], "--inv2", plan.inputs[1]]
+        if plan.b1:
+            kwargs["b1"] = plan.b1
+            opts += ["--b1", plan.b1]
+            if plan.b1_scale:
+                kwargs["b1_scale"] = plan.b1_scale
+                opts += ["--b1-scale", plan.b1_scale]
+        return kwargs, opts
     return {}, []
+
+
+def positional(plan: SeriesPlan) -> list[str]:
+    """The positional inputs of the fit command: the series files, or MP2RAGE's UNIT1 image."""
+    return [plan.uni] if plan.suffix == "MP2RAGE" else list(plan.inputs)
 
 
 def equivalent_argv(plan: SeriesPlan) -> list[str]:
@@ -75,7 +92,7 @@ def equivalent_argv(plan: SeriesPlan) -> list[str]:
     runs with the same command line and the same input hashes made the same maps.
     """
     _, opts = fit_call(plan)
-    return ["qmap", plan.kind.command, *plan.inputs, *opts, "-o", plan.out_dir, "--prefix", plan.prefix]
+    return ["qmap", plan.kind.command, *positional(plan), *opts, "-o", plan.out_dir, "--prefix", plan.prefix]
 
 
 def series_state(plan: SeriesPlan) -> tuple[str, str]:
@@ -200,7 +217,8 @@ def run_series(plan: SeriesPlan, *, overwrite: bool = False, exclusive_logs: boo
                 common = CommonOptions(out_dir=Path(plan.out_dir), prefix=plan.prefix, n_jobs=1,
                                        overwrite=overwrite or state == "stale", quiet=True,
                                        command_line=equivalent_argv(plan))
-                report = fn(list(plan.inputs), common=common, **kwargs)
+                args = positional(plan)
+                report = fn(args[0] if plan.suffix == "MP2RAGE" else args, common=common, **kwargs)
                 res.written = [Path(p).name for p in report.written]
                 res.status = "fitted"
                 res.replaced = why or None

@@ -15,9 +15,10 @@ def add_parser(sub) -> None:
         "batch",
         help="fit every relaxometry series of a BIDS dataset",
         description="Find the relaxometry series of a BIDS dataset (anat/*_inv-<i>_IRT1, *_flip-<i>_VFA, "
-        "*_echo-<i>_MESE, *_echo-<i>_MEGRE, with fmap/*_TB1map for VFA) per subject and session, and fit them: "
-        "IRT1 -> t1-ir (magnitude), VFA -> t1-vfa (nonlinear, B1-corrected when a TB1map is there), MESE -> t2 "
-        "(EPG), MEGRE -> t2star. Outputs go to DERIV_DIR/sub-<s>[/ses-<t>]/anat/ as "
+        "*_echo-<i>_MESE, *_echo-<i>_MEGRE, *_UNIT1 with *_inv-<i>_MP2RAGE, and fmap/*_TB1map) per subject and "
+        "session, and fit them: IRT1 -> t1-ir (magnitude), VFA -> t1-vfa (nonlinear, B1-corrected when a TB1map is "
+        "there), MESE -> t2 (EPG), MEGRE -> t2star, UNIT1 -> t1-mp2rage (with the inversion images and the TB1map "
+        "when there). Outputs go to DERIV_DIR/sub-<s>[/ses-<t>]/anat/ as "
         "sub-<s>[_ses-<t>]_acq-<acq><method>_*. A failing series does not stop the others (exit code 4 when any "
         "failed). A rerun skips the series whose outputs were made from the same inputs (SHA-256) with the same "
         "options, refits those whose inputs changed, and retries the failed ones.",
