@@ -160,6 +160,7 @@ def fit_t1_mp2rage(
     inv1=None,
     inv2=None,
     sigma=None,
+    b1_se=None,
 ) -> MapSet:
     """T1 and R1 (and with the inversion images M0 and standard errors) from UNI by the lookup.
 
@@ -178,6 +179,9 @@ def fit_t1_mp2rage(
     sigma : float or (...) ndarray, optional
         Noise sd per real/imaginary channel of the inversion images (signal
         units); without it the standard errors are NaN.
+    b1_se : (...) array_like, optional
+        Standard error of ``b1`` (fraction); added to the standard errors to
+        first order (NaN counts as 0).
 
     Returns
     -------
@@ -242,6 +246,8 @@ def fit_t1_mp2rage(
         m0, se = _m0_and_errors(t1g, bg, protocol, np.asarray(inv1).reshape(-1)[good],
                                 np.asarray(inv2).reshape(-1)[good],
                                 None if sigma is None else np.broadcast_to(np.asarray(sigma, float),
+                                                                           shape).reshape(-1)[good],
+                                None if b1_se is None else np.broadcast_to(np.asarray(b1_se, float),
                                                                            shape).reshape(-1)[good])
         est["M0"] = volume(m0["M0"])
         units["M0"] = "a.u."
@@ -255,8 +261,12 @@ def fit_t1_mp2rage(
     return MapSet(est, stderr, units, desc, ("T1",), quality, status.reshape(shape), info)
 
 
-def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma):
-    """M0 by least squares of the magnitudes, and first-order standard errors of T1, R1, M0."""
+def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma, b1_se=None):
+    """M0 by least squares of the magnitudes, and first-order standard errors of T1, R1, M0.
+
+    With ``b1_se`` (standard error of the B1 map) its contribution is added to first order
+    (:func:`qmap.fitting.uncertainty.combine_se`): ``dT1/dB1 = -(dUNI/dB1)/(dUNI/dT1)`` at fixed UNI.
+    """
     b = 1.0 if b1 is None else b1
     f1, f2 = mp2rage_signals(t1, protocol, b)
     a1, a2 = np.abs(inv1).astype(float), np.abs(inv2).astype(float)
@@ -284,11 +294,44 @@ def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma):
         # d|S_k|/dS_k = sign(f_k), so the direct term is f_k/(f1^2 + f2^2)
         g1 = f1 / ff + dm0_dt * dt_ds1
         g2 = f2 / ff + dm0_dt * dt_ds2
-        se = {"T1": se_t1, "R1": se_t1 / t1**2, "M0": sigma * np.sqrt(g1 * g1 + g2 * g2)}
+        se_m0 = sigma * np.sqrt(g1 * g1 + g2 * g2)
+        if b1_se is not None and b1 is not None:
+            from ..fitting.uncertainty import combine_se
+
+            bp, bq = b * (1 + _H), b * (1 - _H)
+            p1, p2 = mp2rage_signals(t1, protocol, bp)
+            q1, q2 = mp2rage_signals(t1, protocol, bq)
+            db = 2 * _H * b
+            du_db = ((p1 * p2) / (p1 * p1 + p2 * p2) - (q1 * q2) / (q1 * q1 + q2 * q2)) / db
+            dm0_db = ((a1 * np.abs(p1) + a2 * np.abs(p2)) / (p1 * p1 + p2 * p2)
+                      - (a1 * np.abs(q1) + a2 * np.abs(q2)) / (q1 * q1 + q2 * q2)) / db
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dt1_db = -du_db / du_dt
+            se_t1 = combine_se(se_t1, dt1_db, b1_se)
+            se_m0 = combine_se(se_m0, dm0_db + dm0_dt * dt1_db, b1_se)
+        se = {"T1": se_t1, "R1": se_t1 / t1**2, "M0": se_m0}
     else:
         nan = np.full(t1.shape, np.nan)
         se = {"T1": nan, "R1": nan, "M0": nan}
     return {"M0": m0, "rmse": rmse}, se
+
+
+def _b1_stderr_path(b1: Path) -> Path | None:
+    """The standard-error map written beside a B1 map by ``qmap b1`` (``X_TB1map`` -> ``X_desc-stderr_TB1map``)."""
+    name = b1.name
+    if "_TB1map.nii" not in name or "_desc-stderr_" in name:
+        return None
+    p = b1.with_name(name.replace("_TB1map.nii", "_desc-stderr_TB1map.nii"))
+    return p if p.is_file() else None
+
+
+def _resampled_stderr(path: Path, shape, affine, *, percent: bool) -> np.ndarray:
+    """A B1 standard-error map on the data grid (trilinear through the affines, as the B1 map)."""
+    from ..io.nifti import resample_to_grid
+
+    img, data = _load_3d(path, "B1 standard error")
+    values = np.where(np.isfinite(data) & (data >= 0), data, 0.0).astype(float) / (100.0 if percent else 1.0)
+    return resample_to_grid(values, np.asarray(img.affine, float), shape, affine, order=1, cval=0.0)
 
 
 def _load_3d(path, what: str, *, allow_complex: bool = False):
@@ -433,6 +476,7 @@ def run_t1_mp2rage(
             notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels of "
                          f"the inversion images")
     b1_map: np.ndarray | None = None
+    b1_se: np.ndarray | None = None
     b1_info: dict = {"b1": None}
     if b1 is not None:
         from ..b1 import load_b1_map
@@ -441,9 +485,15 @@ def run_t1_mp2rage(
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")
+        b1_se_path = _b1_stderr_path(Path(b1))
+        if i1 is not None and b1_se_path is not None:
+            b1_se = _resampled_stderr(b1_se_path, shape, affine, percent=b1_info["b1_scale"] == "percent")
+            extra.append(b1_se_path.absolute())
+            b1_info["b1_stderr"] = str(b1_se_path.absolute())
+            b1_desc += f"; its standard error ({b1_se_path.name}) is propagated into the standard errors"
     else:
         b1_desc = NO_B1_NOTE
-    maps = fit_t1_mp2rage(u, protocol, b1=b1_map, mask=mask, inv1=i1, inv2=i2, sigma=sigma)
+    maps = fit_t1_mp2rage(u, protocol, b1=b1_map, mask=mask, inv1=i1, inv2=i2, sigma=sigma, b1_se=b1_se)
     delays = {k: round(v, 6) for k, v in protocol.delays().items()}
     options = {"inversion_efficiency": protocol.efficiency, "uni_encoding": UNI_ENCODINGS[encoding],
                "b1_correction": b1 is not None, "parameter_sources": sources,

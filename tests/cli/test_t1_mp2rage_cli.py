@@ -163,6 +163,19 @@ def test_inversion_images_give_m0_and_calibrated_stderr(mp2, tmp_path):
                  "--sigma", str(mp2["sigma"])]) == 0
     m0c = np.asarray(nib.load(str(out2 / "mp_M0map.nii.gz")).dataobj)
     np.testing.assert_allclose(m0c[obj], m0[obj], rtol=1e-5)
+    # a standard-error map beside the B1 map (as qmap b1 writes it) is propagated into the standard errors
+    d = tmp_path / "b1dir"
+    d.mkdir()
+    b1img = nib.load(str(p["b1"]))
+    nib.save(b1img, str(d / "s_TB1map.nii.gz"))
+    nib.save(nib.Nifti1Image(np.full(B1_SHAPE, 0.03, np.float32), B1_AFFINE), str(d / "s_desc-stderr_TB1map.nii.gz"))
+    out3 = tmp_path / "inv_b1se"
+    assert main(["t1-mp2rage", str(p["uni_int"]), "--inv1", str(p["inv1"]), "--inv2", str(p["inv2"]),
+                 "--b1", str(d / "s_TB1map.nii.gz"), "-o", str(out3), "--prefix", "mp", "-q"]) == 0
+    se3 = np.asarray(nib.load(str(out3 / "mp_desc-stderr_T1map.nii.gz")).dataobj)[obj]
+    assert np.all(se3 >= se * (1 - 1e-6)) and np.median(se3 / se) > 1.2
+    prov3 = json.loads((out3 / "mp_provenance.json").read_text())
+    assert prov3["options"]["b1_stderr"].endswith("s_desc-stderr_TB1map.nii.gz")
 
 
 def test_command_line_wins_with_a_warning(mp2, tmp_path, capsys):

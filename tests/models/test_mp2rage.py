@@ -158,3 +158,20 @@ def test_simulator_signals_match_pulse_by_pulse():
                     te=0.003, t1=t1, t2star=np.full(4, 0.04), pd=np.full(4, 0.9), b1=b1)
     r1, r2 = _pulses(t1, b1, p)
     np.testing.assert_allclose(s, 0.9 * np.exp(-0.003 / 0.04) * np.stack([r1, r2], -1), rtol=1e-9, atol=1e-12)
+
+
+def test_b1_stderr_is_propagated():
+    """se(T1)^2 = se_noise^2 + (dT1/dB1 se_B1)^2, dT1/dB1 from the lookup itself by central differences."""
+    t1 = np.array([0.8, 1.5, 2.5])
+    b1 = np.array([0.9, 1.0, 1.1])
+    s1, s2 = mp2rage_signals(t1, PROTO, b1, 1000.0)
+    uni = uni_from_signals(s1, s2)
+    se_b1 = np.array([0.02, 0.0, 0.05])
+    base = fit_t1_mp2rage(uni, PROTO, b1=b1, inv1=s1, inv2=s2, sigma=0.3)
+    withb = fit_t1_mp2rage(uni, PROTO, b1=b1, inv1=s1, inv2=s2, sigma=0.3, b1_se=se_b1)
+    lut = Mp2rageLookup(PROTO, b1_range=(0.8, 1.2))
+    d_t1 = (lut.t1(uni, b1 + 0.01) - lut.t1(uni, b1 - 0.01)) / 0.02
+    expect = np.sqrt(base.stderr["T1"] ** 2 + (d_t1 * se_b1) ** 2)
+    np.testing.assert_allclose(withb.stderr["T1"], expect, rtol=0.01)
+    assert withb.stderr["T1"][1] == pytest.approx(base.stderr["T1"][1], rel=1e-6)  # se_B1 = 0
+    assert withb.stderr["T1"][2] > 1.5 * base.stderr["T1"][2]  # 5 % of B1 matters at long T1
