@@ -82,7 +82,7 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
 
 def positional(plan: SeriesPlan) -> list[str]:
     """The positional inputs of the fit command: the series files, or MP2RAGE's UNIT1 image."""
-    return [plan.uni] if plan.suffix == "MP2RAGE" else list(plan.inputs)
+    return [plan.uni or ""] if plan.suffix == "MP2RAGE" else list(plan.inputs)
 
 
 def equivalent_argv(plan: SeriesPlan) -> list[str]:
