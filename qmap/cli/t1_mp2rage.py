@@ -31,9 +31,10 @@ def add_parser(sub) -> None:
     g.add_argument("--inv2", metavar="FILE", help="second inversion image: magnitude or complex NIfTI")
     g.add_argument("--inv1-phase", metavar="FILE", help="phase (radians) of a magnitude --inv1")
     g.add_argument("--inv2-phase", metavar="FILE", help="phase (radians) of a magnitude --inv2")
-    g.add_argument("--sigma", default="auto", metavar="auto|VALUE|NOISEMAP",
-                   help="noise sd of the inversion images per real/imaginary channel: auto (default) from their "
-                        "background; a value in signal units; or a NIfTI noise map")
+    g.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|FILE",
+                   help="noise sd of the inversion images per real/imaginary channel, as for the other commands: "
+                        "auto (default) from their background (or inside the object); local for a smooth noise map; "
+                        "a value in signal units; or a NIfTI noise map")
     q = p.add_argument_group("protocol (default: the BIDS sidecar of UNI, completed from those of --inv1/--inv2)")
     q.add_argument("--ti", metavar="T1,T2", help="inversion times to the k-space-centre excitation, e.g. 700ms,2500ms "
                    "(sidecar InversionTime)")
@@ -55,6 +56,10 @@ def add_parser(sub) -> None:
                    help="units of the B1 map (default: its sidecar Units, else fraction)")
     b.add_argument("--b1-smooth", type=float, default=None, metavar="FWHM_MM",
                    help="Gaussian smoothing of the B1 map before resampling, FWHM in mm (default: none)")
+    b.add_argument("--b1-stderr", default="auto", metavar="auto|none|FILE",
+                   help="standard error of the B1 map, propagated into the standard errors (with --inv1/--inv2): "
+                        "auto (default) uses the desc-stderr map that qmap b1 writes beside its TB1map when present; "
+                        "none switches it off; or a NIfTI map in the B1 map's units")
     add_common(p)
     p.set_defaults(run=run)
 
@@ -78,6 +83,6 @@ def run(args) -> int:
         tr_exc=None if args.tr_exc is None else parse_time(args.tr_exc, key="RepetitionTimeSpoiled",
                                                             what="--tr-exc"),
         shots=args.shots, efficiency=args.inversion_efficiency, b1=args.b1, b1_scale=args.b1_scale,
-        b1_smooth=args.b1_smooth, sigma_spec=args.sigma,
+        b1_smooth=args.b1_smooth, b1_stderr=args.b1_stderr, sigma_spec=args.sigma,
     )
     return finish(report, args)

@@ -178,7 +178,7 @@ def fit_t1_mp2rage(
         used). Needed for M0 and the standard errors.
     sigma : float or (...) ndarray, optional
         Noise sd per real/imaginary channel of the inversion images (signal
-        units); without it the standard errors are NaN.
+        units); without it no standard errors are returned.
     b1_se : (...) array_like, optional
         Standard error of ``b1`` (fraction); added to the standard errors to
         first order (NaN counts as 0).
@@ -253,9 +253,11 @@ def fit_t1_mp2rage(
         units["M0"] = "a.u."
         desc["M0"] = ("apparent M0 (least squares of the two inversion magnitudes on the model signals; includes "
                       "receive sensitivity and T2* decay)")
-        stderr = {k: volume(v) for k, v in se.items()}
+        if sigma is not None:  # without a noise level there is nothing to write
+            stderr = {k: volume(v) for k, v in se.items()}
         quality["rmse"] = volume(m0["rmse"])
     info = {"model": "mp2rage", "parameters": list(est), "noise_floor": "none", "n_fitted": int(idx.size),
+            "stderr": {"convention": "noise"} if stderr else {},
             "t1_lookup_range_s": [float(np.nanmin(lut.limits[:, 0])), float(np.nanmax(lut.limits[:, 1]))],
             "b1_table": [float(lut.b1[0]), float(lut.b1[-1])]}
     return MapSet(est, stderr, units, desc, ("T1",), quality, status.reshape(shape), info)
@@ -316,22 +318,24 @@ def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma, b1_se=None):
     return {"M0": m0, "rmse": rmse}, se
 
 
-def _b1_stderr_path(b1: Path) -> Path | None:
-    """The standard-error map written beside a B1 map by ``qmap b1`` (``X_TB1map`` -> ``X_desc-stderr_TB1map``)."""
-    name = b1.name
-    if "_TB1map.nii" not in name or "_desc-stderr_" in name:
-        return None
-    p = b1.with_name(name.replace("_TB1map.nii", "_desc-stderr_TB1map.nii"))
-    return p if p.is_file() else None
+def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[np.ndarray | None, dict, Path | None]:
+    """The B1 map's standard error on the data grid for ``--b1-stderr auto|none|FILE`` (as ``t1-vfa``)."""
+    from ..b1 import b1_stderr_beside, load_b1_stderr
 
-
-def _resampled_stderr(path: Path, shape, affine, *, percent: bool) -> np.ndarray:
-    """A B1 standard-error map on the data grid (trilinear through the affines, as the B1 map)."""
-    from ..io.nifti import resample_to_grid
-
-    img, data = _load_3d(path, "B1 standard error")
-    values = np.where(np.isfinite(data) & (data >= 0), data, 0.0).astype(float) / (100.0 if percent else 1.0)
-    return resample_to_grid(values, np.asarray(img.affine, float), shape, affine, order=1, cval=0.0)
+    spec = "auto" if spec is None else str(spec)
+    if spec == "none":
+        return None, {"propagated": False, "reason": "--b1-stderr none"}, None
+    path = b1_stderr_beside(b1) if spec == "auto" else Path(spec)
+    if path is None:
+        return None, {"propagated": False, "reason": "no standard-error map beside the B1 map"}, None
+    try:
+        se, info = load_b1_stderr(path, shape=shape, affine=affine, scale=scale)
+    except InputError as exc:
+        if spec != "auto":
+            raise
+        return None, {"propagated": False, "reason": f"the standard-error map beside the B1 map is not usable ({exc})",
+                      "path": str(Path(path).absolute())}, None
+    return se, dict(info, propagated=True, path=str(Path(path).absolute())), Path(path)
 
 
 def _load_3d(path, what: str, *, allow_complex: bool = False):
@@ -382,6 +386,7 @@ def run_t1_mp2rage(
     b1=None,
     b1_scale: str | None = None,
     b1_smooth: float | None = None,
+    b1_stderr: str | None = "auto",
     sigma_spec=None,
 ) -> RunReport:
     """T1, R1 (and with the inversion images M0 and standard errors) maps from an MP2RAGE UNI image.
@@ -405,8 +410,10 @@ def run_t1_mp2rage(
         Inversion efficiency (default :data:`~qmap.models.mp2rage.DEFAULT_EFFICIENCY`).
     b1 : path-like, optional
         Relative B1 map (any grid, resampled through the affines).
-    b1_scale, b1_smooth
-        As for ``t1-vfa``.
+    b1_scale, b1_smooth, b1_stderr
+        As for ``t1-vfa``: units and smoothing of the B1 map, and its standard error
+        (``"auto"``: the ``desc-stderr`` map beside it, when there; ``"none"``; or a file),
+        propagated into the standard errors when the inversion images are given.
     sigma_spec : str, optional
         ``--sigma`` (auto, a value or a noise map) for the inversion images' noise.
     """
@@ -420,8 +427,8 @@ def run_t1_mp2rage(
         raise UsageError("--inv1-phase/--inv2-phase: give the phase of both inversion images, with --inv1/--inv2")
     if sigma_spec not in (None, "auto") and inv1 is None:
         raise UsageError("--sigma is the noise of the inversion images: it needs --inv1/--inv2")
-    if (b1_scale is not None or b1_smooth) and b1 is None:
-        raise UsageError("--b1-scale / --b1-smooth need --b1 B1MAP")
+    if (b1_scale is not None or b1_smooth or b1_stderr not in (None, "auto", "none")) and b1 is None:
+        raise UsageError("--b1-scale / --b1-smooth / --b1-stderr FILE need --b1 B1MAP")
     if efficiency is not None and not (0 < efficiency <= 1):
         raise UsageError(f"--inversion-efficiency {efficiency:g}: expected a number in (0, 1] (1 = perfect)")
     upath = Path(uni).expanduser().absolute()
@@ -465,10 +472,20 @@ def run_t1_mp2rage(
             extra.append(Path(common.mask).expanduser().absolute())
     sigma, noise_info = None, None
     if inv_series is not None:
-        sigma, sinfo = resolve_sigma(sigma_spec, inv_series)
+        try:
+            sigma, sinfo = resolve_sigma(sigma_spec, inv_series)
+        except InputError as exc:
+            if str(sigma_spec or "auto") not in ("auto", "local"):
+                raise
+            log.warning("%s -- M0 is written, the standard errors are not", str(exc).rstrip("."))
+            notes.append("no standard errors: the noise level of the inversion images could not be estimated "
+                         "(give --sigma VALUE)")
+            sigma, sinfo = None, {"value": None, "source": None, "stderr_fallback": str(exc)}
         noise_info = {"mode": "none", "sigma": sinfo["value"], "sigma_source": sinfo["source"],
                       "stderr": "first-order propagation of complex Gaussian noise (sd sigma per channel) on both "
                                 "inversion images through UNI, at the model signals"}
+        if "stderr_fallback" in sinfo:
+            noise_info["stderr"] = f"none written: {sinfo['stderr_fallback']}"
         if "path" in sinfo:
             extra.append(Path(sinfo["path"]))
         if "background_voxels" in sinfo:
@@ -485,12 +502,14 @@ def run_t1_mp2rage(
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")
-        b1_se_path = _b1_stderr_path(Path(b1))
-        if i1 is not None and b1_se_path is not None:
-            b1_se = _resampled_stderr(b1_se_path, shape, affine, percent=b1_info["b1_scale"] == "percent")
-            extra.append(b1_se_path.absolute())
-            b1_info["b1_stderr"] = str(b1_se_path.absolute())
-            b1_desc += f"; its standard error ({b1_se_path.name}) is propagated into the standard errors"
+        if i1 is not None:
+            b1_se, se_info, b1_se_path = _b1_stderr(b1, b1_stderr, shape, affine, b1_info["b1_scale"])
+            b1_info["b1_stderr"] = se_info
+            if b1_se_path is not None:
+                extra.append(b1_se_path.absolute())
+                b1_desc += f"; its standard error ({b1_se_path.name}) is propagated into the standard errors"
+        elif b1_stderr not in (None, "auto", "none"):
+            raise UsageError("--b1-stderr FILE: standard errors need the inversion images (--inv1/--inv2)")
     else:
         b1_desc = NO_B1_NOTE
     maps = fit_t1_mp2rage(u, protocol, b1=b1_map, mask=mask, inv1=i1, inv2=i2, sigma=sigma, b1_se=b1_se)

@@ -175,7 +175,9 @@ def test_inversion_images_give_m0_and_calibrated_stderr(mp2, tmp_path):
     se3 = np.asarray(nib.load(str(out3 / "mp_desc-stderr_T1map.nii.gz")).dataobj)[obj]
     assert np.all(se3 >= se * (1 - 1e-6)) and np.median(se3 / se) > 1.2
     prov3 = json.loads((out3 / "mp_provenance.json").read_text())
-    assert prov3["options"]["b1_stderr"].endswith("s_desc-stderr_TB1map.nii.gz")
+    assert prov3["options"]["b1_stderr"]["propagated"] and prov3["options"]["b1_stderr"]["path"].endswith(
+        "s_desc-stderr_TB1map.nii.gz")
+    assert prov3["outputs"]["mp_desc-stderr_T1map.nii.gz"]["convention"] == "noise"
 
 
 def test_command_line_wins_with_a_warning(mp2, tmp_path, capsys):
