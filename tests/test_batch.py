@@ -33,8 +33,8 @@ import pytest
 
 from qmap import __version__
 from qmap.batch import run_batch
-from qmap.batch_plan import discover, parse_bids_name
-from qmap.batch_series import equivalent_argv
+from qmap.batch.plan import discover, parse_bids_name
+from qmap.batch.series import equivalent_argv
 from qmap.cli import get_parser, main
 from qmap.fitting.noise_floor import DEFAULT_MODE
 from qmap.io.writer import sha256_file

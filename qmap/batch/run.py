@@ -1,7 +1,7 @@
 """``qmap batch``: fit every relaxometry series of a BIDS dataset into a derivatives folder.
 
-The plan (:mod:`qmap.batch_plan`) lists the series; each is one unit of work
-(:func:`qmap.batch_series.run_series`), run in this process (``n_jobs=1``), in
+The plan (:mod:`qmap.batch.plan`) lists the series; each is one unit of work
+(:func:`qmap.batch.series.run_series`), run in this process (``n_jobs=1``), in
 local worker processes (joblib's loky backend, one single-threaded fit per
 process), or on a Dask distributed cluster (``scheduler=``; workers may be on
 other machines: they get absolute paths and need nothing from this process's
@@ -24,10 +24,10 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from . import __version__
-from .batch_plan import BatchPlan, SeriesPlan, discover
-from .batch_series import SeriesResult, run_series, series_state
-from .errors import OutputError, UsageError
+from .. import __version__
+from ..errors import OutputError, UsageError
+from .plan import BatchPlan, SeriesPlan, discover
+from .series import SeriesResult, run_series, series_state
 
 __all__ = ["BIDS_VERSION", "BatchReport", "dataset_description", "run_batch"]
 
@@ -222,7 +222,7 @@ def _remove_empty(created: list[Path]) -> None:
 
 
 def _run_local(todo, *, n_jobs, overwrite, progress):
-    from .engine import resolve_jobs
+    from ..engine import resolve_jobs
 
     jobs = min(resolve_jobs(n_jobs), len(todo))
     if jobs <= 1:

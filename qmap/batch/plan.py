@@ -36,8 +36,8 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .errors import InputError, UsageError
-from .io.nifti import read_sidecar
+from ..errors import InputError, UsageError
+from ..io.nifti import read_sidecar
 
 __all__ = ["FIT_KINDS", "BatchPlan", "FitKind", "SeriesPlan", "discover", "parse_bids_name"]
 

@@ -2,7 +2,7 @@
 
 :func:`run_series` is the unit of work shipped to local worker processes or
 to Dask workers (possibly on other machines): it takes a plain
-:class:`~qmap.batch_plan.SeriesPlan` with absolute paths, never raises for a
+:class:`~qmap.batch.plan.SeriesPlan` with absolute paths, never raises for a
 failing series (the failure and its reason are the result), and fits with one
 thread so that many series can run side by side.
 """
@@ -19,10 +19,10 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from . import __version__
-from .batch_plan import SeriesPlan
-from .errors import InputError, QmapError
-from .io.writer import existing_outputs, sha256_file
+from .. import __version__
+from ..errors import InputError, QmapError
+from ..io.writer import existing_outputs, sha256_file
+from .plan import SeriesPlan
 
 __all__ = ["SeriesResult", "equivalent_argv", "fit_call", "positional", "run_series", "series_state"]
 
@@ -200,7 +200,7 @@ def run_series(plan: SeriesPlan, *, overwrite: bool = False, exclusive_logs: boo
     -------
     SeriesResult
     """
-    from .pipeline import CommonOptions
+    from ..pipeline import CommonOptions
 
     t0 = time.perf_counter()
     res = SeriesResult(key=plan.key, status="failed")
