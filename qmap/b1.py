@@ -35,19 +35,16 @@ resamples it onto a data grid through the two affines, for B1 correction.
 
 from __future__ import annotations
 
-import logging
 from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError, UsageError
+from .errors import InputError, UsageError, warn
 from .fitting import status as st
 from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
 
 __all__ = ["B1_METHODS", "B1_SCALES", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
            "dam_b1", "load_b1_map", "load_b1_stderr"]
-
-log = logging.getLogger("qmap")
 
 B1_METHODS = ("afi", "dam")
 B1_SCALES = ("fraction", "percent")
@@ -407,7 +404,7 @@ def _b1_scale(path: Path, scale: str | None) -> tuple[str, str]:
         if scale not in B1_SCALES:
             raise UsageError(f"--b1-scale {scale!r}: expected fraction or percent")
         if side is not None and side != scale:
-            log.warning("--b1-scale %s differs from the B1 sidecar Units %r; using --b1-scale", scale, units)
+            warn(f"--b1-scale {scale} differs from the B1 sidecar Units {units!r}; using --b1-scale")
         return scale, "command line"
     if side is not None:
         return side, f"sidecar Units {units!r}"

@@ -6,7 +6,6 @@ series key, which model, which per-voxel inputs) lives in :mod:`qmap.workflows`.
 
 from __future__ import annotations
 
-import logging
 import re
 import sys
 import time
@@ -27,8 +26,6 @@ from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place
 from .noise_level import background_sigma, object_mask
 
 __all__ = ["CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "sigma_for_stderr", "write_run"]
-
-log = logging.getLogger("qmap")
 
 
 @dataclass

@@ -2,8 +2,10 @@
 
 import nibabel as nib
 import numpy as np
+import pytest
 
 from qmap.cli import main
+from qmap.errors import QmapWarning
 from qmap.io.series import load_series
 from tests.conftest import decay_phantom, write_nifti
 
@@ -27,8 +29,10 @@ def test_lazy_series_reads_slabs_in_sorted_order(tmp_path):
     data, te, *_ = decay_phantom(shape=(8, 8, 5), sigma=0)
     order = [3, 0, 7, 1, 2, 6, 4, 5]
     path = write_nifti(tmp_path / "s.nii", data[..., order], sidecar={"EchoTime": te[order].tolist()})
-    eager = load_series([path], key="EchoTime", option="--te")
-    lazy = load_series([path], key="EchoTime", option="--te", max_bytes=100)
+    with pytest.warns(QmapWarning, match="sorted them"):
+        eager = load_series([path], key="EchoTime", option="--te")
+    with pytest.warns(QmapWarning, match="sorted them"):
+        lazy = load_series([path], key="EchoTime", option="--te", max_bytes=100)
     assert lazy.lazy and not eager.lazy
     np.testing.assert_array_equal(lazy.acquisition["EchoTime"], te)
     slabs = lazy.slabs(100)

@@ -259,7 +259,7 @@ def _run_dask(todo, *, client, overwrite, progress):
     try:
         with client.as_current():
             for p in todo:
-                fut = client.submit(run_series, p, overwrite=overwrite, exclusive_logs=False, pure=False)
+                fut = client.submit(run_series, p, overwrite=overwrite, pure=False)
                 futures[fut] = p
             for fut in as_completed(list(futures)):
                 p = futures[fut]

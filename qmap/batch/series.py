@@ -11,22 +11,17 @@ from __future__ import annotations
 
 import importlib
 import json
-import logging
-import threading
 import time
 import traceback
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from .. import __version__
-from ..errors import InputError, QmapError
+from ..errors import InputError, QmapError, collecting_warnings
 from ..io.writer import existing_outputs, sha256_file
 from .plan import SeriesPlan
 
 __all__ = ["SeriesResult", "equivalent_argv", "fit_call", "positional", "run_series", "series_state"]
-
-log = logging.getLogger("qmap")
 
 
 @dataclass
@@ -133,43 +128,6 @@ def series_state(plan: SeriesPlan) -> tuple[str, str]:
     return "current", ""
 
 
-class _Capture(logging.Handler):
-    """Collects the warnings logged by the current thread."""
-
-    def __init__(self):
-        super().__init__(logging.WARNING)
-        self.thread = threading.get_ident()
-        self.messages: list[str] = []
-
-    def emit(self, record):
-        if record.thread == self.thread:
-            self.messages.append(record.getMessage())
-
-
-@contextmanager
-def _captured_warnings(exclusive: bool):
-    """Collect qmap's warnings during one series (shown in the batch summary, not mixed into progress).
-
-    ``exclusive`` also silences the other handlers meanwhile; only safe when
-    one series runs per process (in-process and local worker processes).
-    """
-    cap = _Capture()
-    saved = (list(log.handlers), log.propagate)
-    if exclusive:
-        log.handlers[:] = [cap]
-        log.propagate = False
-    else:
-        log.addHandler(cap)
-    try:
-        yield cap.messages
-    finally:
-        if exclusive:
-            log.handlers[:] = saved[0]
-            log.propagate = saved[1]
-        else:
-            log.removeHandler(cap)
-
-
 def _workflow(plan: SeriesPlan):
     kind = plan.kind
     try:
@@ -184,7 +142,7 @@ def _workflow(plan: SeriesPlan):
                      f"available in this installation); update qmap")
 
 
-def run_series(plan: SeriesPlan, *, overwrite: bool = False, exclusive_logs: bool = True) -> SeriesResult:
+def run_series(plan: SeriesPlan, *, overwrite: bool = False) -> SeriesResult:
     """Skip, fit or fail one series; never raises for a failure of the series itself.
 
     Parameters
@@ -192,9 +150,6 @@ def run_series(plan: SeriesPlan, *, overwrite: bool = False, exclusive_logs: boo
     plan : SeriesPlan
     overwrite : bool
         Fit even when the outputs are up to date (and replace them).
-    exclusive_logs : bool
-        Silence qmap's other log handlers while collecting the warnings
-        (False on threaded workers, e.g. Dask's).
 
     Returns
     -------
@@ -204,7 +159,7 @@ def run_series(plan: SeriesPlan, *, overwrite: bool = False, exclusive_logs: boo
 
     t0 = time.perf_counter()
     res = SeriesResult(key=plan.key, status="failed")
-    with _captured_warnings(exclusive_logs) as warnings:
+    with collecting_warnings(emit=False) as warnings:
         try:
             if plan.error:
                 raise InputError(plan.error)

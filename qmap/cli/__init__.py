@@ -11,15 +11,15 @@ from __future__ import annotations
 
 import argparse
 import importlib
-import logging
 import os
 import signal
 import sys
 import threading
 import traceback
+import warnings
 
 from .. import __version__
-from ..errors import QmapError
+from ..errors import QmapError, QmapWarning
 
 __all__ = ["get_parser", "main"]
 
@@ -71,9 +71,12 @@ def _usage_error(line: str) -> int:
     return 2
 
 
-class _OneLine(logging.Formatter):
-    def format(self, record):
-        return f"qmap: {record.levelname.lower()}: {record.getMessage()}"
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """:func:`warnings.showwarning` for the command line: a qmap warning is one line on stderr."""
+    if issubclass(category, QmapWarning):
+        sys.stderr.write(f"qmap: warning: {' '.join(str(message).split())}\n")
+    else:
+        sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
 
 
 def _modules(only: str | None = None):
@@ -110,12 +113,13 @@ def _commits() -> int:
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     argv = list(sys.argv[1:] if argv is None else argv)
-    handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(_OneLine())
-    log = logging.getLogger("qmap")
-    log.handlers[:] = [handler]
-    log.setLevel(logging.INFO)
-    log.propagate = False
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", QmapWarning)  # each one, as it happens, whatever the caller's filters
+        warnings.showwarning = _show_warning
+        return _main(argv)
+
+
+def _main(argv: list[str]) -> int:
     commits_before = _commits()
     previous_handler = _catch_sigterm()
     try:

@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-import logging
 import sys
 
 from ..batch import run_batch
-
-log = logging.getLogger("qmap")
+from ..errors import warn
 
 
 def add_parser(sub) -> None:
@@ -42,7 +40,7 @@ def add_parser(sub) -> None:
 
 def run(args) -> int:
     if args.scheduler and args.jobs is not None and not args.dry_run:
-        log.warning("-j is ignored with --scheduler (the cluster's workers do the work)")
+        warn("-j is ignored with --scheduler (the cluster's workers do the work)")
     try:
         report = run_batch(args.bids_dir, args.out_dir, dry_run=args.dry_run, scheduler=args.scheduler,
                            n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet)

@@ -3,15 +3,12 @@
 from __future__ import annotations
 
 import argparse
-import logging
 
 from ..engine import DEFAULT_CHUNK
-from ..errors import UsageError
+from ..errors import UsageError, warn
 from ..fitting.noise_floor import DEFAULT_MODE, MODES
 from ..pipeline import CommonOptions
 from ..units import parse_angle_list, parse_time_list
-
-log = logging.getLogger("qmap")
 
 __all__ = ["add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
 
@@ -65,7 +62,7 @@ def common_from_args(args) -> CommonOptions:
     if args.chunk_size < 1:
         raise UsageError("--chunk-size must be a positive number of voxels")
     if args.scheduler and args.jobs is not None:
-        log.warning("-j is ignored with --scheduler (the cluster's workers do the work)")
+        warn("-j is ignored with --scheduler (the cluster's workers do the work)")
     return CommonOptions(
         out_dir=args.out_dir, prefix=args.prefix, mask=args.mask, n_jobs=args.jobs, scheduler=args.scheduler,
         overwrite=args.overwrite, units=args.units, quiet=args.quiet, preview=args.preview, engine=args.engine,

@@ -2,19 +2,16 @@
 
 from __future__ import annotations
 
-import logging
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, warn
 from ..units import check_angles, check_times
 from .nifti import check_same_grid, image_data, load_image, read_sidecar
 
 __all__ = ["Series", "load_series", "resolve_parameter"]
-
-log = logging.getLogger("qmap")
 
 #: Relative difference above which a command-line value and a sidecar value
 #: count as disagreeing (sidecars round to microseconds).
@@ -236,10 +233,8 @@ def resolve_parameter(
         if sidecar is not None:
             ref = np.broadcast_to(sidecar, value.shape)
             if not np.allclose(value, ref, rtol=AGREE_RTOL, atol=1e-9):
-                log.warning(
-                    "%s %s differs from the sidecar %s %s; using the command line",
-                    option, _fmt(value, key), key, _fmt(ref, key),
-                )
+                warn(f"{option} {_fmt(value, key)} differs from the sidecar {key} {_fmt(ref, key)}; "
+                     "using the command line")
     elif sidecar is not None:
         value = sidecar if n is None or sidecar.size == n else np.broadcast_to(sidecar, (n,)).copy()
         src = "sidecar"
@@ -338,7 +333,7 @@ def load_series(
         )
     if sort and np.any(np.diff(vals) < 0):
         order = np.argsort(vals, kind="stable")
-        log.warning("volumes were not in increasing %s order; sorted them (%s)", key, _fmt(vals[order], key))
+        warn(f"volumes were not in increasing {key} order; sorted them ({_fmt(vals[order], key)})")
         vals = vals[order]
         acquisition[key] = vals
     else:

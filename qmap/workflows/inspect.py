@@ -24,19 +24,16 @@ What a workflow must record for its fits to be inspectable
 
 from __future__ import annotations
 
-import logging
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, UsageError
+from ..errors import InputError, UsageError, warn
 from ..io.nifti import load_image, read_sidecar
 from ..io.writer import AtomicWriter, sha256_file
 
 __all__ = ["MODELS", "ModelSpec", "VoxelReport", "find_prefixes", "inspect_voxel", "parse_voxel"]
-
-log = logging.getLogger("qmap")
 
 
 @dataclass
@@ -139,7 +136,7 @@ def _series_paths(prov: dict, n_volumes: int) -> list[Path]:
         total += int(shape[3]) if len(shape) > 3 else 1
         paths.append(p)
         if sha256_file(p) != entry.get("sha256"):
-            log.warning("%s has changed since the fit (SHA-256 differs); the plot shows the file as it is now", p)
+            warn(f"{p} has changed since the fit (SHA-256 differs); the plot shows the file as it is now")
         if total >= n_volumes:
             break
     if total != n_volumes:

@@ -22,13 +22,12 @@ Signal types
 
 from __future__ import annotations
 
-import logging
 import time
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, UsageError
+from ..errors import InputError, UsageError, warn
 from ..io.nifti import check_same_grid, image_data, load_image
 from ..io.series import Series, load_series
 from ..maps import MapSet, fit_volume
@@ -36,8 +35,6 @@ from ..models.ir import SIGNALS, InversionRecovery
 from ..pipeline import CommonOptions, RunReport, run_fit
 
 __all__ = ["fit_t1_ir", "phase_correct", "run_t1_ir"]
-
-log = logging.getLogger("qmap")
 
 EQUATION = "S = a + b exp(-TI/T1); M0 = a, InversionEfficiency = -b/a - 1"
 LOOK_LOCKER = "T1 = T1* (B/A - 1) for S = A - B exp(-TI/T1*) (Deichmann & Haase, J Magn Reson 1992;96:608)"
@@ -104,8 +101,8 @@ def _sort_by_ti(series: Series) -> None:
     ti = np.asarray(series.acquisition["InversionTime"], float)
     if np.any(np.diff(ti) < 0):
         order = np.argsort(ti, kind="stable")
-        log.warning("volumes were not in increasing InversionTime order; sorted them (%s)",
-                    ",".join(f"{v * 1e3:g}" for v in ti[order]) + " ms")
+        warn("volumes were not in increasing InversionTime order; sorted them ("
+             + ",".join(f"{v * 1e3:g}" for v in ti[order]) + " ms)")
         series.select_volumes(order)
         series.acquisition["InversionTime"] = ti[order]
 

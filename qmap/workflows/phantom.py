@@ -9,7 +9,6 @@ the outputs are written atomically.
 
 from __future__ import annotations
 
-import logging
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -17,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from .. import __version__
-from ..errors import InputError, OutputExistsError, UsageError
+from ..errors import InputError, OutputExistsError, UsageError, warn
 from ..io.nifti import image_data, load_image
 from ..qa.compose import MapView, write_outputs
 from ..qa.history import find_trends, merge_session, read_history
@@ -31,8 +30,6 @@ from ..qa.session import session_info
 from ..qa.stats import ERROR_BASIS, RoiResult, roi_statistics
 
 __all__ = ["FIXED_OUTPUTS", "PhantomReport", "run_phantom"]
-
-log = logging.getLogger("qmap")
 
 #: Files every run writes into the output folder.
 FIXED_OUTPUTS = ("phantom_results.csv", "phantom_results.json", "phantom_report.html")
@@ -72,7 +69,7 @@ class PhantomReport:
 
     @property
     def exit_code(self) -> int:
-        """0 when every ROI is within tolerance, 3 otherwise (INTERFACE.md)."""
+        """0 when every ROI is within tolerance, 3 otherwise (the documented exit codes)."""
         return 0 if self.passed else 3
 
     def summary(self) -> str:
@@ -285,7 +282,7 @@ def run_phantom(
     history_rows, trends = (_update_history(history, old_history, rows, session, entries, notes)
                             if history is not None else (None, {}))
     for w in notes:
-        log.warning(w)
+        warn(w)
 
     settings = {
         "temperature_C": temperature, "tolerance_pct": float(tolerance), "erode_voxels": int(erode),
