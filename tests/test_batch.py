@@ -1,4 +1,4 @@
-"""`qmap batch` over a small synthetic BIDS dataset (INTERFACE.md, section batch; issue 8).
+"""`qmap batch` over a small synthetic BIDS dataset (README, section batch; issue 8).
 
 The dataset: 2 subjects x 2 sessions of invented 48x48x3 scans (a disc of
 tissue in a noise-only background: the automatic noise estimate of the

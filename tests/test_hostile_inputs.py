@@ -1,6 +1,6 @@
 """Hostile inputs for every command: refuse cleanly, or proceed and say so (issue 10).
 
-Every refused case must give (INTERFACE.md, "Exit codes"): exit code 2, exactly
+Every refused case must give (README, "Exit codes"): exit code 2, exactly
 one line on stderr naming the problem and the fix, no traceback, and no trace in
 the file system -- a fresh output folder is not created, and a folder holding a
 previous run's outputs (replaced with ``--overwrite``) is byte-identical
@@ -1204,7 +1204,7 @@ def test_dam_images_out_of_order_are_sorted(tmp_path, capsys):
 
 def test_vfa_b1_map_covering_part_of_the_data(tmp_path, capsys):
     """A B1 map reaching only part of the series: exit 0; voxels beyond its field of view get status 6
-    (INTERFACE.md: B1 maps are resampled; outside -> documented status), the rest are fitted."""
+    (README: B1 maps are resampled; outside -> documented status), the rest are fitted."""
     x, _, obj = _disc()
     shifted = AFFINE.copy()
     shifted[0, 3] = 40.0  # the B1 grid starts 20 voxels (40 mm) along x; voxel centres at x < 19.5 are outside
@@ -1228,7 +1228,7 @@ def test_vfa_b1_map_covering_part_of_the_data(tmp_path, capsys):
 
 def test_batch_isolates_a_corrupt_series(tmp_path, phantom, capsys):
     """batch: a corrupt series fails alone (exit 4, listed with its reason); the good one is complete and the
-    failed one leaves no file behind (INTERFACE.md, batch semantics)."""
+    failed one leaves no file behind (README, batch semantics)."""
     data, *_ = phantom
     bids = _bids(tmp_path, data=data, corrupt_mese=True)
     before = snapshot(bids)

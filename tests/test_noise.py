@@ -2,7 +2,7 @@
 
 Every check compares against something outside qmap: scipy.stats distributions
 (rice, ncx2, chi) and their numerical integration, published closed forms and
-worked values (REFERENCES.md, Noise section), or seeded Monte-Carlo
+worked values (Rice 1944; Gudbjartsson & Patz 1995), or seeded Monte-Carlo
 simulations of complex Gaussian noise.
 """
 
@@ -63,7 +63,7 @@ def test_rician_mean_matches_scipy_rice_over_snr_range():
 
 
 def test_rician_mean_published_check_values():
-    # REFERENCES.md (Noise): nu = sigma -> 1.548572 sigma, nu = 3 sigma ->
+    # Rician mean (Rice 1944): nu = sigma -> 1.548572 sigma, nu = 3 sigma ->
     # 3.172577 sigma (scipy.stats.rice cross-check values); nu = 0 -> Rayleigh
     # mean sigma sqrt(pi/2) = 1.253314 sigma (Gudbjartsson & Patz 1995).
     sigma = 0.7
@@ -100,7 +100,7 @@ def test_rician_mean_is_even_and_gradient_odd():
 def test_asymptotic_series_agrees_with_exact_form_at_switch_over(coils):
     # The exact forms (Bessel i0e/i1e for one coil, Kummer 1F1 otherwise) are
     # checked against scipy.stats elsewhere; here the series that replaces
-    # them at high SNR must agree to 1e-10 (brief; DESIGN.md asked < 5e-11)
+    # them at high SNR must agree to 1e-10
     # from the switch-over point up.
     c, d, t_switch = noise._series(coils)
     sigma = 1.0
@@ -250,7 +250,7 @@ def _noisy_magnitude(rng, amplitude, sigma):
 def test_simulated_background_is_rayleigh():
     # Sanity check of the simulation used below: background mean
     # sigma sqrt(pi/2) = 1.253314 sigma and sd sigma sqrt(2 - pi/2) =
-    # 0.655136 sigma (Gudbjartsson & Patz 1995; REFERENCES.md).
+    # 0.655136 sigma (Gudbjartsson & Patz, Magn Reson Med 1995;34:910).
     rng = np.random.default_rng(34)
     sigma = 4.0
     bg = _noisy_magnitude(rng, np.zeros(200_000), sigma)

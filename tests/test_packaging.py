@@ -19,3 +19,16 @@ def test_sample_data_is_mapped_into_the_package():
     conf = tomllib.loads((ROOT / "pyproject.toml").read_text())
     assert conf["tool"]["setuptools"]["package-dir"]["qmap.sample_data"] == "sample_data"
     assert (ROOT / "sample_data" / "README.md").exists()
+
+
+def test_nothing_cites_documents_outside_the_repository():
+    # the project is self-contained: its code, tests and docs cite published sources, never the planning notes
+    # kept outside the repository (names split so that this file does not match itself)
+    names = ["INTERFACE" + ".md", "REFERENCES" + ".md", "DESIGN" + ".md", "ARCH" + ".md", "../" + "shared"]
+    hits = []
+    for p in sorted(ROOT.rglob("*")):
+        if p.suffix not in (".py", ".md", ".toml", ".txt", ".cfg", ".json") or ".git" in p.parts:
+            continue
+        text = p.read_text(encoding="utf-8", errors="replace")
+        hits += [f"{p.relative_to(ROOT)}: {n}" for n in names if n in text]
+    assert not hits, hits

@@ -62,7 +62,7 @@ def test_mese_with_perfect_refocusing_is_exponential():
 
 # ----------------------------------------------------------------------------- noise
 def test_rician_noise_moments():
-    # Rice 1944 / scipy.stats.rice: E|nu + noise| at nu = sigma is 1.548572 sigma (REFERENCES.md check value)
+    # Rice 1944 / scipy.stats.rice: E|nu + noise| at nu = sigma is 1.548572 sigma (scipy.stats.rice(1).mean())
     rng = np.random.default_rng(7)
     m = signals.magnitude_noise(np.full(200_000, 2.0), 2.0, rng)
     assert m.mean() == pytest.approx(1.548572 * 2.0, rel=0.005)

@@ -1,4 +1,4 @@
-"""Time and angle parsing (INTERFACE.md: seconds internally, explicit units accepted, bare ms rejected)."""
+"""Time and angle parsing (README: seconds internally, explicit units accepted, bare ms rejected)."""
 
 import numpy as np
 import pytest

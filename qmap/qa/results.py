@@ -8,7 +8,7 @@ import math
 
 __all__ = ["CSV_COLUMNS", "fmt", "results_csv"]
 
-#: Columns of phantom_results.csv, in this order (INTERFACE.md).
+#: Columns of phantom_results.csv, in this order (the documented file layout, README).
 CSV_COLUMNS = ["label", "name", "parameter", "unit", "reference", "mean", "median", "sd", "n_voxels", "error_pct",
                "pass"]
 

@@ -1,4 +1,4 @@
-"""`qmap t2` end to end through the command line (INTERFACE.md contract, issue 6).
+"""`qmap t2` end to end through the command line (the README's contract, issue 6).
 
 The series are CPMG trains from the independent isochromat simulation
 (tests/reference/isochromat.py) with Rician noise.

@@ -1,4 +1,4 @@
-"""`qmap t2star` end to end through the command line (INTERFACE.md contract)."""
+"""`qmap t2star` end to end through the command line (the README's contract)."""
 
 import json
 

@@ -98,7 +98,7 @@ def test_derivatives_match_finite_differences_including_the_continuation_past_18
 
 
 def test_chunking_does_not_change_results():
-    # element-wise arithmetic per voxel (ARCH.md): identical bits for any block / chunk size
+    # element-wise arithmetic per voxel (DEVELOPERS.md, determinism): identical bits for any block / chunk size
     rng = np.random.default_rng(5)
     t2, c = rng.uniform(0.02, 0.2, 5000), rng.uniform(-1.1, -0.3, 5000)
     whole = cpmg_cos(t2, c, esp=ESP, n_echoes=N_ECHOES, grad=True)

@@ -2,7 +2,7 @@
 
 The reference is ``tests/reference/bloch.py``: scipy ``solve_ivp`` on the Bloch
 equations (rotating frame, on resonance) with finite rectangular RF blocks; it
-shares no code with qmap. Worked values from the project's reference list (REFERENCES.md) are
+shares no code with qmap. Worked values from the papers cited beside each check are
 checked as transcribed AND re-derived here from the published formula.
 
 Finite-pulse error budget: the closed forms assume instantaneous pulses. With
@@ -72,8 +72,8 @@ def test_ir_null_point_is_t1_ln2() -> None:
 
 
 def test_ir_finite_tr_keeps_three_parameter_form() -> None:
-    # With a finite TR the signal is still a + b exp(-TI/T1) (REFERENCES.md,
-    # general IR form). Derivation for this sequence (crusher after the
+    # With a finite TR the signal is still a + b exp(-TI/T1) (common
+    # practice: the three-parameter IR form). Derivation for this sequence (crusher after the
     # inversion, readout leaves Mz = 0): a = M0 (1 + k exp(-TR/T1)),
     # b = -(1 + k) M0. Check the Bloch steady state against it, and check that
     # qmap's TR >> T1 form differs from it by exactly the constant k exp(-TR/T1).
@@ -100,7 +100,7 @@ def _spgr_formula(fa_deg: float, tr: float, t1: float) -> float:
 
 
 def test_spgr_worked_values() -> None:
-    # REFERENCES.md worked values (Ernst & Anderson 1966; Bernstein et al. 2004):
+    # Worked values (Ernst & Anderson 1966; Bernstein et al. 2004, spoiled gradient echo):
     # TR 15 ms, T1 1 s -> Ernst angle 9.8991 deg, S(3)/M0 = 0.047985,
     # S(15)/M0 = 0.079524. Transcribed values, so also re-derived here.
     tr, t1 = 0.015, 1.0
@@ -164,7 +164,7 @@ def test_spgr_b1_scales_the_angle(b1: float) -> None:
 # ---------------------------------------------------------------- actual flip-angle imaging
 def test_afi_worked_value() -> None:
     # Yarnykh, Magn Reson Med 2007;57:192: r = (1 + n cos a)/(n + cos a) for
-    # TR << T1; a = 60 deg, n = 5 -> r = 0.636364 (REFERENCES.md, transcribed;
+    # TR << T1; a = 60 deg, n = 5 -> r = 0.636364 (transcribed;
     # re-derived: (1 + 5/2)/(5 + 1/2) = 7/11).
     assert 7.0 / 11.0 == pytest.approx(0.636364, abs=5e-7)
     r = float(afi_ratio(60.0, 5.0))

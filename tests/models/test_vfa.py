@@ -155,7 +155,7 @@ def test_unweighted_regression_is_less_precise():
 
 
 def test_ernst_angle_and_optimal_pair():
-    # Ernst angle arccos(E1): TR 15 ms, T1 1 s -> 9.8991 deg (REFERENCES.md worked value)
+    # Ernst angle arccos(E1): TR 15 ms, T1 1 s -> 9.8991 deg (Ernst & Anderson 1966: cos a_E = exp(-TR/T1))
     assert float(ernst_angle(TR, 1.0)) == pytest.approx(9.8991, abs=5e-5)
     for tr, t1 in [(0.015, 1.0), (0.005, 0.3), (0.03, 2.0)]:
         lo, hi = optimal_angle_pair(tr, t1)

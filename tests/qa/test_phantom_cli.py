@@ -1,4 +1,4 @@
-"""``qmap phantom`` end to end through the command line (INTERFACE.md: phantom, exit codes)."""
+"""``qmap phantom`` end to end through the command line (README: phantom QA, exit codes)."""
 
 import csv
 import json
