@@ -17,13 +17,12 @@ B1 map, 9 UNI outside the range the lookup can invert at that voxel's B1
 
 from __future__ import annotations
 
-import logging
 import time
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, UsageError
+from ..errors import InputError, UsageError, warn
 from ..fitting import status as st
 from ..io.nifti import check_same_grid, image_data, load_image, read_sidecar
 from ..io.series import Series, resolve_parameter
@@ -46,8 +45,6 @@ from ..pipeline import (
 )
 
 __all__ = ["B1_TABLE_RANGE", "UNI_ENCODINGS", "decode_uni", "fit_t1_mp2rage", "run_t1_mp2rage"]
-
-log = logging.getLogger("qmap")
 
 #: relative B1 values the lookup table may cover; voxels outside get status 9
 B1_TABLE_RANGE = (0.2, 3.0)
@@ -138,8 +135,7 @@ def resolve_protocol(sidecar: dict, where: str, *, ti=None, fa=None, tr_prep=Non
     if shots is not None:
         n, sources["NumberShots"] = int(shots), "command line"
         if side_shots is not None and int(side_shots[0]) != n:
-            log.warning("--shots %d differs from the sidecar NumberShots %d; using the command line", n,
-                        int(side_shots[0]))
+            warn(f"--shots {n} differs from the sidecar NumberShots {int(side_shots[0])}; using the command line")
     elif side_shots is not None:
         n, sources["NumberShots"] = int(side_shots[0]), "sidecar"
     else:
@@ -477,7 +473,7 @@ def run_t1_mp2rage(
         except InputError as exc:
             if str(sigma_spec or "auto") not in ("auto", "local"):
                 raise
-            log.warning("%s -- M0 is written, the standard errors are not", str(exc).rstrip("."))
+            warn(f"{str(exc).rstrip('.')} -- M0 is written, the standard errors are not")
             notes.append("no standard errors: the noise level of the inversion images could not be estimated "
                          "(give --sigma VALUE)")
             sigma, sinfo = None, {"value": None, "source": None, "stderr_fallback": str(exc)}
