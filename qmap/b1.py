@@ -182,7 +182,8 @@ def dam_b1(s_a, s_2a, fa_nominal: float, *, mask=None, sigma=None):
     return _finish(ang, d, fa_nominal, finite, sel)
 
 
-def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, sigma=None, info: dict | None = None):
+def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, sigma=None, info: dict | None = None,
+            dtype=np.float64):
     """Relative B1 as a :class:`~qmap.maps.MapSet` (``maps["TB1"]``, stderr, quality, status).
 
     Parameters
@@ -197,6 +198,10 @@ def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, 
     mask : (...) bool ndarray, optional
     sigma : float or (...) ndarray, optional
         Image noise sd for the standard errors (NaN without it).
+    info : dict, optional
+        Added to the MapSet's ``info`` (provenance).
+    dtype : numpy dtype
+        Of the maps (the command line holds them as float32, the written precision).
 
     Notes
     -----
@@ -234,8 +239,10 @@ def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, 
     minfo = {"model": method, "parameters": ["TB1"], "noise_floor": "none",
              "n_fitted": int(np.count_nonzero((status != st.MASKED) & (status != st.NONFINITE)))}
     minfo.update(info or {})
-    return MapSet(estimates={"TB1": tb1}, stderr={"TB1": se}, units={"TB1": "fraction"}, descriptions={"TB1": desc},
-                  time_params=(), quality={"rsquared": r2, "rmse": rmse}, status=status, info=minfo)
+    return MapSet(estimates={"TB1": tb1.astype(dtype, copy=False)}, stderr={"TB1": se.astype(dtype, copy=False)},
+                  units={"TB1": "fraction"}, descriptions={"TB1": desc}, time_params=(),
+                  quality={"rsquared": r2.astype(dtype, copy=False), "rmse": rmse.astype(dtype, copy=False)},
+                  status=status, info=minfo)
 
 
 def load_b1_map(

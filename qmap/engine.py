@@ -70,6 +70,10 @@ def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast", stderr="noise
     own = getattr(model, "fit_chunk", None)  # a model with its own chunk fitter (e.g. the T2 spectrum)
     if own is not None:
         return own(y, ctx=ctx, sigma=sigma)
+    if method == "linear":
+        from .fitting.linearised import fit_chunk_linear
+
+        return fit_chunk_linear(model, y, ctx=ctx, sigma=sigma, stderr=stderr)
     if method == "lmfit":
         from .fitting.lmfit_engine import fit_chunk_lmfit
 
@@ -120,7 +124,7 @@ def fit_voxels(
         Address of a Dask distributed scheduler (``tcp://host:8786``).
     quiet : bool
         No progress display.
-    method : {"fast", "lmfit"}
+    method : {"fast", "lmfit", "linear"}
         The vectorised solver, or the per-voxel lmfit reference engine.
     on_chunk : callable, optional
         ``on_chunk(start, stop, ChunkFit)`` receives each chunk's result as it

@@ -16,7 +16,7 @@ import numpy as np
 
 from . import __version__
 from .engine import DEFAULT_CHUNK
-from .errors import InputError, OutputExistsError, UsageError
+from .errors import InputError, OutputExistsError, UsageError, warn
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .io.nifti import check_same_grid, image_data, load_image
@@ -25,8 +25,8 @@ from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename,
 from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 from .noise_level import background_sigma, object_mask
 
-__all__ = ["CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "sigma_for_stderr", "write_run"]
-
+__all__ = ["RESIDUAL_FALLBACK", "CommonOptions", "PreparedRun", "RunReport", "Slab", "check_outputs_free", "check_signal",
+           "default_prefix", "prepare_run", "resolve_mask", "resolve_sigma", "run_fit", "sigma_for_stderr", "write_run"]
 
 @dataclass
 class CommonOptions:
@@ -170,14 +170,22 @@ def resolve_sigma(spec, series: Series, *, coils: int = 1, max_bytes: float | No
 ESTIMATED_SIGMA = ("auto", "local")
 
 
+#: what happens to the standard errors without a noise level (most commands: the residual variance)
+RESIDUAL_FALLBACK = ("the standard errors use the per-voxel residual variance instead",
+                     ("standard errors from the per-voxel residual variance: the noise level could not be "
+                      "estimated (give --sigma VALUE)"))
+
+
 def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None,
-                     notes: list | None = None, magnitude: bool = True) -> tuple[object, dict]:
+                     notes: list | None = None, magnitude: bool = True,
+                     fallback: tuple[str, str] = RESIDUAL_FALLBACK, warn_fallback: bool = True) -> tuple[object, dict]:
     """The noise level for the standard errors of a command that does not model the noise floor.
 
     Resolved as ``--sigma`` (:func:`resolve_sigma`). When it is to be
     estimated (``auto``, ``local``) and cannot be, the command still runs:
     the standard errors fall back to the per-voxel residual variance, with a
-    warning (and a note in ``notes``). A given value or file that is wrong is
+    warning (and a note in ``notes``); ``fallback`` is the (warning, note)
+    pair saying what happens instead. A given value or file that is wrong is
     an error as usual.
 
     Returns
@@ -193,21 +201,22 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
         # signed (phase-corrected) data: the background is Gaussian, not Rayleigh, and the magnitude
         # statistics of the estimator would give about 0.57 sigma -- too small standard errors
         reason = "the noise of signed (real / phase-corrected) data is not estimated from the background"
-        log.warning("%s; the standard errors use the per-voxel residual variance (give --sigma VALUE for "
-                    "noise-based ones)", reason)
+        warn(f"{reason}; the standard errors use the per-voxel residual variance (give --sigma VALUE for "
+             "noise-based ones)")
         if notes is not None:
             notes.append("standard errors from the per-voxel residual variance (signed data: give --sigma VALUE)")
         return None, {"sigma": None, "stderr_fallback": reason}
+    fallback_text, fallback_note = fallback
     try:
         sigma, sinfo = resolve_sigma(spec, series, coils=coils, max_bytes=max_bytes)
     except InputError as exc:
         if str(spec) not in ESTIMATED_SIGMA:
             raise
         reason = str(exc)
-        log.warning("%s -- the standard errors use the per-voxel residual variance instead", reason.rstrip("."))
+        if warn_fallback:
+            warn(f"{reason.rstrip('.')} -- {fallback_text}")
         if notes is not None:
-            notes.append("standard errors from the per-voxel residual variance: the noise level could not be "
-                         "estimated (give --sigma VALUE)")
+            notes.append(fallback_note)
         return None, {"sigma": None, "stderr_fallback": reason}
     info = {"sigma": sinfo["value"], "sigma_source": sinfo["source"]}
     if notes is not None:
@@ -283,6 +292,204 @@ def check_outputs_free(common: CommonOptions, prefix: str) -> None:
         )
 
 
+@dataclass
+class Slab:
+    """The part ``z0:z1`` of a series read at once (all of it without ``--max-memory``)."""
+
+    data: np.ndarray  #: (X, Y, z1 - z0, m) samples
+    mask: np.ndarray  #: (X, Y, z1 - z0) bool
+    sigma: float | np.ndarray | None  #: noise sd (a map is cut to the slab)
+    z0: int
+    z1: int
+    index: int  #: 0-based position among the slabs
+    count: int  #: number of slabs
+
+    @property
+    def label(self) -> str:
+        """Progress-bar label."""
+        return "fitting" if self.count == 1 else f"fitting slab {self.index + 1}/{self.count}"
+
+
+@dataclass
+class PreparedRun:
+    """A fitting command's inputs, checked up front (:func:`prepare_run`), and the steps that follow.
+
+    Every fitting command goes ``load_series`` -> :func:`prepare_run` -> :meth:`fit` (or
+    :meth:`map_slabs` for closed forms) -> :meth:`write`, so that output naming, the mask, the noise
+    level, the memory budget (slab reading), the provenance inputs and the writing are the same for all.
+
+    Attributes
+    ----------
+    series : Series
+    common : CommonOptions
+    prefix : str
+        Output name stem.
+    mask : (X, Y, Z) bool ndarray
+    mask_desc : str
+        How the mask was made (recorded in the provenance options).
+    sigma : float or (X, Y, Z) ndarray or None
+        Noise sd in signal units, when the run uses one.
+    noise_info : dict or None
+        The provenance ``noise`` entry.
+    inputs : list of path-like
+        Files read besides the series (mask, noise map, B1 map, phase, ...): the provenance lists them
+        all with their SHA-256.
+    notes : list of str
+        Lines for the command's summary.
+    t0 : float
+        Start time (``time.perf_counter``) for the wall time.
+    """
+
+    series: Series
+    common: CommonOptions
+    prefix: str
+    mask: np.ndarray
+    mask_desc: str
+    sigma: float | np.ndarray | None
+    noise_info: dict | None
+    inputs: list
+    notes: list
+    t0: float
+
+    @property
+    def slabs(self) -> list[tuple[int, int]]:
+        """The z ranges read one at a time within ``--max-memory`` (one range without it)."""
+        return self.series.slabs(self.common.max_memory)
+
+    def map_slabs(self, fn) -> MapSet:
+        """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn and join the results into one MapSet."""
+        self.series._peak = None  # only the mask and the noise estimate needed it
+        slabs = self.slabs
+        if len(slabs) > 1:
+            self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
+        maps = None
+        for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
+            sigma = self.sigma if self.sigma is None or np.ndim(self.sigma) < 3 else self.sigma[:, :, z0:z1]
+            part = fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs)))
+            maps = part if len(slabs) == 1 else place_slab(maps, part, self.series.shape, z0, z1)
+        if maps is None:
+            raise InputError(f"{self.series.paths[0]}: the series has no slice to fit")
+        return maps
+
+    def fit(self, model, *, noise: NoiseFloor | None = None, ctx_maps: dict | None = None,
+            method: str | None = None, input_se: dict | None = None) -> MapSet:
+        """Fit ``model`` in the masked voxels, slab by slab (maps held as float32, the written precision).
+
+        ``method``: ``"fast"``, ``"lmfit"`` (default: ``common.engine``) or ``"linear"`` (the model's
+        closed-form linearised estimator, where it has one). ``ctx_maps`` (per-voxel model inputs such
+        as B1) and ``input_se`` (their standard errors, propagated to first order) are volumes cut to
+        each slab.
+        """
+        common = self.common
+
+        def one(slab: Slab) -> MapSet:
+            return fit_volume(
+                model, slab.data, mask=slab.mask,
+                ctx_maps=_cut(ctx_maps, slab),
+                noise=noise, sigma=slab.sigma, n_jobs=common.n_jobs, chunk_size=common.chunk_size,
+                scheduler=common.scheduler, quiet=common.quiet, method=method or common.engine, label=slab.label,
+                dtype=np.float32, stderr=common.stderr, input_se=_cut(input_se, slab),
+            )
+
+        return self.map_slabs(one)
+
+    def write(self, maps: MapSet, *, options: dict | None = None, model_info: dict) -> RunReport:
+        """Write the maps and the provenance (see :func:`write_run`)."""
+        return write_run(self.series, maps, common=self.common, prefix=self.prefix, noise_info=self.noise_info,
+                         options=options, model_info=model_info, extra_inputs=self.inputs, notes=self.notes,
+                         t0=self.t0, mask_desc=self.mask_desc)
+
+
+def _cut(volumes: dict | None, slab: Slab) -> dict | None:
+    """The slab's part of each (X, Y, Z) volume in ``volumes``."""
+    return None if not volumes else {k: np.asarray(v)[:, :, slab.z0:slab.z1] for k, v in volumes.items()}
+
+
+def prepare_run(
+    series: Series,
+    common: CommonOptions,
+    *,
+    noise: NoiseFloor | None = None,
+    sigma_spec=None,
+    sigma_for_se: bool | None = None,
+    fallback: tuple[str, str] = RESIDUAL_FALLBACK,
+    warn_fallback: bool = True,
+    extra_inputs: list | None = None,
+    notes: list | None = None,
+    magnitude: bool = True,
+    t0: float | None = None,
+) -> PreparedRun:
+    """Check everything a fit needs before any work: outputs free, signal present, mask, noise level.
+
+    Parameters
+    ----------
+    series : Series
+        The loaded series (lazy when it exceeds ``common.max_memory``).
+    common : CommonOptions
+    noise : NoiseFloor, optional
+        The noise-floor handling of the fit (recorded in the provenance; a mode that needs sigma gets
+        it, and a failure to find it is an error).
+    sigma_spec : None, "auto", "local", float or path
+        Where the noise level comes from (see :func:`resolve_sigma`).
+    sigma_for_se : bool, optional
+        Find the noise level for the standard errors alone when the noise floor does not need it
+        (:func:`sigma_for_stderr`: an estimate that fails falls back, with a warning). Default:
+        ``common.stderr == "noise"``.
+    fallback : (str, str)
+        The warning and the summary note saying what the standard errors become without a noise level.
+    warn_fallback : bool
+        Issue that warning (False: only the note and the provenance say it).
+    extra_inputs : list of path-like, optional
+        Other files the result depends on (their SHA-256 go into the provenance).
+    notes : list of str, optional
+    magnitude : bool
+        The series holds magnitudes (negative values are refused).
+    t0 : float, optional
+        Start time (default: now).
+
+    Returns
+    -------
+    PreparedRun
+    """
+    t0 = time.perf_counter() if t0 is None else t0
+    prefix = common.prefix or default_prefix(series.paths[0])
+    check_outputs_free(common, prefix)
+    budget = common.max_memory
+    check_signal(series, magnitude=magnitude, max_bytes=budget)
+    notes = list(notes or [])
+    mask, mask_desc = resolve_mask(common.mask, series, budget)
+    # files that shape the result are inputs too (provenance lists them with their SHA-256)
+    file_inputs = list(extra_inputs or [])
+    if common.mask is not None and str(common.mask) not in ("auto", "none"):
+        file_inputs.append(common.mask)
+    sigma = None
+    noise_info: dict | None = None
+    if noise is not None:
+        noise_info = {"mode": noise.mode, "sigma": None}
+        if noise.needs_sigma:
+            sigma, sinfo = resolve_sigma(sigma_spec, series, coils=noise.coils, max_bytes=budget)
+            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
+            if "path" in sinfo:
+                file_inputs.append(sinfo["path"])
+            if "background_voxels" in sinfo:
+                noise_info["background_voxels"] = sinfo["background_voxels"]
+                notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels")
+        if noise.mode == "truncate":
+            noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
+        if noise.mode == "rician":
+            noise_info["coils"] = noise.coils
+    if sigma_for_se is None:
+        sigma_for_se = common.stderr == "noise"
+    if sigma is None and sigma_for_se:  # no noise-floor model: the noise level is for the SEs only
+        sigma, sinfo = sigma_for_stderr(sigma_spec, series, max_bytes=budget, notes=notes, magnitude=magnitude,
+                                        fallback=fallback, warn_fallback=warn_fallback)
+        noise_info = dict(noise_info or {"mode": "none"}, **sinfo)
+        if "path" in sinfo:
+            file_inputs.append(sinfo["path"])
+    return PreparedRun(series=series, common=common, prefix=prefix, mask=mask, mask_desc=mask_desc, sigma=sigma,
+                       noise_info=noise_info, inputs=file_inputs, notes=notes, t0=t0)
+
+
 def run_fit(
     series: Series,
     model,
@@ -298,58 +505,12 @@ def run_fit(
     magnitude: bool = True,
     t0: float | None = None,
 ) -> RunReport:
-    """Mask, (noise level,) fit and write the outputs of one series; see the module docstring."""
-    t0 = time.perf_counter() if t0 is None else t0
-    prefix = common.prefix or default_prefix(series.paths[0])
-    check_outputs_free(common, prefix)
-    budget = common.max_memory
-    check_signal(series, magnitude=magnitude, max_bytes=budget)
-    notes = list(notes or [])
-    mask, mask_desc = resolve_mask(common.mask, series, budget)
-    # files that shape the result are inputs too (provenance lists them with their SHA-256)
-    file_inputs = list(extra_inputs or [])
-    if common.mask is not None and str(common.mask) not in ("auto", "none"):
-        file_inputs.append(common.mask)
-    sigma = None
-    noise_info = None
-    if noise is not None:
-        noise_info = {"mode": noise.mode, "sigma": None}
-        if noise.needs_sigma:
-            sigma, sinfo = resolve_sigma(sigma_spec, series, coils=noise.coils, max_bytes=budget)
-            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
-            if "path" in sinfo:
-                file_inputs.append(sinfo["path"])
-            if "background_voxels" in sinfo:
-                noise_info["background_voxels"] = sinfo["background_voxels"]
-                notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels")
-        if noise.mode == "truncate":
-            noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
-        if noise.mode == "rician":
-            noise_info["coils"] = noise.coils
-    if sigma is None and common.stderr == "noise":  # no noise-floor model: the noise level is for the SEs only
-        sigma, sinfo = sigma_for_stderr(sigma_spec, series, max_bytes=budget, notes=notes, magnitude=magnitude)
-        noise_info = dict(noise_info or {"mode": "none"}, **sinfo)
-        if "path" in sinfo:
-            file_inputs.append(sinfo["path"])
-    series._peak = None  # only the mask and the noise estimate needed it
-    slabs = series.slabs(budget)
-    if len(slabs) > 1:
-        notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
-    maps = None
-    for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
-        part = fit_volume(
-            model, series.read(z0, z1), mask=mask[:, :, z0:z1],
-            ctx_maps=None if not ctx_maps else {k: np.asarray(v)[:, :, z0:z1] for k, v in ctx_maps.items()},
-            noise=noise, sigma=sigma if np.ndim(sigma) < 3 else sigma[:, :, z0:z1], n_jobs=common.n_jobs,
-            chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet, method=common.engine,
-            label="fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}",
-            dtype=np.float32,  # held in the precision they are written in
-            stderr=common.stderr,
-        )
-        maps = part if len(slabs) == 1 else place_slab(maps, part, series.shape, z0, z1)
-    return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
-                     model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)),
-                     extra_inputs=file_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
+    """:func:`prepare_run`, :meth:`PreparedRun.fit` and :meth:`PreparedRun.write` in one call."""
+    run = prepare_run(series, common, noise=noise, sigma_spec=sigma_spec, extra_inputs=extra_inputs, notes=notes,
+                      magnitude=magnitude, t0=t0)
+    maps = run.fit(model, noise=noise, ctx_maps=ctx_maps)
+    return run.write(maps, options=options,
+                     model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)))
 
 
 def _output_entry(o: OutputFile, maps: MapSet) -> dict:

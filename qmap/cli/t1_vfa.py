@@ -25,7 +25,7 @@ def add_parser(sub) -> None:
     p.add_argument("--tr", metavar="T", help="repetition time, e.g. 15ms (default: sidecar RepetitionTime)")
     p.add_argument("--method", choices=METHODS, default="nonlinear",
                    help="nonlinear (default): least squares on the signals (M0 closed form, T1 iterative); "
-                        "linear: the reweighted DESPOT1 regression S/sin a = E1 S/tan a + M0 (1-E1)")
+                        "linear: the reweighted linearised regression (Deoni et al. 2003) S/sin a = E1 S/tan a + M0 (1-E1)")
     g = p.add_argument_group("transmit field (B1) correction")
     g.add_argument("--b1", metavar="B1MAP", help="relative B1 map (actual / nominal angle), e.g. the TB1map "
                    "written by qmap b1; voxels outside its field of view get status 6")

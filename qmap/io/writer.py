@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import shutil
 import time
 from dataclasses import dataclass
@@ -23,7 +24,7 @@ import numpy as np
 from ..errors import OutputError, OutputExistsError
 from .nifti import sidecar_path
 
-__all__ = ["AtomicWriter", "OutputFile", "existing_outputs", "map_filename", "nifti_for", "sha256_file"]
+__all__ = ["AtomicWriter", "OutputFile", "existing_outputs", "is_output_of", "map_filename", "nifti_for", "sha256_file"]
 
 #: number of successful commits in this process (lets the command line tell an interrupt that came
 #: after the outputs were in place from one that left the output folder untouched)
@@ -104,11 +105,26 @@ def existing_outputs(out_dir: str | Path, prefix: str) -> list[Path]:
     d = Path(out_dir)
     if not d.is_dir():
         return []
-    pats = [f"{prefix}_*map.nii.gz", f"{prefix}_*map.json", f"{prefix}_provenance.json", f"{prefix}_*map.png"]
-    found = set()
-    for pat in pats:
-        found.update(d.glob(pat))
-    return sorted(found)
+    return sorted(p for p in d.glob(f"{prefix}_*") if is_output_of(p.name, prefix))
+
+
+#: what follows ``{prefix}_`` in the name of a file a run writes: ``{P}map``, ``desc-{d}_{P}map`` (NIfTI, JSON
+#: sidecar, PNG preview) or ``provenance.json``; P and d are alphanumeric, so another prefix that merely starts
+#: with this one (``vfa_b1`` for ``vfa``) never matches
+_OUTPUT_REST = re.compile(r"^(?:(?:desc-[0-9A-Za-z]+_)?[0-9A-Za-z]+map\.(?:nii\.gz|json|png)|provenance\.json)$")
+
+
+def is_output_of(name: str, prefix: str) -> bool:
+    """Whether the file name ``name`` is one that a run with ``prefix`` writes.
+
+    Examples
+    --------
+    >>> is_output_of("vfa_T1map.nii.gz", "vfa"), is_output_of("vfa_desc-stderr_T1map.json", "vfa")
+    (True, True)
+    >>> is_output_of("vfa_b1_T1map.nii.gz", "vfa"), is_output_of("vfa_b1_T1map.nii.gz", "vfa_b1")
+    (False, True)
+    """
+    return name.startswith(f"{prefix}_") and _OUTPUT_REST.match(name[len(prefix) + 1:]) is not None
 
 
 def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, parameter: str, units: str):

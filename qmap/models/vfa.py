@@ -10,42 +10,39 @@ Bernstein, King & Zhou 2004), where ``alpha`` is the nominal flip angle and
 ``B1`` the relative transmit field (actual / nominal angle; Cheng & Wright,
 Magn Reson Med 2006;55:566).
 
-The linearised form (DESPOT1; Deoni, Rutt & Peters, Magn Reson Med
-2003;49:515)
+The linearised form (Deoni, Rutt & Peters, Magn Reson Med 2003;49:515)
 
 .. math:: \\frac{S}{\\sin\\alpha_e} = E_1 \\frac{S}{\\tan\\alpha_e} + M_0 (1 - E_1)
 
 is a straight line in ``(S/tan a, S/sin a)`` with slope ``E1``: it gives the
 closed-form start of the non-linear fit and, iteratively reweighted, the
-``linear`` method (:func:`despot1`).
+``linear`` method (:func:`vfa_regression`,
+:func:`qmap.fitting.linearised.fit_chunk_linear`).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
-from ..fitting import status as st
 from .base import Derived, SeparableModel, delta_se_inverse
 
 __all__ = [
     "ERNST_FRACTION",
     "LINEAR_PASSES",
-    "LinearFit",
     "SpoiledGRE",
-    "despot1",
+    "actual_trig",
     "ernst_angle",
     "optimal_angle_pair",
     "spgr_signal",
     "t1_crlb",
+    "vfa_regression",
 ]
 
 #: signal fraction of the Ernst signal at the two angles of the optimal two-angle protocol, ~0.71
 #: (Deoni, Rutt & Peters 2003; 1/sqrt(2): Schabel & Morrell, Phys Med Biol 2009;54:N1)
 ERNST_FRACTION = 1.0 / np.sqrt(2.0)
 
-#: reweighting passes of the linear (DESPOT1) regression after the unweighted one
+#: reweighting passes of the linearised regression after the unweighted one
 LINEAR_PASSES = 4
 
 
@@ -148,7 +145,7 @@ class SpoiledGRE(SeparableModel):
     -----
     The per-voxel input ``ctx["b1"]`` (n,) scales the nominal angles (actual
     = B1 x nominal); without it B1 = 1. The closed-form start is the
-    DESPOT1 regression of :func:`despot1` (no grid search needed).
+    linearised regression of :func:`vfa_regression` (no grid search needed).
 
     Examples
     --------
@@ -212,8 +209,8 @@ class SpoiledGRE(SeparableModel):
         return np.geomspace(lo[0] * 1.05, hi[0] / 1.05, 48)[:, None]
 
     def initial_guess(self, y, w, ctx):
-        fit = despot1(y, self.x, self.tr, b1=_ctx_b1(ctx), w=w, passes=1, t1_bounds=self.t1_bounds)
-        return fit.params[:, 1:2]
+        _, t1, _, _ = vfa_regression(y, self.x, self.tr, b1=_ctx_b1(ctx), w=w, passes=1, t1_bounds=self.t1_bounds)
+        return t1[:, None]
 
     def report(self, params, cov):
         t1 = params[:, 1]
@@ -226,21 +223,7 @@ class SpoiledGRE(SeparableModel):
         ]
 
 
-@dataclass
-class LinearFit:
-    """Result of :func:`despot1` over n voxels (the fields of the solver's ChunkFit)."""
-
-    params: np.ndarray  # (n, 2) [M0, T1]
-    cov: np.ndarray  # (n, 2, 2)
-    rss: np.ndarray  # (n,)
-    r2: np.ndarray  # (n,)
-    rmse: np.ndarray  # (n,)
-    n_used: np.ndarray  # (n,) int
-    status: np.ndarray  # (n,) uint8
-    n_iter: np.ndarray  # (n,) int
-
-
-def despot1(
+def vfa_regression(
     y: np.ndarray,
     fa_deg,
     tr: float,
@@ -249,10 +232,8 @@ def despot1(
     w: np.ndarray | None = None,
     passes: int = LINEAR_PASSES,
     t1_bounds: tuple[float, float] | None = None,
-    sigma: np.ndarray | None = None,
-    stderr: str = "noise",
-) -> LinearFit:
-    """Linearised VFA regression (DESPOT1), iteratively reweighted, for n voxels at once.
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Linearised VFA regression (Deoni, Rutt & Peters 2003), iteratively reweighted, for n voxels at once.
 
     Parameters
     ----------
@@ -263,52 +244,44 @@ def despot1(
     b1 : (n,) ndarray, optional
         Relative B1 per voxel (actual angle = b1 x nominal).
     w : (n, m) ndarray, optional
-        Sample weights (0/1) from the solver.
+        Sample weights (0/1).
     passes : int
-        Reweighted passes after the first, unweighted one (0: Deoni et al.'s
-        plain regression).
+        Reweighted passes after the first, unweighted one (0: Deoni et al.'s plain regression).
     t1_bounds : (float, float), optional
-        T1 range, seconds; estimates outside it are set to the bound (status 3).
-    sigma : float or (n,) ndarray, optional
-        Noise sd (signal units): with ``stderr="noise"`` the standard errors
-        use it (``s = sigma``); otherwise only when no residual degrees of
-        freedom remain (two angles), as the solver does.
-    stderr : {"noise", "residual"}
-        Covariance convention when ``sigma`` is given.
+        T1 range, seconds; estimates outside it are set to the bound (and M0 refitted there).
 
     Returns
     -------
-    LinearFit
-        ``params`` (n, 2) as ``[M0, T1]``; ``cov`` (n, 2, 2); ``rss``, ``r2``,
-        ``rmse`` in signal space; ``status`` (0, 3 at a bound, 5 singular).
+    m0, t1 : (n,) ndarray
+        Estimates (a.u., s); NaN where the regression is singular.
+    at_bound, singular : (n,) bool ndarray
+        T1 was outside ``t1_bounds`` (set to the bound); the regression has no unique solution.
 
     Notes
     -----
-    Regression of ``Y = S/sin a`` on ``X = S/tan a`` (a the actual angle):
-    slope ``E1``, intercept ``c = M0 (1 - E1)``. The residual of the line,
-    ``r = Y - E1 X - c``, carries the signal noise scaled by
-    ``(1 - E1 cos a)/sin a``, so the weights ``u = (sin a / (1 - E1 cos a))^2``
-    (recomputed from the current E1 at every pass) make every point count
-    with the inverse variance of its residual -- and ``sqrt(u) r`` is exactly
-    the signal-domain residual ``S - S_model``. The first pass is unweighted.
+    Regression of ``Y = S/sin a`` on ``X = S/tan a`` (a the actual angle): slope ``E1``, intercept
+    ``c = M0 (1 - E1)``. The residual of the line, ``r = Y - E1 X - c``, carries the signal noise scaled
+    by ``(1 - E1 cos a)/sin a``, so the weights ``u = (sin a / (1 - E1 cos a))^2`` (recomputed from the
+    current E1 at every pass) make every point count with the inverse variance of its residual -- and
+    ``sqrt(u) r`` is exactly the signal-domain residual ``S - S_model``. The first pass is unweighted.
+    :func:`qmap.fitting.linearised.fit_chunk_linear` adds the quality, covariance and status of a fit.
 
-    Standard errors by error propagation: to first order in the noise the
-    estimator's covariance is ``s^2 (X^T U X)^-1`` for ``(E1, c)`` with
-    ``s^2 = RSS / (m - 2)`` (the signal-domain residual variance; with two
-    angles ``sigma^2`` when given, else NaN), then the delta method to ``T1 = -TR / ln E1`` and
-    ``M0 = c / (1 - E1)``.
+    Examples
+    --------
+    >>> m0, t1, at_bound, singular = vfa_regression(spgr_signal([3.0, 15.0], 0.015, 0.9, m0=10.0)[None],
+    ...                                             [3.0, 15.0], 0.015)
+    >>> float(m0[0].round(9)), float(t1[0].round(9)), bool(at_bound[0] or singular[0])
+    (10.0, 0.9, False)
     """
     y = np.asarray(y, float)
     n, _m = y.shape
-    fa = np.asarray(fa_deg, float).ravel()
-    a = np.deg2rad(fa)[None, :] * (np.ones((n, 1)) if b1 is None else np.asarray(b1, float)[:, None])
-    s, c = np.sin(a), np.cos(a)
+    s, c = actual_trig(fa_deg, n, b1)
     with np.errstate(divide="ignore", invalid="ignore"):
         X = y * c / s
         Y = y / s
     w = np.ones_like(y) if w is None else np.asarray(w, float)
     u = w.copy()
-    e1 = icpt = None
+    e1 = icpt = det = np.full(n, np.nan)
     for k in range(passes + 1):
         if k:
             ee = np.clip(np.where(np.isfinite(e1), e1, 0.5), 1e-6, 1.0 - 1e-12)[:, None]
@@ -319,7 +292,6 @@ def despot1(
         t1 = -tr / np.log(e1)
         t1 = np.where((e1 > 0) & (e1 < 1), t1, np.where(e1 >= 1, np.inf, 0.0))
         m0 = icpt / (1.0 - e1)
-    status = np.zeros(n, np.uint8)
     singular = ~(np.isfinite(det) & (det > 0) & np.isfinite(e1) & np.isfinite(icpt))
     out = (t1 < lo) | (t1 > hi)
     out &= ~singular
@@ -330,44 +302,16 @@ def despot1(
         phi = s[out] * (1.0 - e1b) / (1.0 - e1b * c[out])
         with np.errstate(divide="ignore", invalid="ignore"):
             m0[out] = np.sum(w[out] * phi * y[out], axis=1) / np.sum(w[out] * phi * phi, axis=1)
-        status[out] = st.AT_BOUND
     t1 = np.where(singular, np.nan, t1c)
     m0 = np.where(singular, np.nan, m0)
-    status[singular] = st.ILL_CONDITIONED
-    e1 = np.exp(-tr / t1)
-    # signal-domain residuals and quality
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        den = 1.0 - e1[:, None] * c
-        phi = s * (1.0 - e1[:, None]) / den
-        r = y - m0[:, None] * phi
-        rss = np.sum(w * r * r, axis=1)
-        n_used = w.sum(axis=1).astype(int)
-        ybar = np.sum(w * y, axis=1) / np.maximum(n_used, 1)
-        tss = np.sum(w * (y - ybar[:, None]) ** 2, axis=1)
-        r2 = np.where(tss > 0, 1.0 - rss / tss, np.nan)
-        rmse = np.sqrt(rss / np.maximum(n_used, 1))
-        # covariance of (E1, c) and the delta method to (M0, T1)
-        uu = w * (s / den) ** 2
-        sw, sx, sxx = np.sum(uu, 1), np.sum(uu * X, 1), np.sum(uu * X * X, 1)
-        dd = sw * sxx - sx * sx
-        dof = n_used - 2
-        s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
-        if sigma is not None:
-            sig2 = np.asarray(sigma, float) ** 2 * np.ones(n)
-            usable = np.isfinite(sig2) & (sig2 > 0)
-            s2 = np.where(usable, sig2, s2) if stderr == "noise" else np.where(dof > 0, s2, sig2)
-        v_e, v_c, c_ec = s2 * sw / dd, s2 * sxx / dd, -s2 * sx / dd
-        icpt = m0 * (1.0 - e1)
-        lg = np.log(e1)
-        dt_de = tr / (e1 * lg * lg)
-        dm_de, dm_dc = icpt / (1.0 - e1) ** 2, 1.0 / (1.0 - e1)
-        cov = np.empty((n, 2, 2))
-        cov[:, 1, 1] = dt_de**2 * v_e
-        cov[:, 0, 0] = dm_de**2 * v_e + 2 * dm_de * dm_dc * c_ec + dm_dc**2 * v_c
-        cov[:, 0, 1] = cov[:, 1, 0] = dt_de * (dm_de * v_e + dm_dc * c_ec)
-    cov[status == st.AT_BOUND] = np.nan
-    params = np.stack([m0, t1], axis=1)
-    return LinearFit(params, cov, rss, r2, rmse, n_used, status, np.full(n, passes + 1))
+    return m0, t1, out, singular
+
+
+def actual_trig(fa_deg, n: int, b1) -> tuple[np.ndarray, np.ndarray]:
+    """sin and cos of the actual angles (n, m): nominal angles x B1 (1 without a B1 map)."""
+    fa = np.asarray(fa_deg, float).ravel()
+    a = np.deg2rad(fa)[None, :] * (np.ones((n, 1)) if b1 is None else np.asarray(b1, float)[:, None])
+    return np.sin(a), np.cos(a)
 
 
 def _line(X, Y, u):

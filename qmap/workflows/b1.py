@@ -8,7 +8,6 @@ standard errors, and writes the maps through :func:`qmap.pipeline.write_run`
 
 from __future__ import annotations
 
-import logging
 import time
 
 import numpy as np
@@ -17,44 +16,36 @@ from ..b1 import B1_METHODS, b1_maps
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..io.series import load_series
-from ..pipeline import (
-    ESTIMATED_SIGMA,
-    CommonOptions,
-    RunReport,
-    check_outputs_free,
-    check_signal,
-    default_prefix,
-    resolve_mask,
-    resolve_sigma,
-    write_run,
-)
+from ..pipeline import CommonOptions, RunReport, prepare_run
 
 __all__ = ["EQUATIONS", "run_b1"]
 
-log = logging.getLogger("qmap")
 
 EQUATIONS = {
     "afi": "r = S2/S1, n = TR2/TR1, a = arccos((r n - 1)/(n - r)) (TR1, TR2 << T1; Yarnykh 2007); TB1 = a / nominal",
     "dam": "a = arccos(S(2a) / (2 S(a))) (TR >> T1; Insko & Bolinger 1993); TB1 = a / nominal",
 }
+#: (warning, summary note) when the noise level cannot be estimated: no residual to fall back on
+NAN_FALLBACK = ("the TB1 standard errors are NaN (give --sigma VALUE)",
+                "standard errors are NaN: the noise could not be estimated (give --sigma VALUE)")
 #: DAM needs full recovery; below this TR (s) the summary reminds the user (TR >= ~5 T1, common practice)
 DAM_TR_NOTE_S = 5.0
 
 
-def _load_afi(inputs, fa, tr):
+def _load_afi(inputs, fa, tr, max_bytes):
     if fa is not None and np.size(fa) != 1:
         raise UsageError(f"--fa: AFI takes one nominal flip angle, got {np.size(fa)} values")
     fa1 = None if fa is None else float(np.ravel(fa)[0])
     series = load_series(inputs, key="RepetitionTime", value=tr, option="--tr",
                          scalars={"FlipAngle": (fa1, "--fa", True, "FlipAngle")}, min_volumes=2,
-                         what="AFI images")
+                         what="AFI images", max_bytes=max_bytes)
     if series.n != 2:
         raise InputError(f"{series.paths[0]}: AFI takes two images (TR1 and TR2), got {series.n}")
     trs = np.asarray(series.acquisition["RepetitionTime"], float)
     return series, float(series.acquisition["FlipAngle"]), float(trs[1] / trs[0])
 
 
-def _load_dam(inputs, fa, tr):
+def _load_dam(inputs, fa, tr, max_bytes):
     if fa is not None:
         fa = np.atleast_1d(np.asarray(fa, float))
         if fa.size == 1:
@@ -66,7 +57,7 @@ def _load_dam(inputs, fa, tr):
     tr1 = None if tr is None else float(np.ravel(tr)[0])
     series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
                          scalars={"RepetitionTime": (tr1, "--tr", False, "RepetitionTime")}, min_volumes=2,
-                         what="double-angle images")
+                         what="double-angle images", max_bytes=max_bytes)
     if series.n != 2:
         raise InputError(f"{series.paths[0]}: the double-angle method takes two images (a and 2a), got {series.n}")
     a = np.asarray(series.acquisition["FlipAngle"], float)
@@ -117,39 +108,29 @@ def run_b1(
         raise UsageError(f"--method {method!r}: expected afi or dam")
     if common.engine != "fast":
         raise UsageError("--engine does not apply to qmap b1: B1 is computed in closed form")
+    budget = common.max_memory
     if method == "afi":
-        series, fa_nom, n = _load_afi(inputs, fa, tr)
+        series, fa_nom, n = _load_afi(inputs, fa, tr, budget)
     else:
-        series, fa_nom, n = _load_dam(inputs, fa, tr)
-    prefix = common.prefix or default_prefix(series.paths[0])
-    check_outputs_free(common, prefix)
-    check_signal(series)
-    mask, mask_desc = resolve_mask(common.mask, series)
-    notes = []
-    noise_info = {"mode": "none", "sigma": None}
-    sig = None
-    if sigma is None or str(sigma) in ESTIMATED_SIGMA:
-        try:
-            sig, sinfo = resolve_sigma("auto" if sigma is None else sigma, series)
-        except InputError as exc:
-            reason = str(exc)
-            if sigma is not None:  # asked for (the command line's default): say so; the library default stays quiet
-                log.warning("%s -- the TB1 standard errors are NaN", reason.rstrip("."))
-            noise_info["stderr"] = f"not estimable: noise sigma unknown ({reason}); standard errors are NaN"
-            notes.append("standard errors are NaN: the noise could not be estimated (give --sigma VALUE)")
-        else:
-            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
+        series, fa_nom, n = _load_dam(inputs, fa, tr, budget)
+    # two images, no residual: without a noise level the standard errors are NaN
+    # (the library default sigma=None stays quiet about an unknown noise level; the command line's "auto" warns)
+    run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=True, fallback=NAN_FALLBACK,
+                      warn_fallback=sigma is not None, t0=t0)
+    noise_info = run.noise_info
+    if run.sigma is None:
+        noise_info["stderr"] = (f"not estimable: noise sigma unknown ({noise_info.get('stderr_fallback')}); "
+                                f"standard errors are NaN")
     else:
-        sig, sinfo = resolve_sigma(sigma, series)
-        noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
-    if sig is not None:
         noise_info["stderr"] = "first-order propagation of Gaussian image noise sigma through the closed form"
     info = {}
     if n is not None:
         info["tr_ratio"] = n
-    maps = b1_maps(np.abs(series.data), method=method, fa=fa_nom, n=n, mask=mask, sigma=sig, info=info)
-    if sig is not None:  # two images, no residual: the standard error is the noise propagated through the closed form
+    maps = run.map_slabs(lambda slab: b1_maps(slab.data, method=method, fa=fa_nom, n=n, mask=slab.mask,
+                                              sigma=slab.sigma, info=info, dtype=np.float32))
+    if run.sigma is not None:  # two images, no residual: the standard error is the noise propagated
         maps.info["stderr"] = {"convention": "noise", "meaning": noise_info["stderr"]}
+    notes = run.notes
     ok = maps.status == 0
     fitted = maps.status != st.MASKED
     if fitted.any() and np.mean(maps.status[fitted] == st.NO_VALID_ANGLE) > 0.5:
@@ -174,5 +155,4 @@ def run_b1(
     if n is not None:
         model_info["tr_ratio"] = n
     options = {"method": method, "sigma": None if sigma is None else str(sigma)}
-    return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
-                     model_info=model_info, notes=notes, t0=t0, mask_desc=mask_desc)
+    return run.write(maps, options=options, model_info=model_info)

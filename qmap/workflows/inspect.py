@@ -314,9 +314,9 @@ def _build_spgr(prov, x):
 def _refit_spgr(prov, model, y, ctx):
     if prov["model"].get("method") != "linear":
         return None
-    from ..models.vfa import despot1
+    from ..fitting.linearised import fit_chunk_linear
 
-    return despot1(y, model.x, model.tr, b1=None if not ctx else ctx["b1"], t1_bounds=model.t1_bounds)
+    return fit_chunk_linear(model, y, ctx=ctx or None)
 
 
 def _build_epg(prov, x):

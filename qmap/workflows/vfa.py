@@ -5,11 +5,12 @@ Two methods share one output path (a :class:`~qmap.maps.MapSet` written by
 
 ``nonlinear`` (default)
     Least squares on the signals: M0 solved in closed form, T1 by the
-    vectorised Levenberg-Marquardt solver, started from the DESPOT1
+    vectorised Levenberg-Marquardt solver, started from the linearised
     regression (:class:`qmap.models.vfa.SpoiledGRE`).
 ``linear``
-    The iteratively reweighted DESPOT1 regression as the final answer
-    (:func:`qmap.models.vfa.despot1`; Deoni, Rutt & Peters 2003).
+    The iteratively reweighted linearised regression as the final answer
+    (:func:`qmap.fitting.linearised.fit_chunk_linear`; Deoni, Rutt & Peters 2003), run by the
+    same engine as the least-squares fit (``method="linear"``).
 
 A B1 map (relative, fraction or percent) is resampled onto the data grid
 through the two affines (trilinear); voxels it does not cover get status 6.
@@ -23,24 +24,13 @@ from pathlib import Path
 import numpy as np
 
 from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
-from ..engine import DEFAULT_CHUNK
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
-from ..fitting.uncertainty import CONVENTION_TEXT, add_input_covariance, input_sensitivity
 from ..io.series import load_series
 from ..maps import MapSet, fit_volume
-from ..models.vfa import LINEAR_PASSES, SpoiledGRE, despot1, ernst_angle, optimal_angle_pair, t1_crlb
-from ..pipeline import (
-    CommonOptions,
-    RunReport,
-    check_outputs_free,
-    check_signal,
-    default_prefix,
-    resolve_mask,
-    sigma_for_stderr,
-    write_run,
-)
+from ..models.vfa import LINEAR_PASSES, SpoiledGRE, ernst_angle, optimal_angle_pair, t1_crlb
+from ..pipeline import CommonOptions, RunReport, prepare_run
 
 __all__ = [
     "METHODS",
@@ -60,12 +50,12 @@ PROTOCOL_RATIO = 1.5
 NO_B1_NOTE = ("no B1 correction applied: nominal flip angles assumed (T1 errs roughly in proportion to B1^2 "
               "where the transmit field is off; pass --b1 B1MAP to correct)")
 EQUATION = "S = M0 sin(a) (1-E1)/(1 - E1 cos(a)), E1 = exp(-TR/T1), a = B1 x nominal flip angle"
-LINEAR_DESC = (f"DESPOT1 regression S/sin a = E1 S/tan a + M0 (1-E1), unweighted first pass then {LINEAR_PASSES} "
+LINEAR_DESC = (f"linearised regression (Deoni et al. 2003) S/sin a = E1 S/tan a + M0 (1-E1), unweighted first pass then {LINEAR_PASSES} "
                "passes weighted by (sin a / (1 - E1 cos a))^2 (inverse variance of the line's residual); standard "
                "errors s^2 (X^T W X)^-1 with s^2 = RSS/(m-2) (two angles: the background noise sigma^2), delta "
                "method to T1 and M0")
 NONLINEAR_DESC = ("least squares on the signals: M0 in closed form, T1 by batched Levenberg-Marquardt from the "
-                  "DESPOT1 start; standard errors s^2 (J^T J)^-1 with s^2 = RSS/(m-2) (two angles: the background "
+                  "linearised-regression start; standard errors s^2 (J^T J)^-1 with s^2 = RSS/(m-2) (two angles: the background "
                   "noise sigma^2)")
 
 
@@ -99,74 +89,6 @@ def protocol_check(fa, tr: float, t1_typical: float = T1_TYPICAL) -> tuple[dict,
 
 
 # ------------------------------------------------------------------ fitting
-def _linear_volume(model: SpoiledGRE, data: np.ndarray, *, mask=None, b1=None, sigma=None,
-                   chunk_size: int = DEFAULT_CHUNK, stderr: str = "noise", b1_se=None) -> MapSet:
-    """The ``linear`` method over a volume, with the same screening and outputs as :func:`qmap.maps.fit_volume`."""
-    data = np.asarray(data)
-    shape, m = data.shape[:-1], data.shape[-1]
-    flat = data.reshape(-1, m)
-    nvox = flat.shape[0]
-    finite = np.all(np.isfinite(flat), axis=1)
-    sel = np.ones(nvox, bool) if mask is None else np.asarray(mask, bool).reshape(-1).copy()
-    status = np.full(nvox, st.MASKED, np.uint8)
-    status[sel & ~finite] = st.NONFINITE
-    sel &= finite
-    b1f = None
-    if b1 is not None:
-        b1f = np.broadcast_to(np.asarray(b1, float), shape).reshape(-1)
-        ok = np.isfinite(b1f)
-        status[sel & ~ok] = st.OUTSIDE_B1
-        sel &= ok
-    idx = np.flatnonzero(sel)
-    sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1)
-    b1sef = None if b1_se is None else np.broadcast_to(np.asarray(b1_se, float), shape).reshape(-1)
-    parts = []
-    for i in range(0, idx.size, max(1, int(chunk_size))):
-        j = idx[i : i + chunk_size]
-        part = despot1(flat[j].astype(float), model.x, model.tr, b1=None if b1f is None else b1f[j],
-                       t1_bounds=model.t1_bounds, sigma=None if sig is None else sig[j], stderr=stderr)
-        if b1sef is not None:  # the B1 map's own error, to first order (as for the nonlinear method)
-            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-                g = input_sensitivity(model, part.params, {"b1": b1f[j]}, "b1")
-                part.cov = add_input_covariance(part.cov, g, b1sef[j])
-        parts.append(part)
-    cat = (lambda f: np.concatenate([getattr(p, f) for p in parts])) if parts else None
-    if parts:
-        params, cov, r2, rmse, fst = cat("params"), cat("cov"), cat("r2"), cat("rmse"), cat("status")
-    else:
-        params, cov, r2, rmse = np.zeros((0, 2)), np.zeros((0, 2, 2)), np.zeros(0), np.zeros(0)
-        fst = np.zeros(0, np.uint8)
-    status[idx] = fst
-    keep = np.isin(fst, (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED))
-
-    def scatter(values):
-        out = np.full(nvox, np.nan)
-        out[idx[keep]] = np.asarray(values, float)[keep]
-        return out.reshape(shape)
-
-    est, se, units, desc, times = {}, {}, {}, {}, []
-    for d in model.report(params, cov):
-        est[d.name], se[d.name] = scatter(d.value), scatter(d.stderr)
-        units[d.name], desc[d.name] = d.units, d.description
-        if d.is_time:
-            times.append(d.name)
-    used = stderr if sigma is not None else "residual"
-    info = {"model": model.name, "parameters": list(model.param_names), "noise_floor": "none",
-            "n_fitted": int(idx.size), "method": "linear",
-            "stderr": {"convention": used, "meaning": CONVENTION_TEXT[used]}}
-    if b1sef is not None:
-        info["stderr"]["propagated_inputs"] = ["b1"]
-    if parts:
-        dof = cat("n_used") - 2
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rsd = np.where(dof > 0, np.sqrt(cat("rss") / np.maximum(dof, 1)), np.nan)
-    else:
-        rsd = np.zeros(0)
-    return MapSet(est, se, units, desc, tuple(times),
-                  {"rsquared": scatter(r2), "rmse": scatter(rmse), "residualsd": scatter(rsd)},
-                  status.reshape(shape), info)
-
-
 def fit_t1_vfa(
     data,
     fa,
@@ -198,7 +120,7 @@ def fit_t1_vfa(
         Relative B1 (fraction) per voxel; NaN voxels get status 6 and are not
         fitted. Without it the nominal angles are used.
     method : {"nonlinear", "linear"}
-        Least squares on the signals, or the reweighted DESPOT1 regression.
+        Least squares on the signals, or the reweighted linearised regression.
     mask : (...) array_like of bool, optional
         Voxels to fit (default: all).
     sigma : float or (...) ndarray, optional
@@ -242,15 +164,13 @@ def fit_t1_vfa(
     kw = {} if chunk_size is None else {"chunk_size": chunk_size}
     if b1_se is not None and b1 is None:
         raise ValueError("b1_se= needs b1=")
-    if method == "linear":
-        return _linear_volume(model, data, mask=mask, b1=b1, sigma=sigma, stderr=stderr, b1_se=b1_se, **kw)
     ctx = None
     if b1 is not None:
         ctx = {"b1": np.broadcast_to(np.asarray(b1, float), data.shape[:-1])}
     maps = fit_volume(model, data, mask=mask, ctx_maps=ctx, noise=NoiseFloor("none"), sigma=sigma, n_jobs=n_jobs,
-                      method=engine, scheduler=scheduler, quiet=quiet, stderr=stderr,
-                      input_se=None if b1_se is None else {"b1": b1_se}, **kw)
-    maps.info["method"] = "nonlinear"
+                      method="linear" if method == "linear" else engine, scheduler=scheduler, quiet=quiet,
+                      stderr=stderr, input_se=None if b1_se is None else {"b1": b1_se}, **kw)
+    maps.info["method"] = method
     return maps
 
 
@@ -310,13 +230,23 @@ def run_t1_vfa(
     if not (np.isfinite(t1_typical) and t1_typical > 0):
         raise UsageError(f"--t1-typical {t1_typical}: give a positive time, e.g. 1s or 900ms")
     series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
-                         scalars={"RepetitionTime": (tr, "--tr", True, "RepetitionTimeSpoiled")}, min_volumes=2)
+                         scalars={"RepetitionTime": (tr, "--tr", True, "RepetitionTimeSpoiled")}, min_volumes=2,
+                         max_bytes=common.max_memory)
     fa_used = np.asarray(series.acquisition["FlipAngle"], float)
     tr_used = float(series.acquisition["RepetitionTime"])
-    prefix = common.prefix or default_prefix(series.paths[0])
-    check_outputs_free(common, prefix)
-    check_signal(series)
-    notes = []
+    if b1 is None and (b1_scale is not None or b1_smooth):
+        raise UsageError("--b1-scale / --b1-smooth need --b1 B1MAP")
+    if b1 is None and b1_se not in (None, "auto", "none"):
+        raise UsageError("--b1-stderr FILE needs --b1 B1MAP")
+    proto, proto_note = protocol_check(fa_used, tr_used, t1_typical)
+    # two angles leave no residual degrees of freedom: the noise level is needed under either convention
+    run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=common.stderr == "noise" or fa_used.size == 2,
+                      extra_inputs=[b1] if b1 is not None else None, notes=[proto_note] if proto_note else None,
+                      t0=t0)
+    if run.noise_info is None:
+        run.noise_info = {"mode": "none", "sigma": None}
+    if run.sigma is None and fa_used.size == 2:
+        run.notes.append("two flip angles leave no residual degrees of freedom: standard errors are NaN")
     b1_map, b1_info = None, {"b1": None}
     if b1 is not None:
         b1_map, b1_info = load_b1_map(b1, shape=series.shape, affine=series.affine, scale=b1_scale,
@@ -324,11 +254,8 @@ def run_t1_vfa(
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data"
                    + (f", smoothed FWHM {b1_smooth:g} mm" if b1_smooth else "") + ")")
-    elif b1_scale is not None or b1_smooth:
-        raise UsageError("--b1-scale / --b1-smooth need --b1 B1MAP")
     else:
         b1_desc = NO_B1_NOTE
-    proto, proto_note = protocol_check(fa_used, tr_used, t1_typical)
     options = {"method": method, "t1_typical_s": float(t1_typical), "b1_correction": b1 is not None,
                "sigma": None if sigma is None else str(sigma)}
     options.update(b1_info)
@@ -336,36 +263,19 @@ def run_t1_vfa(
     model_info = {"name": model.name, "equation": EQUATION, "method": method,
                   "estimator": NONLINEAR_DESC if method == "nonlinear" else LINEAR_DESC,
                   "b1_correction": b1_desc, "protocol": proto}
-    if proto_note:
-        notes.append(proto_note)
-    # one path for both methods (run_fit's steps, plus the noise sd for the standard errors)
-    mask, mask_desc = resolve_mask(common.mask, series)
-    sig, noise_info = None, {"mode": "none", "sigma": None}
-    extra_inputs = [b1] if b1 is not None else []
-    if common.stderr == "noise" or fa_used.size == 2:  # two angles: no residual degrees of freedom either way
-        sig, sinfo = sigma_for_stderr(sigma, series, notes=notes)
-        noise_info.update(sinfo)
-        if "path" in sinfo:
-            extra_inputs.append(sinfo["path"])
-        if sig is None and fa_used.size == 2:
-            notes.append("two flip angles leave no residual degrees of freedom: standard errors are NaN")
     b1_se_map = None
     if b1 is not None:
         b1_se_map, se_info = _b1_stderr(b1, b1_se, series, b1_info["b1_scale"])
         options["b1_stderr"] = se_info
         if b1_se_map is not None:
-            extra_inputs.append(se_info["path"])
-            notes.append(f"the B1 map's standard error ({Path(se_info['path']).name}) is propagated into the T1 "
-                         f"standard error")
-    elif b1_se not in (None, "auto", "none"):
-        raise UsageError("--b1-stderr FILE needs --b1 B1MAP")
-    data = np.abs(series.data)
-    maps = fit_t1_vfa(data, fa_used, tr_used, b1=b1_map, method=method, mask=mask, sigma=sig,
-                      n_jobs=common.n_jobs, engine=common.engine, chunk_size=common.chunk_size,
-                      scheduler=common.scheduler, quiet=common.quiet, stderr=common.stderr, b1_se=b1_se_map)
-    report = write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
-                       model_info=dict(model_info, parameters=list(model.param_names)),
-                       extra_inputs=extra_inputs or None, notes=notes, t0=t0, mask_desc=mask_desc)
+            run.inputs.append(se_info["path"])
+            run.notes.append(f"the B1 map's standard error ({Path(se_info['path']).name}) is propagated into the "
+                             f"T1 standard error")
+    maps = run.fit(model, noise=NoiseFloor("none"), ctx_maps=None if b1_map is None else {"b1": b1_map},
+                   method="linear" if method == "linear" else None,
+                   input_se=None if b1_se_map is None else {"b1": b1_se_map})
+    maps.info["method"] = method
+    report = run.write(maps, options=options, model_info=dict(model_info, parameters=list(model.param_names)))
     _b1_summary(report, b1_map, b1_desc)
     return report
 

@@ -179,7 +179,7 @@ def test_linear_method_close_to_nonlinear_on_noisy_data(vfa, tmp_path):
     good = vfa["obj"] & (s_lin == 0) & (s_nl == 0)
     # both are efficient at this SNR (tests/models/test_vfa.py): they differ far less than the noise (~1.5 %)
     assert np.median(np.abs(t_lin[good] / t_nl[good] - 1)) < 2e-3
-    assert prov["options"]["method"] == "linear" and "DESPOT1" in prov["model"]["estimator"]
+    assert prov["options"]["method"] == "linear" and "linearised regression" in prov["model"]["estimator"]
     # the noise level from the background gives the standard errors (the inverse Fisher information)
     assert prov["noise"]["mode"] == "none" and prov["noise"]["sigma"] > 0
     assert prov["noise"]["stderr"]["convention"] == "noise"
@@ -229,7 +229,7 @@ def test_missing_tr_and_ms_hint(vfa, tmp_path, capsys):
 
 
 def test_two_angles_standard_error_from_background(vfa, tmp_path, capsys):
-    # DESPOT1 with two angles (Deoni et al. 2003): the noise comes from the image background, and
+    # the linearised regression with two angles (Deoni et al. 2003): the noise comes from the image background, and
     # the standard error then describes the actual scatter of T1 (within 20 %)
     files = [str(vfa["files"][0]), str(vfa["files"][3])]
     out = tmp_path / "two"

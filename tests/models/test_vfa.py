@@ -2,7 +2,7 @@
 
 References checked against: the spoiled-GRE steady state (Ernst & Anderson,
 Rev Sci Instrum 1966; Bernstein, King & Zhou 2004) written out independently
-in ``_spgr`` below; the linearised DESPOT1 form (Deoni, Rutt & Peters, Magn
+in ``_spgr`` below; the linearised form (Deoni, Rutt & Peters, Magn
 Reson Med 2003;49:515); the optimal two-angle protocol at ~0.71 of the Ernst
 signal (same paper; Schabel & Morrell, Phys Med Biol 2009;54:N1); the
 Cramer-Rao bound (Kay, Fundamentals of Statistical Signal Processing, 1993);
@@ -19,7 +19,8 @@ from scipy.optimize import approx_fprime, brentq, minimize
 
 from qmap.fitting import status as st
 from qmap.maps import fit_volume
-from qmap.models.vfa import SpoiledGRE, despot1, ernst_angle, optimal_angle_pair, t1_crlb
+from qmap.fitting.linearised import fit_chunk_linear
+from qmap.models.vfa import SpoiledGRE, ernst_angle, optimal_angle_pair, t1_crlb
 from qmap.workflows.vfa import fit_t1_vfa, protocol_check
 
 FA = np.array([3.0, 8.0, 15.0, 25.0])
@@ -58,13 +59,13 @@ def test_jacobian_matches_finite_differences():
         np.testing.assert_allclose(model.predict(np.array([[m0, t1]]), ctx)[0], _spgr(FA, TR, t1, m0, b1), rtol=1e-12)
 
 
-def test_despot1_exact_on_noise_free_data():
+def test_linearised_regression_exact_on_noise_free_data():
     # Deoni et al. 2003: S/sin a = E1 S/tan a + M0 (1-E1) is exact for noise-free data,
     # so every weighting recovers T1 and M0 to rounding
     rng = np.random.default_rng(1)
     t1, m0, b1, y = _truth(rng, 500)
     for passes in (0, 1, 4):
-        fit = despot1(y, FA, TR, b1=b1, passes=passes)
+        fit = fit_chunk_linear(SpoiledGRE(FA, TR), y, ctx={"b1": b1}, passes=passes)
         np.testing.assert_allclose(fit.params[:, 1], t1, rtol=1e-9)
         np.testing.assert_allclose(fit.params[:, 0], m0, rtol=1e-9)
         assert np.all(fit.status == 0)
@@ -137,7 +138,7 @@ def test_standard_errors_match_monte_carlo_and_crlb(method):
 
 
 def test_unweighted_regression_is_less_precise():
-    # Why the linear method reweights: the plain DESPOT1 regression (equal weights on
+    # Why the linear method reweights: the plain linearised regression (equal weights on
     # S/sin a) is not efficient (its residuals have unequal variance); the reweighted one
     # reaches the Monte-Carlo sd of the least-squares fit (common practice: weighted least
     # squares with inverse-variance weights)
@@ -146,8 +147,8 @@ def test_unweighted_regression_is_less_precise():
     n, t1, m0 = 4000, 1.0, 1000.0
     fa = np.array([2.0, 5.0, 20.0, 60.0])
     y = _spgr(fa, TR, t1, m0)[None, :] + 0.5 * rng.standard_normal((n, fa.size))
-    sd0 = np.std(despot1(y, fa, TR, passes=0).params[:, 1])
-    sd4 = np.std(despot1(y, fa, TR).params[:, 1])
+    sd0 = np.std(fit_chunk_linear(SpoiledGRE(fa, TR), y, passes=0).params[:, 1])
+    sd4 = np.std(fit_chunk_linear(SpoiledGRE(fa, TR), y).params[:, 1])
     sd_nl = np.std(fit_t1_vfa(y, fa, TR)["T1"])
     # sd of each sd estimate ~1.1 %: a 20 % gap is far outside chance
     assert sd0 > 1.2 * sd4
