@@ -408,3 +408,20 @@ def test_bad_dataset_is_a_usage_error(tmp_path, capsys):
     assert main(["batch", str(tmp_path / "empty"), "-o", str(tmp_path / "empty/sub-01/x")]) == 2
     assert not (tmp_path / "d").exists()
     assert os.listdir(tmp_path / "empty/sub-01") == ["anat"]
+
+
+def test_up_to_date_check_ignores_outputs_of_a_longer_prefix(tmp_path):
+    # regression: outputs of prefix "<p>_b1" were taken for outputs of "<p>" (the same file pattern as
+    # the fitting commands' overwrite check), so a never-fitted series counted as stale, not missing
+    from qmap.batch.plan import SeriesPlan
+    from qmap.batch.series import series_state
+
+    out = tmp_path / "sub-01" / "anat"
+    out.mkdir(parents=True)
+    for name in ("sub-01_acq-vfa_b1_T1map.nii.gz", "sub-01_acq-vfa_b1_provenance.json"):
+        (out / name).write_bytes(b"x")
+    plan = SeriesPlan(subject="01", session=None, suffix="VFA", label="sub-01_flip-*_VFA", inputs=[],
+                      prefix="sub-01_acq-vfa", out_dir=str(out))
+    assert series_state(plan) == ("missing", "")
+    (out / "sub-01_acq-vfa_T1map.nii.gz").write_bytes(b"x")
+    assert series_state(plan)[0] == "stale"
