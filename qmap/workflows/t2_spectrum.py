@@ -10,13 +10,12 @@ through the same machinery as every fitting command.
 
 from __future__ import annotations
 
-import logging
 import time
 
 import numpy as np
 
 from ..engine import fit_voxels
-from ..errors import InputError, UsageError
+from ..errors import InputError, UsageError, warn
 from ..fitting import status as st
 from ..io.writer import OutputFile
 from ..maps import QUALITY_DESCRIPTIONS, MapSet, _Gather
@@ -45,8 +44,6 @@ from ..pipeline import (
 from .decay import load_echoes
 
 __all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
-
-log = logging.getLogger("qmap")
 
 #: fewest echoes a spectrum is fitted from
 MIN_ECHOES = 8
@@ -88,8 +85,8 @@ def _refocus_angle(series, given: float | None) -> float:
              if isinstance(sc, dict) and isinstance(sc.get("RefocusingFlipAngle"), (int, float))}
     if given is not None:
         if found and any(abs(v - given) > 0.5 for v in found):
-            log.warning(f"--refocus {given:g} deg differs from the sidecar RefocusingFlipAngle "
-                        f"{', '.join(f'{v:g}' for v in sorted(found))}; using {given:g}")
+            warn(f"--refocus {given:g} deg differs from the sidecar RefocusingFlipAngle "
+                 f"{', '.join(f'{v:g}' for v in sorted(found))}; using {given:g}")
         return float(given)
     if len(found) > 1:
         raise InputError(f"the sidecars give different RefocusingFlipAngle values ({sorted(found)}); give the nominal "
