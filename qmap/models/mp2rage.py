@@ -211,7 +211,7 @@ def mp2rage_signals(t1: ArrayLike, protocol: MP2RAGEProtocol, b1: ArrayLike = 1.
     Examples
     --------
     >>> p = MP2RAGEProtocol((0.7, 2.5), (4.0, 5.0), 5.0, 0.007, 176)
-    >>> s1, s2 = mp2rage_signals(1.0, p)
+    >>> s1, s2 = mp2rage_signals(2.0, p)  # a long T1 is still inverted at the first block
     >>> bool(s1 < 0 < s2)
     True
     """

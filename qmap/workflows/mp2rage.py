@@ -192,7 +192,7 @@ def fit_t1_mp2rage(
     >>> from qmap.models.mp2rage import MP2RAGEProtocol, mp2rage_uni
     >>> p = MP2RAGEProtocol((0.7, 2.5), (4.0, 5.0), 5.0, 0.007, 176)
     >>> maps = fit_t1_mp2rage(mp2rage_uni(np.array([0.9, 1.6]), p), p)
-    >>> np.round(maps["T1"], 4).tolist()
+    >>> [round(float(t), 4) for t in maps["T1"]]
     [0.9, 1.6]
     """
     u = np.asarray(uni, np.float32)
