@@ -43,7 +43,7 @@ from .errors import InputError, UsageError, warn
 from .fitting import status as st
 from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
 
-__all__ = ["B1_METHODS", "B1_SCALES", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
+__all__ = ["B1_METHODS", "B1_SCALES", "B1ClosedForm", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
            "dam_b1", "load_b1_map", "load_b1_stderr"]
 
 B1_METHODS = ("afi", "dam")
@@ -243,6 +243,70 @@ def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, 
                   units={"TB1": "fraction"}, descriptions={"TB1": desc}, time_params=(),
                   quality={"rsquared": r2.astype(dtype, copy=False), "rmse": rmse.astype(dtype, copy=False)},
                   status=status, info=minfo)
+
+
+class B1ClosedForm:
+    """A B1 estimate in closed form from two images, described for ``qmap inspect``.
+
+    Parameters
+    ----------
+    method : {"afi", "dam"}
+    fa : float
+        Nominal flip angle ``a``, degrees.
+    n : float, optional
+        AFI: ``TR2 / TR1``.
+
+    Attributes
+    ----------
+    varied : str
+        BIDS key that labels the two images (``RepetitionTime`` for AFI, ``FlipAngle`` for DAM).
+    """
+
+    linear: tuple[str, ...] = ()
+    nonlinear = ("TB1",)
+
+    def __init__(self, method: str, fa: float, n: float | None = None):
+        if method not in B1_METHODS:
+            raise ValueError(f"method {method!r}; expected one of {B1_METHODS}")
+        self.name = method
+        self.fa = float(fa)
+        self.n = None if n is None else float(n)
+        self.varied = "RepetitionTime" if method == "afi" else "FlipAngle"
+
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x=None) -> B1ClosedForm:
+        """The estimate a ``qmap b1`` run made, from its provenance ``model`` entry."""
+        return cls(model["name"], float(model["nominal_flip_angle_deg"]), model.get("tr_ratio"))
+
+    def voxel_plot(self, y: np.ndarray, tb1: float) -> dict:
+        """What :func:`qmap.plots.plot_voxel_fit` draws for one voxel with samples ``y`` (2,) and its TB1.
+
+        DAM: the two signals against the nominal angle with ``S = M0 sin(TB1 x)`` through ``S(a)``
+        (full recovery assumed, as the method does; Insko & Bolinger 1993). AFI: the measured ratio
+        ``S2/S1`` at the actual angle on the curve ``r = (1 + n cos a)/(n + cos a)`` (Yarnykh 2007).
+
+        Examples
+        --------
+        >>> d = B1ClosedForm("dam", 30.0).voxel_plot(np.sin(np.radians([33.0, 66.0])), 1.1)
+        >>> d["fitted_at_x"].round(6).tolist() == np.sin(np.radians([33.0, 66.0])).round(6).tolist()
+        True
+        """
+        y = np.asarray(y, float)
+        if self.name == "dam":
+            x = np.array([self.fa, 2.0 * self.fa])
+            xf = np.linspace(0.5, 2.5 * self.fa, 400)
+            m0 = y[0] / np.sin(np.radians(tb1 * self.fa)) if np.isfinite(tb1) else np.nan
+            return {"x": x, "y": y, "x_fine": xf, "curve": m0 * np.sin(np.radians(tb1 * xf)),
+                    "fitted_at_x": m0 * np.sin(np.radians(tb1 * x)), "xlabel": "nominal flip angle",
+                    "x_unit": "deg", "curve_label": "M0 sin(TB1 x angle), through S(a)"}
+        n = float(self.n) if self.n is not None else np.nan
+        angle = tb1 * self.fa
+        xf = np.linspace(1.0, max(90.0, 1.3 * angle if np.isfinite(angle) else 90.0), 400)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = y[1] / y[0]
+        return {"x": np.array([angle]), "y": np.array([r]), "x_fine": xf, "curve": afi_ratio(xf, n),
+                "fitted_at_x": np.atleast_1d(afi_ratio(angle, n)), "xlabel": "actual flip angle (ratio S2/S1)",
+                "x_unit": "deg", "curve_label": f"r = (1 + n cos a)/(n + cos a), n = {n:.3g}"}
 
 
 def load_b1_map(

@@ -319,6 +319,7 @@ def plot_voxel_fit(
     curve_label: str = "fitted model",
     noise_sd: float | None = None,
     notes: Sequence[str] = (),
+    x_log: bool = False,
 ) -> None:
     """Write a PNG of one voxel's fit: samples and fitted curve above, residuals below.
 
@@ -357,6 +358,8 @@ def plot_voxel_fit(
         residual panel.
     notes : sequence of str
         Further lines (model equation, noise handling) under the values.
+    x_log : bool
+        Logarithmic x axis (e.g. inversion times spread over decades).
     """
     x = np.asarray(x, float) * x_scale
     xf = np.asarray(x_fine, float) * x_scale
@@ -384,7 +387,11 @@ def plot_voxel_fit(
     ax.set_title(title, fontsize=11, loc="left")
     ax.grid(alpha=0.3)
     ax.tick_params(labelbottom=False)
-    if x.size and np.min(x) >= 0:
+    if x_log:
+        ax.set_xscale("log")  # shared with the residual panel
+        lo, hi = np.min(x[x > 0]), np.max(x)
+        ax.set_xlim(lo / 1.6, hi * 1.6)
+    elif x.size and np.min(x) >= 0:
         ax.set_xlim(left=0)
     if has_fit:
         axr.axhline(0, color="#1b6ca8", lw=1)

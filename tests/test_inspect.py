@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import re
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -46,9 +47,9 @@ def _at(path, ijk):
     return np.asarray(nib.load(str(path)).dataobj)[ijk]
 
 
-@pytest.mark.parametrize("prefix", ["ir", "vfa", "mese", "megre"])
+@pytest.mark.parametrize("prefix", ["ir", "vfa", "mese", "megre", "b1"])
 def test_printed_values_equal_the_maps(fits, prefix, capsys):
-    ijk = (33, 24, 1)  # inside vial C (right of the centre) for this geometry
+    ijk = (16, 12, 1) if prefix == "b1" else (33, 24, 1)  # inside vial C (B1: its coarser grid)
     assert main(["inspect", str(fits), "--prefix", prefix, "--voxel", ",".join(map(str, ijk))]) == 0
     out = capsys.readouterr().out
     vals = _parse(out)
@@ -56,10 +57,16 @@ def test_printed_values_equal_the_maps(fits, prefix, capsys):
     assert "status 0 (fitted)" in out
     assert "note: refitting" not in out  # the refit of the voxel reproduces the maps
     for param, (v, se) in vals.items():
-        # the printed text reads back to exactly the float32 stored in the map
-        assert np.float32(v) == _at(fits / f"{prefix}_{param}map.nii.gz", ijk)
-        assert np.float32(se) == _at(fits / f"{prefix}_desc-stderr_{param}map.nii.gz", ijk)
-    png = fits / f"{prefix}_voxel-33-24-1.png"
+        # the printed value is the map's, rounded to two significant digits of its standard error (common
+        # practice for reporting a measurement with its uncertainty)
+        mv, mse = _at(fits / f"{prefix}_{param}map.nii.gz", ijk), _at(fits / f"{prefix}_desc-stderr_{param}map.nii.gz", ijk)
+        if np.isfinite(mse) and mse > 0:
+            step = 10.0 ** (np.floor(np.log10(mse)) - 1)
+            assert abs(v - mv) <= 0.5 * step * (1 + 1e-6) and abs(se - mse) <= 0.5 * step * (1 + 1e-6), (v, mv)
+            assert step <= se < 100 * step  # two significant digits
+        else:
+            assert np.float32(v) == mv
+    png = fits / f"{prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
     img = mpimg.imread(str(png))
     assert (img.shape[1], img.shape[0]) == VOXEL_PLOT_SIZE_PX
 
@@ -152,3 +159,25 @@ def test_states_the_standard_error_convention(fits, capsys):
     prov = json.loads((fits / "vfa_provenance.json").read_text())
     assert prov["options"]["b1_stderr"]["propagated"] is False
     assert prov["options"]["b1_stderr"]["path"].endswith("b1_desc-stderr_TB1map.nii.gz")
+
+
+def test_world_coordinates_pick_the_nearest_voxel(fits, capsys, tmp_path):
+    img = nib.load(str(fits / "ir_T1map.nii.gz"))
+    xyz = img.affine @ np.array([33.2, 23.9, 1.1, 1.0])  # near the centre of voxel (33, 24, 1)
+    png = tmp_path / "w.png"
+    assert main(["inspect", str(fits), "--prefix", "ir", "--world", ",".join(f"{v:.3f}" for v in xyz[:3]),
+                 "-o", str(png)]) == 0
+    assert "voxel (33, 24, 1)" in capsys.readouterr().out and png.is_file()
+    assert main(["inspect", str(fits), "--prefix", "ir", "--world", "1e4,0,0"]) == 2
+    assert "outside the maps" in capsys.readouterr().err
+
+
+def test_ir_plot_is_signed_on_a_log_axis(fits, tmp_path, monkeypatch):
+    # magnitude IR: the plotted data carry the polarity the fit restored (negative before the null)
+    from qmap import plots
+
+    seen = {}
+    monkeypatch.setattr(plots, "plot_voxel_fit", lambda path, **kw: (seen.update(kw), Path(path).write_bytes(b"")))
+    assert main(["inspect", str(fits), "--prefix", "ir", "--voxel", "33,24,1", "-o", str(tmp_path / "p.png")]) == 0
+    assert seen["x_log"] is True
+    assert seen["y"][0] < 0 < seen["y"][-1] and seen["curve"][0] < 0 < seen["curve"][-1]

@@ -55,9 +55,24 @@ class SeparableModel(ABC):
     voxel_inputs : tuple of str
         Names of per-voxel inputs the basis needs (e.g. ``("b1",)``); passed
         to :meth:`basis` as ``ctx``.
+    varied : str
+        BIDS key of the acquisition parameter the samples vary in
+        (``"EchoTime"``, ``"InversionTime"``, ``"FlipAngle"``).
+    axis_label : str
+        Plot label of that parameter (without units).
+    discrete : bool
+        The model exists only at the acquired positions (an echo train).
+
+    A model describes itself to the rest of qmap: ``name`` keys it in
+    :data:`qmap.models.REGISTRY` and in the provenance, and
+    :meth:`from_provenance` rebuilds it from what a fit recorded (``qmap
+    inspect`` redraws any fit that way).
     """
 
     name: str = "model"
+    varied: str = "EchoTime"
+    axis_label: str = "echo time"
+    discrete: bool = False
     linear: tuple[str, ...] = ("M0",)
     nonlinear: tuple[str, ...] = ()
     voxel_inputs: tuple[str, ...] = ()
@@ -66,6 +81,19 @@ class SeparableModel(ABC):
     sign_ambiguous: bool = False
     #: the sample-axis values the model is evaluated at (seconds / degrees)
     x: np.ndarray
+
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x: np.ndarray) -> SeparableModel:
+        """The model a fit used, from its provenance ``model`` and ``acquisition`` entries, at positions ``x``.
+
+        ``x`` (seconds / degrees) replaces the acquired values of :attr:`varied` (a fine grid draws the curve).
+        """
+        return cls(x)  # type: ignore[call-arg]
+
+    @property
+    def angles(self) -> bool:
+        """The sample positions are angles (degrees), not times (seconds)."""
+        return self.varied == "FlipAngle"
 
     # ------------------------------------------------------------------ physics
     @property

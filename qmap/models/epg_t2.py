@@ -295,8 +295,18 @@ class EpgT2(SeparableModel):
     """
 
     name = "epg_t2"
+    discrete = True
     linear = ("M0",)
     nonlinear = ("T2", "RefocusCos")
+
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x) -> EpgT2:
+        """The echo train as fitted (``x`` is ignored: the model exists at the echoes only)."""
+        n = int(model.get("n_echoes_in_train") or model["n_echoes"])
+        te = float(model["echo_spacing_s"]) * np.arange(1, n + 1)
+        start = model.get("start_dictionary", {})
+        kw = {k: int(start[s]) for k, s in (("n_t2", "T2"), ("n_scale", "RefocusScale")) if s in start}
+        return cls(te, refocus_deg=float(model["refocus_deg"]), t1=float(model["t1_s"]), **kw)
 
     def __init__(self, te, *, refocus_deg: float = 180.0, t1: float = 1.0, n_t2: int = 60, n_scale: int = 25):
         te = np.asarray(te, float).ravel()

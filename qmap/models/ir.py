@@ -123,7 +123,13 @@ class InversionRecovery(SeparableModel):
     """
 
     name = "ir"
+    varied = "InversionTime"
+    axis_label = "inversion time"
     linear = ("a", "b")
+
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x) -> InversionRecovery:
+        return cls(x, signal=model.get("signal", "magnitude"), look_locker=bool(model.get("look_locker", False)))
 
     def __init__(self, ti: ArrayLike, *, signal: str = "magnitude", look_locker: bool = False):
         if signal not in SIGNALS:

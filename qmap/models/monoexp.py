@@ -39,6 +39,11 @@ class MonoExponential(SeparableModel):
     name = "monoexp"
     linear = ("M0",)
 
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x) -> MonoExponential:
+        param = next((p for p in model.get("parameters", ()) if p in ("T2", "T2star")), "T2star")
+        return cls(x, param=param)
+
     def __init__(self, te, *, param: str = "T2star"):
         self.x = np.asarray(te, dtype=float).ravel()
         self.param = param

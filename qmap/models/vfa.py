@@ -155,10 +155,16 @@ class SpoiledGRE(SeparableModel):
     [[0.047985, 0.079524]]
     """
 
-    name = "spgr"
+    name = "vfa"
+    varied = "FlipAngle"
+    axis_label = "nominal flip angle"
     linear = ("M0",)
     nonlinear = ("T1",)
     voxel_inputs = ("b1",)
+
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x) -> SpoiledGRE:
+        return cls(x, float(acquisition["RepetitionTime"]))
 
     def __init__(self, fa_deg, tr: float, *, t1_bounds: tuple[float, float] | None = None):
         self.x = np.asarray(fa_deg, dtype=float).ravel()

@@ -9,7 +9,9 @@ read from the written maps, so they equal the maps exactly.
 
 What a workflow must record for its fits to be inspectable
 ----------------------------------------------------------
-* ``model["name"]``: a key of :data:`MODELS` (``"monoexp"``, ``"ir"``, ...);
+* ``model["name"]``: a name in :data:`qmap.models.REGISTRY` or :data:`qmap.models.CLOSED_FORMS`
+  (``"monoexp"``, ``"ir"``, ``"vfa"``, ``"dam"``, ...), whose class rebuilds itself with
+  ``from_provenance(model, acquisition, x)``;
 * ``model["parameters"]``: the fitted parameter names (``run_fit`` adds them);
 * the model's constructor settings under ``model`` (``"signal"`` and
   ``"look_locker"`` for ``ir``; ``"refocus_deg"``, ``"t1"`` for ``epg``; ...);
@@ -32,8 +34,9 @@ import numpy as np
 from ..errors import InputError, UsageError, warn
 from ..io.nifti import load_image, read_sidecar
 from ..io.writer import AtomicWriter, sha256_file
+from ..models import CLOSED_FORMS, REGISTRY, model_class
 
-__all__ = ["MODELS", "ModelSpec", "VoxelReport", "find_prefixes", "inspect_voxel", "parse_voxel"]
+__all__ = ["VoxelReport", "find_prefixes", "inspect_voxel", "parse_voxel", "parse_world", "round_to_se"]
 
 
 @dataclass
@@ -55,7 +58,7 @@ class VoxelReport:
         out = [f"{self.prefix}: voxel ({i}, {j}, {k}), status {self.status} ({self.status_text})"]
         for name, v, se, units in self.values:
             u = "" if units in ("1",) else f" {units}"
-            out.append(f"  {name} = {_num(v)} +/- {_num(se)}{u}")
+            out.append(f"  {name} = {round_to_se(v, se)}{u}")
         if self.convention:
             out.append(f"  (+/- is 1 standard error, {CONVENTIONS_SHOWN.get(self.convention, self.convention)})")
         for name, (v, units) in self.quality.items():
@@ -77,6 +80,24 @@ def _num(v) -> str:
     return "nan" if not np.isfinite(v) else str(np.float32(v))
 
 
+def round_to_se(value: float, se: float) -> str:
+    """``value +/- se`` with the value rounded to the standard error's two significant digits.
+
+    Without a finite positive standard error the value is shown as written (float32).
+
+    Examples
+    --------
+    >>> round_to_se(1.234567, 0.0123), round_to_se(1234.567, 56.0), round_to_se(0.5, float("nan"))
+    ('1.235 +/- 0.012', '1235 +/- 56', '0.5 +/- nan')
+    """
+    if not (np.isfinite(value) and np.isfinite(se) and se > 0):
+        return f"{_num(value)} +/- {_num(se)}"
+    decimals = 1 - int(np.floor(np.log10(se)))  # two significant digits of the standard error
+    if decimals > 0:
+        return f"{value:.{decimals}f} +/- {se:.{decimals}f}"
+    return f"{round(value, decimals):.0f} +/- {round(se, decimals):.0f}"
+
+
 def find_prefixes(out_dir: str | Path) -> list[str]:
     """Prefixes of the fits in ``out_dir`` (one per ``{prefix}_provenance.json``)."""
     d = Path(out_dir)
@@ -93,6 +114,17 @@ def parse_voxel(text: str) -> tuple[int, int, int]:
     if len(ijk) != 3 or min(ijk) < 0:
         raise UsageError(f"--voxel {text!r}: expected three 0-based indices I,J,K such as 12,30,4")
     return ijk  # type: ignore[return-value]
+
+
+def parse_world(text: str) -> tuple[float, float, float]:
+    """``"X,Y,Z"`` (mm, scanner coordinates of the NIfTI affine) -> (X, Y, Z)."""
+    try:
+        xyz = tuple(float(t) for t in str(text).split(","))
+    except ValueError:
+        xyz = ()
+    if len(xyz) != 3 or not all(np.isfinite(xyz)):
+        raise UsageError(f"--world {text!r}: expected three coordinates X,Y,Z in mm such as -12.5,30,4")
+    return xyz  # type: ignore[return-value]
 
 
 def _choose_prefix(out_dir: Path, prefix: str | None) -> str:
@@ -172,8 +204,9 @@ def _voxel_samples(paths: list[Path], ijk, key: str, used: np.ndarray, drop_firs
 
 def inspect_voxel(
     out_dir: str | Path,
-    voxel,
+    voxel=None,
     *,
+    world=None,
     prefix: str | None = None,
     out_png: str | Path | None = None,
 ) -> VoxelReport:
@@ -183,8 +216,11 @@ def inspect_voxel(
     ----------
     out_dir : path-like
         The ``-o`` folder of a fitting command.
-    voxel : str or (3,) sequence of int
+    voxel : str or (3,) sequence of int, optional
         0-based indices in NIfTI array order (``"12,30,4"``).
+    world : str or (3,) sequence of float, optional
+        Instead of ``voxel``: scanner coordinates in mm (``"-12.5,30,4"``); the voxel whose centre is
+        nearest (through the maps' affine).
     prefix : str, optional
         Which fit, when ``out_dir`` holds several.
     out_png : path-like, optional
@@ -197,14 +233,24 @@ def inspect_voxel(
     from ..plots import plot_voxel_fit
 
     out_dir = Path(out_dir)
-    ijk = parse_voxel(voxel) if isinstance(voxel, str) else tuple(int(v) for v in voxel)
+    if (voxel is None) == (world is None):
+        raise UsageError("give the voxel either as --voxel I,J,K (indices) or as --world X,Y,Z (mm), not both")
     prefix = _choose_prefix(out_dir, prefix)
     prov = _read_json(out_dir / f"{prefix}_provenance.json")
     outputs = prov.get("outputs", {})
     status_file = next((n for n, o in outputs.items() if o.get("kind") == "status"), None)
     if status_file is None or not (out_dir / status_file).exists():
         raise InputError(f"{out_dir}: the status map of {prefix} is missing; rerun the fit")
-    shape = load_image(out_dir / status_file).shape[:3]
+    status_img = load_image(out_dir / status_file)
+    shape = status_img.shape[:3]
+    if world is not None:
+        xyz = parse_world(world) if isinstance(world, str) else tuple(float(v) for v in world)
+        ijk = tuple(int(v) for v in np.rint(np.linalg.solve(status_img.affine, [*xyz, 1.0])[:3]))
+        if not all(0 <= a < b for a, b in zip(ijk, shape)):
+            raise UsageError(f"--world {','.join(f'{v:g}' for v in xyz)} mm lies outside the maps (nearest voxel "
+                             f"{','.join(map(str, ijk))}, grid {tuple(shape)})")
+    else:
+        ijk = parse_voxel(voxel) if isinstance(voxel, str) else tuple(int(v) for v in voxel)
     if not all(0 <= a < b for a, b in zip(ijk, shape)) or len(ijk) != 3:
         raise UsageError(f"--voxel {','.join(map(str, ijk))} lies outside the map grid {tuple(shape)} "
                          f"(indices are 0-based: 0..{shape[0] - 1}, 0..{shape[1] - 1}, 0..{shape[2] - 1})")
@@ -227,13 +273,14 @@ def inspect_voxel(
     for name, o in outputs.items():
         if o.get("kind") == "quality":
             rep.quality[o["parameter"]] = (_map_value(out_dir / name, ijk), o.get("units", ""))
-    # the curve: rebuild the model and fit this voxel again
+    # the curve: rebuild the model through the registry and fit this voxel again
     mname = prov.get("model", {}).get("name")
-    spec: ModelSpec | None = MODELS.get(mname)
-    if spec is None:
-        raise UsageError(f"{prefix}: model {mname!r} has no fitted curve to draw; inspect redraws the fits of t1-ir, "
-                         f"t1-vfa, t2 and t2star (models {', '.join(MODELS)})")
-    fig = _figure(spec, prov, ijk, rep)
+    try:
+        cls = model_class(str(mname))
+    except KeyError:
+        raise UsageError(f"{prefix}: model {mname!r} has no curve to draw; inspect redraws the models "
+                         f"{', '.join(sorted(REGISTRY) + sorted(CLOSED_FORMS))}") from None
+    fig = _closed_form_figure(cls, prov, ijk, rep) if mname in CLOSED_FORMS else _figure(cls, prov, ijk, rep)
     png = Path(out_png) if out_png is not None else out_dir / f"{prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
     with AtomicWriter(png.parent, overwrite=True) as w:
         w.stage_with(png.name, lambda p: plot_voxel_fit(p, **fig))
@@ -251,92 +298,6 @@ def _voxel_inputs(prov: dict, ijk, key: str):
     drop = bool(prov.get("options", {}).get("drop_first_echo", False))
     paths = _series_paths(prov, used.size + (1 if drop else 0))
     return _voxel_samples(paths, ijk, key, used, drop), used, paths
-
-
-# ----------------------------------------------------------------------------
-# Registry: provenance model name -> how to rebuild the model
-# ----------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class ModelSpec:
-    """How to rebuild a fitted model from its provenance.
-
-    Attributes
-    ----------
-    key : str
-        BIDS key of the varied acquisition parameter.
-    build : callable
-        ``build(provenance, x) -> SeparableModel`` for sample positions ``x``
-        (seconds / degrees); called with the acquired values and a fine grid.
-    xlabel : str
-        Axis label of the sample positions.
-    angles : bool
-        The positions are flip angles (degrees), not times.
-    refit : callable, optional
-        ``refit(provenance, model, y (1, m), ctx) -> fit`` (with ``params``
-        and ``cov``) when the workflow's estimator is not the solver's
-        least squares (e.g. the linear VFA method).
-    discrete : bool
-        The model exists only at the acquired positions (an echo train): the
-        "fine grid" is the echoes themselves, drawn as a connected line.
-    """
-
-    key: str
-    build: object
-    xlabel: str
-    angles: bool = False
-    refit: object = None
-    discrete: bool = False
-
-
-def _build_monoexp(prov, x):
-    from ..models.monoexp import MonoExponential
-
-    params = prov["model"].get("parameters", ["M0", "T2star"])
-    param = next((p for p in params if p in ("T2", "T2star")), "T2star")
-    return MonoExponential(x, param=param)
-
-
-def _build_ir(prov, x):
-    from ..models.ir import InversionRecovery
-
-    m = prov["model"]
-    return InversionRecovery(x, signal=m.get("signal", "magnitude"), look_locker=bool(m.get("look_locker", False)))
-
-
-def _build_spgr(prov, x):
-    from ..models.vfa import SpoiledGRE
-
-    return SpoiledGRE(x, float(prov["acquisition"]["RepetitionTime"]))
-
-
-def _refit_spgr(prov, model, y, ctx):
-    if prov["model"].get("method") != "linear":
-        return None
-    from ..fitting.linearised import fit_chunk_linear
-
-    return fit_chunk_linear(model, y, ctx=ctx or None)
-
-
-def _build_epg(prov, x):
-    from ..models.epg_t2 import EpgT2
-
-    m = prov["model"]
-    n = int(m.get("n_echoes_in_train") or m["n_echoes"])
-    te = float(m["echo_spacing_s"]) * np.arange(1, n + 1)
-    start = m.get("start_dictionary", {})
-    kw = {k: int(start[s]) for k, s in (("n_t2", "T2"), ("n_scale", "RefocusScale")) if s in start}
-    return EpgT2(te, refocus_deg=float(m["refocus_deg"]), t1=float(m["t1_s"]), **kw)
-
-
-#: provenance ``model["name"]`` -> :class:`ModelSpec`
-MODELS: dict[str, ModelSpec] = {
-    "monoexp": ModelSpec("EchoTime", _build_monoexp, "echo time"),
-    "ir": ModelSpec("InversionTime", _build_ir, "inversion time"),
-    "spgr": ModelSpec("FlipAngle", _build_spgr, "nominal flip angle", angles=True, refit=_refit_spgr),
-    "epg_t2": ModelSpec("EchoTime", _build_epg, "echo time", discrete=True),
-}
 
 
 def _noise(prov, ijk):
@@ -393,62 +354,94 @@ def _complex_ir_samples(prov: dict, ijk, y: np.ndarray, ti: np.ndarray) -> np.nd
     return phase_correct(y[None, :], ti)[0]
 
 
-def _figure(spec: ModelSpec, prov: dict, ijk, rep: VoxelReport) -> dict:
-    """Keyword arguments of :func:`qmap.plots.plot_voxel_fit` for this voxel (refits it for the curve)."""
+def _text_lines(rep: VoxelReport) -> list[str]:
+    lines = [f"{name} = {round_to_se(v, se)} {u}" for name, v, se, u in rep.values if np.isfinite(v)]
+    lines += [f"{q} = {v:.5f}" if q == "rsquared" else f"{q} = {v:.4g}" for q, (v, _) in rep.quality.items()
+              if np.isfinite(v)]
+    return lines or ["no estimates at this voxel"]
+
+
+def _title(rep: VoxelReport, ijk) -> str:
+    return f"{rep.prefix}  voxel ({ijk[0]}, {ijk[1]}, {ijk[2]})  status {rep.status}: {rep.status_text}"
+
+
+def _closed_form_figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
+    """Plot of a closed-form estimate (B1): its two samples and the relation it inverted."""
+    form = cls.from_provenance(prov.get("model", {}), prov.get("acquisition", {}))
+    y, _, _ = _voxel_inputs(prov, ijk, form.varied)
+    tb1 = next((v for name, v, _, _ in rep.values if name == "TB1"), float("nan"))
+    fig = form.voxel_plot(np.abs(np.asarray(y, float)), tb1)
+    notes = [f"model: {prov['model']['equation']}"] if prov.get("model", {}).get("equation") else []
+    if not np.isfinite(tb1):
+        rep.notes.append("no valid angle at this voxel; the plot shows its samples only")
+        fig.update(x_fine=fig["x_fine"][:0], curve=fig["curve"][:0], fitted_at_x=np.full_like(fig["y"], np.nan))
+    return dict(fig, lines=_text_lines(rep), notes=notes, title=_title(rep, ijk))
+
+
+def _figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
+    """Keyword arguments of :func:`qmap.plots.plot_voxel_fit` for this voxel (refits it for the curve).
+
+    Magnitude inversion recovery is drawn signed (the polarity the fit restored) on a log TI axis, so
+    that the recovery through the null reads as one curve.
+    """
     from ..engine import fit_voxels
     from ..fitting import status as st
     from ..noise import rician_mean
 
-    y, x, paths = _voxel_inputs(prov, ijk, spec.key)
-    model = spec.build(prov, x)
+    minfo, acq = prov.get("model", {}), prov.get("acquisition", {})
+    y, x, paths = _voxel_inputs(prov, ijk, cls.varied)
+    model = cls.from_provenance(minfo, acq, x)
     if getattr(model, "signal", None) == "complex":
         y = _complex_ir_samples(prov, ijk, y, x)
     magnitude = not np.iscomplexobj(y) and getattr(model, "signal", "magnitude") == "magnitude"
     y = np.abs(y).astype(float) if magnitude else np.real(y).astype(float)
     noise, sigma = _noise(prov, ijk)
     ctx = _ctx(model, prov, ijk, paths[0])
+    signed_ir = model.name == "ir" and magnitude  # polarity restored by the fit: drawn signed
+    log_x = model.name == "ir" and bool(np.all(x > 0))
     hi = float(np.max(x))
-    if spec.discrete:
+    if model.discrete:
         xf = model.x
-    elif spec.angles:
+    elif model.angles:
         xf = np.linspace(0.5, min(180.0, 1.15 * hi), 400)
+    elif log_x:
+        xf = np.geomspace(float(np.min(x)) / 1.5, 1.5 * hi, 400)
     else:
         xf = np.linspace(0.0, 1.05 * hi, 400)
-    lines = [f"{name} = {v:.4g} +/- {se:.2g} {u}" for name, v, se, u in rep.values if np.isfinite(v)]
-    lines += [f"{q} = {v:.5f}" if q == "rsquared" else f"{q} = {v:.4g}" for q, (v, _) in rep.quality.items()
-              if np.isfinite(v)]
     notes = []
-    if prov.get("model", {}).get("equation"):
-        notes.append(f"model: {prov['model']['equation']}")
+    if minfo.get("equation"):
+        notes.append(f"model: {minfo['equation']}")
     notes.append(f"noise floor: {noise.mode}" + (f", sigma {sigma:.4g}" if sigma else ""))
     common = {
-        "x": x, "y": y, "xlabel": spec.xlabel, "lines": lines or ["no estimates at this voxel"],
-        "x_scale": 1.0 if spec.angles else 1e3, "x_unit": "deg" if spec.angles else "ms",
-        "noise_sd": sigma, "notes": notes,
+        "x": x, "y": y, "xlabel": model.axis_label, "lines": _text_lines(rep),
+        "x_scale": 1.0 if model.angles else 1e3, "x_unit": "deg" if model.angles else "ms",
+        "noise_sd": sigma, "notes": notes, "x_log": log_x,
     }
-    title = f"{rep.prefix}  voxel ({ijk[0]}, {ijk[1]}, {ijk[2]})  status {rep.status}: {rep.status_text}"
+    title = _title(rep, ijk)
     keep = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
     ok_ctx = ctx is None or all(np.isfinite(v).all() for v in ctx.values())
     if rep.status not in keep or not np.all(np.isfinite(y)) or not ok_ctx:
         rep.notes.append("this voxel was not fitted; the plot shows its samples only")
         return dict(common, x_fine=x[:0], curve=x[:0], fitted_at_x=np.full_like(y, np.nan), title=title)
     sig = None if sigma is None else np.array([sigma])
-    fit = spec.refit(prov, model, y[None, :], ctx) if spec.refit else None
-    if fit is None:
-        fit = fit_voxels(model, y[None, :], ctx=ctx, noise=noise, sigma=sig, n_jobs=1,
-                         method=prov.get("model", {}).get("engine", "fast"))
+    method = "linear" if minfo.get("method") == "linear" else minfo.get("engine", "fast")
+    fit = fit_voxels(model, y[None, :], ctx=ctx, noise=noise, sigma=sig, n_jobs=1, method=method)
     _check_refit(noise.report(model, fit.params, fit.cov), rep)
-    curve = noise.wrap(spec.build(prov, xf)).predict(fit.params, ctx)[0]
+    curve = noise.wrap(cls.from_provenance(minfo, acq, xf)).predict(fit.params, ctx)[0]
     at_x = noise.wrap(model).predict(fit.params, ctx)[0]
-    if magnitude:
+    if signed_ir:
+        sign = np.where(at_x < 0, -1.0, 1.0)
+        y = y * sign  # the data with the polarity the fit gave them
+        common["y"] = y
+    elif magnitude:
         curve, at_x = np.abs(curve), np.abs(at_x)
     floor = None
     if noise.mode == "rician" and sigma:
         floor = rician_mean(curve, sigma, coils=noise.coils)
         at_x = rician_mean(at_x, sigma, coils=noise.coils)
-    used = noise.weights(y[None, :], sig)[0] > 0
-    label = "fitted model" + (" (magnitude)" if magnitude and getattr(model, "name", "") == "ir" else "")
-    if spec.discrete:
+    used = noise.weights(np.abs(y)[None, :], sig)[0] > 0
+    label = "fitted model" + (" (signed: polarity restored)" if signed_ir else "")
+    if model.discrete:
         label += " at the echoes"
     return dict(common, x_fine=xf, curve=curve, fitted_at_x=at_x, title=title, used=used, floor_curve=floor,
                 curve_label=label)
