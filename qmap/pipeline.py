@@ -11,6 +11,7 @@ import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -364,7 +365,9 @@ class PreparedRun:
             self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
         maps = None
         for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
-            sigma = self.sigma if self.sigma is None or np.ndim(self.sigma) < 3 else self.sigma[:, :, z0:z1]
+            sigma = self.sigma
+            if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
+                sigma = sigma[:, :, z0:z1]
             part = fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs)))
             maps = part if len(slabs) == 1 else place_slab(maps, part, self.series.shape, z0, z1)
         if maps is None:
@@ -462,7 +465,7 @@ def prepare_run(
     file_inputs = list(extra_inputs or [])
     if common.mask is not None and str(common.mask) not in ("auto", "none"):
         file_inputs.append(common.mask)
-    sigma = None
+    sigma: Any = None
     noise_info: dict | None = None
     if noise is not None:
         noise_info = {"mode": noise.mode, "sigma": None}
@@ -486,7 +489,8 @@ def prepare_run(
         noise_info = dict(noise_info or {"mode": "none"}, **sinfo)
         if "path" in sinfo:
             file_inputs.append(sinfo["path"])
-    return PreparedRun(series=series, common=common, prefix=prefix, mask=mask, mask_desc=mask_desc, sigma=sigma,
+    return PreparedRun(series=series, common=common, prefix=prefix, mask=mask, mask_desc=mask_desc,
+                       sigma=None if sigma is None else sigma if isinstance(sigma, np.ndarray) else float(sigma),
                        noise_info=noise_info, inputs=file_inputs, notes=notes, t0=t0)
 
 
@@ -566,7 +570,7 @@ def write_run(
     opts = dict(common.as_dict())
     opts.update(options or {})
     opts["mask"] = mask_desc
-    provenance = {
+    provenance: dict[str, Any] = {
         "qmap_version": __version__,
         "command_line": list(common.command_line if common.command_line is not None else sys.argv),
         "inputs": inputs,

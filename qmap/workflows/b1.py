@@ -117,7 +117,8 @@ def run_b1(
     # (the library default sigma=None stays quiet about an unknown noise level; the command line's "auto" warns)
     run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=True, fallback=NAN_FALLBACK,
                       warn_fallback=sigma is not None, t0=t0)
-    noise_info = run.noise_info
+    noise_info: dict = run.noise_info if run.noise_info is not None else {"mode": "none", "sigma": None}
+    run.noise_info = noise_info
     if run.sigma is None:
         noise_info["stderr"] = (f"not estimable: noise sigma unknown ({noise_info.get('stderr_fallback')}); "
                                 f"standard errors are NaN")

@@ -182,7 +182,8 @@ def _series_paths(prov: dict, n_volumes: int) -> list[Path]:
 def _voxel_samples(paths: list[Path], ijk, key: str, used: np.ndarray, drop_first: bool) -> np.ndarray:
     """The voxel's samples in the order the fit used them (sorted by ``key``, first dropped if so)."""
     i, j, k = ijk
-    vals, sc_vals = [], []
+    vals: list[np.ndarray] = []
+    sc_vals: list[np.ndarray | None] = []
     for p in paths:
         img = load_image(p, what="series")
         if not all(a < b for a, b in zip(ijk, img.shape[:3])):
@@ -192,8 +193,9 @@ def _voxel_samples(paths: list[Path], ijk, key: str, used: np.ndarray, drop_firs
         sc = read_sidecar(p).get(key)
         sc_vals.append(np.atleast_1d(np.asarray(sc, float)).reshape(-1) if isinstance(sc, (int, float, list)) else None)
     y = np.concatenate(vals)
-    if all(s is not None for s in sc_vals):
-        s = np.concatenate(sc_vals)
+    known = [v for v in sc_vals if v is not None]
+    if len(known) == len(sc_vals):
+        s = np.concatenate(known)
         if s.size == y.size:
             order = np.argsort(s, kind="stable")
             cand = s[order][1:] if drop_first else s[order]
@@ -258,7 +260,7 @@ def inspect_voxel(
     codes = prov.get("status_codes", {})
     rep = VoxelReport(prefix=prefix, voxel=ijk, status=status, status_text=codes.get(str(status), "unknown code"))
     # the numbers: straight from the written maps
-    by_param = {}
+    by_param: dict[str, dict[str, tuple[str, str]]] = {}
     for name, o in outputs.items():
         if o.get("kind") in ("estimate", "stderr"):
             by_param.setdefault(o["parameter"], {})[o["kind"]] = (name, o.get("units", ""))
@@ -426,6 +428,8 @@ def _figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
     sig = None if sigma is None else np.array([sigma])
     method = "linear" if minfo.get("method") == "linear" else minfo.get("engine", "fast")
     fit = fit_voxels(model, y[None, :], ctx=ctx, noise=noise, sigma=sig, n_jobs=1, method=method)
+    if fit is None:  # only with on_chunk=
+        raise RuntimeError("fit_voxels returned no fit")
     _check_refit(noise.report(model, fit.params, fit.cov), rep)
     curve = noise.wrap(cls.from_provenance(minfo, acq, xf)).predict(fit.params, ctx)[0]
     at_x = noise.wrap(model).predict(fit.params, ctx)[0]

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -161,7 +162,7 @@ def fit_t1_vfa(
     if data.shape[-1] != fa.size:
         raise ValueError(f"data has {data.shape[-1]} samples per voxel for {fa.size} flip angles")
     model = SpoiledGRE(fa, tr)
-    kw = {} if chunk_size is None else {"chunk_size": chunk_size}
+    kw: dict[str, Any] = {} if chunk_size is None else {"chunk_size": chunk_size}
     if b1_se is not None and b1 is None:
         raise ValueError("b1_se= needs b1=")
     ctx = None
@@ -247,7 +248,8 @@ def run_t1_vfa(
         run.noise_info = {"mode": "none", "sigma": None}
     if run.sigma is None and fa_used.size == 2:
         run.notes.append("two flip angles leave no residual degrees of freedom: standard errors are NaN")
-    b1_map, b1_info = None, {"b1": None}
+    b1_map = None
+    b1_info: dict[str, Any] = {"b1": None}
     if b1 is not None:
         b1_map, b1_info = load_b1_map(b1, shape=series.shape, affine=series.affine, scale=b1_scale,
                                       smooth_fwhm_mm=b1_smooth)
