@@ -221,8 +221,9 @@ def predicted_cv(method: str, samples, values, *, snr: float, tr: float | None =
 
     Examples
     --------
+    >>> # by hand: J^T J = [[0.5215, 17.79], [17.79, 751.1]] (M0 = 1), sd(T2*) = 0.01 sqrt(0.5215 / 75.2) s
     >>> round(float(predicted_cv("t2star", [0.01, 0.02, 0.04], [0.02], snr=100)[0]), 4)
-    0.0218
+    0.0416
     """
     x = np.asarray(samples, float).ravel()
     values = np.atleast_1d(np.asarray(values, float))
