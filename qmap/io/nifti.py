@@ -11,6 +11,7 @@ import nibabel as nib
 import numpy as np
 
 from ..errors import InputError
+from . import gz as _gz  # noqa: F401  (registers ISA-L as nibabel's .gz opener)
 
 __all__ = [
     "check_same_grid",
