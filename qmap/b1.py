@@ -40,6 +40,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .defaults import B1_METHODS, B1_SCALES
 from .errors import InputError, UsageError
 from .fitting import status as st
 from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
@@ -49,8 +50,6 @@ __all__ = ["B1_METHODS", "B1_SCALES", "afi_angle", "afi_b1", "afi_ratio", "b1_ma
 
 log = logging.getLogger("qmap")
 
-B1_METHODS = ("afi", "dam")
-B1_SCALES = ("fraction", "percent")
 #: plausible median of a relative B1 map (fraction)
 B1_MEDIAN_RANGE = (0.2, 5.0)
 

@@ -18,13 +18,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .defaults import DEFAULT_CHUNK
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .fitting.solver import ChunkFit, fit_chunk
 
 __all__ = ["DEFAULT_CHUNK", "Progress", "fit_voxels", "resolve_jobs"]
-
-DEFAULT_CHUNK = 8192
 
 
 def resolve_jobs(n_jobs: int | None) -> int:

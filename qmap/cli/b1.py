@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-from ..b1 import B1_METHODS
-from ..workflows.b1 import run_b1
+from ..defaults import B1_METHODS
 from .common import add_common, angles, common_from_args, finish, times
 
 
@@ -35,6 +34,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.b1 import run_b1
+
     common = common_from_args(args)
     report = run_b1(args.series, common=common, method=args.method, fa=angles(args.fa),
                     tr=times(args.tr, "RepetitionTime", "--tr"), sigma=args.sigma)

@@ -5,8 +5,6 @@ from __future__ import annotations
 import logging
 import sys
 
-from ..batch import run_batch
-
 log = logging.getLogger("qmap")
 
 
@@ -41,6 +39,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..batch import run_batch
+
     if args.scheduler and args.jobs is not None and not args.dry_run:
         log.warning("-j is ignored with --scheduler (the cluster's workers do the work)")
     try:

@@ -4,12 +4,15 @@ from __future__ import annotations
 
 import argparse
 import logging
+from typing import TYPE_CHECKING
 
-from ..engine import DEFAULT_CHUNK
+from ..defaults import DEFAULT_CHUNK
+from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
+from ..defaults import NOISE_MODES as MODES
 from ..errors import UsageError
-from ..fitting.noise_floor import DEFAULT_MODE, MODES
-from ..pipeline import CommonOptions
-from ..units import parse_angle_list, parse_time_list
+
+if TYPE_CHECKING:
+    from ..pipeline import CommonOptions
 
 log = logging.getLogger("qmap")
 
@@ -60,6 +63,8 @@ def add_sigma(p: argparse.ArgumentParser) -> None:
 
 
 def common_from_args(args) -> CommonOptions:
+    from ..pipeline import CommonOptions  # imported on use: `--help` stays fast
+
     if args.jobs is not None and args.jobs == 0:
         raise UsageError("-j 0: give a positive number of workers (or leave -j out for all cores)")
     if args.chunk_size < 1:
@@ -115,10 +120,14 @@ def _positive_int(text: str) -> int:
 
 
 def times(text, key, option):
+    from ..units import parse_time_list
+
     return None if text is None else parse_time_list(text, key=key, what=option)
 
 
 def angles(text, option="--fa"):
+    from ..units import parse_angle_list
+
     return None if text is None else parse_angle_list(text, what=option)
 
 

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from ..workflows.demo import run_demo
-
 
 def add_parser(sub) -> None:
     p = sub.add_parser(
@@ -24,6 +22,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.demo import run_demo
+
     report = run_demo(args.out_dir, n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet,
                       command_line=args.argv)
     print(report.text())

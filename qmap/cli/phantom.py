@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 
 from ..errors import UsageError
-from ..workflows.phantom import run_phantom
 
 
 class _MapAction(argparse.Action):
@@ -83,6 +82,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.phantom import run_phantom
+
     maps = args.maps or []
     report = run_phantom(
         [m[0] for m in maps], params=[m[1] for m in maps], reference=args.reference, out_dir=args.out_dir,

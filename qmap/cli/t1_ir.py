@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-from ..models.ir import SIGNALS
-from ..units import parse_time
-from ..workflows.ir import run_t1_ir
+from ..defaults import IR_SIGNALS as SIGNALS
 from .common import add_common, add_sigma, common_from_args, finish, times
 
 
@@ -48,6 +46,9 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..units import parse_time
+    from ..workflows.ir import run_t1_ir
+
     common = common_from_args(args)
     tr = None if args.tr is None else parse_time(args.tr, key="RepetitionTime", what="--tr")
     report = run_t1_ir(

@@ -26,14 +26,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
+from ..defaults import NOISE_MODES as MODES
 from ..models.base import Derived, SeparableModel
 from .solver import levenberg_marquardt
 
 __all__ = ["DEFAULT_MODE", "MODES", "RICIAN_SWITCH", "NoiseFloor", "WithOffset"]
 
-MODES = ("none", "offset", "truncate", "rician")
-#: default for t2 and t2star: the mode that stays unbiased on low-SNR magnitude data
-DEFAULT_MODE = "rician"
 #: voxels whose lowest fitted sample is below this many sigma get the Rician objective
 #: (relative bias of the Gaussian model there is sigma^2 / (2 S^2) < 0.25 %)
 RICIAN_SWITCH = 15.0

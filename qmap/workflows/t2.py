@@ -18,6 +18,7 @@ import time
 
 import numpy as np
 
+from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..errors import UsageError
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..maps import MapSet, fit_volume
@@ -28,11 +29,6 @@ from ..pipeline import CommonOptions, RunReport, run_fit
 from .decay import load_echoes, noise_options
 
 __all__ = ["DEFAULT_REFOCUS", "DEFAULT_T1", "fit_t2", "run_t2", "t2_model"]
-
-#: fixed T1 of the EPG model, s (its influence on T2 is small; see qmap.models.epg_t2)
-DEFAULT_T1 = 1.0
-#: nominal refocusing angle, degrees
-DEFAULT_REFOCUS = 180.0
 
 
 def t2_model(

@@ -23,6 +23,8 @@ from pathlib import Path
 import numpy as np
 
 from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
+from ..defaults import T1_TYPICAL
+from ..defaults import VFA_METHODS as METHODS
 from ..engine import DEFAULT_CHUNK
 from ..errors import InputError, UsageError
 from ..fitting import status as st
@@ -51,10 +53,6 @@ __all__ = [
     "run_t1_vfa",
 ]
 
-METHODS = ("nonlinear", "linear")
-#: T1 assumed for the protocol note unless --t1-typical is given, seconds (brain white matter at 3 T is
-#: about 0.8-1.1 s: Stanisz et al., Magn Reson Med 2005;54:507, (memory))
-T1_TYPICAL = 1.0
 #: the CRLB of T1 may be this many times that of the optimal two-angle protocol before the note is printed
 PROTOCOL_RATIO = 1.5
 NO_B1_NOTE = ("no B1 correction applied: nominal flip angles assumed (T1 errs roughly in proportion to B1^2 "
