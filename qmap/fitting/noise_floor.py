@@ -17,7 +17,10 @@ Usable by every decay model (mono-exponential T2/T2*, the EPG spin-echo model):
     magnitude under Rician noise, ``E|S + noise|`` (Gudbjartsson & Patz 1995),
     for the voxels whose Gaussian fit comes within ``RICIAN_SWITCH`` sigma of
     the floor; elsewhere the expectation equals ``S`` to better than 0.25 %
-    at the lowest sample and the Gaussian fit is kept.
+    at the lowest sample and the Gaussian fit is kept. Voxels whose samples
+    are consistent with pure noise (:meth:`NoiseFloor.noise_only`) are not
+    fitted at all (status ``NOISE_ONLY``): the engine's fast path for the
+    background under ``--mask none``.
 """
 
 from __future__ import annotations
