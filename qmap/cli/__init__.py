@@ -38,6 +38,7 @@ COMMANDS = {
     "inspect": "inspect_voxel",
     "t1-mp2rage": "t1_mp2rage",
     "plan": "plan",
+    "roi": "roi",
 }
 
 

@@ -21,12 +21,12 @@ from ..errors import InputError, OutputExistsError, UsageError
 from ..io.nifti import image_data, load_image
 from ..qa.compose import MapView, write_outputs
 from ..qa.history import find_trends, merge_session, read_history
-from ..qa.inputs import MapInput, labels_on_grid, load_labels, load_map
+from ..qa.inputs import MapInput, labels_on_grid, load_labels, load_map, status_beside
 from ..qa.layout import place_rois, read_layout
 from ..qa.quantities import conversion
 from ..qa.reference import read_reference
 from ..qa.results import fmt
-from ..qa.rois import roi_masks
+from ..qa.rois import roi_masks, roi_values
 from ..qa.session import session_info
 from ..qa.stats import ERROR_BASIS, RoiResult, roi_statistics
 
@@ -334,19 +334,25 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
                 f"{_fov(lab.shape, lab_aff)}); check that --labels and --map belong to the same scan"
             )
         se_map = _stderr_map(m)
+        status, _, why = status_beside(m.path, m.data.shape, m.affine)
+        if why:
+            notes.append(why)
         for k in wanted:
             e = entries[k]
-            r = roi_statistics(m.data[rois[k]] * factor, label=k, name=e.name, parameter=m.param, unit=unit,
+            values, excluded = roi_values(m.data, rois[k], status)  # the same ROI values as `qmap roi`
+            r = roi_statistics(values * factor, label=k, name=e.name, parameter=m.param, unit=unit,
                                reference=e.values[m.param], tolerance_pct=e.tolerance_pct.get(m.param, tolerance),
                                min_voxels=min_voxels, map_name=m.path.name,
-                               stderr_values=None if se_map is None else se_map[rois[k]] * factor)
+                               stderr_values=None if se_map is None else roi_values(se_map, rois[k], status)[0] * factor)
+            r.n_excluded = int(sum(excluded.values()))
             rows.append(r)
             if r.too_small:
                 notes.append(f"vial {k} {m.param}: {r.n_voxels} usable voxels in the ROI, fewer than the minimum "
                              f"{min_voxels}; counted as not passed -- check the ROI figure, the label image or --erode")
-            elif r.n_nonfinite > 0.1 * (r.n_voxels + r.n_nonfinite):
-                notes.append(f"vial {k} {m.param}: {r.n_nonfinite} of {r.n_voxels + r.n_nonfinite} ROI voxels have "
-                             f"no value in {m.path.name} (failed or masked fits); statistics use the rest")
+            elif r.n_nonfinite + r.n_excluded > 0.1 * (r.n_voxels + r.n_nonfinite + r.n_excluded):
+                notes.append(f"vial {k} {m.param}: {r.n_nonfinite + r.n_excluded} of "
+                             f"{r.n_voxels + r.n_nonfinite + r.n_excluded} ROI voxels have no value in {m.path.name} "
+                             f"or were not fitted (status map); statistics use the rest")
         notes.extend(_unit_sanity(m, [r for r in rows if r.parameter == m.param]))
         views.append(MapView(m, lab_m, rois, factor, unit, resampled))
     return rows, views
