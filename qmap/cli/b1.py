@@ -29,7 +29,7 @@ def add_parser(sub) -> None:
                    help="image noise sd for the standard errors (first-order propagation through the closed form): "
                         "auto (default) estimates it from the images, local a smooth noise map; when it cannot be "
                         "estimated the standard errors are NaN, with a warning; or a value, or a NIfTI noise map")
-    add_common(p)
+    add_common(p, time_maps=False, engine=False)  # TB1 is a fraction, computed in closed form
     p.set_defaults(run=run)
 
 

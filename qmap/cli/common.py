@@ -19,7 +19,9 @@ log = logging.getLogger("qmap")
 __all__ = ["add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
 
 
-def add_common(p: argparse.ArgumentParser) -> None:
+def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bool = True) -> None:
+    """The options of every fitting command; ``time_maps=False`` leaves out ``--units`` and ``engine=False``
+    ``--engine`` (``b1``: a fraction computed in closed form)."""
     g = p.add_argument_group("output and execution (every fitting command)")
     g.add_argument("-o", "--out-dir", required=True, metavar="DIR", help="where outputs go (created if missing)")
     g.add_argument("--prefix", metavar="NAME", help="output name stem (default: from the first input's file name)")
@@ -31,11 +33,15 @@ def add_common(p: argparse.ArgumentParser) -> None:
                    help="run the voxel chunks on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
                         "-j is then ignored")
     g.add_argument("--overwrite", action="store_true", help="replace existing outputs")
-    g.add_argument("--units", choices=("s", "ms"), default="s", help="units of the written time maps (default s)")
-    g.add_argument("-q", "--quiet", action="store_true", help="no progress bar (warnings still go to stderr)")
+    if time_maps:
+        g.add_argument("--units", choices=("s", "ms"), default="s",
+                       help="units of the written time maps (default s, the BIDS convention); rate maps stay in 1/s")
+    g.add_argument("-q", "--quiet", action="store_true",
+                   help="no progress bar and no summary on stdout (warnings and errors still go to stderr)")
     g.add_argument("--preview", action="store_true", help="also write a PNG montage of every estimate map")
-    g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
-                   help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
+    if engine:
+        g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
+                       help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
     g.add_argument("--chunk-size", type=int, default=DEFAULT_CHUNK, metavar="N",
                    help=f"voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
     g.add_argument("--max-memory", metavar="SIZE",
@@ -73,7 +79,8 @@ def common_from_args(args) -> CommonOptions:
         log.warning("-j is ignored with --scheduler (the cluster's workers do the work)")
     return CommonOptions(
         out_dir=args.out_dir, prefix=args.prefix, mask=args.mask, n_jobs=args.jobs, scheduler=args.scheduler,
-        overwrite=args.overwrite, units=args.units, quiet=args.quiet, preview=args.preview, engine=args.engine,
+        overwrite=args.overwrite, units=getattr(args, "units", "s"), quiet=args.quiet, preview=args.preview,
+        engine=getattr(args, "engine", "fast"),
         chunk_size=args.chunk_size, command_line=args.argv, max_memory=parse_size(args.max_memory),
         stderr=getattr(args, "stderr", "noise"),
     )

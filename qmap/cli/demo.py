@@ -17,7 +17,9 @@ def add_parser(sub) -> None:
                    help="output folder (maps/ and phantom/ are created in it)")
     p.add_argument("-j", "--jobs", type=int, default=None, metavar="N", help="local workers (default: all cores)")
     p.add_argument("--overwrite", action="store_true", help="replace the outputs of an earlier demo in DIR")
-    p.add_argument("-q", "--quiet", action="store_true", help="print only the summary table")
+    p.add_argument("-q", "--quiet", action="store_true",
+                   help="no progress bars and no per-fit summaries: print only the summary table (warnings and "
+                        "errors still go to stderr)")
     p.set_defaults(run=run)
 
 

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import argparse
-
 from ..workflows.roi import run_roi
 from .phantom import _MapAction, _ParamAction
 
@@ -24,7 +22,7 @@ def add_parser(sub) -> None:
         "(status 0) are used and the others are counted (n_excluded). Label names come from a BIDS dseg.tsv-style "
         "table (columns index, name) beside the label image with the same stem, or --names. Writes "
         "roi_stats.csv and roi_stats.json into -o and prints the table.",
-        epilog=EXAMPLE, formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EXAMPLE,
     )
     g = p.add_argument_group("inputs")
     g.add_argument("--labels", required=True, metavar="LABELS", help="integer label image (0 = background)")

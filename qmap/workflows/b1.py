@@ -117,11 +117,13 @@ def run_b1(
         raise UsageError(f"--method {method!r}: expected afi or dam")
     if common.engine != "fast":
         raise UsageError("--engine does not apply to qmap b1: B1 is computed in closed form")
+    if common.units != "s":
+        raise UsageError("--units does not apply to qmap b1: it writes no time map (TB1 is a fraction)")
     if method == "afi":
         series, fa_nom, n = _load_afi(inputs, fa, tr)
     else:
         series, fa_nom, n = _load_dam(inputs, fa, tr)
-    prefix = common.prefix or default_prefix(series.paths[0])
+    prefix = common.prefix or default_prefix(series.paths[0], f"tb1{method}")
     check_outputs_free(common, prefix)
     check_signal(series)
     mask, mask_desc = resolve_mask(common.mask, series)

@@ -66,4 +66,5 @@ def run_t2star(
         series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
         options=noise_options(noise_floor, sigma, coils, drop_first),
         model_info={"name": "monoexp", "equation": "S = M0 exp(-TE/T2star)"}, notes=notes, t0=t0,
+        method="megre",
     )

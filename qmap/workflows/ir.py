@@ -198,7 +198,7 @@ def run_t1_ir(
     options = {"signal": signal, "look_locker": bool(look_locker),
                "phase": [str(p) for p in extra] if extra else None, "sigma": None if sigma is None else str(sigma)}
     report = run_fit(series, model, common=common, noise=None, sigma_spec=sigma, options=options,
-                     model_info=model_info, extra_inputs=extra, magnitude=signal == "magnitude", t0=t0)
+                     model_info=model_info, extra_inputs=extra, magnitude=signal == "magnitude", t0=t0, method="irt1")
     good = report.maps.status == 0
     if tr_used is not None and not look_locker and good.any():
         t1_med = float(np.median(report.maps["T1"][good]))

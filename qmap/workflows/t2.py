@@ -182,5 +182,5 @@ def run_t2(
                      f"scale, T1 fixed at {t1:g} s")
     return run_fit(
         series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
-        options=options, model_info=info, notes=notes, t0=t0,
+        options=options, model_info=info, notes=notes, t0=t0, method="mese",
     )

@@ -311,7 +311,7 @@ def run_t1_vfa(
                          scalars={"RepetitionTime": (tr, "--tr", True, "RepetitionTimeSpoiled")}, min_volumes=2)
     fa_used = np.asarray(series.acquisition["FlipAngle"], float)
     tr_used = float(series.acquisition["RepetitionTime"])
-    prefix = common.prefix or default_prefix(series.paths[0])
+    prefix = common.prefix or default_prefix(series.paths[0], "vfa")
     check_outputs_free(common, prefix)
     check_signal(series)
     notes = []

@@ -120,6 +120,14 @@ def test_dam_recovers_b1_from_single_fa(tmp_path):
     assert abs(np.median(err)) < 2e-3 and np.median(np.abs(err)) < 5e-3
     assert prov["acquisition"]["FlipAngle"] == [fa, 2 * fa]
     assert prov["acquisition"]["RepetitionTime"] == 5.0
+    # two images determine B1 exactly: R-squared and the RMS residual are not defined (NaN), not a "perfect fit"
+    for q in ("rsquared", "rmse"):
+        assert np.all(np.isnan(nib.load(str(out / f"dam0_desc-{q}_fitmap.nii.gz")).get_fdata()))
+    assert "exactly determined" in prov["model"]["quality"]
+    # the status map's sidecar lists the codes it uses
+    side = json.loads((out / "dam0_desc-status_fitmap.json").read_text())
+    used = {str(c) for c in np.unique(status)}
+    assert set(side["StatusCodes"]) == used and side["StatusCodes"]["0"] == "fitted"
 
 
 def _bad(args, tmp_path, capsys):
@@ -145,3 +153,6 @@ def test_bad_inputs(tmp_path, capsys):
              for k in (1, 2, 3)]
     assert "two images" in _bad([*three, "--method", "dam"], tmp_path, capsys)
     assert "--method" in _bad([a, b, "--fa", "30"], tmp_path, capsys)  # --method is required
+    # b1 writes no time map and computes B1 in closed form: --units and --engine are not options of b1
+    assert "--units" in _bad([a, b, "--method", "dam", "--fa", "30", "--units", "ms"], tmp_path, capsys)
+    assert "--engine" in _bad([a, b, "--method", "dam", "--fa", "30", "--engine", "lmfit"], tmp_path, capsys)
