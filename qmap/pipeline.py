@@ -176,6 +176,8 @@ def default_prefix(path: str | Path, method: str | None = None) -> str:
         ents, suffix = bids
         label = suffix.lower() if suffix in QMRI_SUFFIXES or method is None else method
         d = dict(ents)
+        if label == "tb1afi" and re.fullmatch(r"tr[0-9]+", d.get("acq", "")):
+            d.pop("acq")  # BIDS numbers the two AFI images by acq-tr1, acq-tr2
         head = [f"sub-{d['sub']}"] + ([f"ses-{d['ses']}"] if "ses" in d else [])
         rest = [f"{k}-{v}" for k, v in ents if k not in ("sub", "ses", "acq", *_VOLUME_ENTITIES)]
         return "_".join(head + [f"acq-{d.get('acq', '')}{label}"] + rest)

@@ -15,7 +15,9 @@ from qmap.pipeline import default_prefix
     ("sub-phantom_echo-1_MESE.nii.gz", "mese", "sub-phantom_acq-mese"),
     ("sub-01_ses-2_acq-fast_run-1_echo-1_part-mag_MEGRE.nii", "megre", "sub-01_ses-2_acq-fastmegre_run-1"),
     ("sub-01_inv-3_IRT1.nii.gz", "irt1", "sub-01_acq-irt1"),
-    ("sub-01_T2w.nii.gz", "mese", "sub-01_acq-mese"),  # not a qMRI suffix: the command's method
+    ("sub-01_T2w.nii.gz", "mese", "sub-01_acq-mese"),
+    ("sub-01_acq-tr1_TB1AFI.nii.gz", "tb1afi", "sub-01_acq-tb1afi"),
+    ("sub-01_acq-tr1_AFI.nii.gz", "tb1afi", "sub-01_acq-tb1afi"),  # not a qMRI suffix: the command's method
     # converter names lose the tokens of one volume and the series number after them
     ("T1_IR_TI100_5.nii.gz", "irt1", "T1_IR"),
     ("GRE_TE5ms_12.nii.gz", "megre", "GRE"),

@@ -69,7 +69,7 @@ def test_afi_two_files_with_sidecars(tmp_path, capsys):
     out = tmp_path / "out"
     assert main(["b1", *map(str, files), "--method", "afi", "-o", str(out)]) == 0
     summary = capsys.readouterr().out
-    tb1, se, status, prov = _read(out, "sub-01_acq-tr1_AFI")
+    tb1, se, status, prov = _read(out, "sub-01_acq-tb1afi")
     good = obj & (status == 0)
     assert good.sum() > 0.9 * obj.sum()
     err = tb1[good] / b1[good] - 1
@@ -78,13 +78,13 @@ def test_afi_two_files_with_sidecars(tmp_path, capsys):
     assert prov["noise"]["sigma"] == pytest.approx(sigma, rel=0.05)
     assert np.std(tb1[good] - b1[good]) == pytest.approx(np.sqrt(np.mean(se[good] ** 2)), rel=0.25)
     assert prov["acquisition"] == {"RepetitionTime": [tr1, tr2], "FlipAngle": fa}
-    assert prov["outputs"]["sub-01_acq-tr1_AFI_TB1map.nii.gz"] == {"parameter": "TB1", "kind": "estimate",
+    assert prov["outputs"]["sub-01_acq-tb1afi_TB1map.nii.gz"] == {"parameter": "TB1", "kind": "estimate",
                                                                    "units": "fraction"}
     assert prov["model"]["name"] == "afi" and prov["model"]["tr_ratio"] == pytest.approx(5.0)
     assert set(prov["status_codes"]) >= {"0", "1", "2", "8"}
     assert sum(prov["status_counts"].values()) == obj.size
     assert "TB1 (fraction): median" in summary
-    side = json.loads((out / "sub-01_acq-tr1_AFI_TB1map.json").read_text())
+    side = json.loads((out / "sub-01_acq-tb1afi_TB1map.json").read_text())
     assert side["Units"] == "fraction"
 
 
