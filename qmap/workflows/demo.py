@@ -158,7 +158,7 @@ def run_demo(out_dir, *, n_jobs: int | None = None, overwrite: bool = False, qui
         rep = DemoReport(out_dir=out, temperature_c=temp)
 
         def common(prefix: str) -> CommonOptions:
-            return CommonOptions(out_dir=maps_dir, prefix=prefix, n_jobs=n_jobs, overwrite=overwrite, units="ms",
+            return CommonOptions(out_dir=maps_dir, prefix=prefix, n_jobs=n_jobs, overwrite=overwrite,
                                  quiet=quiet, preview=True, command_line=command_line)
 
         rep.fits["ir"] = run_t1_ir(_files(data, manifest, "ir"), common=common("ir"))
