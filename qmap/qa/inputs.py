@@ -12,8 +12,17 @@ from ..errors import InputError
 from ..io.nifti import image_data, load_image, read_sidecar, resample_to_grid, same_grid
 from .quantities import PARAMETERS, canonical_param, default_unit, sidecar_unit
 
-__all__ = ["MapInput", "label_names", "labels_on_grid", "load_any_map", "load_labels", "load_map", "param_from_name",
-           "status_beside"]
+__all__ = [
+    "MapInput",
+    "label_names",
+    "labels_on_grid",
+    "load_any_map",
+    "load_labels",
+    "load_map",
+    "map_provenance",
+    "param_from_name",
+    "status_beside",
+]
 
 #: any qmap / BIDS map suffix: ``..._InversionEfficiencymap.nii.gz``, ``..._desc-rsquared_fitmap.nii.gz``
 _ANY_SUFFIX = re.compile(r"^(?P<prefix>.*?)_(?:desc-(?P<desc>[A-Za-z0-9]+)_)?(?P<stem>[A-Za-z0-9]+)map\.nii(?:\.gz)?$")
@@ -48,6 +57,13 @@ class MapInput:
     data: np.ndarray
     affine: np.ndarray
     sidecar: dict = field(default_factory=dict)
+    tag: str = ""  #: user label telling two maps of one parameter apart (``--tag ir``)
+    provenance: dict | None = None  #: what produced the map (see :func:`map_provenance`)
+
+    @property
+    def key(self) -> str:
+        """``T1``, or ``T1 (ir)`` with a tag: how rows, figures and the history name this map's parameter."""
+        return f"{self.param} ({self.tag})" if self.tag else self.param
 
     @property
     def zooms(self) -> np.ndarray:
@@ -275,3 +291,31 @@ def label_names(labels_path: str | Path, names_path: str | Path | None = None) -
             raise InputError(f"{tp} line {k}: expected an integer index and a name, found {ln!r}") from None
         names[idx] = nm
     return names, tp
+
+
+def map_provenance(path: str | Path) -> dict | None:
+    """What produced a map, from qmap's provenance file beside it (``{prefix}_provenance.json``).
+
+    Returns
+    -------
+    dict or None
+        ``{"file", "command", "model", "equation", "qmap_version"}`` when a provenance file beside the map
+        lists it among its outputs; None otherwise.
+    """
+    import json
+
+    p = Path(path)
+    m = _ANY_SUFFIX.match(p.name)
+    if not m:
+        return None
+    prov = p.with_name(f"{m.group('prefix')}_provenance.json")
+    try:
+        doc = json.loads(prov.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(doc, dict) or p.name not in (doc.get("outputs") or {}):
+        return None
+    model = doc.get("model") if isinstance(doc.get("model"), dict) else {}
+    cmd = doc.get("command_line") or []
+    return {"file": str(prov), "command": " ".join(str(c) for c in cmd), "model": model.get("name"),
+            "equation": model.get("equation"), "qmap_version": doc.get("qmap_version")}

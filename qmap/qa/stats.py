@@ -96,6 +96,12 @@ class RoiResult:
     #: about the SD when the spread in the ROI is noise only
     mean_se: float = math.nan
     n_excluded: int = 0  # ROI voxels left out because qmap's status map beside the map says "not fitted"
+    source: str = ""  # the map's --tag (tells two maps of one parameter apart), "" without one
+
+    @property
+    def key(self) -> str:
+        """``T1``, or ``T1 (ir)`` for a tagged map."""
+        return f"{self.parameter} ({self.source})" if self.source else self.parameter
 
     def as_dict(self) -> dict:
         d = asdict(self)
