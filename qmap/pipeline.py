@@ -124,6 +124,8 @@ _SERIES_ENTITY = re.compile(r"_(echo|inv|flip|fa|ti|te)-[0-9a-zA-Z]+")
 _VOLUME_ENTITIES = ("echo", "inv", "flip", "fa", "ti", "te", "part", "mt")
 #: BIDS quantitative-MRI suffixes of fitted series: the output name keeps them as the lowercase acq label
 QMRI_SUFFIXES = ("IRT1", "VFA", "MESE", "MEGRE", "TB1AFI", "TB1DAM", "MP2RAGE", "UNIT1", "MTS", "MPM")
+#: the acq label of a suffix where it is not the lowercase suffix (MP2RAGE's uniform image)
+_SUFFIX_METHOD = {"UNIT1": "mp2rage"}
 #: converter tokens of one volume: a time or angle (``_TI100``, ``_TE12ms``, ``_FA15``), a dcm2niix echo
 #: number (``_e2``) or image part (``_ph``, ``_real``, ``_imaginary``)
 _CONVERTER_TOKEN = re.compile(r"_(?:(?:TI|TE|TR|FA|ti|te|tr|fa|flip)[0-9]+(?:[.p][0-9]+)?(?:ms|s|deg)?|e[0-9]+|ph|real|"
@@ -174,7 +176,7 @@ def default_prefix(path: str | Path, method: str | None = None) -> str:
     bids = _bids_parts(name)
     if bids is not None:
         ents, suffix = bids
-        label = suffix.lower() if suffix in QMRI_SUFFIXES or method is None else method
+        label = _SUFFIX_METHOD.get(suffix, suffix.lower()) if suffix in QMRI_SUFFIXES or method is None else method
         d = dict(ents)
         if label == "tb1afi" and re.fullmatch(r"tr[0-9]+", d.get("acq", "")):
             d.pop("acq")  # BIDS numbers the two AFI images by acq-tr1, acq-tr2

@@ -17,7 +17,8 @@ from qmap.pipeline import default_prefix
     ("sub-01_inv-3_IRT1.nii.gz", "irt1", "sub-01_acq-irt1"),
     ("sub-01_T2w.nii.gz", "mese", "sub-01_acq-mese"),
     ("sub-01_acq-tr1_TB1AFI.nii.gz", "tb1afi", "sub-01_acq-tb1afi"),
-    ("sub-01_acq-tr1_AFI.nii.gz", "tb1afi", "sub-01_acq-tb1afi"),  # not a qMRI suffix: the command's method
+    ("sub-01_acq-tr1_AFI.nii.gz", "tb1afi", "sub-01_acq-tb1afi"),
+    ("sub-01_UNIT1.nii.gz", None, "sub-01_acq-mp2rage"),  # not a qMRI suffix: the command's method
     # converter names lose the tokens of one volume and the series number after them
     ("T1_IR_TI100_5.nii.gz", "irt1", "T1_IR"),
     ("GRE_TE5ms_12.nii.gz", "megre", "GRE"),
@@ -41,7 +42,8 @@ def test_last_line_names_the_main_map(megre, tmp_path, capsys):
 def test_every_command_has_an_example_and_quiet(cmd, capsys):
     assert main([cmd, "--help"]) == 0
     out = capsys.readouterr().out
-    assert out.count("example:") == 1 and f"qmap {cmd} " in out.split("example:")[1]
+    tail = out[out.lower().rindex("example"):]  # "example:" (or a command's own "Examples:") ends the help
+    assert f"qmap {cmd} " in tail
     assert "-q, --quiet" in out and "stderr" in " ".join(out.split("-q, --quiet")[1].split())[:200]
 
 
