@@ -75,6 +75,7 @@ EXAMPLES = {
     "batch": "qmap batch /data/bids -o /data/bids/derivatives/qmap --dry-run",
     "demo": "qmap demo -o qmap-demo",
     "inspect": "qmap inspect out --voxel 24,24,2",
+    "t2-spectrum": "qmap t2-spectrum sub-01_echo-*_MESE.nii.gz --window 10ms,40ms -o out",
 }
 
 
