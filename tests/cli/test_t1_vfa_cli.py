@@ -289,8 +289,8 @@ def test_b1_standard_error_beside_the_map_is_propagated(vfa, tmp_path, capsys):
                  "-q"]) == 0
     t1, status, prov = _maps(tmp_path / "with")
     _, _, prov_none = _maps(tmp_path / "without")
-    se_with = nib.load(str(tmp_path / "with" / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
-    se_none = nib.load(str(tmp_path / "without" / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
+    se_with = nib.load(str(tmp_path / "with" / "sub-01_acq-vfa_desc-stderr_T1map.nii.gz")).get_fdata()
+    se_none = nib.load(str(tmp_path / "without" / "sub-01_acq-vfa_desc-stderr_T1map.nii.gz")).get_fdata()
     good = vfa["obj"] & (status == 0) & _inside_b1_fov(1.0)
     added = np.sqrt(se_with[good] ** 2 - se_none[good] ** 2)
     expected = 2.0 * t1[good] * 0.02 / vfa["b1_true"][good]
