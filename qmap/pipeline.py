@@ -25,6 +25,7 @@ from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
 from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 from .noise_level import background_sigma, object_mask
+from .record import run_record
 
 __all__ = ["QMRI_SUFFIXES", "CommonOptions", "RunReport", "check_outputs_free", "check_signal", "default_prefix", "resolve_mask", "resolve_sigma", "run_fit", "sigma_for_stderr", "write_run"]
 
@@ -426,7 +427,7 @@ def run_fit(
         )
         maps = part if len(slabs) == 1 else place_slab(maps, part, series.shape, z0, z1)
     return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
-                     model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)),
+                     model_info={"parameters": list(model.param_names), **(model_info or {"name": model.name})},
                      extra_inputs=file_inputs, notes=notes, t0=t0, mask_desc=mask_desc)
 
 
@@ -489,6 +490,7 @@ def write_run(
     opts = dict(common.as_dict())
     opts.update(options or {})
     opts["mask"] = mask_desc
+    opts["run"] = run_record()  # date, versions, warnings (qmap.record)
     provenance = {
         "qmap_version": __version__,
         "command_line": list(common.command_line if common.command_line is not None else sys.argv),

@@ -51,3 +51,62 @@ def test_quiet_silences_a_command_without_its_own_summary_switch(tmp_path, capsy
     assert main(["simulate", "-o", str(tmp_path / "s"), "--protocol", "megre", "--shape", "24,24,1", "-q"]) == 0
     assert capsys.readouterr().out == ""
     assert (tmp_path / "s" / "simulation.json").is_file()
+
+
+def test_distribution_name_is_our_own():
+    """The package index already has an unrelated ``qmap``: the distribution has a name of its own."""
+    import tomllib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    conf = tomllib.loads((root / "pyproject.toml").read_text())
+    assert conf["project"]["name"] == "qmap-relaxometry"
+    assert conf["project"]["scripts"] == {"qmap": "qmap.cli:main"}
+    assert "qmap-relaxometry" in (root / "README.md").read_text()
+
+
+def test_ir_provenance_names_qmaps_own_parameters(tmp_path):
+    """The IR model is recorded as M0, inversion efficiency and T1 (the fitted amplitudes a, b are internal)."""
+    import json
+
+    import numpy as np
+
+    from tests.conftest import write_nifti
+
+    ti = np.array([0.05, 0.15, 0.4, 0.8, 1.5, 3.0])
+    x = np.indices((24, 24, 1))[0]
+    obj = (np.indices((24, 24, 1))[1] - 11.5) ** 2 + (x - 11.5) ** 2 < 64
+    t1 = np.where(obj, 0.5 + 0.05 * x, 1.0)
+    sig = np.where(obj[..., None], 1000 * np.abs(1 - 1.95 * np.exp(-ti / t1[..., None])), 0.0)
+    path = write_nifti(tmp_path / "sub-01_IRT1.nii.gz", sig, sidecar={"InversionTime": ti.tolist()})
+    assert main(["t1-ir", str(path), "-o", str(tmp_path / "o"), "-q"]) == 0
+    prov = json.loads((tmp_path / "o" / "sub-01_acq-irt1_provenance.json").read_text())
+    assert prov["model"]["parameters"] == ["M0", "InversionEfficiency", "T1"]
+    assert prov["model"]["equation"].startswith("S = M0 (1 - (1 + InversionEfficiency) exp(-TI/T1))")
+
+
+def test_provenance_records_date_versions_and_warnings(megre, tmp_path, capsys):
+    """Warnings go into the provenance as well as stderr; the top-level keys stay exactly the contract's."""
+    import json
+
+    import nibabel
+    import numpy
+    import scipy
+
+    path, te, *_ = megre
+    other = ",".join(f"{1e3 * t * 1.01:.4f}ms" for t in te)  # disagrees with the sidecar EchoTime by 1 %
+    assert main(["t2star", str(path), "--te", other, "-o", str(tmp_path / "o"), "--sigma", "5", "-q"]) == 0
+    err = capsys.readouterr().err
+    prov = json.loads((tmp_path / "o" / "sub-01_acq-megre_provenance.json").read_text())
+    assert list(prov) == ["qmap_version", "command_line", "inputs", "acquisition", "options", "model", "noise",
+                          "status_counts", "status_codes", "wall_time_s", "outputs"]
+    run = prov["options"]["run"]
+    assert run["versions"] == {"qmap": prov["qmap_version"], "python": run["versions"]["python"],
+                               "numpy": numpy.__version__, "scipy": scipy.__version__, "nibabel": nibabel.__version__}
+    assert run["date"][:4].isdigit() and run["date"].endswith("+00:00")
+    warned = [ln.removeprefix("qmap: warning: ") for ln in err.splitlines() if ln.startswith("qmap: warning:")]
+    assert warned and run["warnings"] == warned and "EchoTime" in run["warnings"][0]
+    # a second run in the same process records only its own warnings
+    assert main(["t2star", str(path), "-o", str(tmp_path / "p"), "--sigma", "5", "-q"]) == 0
+    assert json.loads((tmp_path / "p" / "sub-01_acq-megre_provenance.json").read_text())["options"]["run"][
+        "warnings"] == []

@@ -28,6 +28,7 @@ from ..pipeline import (
     resolve_sigma,
     write_run,
 )
+from ..record import recorded
 
 __all__ = ["EQUATIONS", "run_b1"]
 
@@ -76,6 +77,7 @@ def _load_dam(inputs, fa, tr):
     return series, float(a[0]), None
 
 
+@recorded
 def run_b1(
     inputs,
     *,

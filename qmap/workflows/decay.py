@@ -10,6 +10,7 @@ from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..io.series import load_series
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
+from ..record import recorded
 
 __all__ = ["load_echoes", "noise_options", "run_t2star"]
 
@@ -31,6 +32,7 @@ def load_echoes(inputs, *, te, drop_first: bool, common: CommonOptions, min_volu
     return series, notes
 
 
+@recorded
 def run_t2star(
     inputs,
     *,

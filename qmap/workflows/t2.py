@@ -26,6 +26,7 @@ from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
+from ..record import recorded
 from .decay import load_echoes, noise_options
 
 __all__ = ["DEFAULT_REFOCUS", "DEFAULT_T1", "fit_t2", "run_t2", "t2_model"]
@@ -140,6 +141,7 @@ def fit_t2(
     return maps
 
 
+@recorded
 def run_t2(
     inputs,
     *,

@@ -42,6 +42,7 @@ from ..pipeline import (
     resolve_sigma,
     write_run,
 )
+from ..record import recorded
 from .decay import load_echoes
 
 __all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
@@ -308,6 +309,7 @@ def fit_t2_spectrum(
     return maps, extra
 
 
+@recorded
 def run_t2_spectrum(
     inputs,
     *,

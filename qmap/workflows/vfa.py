@@ -43,6 +43,7 @@ from ..pipeline import (
     sigma_for_stderr,
     write_run,
 )
+from ..record import recorded
 
 __all__ = [
     "METHODS",
@@ -252,6 +253,7 @@ def fit_t1_vfa(
     return maps
 
 
+@recorded
 def run_t1_vfa(
     inputs,
     *,
