@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from ..workflows.roi import run_roi
 from .phantom import _MapAction, _ParamAction
 
 EXAMPLE = """example:
@@ -50,6 +49,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.roi import run_roi  # on use: --help loads no numerical library
+
     maps = args.maps or []
     report = run_roi([m[0] for m in maps], params=[m[1] for m in maps], labels=args.labels, out_dir=args.out_dir,
                      names=args.names, erode=args.erode, per_slice=args.per_slice, use_status=not args.all_voxels,
