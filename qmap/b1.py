@@ -39,6 +39,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .defaults import B1_METHODS, B1_SCALES
 from .errors import InputError, UsageError, warn
 from .fitting import status as st
 from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
@@ -46,8 +47,6 @@ from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
 __all__ = ["B1_METHODS", "B1_SCALES", "B1ClosedForm", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
            "dam_b1", "load_b1_map", "load_b1_stderr"]
 
-B1_METHODS = ("afi", "dam")
-B1_SCALES = ("fraction", "percent")
 #: plausible median of a relative B1 map (fraction)
 B1_MEDIAN_RANGE = (0.2, 5.0)
 
@@ -229,10 +228,10 @@ def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, 
         tb1, se, status = dam_b1(data[..., 0], data[..., 1], fa, mask=mask, sigma=sigma)
     else:
         raise ValueError(f"method {method!r}; expected one of {B1_METHODS}")
-    ok = status == st.FITTED
-    tss = np.sum((data - data.mean(axis=-1, keepdims=True)) ** 2, axis=-1)
-    r2 = np.where(ok & (tss > 0), 1.0, np.nan)
-    rmse = np.where(ok, 0.0, np.nan)
+    # two images determine B1 exactly (closed form): no residual, so R-squared and the RMS residual are not
+    # defined -- written as NaN (see QUALITY_DESCRIPTIONS), not as a perfect fit
+    r2 = np.full(status.shape, np.nan)
+    rmse = np.full(status.shape, np.nan)
     how = ("actual flip-angle imaging (Yarnykh 2007)" if method == "afi"
            else "the double-angle method (Insko & Bolinger 1993)")
     desc = f"relative transmit field B1 (actual / nominal flip angle, 1.0 = nominal) by {how}"

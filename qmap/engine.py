@@ -18,13 +18,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .defaults import DEFAULT_CHUNK
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .fitting.solver import ChunkFit, fit_chunk
 
 __all__ = ["DEFAULT_CHUNK", "Progress", "fit_voxels", "resolve_jobs"]
-
-DEFAULT_CHUNK = 8192
 
 
 def resolve_jobs(n_jobs: int | None) -> int:
@@ -78,7 +77,27 @@ def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast", stderr="noise
         from .fitting.lmfit_engine import fit_chunk_lmfit
 
         return fit_chunk_lmfit(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter, stderr=stderr)
-    return fit_chunk(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter, stderr=stderr)
+    # fast path: voxels with no signal above the noise floor are recognised and not fitted
+    quiet = noise.noise_only(y, sigma) if noise is not None else np.zeros(y.shape[0], bool)
+    if not quiet.any():
+        return fit_chunk(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter, stderr=stderr)
+    keep = np.flatnonzero(~quiet)
+    if keep.size == 0:
+        part = _concat([], model, noise, 0, y.shape[1])
+    else:
+        part = fit_chunk(model, y[keep], ctx=None if not ctx else {k: v[keep] for k, v in ctx.items()}, noise=noise,
+                         sigma=None if sigma is None or np.ndim(sigma) == 0 else np.asarray(sigma)[keep],
+                         max_iter=max_iter, stderr=stderr)
+    out = {}
+    for f in ChunkFit.__dataclass_fields__:
+        a = getattr(part, f)
+        full = np.full((y.shape[0],) + a.shape[1:], np.nan if a.dtype.kind == "f" else 0, a.dtype)
+        full[keep] = a
+        out[f] = full
+    res = ChunkFit(**out)
+    res.status[quiet] = st.NOISE_ONLY
+    res.n_used[quiet] = y.shape[1]
+    return res
 
 
 @dataclass

@@ -59,6 +59,24 @@ decay by exp(-esp/T2), Z rows by exp(-esp/T1), and the orders move by two
 j < min(m, n_echoes - m + 1) are populated *and* still able to reach a later
 echo, so at most (n_echoes + 1) // 2 + 1 rows are stored.
 
+One kernel, in terms of c = cos(a)
+----------------------------------
+With the stored states carried as Y = sin(a) Z the pulse becomes
+(s2 = (1 - c)/2, h = (1 - c^2)/2)
+
+    P' = P + s2 (N - P) + Y
+    N' = N - s2 (N - P) - Y
+    Y' = h (N - P) + c Y
+
+so the train depends on the refocusing angle only through c, polynomially.
+:func:`cpmg_cos` runs this recursion (with derivatives with respect to T2 and
+c); the T2 model fits c directly (:mod:`qmap.models.epg_t2`), and
+:func:`cpmg_echoes` / :func:`cpmg_echoes_grad` call it with
+c = cos(b1 * refocus) and multiply by |sin(excitation)|, applying the chain
+rule for the derivative with respect to ``b1``. There is no second EPG
+implementation in the package; the tests check this one against an
+independent isochromat simulation.
+
 Numerics
 --------
 Voxels run along the last axis of (rows, voxels) state arrays, processed in
@@ -66,8 +84,7 @@ internal blocks that fit the CPU cache, with a Python loop over echoes only.
 Every voxel goes through the same element-wise operations whatever the
 number or order of voxels in the call (no BLAS, no reductions across
 voxels), so results are bit-identical for any chunking. Derivatives with
-respect to T2 and the scale are propagated in forward mode alongside the
-states.
+respect to T2 and c are propagated in forward mode alongside the states.
 """
 
 from __future__ import annotations
@@ -80,10 +97,10 @@ from numpy.typing import ArrayLike, NDArray
 
 from qmap.errors import InputError, UsageError
 
-__all__ = ["cpmg_echoes", "cpmg_echoes_grad", "n_state_rows"]
+__all__ = ["cpmg_cos", "cpmg_echoes", "cpmg_echoes_grad", "n_state_rows"]
 
 #: Voxels per internal block (state arrays of a block stay in the CPU cache).
-_BLOCK = 4096
+_BLOCK = 2048
 
 
 def n_state_rows(n_echoes: int) -> int:
@@ -179,212 +196,186 @@ def _prepare(
     return _Inputs(t2a, b1a, t1a, esp_f, int(n_echoes), float(refocus_deg), float(excite_deg))
 
 
-def _coefficients(inp: _Inputs, sl: slice, scale_excitation: bool) -> dict[str, NDArray[np.float64]]:
-    """Per-voxel pulse and relaxation factors (and their derivatives) for one block."""
-    t2 = inp.t2[sl]
-    b1 = inp.b1[sl]
-    t1 = inp.t1[sl]
-    half_esp = 0.5 * inp.esp
-    with np.errstate(over="ignore"):  # T2 so short that esp/T2 overflows: no signal
-        x2 = half_esp / t2
-    e2h = np.exp(-x2)
-    e2 = e2h * e2h
-    e1 = np.exp(-inp.esp / t1)
-    alpha = inp.refocus_deg * b1  # degrees
-    s2 = _sind(0.5 * alpha)
-    s2 *= s2
-    sa = _sind(alpha)
-    ca = _sind(90.0 - alpha)
-    hs = 0.5 * sa
-    beta = inp.excite_deg * b1 if scale_excitation else np.full_like(b1, inp.excite_deg)
-    sb = _sind(beta)
-    # d/dT2 of the relaxation factors (0 for T2 = inf and where e2h underflows)
-    with np.errstate(over="ignore", invalid="ignore"):
-        de2h = np.where(e2h > 0.0, e2h * x2 / t2, 0.0)
-    de2 = 2.0 * e2h * de2h
-    # d/db1 of the pulse factors (chain rule through alpha = b1 * refocus)
-    ar = math.radians(inp.refocus_deg)
-    ds2 = hs * ar
-    dsa = ca * ar
-    dhs = 0.5 * dsa
-    dca = -sa * ar
-    dsb = _sind(90.0 - beta) * math.radians(inp.excite_deg) if scale_excitation else np.zeros_like(b1)
-    return {
-        "e2h": e2h, "e2": e2, "e1": e1, "s2": s2, "sa": sa, "ca": ca, "hs": hs, "sb": sb,
-        "de2h": de2h, "de2": de2, "ds2": ds2, "dsa": dsa, "dhs": dhs, "dca": dca, "dsb": dsb,
-    }  # fmt: skip
+def cpmg_cos(t2: ArrayLike, c: ArrayLike, *, esp: float, n_echoes: int, t1: ArrayLike = 1.0, grad: bool = False):
+    """CPMG echo magnitudes (ideal 90 degree excitation) as a function of c = cos(refocusing angle).
 
+    Parameters
+    ----------
+    t2 : (n,) ndarray
+        T2 in seconds (> 0).
+    c : (n,) ndarray
+        Cosine of the refocusing angle; values below -1 continue the train
+        analytically (see the module notes).
+    esp : float
+        Echo spacing, s; echo k at k * esp.
+    n_echoes : int
+        Echoes in the train.
+    t1 : float or (n,) ndarray
+        T1, s (``inf`` allowed): one value or one per voxel.
+    grad : bool
+        Also return the derivatives with respect to T2 (1/s) and c.
 
-class _States:
-    """One set of (P, N, Z) state rows plus scratch rows for a block of voxels."""
+    Returns
+    -------
+    S : (n, n_echoes) ndarray
+        Echo magnitudes for M0 = 1.
+    dS_dT2, dS_dc : (n, n_echoes) ndarray
+        Only with ``grad``.
 
-    def __init__(self, rows: int, nb: int) -> None:
-        self.P = np.zeros((rows, nb))
-        self.N = np.zeros((rows, nb))
-        self.Z = np.zeros((rows, nb))
-        self.newP = np.empty((rows, nb))
-        self.newN = np.empty((rows, nb))
-        self.newZ = np.empty((rows, nb))
-
-    def reset(self) -> None:
-        self.P.fill(0.0)
-        self.N.fill(0.0)
-        self.Z.fill(0.0)
-
-
-def _pulse(
-    st: _States,
-    a: int,
-    s2: NDArray[np.float64],
-    sa: NDArray[np.float64],
-    hs: NDArray[np.float64],
-    ca: NDArray[np.float64],
-    D: NDArray[np.float64],
-    U: NDArray[np.float64],
-    T: NDArray[np.float64],
-) -> None:
-    """Refocusing pulse on rows ``[:a]`` of ``st`` (uses c2 = 1 - s2).
-
-    Leaves ``D = N - P`` in the scratch row block ``D[:a]`` for the
-    derivative pass. Results go to ``st.newP/newN/newZ``.
+    Notes
+    -----
+    Voxels run along the last axis of (rows, voxels) state arrays, in blocks
+    of ``_BLOCK`` voxels, with a Python loop over the echoes only; every voxel
+    sees the same element-wise operations whatever the call's size, so the
+    results do not depend on chunking.
     """
-    p, q, z = st.P[:a], st.N[:a], st.Z[:a]
-    d, u, t = D[:a], U[:a], T[:a]
-    np.subtract(q, p, out=d)
+    t2 = np.ascontiguousarray(t2, dtype=np.float64).ravel()
+    c = np.ascontiguousarray(np.broadcast_to(np.asarray(c, np.float64), t2.shape))
+    n, E = t2.size, int(n_echoes)
+    S = np.empty((n, E))
+    dT = np.empty((n, E)) if grad else None
+    dC = np.empty((n, E)) if grad else None
+    with np.errstate(divide="ignore"):
+        e1_all = np.exp(-esp / np.asarray(t1, np.float64))
+    block = _BLOCK
+    work = _Work(n_state_rows(E), E, min(block, max(n, 1)), grad)
+    for i0 in range(0, n, block):
+        sl = slice(i0, min(i0 + block, n))
+        e1 = float(e1_all) if e1_all.ndim == 0 else np.ascontiguousarray(np.broadcast_to(e1_all, (n,))[sl])
+        _train_block(work, t2[sl], c[sl], 0.5 * esp, E, e1, grad, S[sl], None if dT is None else dT[sl],
+                     None if dC is None else dC[sl])
+    return (S, dT, dC) if grad else S
+
+
+class _Work:
+    """State and scratch arrays of one block (allocated once per call)."""
+
+    def __init__(self, rows: int, E: int, nb: int, grad: bool):
+        self.nb = nb
+        k = 3 + 3 * 2 * grad  # state sets: values (+ d/dT2, d/dc)
+        self.states = np.zeros((k, rows, nb))
+        self.new = np.empty((k, rows, nb))
+        self.scratch = np.empty((4, rows, nb))
+        self.echo = np.empty((3 if grad else 1, E, nb))
+
+    def view(self, nb: int):
+        if nb == self.nb:
+            return self.states, self.new, self.scratch, self.echo
+        return self.states[..., :nb], self.new[..., :nb], self.scratch[..., :nb], self.echo[..., :nb]
+
+
+def _pulse(P, N, Y, a, s2, h, c, D, U, nP, nN, nY):
+    """Refocusing pulse on rows [:a]: D = N - P, U = s2 D + Y; P' = P + U, N' = N - U, Y' = h D + c Y."""
+    d, u = D[:a], U[:a]
+    np.subtract(N[:a], P[:a], out=d)
     np.multiply(s2, d, out=u)
-    np.multiply(sa, z, out=t)
-    u += t  # u = s2 (N - P) + sin(a) Z
-    np.add(p, u, out=st.newP[:a])
-    np.subtract(q, u, out=st.newN[:a])
-    nz = st.newZ[:a]
-    np.multiply(hs, d, out=nz)
-    np.multiply(ca, z, out=t)
-    nz += t
+    u += Y[:a]
+    np.add(P[:a], u, out=nP[:a])
+    np.subtract(N[:a], u, out=nN[:a])
+    np.multiply(h, d, out=nY[:a])
+    np.multiply(c, Y[:a], out=u)
+    nY[:a] += u
 
 
-def _pulse_b1_extra(
-    st: _States,
-    dst: _States,
-    a: int,
-    ds2: NDArray[np.float64],
-    dsa: NDArray[np.float64],
-    dhs: NDArray[np.float64],
-    dca: NDArray[np.float64],
-    D: NDArray[np.float64],
-    T: NDArray[np.float64],
-    U: NDArray[np.float64],
-) -> None:
-    """Add the terms from d(pulse coefficients)/db1 acting on the value states."""
-    d, t, u = D[:a], T[:a], U[:a]
-    z = st.Z[:a]
-    np.multiply(ds2, d, out=u)
-    np.multiply(dsa, z, out=t)
-    u += t
-    dst.newP[:a] += u
-    dst.newN[:a] -= u
-    np.multiply(dhs, d, out=u)
-    np.multiply(dca, z, out=t)
-    u += t
-    dst.newZ[:a] += u
+def _shift(P, N, Y, a, e2, e1, nP, nN, nY):
+    """Relax over one echo spacing and move the transverse orders by two."""
+    np.multiply(e2, nP[:a], out=P[1 : a + 1])
+    np.multiply(e2, nN[0], out=P[0])
+    np.multiply(e2, nN[1:a], out=N[: a - 1])
+    N[a - 1].fill(0.0)
+    np.multiply(e1, nY[:a], out=Y[:a])
 
 
-def _relax_shift(st: _States, a: int, e2: NDArray[np.float64], e1: NDArray[np.float64]) -> None:
-    """Relax over one echo spacing and move the orders by two (new -> current rows)."""
-    np.multiply(e2, st.newP[:a], out=st.P[1 : a + 1])
-    np.multiply(e2, st.newN[0], out=st.P[0])
-    np.multiply(e2, st.newN[1:a], out=st.N[: a - 1])
-    st.N[a - 1].fill(0.0)
-    np.multiply(e1, st.newZ[:a], out=st.Z[:a])
+def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC):
+    states, new, scratch, echoes = work.view(t2.size)
+    states.fill(0.0)
+    P, N, Y = states[0], states[1], states[2]
+    nP, nN, nY = new[0], new[1], new[2]
+    D, U, V, W = scratch
+    echo = echoes[0]
+    with np.errstate(over="ignore"):
+        x = half_esp / t2
+    e2h = np.exp(-x)
+    e2 = e2h * e2h
+    s2 = 0.5 * (1.0 - c)
+    h = 0.5 * (1.0 - c * c)
+    P[0] = e2h
+    if grad:
+        Pt, Nt, Yt, Pc, Nc, Yc = states[3:]
+        nPt, nNt, nYt, nPc, nNc, nYc = new[3:]
+        echo_t, echo_c = echoes[1], echoes[2]
+        with np.errstate(over="ignore", invalid="ignore"):
+            de2h = np.where(e2h > 0.0, e2h * x / t2, 0.0)
+        de2 = 2.0 * e2h * de2h
+        Pt[0] = de2h
+    for m in range(1, E + 1):
+        a = min(m, E - m + 1)
+        _pulse(P, N, Y, a, s2, h, c, D, U, nP, nN, nY)
+        np.multiply(e2h, nN[0], out=echo[m - 1])
+        if grad:
+            # the pulse is linear in the states: the same map acts on the derivative states
+            _pulse(Pt, Nt, Yt, a, s2, h, c, V, W, nPt, nNt, nYt)
+            _pulse(Pc, Nc, Yc, a, s2, h, c, V, W, nPc, nNc, nYc)
+            # plus d(coefficients)/dc on the value states: ds2/dc = -1/2, dh/dc = -c, d(c)/dc = 1,
+            # with D = N - P of the values from the pulse above
+            d, w = D[:a], W[:a]
+            np.multiply(0.5, d, out=w)
+            nPc[:a] -= w
+            nNc[:a] += w
+            nYc[:a] += Y[:a]
+            np.multiply(c, d, out=w)
+            nYc[:a] -= w
+            np.multiply(e2h, nNt[0], out=echo_t[m - 1])
+            np.multiply(de2h, nN[0], out=W[0])
+            echo_t[m - 1] += W[0]
+            np.multiply(e2h, nNc[0], out=echo_c[m - 1])
+        if m == E:
+            break
+        _shift(P, N, Y, a, e2, e1, nP, nN, nY)
+        if grad:
+            _shift(Pt, Nt, Yt, a, e2, e1, nPt, nNt, nYt)
+            w = W[:a]
+            np.multiply(de2, nP[:a], out=w)  # product rule on e2
+            Pt[1 : a + 1] += w
+            np.multiply(de2, nN[:a], out=w)
+            Pt[0] += w[0]
+            Nt[: a - 1] += w[1:a]
+            _shift(Pc, Nc, Yc, a, e2, e1, nPc, nNc, nYc)
+    # magnitudes: the real CPMG amplitude can change sign from echo to echo
+    if grad:
+        neg = echo < 0.0
+        np.negative(echo_t, out=echo_t, where=neg)
+        np.negative(echo_c, out=echo_c, where=neg)
+        dT[...] = echo_t.T
+        dC[...] = echo_c.T
+    np.abs(echo, out=echo)
+    S[...] = echo.T
 
 
-def _relax_shift_dt2(
-    st: _States, dst: _States, a: int, e2: NDArray[np.float64], de2: NDArray[np.float64],
-    e1: NDArray[np.float64], T: NDArray[np.float64],
-) -> None:  # fmt: skip
-    """Derivative of :func:`_relax_shift` with respect to T2 (product rule on e2)."""
-    _relax_shift(dst, a, e2, e1)
-    t = T[:a]
-    np.multiply(de2, st.newP[:a], out=t)
-    dst.P[1 : a + 1] += t
-    dst.P[0] += de2 * st.newN[0]
-    if a > 1:
-        np.multiply(de2, st.newN[1:a], out=t[: a - 1])
-        dst.N[: a - 1] += t[: a - 1]
-
-
-def _run(
+def _by_angle(
     inp: _Inputs, *, grad: bool, scale_excitation: bool
 ) -> tuple[NDArray[np.float64], NDArray[np.float64] | None, NDArray[np.float64] | None]:
-    n = inp.t2.size
-    E = inp.n_echoes
-    rows = n_state_rows(E)
-    S = np.empty((n, E))
-    dS_t2 = np.empty((n, E)) if grad else None
-    dS_b1 = np.empty((n, E)) if grad else None
-    nbmax = min(_BLOCK, max(n, 1))
-    st = _States(rows, nbmax)
-    dt = _States(rows, nbmax) if grad else None
-    db = _States(rows, nbmax) if grad else None
-    D, V, U, T = (np.empty((rows, nbmax)) for _ in range(4))
-    echo = np.empty((E, nbmax))
-    echo_t = np.empty((E, nbmax)) if grad else None
-    echo_b = np.empty((E, nbmax)) if grad else None
+    """Echo magnitudes (and d/dT2, d/db1) for refocusing ``b1 * refocus_deg`` through :func:`cpmg_cos`.
 
-    for i0 in range(0, n, _BLOCK):
-        i1 = min(i0 + _BLOCK, n)
-        nb = i1 - i0
-        if nb != nbmax:  # last, shorter block: fresh contiguous buffers
-            nbmax = nb
-            st = _States(rows, nb)
-            dt = _States(rows, nb) if grad else None
-            db = _States(rows, nb) if grad else None
-            D, V, U, T = (np.empty((rows, nb)) for _ in range(4))
-            echo = np.empty((E, nb))
-            echo_t = np.empty((E, nb)) if grad else None
-            echo_b = np.empty((E, nb)) if grad else None
-        c = _coefficients(inp, slice(i0, i1), scale_excitation)
-        e2h, e2, e1 = c["e2h"], c["e2"], c["e1"]
-        st.reset()
-        # excitation, then half an echo spacing of T2 decay, then a shift by +1
-        np.multiply(c["sb"], e2h, out=st.P[0])
-        if grad:
-            assert dt is not None and db is not None
-            dt.reset()
-            db.reset()
-            np.multiply(c["sb"], c["de2h"], out=dt.P[0])
-            np.multiply(c["dsb"], e2h, out=db.P[0])
-        for m in range(1, E + 1):
-            a = min(m, E - m + 1)
-            _pulse(st, a, c["s2"], c["sa"], c["hs"], c["ca"], D, U, T)
-            np.multiply(e2h, st.newN[0], out=echo[m - 1])
-            if grad:
-                assert dt is not None and db is not None and echo_t is not None and echo_b is not None
-                # the pulse is linear in the states: the same map acts on the
-                # derivative states; D (= N - P of the values) is kept for b1 terms
-                _pulse(dt, a, c["s2"], c["sa"], c["hs"], c["ca"], V, U, T)
-                _pulse(db, a, c["s2"], c["sa"], c["hs"], c["ca"], V, U, T)
-                _pulse_b1_extra(st, db, a, c["ds2"], c["dsa"], c["dhs"], c["dca"], D, T, U)
-                np.multiply(e2h, dt.newN[0], out=echo_t[m - 1])
-                echo_t[m - 1] += c["de2h"] * st.newN[0]
-                np.multiply(e2h, db.newN[0], out=echo_b[m - 1])
-            if m == E:
-                break
-            _relax_shift(st, a, e2, e1)
-            if grad:
-                assert dt is not None and db is not None
-                _relax_shift_dt2(st, dt, a, e2, c["de2"], e1, T)
-                _relax_shift(db, a, e2, e1)
-        # magnitudes: the real CPMG amplitude can change sign (see module notes)
-        if grad:
-            assert dS_t2 is not None and dS_b1 is not None and echo_t is not None and echo_b is not None
-            neg = echo < 0.0
-            np.negative(echo_t, out=echo_t, where=neg)
-            np.negative(echo_b, out=echo_b, where=neg)
-            dS_t2[i0:i1] = echo_t.T
-            dS_b1[i0:i1] = echo_b.T
-        np.abs(echo, out=echo)
-        S[i0:i1] = echo.T
-    return S, dS_t2, dS_b1
+    The train depends on the refocusing angle only through its cosine, and
+    the excitation only multiplies it by ``|sin(excitation)|`` (module notes).
+    """
+    alpha = inp.refocus_deg * inp.b1  # degrees
+    c = _sind(90.0 - alpha)  # cos(alpha), exactly -1 at 180 degrees
+    beta = inp.excite_deg * inp.b1 if scale_excitation else np.full_like(inp.b1, inp.excite_deg)
+    sb = _sind(beta)
+    t1 = inp.t1[0] if inp.t1.size and np.all(inp.t1 == inp.t1[0]) else inp.t1
+    out = cpmg_cos(inp.t2, c, esp=inp.esp, n_echoes=inp.n_echoes, t1=t1, grad=grad)
+    amp = np.abs(sb)[:, None]
+    if not grad:
+        return amp * out, None, None
+    S, dT, dC = out
+    # chain rule: dc/db1 = -sin(alpha) * refocus (rad); d|sin(beta)|/db1 = sign * cos(beta) * excite (rad)
+    dB = dC * (amp * (-_sind(alpha) * math.radians(inp.refocus_deg))[:, None])
+    if scale_excitation:
+        sign = np.where(sb < 0.0, -1.0, 1.0)
+        dB += S * (sign * _sind(90.0 - beta) * math.radians(inp.excite_deg))[:, None]
+    return amp * S, amp * dT, dB
 
 
 def cpmg_echoes(
@@ -439,7 +430,7 @@ def cpmg_echoes(
         ``n_echoes`` not a positive integer.
     """
     inp = _prepare(t2, b1, t1, esp, n_echoes, refocus_deg, excite_deg)
-    S, _, _ = _run(inp, grad=False, scale_excitation=scale_excitation)
+    S, _, _ = _by_angle(inp, grad=False, scale_excitation=scale_excitation)
     return S
 
 
@@ -473,6 +464,6 @@ def cpmg_echoes_grad(
         returned there.
     """
     inp = _prepare(t2, b1, t1, esp, n_echoes, refocus_deg, excite_deg)
-    S, dt2, db1 = _run(inp, grad=True, scale_excitation=scale_excitation)
+    S, dt2, db1 = _by_angle(inp, grad=True, scale_excitation=scale_excitation)
     assert dt2 is not None and db1 is not None
     return S, dt2, db1

@@ -60,9 +60,13 @@ class MapSet:
 
 QUALITY_UNITS = {"rsquared": "1", "rmse": "a.u.", "nsamples": "1", "residualsd": "a.u.", "chi2": "1",
                  "regweight": "1", "snr": "1"}
+#: why a quality map holds NaN in fitted voxels
+EXACTLY_DETERMINED = ("NaN where the fit is exactly determined (as many samples as free parameters, e.g. 2-angle VFA "
+                      "or a B1 map from two images): the residuals are zero by construction, so the fit quality is "
+                      "not measurable")
 QUALITY_DESCRIPTIONS = {
-    "rsquared": "coefficient of determination R^2 of the fit (1 = perfect)",
-    "rmse": "root-mean-square residual of the fit, signal units",
+    "rsquared": f"coefficient of determination R^2 of the fit (1 = perfect); {EXACTLY_DETERMINED}",
+    "rmse": f"root-mean-square residual of the fit, signal units; {EXACTLY_DETERMINED}",
     "nsamples": "number of samples used by the fit",
     "residualsd": "per-voxel residual sd sqrt(RSS/(m_used - P)), signal units: about the noise sd where the model "
                   "fits; the scale of the standard errors under --stderr residual",

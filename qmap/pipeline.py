@@ -23,11 +23,14 @@ from .fitting.noise_floor import NoiseFloor
 from .io.nifti import check_same_grid, image_data, load_image
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
-from .maps import QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
+from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 from .noise_level import background_sigma, object_mask
+from .record import run_record
 
-__all__ = ["RESIDUAL_FALLBACK", "CommonOptions", "PreparedRun", "RunReport", "Slab", "check_outputs_free", "check_signal",
-           "default_prefix", "prepare_run", "resolve_mask", "resolve_sigma", "run_fit", "sigma_for_stderr", "write_run"]
+__all__ = ["QMRI_SUFFIXES", "RESIDUAL_FALLBACK", "CommonOptions", "PreparedRun", "RunReport", "Slab",
+           "check_outputs_free", "check_signal", "default_prefix", "prepare_run", "resolve_mask", "resolve_sigma",
+           "run_fit", "sigma_for_stderr", "write_run"]
+
 
 @dataclass
 class CommonOptions:
@@ -105,19 +108,87 @@ class RunReport:
                 q = np.percentile(v, [5, 50, 95]) * f
                 lines.append(f"  {name}: median {q[1]:.4g} {unit} (5-95%: {q[0]:.4g}-{q[2]:.4g} {unit})")
         lines.extend(f"  note: {n}" for n in self.notes)
-        lines.append(f"wrote {len(self.written)} files to {self.out_dir} (prefix {self.prefix})")
+        lines.append(f"wrote {len(self.written)} files to {self.out_dir} (prefix {self.prefix}); main map: "
+                     f"{self.main_map}")
         return "\n".join(lines)
+
+    @property
+    def main_map(self) -> Path:
+        """The map of the fitted quantity (T1, T2, T2star, TB1 ...): the first time map, else the first estimate."""
+        names = list(self.maps.names)
+        main = next((n for n in names if n in self.maps.time_params), names[0] if names else "status")
+        return self.out_dir / map_filename(self.prefix, main, "estimate" if names else "status")
 
 
 _SERIES_ENTITY = re.compile(r"_(echo|inv|flip|fa|ti|te)-[0-9a-zA-Z]+")
+#: entities that number the volumes of a series, or name a non-magnitude part: not part of the output name
+_VOLUME_ENTITIES = ("echo", "inv", "flip", "fa", "ti", "te", "part", "mt")
+#: BIDS quantitative-MRI suffixes of fitted series: the output name keeps them as the lowercase acq label
+QMRI_SUFFIXES = ("IRT1", "VFA", "MESE", "MEGRE", "TB1AFI", "TB1DAM", "MP2RAGE", "UNIT1", "MTS", "MPM")
+#: the acq label of a suffix where it is not the lowercase suffix (MP2RAGE's uniform image)
+_SUFFIX_METHOD = {"UNIT1": "mp2rage"}
+#: converter tokens of one volume: a time or angle (``_TI100``, ``_TE12ms``, ``_FA15``), a dcm2niix echo
+#: number (``_e2``) or image part (``_ph``, ``_real``, ``_imaginary``)
+_CONVERTER_TOKEN = re.compile(r"_(?:(?:TI|TE|TR|FA|ti|te|tr|fa|flip)[0-9]+(?:[.p][0-9]+)?(?:ms|s|deg)?|e[0-9]+|ph|real|"
+                              r"imaginary)(?=_|$)")
+_BIDS_LABEL = re.compile(r"^[0-9a-zA-Z]+$")
 
 
-def default_prefix(path: str | Path) -> str:
-    """Output stem from the first input: extension and per-volume entities removed."""
+def _bids_parts(stem: str) -> tuple[list[tuple[str, str]], str] | None:
+    """Entities and suffix of a BIDS name stem starting with ``sub-``; None when it is not one."""
+    parts = stem.split("_")
+    if len(parts) < 2 or not parts[0].startswith("sub-"):
+        return None
+    ents = []
+    for part in parts[:-1]:
+        key, sep, value = part.partition("-")
+        if not sep or not key.isalnum() or not _BIDS_LABEL.match(value):
+            return None
+        ents.append((key, value))
+    if len({k for k, _ in ents}) != len(ents) or "-" in parts[-1]:
+        return None
+    return ents, parts[-1]
+
+
+def default_prefix(path: str | Path, method: str | None = None) -> str:
+    """Output stem from the first input of a series.
+
+    - A BIDS name (``sub-01[_ses-1]..._<suffix>``) gets the batch naming:
+      ``sub-<s>[_ses-<t>]_acq-<acq><method>[_<other entities>]``, without the
+      suffix and the entities that number volumes (``echo``, ``inv``,
+      ``flip``, ...) or name a part. ``method`` is the lowercase qMRI suffix
+      of the input (``IRT1`` -> ``irt1``) or else the command's ``method``:
+      ``sub-01_flip-1_VFA.nii.gz`` -> ``sub-01_acq-vfa``.
+    - Any other name loses its extension, per-volume entities and the
+      converter tokens of one volume (``_TI100``, ``_TE12``, ``_e2``, ``_ph``)
+      together with a trailing series number after them:
+      ``T1_IR_TI100_5.nii.gz`` -> ``T1_IR``.
+
+    Parameters
+    ----------
+    path : path-like
+        First input file.
+    method : str, optional
+        The command's method label (``irt1``, ``vfa``, ``mese``, ``megre``, ``tb1dam``, ...).
+    """
     name = Path(path).name
     for ext in (".nii.gz", ".nii"):
         name = name.removesuffix(ext)
-    return _SERIES_ENTITY.sub("", name) or "qmap"
+    bids = _bids_parts(name)
+    if bids is not None:
+        ents, suffix = bids
+        label = _SUFFIX_METHOD.get(suffix, suffix.lower()) if suffix in QMRI_SUFFIXES or method is None else method
+        d = dict(ents)
+        if label == "tb1afi" and re.fullmatch(r"tr[0-9]+", d.get("acq", "")):
+            d.pop("acq")  # BIDS numbers the two AFI images by acq-tr1, acq-tr2
+        head = [f"sub-{d['sub']}"] + ([f"ses-{d['ses']}"] if "ses" in d else [])
+        rest = [f"{k}-{v}" for k, v in ents if k not in ("sub", "ses", "acq", *_VOLUME_ENTITIES)]
+        return "_".join(head + [f"acq-{d.get('acq', '')}{label}"] + rest)
+    stem = _SERIES_ENTITY.sub("", name)
+    cut = _CONVERTER_TOKEN.sub("", stem)
+    if cut != stem:
+        cut = re.sub(r"_[0-9]+[a-z]?$", "", cut)  # the series number a converter appends after such tokens
+    return cut or stem or "qmap"
 
 
 def resolve_mask(spec, series: Series, max_bytes: float | None = None) -> tuple[np.ndarray, str]:
@@ -268,8 +339,11 @@ def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
     for q, arr in maps.quality.items():
         outs.append(OutputFile(map_filename(prefix, q, "quality"), arr, q, "quality", QUALITY_UNITS[q],
                                QUALITY_DESCRIPTIONS[q]))
+    used = sorted(int(c) for c in maps.status_counts)
     outs.append(OutputFile(map_filename(prefix, "status", "status"), maps.status, "status", "status", "code",
-                           "per-voxel fit status; codes in the provenance file (status_codes)"))
+                           "per-voxel fit status (0 = fitted); the codes this map uses are listed in StatusCodes, "
+                           "every code in the provenance file (status_codes)",
+                           sidecar={"StatusCodes": {str(c): st.STATUS_CODES[c] for c in used}}))
     return outs
 
 
@@ -421,6 +495,7 @@ def prepare_run(
     notes: list | None = None,
     magnitude: bool = True,
     t0: float | None = None,
+    method: str | None = None,
 ) -> PreparedRun:
     """Check everything a fit needs before any work: outputs free, signal present, mask, noise level.
 
@@ -449,13 +524,15 @@ def prepare_run(
         The series holds magnitudes (negative values are refused).
     t0 : float, optional
         Start time (default: now).
+    method : str, optional
+        The command's label for the default output prefix (see :func:`default_prefix`).
 
     Returns
     -------
     PreparedRun
     """
     t0 = time.perf_counter() if t0 is None else t0
-    prefix = common.prefix or default_prefix(series.paths[0])
+    prefix = common.prefix or default_prefix(series.paths[0], method)
     check_outputs_free(common, prefix)
     budget = common.max_memory
     check_signal(series, magnitude=magnitude, max_bytes=budget)
@@ -508,13 +585,17 @@ def run_fit(
     notes: list | None = None,
     magnitude: bool = True,
     t0: float | None = None,
+    method: str | None = None,
 ) -> RunReport:
-    """:func:`prepare_run`, :meth:`PreparedRun.fit` and :meth:`PreparedRun.write` in one call."""
+    """:func:`prepare_run`, :meth:`PreparedRun.fit` and :meth:`PreparedRun.write` in one call.
+
+    ``method`` is the command's label for the default output prefix (see :func:`default_prefix`).
+    """
     run = prepare_run(series, common, noise=noise, sigma_spec=sigma_spec, extra_inputs=extra_inputs, notes=notes,
-                      magnitude=magnitude, t0=t0)
+                      magnitude=magnitude, t0=t0, method=method)
     maps = run.fit(model, noise=noise, ctx_maps=ctx_maps)
     return run.write(maps, options=options,
-                     model_info=dict(model_info or {"name": model.name}, parameters=list(model.param_names)))
+                     model_info={"parameters": list(model.param_names), **(model_info or {"name": model.name})})
 
 
 def _output_entry(o: OutputFile, maps: MapSet) -> dict:
@@ -564,12 +645,19 @@ def write_run(
     ``maps`` (e.g. a 4D spectrum or maps with their own names) and listed in the provenance too.
     """
     outs = _outputs_for(maps, prefix, common.units) + list(extra_outputs or [])
+    notes = list(notes or [])
+    good = maps.status == st.FITTED
+    if "rsquared" in maps.quality and good.any() and not np.isfinite(maps.quality["rsquared"][good]).any():
+        model_info = dict(model_info, quality=f"R-squared and RMS residual: {EXACTLY_DETERMINED}")
+        notes.append("R-squared and RMS residual are NaN: as many samples as free parameters, the fit is exactly "
+                     "determined and its quality is not measurable")
     paths = dict.fromkeys(str(Path(p).absolute()) for p in list(series.paths) + list(extra_inputs or []))
     inputs = [{"path": p, "sha256": sha256_file(p)} for p in paths]
     acquisition = {k: (np.asarray(v).tolist() if np.ndim(v) else float(v)) for k, v in series.acquisition.items()}
     opts = dict(common.as_dict())
     opts.update(options or {})
     opts["mask"] = mask_desc
+    opts["run"] = run_record()  # date, versions, warnings (qmap.record)
     provenance: dict[str, Any] = {
         "qmap_version": __version__,
         "command_line": list(common.command_line if common.command_line is not None else sys.argv),
@@ -596,4 +684,4 @@ def write_run(
         w.stage_json(f"{prefix}_provenance.json", provenance)
         written = w.commit()
     return RunReport(maps=maps, written=written, provenance=provenance, prefix=prefix, out_dir=common.out_dir,
-                     notes=list(notes or []))
+                     notes=notes)

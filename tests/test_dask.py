@@ -84,10 +84,10 @@ def test_t2star_on_the_cluster_matches_local_runs(cluster, tmp_path):
     local = _maps(tmp_path / "j1")
     _assert_identical(local, _maps(tmp_path / "j2"))
     _assert_identical(local, _maps(tmp_path / "dask"))
-    prov = json.loads((tmp_path / "dask/sub-01_MEGRE_provenance.json").read_text())
+    prov = json.loads((tmp_path / "dask/sub-01_acq-megre_provenance.json").read_text())
     assert prov["options"]["scheduler"] == cluster.scheduler_address
-    est = local["sub-01_MEGRE_T2starmap.nii.gz"]
-    good = obj & (local["sub-01_MEGRE_desc-status_fitmap.nii.gz"] == 0)
+    est = local["sub-01_acq-megre_T2starmap.nii.gz"]
+    good = obj & (local["sub-01_acq-megre_desc-status_fitmap.nii.gz"] == 0)
     assert good.sum() > 0.9 * obj.sum()
     # SNR >= 900/5 * exp(-60/50) ~ 54 at the last echo: the median ratio is within 1 % of the truth
     assert np.median(est[good] / t2[good]) == pytest.approx(1.0, abs=0.01)

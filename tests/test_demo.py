@@ -53,15 +53,43 @@ def _fitted_median(out, prefix, param, label):
 def test_demo_runs_and_the_phantom_passes(demo):
     out, code, text = demo
     assert code == 0, text
-    assert "phantom QA (tolerance 10 %): PASSED" in text
-    params = {}
-    for sub in ("phantom", "phantom-vfa"):
-        assert (out / sub / "phantom_report.html").is_file()
-        with open(out / sub / "phantom_results.csv") as fh:
-            rows = list(csv.DictReader(fh))
-        assert rows and all(r["pass"] == "true" for r in rows)
-        params[sub] = {r["parameter"] for r in rows}
-    assert params == {"phantom": {"T1", "T2", "T2star"}, "phantom-vfa": {"T1"}}
+    assert "phantom QA (default tolerance 10 %): PASSED" in text
+    assert (out / "phantom" / "phantom_report.html").is_file()
+    with open(out / "phantom" / "phantom_results.csv") as fh:
+        rows = list(csv.DictReader(fh))
+    assert rows and all(r["pass"] == "true" for r in rows)
+    # T1 from inversion recovery and from VFA in one report, told apart by their tags
+    assert {(r["parameter"], r["source"]) for r in rows} == {("T1", "ir"), ("T1", "vfa"), ("T1", "mp2rage"),
+                                                             ("T2", ""), ("T2star", "")}
+    html = (out / "phantom" / "phantom_report.html").read_text()
+    assert "T1 (ir)" in html and "T1 (vfa)" in html
+    assert "produced by `qmap t1-vfa" in html and "model spgr" in html  # from each map's provenance
+
+
+def test_demo_maps_use_the_commands_default_unit(demo):
+    out = demo[0]
+    for prefix, param in (("ir", "T1"), ("mese", "T2"), ("megre", "T2star")):
+        assert json.loads((out / "maps" / f"{prefix}_{param}map.json").read_text())["Units"] == "s"
+
+
+def test_demo_commands_are_copyable_and_inputs_lie_beside_the_outputs(demo, tmp_path):
+    import glob
+    import shlex
+
+    out = demo[0]
+    lines = [ln for ln in (out / "commands.sh").read_text().splitlines() if ln.startswith("qmap ")]
+    assert [ln.split()[1] for ln in lines] == ["t1-ir", "b1", "t1-vfa", "t1-mp2rage", "t2", "t2star", "phantom",
+                                               "simulate", "t2-spectrum"]
+    assert all(str(out / "data") in ln for ln in lines[:7])  # the copied inputs, not the installed package
+    assert (out / "data" / MANIFEST["labels"]).is_file()
+    # run the T2* line again as written (globs expanded as a shell would), into another folder
+    words = shlex.split(lines[5])[1:]
+    words = [w for t in words for w in (sorted(glob.glob(t)) if "*" in t else [t])]
+    words[words.index("-o") + 1] = str(tmp_path / "again")
+    assert main(words) == 0
+    a = nib.load(str(out / "maps" / "megre_T2starmap.nii.gz")).get_fdata()
+    b = nib.load(str(tmp_path / "again" / "megre_T2starmap.nii.gz")).get_fdata()
+    np.testing.assert_array_equal(a, b)
 
 
 @pytest.mark.parametrize("prefix,param", [("ir", "T1"), ("vfa", "T1"), ("mese", "T2")])
@@ -87,11 +115,16 @@ def test_t2star_and_b1_are_close_to_the_truth(demo):
     assert np.median(np.abs(b1[ok] - ref[ok])) < 0.01
 
 
-def test_printed_table_matches_the_maps(demo):
+def test_printed_table_matches_the_report(demo):
+    # one ROI definition: the printed table shows the phantom QA's numbers (eroded vial ROIs)
     out, _, text = demo
+    assert "eroded by 1 voxel" in text
     row = next(ln for ln in text.splitlines() if ln.startswith("vial-E"))
     printed_ir_t1_ms = float(row.split()[1])
-    assert printed_ir_t1_ms == pytest.approx(_fitted_median(out, "ir", "T1", 5) * 1e3, rel=1e-3)
+    with open(out / "phantom" / "phantom_results.csv") as fh:
+        qa = next(r for r in csv.DictReader(fh) if r["label"] == "5" and r["source"] == "ir")
+    assert qa["unit"] == "ms"
+    assert printed_ir_t1_ms == pytest.approx(float(qa["median"]), rel=1e-3)
 
 
 def test_previews_of_every_map(demo):

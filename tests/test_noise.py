@@ -392,3 +392,16 @@ def test_auto_mask_recovers_sphere_in_inversion_recovery_series():
     # 3D input, and an image with no signal.
     assert _dice(auto_mask(data[..., 3]), obj) > 0.95
     assert not auto_mask(np.zeros(shape)).any()
+
+
+def test_chi_quantiles_without_scipy_stats_match_it():
+    """The sigma estimate's chi median and 1-1e-6 quantile (closed forms via the incomplete gamma) agree with
+    scipy.stats.chi, the reference library, for 1 to 32 coils."""
+    from scipy import stats
+
+    from qmap.noise_level import _chi_median, _chi_tail
+
+    for coils in (1, 2, 3, 8, 32):
+        ref = stats.chi(2 * coils)
+        assert abs(_chi_median(coils) / ref.median() - 1) < 1e-12
+        assert abs(_chi_tail(coils) / ref.isf(1e-6) - 1) < 1e-12

@@ -10,6 +10,7 @@ internal error.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import os
 import signal
@@ -38,6 +39,7 @@ COMMANDS = {
     "inspect": "inspect_voxel",
     "t1-mp2rage": "t1_mp2rage",
     "plan": "plan",
+    "roi": "roi",
 }
 
 
@@ -59,8 +61,44 @@ def _catch_sigterm():
         return None
 
 
+#: one example per command, shown at the end of ``qmap COMMAND --help`` (a command may set its own epilog)
+EXAMPLES = {
+    "t1-ir": "qmap t1-ir sub-01_inv-*_IRT1.nii.gz -o out     (InversionTime from the BIDS sidecars)\n"
+             "  qmap t1-ir ir.nii.gz --ti 50ms,150ms,400ms,800ms,1.5s,3s -o out\n"
+             "  qmap t1-ir mag.nii.gz --signal complex --phase phase.nii.gz --ti 50ms,150ms,400ms,800ms -o out",
+    "t1-vfa": "qmap t1-vfa sub-01_flip-*_VFA.nii.gz --b1 b1/sub-01_acq-tb1dam_TB1map.nii.gz -o out",
+    "t2": "qmap t2 sub-01_echo-*_MESE.nii.gz --epg -o out",
+    "t2star": "qmap t2star gre.nii.gz --te 2ms,4ms,6ms,8ms,10ms,12ms -o out",
+    "b1": "qmap b1 fa60.nii.gz fa120.nii.gz --method dam --fa 60,120 -o b1",
+    "phantom": "qmap phantom --labels vials.nii.gz --reference reference.csv --temperature 20 -o qa \\\n"
+               "      --map out/sub-01_acq-irt1_T1map.nii.gz --map out/sub-01_acq-mese_T2map.nii.gz",
+    "batch": "qmap batch /data/bids -o /data/bids/derivatives/qmap --dry-run",
+    "demo": "qmap demo -o qmap-demo",
+    "inspect": "qmap inspect out --voxel 24,24,2",
+    "t2-spectrum": "qmap t2-spectrum sub-01_echo-*_MESE.nii.gz --window 10ms,40ms -o out",
+}
+
+
+class _HelpFormatter(argparse.HelpFormatter):
+    """Wraps prose paragraphs; keeps paragraphs with indented lines (examples, file lists) as written."""
+
+    def _fill_text(self, text, width, indent):
+        blocks = text.split("\n\n")
+        out = []
+        for block in blocks:
+            if any(line.startswith(" ") for line in block.splitlines()):
+                out.append("\n".join(indent + line for line in block.splitlines()))
+            else:
+                out.append(super()._fill_text(block, width, indent))
+        return "\n\n".join(out)
+
+
 class _Parser(argparse.ArgumentParser):
-    """argparse with one-line errors (exit code 2)."""
+    """argparse with one-line errors (exit code 2) and help text that keeps examples as written."""
+
+    def __init__(self, *args, **kwargs):
+        kwargs.setdefault("formatter_class", _HelpFormatter)
+        super().__init__(*args, **kwargs)
 
     def error(self, message):
         raise SystemExit(_usage_error(f"{self.prog}: {message} (see {self.prog} --help)"))
@@ -99,8 +137,15 @@ def get_parser(only: str | None = None) -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"qmap {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for mod in _modules(only).values():
+    for cmd, mod in _modules(only).items():
         mod.add_parser(sub)
+        p = sub.choices[cmd]
+        if p.epilog is None and cmd in EXAMPLES:
+            p.epilog = f"example:\n  {EXAMPLES[cmd]}"
+        if "quiet" not in {a.dest for a in p._actions}:  # every command accepts -q
+            p.add_argument("-q", "--quiet", action="store_true",
+                           help="print nothing on stdout (warnings and errors still go to stderr)")
+            p.set_defaults(_silence_stdout=True)
     return parser
 
 
@@ -133,6 +178,9 @@ def _main(argv: list[str]) -> int:
             parser.print_help(sys.stderr)
             return 2
         args.argv = ["qmap"] + argv
+        if getattr(args, "_silence_stdout", False) and args.quiet:
+            with open(os.devnull, "w") as devnull, contextlib.redirect_stdout(devnull):
+                return int(args.run(args) or 0)
         return int(args.run(args) or 0)
     except SystemExit as exc:  # argparse: --help/--version (0) or our one-line errors (2)
         return int(exc.code or 0) if isinstance(exc.code, int) or exc.code is None else 2

@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-from ..b1 import B1_METHODS
-from ..workflows.b1 import run_b1
+from ..defaults import B1_METHODS
 from .common import add_common, angles, common_from_args, finish, times
 
 
@@ -30,11 +29,13 @@ def add_parser(sub) -> None:
                    help="image noise sd for the standard errors (first-order propagation through the closed form): "
                         "auto (default) estimates it from the images, local a smooth noise map; when it cannot be "
                         "estimated the standard errors are NaN, with a warning; or a value, or a NIfTI noise map")
-    add_common(p)
+    add_common(p, time_maps=False, engine=False)  # TB1 is a fraction, computed in closed form
     p.set_defaults(run=run)
 
 
 def run(args) -> int:
+    from ..workflows.b1 import run_b1
+
     common = common_from_args(args)
     report = run_b1(args.series, common=common, method=args.method, fa=angles(args.fa),
                     tr=times(args.tr, "RepetitionTime", "--tr"), sigma=args.sigma)

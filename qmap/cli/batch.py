@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import sys
 
-from ..batch import run_batch
 from ..errors import warn
 
 
@@ -39,6 +38,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..batch import run_batch
+
     if args.scheduler and args.jobs is not None and not args.dry_run:
         warn("-j is ignored with --scheduler (the cluster's workers do the work)")
     try:

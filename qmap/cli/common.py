@@ -3,17 +3,22 @@
 from __future__ import annotations
 
 import argparse
+from typing import TYPE_CHECKING
 
-from ..engine import DEFAULT_CHUNK
+from ..defaults import DEFAULT_CHUNK
+from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
+from ..defaults import NOISE_MODES as MODES
 from ..errors import UsageError, warn
-from ..fitting.noise_floor import DEFAULT_MODE, MODES
-from ..pipeline import CommonOptions
-from ..units import parse_angle_list, parse_time_list
+
+if TYPE_CHECKING:
+    from ..pipeline import CommonOptions
 
 __all__ = ["add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
 
 
-def add_common(p: argparse.ArgumentParser) -> None:
+def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bool = True) -> None:
+    """The options of every fitting command; ``time_maps=False`` leaves out ``--units`` and ``engine=False``
+    ``--engine`` (``b1``: a fraction computed in closed form)."""
     g = p.add_argument_group("output and execution (every fitting command)")
     g.add_argument("-o", "--out-dir", required=True, metavar="DIR", help="where outputs go (created if missing)")
     g.add_argument("--prefix", metavar="NAME", help="output name stem (default: from the first input's file name)")
@@ -25,11 +30,15 @@ def add_common(p: argparse.ArgumentParser) -> None:
                    help="run the voxel chunks on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
                         "-j is then ignored")
     g.add_argument("--overwrite", action="store_true", help="replace existing outputs")
-    g.add_argument("--units", choices=("s", "ms"), default="s", help="units of the written time maps (default s)")
-    g.add_argument("-q", "--quiet", action="store_true", help="no progress bar (warnings still go to stderr)")
+    if time_maps:
+        g.add_argument("--units", choices=("s", "ms"), default="s",
+                       help="units of the written time maps (default s, the BIDS convention); rate maps stay in 1/s")
+    g.add_argument("-q", "--quiet", action="store_true",
+                   help="no progress bar and no summary on stdout (warnings and errors still go to stderr)")
     g.add_argument("--preview", action="store_true", help="also write a PNG montage of every estimate map")
-    g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
-                   help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
+    if engine:
+        g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
+                       help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
     g.add_argument("--chunk-size", type=int, default=DEFAULT_CHUNK, metavar="N",
                    help=f"voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
     g.add_argument("--max-memory", metavar="SIZE",
@@ -57,6 +66,8 @@ def add_sigma(p: argparse.ArgumentParser) -> None:
 
 
 def common_from_args(args) -> CommonOptions:
+    from ..pipeline import CommonOptions  # imported on use: `--help` stays fast
+
     if args.jobs is not None and args.jobs == 0:
         raise UsageError("-j 0: give a positive number of workers (or leave -j out for all cores)")
     if args.chunk_size < 1:
@@ -65,7 +76,8 @@ def common_from_args(args) -> CommonOptions:
         warn("-j is ignored with --scheduler (the cluster's workers do the work)")
     return CommonOptions(
         out_dir=args.out_dir, prefix=args.prefix, mask=args.mask, n_jobs=args.jobs, scheduler=args.scheduler,
-        overwrite=args.overwrite, units=args.units, quiet=args.quiet, preview=args.preview, engine=args.engine,
+        overwrite=args.overwrite, units=getattr(args, "units", "s"), quiet=args.quiet, preview=args.preview,
+        engine=getattr(args, "engine", "fast"),
         chunk_size=args.chunk_size, command_line=args.argv, max_memory=parse_size(args.max_memory),
         stderr=getattr(args, "stderr", "noise"),
     )
@@ -112,10 +124,14 @@ def _positive_int(text: str) -> int:
 
 
 def times(text, key, option):
+    from ..units import parse_time_list
+
     return None if text is None else parse_time_list(text, key=key, what=option)
 
 
 def angles(text, option="--fa"):
+    from ..units import parse_angle_list
+
     return None if text is None else parse_angle_list(text, what=option)
 
 

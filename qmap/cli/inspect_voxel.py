@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from ..workflows.inspect import inspect_voxel
-
 
 def add_parser(sub) -> None:
     p = sub.add_parser(
@@ -28,6 +26,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.inspect import inspect_voxel
+
     report = inspect_voxel(args.out_dir, args.voxel, world=args.world, prefix=args.prefix, out_png=args.output)
     print(report.text())
     return 0

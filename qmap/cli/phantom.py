@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 
 from ..errors import UsageError
-from ..workflows.phantom import run_phantom
 
 
 class _MapAction(argparse.Action):
@@ -13,7 +12,7 @@ class _MapAction(argparse.Action):
 
     def __call__(self, parser, namespace, values, option_string=None):
         maps = list(getattr(namespace, self.dest) or [])
-        maps.append([values, None])
+        maps.append([values, None, None])
         setattr(namespace, self.dest, maps)
 
 
@@ -27,6 +26,20 @@ class _ParamAction(argparse.Action):
         if maps[-1][1] is not None:
             raise UsageError(f"--param {values}: the map {maps[-1][0]} has a --param already ({maps[-1][1]})")
         maps[-1][1] = values
+
+
+class _TagAction(argparse.Action):
+    """``--tag NAME`` labels the ``--map`` just before it (two maps of one parameter: ``--tag ir``, ``--tag vfa``)."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        maps = getattr(namespace, "maps", None) or []
+        if not maps:
+            raise UsageError(f"--tag {values}: give it right after the --map it labels (--map FILE --tag ir)")
+        if maps[-1][2] is not None:
+            raise UsageError(f"--tag {values}: the map {maps[-1][0]} has a --tag already ({maps[-1][2]})")
+        if not str(values).replace("-", "").isalnum():
+            raise UsageError(f"--tag {values!r}: use letters, digits and '-' only (e.g. ir, vfa)")
+        maps[-1][2] = values
 
 
 def add_parser(sub) -> None:
@@ -44,6 +57,9 @@ def add_parser(sub) -> None:
                         "or from --param after it; the unit from its JSON sidecar Units (default s for times)")
     g.add_argument("--param", action=_ParamAction, metavar="P",
                    help="parameter of the preceding --map: T1, T2, T2star, R1, R2, R2star, M0, PD or TB1")
+    g.add_argument("--tag", action=_TagAction, metavar="NAME",
+                   help="a short label of the preceding --map, to compare two maps of one parameter in one report "
+                        "(--map ir_T1map.nii.gz --tag ir --map vfa_T1map.nii.gz --tag vfa); rows read T1 (ir)")
     g.add_argument("--reference", required=True, metavar="REF.csv",
                    help="reference table: label, optional name and temperature_C, and one column per parameter "
                         "with its unit in the name (T1_ms, T2_s); optional T1_tolerance_pct / tolerance_pct")
@@ -60,7 +76,7 @@ def add_parser(sub) -> None:
     a.add_argument("--temperature", type=float, metavar="C",
                    help="phantom temperature in degrees C; required when the table has several temperatures per "
                         "vial (values are interpolated linearly, never extrapolated)")
-    a.add_argument("--tolerance", type=float, default=10.0, metavar="PCT",
+    a.add_argument("--tolerance", type=float, default=None, metavar="PCT",
                    help="allowed |error| of the ROI median in percent of the reference (default 10); per-vial "
                         "tolerance columns of the table take precedence")
     a.add_argument("--erode", type=int, default=None, metavar="N",
@@ -83,9 +99,11 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.phantom import run_phantom
+
     maps = args.maps or []
     report = run_phantom(
-        [m[0] for m in maps], params=[m[1] for m in maps], reference=args.reference, out_dir=args.out_dir,
+        [m[0] for m in maps], params=[m[1] for m in maps], tags=[m[2] for m in maps], reference=args.reference, out_dir=args.out_dir,
         labels=args.labels, layout=args.layout, layout_image=args.layout_image, temperature=args.temperature,
         tolerance=args.tolerance, erode=args.erode, min_voxels=args.min_voxels, history=args.history,
         scanner=args.scanner, protocol=args.protocol, date=args.date, overwrite=args.overwrite,

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import argparse
-
 from ..errors import UsageError
 from ..simulate import PHANTOMS, PROTOCOLS, Protocols, simulate
 from ..units import parse_angle_list, parse_time, parse_time_list
@@ -60,7 +58,6 @@ def add_parser(sub) -> None:
         "as a BIDS-style folder with sidecars, the true maps and a label image. Times are seconds unless a unit is "
         "given (12ms); angles are degrees.",
         epilog=_EPILOG,
-        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("-o", "--out-dir", required=True, metavar="DIR", help="folder to create (must be empty or absent)")
     p.add_argument("--phantom", choices=PHANTOMS, default="vials",

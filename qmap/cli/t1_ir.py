@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-from ..models.ir import SIGNALS
-from ..units import parse_time
-from ..workflows.ir import run_t1_ir
+from ..defaults import IR_SIGNALS as SIGNALS
 from .common import add_common, add_sigma, common_from_args, finish, times
 
 
@@ -18,9 +16,6 @@ def add_parser(sub) -> None:
         "(k = -b/a - 1; 1 = perfect inversion) maps with standard errors, R-squared / RMS-residual maps, a status "
         "map and provenance. Magnitude images have lost the sign of the samples before the null: it is restored "
         "per voxel by fitting both sign patterns around the smallest sample and keeping the better fit.",
-        epilog="Examples: qmap t1-ir ir.nii.gz --ti 50ms,150ms,400ms,800ms,1.5s,3s -o out;  "
-        "qmap t1-ir sub-01_inv-*_IRT1.nii.gz -o out (InversionTime from the BIDS sidecars);  "
-        "qmap t1-ir mag.nii.gz --signal complex --phase phase.nii.gz --ti ... -o out",
     )
     p.add_argument("series", nargs="+", metavar="SERIES",
                    help="one 4D NIfTI or several 3D NIfTIs, one per inversion time (at least 4)")
@@ -48,6 +43,9 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..units import parse_time
+    from ..workflows.ir import run_t1_ir
+
     common = common_from_args(args)
     tr = None if args.tr is None else parse_time(args.tr, key="RepetitionTime", what="--tr")
     report = run_t1_ir(

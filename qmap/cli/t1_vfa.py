@@ -2,9 +2,8 @@
 
 from __future__ import annotations
 
-from ..b1 import B1_SCALES
-from ..units import parse_time
-from ..workflows.vfa import METHODS, T1_TYPICAL, run_t1_vfa
+from ..defaults import B1_SCALES, T1_TYPICAL
+from ..defaults import VFA_METHODS as METHODS
 from .common import add_common, add_sigma, angles, common_from_args, finish
 
 
@@ -47,6 +46,9 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..units import parse_time
+    from ..workflows.vfa import run_t1_vfa
+
     common = common_from_args(args)
     tr = None if args.tr is None else parse_time(args.tr, key="RepetitionTimeSpoiled", what="--tr")
     t1_typical = T1_TYPICAL if args.t1_typical is None else parse_time(args.t1_typical, key="InversionTime",

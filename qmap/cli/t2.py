@@ -2,11 +2,10 @@
 
 from __future__ import annotations
 
-import numpy as np
+import math
 
+from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..errors import InputError, UsageError
-from ..units import parse_angle_list, parse_time_list
-from ..workflows.t2 import DEFAULT_REFOCUS, DEFAULT_T1, run_t2
 from .common import add_common, add_noise, common_from_args, finish, times
 
 #: a bare --t1 above this many seconds is taken to be milliseconds by mistake
@@ -50,18 +49,22 @@ def add_parser(sub) -> None:
 def _refocus(text) -> float:
     if text is None:
         return DEFAULT_REFOCUS
+    from ..units import parse_angle_list
+
     values = parse_angle_list(text, what="--refocus")
     if values.size != 1:
         raise UsageError(f"--refocus {text}: give one nominal refocusing angle in degrees, e.g. --refocus 160")
     if values[0] < 60:
         raise UsageError(f"--refocus {text}: a nominal refocusing angle below 60 deg is implausible for a CPMG train "
-                         f"(radians? {text} rad = {np.degrees(float(values[0])):.0f} deg); give degrees, e.g. 160")
+                         f"(radians? {text} rad = {math.degrees(float(values[0])):.0f} deg); give degrees, e.g. 160")
     return float(values[0])
 
 
 def _t1(text) -> float:
     if text is None:
         return DEFAULT_T1
+    from ..units import parse_time_list
+
     values = parse_time_list(text, key="T1", what="--t1")
     if values.size != 1:
         raise UsageError(f"--t1 {text}: give one T1, e.g. --t1 1.2s")
@@ -78,6 +81,8 @@ def run(args) -> int:
         if given:
             verb, it = ("apply", "them") if len(given) > 1 else ("applies", "it")
             raise UsageError(f"{' and '.join(given)} {verb} only to the EPG model; add --epg or leave {it} out")
+    from ..workflows.t2 import run_t2
+
     common = common_from_args(args)
     report = run_t2(
         args.series, common=common, te=times(args.te, "EchoTime", "--te"), epg=args.epg,

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from ..workflows.decay import run_t2star
 from .common import add_common, add_noise, common_from_args, finish, times
 
 
@@ -23,6 +22,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    from ..workflows.decay import run_t2star
+
     common = common_from_args(args)
     report = run_t2star(
         args.series, common=common, te=times(args.te, "EchoTime", "--te"), noise_floor=args.noise_floor,

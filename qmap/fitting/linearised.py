@@ -92,8 +92,9 @@ def fit_chunk_linear(
         n_used = w.sum(axis=1).astype(int)
         ybar = np.sum(w * y, axis=1) / np.maximum(n_used, 1)
         tss = np.sum(w * (y - ybar[:, None]) ** 2, axis=1)
-        r2 = np.where(tss > 0, 1.0 - rss / tss, np.nan)
-        rmse = np.sqrt(rss / np.maximum(n_used, 1))
+        # two angles determine M0 and T1 exactly: the residuals are zero by construction, no quality (NaN)
+        r2 = np.where((tss > 0) & (n_used > 2), 1.0 - rss / tss, np.nan)
+        rmse = np.where(n_used > 2, np.sqrt(rss / np.maximum(n_used, 1)), np.nan)
         # covariance of (E1, c) and the delta method to (M0, T1)
         uu = w * (s / den) ** 2
         sw, sx, sxx = np.sum(uu, 1), np.sum(uu * X, 1), np.sum(uu * X * X, 1)

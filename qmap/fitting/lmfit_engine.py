@@ -92,8 +92,9 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
         keep = w[i] > 0
         yk = yc[0][keep]
         tss = float(np.sum((yk - yk.mean()) ** 2))
-        out.r2[i] = 1 - rss / tss if tss > 0 else np.nan
-        out.rmse[i] = np.sqrt(rss / max(keep.sum(), 1))
+        determined = keep.sum() > P  # exactly determined: the residuals are zero by construction, no quality
+        out.r2[i] = 1 - rss / tss if tss > 0 and determined else np.nan
+        out.rmse[i] = np.sqrt(rss / max(keep.sum(), 1)) if determined else np.nan
         theta = vec[L:]
         span = hi_nl - lo_nl
         if np.any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span)):

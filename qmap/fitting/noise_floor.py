@@ -17,26 +17,32 @@ Usable by every decay model (mono-exponential T2/T2*, the EPG spin-echo model):
     magnitude under Rician noise, ``E|S + noise|`` (Gudbjartsson & Patz 1995),
     for the voxels whose Gaussian fit comes within ``RICIAN_SWITCH`` sigma of
     the floor; elsewhere the expectation equals ``S`` to better than 0.25 %
-    at the lowest sample and the Gaussian fit is kept.
+    at the lowest sample and the Gaussian fit is kept. Voxels whose samples
+    are consistent with pure noise (:meth:`NoiseFloor.noise_only`) are not
+    fitted at all (status ``NOISE_ONLY``): the engine's fast path for the
+    background under ``--mask none``.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
+from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
+from ..defaults import NOISE_MODES as MODES
 from ..models.base import Derived, SeparableModel
 from .solver import levenberg_marquardt
 
-__all__ = ["DEFAULT_MODE", "MODES", "RICIAN_SWITCH", "NoiseFloor", "WithOffset"]
+__all__ = ["DEFAULT_MODE", "MODES", "NOISE_ONLY_Z", "RICIAN_SWITCH", "NoiseFloor", "WithOffset"]
 
-MODES = ("none", "offset", "truncate", "rician")
-#: default for t2 and t2star: the mode that stays unbiased on low-SNR magnitude data
-DEFAULT_MODE = "rician"
 #: voxels whose lowest fitted sample is below this many sigma get the Rician objective
 #: (relative bias of the Gaussian model there is sigma^2 / (2 S^2) < 0.25 %)
 RICIAN_SWITCH = 15.0
+#: ``rician``: a voxel whose mean sample lies less than this many standard errors above the mean of pure
+#: noise is noise only (status NOISE_ONLY, not fitted); pure noise exceeds it in about 0.1 % of voxels
+NOISE_ONLY_Z = 3.0
 
 
 class WithOffset(SeparableModel):
@@ -132,6 +138,28 @@ class NoiseFloor:
         dropped = np.cumsum(below, axis=1) > 0  # from the first low sample onwards
         w[dropped] = 0.0
         return w
+
+    def noise_only(self, y: np.ndarray, sigma) -> np.ndarray:
+        """Voxels whose samples are consistent with pure noise (``rician`` only), (n,) bool.
+
+        Without signal the magnitude follows the central chi distribution with
+        ``2 N`` degrees of freedom (Rayleigh for one coil; Constantinides et
+        al., Magn Reson Med 1997;38:852): mean
+        :math:`\\mu_0 = \\sigma\\sqrt2\\,\\Gamma(N+\\frac12)/\\Gamma(N)`
+        (:math:`\\sigma\\sqrt{\\pi/2}` for one coil) and variance
+        :math:`2N\\sigma^2 - \\mu_0^2`. A voxel whose mean over its ``m``
+        samples is below :math:`\\mu_0 + z\\,\\mathrm{sd}_0/\\sqrt m`
+        (``z`` = ``NOISE_ONLY_Z``) shows no signal: a fit would only describe
+        the noise, so it is not made.
+        """
+        n, m = y.shape
+        if self.mode != "rician" or sigma is None or m == 0:
+            return np.zeros(n, bool)
+        k = math.sqrt(2.0) * math.exp(math.lgamma(self.coils + 0.5) - math.lgamma(self.coils))
+        sd = math.sqrt(max(2.0 * self.coils - k * k, 0.0))
+        sig = np.broadcast_to(np.asarray(sigma, float), (n,))
+        limit = sig * (k + NOISE_ONLY_Z * sd / math.sqrt(m))
+        return (np.mean(y, axis=1) < limit) & (sig > 0)
 
     def rician_refine(self, model, y, w, p, rss, J, conv, nit, sigma, ctx, lo, hi, *, max_iter=60):
         """Refit near-floor voxels with the Rician expectation as the model."""

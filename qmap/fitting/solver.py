@@ -435,9 +435,9 @@ def fit_chunk_unit(
     # quality
     ybar = np.sum(w * yfit, axis=1) / np.maximum(n_used, 1)
     tss = np.sum(w * (yfit - ybar[:, None]) ** 2, axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r2 = np.where(tss > 0, 1.0 - rss / tss, np.nan)
-        rmse = np.sqrt(rss / np.maximum(n_used, 1))
+    with np.errstate(divide="ignore", invalid="ignore"):  # exactly determined (dof 0): no quality (NaN)
+        r2 = np.where((tss > 0) & (dof > 0), 1.0 - rss / tss, np.nan)
+        rmse = np.where(dof > 0, np.sqrt(rss / np.maximum(n_used, 1)), np.nan)
     status = np.zeros(n, np.uint8)
     status[~conv] = st.NOT_CONVERGED
     theta = p[:, L:]

@@ -8,6 +8,7 @@ __all__ = [
            "ILL_CONDITIONED",
            "LOW_SNR",
            "MASKED",
+           "NOISE_ONLY",
            "NONFINITE",
            "NOT_CONVERGED",
            "NO_VALID_ANGLE",
@@ -28,6 +29,7 @@ TOO_FEW_SAMPLES = 7
 NO_VALID_ANGLE = 8
 OUTSIDE_LOOKUP = 9
 LOW_SNR = 10
+NOISE_ONLY = 11
 
 #: code -> meaning, as written to provenance (``status_codes``)
 STATUS_CODES = {
@@ -42,4 +44,5 @@ STATUS_CODES = {
     NO_VALID_ANGLE: "the signal ratio corresponds to no valid flip angle",
     OUTSIDE_LOOKUP: "the value (MP2RAGE UNI) lies outside the range the lookup table can invert at this voxel's B1",
     LOW_SNR: "signal-to-noise ratio too low for a reliable T2 spectrum (values kept; see --min-snr)",
+    NOISE_ONLY: "no signal above the noise floor (the samples are consistent with pure noise), not fitted",
 }

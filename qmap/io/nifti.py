@@ -11,6 +11,7 @@ import nibabel as nib
 import numpy as np
 
 from ..errors import InputError
+from . import gz as _gz  # noqa: F401  (registers ISA-L as nibabel's .gz opener)
 
 __all__ = [
     "check_same_grid",
@@ -161,6 +162,7 @@ def resample_to_grid(
         out = data[ii[0], ii[1], ii[2]]
     else:
         from scipy import ndimage  # imported on use (start-up time)
+
         out = ndimage.map_coordinates(np.asarray(data, float), srcc, order=order, mode="nearest")
     if not inside.all():
         if np.isnan(cval) and not np.issubdtype(out.dtype, np.floating):

@@ -48,17 +48,16 @@ alpha_nom``). Its standard error is half the width of the +-1 SE interval of
 ``c`` mapped through ``arccos`` (the delta method away from 180 degrees, and
 finite at 180 degrees, where the angle is determined to second order only).
 
-The recursion itself is that of :mod:`qmap.epg` (same rows, truncation and
-shifts) with the stored states rescaled by ``sin(a)``; the tests check it
-against an independent isochromat simulation and the closed forms to
-rounding, and for consistency against :func:`qmap.epg.cpmg_echoes_grad`.
+The recursion is the one kernel of :mod:`qmap.epg` (:func:`qmap.epg.cpmg_cos`,
+which also serves :func:`qmap.epg.cpmg_echoes`); the tests check it against an
+independent isochromat simulation and the closed forms to rounding.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from ..epg import n_state_rows
+from ..epg import cpmg_cos
 from ..errors import InputError
 from .base import Derived, SeparableModel, delta_se_inverse
 
@@ -70,8 +69,6 @@ SCALE_MIN = 0.5
 COS_MIN = -1.25
 #: relative tolerance on TE_k = k * ESP (sidecars round to microseconds)
 ESP_RTOL = 1e-3
-#: voxels per internal block of the recursion (state arrays stay in the CPU cache)
-_BLOCK = 2048
 
 
 def echo_spacing(te, *, where: str = "--te") -> float:
@@ -110,159 +107,6 @@ def echo_spacing(te, *, where: str = "--te") -> float:
         )
     esp = float(np.sum(k * te) / np.sum(k * k))
     return esp
-
-
-def cpmg_cos(t2, c, *, esp: float, n_echoes: int, t1: float = 1.0, grad: bool = False):
-    """CPMG echo magnitudes (ideal 90 degree excitation) as a function of c = cos(refocusing angle).
-
-    Parameters
-    ----------
-    t2 : (n,) ndarray
-        T2 in seconds (> 0).
-    c : (n,) ndarray
-        Cosine of the refocusing angle; values below -1 continue the train
-        analytically (see the module notes).
-    esp : float
-        Echo spacing, s; echo k at k * esp.
-    n_echoes : int
-        Echoes in the train.
-    t1 : float
-        Fixed T1, s.
-    grad : bool
-        Also return the derivatives with respect to T2 (1/s) and c.
-
-    Returns
-    -------
-    S : (n, n_echoes) ndarray
-        Echo magnitudes for M0 = 1.
-    dS_dT2, dS_dc : (n, n_echoes) ndarray
-        Only with ``grad``.
-
-    Notes
-    -----
-    Voxels run along the last axis of (rows, voxels) state arrays, in blocks
-    of ``_BLOCK`` voxels, with a Python loop over the echoes only; every voxel
-    sees the same element-wise operations whatever the call's size, so the
-    results do not depend on chunking.
-    """
-    t2 = np.ascontiguousarray(t2, dtype=np.float64).ravel()
-    c = np.ascontiguousarray(np.broadcast_to(np.asarray(c, np.float64), t2.shape))
-    n, E = t2.size, int(n_echoes)
-    S = np.empty((n, E))
-    dT = np.empty((n, E)) if grad else None
-    dC = np.empty((n, E)) if grad else None
-    e1 = float(np.exp(-esp / t1))
-    work = _Work(n_state_rows(E), E, min(_BLOCK, max(n, 1)), grad)
-    for i0 in range(0, n, _BLOCK):
-        sl = slice(i0, min(i0 + _BLOCK, n))
-        _train_block(work, t2[sl], c[sl], 0.5 * esp, E, e1, grad, S[sl], None if dT is None else dT[sl],
-                     None if dC is None else dC[sl])
-    return (S, dT, dC) if grad else S
-
-
-class _Work:
-    """State and scratch arrays of one block (allocated once per call)."""
-
-    def __init__(self, rows: int, E: int, nb: int, grad: bool):
-        self.nb = nb
-        k = 3 + 3 * 2 * grad  # state sets: values (+ d/dT2, d/dc)
-        self.states = np.zeros((k, rows, nb))
-        self.new = np.empty((k, rows, nb))
-        self.scratch = np.empty((4, rows, nb))
-        self.echo = np.empty((3 if grad else 1, E, nb))
-
-    def view(self, nb: int):
-        if nb == self.nb:
-            return self.states, self.new, self.scratch, self.echo
-        return self.states[..., :nb], self.new[..., :nb], self.scratch[..., :nb], self.echo[..., :nb]
-
-
-def _pulse(P, N, Y, a, s2, h, c, D, U, nP, nN, nY):
-    """Refocusing pulse on rows [:a]: D = N - P, U = s2 D + Y; P' = P + U, N' = N - U, Y' = h D + c Y."""
-    d, u = D[:a], U[:a]
-    np.subtract(N[:a], P[:a], out=d)
-    np.multiply(s2, d, out=u)
-    u += Y[:a]
-    np.add(P[:a], u, out=nP[:a])
-    np.subtract(N[:a], u, out=nN[:a])
-    np.multiply(h, d, out=nY[:a])
-    np.multiply(c, Y[:a], out=u)
-    nY[:a] += u
-
-
-def _shift(P, N, Y, a, e2, e1, nP, nN, nY):
-    """Relax over one echo spacing and move the transverse orders by two."""
-    np.multiply(e2, nP[:a], out=P[1 : a + 1])
-    np.multiply(e2, nN[0], out=P[0])
-    np.multiply(e2, nN[1:a], out=N[: a - 1])
-    N[a - 1].fill(0.0)
-    np.multiply(e1, nY[:a], out=Y[:a])
-
-
-def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC):
-    states, new, scratch, echoes = work.view(t2.size)
-    states.fill(0.0)
-    P, N, Y = states[0], states[1], states[2]
-    nP, nN, nY = new[0], new[1], new[2]
-    D, U, V, W = scratch
-    echo = echoes[0]
-    with np.errstate(over="ignore"):
-        x = half_esp / t2
-    e2h = np.exp(-x)
-    e2 = e2h * e2h
-    s2 = 0.5 * (1.0 - c)
-    h = 0.5 * (1.0 - c * c)
-    P[0] = e2h
-    if grad:
-        Pt, Nt, Yt, Pc, Nc, Yc = states[3:]
-        nPt, nNt, nYt, nPc, nNc, nYc = new[3:]
-        echo_t, echo_c = echoes[1], echoes[2]
-        with np.errstate(over="ignore", invalid="ignore"):
-            de2h = np.where(e2h > 0.0, e2h * x / t2, 0.0)
-        de2 = 2.0 * e2h * de2h
-        Pt[0] = de2h
-    for m in range(1, E + 1):
-        a = min(m, E - m + 1)
-        _pulse(P, N, Y, a, s2, h, c, D, U, nP, nN, nY)
-        np.multiply(e2h, nN[0], out=echo[m - 1])
-        if grad:
-            # the pulse is linear in the states: the same map acts on the derivative states
-            _pulse(Pt, Nt, Yt, a, s2, h, c, V, W, nPt, nNt, nYt)
-            _pulse(Pc, Nc, Yc, a, s2, h, c, V, W, nPc, nNc, nYc)
-            # plus d(coefficients)/dc on the value states: ds2/dc = -1/2, dh/dc = -c, d(c)/dc = 1,
-            # with D = N - P of the values from the pulse above
-            d, w = D[:a], W[:a]
-            np.multiply(0.5, d, out=w)
-            nPc[:a] -= w
-            nNc[:a] += w
-            nYc[:a] += Y[:a]
-            np.multiply(c, d, out=w)
-            nYc[:a] -= w
-            np.multiply(e2h, nNt[0], out=echo_t[m - 1])
-            np.multiply(de2h, nN[0], out=W[0])
-            echo_t[m - 1] += W[0]
-            np.multiply(e2h, nNc[0], out=echo_c[m - 1])
-        if m == E:
-            break
-        _shift(P, N, Y, a, e2, e1, nP, nN, nY)
-        if grad:
-            _shift(Pt, Nt, Yt, a, e2, e1, nPt, nNt, nYt)
-            w = W[:a]
-            np.multiply(de2, nP[:a], out=w)  # product rule on e2
-            Pt[1 : a + 1] += w
-            np.multiply(de2, nN[:a], out=w)
-            Pt[0] += w[0]
-            Nt[: a - 1] += w[1:a]
-            _shift(Pc, Nc, Yc, a, e2, e1, nPc, nNc, nYc)
-    # magnitudes: the real CPMG amplitude can change sign from echo to echo
-    if grad:
-        neg = echo < 0.0
-        np.negative(echo_t, out=echo_t, where=neg)
-        np.negative(echo_c, out=echo_c, where=neg)
-        dT[...] = echo_t.T
-        dC[...] = echo_c.T
-    np.abs(echo, out=echo)
-    S[...] = echo.T
 
 
 class EpgT2(SeparableModel):

@@ -32,12 +32,10 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import ArrayLike
 
+from ..defaults import IR_SIGNALS as SIGNALS
 from .base import Derived, SeparableModel, delta_se_inverse
 
 __all__ = ["SIGNALS", "InversionRecovery", "ir_signal", "t1_bounds"]
-
-#: accepted signal types
-SIGNALS = ("magnitude", "real", "complex")
 
 #: start-grid points per decade of T1
 GRID_PER_DECADE = 6

@@ -42,18 +42,19 @@ def _figures(report, views, tolerance):
         ("phantom_measured_vs_reference.png", F.measured_vs_reference(report.rows, tolerance),
          "Measured against reference",
          (f"Median of each ROI (error bar: robust SD = 1.4826 x median absolute deviation) against the reference "
-         f"value, on logarithmic axes. The black line is perfect agreement; the shaded band is the default "
-         f"tolerance of \u00b1{tolerance:g}%. Diamonds are out of tolerance; the numbers are the vial labels.")),
+         f"value, on logarithmic axes. The black line is perfect agreement; the shaded band is the "
+         f"{_tol_word(report)} of \u00b1{tolerance:g}%. Diamonds are out of tolerance; the numbers are the vial "
+         f"labels.")),
         ("phantom_error_per_vial.png", F.error_per_vial(report.rows, tolerance), "Percent error per vial",
          ("Error of the ROI median relative to the reference, 100 (median - reference) / reference. Points inside "
          "the shaded band pass; a vial with its own tolerance in the reference table shows it as black ticks.")),
     ]
     for v in views:
         m = v.map
-        figs.append((f"phantom_rois_{m.param}.png",
-                     F.roi_overlay(m.data * v.factor, m.zooms, v.rois, v.labels, param=m.param, unit=v.unit,
+        figs.append((f"phantom_rois_{m.param}{'-' + m.tag if m.tag else ''}.png",
+                     F.roi_overlay(m.data * v.factor, m.zooms, v.rois, v.labels, param=m.key, unit=v.unit,
                                    map_name=m.path.name, erode=report.settings["erode_voxels"]),
-                     f"ROIs on the {m.param} map",
+                     f"ROIs on the {m.key} map",
                      f"{m.path.name} on the slice holding the most ROI voxels (array axes as stored, no reorientation;"
                      f" dark grey = no value). Check that every solid outline sits well inside its vial."
                      + (" The label image was resampled onto this map's grid (nearest neighbour)." if v.resampled
@@ -61,13 +62,25 @@ def _figures(report, views, tolerance):
     return figs
 
 
+def _tol_word(report) -> str:
+    return "default tolerance" if report.settings.get("tolerance_source") == "default" else "tolerance"
+
+
+def _produced_by(m) -> str:
+    p = m.provenance
+    if not p:
+        return "; no qmap provenance beside it (what produced it is not known)"
+    model = f"model {p['model']}" + (f": {p['equation']}" if p.get("equation") else "") if p.get("model") else ""
+    return f"; produced by `{p['command']}`" + (f" ({model})" if model else "") + f" -- {Path(p['file']).name}"
+
+
 def _history_figures(report, history_rows, trends, session):
     out = []
-    params = list(dict.fromkeys(r.parameter for r in report.rows))
+    params = list(dict.fromkeys(r.key for r in report.rows))
     for par in params:
         series = {}
         for r in report.rows:
-            if r.parameter != par:
+            if r.key != par:
                 continue
             dates, err, ok = session_series(history_rows, session.scanner, session.protocol, r.label, par)
             series[(r.label, r.name)] = (dates, err, ok, r.tolerance_pct)
@@ -75,7 +88,7 @@ def _history_figures(report, history_rows, trends, session):
             continue
         tr = {lab: t for (lab, p), t in trends.items() if p == par}
         fig = F.history_panels(series, tr, param=par)
-        out.append((f"phantom_history_{par}.png", fig, f"{par} error over time",
+        out.append((f"phantom_history_{par.replace(' (', '-').rstrip(')')}.png", fig, f"{par} error over time",
                     (f"Sessions of scanner '{session.scanner}', protocol '{session.protocol}'. A trend line is drawn when the "
                     f"slope of the linear fit is significant (p < 0.05). A vial is marked DRIFT "
                     f"(amber) when the linear fit over its last {WINDOW} sessions (at least {MIN_SESSIONS}) has a "
@@ -110,7 +123,8 @@ def _settings_pairs(report, session, placed, views):
         ("reference table", s["reference"] + (f" (values interpolated to {s['temperature_C']:g} \u00b0C for "
                                               f"{len(s['interpolated_vials'])} vial(s))" if s["interpolated_vials"]
                                               else "")),
-        ("verdict rule", (f"|error of the ROI {ERROR_BASIS}| <= tolerance (default \u00b1{s['tolerance_pct']:g}%, "
+        ("verdict rule", (f"|error of the ROI {ERROR_BASIS}| <= tolerance ({_tol_word(report)} "
+                          f"\u00b1{s['tolerance_pct']:g}%, "
                          f"per-vial values from the table where given) and at least {s['min_voxels']} voxels "
                          f"with a value")),
         ("ROIs", f"{s['roi_source']}; " + (
@@ -119,9 +133,9 @@ def _settings_pairs(report, session, placed, views):
     ]
     for v in views:
         m = v.map
-        pairs.append((f"{m.param} map", (f"{m.path} (unit {m.unit} from "
+        pairs.append((f"{m.key} map", (f"{m.path} (unit {m.unit} from "
                       f"{'sidecar' if m.unit_source == 'sidecar' else 'default, no sidecar Units'}; compared in "
-                      f"{v.unit})")))
+                      f"{v.unit}){_produced_by(m)}")))
     if placed is not None:
         g = placed.summary()
         pairs.append(("layout registration",

@@ -107,7 +107,7 @@ def voxel_outline(mask2d: np.ndarray) -> list:
 def _by_param(rows):
     out = {}
     for r in rows:
-        out.setdefault(r.parameter, []).append(r)
+        out.setdefault(r.key, []).append(r)
     return out
 
 

@@ -20,6 +20,7 @@ __all__ = [
     "column_unit",
     "conversion",
     "default_unit",
+    "example_column",
     "family",
     "sidecar_unit",
 ]
@@ -79,6 +80,11 @@ def column_unit(param: str, unit_text: str, *, where: str) -> str:
         raise InputError(f"{where}: unit {unit_text!r} is not a unit of {param}; use one of {allowed} "
                          f"(e.g. {param}_{next(iter(_FAMILY_UNITS[family(param)])).replace('1/', 'per_')})")
     return unit
+
+
+def example_column(param: str) -> str:
+    """A reference column name with a sensible unit for ``param``: ``T1_ms``, ``R1_per_s``, ``TB1_fraction``, ``M0_au``."""
+    return param + {"time": "_ms", "rate": "_per_s", "fraction": "_fraction", "au": "_au"}[family(param)]
 
 
 def default_unit(param: str) -> str:

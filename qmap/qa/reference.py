@@ -38,7 +38,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError, UsageError
-from .quantities import UNIT_HELP, canonical_param, column_unit
+from .quantities import UNIT_HELP, canonical_param, column_unit, example_column
 
 __all__ = ["ReferenceEntry", "ReferenceTable", "parse_reference", "read_reference"]
 
@@ -203,7 +203,7 @@ def _classify(columns: list[str], where: str):
             tols[param] = col
             continue
         if not unit:
-            raise InputError(f"{where}: column {key!r} has no unit; name it {param}_ms or {param}_s "
+            raise InputError(f"{where}: column {key!r} has no unit; name it like {example_column(param)} "
                              f"(units: {UNIT_HELP})")
         unit = column_unit(param, unit, where=f"{where}: column {key!r}")
         if param in params:

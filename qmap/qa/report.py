@@ -97,7 +97,7 @@ def _table(rows) -> str:
         err = "" if r.error_pct != r.error_pct else ("0.0%" if abs(r.error_pct) < 0.05 else f"{r.error_pct:+.1f}%")
         out.append(
             f"<tr class='{'pass' if r.pass_ else 'fail'}'><td>{r.label}</td><td class='l'>{_e(r.name)}</td>"
-            f"<td class='l'>{_e(r.parameter)}</td><td class='l'>{u}</td><td>{fmt(r.reference, 5)}</td>"
+            f"<td class='l'>{_e(r.key)}</td><td class='l'>{u}</td><td>{fmt(r.reference, 5)}</td>"
             f"<td>{fmt(r.median, 5)}</td>"
             f"<td>{fmt(r.mean, 5)}</td><td>{fmt(r.sd, 3)}</td>{f'<td>{fmt(r.mean_se, 3)}</td>' if with_se else ''}"
             f"<td>{fmt(r.robust_sd, 3)}</td><td>{r.n_voxels}</td>"

@@ -28,11 +28,16 @@ def fmt(v, digits: int = 6) -> str:
 
 
 def results_csv(rows) -> bytes:
-    """One line per vial x parameter; values in the reference column's unit; ``pass`` is ``true``/``false``."""
+    """One line per vial x parameter; values in the reference column's unit; ``pass`` is ``true``/``false``.
+
+    When a map has a ``--tag``, a last column ``source`` holds it (``T1`` rows from ``ir`` and ``vfa``).
+    """
+    rows = list(rows)
+    tagged = any(r.source for r in rows)
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(CSV_COLUMNS)
+    w.writerow(CSV_COLUMNS + (["source"] if tagged else []))
     for r in rows:
         w.writerow([r.label, r.name, r.parameter, r.unit, fmt(r.reference), fmt(r.mean), fmt(r.median), fmt(r.sd),
-                    r.n_voxels, fmt(r.error_pct), "true" if r.pass_ else "false"])
+                    r.n_voxels, fmt(r.error_pct), "true" if r.pass_ else "false"] + ([r.source] if tagged else []))
     return buf.getvalue().encode()

@@ -17,6 +17,7 @@ from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..io.series import load_series
 from ..pipeline import CommonOptions, RunReport, prepare_run
+from ..record import recorded
 
 __all__ = ["EQUATIONS", "run_b1"]
 
@@ -67,6 +68,7 @@ def _load_dam(inputs, fa, tr, max_bytes):
     return series, float(a[0]), None
 
 
+@recorded
 def run_b1(
     inputs,
     *,
@@ -108,6 +110,8 @@ def run_b1(
         raise UsageError(f"--method {method!r}: expected afi or dam")
     if common.engine != "fast":
         raise UsageError("--engine does not apply to qmap b1: B1 is computed in closed form")
+    if common.units != "s":
+        raise UsageError("--units does not apply to qmap b1: it writes no time map (TB1 is a fraction)")
     budget = common.max_memory
     if method == "afi":
         series, fa_nom, n = _load_afi(inputs, fa, tr, budget)
@@ -116,7 +120,8 @@ def run_b1(
     # two images, no residual: without a noise level the standard errors are NaN
     # (the library default sigma=None stays quiet about an unknown noise level; the command line's "auto" warns)
     run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=True, fallback=NAN_FALLBACK,
-                      warn_fallback=sigma is not None, t0=t0)
+                      warn_fallback=sigma is not None, t0=t0,
+                      method=f"tb1{method}")
     noise_info: dict = run.noise_info if run.noise_info is not None else {"mode": "none", "sigma": None}
     run.noise_info = noise_info
     if run.sigma is None:

@@ -10,6 +10,7 @@ from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..io.series import load_series
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
+from ..record import recorded
 
 __all__ = ["load_echoes", "noise_options", "run_t2star"]
 
@@ -31,6 +32,7 @@ def load_echoes(inputs, *, te, drop_first: bool, common: CommonOptions, min_volu
     return series, notes
 
 
+@recorded
 def run_t2star(
     inputs,
     *,
@@ -66,4 +68,5 @@ def run_t2star(
         series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
         options=noise_options(noise_floor, sigma, coils, drop_first),
         model_info={"name": "monoexp", "equation": "S = M0 exp(-TE/T2star)"}, notes=notes, t0=t0,
+        method="megre",
     )

@@ -1,4 +1,4 @@
-"""``qmap demo``: every fit on the bundled sample data, then the phantom QA.
+"""``qmap demo``: every fit on the bundled sample data, then the phantom QA -- showing each command.
 
 The sample data (``sample_data/`` in the source tree, ``qmap/sample_data``
 in an installed package) are a synthetic, invented nine-vial phantom made by
@@ -6,29 +6,43 @@ in an installed package) are a synthetic, invented nine-vial phantom made by
 ``simulation.json`` lists the series, the acquisition, the phantom
 temperature and the true relaxation times. The demo
 
-1. fits T1 by inversion recovery, B1 by the double-angle method, T1 by
-   variable flip angle with that B1 map (it lies on a coarser grid with its
-   own affine and is resampled), T1 from the MP2RAGE UNI image (12-bit
-   export) and its inversion images with the same B1 map, T2 by extended
-   phase graphs and T2* by the mono-exponential with the Rician noise floor
-   -- each with PNG previews -- into ``DIR/maps``;
-2. runs the phantom QA of every relaxation map against the bundled reference
-   table (at the phantom's temperature): IR T1, T2 and T2* into
-   ``DIR/phantom``, VFA T1 into ``DIR/phantom-vfa``, MP2RAGE T1 into
-   ``DIR/phantom-mp2rage`` (one map per parameter and report);
-3. prints, per vial, the median of each map and its error against the true
-   value the data were simulated with;
+1. copies them to ``DIR/data`` (so that every command it prints can be run
+   again as printed, and the inputs lie beside the outputs);
+2. runs the fits of :data:`FITS` in order -- T1 by inversion recovery, B1 by
+   the double-angle method, T1 by variable flip angle with that B1 map (on a
+   coarser grid with its own affine, resampled), T1 from the MP2RAGE UNI
+   image (12-bit export) and its inversion images with the same B1 map, T2 by
+   extended phase graphs, T2* with the Rician noise floor -- each with PNG
+   previews, into
+   ``DIR/maps``, printing each command before it runs it (the very command
+   line it runs, through the same parser as ``qmap``) and writing them all to
+   ``DIR/commands.sh``; the maps are in the commands' default unit (seconds);
+3. runs one phantom QA of every compared map (the T1 maps, tagged ``ir``,
+   ``vfa`` and ``mp2rage``, T2 and T2*) against the bundled reference table at the phantom's
+   temperature into ``DIR/phantom``;
 4. simulates a small invented multi-pool disc (:func:`qmap.simulate.phantoms.pools_phantom`:
    two pools in one half, three in the other, SNR 300, 32 echoes) into
    ``DIR/pools-data`` and fits T2 spectra (``qmap t2-spectrum``) into
-   ``DIR/maps`` with the prefix ``pools``, printing the median short-T2
-   fraction per half against the truth.
+   ``DIR/maps`` with the prefix ``pools``;
+5. prints, per vial, the median of each map in the phantom QA's ROI (the
+   vial's label eroded by 1 voxel, fitted voxels only -- the numbers of the
+   QA report) and its error against the true value the data were simulated
+   with, and the median short-T2 fraction per half of the disc against the
+   truth.
+
+Another fit joins the demo by adding a :class:`DemoFit` to :data:`FITS`
+(and its series to the sample data).
 """
 
 from __future__ import annotations
 
+import glob
 import json
+import os
+import shlex
+import shutil
 import time
+from collections.abc import Callable
 from contextlib import ExitStack
 from dataclasses import dataclass, field
 from importlib import resources
@@ -37,17 +51,61 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 
-from ..errors import InputError
-from ..pipeline import CommonOptions
+from ..errors import InputError, OutputExistsError
 from ..plots import _fmt
 
-__all__ = ["FITS", "DemoReport", "run_demo", "sample_data_dir"]
+__all__ = ["FITS", "DemoFit", "DemoReport", "run_demo", "sample_data_dir"]
 
-#: (prefix, map parameter, column title) of the maps compared with the truth, in print order
-FITS = (("ir", "T1", "T1 IR"), ("vfa", "T1", "T1 VFA+B1"), ("mp2rage", "T1", "T1 MP2RAGE+B1"),
-        ("mese", "T2", "T2 EPG"), ("megre", "T2star", "T2*"))
-#: phantom QA runs (output subfolder -> map prefixes); one map per parameter in each
-QA_RUNS = {"phantom": ("ir", "mese", "megre"), "phantom-vfa": ("vfa",), "phantom-mp2rage": ("mp2rage",)}
+
+@dataclass(frozen=True)
+class DemoFit:
+    """One fit of the demo: a qmap command on one series of the sample data.
+
+    Attributes
+    ----------
+    prefix : str
+        Output prefix, and the series' name in ``simulation.json`` (``series``).
+    command : str
+        The qmap command (``t1-ir``, ...).
+    title : str
+        What the step does (printed before the command).
+    options : tuple of str
+        Further options; ``{maps}`` stands for the maps folder, ``{data}`` for the copied sample data,
+        ``{refocus}`` for the spin-echo series' sidecar ``RefocusingFlipAngle``.
+    param : str or None
+        The map compared with the truth and the reference (None: not compared).
+    column : str
+        Its column title in the printed table.
+    inputs : tuple of str
+        The positional inputs (formatted like ``options``); default: the series' files.
+    """
+
+    prefix: str
+    command: str
+    title: str
+    options: tuple = ()
+    param: str | None = None
+    column: str = ""
+    inputs: tuple = ()
+
+
+#: the fits, in the order they run (a later one may use an earlier one's map)
+FITS = [
+    DemoFit("ir", "t1-ir", "T1 by inversion recovery", (), "T1", "T1 IR"),
+    DemoFit("b1", "b1", "relative B1 by the double-angle method", ("--method", "dam")),
+    DemoFit("vfa", "t1-vfa", "T1 by variable flip angle, B1-corrected with the map of the previous step",
+            ("--b1", "{maps}/b1_TB1map.nii.gz"), "T1", "T1 VFA+B1"),
+    DemoFit("mp2rage", "t1-mp2rage", "T1 from the MP2RAGE UNI image (12-bit export) and its inversion images, "
+            "B1-corrected", ("--inv1", "{data}/sub-phantom/anat/sub-phantom_inv-1_MP2RAGE.nii.gz", "--inv2",
+                             "{data}/sub-phantom/anat/sub-phantom_inv-2_MP2RAGE.nii.gz", "--b1",
+                             "{maps}/b1_TB1map.nii.gz"), "T1", "T1 MP2RAGE+B1",
+            inputs=("{data}/sub-phantom/anat/sub-phantom_UNIT1.nii.gz",)),
+    DemoFit("mese", "t2", "T2 by extended phase graphs (refocusing angle fitted)", ("--epg", "--refocus", "{refocus}"),
+            "T2", "T2 EPG"),
+    DemoFit("megre", "t2star", "T2* with the Rician noise floor", (), "T2star", "T2*"),
+]
+#: what the table says about its ROIs
+ROI_NOTE = "ROI = the phantom QA's: each vial's label eroded by 1 voxel, fitted voxels (status 0) only"
 
 
 def sample_data_dir(stack: ExitStack | None = None) -> Path:
@@ -77,9 +135,10 @@ class DemoReport:
     table: list = field(default_factory=list)  # rows: vial label, name, {column: (median, truth, error %)}
     phantom_passed: bool = False
     phantom_reports: list = field(default_factory=list)
-    fits: dict = field(default_factory=dict)  # prefix -> RunReport
+    commands: list = field(default_factory=list)  # the shell lines run, in order
     wall_time_s: float = 0.0
     temperature_c: float | None = None
+    tolerance_pct: float | None = None
     spectrum_rows: list = field(default_factory=list)  # (region, voxels, median MWF, median true MWF)
 
     @property
@@ -87,18 +146,19 @@ class DemoReport:
         return 0 if self.phantom_passed else 3
 
     def text(self) -> str:
-        cols = [c for _, _, c in FITS]
+        cols = [f.column for f in FITS if f.param]
         head = f"{'vial':<8}" + "".join(f"{c + ' [ms]':>22}" for c in cols)
         sub = f"{'':<8}" + "".join(f"{'median':>12}{'err %':>10}" for _ in cols)
         lines = [f"qmap demo: synthetic nine-vial phantom at {self.temperature_c:g} C (invented sample data)",
-                 "median per vial of each map, error against the true value the data were simulated with:",
-                 head, sub]
-        for label, name, vals in self.table:
+                 "median per vial of each map, error against the true value the data were simulated with",
+                 f"({ROI_NOTE}):", head, sub]
+        for _label, name, vals in self.table:
             cells = "".join(f"{_fmt(vals[c][0]):>12}{vals[c][2]:>+10.2f}" if c in vals else f"{'-':>22}" for c in cols)
             lines.append(f"{name:<8}" + cells)
         worst = max((abs(v[2]) for _, _, vals in self.table for v in vals.values()), default=float("nan"))
         lines.append(f"largest |error|: {worst:.2f} %")
-        lines.append(f"phantom QA (tolerance 10 %): {'PASSED' if self.phantom_passed else 'FAILED'} -- reports: "
+        tol = "" if self.tolerance_pct is None else f"default tolerance {self.tolerance_pct:g} %"
+        lines.append(f"phantom QA ({tol}): {'PASSED' if self.phantom_passed else 'FAILED'} -- report: "
                      + ", ".join(str(p) for p in self.phantom_reports))
         if self.spectrum_rows:
             lines.append("multi-component T2 (t2-spectrum) on a simulated multi-pool disc (invented, SNR 300): "
@@ -106,7 +166,9 @@ class DemoReport:
             for region, n, est, truth in self.spectrum_rows:
                 lines.append(f"  {region:<11} {n:>5} voxels  MWF {est:.3f}  true {truth:.3f}  "
                              f"error {est - truth:+.3f}")
-        lines.append(f"maps and previews (*.png): {self.out_dir / 'maps'}")
+        lines.append(f"inputs (a copy of the sample data): {self.out_dir / 'data'}")
+        lines.append(f"maps (seconds) and previews (*.png): {self.out_dir / 'maps'}")
+        lines.append(f"the commands run: {self.out_dir / 'commands.sh'}")
         lines.append(f"look at one voxel: qmap inspect {self.out_dir / 'maps'} --prefix vfa --voxel 24,24,2")
         lines.append(f"done in {self.wall_time_s:.1f} s")
         return "\n".join(lines)
@@ -120,113 +182,166 @@ def _files(data: Path, manifest: dict, name: str) -> list[Path]:
                          f"scripts/make_sample_data.py") from None
 
 
+def _shell(argv: list) -> str:
+    """The command as one copyable shell line; a run of files becomes a glob when it expands to them, in order."""
+    out, i = ["qmap"], 0
+    while i < len(argv):
+        j = i
+        while j < len(argv) and isinstance(argv[j], Path):
+            j += 1
+        if j - i > 2:
+            files = [str(f) for f in argv[i:j]]
+            pre = os.path.commonprefix(files)
+            suf = os.path.commonprefix([f[::-1] for f in files])[::-1]
+            pattern = pre + "*" + suf
+            if len(pre) + len(suf) < min(map(len, files)) and sorted(glob.glob(pattern)) == files:
+                out.append(shlex.quote(pre) + "*" + shlex.quote(suf))
+                i = j
+                continue
+        if j > i:
+            out += [shlex.quote(str(f)) for f in argv[i:j]]
+            i = j
+        else:
+            out.append(shlex.quote(str(argv[i])))
+            i += 1
+    return " ".join(out)
+
+
+def _run_command(argv: list) -> int:
+    """Run one qmap command line through the command-line parser (what the printed line does)."""
+    from ..cli import get_parser
+
+    words = [str(a) for a in argv]
+    args = get_parser(words[0]).parse_args(words)
+    args.argv = ["qmap", *words]
+    return int(args.run(args) or 0)
+
+
 def run_demo(out_dir, *, n_jobs: int | None = None, overwrite: bool = False, quiet: bool = True,
-             command_line: list | None = None) -> DemoReport:
+             command_line: list | None = None, echo=print) -> DemoReport:
     """Run every fit and the phantom QA on the sample data; see the module docstring.
 
     Parameters
     ----------
     out_dir : path-like
-        Output folder (``maps/`` and ``phantom/`` are created in it).
+        Output folder (``data/``, ``maps/``, ``phantom/`` and ``commands.sh`` are created in it).
     n_jobs : int, optional
         Local workers per fit (default: all cores).
     overwrite : bool
         Replace the outputs of an earlier demo in ``out_dir``.
     quiet : bool
-        No progress bars.
+        No progress bars, no per-step output (the commands are still written to ``commands.sh``).
+    echo : callable
+        Where the step headings and commands go (default: print).
 
     Returns
     -------
     DemoReport
-        ``exit_code`` 0 when the phantom passes (every fit ran, or an error was raised).
+        ``exit_code`` 0 when every fit ran and the phantom passes, 3 when the phantom fails (a failing
+        fit raises).
     """
-    from .b1 import run_b1
-    from .decay import run_t2star
-    from .ir import run_t1_ir
-    from .mp2rage import run_t1_mp2rage
-    from .phantom import run_phantom
-    from .t2 import run_t2
-    from .vfa import run_t1_vfa
-
     t0 = time.perf_counter()
     out = Path(out_dir)
-    maps_dir = out / "maps"
+    maps_dir, data = out / "maps", out / "data"
+    if not overwrite:
+        found = [p for p in (data, maps_dir, out / "phantom", out / "pools-data", out / "commands.sh") if p.exists()]
+        if found:
+            raise OutputExistsError(f"{found[0]} exists already (an earlier demo); pass --overwrite to replace it, or "
+                                    f"choose another -o")
     with ExitStack() as stack:
-        data = sample_data_dir(stack)
-        manifest = json.loads((data / "simulation.json").read_text(encoding="utf-8"))
-        temp = manifest.get("temperature_C")
-        rep = DemoReport(out_dir=out, temperature_c=temp)
+        bundled = sample_data_dir(stack)
+        manifest = json.loads((bundled / "simulation.json").read_text(encoding="utf-8"))
+        if data.exists():
+            shutil.rmtree(data)
+        shutil.copytree(bundled, data, ignore=shutil.ignore_patterns("__pycache__", "*.py", "*.pyc"))
+    temp = manifest.get("temperature_C")
+    rep = DemoReport(out_dir=out, temperature_c=temp)
+    values = {"maps": str(maps_dir), "data": str(data),
+              "refocus": f"{manifest['series'].get('mese', {}).get('sidecar', {}).get('RefocusingFlipAngle', 180.0):g}"}
+    common = (["--overwrite"] if overwrite else []) + (["-j", str(n_jobs)] if n_jobs else []) + (["-q"] if quiet else [])
+    steps: list[tuple[str, list | Callable[[], list]]] = []
+    for f in FITS:
+        opts = [o.format(**values) for o in f.options]
+        inputs = [Path(i.format(**values)) for i in f.inputs] or _files(data, manifest, f.prefix)
+        steps.append((f.title, [f.command, *inputs, *opts, "-o", maps_dir, "--prefix",
+                                f.prefix, "--preview", *common]))
+    compared = [f for f in FITS if f.param]
+    shared = {p for p in (f.param for f in compared) if sum(g.param == p for g in compared) > 1}
+    qa = ["phantom", "--labels", data / manifest["labels"], "--reference", data / manifest["reference"],
+          "--temperature", f"{temp:g}", "-o", out / "phantom"]
+    for f in compared:
+        qa += ["--map", maps_dir / f"{f.prefix}_{f.param}map.nii.gz"] + (["--tag", f.prefix] if f.param in shared else [])
+    steps.append(("phantom QA of " + ", ".join(f.column for f in compared) + " against the reference table",
+                  qa + [a for a in common if a in ("--overwrite", "-q")]))
+    pools = out / "pools-data"
+    steps.append(("simulate an invented multi-pool disc (two and three T2 pools) for multi-component T2",
+                  ["simulate", "-o", pools, "--phantom", "pools", "--protocol", "mese", "--shape", "24,24,1", "--snr",
+                   "300", "--seed", "17", "--b1-range", "0.85,1.0", "--echoes", "32"]
+                  + [a for a in common if a in ("--overwrite", "-q")]))
 
-        def common(prefix: str) -> CommonOptions:
-            return CommonOptions(out_dir=maps_dir, prefix=prefix, n_jobs=n_jobs, overwrite=overwrite, units="ms",
-                                 quiet=quiet, preview=True, command_line=command_line)
+    def spectrum_argv() -> list:
+        man = json.loads((pools / "simulation.json").read_text(encoding="utf-8"))
+        return ["t2-spectrum", *[pools / f for f in man["series"]["mese"]["files"]], "-o", maps_dir, "--prefix",
+                "pools", "--preview", "--se-subsample", "40", *common]
 
-        rep.fits["ir"] = run_t1_ir(_files(data, manifest, "ir"), common=common("ir"))
-        rep.fits["b1"] = run_b1(_files(data, manifest, "b1"), common=common("b1"), method="dam")
-        rep.fits["vfa"] = run_t1_vfa(_files(data, manifest, "vfa"), common=common("vfa"),
-                                     b1=maps_dir / "b1_TB1map.nii.gz")
-        inv = _files(data, manifest, "mp2rage")
-        rep.fits["mp2rage"] = run_t1_mp2rage(data / manifest["series"]["mp2rage"]["uni"], common=common("mp2rage"),
-                                             inv1=inv[0], inv2=inv[1], b1=maps_dir / "b1_TB1map.nii.gz")
-        refocus = manifest["series"]["mese"]["sidecar"].get("RefocusingFlipAngle", 180.0)
-        rep.fits["mese"] = run_t2(_files(data, manifest, "mese"), common=common("mese"), epg=True,
-                                refocus_deg=refocus)
-        rep.fits["megre"] = run_t2star(_files(data, manifest, "megre"), common=common("megre"))
-        passed = []
-        for sub, prefixes in QA_RUNS.items():  # one map per parameter and QA run
-            map_files = [maps_dir / f"{prefix}_{param}map.nii.gz" for prefix, param, _ in FITS if prefix in prefixes]
-            ph = run_phantom(map_files, reference=data / manifest["reference"], labels=data / manifest["labels"],
-                             out_dir=out / sub, temperature=temp, overwrite=overwrite, command_line=command_line)
-            passed.append(bool(ph.passed))
-            rep.phantom_reports.append(out / sub / "phantom_report.html")
-        rep.phantom_passed = all(passed)
-        rep.table = _truth_table(data, manifest, maps_dir)
-    rep.fits["pools"], rep.spectrum_rows = _spectrum_demo(out, common("pools"), overwrite=overwrite)
+    steps.append(("multi-component T2 spectra (short-T2 fraction) of the disc", spectrum_argv))
+    for k, (title, make) in enumerate(steps, start=1):
+        argv = make() if callable(make) else make
+        line = _shell(argv)
+        rep.commands.append(line)
+        if not quiet:
+            echo(f"\n[{k}/{len(steps)}] {title}\n$ {line}")
+        _run_command(argv)
+    result = json.loads((out / "phantom" / "phantom_results.json").read_text(encoding="utf-8"))
+    rep.phantom_passed = result["verdict"] == "pass"
+    rep.tolerance_pct = result["settings"].get("tolerance_pct")
+    rep.phantom_reports.append(out / "phantom" / "phantom_report.html")
+    rep.table = _truth_table(manifest, result["rows"])
+    rep.spectrum_rows = _spectrum_rows(pools, maps_dir)
+    script = ["#!/bin/sh", "# the commands qmap demo ran (from the folder it was started in)", "set -e",
+              *rep.commands]
+    tmp = out / f".commands.sh.qmap-tmp-{os.getpid()}"
+    tmp.write_text("\n".join(script) + "\n", encoding="utf-8")
+    os.replace(tmp, out / "commands.sh")
+    if not quiet:
+        echo("")
     rep.wall_time_s = time.perf_counter() - t0
     return rep
 
 
-def _truth_table(data: Path, manifest: dict, maps_dir: Path) -> list:
-    """Median of each map per vial (the full vial label) against the simulated truth, in ms."""
-    labels = np.asarray(nib.load(str(data / manifest["labels"])).dataobj)
-    loaded = {}
-    for prefix, param, col in FITS:
-        img = nib.load(str(maps_dir / f"{prefix}_{param}map.nii.gz"))
-        units = json.loads((maps_dir / f"{prefix}_{param}map.json").read_text(encoding="utf-8")).get("Units", "s")
-        loaded[col] = (np.asarray(img.dataobj, float) * (1.0 if units == "ms" else 1e3), param)
-    rows = []
+def _truth_table(manifest: dict, rows: list) -> list:
+    """Median of each compared map per vial (the phantom QA's rows) against the simulated truth, in ms."""
+    unit_ms = {"ms": 1.0, "s": 1e3, "us": 1e-3}
+    by_key = {}
+    for r in rows:
+        key = (r["label"], r["parameter"], r.get("source") or "")
+        if r.get("median") is not None and r["unit"] in unit_ms:
+            by_key[key] = r["median"] * unit_ms[r["unit"]]
+    compared = [f for f in FITS if f.param]
+    shared = {p for p in (f.param for f in compared) if sum(g.param == p for g in compared) > 1}
+    table = []
     for lab, truth in sorted(manifest["truth_values"].items(), key=lambda kv: int(kv[0])):
-        roi = labels == int(lab)
         vals = {}
-        for col, (arr, param) in loaded.items():
-            v = arr[roi]
-            v = v[np.isfinite(v)]
-            if not v.size:
+        for f in compared:
+            med = by_key.get((int(lab), f.param, f.prefix if f.param in shared else ""))
+            ref = truth.get(f"{f.param}_s")
+            if med is None or ref is None:
                 continue
-            ref = truth[f"{param}_s"] * 1e3
-            med = float(np.median(v))
-            vals[col] = (med, ref, 100.0 * (med - ref) / ref)
-        rows.append((int(lab), truth["name"], vals))
-    return rows
+            vals[f.column] = (med, ref * 1e3, 100.0 * (med - ref * 1e3) / (ref * 1e3))
+        table.append((int(lab), truth["name"], vals))
+    return table
 
 
-def _spectrum_demo(out: Path, common: CommonOptions, *, overwrite: bool):
-    """Simulate the invented multi-pool disc and fit its T2 spectra; returns (RunReport, rows per region)."""
-    from ..simulate import Protocols, simulate
-    from .t2_spectrum import run_t2_spectrum
-
-    data = out / "pools-data"
-    man = simulate(data, phantom="pools", protocols=["mese"], shape=(24, 24, 1), snr=300.0, seed=17,
-                   b1_range=(0.85, 1.0), settings=Protocols(mese_echoes=32), overwrite=overwrite)
-    files = [data / f for f in man["series"]["mese"]["files"]]
-    report = run_t2_spectrum(files, common=common, se_subsample=40)
-    truth = np.asarray(nib.load(str(data / man["truth"]["MWF"])).dataobj, float)
-    regions = np.asarray(nib.load(str(data / man["labels"])).dataobj)
-    fitted = report.maps.status == 0
+def _spectrum_rows(pools: Path, maps_dir: Path) -> list:
+    """Median fitted and true short-T2 fraction (MWF) per half of the multi-pool disc (fitted voxels)."""
+    man = json.loads((pools / "simulation.json").read_text(encoding="utf-8"))
+    truth = np.asarray(nib.load(str(pools / man["truth"]["MWF"])).dataobj, float)
+    regions = np.asarray(nib.load(str(pools / man["labels"])).dataobj)
+    mwf = np.asarray(nib.load(str(maps_dir / "pools_MWFmap.nii.gz")).dataobj, float)
+    fitted = np.asarray(nib.load(str(maps_dir / "pools_desc-status_fitmap.nii.gz")).dataobj) == 0
     rows = []
     for lab, name in ((1, "two-pool"), (2, "three-pool")):
         sel = (regions == lab) & fitted & np.isfinite(truth)
         if sel.any():
-            rows.append((name, int(sel.sum()), float(np.median(report.maps["MWF"][sel])),
-                         float(np.median(truth[sel]))))
-    return report, rows
+            rows.append((name, int(sel.sum()), float(np.median(mwf[sel])), float(np.median(truth[sel]))))
+    return rows

@@ -33,10 +33,12 @@ from ..io.series import Series, load_series
 from ..maps import MapSet, fit_volume
 from ..models.ir import SIGNALS, InversionRecovery
 from ..pipeline import CommonOptions, RunReport, run_fit
+from ..record import recorded
 
 __all__ = ["fit_t1_ir", "phase_correct", "run_t1_ir"]
 
-EQUATION = "S = a + b exp(-TI/T1); M0 = a, InversionEfficiency = -b/a - 1"
+EQUATION = ("S = M0 (1 - (1 + InversionEfficiency) exp(-TI/T1)) (InversionEfficiency 1 = perfect inversion), "
+            "fitted in its linear-amplitude form a + b exp(-TI/T1) with M0 = a, InversionEfficiency = -b/a - 1")
 LOOK_LOCKER = "T1 = T1* (B/A - 1) for S = A - B exp(-TI/T1*) (Deichmann & Haase, J Magn Reson 1992;96:608)"
 POLARITY = ("magnitude: sign restored per voxel, the better fit of flipping the samples before the smallest one "
             "or up to and including it (Barral et al., Magn Reson Med 2010;64:1057)")
@@ -107,6 +109,7 @@ def _sort_by_ti(series: Series) -> None:
         series.acquisition["InversionTime"] = ti[order]
 
 
+@recorded
 def run_t1_ir(
     inputs,
     *,
@@ -185,7 +188,9 @@ def run_t1_ir(
             f"check --ti / --tr and their units (e.g. --tr 6s or --tr 6000ms)"
         )
     model = InversionRecovery(ti_used, signal=signal, look_locker=look_locker)
-    model_info = {"name": "ir", "equation": EQUATION, "signal": signal, "look_locker": bool(look_locker)}
+    model_info = {"name": "ir", "equation": EQUATION, "signal": signal, "look_locker": bool(look_locker),
+                  # qmap's own parametrisation (the solver's amplitudes a, b are an implementation detail)
+                  "parameters": ["M0", "ApparentT1" if look_locker else "InversionEfficiency", "T1"]}
     if signal == "magnitude":
         model_info["polarity_restoration"] = POLARITY
     if signal == "complex":
@@ -195,7 +200,7 @@ def run_t1_ir(
     options = {"signal": signal, "look_locker": bool(look_locker),
                "phase": [str(p) for p in extra] if extra else None, "sigma": None if sigma is None else str(sigma)}
     report = run_fit(series, model, common=common, noise=None, sigma_spec=sigma, options=options,
-                     model_info=model_info, extra_inputs=extra, magnitude=signal == "magnitude", t0=t0)
+                     model_info=model_info, extra_inputs=extra, magnitude=signal == "magnitude", t0=t0, method="irt1")
     good = report.maps.status == 0
     if tr_used is not None and not look_locker and good.any():
         t1_med = float(np.median(report.maps["T1"][good]))

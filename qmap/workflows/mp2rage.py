@@ -43,6 +43,7 @@ from ..pipeline import (
     resolve_sigma,
     write_run,
 )
+from ..record import recorded
 
 __all__ = ["B1_TABLE_RANGE", "UNI_ENCODINGS", "decode_uni", "fit_t1_mp2rage", "run_t1_mp2rage"]
 
@@ -365,6 +366,7 @@ def _load_inversion(path, phase, what: str, ref_img):
     return data
 
 
+@recorded
 def run_t1_mp2rage(
     uni,
     *,

@@ -20,16 +20,19 @@ from ..errors import InputError, OutputExistsError, UsageError, warn
 from ..io.nifti import image_data, load_image
 from ..qa.compose import MapView, write_outputs
 from ..qa.history import find_trends, merge_session, read_history
-from ..qa.inputs import MapInput, labels_on_grid, load_labels, load_map
+from ..qa.inputs import MapInput, labels_on_grid, load_labels, load_map, map_provenance, status_beside
 from ..qa.layout import place_rois, read_layout
-from ..qa.quantities import conversion
+from ..qa.quantities import conversion, example_column
 from ..qa.reference import read_reference
 from ..qa.results import fmt
-from ..qa.rois import roi_masks
+from ..qa.rois import roi_masks, roi_values
 from ..qa.session import session_info
 from ..qa.stats import ERROR_BASIS, RoiResult, roi_statistics
 
-__all__ = ["FIXED_OUTPUTS", "PhantomReport", "run_phantom"]
+__all__ = ["DEFAULT_TOLERANCE", "FIXED_OUTPUTS", "PhantomReport", "run_phantom"]
+
+#: Allowed |error| of the ROI median in percent of the reference when --tolerance is not given.
+DEFAULT_TOLERANCE = 10.0
 
 #: Files every run writes into the output folder.
 FIXED_OUTPUTS = ("phantom_results.csv", "phantom_results.json", "phantom_report.html")
@@ -75,8 +78,9 @@ class PhantomReport:
     def summary(self) -> str:
         n, nf = len(self.rows), len(self.failed)
         tol = self.settings.get("tolerance_pct")
+        which = "default tolerance" if self.settings.get("tolerance_source") == "default" else "tolerance"
         head = (f"phantom: {'PASSED' if self.passed else 'NOT PASSED'} -- {n - nf} of {n} ROI values within "
-                f"tolerance (error of the ROI {ERROR_BASIS} vs reference; default tolerance {tol:g}%)")
+                f"tolerance (error of the ROI {ERROR_BASIS} vs reference; {which} {tol:g}%)")
         lines = [head]
         for r in self.failed:
             lines.append("  " + describe_failure(r))
@@ -93,7 +97,7 @@ class PhantomReport:
 
 
 def describe_failure(r: RoiResult) -> str:
-    who = f"vial {r.label}" + (f" ({r.name})" if r.name else "") + f" {r.parameter}"
+    who = f"vial {r.label}" + (f" ({r.name})" if r.name else "") + f" {r.key}"
     if r.n_voxels == 0:
         return f"{who}: no usable voxels in the ROI"
     if r.too_small:
@@ -111,7 +115,8 @@ def _check_options(maps, params, labels, layout, layout_image, tolerance, erode,
         raise UsageError("give either --labels (a label image) or --layout (vial positions), not both or neither")
     if layout_image is not None and layout is None:
         raise UsageError("--layout-image only applies with --layout")
-    if not (isinstance(tolerance, (int, float)) and math.isfinite(tolerance) and tolerance > 0):
+    if tolerance is not None and not (isinstance(tolerance, (int, float)) and math.isfinite(tolerance)
+                                      and tolerance > 0):
         raise UsageError(f"--tolerance {tolerance}: give a positive percentage, e.g. 10")
     if erode is not None and erode < 0:
         raise UsageError(f"--erode {erode}: give 0 or a positive number of voxels")
@@ -134,14 +139,16 @@ def _check_outputs_free(out_dir: Path, overwrite: bool, layout: bool) -> None:
 def _check_maps(maps: list[MapInput], table) -> None:
     seen = {}
     for m in maps:
-        if m.param in seen:
-            raise InputError(f"--map {m.path} and --map {seen[m.param]} both hold {m.param}; give one map per "
-                             f"parameter (or --param to say what each holds)")
-        seen[m.param] = m.path
+        if m.key in seen:
+            raise InputError(f"--map {m.path} and --map {seen[m.key]} both hold {m.key}; tell them apart with "
+                             f"--tag after each (--map A --tag ir --map B --tag vfa), or --param to say what each "
+                             f"holds")
+        seen[m.key] = m.path
         if m.param not in table.units:
             cols = ", ".join(table.units)
             raise InputError(f"--map {m.path} holds {m.param} but {table.path} has no {m.param} column (parameter "
-                             f"columns found: {cols}); add a column such as {m.param}_ms, or leave this map out")
+                             f"columns found: {cols}); add a column such as {example_column(m.param)}, or leave "
+                             f"this map out")
 
 
 def _label_image(labels, layout, layout_image, maps, table):
@@ -188,8 +195,9 @@ def run_phantom(
     layout=None,
     layout_image=None,
     params=None,
+    tags=None,
     temperature: float | None = None,
-    tolerance: float = 10.0,
+    tolerance: float | None = None,
     erode: int | None = None,
     min_voxels: int = 10,
     history=None,
@@ -222,12 +230,15 @@ def run_phantom(
         first map) and saved as ``phantom_labels.nii.gz``.
     params : list of str or None, optional
         Parameter of each map (None = from the file name).
+    tags : list of str or None, optional
+        A short label of each map (None = none), e.g. ``"ir"`` and ``"vfa"`` for two T1 maps: rows,
+        figures and the history then name the parameter ``T1 (ir)``.
     temperature : float, optional
         Phantom temperature, degrees C; required when the table has several
         temperatures for a vial.
-    tolerance : float
-        Allowed |error| in percent of the reference (per-vial columns of the
-        table override it).
+    tolerance : float, optional
+        Allowed |error| in percent of the reference (default
+        :data:`DEFAULT_TOLERANCE`; per-vial columns of the table override it).
     erode : int, optional
         Voxel layers removed from each ROI against partial volume. Default:
         1 with ``labels`` (label images usually cover whole vials), 0 with
@@ -248,14 +259,22 @@ def run_phantom(
     """
     maps = [Path(m) for m in (maps or [])]
     params = list(params) if params is not None else [None] * len(maps)
+    tags = list(tags) if tags is not None else [None] * len(maps)
+    if len(tags) != len(maps):
+        raise UsageError("tags must have one entry (or None) per map")
+    tolerance_source = "default" if tolerance is None else "--tolerance"
     _check_options(maps, params, labels, layout, layout_image, tolerance, erode, min_voxels, temperature)
     if erode is None:
         erode = 1 if labels is not None else 0
+    tolerance = DEFAULT_TOLERANCE if tolerance is None else float(tolerance)
     out_dir = Path(out_dir)
     _check_outputs_free(out_dir, overwrite, layout is not None)
     table = read_reference(reference)
     entries = table.at(temperature)
     loaded = [load_map(p, par) for p, par in zip(maps, params)]
+    for m, tag in zip(loaded, tags):
+        m.tag = str(tag or "").strip()
+        m.provenance = map_provenance(m.path)
     _check_maps(loaded, table)
     session = session_info(loaded[0].sidecar, date=date, scanner=scanner, protocol=protocol)
     if history is not None and not Path(history).absolute().parent.is_dir():
@@ -285,11 +304,13 @@ def run_phantom(
         warn(w)
 
     settings = {
-        "temperature_C": temperature, "tolerance_pct": float(tolerance), "erode_voxels": int(erode),
+        "temperature_C": temperature, "tolerance_pct": float(tolerance), "tolerance_source": tolerance_source,
+        "erode_voxels": int(erode),
         "min_voxels": int(min_voxels), "error_basis": ERROR_BASIS, "roi_source": roi_source,
         "reference": str(Path(reference)), "reference_units": dict(table.units),
         "interpolated_vials": [e.label for e in entries.values() if e.interpolated],
-        "maps": [{"path": str(v.map.path), "parameter": v.map.param, "unit": v.map.unit,
+        "maps": [{"path": str(v.map.path), "parameter": v.map.param, "tag": v.map.tag, "unit": v.map.unit,
+                  "produced_by": v.map.provenance,
                   "unit_source": v.map.unit_source, "parameter_source": v.map.param_source,
                   "labels_resampled": v.resampled} for v in views],
     }
@@ -331,20 +352,27 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
                 f"{_fov(lab.shape, lab_aff)}); check that --labels and --map belong to the same scan"
             )
         se_map = _stderr_map(m)
+        status, _, why = status_beside(m.path, m.data.shape, m.affine)
+        if why:
+            notes.append(why)
         for k in wanted:
             e = entries[k]
-            r = roi_statistics(m.data[rois[k]] * factor, label=k, name=e.name, parameter=m.param, unit=unit,
+            values, excluded = roi_values(m.data, rois[k], status)  # the same ROI values as `qmap roi`
+            r = roi_statistics(values * factor, label=k, name=e.name, parameter=m.param, unit=unit,
                                reference=e.values[m.param], tolerance_pct=e.tolerance_pct.get(m.param, tolerance),
                                min_voxels=min_voxels, map_name=m.path.name,
-                               stderr_values=None if se_map is None else se_map[rois[k]] * factor)
+                               stderr_values=None if se_map is None else roi_values(se_map, rois[k], status)[0] * factor)
+            r.n_excluded = int(sum(excluded.values()))
+            r.source = m.tag
             rows.append(r)
             if r.too_small:
-                notes.append(f"vial {k} {m.param}: {r.n_voxels} usable voxels in the ROI, fewer than the minimum "
+                notes.append(f"vial {k} {m.key}: {r.n_voxels} usable voxels in the ROI, fewer than the minimum "
                              f"{min_voxels}; counted as not passed -- check the ROI figure, the label image or --erode")
-            elif r.n_nonfinite > 0.1 * (r.n_voxels + r.n_nonfinite):
-                notes.append(f"vial {k} {m.param}: {r.n_nonfinite} of {r.n_voxels + r.n_nonfinite} ROI voxels have "
-                             f"no value in {m.path.name} (failed or masked fits); statistics use the rest")
-        notes.extend(_unit_sanity(m, [r for r in rows if r.parameter == m.param]))
+            elif r.n_nonfinite + r.n_excluded > 0.1 * (r.n_voxels + r.n_nonfinite + r.n_excluded):
+                notes.append(f"vial {k} {m.key}: {r.n_nonfinite + r.n_excluded} of "
+                             f"{r.n_voxels + r.n_nonfinite + r.n_excluded} ROI voxels have no value in {m.path.name} "
+                             f"or were not fitted (status map); statistics use the rest")
+        notes.extend(_unit_sanity(m, [r for r in rows if r.key == m.key]))
         views.append(MapView(m, lab_m, rois, factor, unit, resampled))
     return rows, views
 
@@ -373,8 +401,8 @@ def _update_history(history, old_history, rows, session, entries, notes):
         notes.append(f"no --date and no acquisition date in the sidecar: the history records today's date "
                      f"{session.date}")
     trends = find_trends(history_rows, session.scanner, session.protocol,
-                         [(r.label, r.parameter) for r in rows],
-                         {(r.label, r.parameter): r.tolerance_pct for r in rows})
+                         [(r.label, r.key) for r in rows],
+                         {(r.label, r.key): r.tolerance_pct for r in rows})
     return history_rows, trends
 
 
@@ -392,7 +420,7 @@ def _unit_sanity(m: MapInput, rows) -> list[str]:
 
 def _history_row(r: RoiResult, session, temperature) -> dict:
     return {"date": session.date, "scanner": session.scanner, "protocol": session.protocol, "label": r.label,
-            "name": r.name, "parameter": r.parameter, "unit": r.unit, "reference": fmt(r.reference),
+            "name": r.name, "parameter": r.key, "unit": r.unit, "reference": fmt(r.reference),
             "median": fmt(r.median), "mean": fmt(r.mean), "error_pct": fmt(r.error_pct),
             "tolerance_pct": fmt(r.tolerance_pct), "pass": "true" if r.pass_ else "false",
             "temperature_C": fmt(temperature), "qmap_version": __version__}

@@ -18,6 +18,7 @@ import time
 
 import numpy as np
 
+from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..errors import UsageError
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..maps import MapSet, fit_volume
@@ -25,14 +26,10 @@ from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
+from ..record import recorded
 from .decay import load_echoes, noise_options
 
 __all__ = ["DEFAULT_REFOCUS", "DEFAULT_T1", "fit_t2", "run_t2", "t2_model"]
-
-#: fixed T1 of the EPG model, s (its influence on T2 is small; see qmap.models.epg_t2)
-DEFAULT_T1 = 1.0
-#: nominal refocusing angle, degrees
-DEFAULT_REFOCUS = 180.0
 
 
 def t2_model(
@@ -144,6 +141,7 @@ def fit_t2(
     return maps
 
 
+@recorded
 def run_t2(
     inputs,
     *,
@@ -186,5 +184,5 @@ def run_t2(
                      f"scale, T1 fixed at {t1:g} s")
     return run_fit(
         series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
-        options=options, model_info=info, notes=notes, t0=t0,
+        options=options, model_info=info, notes=notes, t0=t0, method="mese",
     )

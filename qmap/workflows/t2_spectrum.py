@@ -41,6 +41,7 @@ from ..pipeline import (
     resolve_sigma,
     write_run,
 )
+from ..record import recorded
 from .decay import load_echoes
 
 __all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
@@ -305,6 +306,7 @@ def fit_t2_spectrum(
     return maps, extra
 
 
+@recorded
 def run_t2_spectrum(
     inputs,
     *,

@@ -25,6 +25,8 @@ from typing import Any
 import numpy as np
 
 from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
+from ..defaults import T1_TYPICAL
+from ..defaults import VFA_METHODS as METHODS
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
@@ -32,6 +34,7 @@ from ..io.series import load_series
 from ..maps import MapSet, fit_volume
 from ..models.vfa import LINEAR_PASSES, SpoiledGRE, ernst_angle, optimal_angle_pair, t1_crlb
 from ..pipeline import CommonOptions, RunReport, prepare_run
+from ..record import recorded
 
 __all__ = [
     "METHODS",
@@ -42,10 +45,6 @@ __all__ = [
     "run_t1_vfa",
 ]
 
-METHODS = ("nonlinear", "linear")
-#: T1 assumed for the protocol note unless --t1-typical is given, seconds (brain white matter at 3 T is
-#: about 0.8-1.1 s: Stanisz et al., Magn Reson Med 2005;54:507, (memory))
-T1_TYPICAL = 1.0
 #: the CRLB of T1 may be this many times that of the optimal two-angle protocol before the note is printed
 PROTOCOL_RATIO = 1.5
 NO_B1_NOTE = ("no B1 correction applied: nominal flip angles assumed (T1 errs roughly in proportion to B1^2 "
@@ -175,6 +174,7 @@ def fit_t1_vfa(
     return maps
 
 
+@recorded
 def run_t1_vfa(
     inputs,
     *,
@@ -243,7 +243,7 @@ def run_t1_vfa(
     # two angles leave no residual degrees of freedom: the noise level is needed under either convention
     run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=common.stderr == "noise" or fa_used.size == 2,
                       extra_inputs=[b1] if b1 is not None else None, notes=[proto_note] if proto_note else None,
-                      t0=t0)
+                      t0=t0, method="vfa")
     if run.noise_info is None:
         run.noise_info = {"mode": "none", "sigma": None}
     if run.sigma is None and fa_used.size == 2:

@@ -69,7 +69,7 @@ def test_afi_two_files_with_sidecars(tmp_path, capsys):
     out = tmp_path / "out"
     assert main(["b1", *map(str, files), "--method", "afi", "-o", str(out)]) == 0
     summary = capsys.readouterr().out
-    tb1, se, status, prov = _read(out, "sub-01_acq-tr1_AFI")
+    tb1, se, status, prov = _read(out, "sub-01_acq-tb1afi")
     good = obj & (status == 0)
     assert good.sum() > 0.9 * obj.sum()
     err = tb1[good] / b1[good] - 1
@@ -78,13 +78,13 @@ def test_afi_two_files_with_sidecars(tmp_path, capsys):
     assert prov["noise"]["sigma"] == pytest.approx(sigma, rel=0.05)
     assert np.std(tb1[good] - b1[good]) == pytest.approx(np.sqrt(np.mean(se[good] ** 2)), rel=0.25)
     assert prov["acquisition"] == {"RepetitionTime": [tr1, tr2], "FlipAngle": fa}
-    assert prov["outputs"]["sub-01_acq-tr1_AFI_TB1map.nii.gz"] == {"parameter": "TB1", "kind": "estimate",
+    assert prov["outputs"]["sub-01_acq-tb1afi_TB1map.nii.gz"] == {"parameter": "TB1", "kind": "estimate",
                                                                    "units": "fraction"}
     assert prov["model"]["name"] == "afi" and prov["model"]["tr_ratio"] == pytest.approx(5.0)
     assert set(prov["status_codes"]) >= {"0", "1", "2", "8"}
     assert sum(prov["status_counts"].values()) == obj.size
     assert "TB1 (fraction): median" in summary
-    side = json.loads((out / "sub-01_acq-tr1_AFI_TB1map.json").read_text())
+    side = json.loads((out / "sub-01_acq-tb1afi_TB1map.json").read_text())
     assert side["Units"] == "fraction"
 
 
@@ -120,6 +120,14 @@ def test_dam_recovers_b1_from_single_fa(tmp_path):
     assert abs(np.median(err)) < 2e-3 and np.median(np.abs(err)) < 5e-3
     assert prov["acquisition"]["FlipAngle"] == [fa, 2 * fa]
     assert prov["acquisition"]["RepetitionTime"] == 5.0
+    # two images determine B1 exactly: R-squared and the RMS residual are not defined (NaN), not a "perfect fit"
+    for q in ("rsquared", "rmse"):
+        assert np.all(np.isnan(nib.load(str(out / f"dam0_desc-{q}_fitmap.nii.gz")).get_fdata()))
+    assert "exactly determined" in prov["model"]["quality"]
+    # the status map's sidecar lists the codes it uses
+    side = json.loads((out / "dam0_desc-status_fitmap.json").read_text())
+    used = {str(c) for c in np.unique(status)}
+    assert set(side["StatusCodes"]) == used and side["StatusCodes"]["0"] == "fitted"
 
 
 def _bad(args, tmp_path, capsys):
@@ -145,3 +153,6 @@ def test_bad_inputs(tmp_path, capsys):
              for k in (1, 2, 3)]
     assert "two images" in _bad([*three, "--method", "dam"], tmp_path, capsys)
     assert "--method" in _bad([a, b, "--fa", "30"], tmp_path, capsys)  # --method is required
+    # b1 writes no time map and computes B1 in closed form: --units and --engine are not options of b1
+    assert "--units" in _bad([a, b, "--method", "dam", "--fa", "30", "--units", "ms"], tmp_path, capsys)
+    assert "--engine" in _bad([a, b, "--method", "dam", "--fa", "30", "--engine", "lmfit"], tmp_path, capsys)

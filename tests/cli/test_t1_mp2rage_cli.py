@@ -105,19 +105,19 @@ def test_integer_uni_with_sidecar_and_b1(mp2, tmp_path):
     p = mp2["paths"]
     out = tmp_path / "int"
     assert main(["t1-mp2rage", str(p["uni_int"]), "--b1", str(p["b1"]), "-o", str(out), "-q"]) == 0
-    t1 = _t1(out, "sub-01_UNIT1")
+    t1 = _t1(out, "sub-01_acq-mp2rage")
     assert _median_error(mp2, t1) < 0.015  # the goal (with B1)
-    status = np.asarray(nib.load(str(out / "sub-01_UNIT1_desc-status_fitmap.nii.gz")).dataobj)
+    status = np.asarray(nib.load(str(out / "sub-01_acq-mp2rage_desc-status_fitmap.nii.gz")).dataobj)
     assert np.all(status[mp2["obj"]] == 0)
-    prov = json.loads((out / "sub-01_UNIT1_provenance.json").read_text())
+    prov = json.loads((out / "sub-01_acq-mp2rage_provenance.json").read_text())
     assert prov["acquisition"] == {"InversionTime": [0.7, 2.5], "FlipAngle": [4.0, 5.0],
                                    "RepetitionTimePreparation": 5.0, "RepetitionTimeExcitation": 0.007,
                                    "NumberShots": 176}
     assert prov["options"]["uni_encoding"].startswith("12-bit")
     assert "9" in prov["status_codes"]
-    assert sorted(prov["outputs"]) == ["sub-01_UNIT1_R1map.nii.gz", "sub-01_UNIT1_T1map.nii.gz",
-                                       "sub-01_UNIT1_desc-status_fitmap.nii.gz"]
-    r1 = np.asarray(nib.load(str(out / "sub-01_UNIT1_R1map.nii.gz")).dataobj)
+    assert sorted(prov["outputs"]) == ["sub-01_acq-mp2rage_R1map.nii.gz", "sub-01_acq-mp2rage_T1map.nii.gz",
+                                       "sub-01_acq-mp2rage_desc-status_fitmap.nii.gz"]
+    r1 = np.asarray(nib.load(str(out / "sub-01_acq-mp2rage_R1map.nii.gz")).dataobj)
     np.testing.assert_allclose(r1[mp2["obj"]], 1 / t1[mp2["obj"]], rtol=1e-6)
 
 
@@ -185,7 +185,7 @@ def test_command_line_wins_with_a_warning(mp2, tmp_path, capsys):
     assert main(["t1-mp2rage", str(p["uni_int"]), "--fa", "4,6", "-o", str(tmp_path / "o"), "-q"]) == 0
     err = capsys.readouterr().err
     assert "--fa 4,6 deg differs from the sidecar FlipAngle 4,5 deg" in err
-    prov = json.loads((tmp_path / "o" / "sub-01_UNIT1_provenance.json").read_text())
+    prov = json.loads((tmp_path / "o" / "sub-01_acq-mp2rage_provenance.json").read_text())
     assert prov["acquisition"]["FlipAngle"] == [4.0, 6.0]
 
 
@@ -219,6 +219,6 @@ def test_uni_out_of_range_exits_2(tmp_path, capsys):
 def test_preview_and_help(mp2, tmp_path, capsys):
     out = tmp_path / "pv"
     assert main(["t1-mp2rage", str(mp2["paths"]["uni_int"]), "--preview", "-o", str(out), "-q"]) == 0
-    assert (out / "sub-01_UNIT1_T1map.png").exists()
+    assert (out / "sub-01_acq-mp2rage_T1map.png").exists()
     assert main(["t1-mp2rage", "--help"]) == 0
     assert "--inversion-efficiency" in capsys.readouterr().out

@@ -84,7 +84,7 @@ def _inside_b1_fov(margin_vox):
     return np.all((v >= -0.5 + margin_vox) & (v <= hi + 0.5 - margin_vox), axis=0).reshape(SHAPE)
 
 
-def _maps(out, prefix="sub-01_VFA"):
+def _maps(out, prefix="sub-01_acq-vfa"):
     t1 = nib.load(str(out / f"{prefix}_T1map.nii.gz")).get_fdata()
     status = np.asanyarray(nib.load(str(out / f"{prefix}_desc-status_fitmap.nii.gz")).dataobj)
     prov = json.loads((out / f"{prefix}_provenance.json").read_text())
@@ -129,8 +129,8 @@ def test_b1_correction_through_coarse_shifted_map(vfa, tmp_path, capsys):
     assert prov_n["options"]["b1_correction"] is False
     assert prov_n["model"]["b1_correction"].startswith("no B1 correction applied")
     assert "no B1 correction applied" in summary_no
-    assert prov_c["outputs"]["sub-01_VFA_T1map.nii.gz"] == {"parameter": "T1", "kind": "estimate", "units": "s"}
-    assert prov_c["outputs"]["sub-01_VFA_R1map.nii.gz"]["units"] == "1/s"
+    assert prov_c["outputs"]["sub-01_acq-vfa_T1map.nii.gz"] == {"parameter": "T1", "kind": "estimate", "units": "s"}
+    assert prov_c["outputs"]["sub-01_acq-vfa_R1map.nii.gz"]["units"] == "1/s"
 
 
 def test_b1_resampling_reproduces_the_field(vfa):
@@ -236,12 +236,23 @@ def test_two_angles_standard_error_from_background(vfa, tmp_path, capsys):
     assert main(["t1-vfa", *files, "--b1", str(vfa["b1"]), "-o", str(out)]) == 0
     assert "standard errors from the noise sd" in capsys.readouterr().out
     t1, status, prov = _maps(out)
-    se = nib.load(str(out / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
+    se = nib.load(str(out / "sub-01_acq-vfa_desc-stderr_T1map.nii.gz")).get_fdata()
     good = vfa["obj"] & (status == 0)
     rel = (t1[good] - vfa["t1"][good]) / se[good]
     assert np.all(np.isfinite(se[good]))
     assert np.std(rel) == pytest.approx(1.0, abs=0.2)
     assert prov["noise"]["sigma"] > 0 and "background" in prov["noise"]["sigma_source"]
+    # two angles determine M0 and T1 exactly: no residual, so no fit quality (NaN), not R-squared = 1
+    for q in ("rsquared", "rmse"):
+        qmap_ = nib.load(str(out / f"sub-01_acq-vfa_desc-{q}_fitmap.nii.gz")).get_fdata()
+        assert np.all(np.isnan(qmap_[good]))
+        side = json.loads((out / f"sub-01_acq-vfa_desc-{q}_fitmap.json").read_text())
+        assert "exactly determined" in side["Description"]
+    assert "exactly determined" in prov["model"]["quality"]
+    assert main(["t1-vfa", *files, "--method", "linear", "-o", str(tmp_path / "lin"), "-q"]) == 0
+    r2 = nib.load(str(tmp_path / "lin/sub-01_acq-vfa_desc-rsquared_fitmap.nii.gz")).get_fdata()
+    st_lin = np.asanyarray(nib.load(str(tmp_path / "lin/sub-01_acq-vfa_desc-status_fitmap.nii.gz")).dataobj)
+    assert (st_lin == 0).sum() > 100 and np.all(np.isnan(r2[st_lin == 0]))
 
 
 def test_protocol_note_in_summary(vfa, tmp_path, capsys):
@@ -249,7 +260,7 @@ def test_protocol_note_in_summary(vfa, tmp_path, capsys):
     assert main(["t1-vfa", *files, "--fa", "1,2,3,4", "-o", str(tmp_path / "p"), "--t1-typical", "800ms"]) == 0
     captured = capsys.readouterr()
     assert "Ernst angle" in captured.out and "T1 ~ 0.8 s" in captured.out
-    prov = json.loads((tmp_path / "p/sub-01_VFA_provenance.json").read_text())
+    prov = json.loads((tmp_path / "p/sub-01_acq-vfa_provenance.json").read_text())
     assert prov["model"]["protocol"]["t1_typical_s"] == 0.8
     assert main(["t1-vfa", *files, "-o", str(tmp_path / "q")]) == 0
     assert "Ernst angle" not in capsys.readouterr().out  # 3/8/15/25 deg is close to optimal for 1 s
@@ -278,8 +289,8 @@ def test_b1_standard_error_beside_the_map_is_propagated(vfa, tmp_path, capsys):
                  "-q"]) == 0
     t1, status, prov = _maps(tmp_path / "with")
     _, _, prov_none = _maps(tmp_path / "without")
-    se_with = nib.load(str(tmp_path / "with" / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
-    se_none = nib.load(str(tmp_path / "without" / "sub-01_VFA_desc-stderr_T1map.nii.gz")).get_fdata()
+    se_with = nib.load(str(tmp_path / "with" / "sub-01_acq-vfa_desc-stderr_T1map.nii.gz")).get_fdata()
+    se_none = nib.load(str(tmp_path / "without" / "sub-01_acq-vfa_desc-stderr_T1map.nii.gz")).get_fdata()
     good = vfa["obj"] & (status == 0) & _inside_b1_fov(1.0)
     added = np.sqrt(se_with[good] ** 2 - se_none[good] ** 2)
     expected = 2.0 * t1[good] * 0.02 / vfa["b1_true"][good]

@@ -58,7 +58,7 @@ def test_epg_outputs_maps_and_provenance(mese, tmp_path):
     path, t2, scale, obj = mese
     out = tmp_path / "out"
     assert _run(path, "-o", out, "--epg", "--t1", "1200ms") == 0
-    prov = json.loads((out / "sub-01_MESE_provenance.json").read_text())
+    prov = json.loads((out / "sub-01_acq-mese_provenance.json").read_text())
     assert prov["model"]["name"] == "epg_t2"
     assert prov["model"]["refocus_deg"] == 180.0 and prov["model"]["t1_s"] == pytest.approx(1.2)
     assert prov["model"]["echo_spacing_s"] == pytest.approx(ESP)
@@ -67,18 +67,18 @@ def test_epg_outputs_maps_and_provenance(mese, tmp_path):
     assert prov["acquisition"]["EchoTime"] == pytest.approx(TE.tolist())
     assert sum(prov["status_counts"].values()) == obj.size
     for p in ("T2", "R2", "M0", "RefocusScale"):
-        assert f"sub-01_MESE_{p}map.nii.gz" in prov["outputs"]
-        assert f"sub-01_MESE_desc-stderr_{p}map.nii.gz" in prov["outputs"]
-    assert prov["outputs"]["sub-01_MESE_RefocusScalemap.nii.gz"] == {
+        assert f"sub-01_acq-mese_{p}map.nii.gz" in prov["outputs"]
+        assert f"sub-01_acq-mese_desc-stderr_{p}map.nii.gz" in prov["outputs"]
+    assert prov["outputs"]["sub-01_acq-mese_RefocusScalemap.nii.gz"] == {
         "parameter": "RefocusScale", "kind": "estimate", "units": "fraction"}
-    assert prov["outputs"]["sub-01_MESE_T2map.nii.gz"]["units"] == "s"
-    side = json.loads((out / "sub-01_MESE_RefocusScalemap.json").read_text())
+    assert prov["outputs"]["sub-01_acq-mese_T2map.nii.gz"]["units"] == "s"
+    side = json.loads((out / "sub-01_acq-mese_RefocusScalemap.json").read_text())
     assert side["Units"] == "fraction" and side["Description"]
-    status = _map(out, "sub-01_MESE_desc-status_fitmap.nii.gz")
+    status = _map(out, "sub-01_acq-mese_desc-status_fitmap.nii.gz")
     good = obj & (status == 0)
     assert good.sum() > 0.85 * obj.sum()
     # per tissue: median T2 within 2 % and refocusing scale within 0.03 of the simulated truth
-    t2map, scalemap = _map(out, "sub-01_MESE_T2map.nii.gz"), _map(out, "sub-01_MESE_RefocusScalemap.nii.gz")
+    t2map, scalemap = _map(out, "sub-01_acq-mese_T2map.nii.gz"), _map(out, "sub-01_acq-mese_RefocusScalemap.nii.gz")
     for t, s in TISSUES:
         sel = good & (t2 == t)
         assert abs(np.median(t2map[sel]) / t - 1) < 0.02
@@ -89,13 +89,13 @@ def test_monoexponential_default_and_drop_first(mese, tmp_path):
     path, t2, scale, obj = mese
     assert _run(path, "-o", tmp_path / "a", "--sigma", SIGMA) == 0
     assert _run(path, "-o", tmp_path / "b", "--sigma", SIGMA, "--drop-first", "--units", "ms") == 0
-    prov = json.loads((tmp_path / "b/sub-01_MESE_provenance.json").read_text())
+    prov = json.loads((tmp_path / "b/sub-01_acq-mese_provenance.json").read_text())
     assert prov["model"]["name"] == "monoexp" and prov["options"]["drop_first_echo"] is True
     assert prov["acquisition"]["EchoTime"] == pytest.approx(TE[1:].tolist())
-    assert prov["outputs"]["sub-01_MESE_T2map.nii.gz"]["units"] == "ms"
-    assert not (tmp_path / "a/sub-01_MESE_RefocusScalemap.nii.gz").exists()
-    a = _map(tmp_path / "a", "sub-01_MESE_T2map.nii.gz")
-    b = _map(tmp_path / "b", "sub-01_MESE_T2map.nii.gz") / 1000
+    assert prov["outputs"]["sub-01_acq-mese_T2map.nii.gz"]["units"] == "ms"
+    assert not (tmp_path / "a/sub-01_acq-mese_RefocusScalemap.nii.gz").exists()
+    a = _map(tmp_path / "a", "sub-01_acq-mese_T2map.nii.gz")
+    b = _map(tmp_path / "b", "sub-01_acq-mese_T2map.nii.gz") / 1000
     # poorly refocused tissue (scale 0.85): the mono-exponential fit overestimates T2 (stimulated echoes;
     # Lebel & Wilman 2010); without the first echo the bias is smaller (common practice)
     sel = obj & (t2 == 0.04)
@@ -146,11 +146,11 @@ def test_refocus_option_is_used(mese, tmp_path):
     path, t2, scale, obj = mese
     assert _run(path, "-o", tmp_path / "a", "--epg", "--sigma", SIGMA) == 0
     assert _run(path, "-o", tmp_path / "b", "--epg", "--refocus", "160", "--sigma", SIGMA) == 0
-    prov = json.loads((tmp_path / "b/sub-01_MESE_provenance.json").read_text())
+    prov = json.loads((tmp_path / "b/sub-01_acq-mese_provenance.json").read_text())
     assert prov["model"]["refocus_deg"] == 160.0 and prov["options"]["refocus_deg"] == 160.0
-    sa = _map(tmp_path / "a", "sub-01_MESE_RefocusScalemap.nii.gz")
-    sb = _map(tmp_path / "b", "sub-01_MESE_RefocusScalemap.nii.gz")
-    ta, tb = _map(tmp_path / "a", "sub-01_MESE_T2map.nii.gz"), _map(tmp_path / "b", "sub-01_MESE_T2map.nii.gz")
+    sa = _map(tmp_path / "a", "sub-01_acq-mese_RefocusScalemap.nii.gz")
+    sb = _map(tmp_path / "b", "sub-01_acq-mese_RefocusScalemap.nii.gz")
+    ta, tb = _map(tmp_path / "a", "sub-01_acq-mese_T2map.nii.gz"), _map(tmp_path / "b", "sub-01_acq-mese_T2map.nii.gz")
     sel = obj & (t2 == 0.08)
     np.testing.assert_allclose(np.median(sb[sel]), np.median(sa[sel]) * 180 / 160, rtol=1e-3)
     np.testing.assert_allclose(np.median(tb[sel]), np.median(ta[sel]), rtol=1e-3)

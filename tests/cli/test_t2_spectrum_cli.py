@@ -55,7 +55,7 @@ def test_outputs_values_and_provenance(series, tmp_path):
     code = main(["t2-spectrum", str(path), "-o", str(out), "--mask", "none", "--sigma", str(SIGMA), "-q",
                  "--units", "ms", "--se-subsample", "24", "-j", "2", "--chunk-size", "20"])
     assert code == 0
-    pre = "sub-01_MESE"
+    pre = "sub-01_acq-mese"
     mwf = nib.load(out / f"{pre}_MWFmap.nii.gz").get_fdata()
     status = nib.load(out / f"{pre}_desc-status_fitmap.nii.gz").get_fdata()
     fitted = obj & (status == 0)

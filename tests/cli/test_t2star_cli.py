@@ -19,7 +19,7 @@ def test_outputs_names_units_affine_and_provenance(megre, tmp_path):
     out = tmp_path / "out"
     assert _run(path, "-o", out, "--noise-floor", "none") == 0
     src = nib.load(str(path))
-    prov = json.loads((out / "sub-01_MEGRE_provenance.json").read_text())
+    prov = json.loads((out / "sub-01_acq-megre_provenance.json").read_text())
     assert set(prov) == {"qmap_version", "command_line", "inputs", "acquisition", "options", "model", "noise",
                          "status_counts", "status_codes", "wall_time_s", "outputs"}
     assert prov["acquisition"]["EchoTime"] == pytest.approx(te.tolist())
@@ -31,11 +31,11 @@ def test_outputs_names_units_affine_and_provenance(megre, tmp_path):
         assert img.shape == src.shape[:3]
         side = json.loads((out / name.replace(".nii.gz", ".json")).read_text())
         assert side["Units"] == meta["units"] and side["Description"]
-    assert prov["outputs"]["sub-01_MEGRE_T2starmap.nii.gz"] == {"parameter": "T2star", "kind": "estimate", "units": "s"}
-    assert prov["outputs"]["sub-01_MEGRE_desc-status_fitmap.nii.gz"]["kind"] == "status"
-    status = np.asanyarray(nib.load(str(out / "sub-01_MEGRE_desc-status_fitmap.nii.gz")).dataobj)
+    assert prov["outputs"]["sub-01_acq-megre_T2starmap.nii.gz"] == {"parameter": "T2star", "kind": "estimate", "units": "s"}
+    assert prov["outputs"]["sub-01_acq-megre_desc-status_fitmap.nii.gz"]["kind"] == "status"
+    status = np.asanyarray(nib.load(str(out / "sub-01_acq-megre_desc-status_fitmap.nii.gz")).dataobj)
     assert status.dtype == np.uint8
-    t2map = nib.load(str(out / "sub-01_MEGRE_T2starmap.nii.gz")).get_fdata()
+    t2map = nib.load(str(out / "sub-01_acq-megre_T2starmap.nii.gz")).get_fdata()
     good = obj & (status == 0)
     assert good.sum() > 0.9 * obj.sum()
     assert abs(np.median(t2map[good] / t2[good]) - 1) < 0.01
@@ -45,15 +45,15 @@ def test_units_ms_scales_times_not_rates(megre, tmp_path):
     path, *_ = megre
     assert _run(path, "-o", tmp_path / "s", "--noise-floor", "none") == 0
     assert _run(path, "-o", tmp_path / "ms", "--noise-floor", "none", "--units", "ms") == 0
-    t_s = nib.load(str(tmp_path / "s/sub-01_MEGRE_T2starmap.nii.gz")).get_fdata()
-    t_ms = nib.load(str(tmp_path / "ms/sub-01_MEGRE_T2starmap.nii.gz")).get_fdata()
-    r_s = nib.load(str(tmp_path / "s/sub-01_MEGRE_R2starmap.nii.gz")).get_fdata()
-    r_ms = nib.load(str(tmp_path / "ms/sub-01_MEGRE_R2starmap.nii.gz")).get_fdata()
+    t_s = nib.load(str(tmp_path / "s/sub-01_acq-megre_T2starmap.nii.gz")).get_fdata()
+    t_ms = nib.load(str(tmp_path / "ms/sub-01_acq-megre_T2starmap.nii.gz")).get_fdata()
+    r_s = nib.load(str(tmp_path / "s/sub-01_acq-megre_R2starmap.nii.gz")).get_fdata()
+    r_ms = nib.load(str(tmp_path / "ms/sub-01_acq-megre_R2starmap.nii.gz")).get_fdata()
     np.testing.assert_allclose(t_ms, 1000 * t_s, rtol=1e-6)
     np.testing.assert_array_equal(r_ms, r_s)
-    prov = json.loads((tmp_path / "ms/sub-01_MEGRE_provenance.json").read_text())
-    assert prov["outputs"]["sub-01_MEGRE_desc-stderr_T2starmap.nii.gz"]["units"] == "ms"
-    assert prov["outputs"]["sub-01_MEGRE_R2starmap.nii.gz"]["units"] == "1/s"
+    prov = json.loads((tmp_path / "ms/sub-01_acq-megre_provenance.json").read_text())
+    assert prov["outputs"]["sub-01_acq-megre_desc-stderr_T2starmap.nii.gz"]["units"] == "ms"
+    assert prov["outputs"]["sub-01_acq-megre_R2starmap.nii.gz"]["units"] == "1/s"
 
 
 def test_jobs_give_identical_maps(megre, tmp_path):
@@ -72,7 +72,7 @@ def test_separate_3d_files_with_scalar_sidecars(tmp_path):
              for i, t in enumerate(te)]
     assert main(["t2star", *map(str, files), "-o", str(tmp_path / "o"), "--noise-floor", "none", "--mask", "none",
                  "-q"]) == 0
-    t2map = nib.load(str(tmp_path / "o/sub-01_MEGRE_T2starmap.nii.gz")).get_fdata()
+    t2map = nib.load(str(tmp_path / "o/sub-01_acq-megre_T2starmap.nii.gz")).get_fdata()
     np.testing.assert_allclose(t2map[obj], t2[obj], rtol=1e-6)
 
 
@@ -82,7 +82,7 @@ def test_command_line_overrides_sidecar_with_warning(megre, tmp_path, capsys):
     assert _run(path, "-o", tmp_path / "o", "--te", other, "--noise-floor", "none") == 0
     err = capsys.readouterr().err
     assert "differs from the sidecar" in err and "using the command line" in err
-    prov = json.loads((tmp_path / "o/sub-01_MEGRE_provenance.json").read_text())
+    prov = json.loads((tmp_path / "o/sub-01_acq-megre_provenance.json").read_text())
     np.testing.assert_allclose(prov["acquisition"]["EchoTime"], te * 1.1, rtol=1e-9)
 
 
@@ -152,4 +152,4 @@ def test_existing_outputs_untouched_without_overwrite(megre, tmp_path, capsys):
     assert code == 2 and "--overwrite" in err
     assert snapshot(out) == before  # byte-identical
     assert _run(path, "-o", out, "--noise-floor", "offset", "--overwrite") == 0
-    assert (out / "sub-01_MEGRE_Offsetmap.nii.gz").exists()
+    assert (out / "sub-01_acq-megre_Offsetmap.nii.gz").exists()

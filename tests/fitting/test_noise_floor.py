@@ -101,3 +101,40 @@ def test_rician_refit_leaves_high_snr_voxels_alone():
     a = fit_t2star(y, TE, sigma=1.0)
     b = fit_t2star(y, TE, noise_floor="none")
     np.testing.assert_array_equal(a["T2star"], b["T2star"])
+
+
+def test_noise_only_voxels_take_the_fast_path():
+    """Pure-noise voxels get status NOISE_ONLY and NaN maps; voxels with signal are fitted as before."""
+    from qmap.fitting import status as st
+
+    rng = np.random.default_rng(31)
+    sigma = 2.0
+    n_noise, n_sig = 4000, 400
+    truth = np.full(n_sig, 0.02)
+    signal = np.concatenate([np.zeros((n_noise, TE.size)), 40 * np.exp(-TE / truth[:, None])])
+    data = rician(signal, sigma, rng)  # modulus of complex Gaussian noise (Gudbjartsson & Patz 1995)
+    maps = fit_t2star(data, TE, noise_floor="rician", sigma=sigma)
+    noise_status = maps.status[:n_noise]
+    # pure noise passes the mean + 3 SE limit in about 0.13 % of voxels (normal tail; allow 0.6 %)
+    assert np.mean(noise_status == st.NOISE_ONLY) > 0.994
+    assert np.all(np.isnan(maps["T2star"][:n_noise][noise_status == st.NOISE_ONLY]))
+    assert not np.any(maps.status[n_noise:] == st.NOISE_ONLY)  # SNR 20 at TE 0: never mistaken for noise
+    # the signal voxels are fitted exactly as without the noise-only voxels in the same call
+    alone = fit_t2star(data[n_noise:], TE, noise_floor="rician", sigma=sigma)
+    np.testing.assert_array_equal(maps["T2star"][n_noise:], alone["T2star"])
+    np.testing.assert_array_equal(maps.status[n_noise:], alone.status)
+
+
+@pytest.mark.parametrize("coils", [1, 4])
+def test_noise_only_limit_uses_the_central_chi_moments(coils):
+    """The limit is mean + 3 sd / sqrt(m) of the central chi distribution with 2N dof (scipy.stats.chi)."""
+    from scipy import stats
+
+    from qmap.fitting.noise_floor import NOISE_ONLY_Z, NoiseFloor
+
+    chi = stats.chi(2 * coils)
+    m = 12
+    limit = chi.mean() + NOISE_ONLY_Z * chi.std() / np.sqrt(m)
+    y = np.repeat(np.array([[limit * (1 - 1e-9)], [limit * (1 + 1e-9)]]), m, axis=1)
+    assert NoiseFloor("rician", coils=coils).noise_only(y, 1.0).tolist() == [True, False]
+    assert not NoiseFloor("none").noise_only(y, 1.0).any()

@@ -1,0 +1,51 @@
+"""Start-up: what a ``--help`` and a plain fit import (checked in a fresh interpreter via ``sys.modules``).
+
+``--help`` must not load numpy / scipy / nibabel (it is read by a person waiting at a terminal); a fit must
+not load scipy.stats, matplotlib or dask unless it uses them (previews, the Dask backend).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+from tests.conftest import decay_phantom, write_nifti
+
+_PROBE = """
+import contextlib, io, json, sys
+from qmap.cli import main
+out = io.StringIO()
+with contextlib.redirect_stdout(out), contextlib.redirect_stderr(io.StringIO()):
+    rc = [main(argv) for argv in json.loads(sys.argv[1])]
+heavy = ("numpy", "scipy", "scipy.stats", "scipy.optimize", "nibabel", "matplotlib", "dask", "distributed", "lmfit")
+print(json.dumps({"rc": rc, "loaded": [m for m in heavy if m in sys.modules]}))
+"""
+
+
+def _probe(*argvs: list[str]) -> dict:
+    """Run the command lines one after the other in one fresh interpreter; exit codes and heavy modules loaded."""
+    res = subprocess.run([sys.executable, "-c", _PROBE, json.dumps(argvs)], capture_output=True, text=True,
+                         check=True)
+    return json.loads(res.stdout.strip().splitlines()[-1])
+
+
+def test_help_imports_no_numerical_library():
+    got = _probe(*([c, "--help"] for c in ("t2star", "t2", "t1-ir", "t1-vfa", "b1")))
+    assert got["rc"] == [0] * 5
+    assert got["loaded"] == []
+    # `qmap --help` loads every command's parser: still no plotting, statistics or cluster stack
+    got = _probe(["--help"])
+    assert got["rc"] == [0]
+    assert not {"matplotlib", "dask", "distributed", "scipy.stats", "lmfit"} & set(got["loaded"]), got["loaded"]
+
+
+def test_a_fit_imports_no_stats_plotting_or_cluster(tmp_path):
+    data, te, _, _ = decay_phantom(shape=(32, 32, 2))
+    path = write_nifti(tmp_path / "s_MEGRE.nii.gz", data, sidecar={"EchoTime": te.tolist()})
+    run = ["t2star", str(path), "-q", "-j", "1"]
+    # plain fit, and the default (Rician with sigma estimated from the background)
+    got = _probe(run + ["-o", str(tmp_path / "a"), "--noise-floor", "none"], run + ["-o", str(tmp_path / "b")])
+    assert got["rc"] == [0, 0]
+    assert "numpy" in got["loaded"]  # the probe sees real imports
+    assert not {"scipy.stats", "matplotlib", "dask", "distributed", "lmfit"} & set(got["loaded"]), got["loaded"]
