@@ -204,7 +204,7 @@ def _main(argv: list[str]) -> int:
         sys.stderr.write("qmap: error: out of memory; fitting commands can read the series in slabs (--max-memory) "
                          "and fit fewer voxels at a time (--chunk-size); otherwise use less data or a larger machine\n")
         return 2
-    except Exception:  # a bug: keep the traceback for the report
+    except Exception:  # noqa: BLE001 -- a bug: keep the traceback for the report
         traceback.print_exc()
         sys.stderr.write(f"qmap: internal error (a bug in qmap {__version__}); please report it with the traceback above\n")
         return 1

@@ -15,7 +15,7 @@ __all__ = ["chol_inverse", "chol_solve", "cholesky"]
 
 def cholesky(a: np.ndarray) -> np.ndarray:
     """Lower Cholesky factors of a batch of SPD matrices (n, p, p); NaN rows where not SPD."""
-    n, p, _ = a.shape
+    _n, p, _ = a.shape
     low = np.zeros_like(a)
     with np.errstate(invalid="ignore", divide="ignore"):
         for j in range(p):
@@ -34,7 +34,7 @@ def cholesky(a: np.ndarray) -> np.ndarray:
 
 
 def _forward(low: np.ndarray, b: np.ndarray) -> np.ndarray:
-    n, p = b.shape
+    _n, p = b.shape
     z = np.empty_like(b)
     for i in range(p):
         t = b[:, i].copy()
@@ -45,7 +45,7 @@ def _forward(low: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def _backward(low: np.ndarray, z: np.ndarray) -> np.ndarray:
-    n, p = z.shape
+    _n, p = z.shape
     x = np.empty_like(z)
     for i in range(p - 1, -1, -1):
         t = z[:, i].copy()

@@ -34,7 +34,7 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
     noise = noise or NoiseFloor("none")
     fit_model = noise.wrap(model)
     y = np.asarray(y, float)
-    n, m = y.shape
+    n, _m = y.shape
     w = noise.weights(y, sigma)
     names = fit_model.param_names
     P = len(names)

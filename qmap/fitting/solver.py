@@ -158,7 +158,7 @@ def linear_amplitudes(model: SeparableModel, y, w, theta, ctx) -> np.ndarray:
 
 def _normal(J, w, r):
     """J^T W J (n, P, P) and J^T W r (n, P) for J (n, P, m); row-wise sums only. ``w`` None = all ones."""
-    n, P, m = J.shape
+    n, P, _m = J.shape
     Jw = J if w is None else J * w[:, None, :]
     JTJ = np.empty((n, P, P))
     g = np.empty((n, P))
@@ -375,7 +375,7 @@ def fit_chunk_unit(
 
     noise = noise or NoiseFloor("none")
     y = np.asarray(y, dtype=np.float64)
-    n, m = y.shape
+    n, _m = y.shape
     fit_model = noise.wrap(model)
     w = noise.weights(y, sigma)
     n_used = w.sum(axis=1).astype(int)

@@ -62,7 +62,7 @@ def load_image(path: str | Path, *, what: str = "input") -> nib.spatialimages.Sp
         raise InputError(f"{what} {p}: is a folder, expected a NIfTI file (.nii or .nii.gz)")
     try:
         img = nib.load(str(p))
-    except Exception as exc:  # nibabel raises many types for unreadable files
+    except Exception as exc:  # noqa: BLE001 -- nibabel raises many types for unreadable files
         raise InputError(
             f"{what} {p}: not a readable NIfTI file ({_short(exc)}); qmap reads .nii / .nii.gz "
             f"(convert DICOM first)"

@@ -397,10 +397,8 @@ class AtomicWriter:
             try:
                 if d.exists() and not any(d.iterdir()):
                     d.rmdir()
-                elif d.exists():
-                    # only our own leftovers would be here
-                    if all(p.name.startswith(".qmap-tmp-") for p in d.iterdir()):
-                        shutil.rmtree(d)
+                elif d.exists() and all(p.name.startswith(".qmap-tmp-") for p in d.iterdir()):
+                    shutil.rmtree(d)  # only our own leftovers are there
             except OSError:
                 pass
 
