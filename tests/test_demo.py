@@ -63,7 +63,7 @@ def test_demo_runs_and_the_phantom_passes(demo):
                                                              ("T2", ""), ("T2star", "")}
     html = (out / "phantom" / "phantom_report.html").read_text()
     assert "T1 (ir)" in html and "T1 (vfa)" in html
-    assert "produced by `qmap t1-vfa" in html and "model spgr" in html  # from each map's provenance
+    assert "produced by `qmap t1-vfa" in html and "model vfa" in html  # from each map's provenance (the registry name)
 
 
 def test_demo_maps_use_the_commands_default_unit(demo):
