@@ -247,3 +247,13 @@ def test_mask_file_and_cropped_inversion_images(mp2, tmp_path, capsys):
                  str(files["inv2"]), "-o", str(out2), "--prefix", "c", "-q", "--mask", "none"]) == 0
     assert "the standard errors are not" in capsys.readouterr().err
     assert (out2 / "c_M0map.nii.gz").exists() and not list(out2.glob("*desc-stderr*"))
+
+
+def test_zero_filled_background_is_not_looked_up(mp2, tmp_path):
+    """A float UNI exported with a zero-filled background: the stored zeros are background (status 1)."""
+    uni = np.asarray(nib.load(str(mp2["paths"]["uni_float"])).dataobj).copy()
+    uni[~mp2["obj"]] = 0.0
+    path = _save(tmp_path / "uni0.nii.gz", uni)
+    assert main(["t1-mp2rage", str(path), *CLI_PROTOCOL, "-o", str(tmp_path / "o"), "-q"]) == 0
+    status = np.asarray(nib.load(str(tmp_path / "o" / "uni0_desc-status_fitmap.nii.gz")).dataobj)
+    assert np.all(status[~mp2["obj"]] == 1) and np.all(status[mp2["obj"]] == 0)
