@@ -231,9 +231,9 @@ def test_mask_file_and_cropped_inversion_images(mp2, tmp_path, capsys):
     mask = _save(tmp_path / "mask.nii.gz", obj.astype(np.uint8))
     out = tmp_path / "m"
     assert main(["t1-mp2rage", str(p["uni_int"]), "--mask", str(mask), "-o", str(out), "-q"]) == 0
-    status = np.asarray(nib.load(str(out / "sub-01_UNIT1_desc-status_fitmap.nii.gz")).dataobj)
+    status = np.asarray(nib.load(str(out / "sub-01_acq-mp2rage_desc-status_fitmap.nii.gz")).dataobj)
     assert np.all(status[obj] == 0) and np.all(status[~obj] == 1)
-    prov = json.loads((out / "sub-01_UNIT1_provenance.json").read_text())
+    prov = json.loads((out / "sub-01_acq-mp2rage_provenance.json").read_text())
     assert str(mask) in [i["path"] for i in prov["inputs"]]
     crop = (slice(X0, X0 + NT), slice(Y0, Y0 + NB), slice(None))
     aff = AFFINE.copy()
