@@ -437,6 +437,7 @@ def run_t1_mp2rage(
     prefix = common.prefix or default_prefix(upath)
     check_outputs_free(common, prefix)
     u, encoding = decode_uni(raw, str(upath))
+    zero_filled = raw == 0  # a stored 0 is a zero-filled background, not a measured UNI
     del raw
     shape, affine = u.shape, np.asarray(img.affine, float)
     extra = []
@@ -461,8 +462,9 @@ def run_t1_mp2rage(
             mask_desc = ("auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, "
                          "holes filled)")
         else:
-            mask = np.isfinite(u)
-            mask_desc = ("auto without inversion images: every voxel with a finite UNI (pass --mask or --inv1/--inv2 "
+            mask = np.isfinite(u) & ~zero_filled
+            mask_desc = ("auto without inversion images: every voxel with a finite UNI whose stored value is not 0 "
+                         "(zero-filled background) (pass --mask or --inv1/--inv2 "
                          "to exclude the background)")
     else:
         mask, mask_desc = resolve_mask(common.mask, series)

@@ -222,3 +222,38 @@ def test_preview_and_help(mp2, tmp_path, capsys):
     assert (out / "sub-01_acq-mp2rage_T1map.png").exists()
     assert main(["t1-mp2rage", "--help"]) == 0
     assert "--inversion-efficiency" in capsys.readouterr().out
+
+
+def test_mask_file_and_cropped_inversion_images(mp2, tmp_path, capsys):
+    """A mask FILE limits the lookup; inversion images cropped to the object (no background to estimate the
+    noise from) still give M0, without standard errors, and a warning says why."""
+    p, obj = mp2["paths"], mp2["obj"]
+    mask = _save(tmp_path / "mask.nii.gz", obj.astype(np.uint8))
+    out = tmp_path / "m"
+    assert main(["t1-mp2rage", str(p["uni_int"]), "--mask", str(mask), "-o", str(out), "-q"]) == 0
+    status = np.asarray(nib.load(str(out / "sub-01_acq-mp2rage_desc-status_fitmap.nii.gz")).dataobj)
+    assert np.all(status[obj] == 0) and np.all(status[~obj] == 1)
+    prov = json.loads((out / "sub-01_acq-mp2rage_provenance.json").read_text())
+    assert str(mask) in [i["path"] for i in prov["inputs"]]
+    crop = (slice(X0, X0 + NT), slice(Y0, Y0 + NB), slice(None))
+    aff = AFFINE.copy()
+    aff[:3, 3] += AFFINE[:3, :3] @ np.array([X0, Y0, 0.0])
+    files = {}
+    for k in ("uni_float", "inv1", "inv2"):
+        data = np.asarray(nib.load(str(p[k])).dataobj)[crop]
+        files[k] = _save(tmp_path / f"crop_{k}.nii.gz", data, affine=aff)
+    out2 = tmp_path / "c"
+    assert main(["t1-mp2rage", str(files["uni_float"]), *CLI_PROTOCOL, "--inv1", str(files["inv1"]), "--inv2",
+                 str(files["inv2"]), "-o", str(out2), "--prefix", "c", "-q", "--mask", "none"]) == 0
+    assert "the standard errors are not" in capsys.readouterr().err
+    assert (out2 / "c_M0map.nii.gz").exists() and not list(out2.glob("*desc-stderr*"))
+
+
+def test_zero_filled_background_is_not_looked_up(mp2, tmp_path):
+    """A float UNI exported with a zero-filled background: the stored zeros are background (status 1)."""
+    uni = np.asarray(nib.load(str(mp2["paths"]["uni_float"])).dataobj).copy()
+    uni[~mp2["obj"]] = 0.0
+    path = _save(tmp_path / "uni0.nii.gz", uni)
+    assert main(["t1-mp2rage", str(path), *CLI_PROTOCOL, "-o", str(tmp_path / "o"), "-q"]) == 0
+    status = np.asarray(nib.load(str(tmp_path / "o" / "uni0_desc-status_fitmap.nii.gz")).dataobj)
+    assert np.all(status[~mp2["obj"]] == 1) and np.all(status[mp2["obj"]] == 0)
