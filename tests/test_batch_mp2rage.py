@@ -22,8 +22,8 @@ import nibabel as nib
 import numpy as np
 import pytest
 
-from qmap.batch_plan import discover
-from qmap.batch_series import equivalent_argv
+from qmap.batch.plan import discover
+from qmap.batch.series import equivalent_argv
 from qmap.cli import get_parser, main
 from tests.reference.mp2rage_pulses import simulate
 
