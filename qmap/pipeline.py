@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
+from .checks import check_series_shape, clip_small_negatives, warn_fit_quality
 from .engine import DEFAULT_CHUNK
 from .errors import InputError, OutputExistsError, UsageError, warn
 from .fitting import status as st
@@ -50,6 +51,7 @@ class CommonOptions:
     command_line: list | None = None
     max_memory: float | None = None  # bytes; larger inputs are read in slabs
     stderr: str = "noise"  # covariance convention with a known noise level (qmap.fitting.uncertainty)
+    series_check: bool = True  # False: --no-series-check (fit a series that does not behave like the model)
 
     def __post_init__(self):
         self.out_dir = Path(self.out_dir)
@@ -76,6 +78,7 @@ class CommonOptions:
             "chunk_size": self.chunk_size,
             "max_memory_bytes": self.max_memory,
             "stderr": self.stderr,
+            "series_check": self.series_check,
         }
 
 
@@ -302,9 +305,11 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
 def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | None = None) -> None:
     """Reject series with no signal at all, and negative 'magnitudes'."""
     lo, hi = np.inf, -np.inf
+    n_negative = 0
     for z0, z1 in series.slabs(max_bytes):
         block = series.read(z0, z1)
         d = np.abs(block) if np.iscomplexobj(block) else block
+        n_negative += int(np.count_nonzero(d < 0))
         with np.errstate(invalid="ignore"):
             blo, bhi = float(np.fmin.reduce(d, axis=None)), float(np.fmax.reduce(d, axis=None))  # skip NaN, no copy
         if not (np.isfinite(blo) and np.isfinite(bhi)):
@@ -320,10 +325,7 @@ def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | N
             f"{series.paths[0]}: the series holds no signal (every sample is {hi:g}); check the export"
         )
     if magnitude and not series._allow_complex and lo < 0:
-        raise InputError(
-            f"{series.paths[0]}: holds negative values (min {lo:g}) but magnitude images are >= 0; "
-            f"is this a real/phase image? (t1-ir takes real data with --signal real)"
-        )
+        clip_small_negatives(series, lo, hi, n_negative)  # small undershoot: clipped with a warning; else refused
 
 
 def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
@@ -458,6 +460,7 @@ class PreparedRun:
         each slab.
         """
         common = self.common
+        check_series_shape(self.series, model, self.mask, enabled=common.series_check, max_bytes=common.max_memory)
 
         def one(slab: Slab) -> MapSet:
             return fit_volume(
@@ -644,6 +647,7 @@ def write_run(
     ``extra_outputs`` (list of :class:`~qmap.io.writer.OutputFile`) are written beside the maps of
     ``maps`` (e.g. a 4D spectrum or maps with their own names) and listed in the provenance too.
     """
+    warn_fit_quality(maps, maps.status != st.MASKED, common.mask)
     outs = _outputs_for(maps, prefix, common.units) + list(extra_outputs or [])
     notes = list(notes or [])
     good = maps.status == st.FITTED

@@ -795,6 +795,56 @@ REFUSED += [
          (r"negative", r"magnitude")),
 ]
 
+# ------------------------------------------------------------------ realistic exports (issue 20)
+TE12 = np.arange(1, 13) * 0.005  # 12 echoes: a shell glob sorts e10, e11, e12 before e2
+
+
+def _glob_echoes(d: Path, *, sidecars: bool):
+    """Twelve 3D echo files e1..e12 listed in shell-glob order (e1, e10, e11, e12, e2, ..., e9)."""
+    data = decay_phantom(te=TE12)[0]
+    files = [write_nifti(d / f"sub-01_e{i + 1}_MEGRE.nii.gz", data[..., i], affine=AFFINE,
+                         sidecar={"EchoTime": float(TE12[i])} if sidecars else None) for i in range(12)]
+    return sorted(files, key=lambda p: p.name)
+
+
+def _phase_0_4095(d: Path):
+    """A GRE phase series stored as integers 0..4095 (phase = phi0 + 2 pi df TE, wrapped; df = 40 Hz)."""
+    rng = np.random.default_rng(11)
+    phi = np.mod(rng.uniform(0, 2 * np.pi, (32, 32, 3))[..., None] + 2 * np.pi * 40.0 * TE, 2 * np.pi)
+    return _good4d(d, np.round(phi / (2 * np.pi) * 4095).astype(np.int16))
+
+
+def _vfa_swapped(d: Path):
+    """VFA volumes in the order 8, 3, 25, 15 deg while the sidecar says 3, 8, 15, 25."""
+    return _vfa(d, data=_vfa_data()[..., [1, 0, 3, 2]])
+
+
+SERIES_CHECK = r"--no-series-check"
+REFUSED += [
+    Case("te-typed-for-glob-ordered-files", T2S, lambda d, _: [*_glob_echoes(d, sidecars=False), "--te", _ms(TE12)],
+         (r"does not decay with echo time", r"rises from \d+ ms to \d+ ms", r"shell-glob order", r"sort -V",
+          SERIES_CHECK)),
+    Case("te-reorders-the-sidecars", T2S, lambda d, _: [*_glob_echoes(d, sidecars=True), "--te", _ms(TE12)],
+         (r"--te lists the sidecars' EchoTime values in another order", r"leave --te out", SERIES_CHECK)),
+    Case("phase-image-0-4095", T2S, lambda d, _: [_phase_0_4095(d), "--sigma", "5"],
+         (r"does not decay", r"looks like a phase image", r"magnitude images", SERIES_CHECK)),
+    Case("ti-files-out-of-order", IR, lambda d, _: [
+        *[write_nifti(d / f"inv-{i}.nii.gz", np.abs(_ir_complex())[..., i], affine=AFFINE) for i in (0, 3, 1, 2, 4, 5)],
+        "--ti", TI_MS], (r"does not fall to one null and recover", r"order", SERIES_CHECK)),
+    Case("fa-volumes-out-of-order", VFA, lambda d, _: [_vfa_swapped(d)],
+         (r"does not have one maximum over the flip angles", SERIES_CHECK)),
+    Case("fa-reorders-the-sidecar", VFA, lambda d, _: [_vfa(d), "--fa", "8,3,25,15"],
+         (r"--fa lists the sidecars' FlipAngle values in another order",)),
+    Case("large-negatives-are-not-undershoot", T2S, lambda d, data: [_good4d(d, data - 0.06 * data.max())],
+         (r"negative values", r"6\.\d+ % of the maximum", r"up to 5 % is clipped", r"real/phase image")),
+    Case("full-te-list-in-each-echo-sidecar", T2S, lambda d, data: _echo_files(
+        d, data, sidecar=lambda i: {"EchoTime": TE.tolist()}), (r"holds 8 values for a single 3D volume", r"command line")),
+    Case("epg-te-rounded-beyond-0.1ms", T2, lambda d, _: [
+        _mese(d, te=np.round(ESP_TE * 1.0145, 3), data=decay_phantom(te=ESP_TE * 1.0145, t2_range=(0.04, 0.12))[0]),
+        "--epg"], (r"--epg needs equally spaced echoes",)),
+    Case("readout-tr-on-the-command-line", IR, lambda d, _: [_ir(d), "--tr", "8ms"], (r"RepetitionTime", r"--tr")),
+]
+
 for _c in REFUSED:
     if _c.command in (INS,):
         _c.style = "none"
@@ -1261,3 +1311,156 @@ def test_simulate_disk_full(suffix, tmp_path, capsys, monkeypatch):
     line = one_line(err)
     assert rc == 2 and "space" in line, line
     assert list(tmp_path.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- realistic exports that proceed (issue 20)
+
+
+def _fit(argv, capsys, prefix="x"):
+    rc, _, err = cli([*argv, "--prefix", prefix, "-q"], capsys)
+    return rc, err
+
+
+def test_small_negative_undershoot_is_clipped_with_a_warning(tmp_path, phantom, capsys):
+    """Spline-resampled magnitudes dip a little below 0: clipped to 0 (tolerance 5 % of the maximum), one warning."""
+    data, *_ = phantom
+    under = data - np.float32(3.0)  # the noise background (Rayleigh, sigma 5) now dips to about -3
+    p = _good4d(tmp_path, under, name="under.nii.gz")
+    q = _good4d(tmp_path, np.maximum(under, 0), name="clipped.nii.gz")
+    rc, err = _fit(["t2star", p, "-o", tmp_path / "a", "--sigma", "5"], capsys)
+    line = one_line(err)
+    n_neg = int(np.count_nonzero(under < 0))
+    assert rc == 0 and line.startswith("qmap: warning: under.nii.gz: ") and f"{n_neg} negative samples" in line, line
+    assert f"min {float(under.min()):g}" in line and "set to 0" in line and "-5 % of the maximum" in line, line
+    rc, err = _fit(["t2star", q, "-o", tmp_path / "b", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    _assert_same_maps(_maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x"))
+
+
+def test_readout_tr_in_an_ir_sidecar_is_ignored_with_a_warning(tmp_path, capsys):
+    """A sidecar RepetitionTime of 8 ms (the readout's TR) with TIs up to 3 s: warned about, ignored; same maps."""
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    p = _ir(tmp_path / "a", RepetitionTime=0.008)
+    q = _ir(tmp_path / "b")
+    rc, err = _fit(["t1-ir", p, "-o", tmp_path / "oa", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 0 and "sidecar RepetitionTime 0.008 s is shorter than the inversion times (up to 3 s)" in line, line
+    assert "ignored" in line
+    rc, err = _fit(["t1-ir", q, "-o", tmp_path / "ob", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    _assert_same_maps(_maps(tmp_path / "oa", "x"), _maps(tmp_path / "ob", "x"))
+    prov = json.loads((tmp_path / "oa" / "x_provenance.json").read_text())
+    assert "RepetitionTime" not in prov["acquisition"]
+
+
+def test_epg_accepts_echo_times_rounded_to_0_1ms(tmp_path, capsys):
+    """ESP 11.45 ms written rounded to 0.1 ms (11.5, 22.9, 34.4 ... ms): accepted with a warning (tolerance 0.06 ms);
+    T2 agrees with the fit given the exact echo times."""
+    esp = 0.01145
+    te = esp * np.arange(1, 17)
+    data = decay_phantom(te=te, t2_range=(0.04, 0.12))[0]
+    te_rounded = np.round(te * 1e4) / 1e4
+    assert np.max(np.abs(te_rounded - te)) > 1e-3 * esp  # beyond the strict 0.1 % check of the spacing
+    p = write_nifti(tmp_path / "r.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": te_rounded.tolist()})
+    q = write_nifti(tmp_path / "e.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": te.tolist()})
+    rc, err = _fit(["t2", p, "--epg", "-o", tmp_path / "a", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 0 and "rounded to 0.1 ms" in line and "ESP = 11.45 ms" in line and "up to 0.06 ms" in line, line
+    rc, err = _fit(["t2", q, "--epg", "-o", tmp_path / "b", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    a, b = _maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x")
+    good = (a["_desc-status_fitmap.nii.gz"] == 0) & (b["_desc-status_fitmap.nii.gz"] == 0)
+    assert good.sum() > 500
+    ratio = a["_T2map.nii.gz"][good] / b["_T2map.nii.gz"][good]
+    assert abs(np.median(ratio) - 1) < 1e-3 and np.percentile(np.abs(ratio - 1), 95) < 5e-3
+
+
+def test_single_slice_2d_files_are_one_slice(tmp_path, phantom, capsys):
+    """Echo files holding one 2D slice (x, y) each: fitted as a (x, y, 1) volume, the maps of the same slice in 3D."""
+    data, *_ = phantom
+    sl = data[:, :, 1]
+    files2d = [write_nifti(tmp_path / f"two_echo-{i + 1}.nii.gz", sl[:, :, i], affine=AFFINE,
+                           sidecar={"EchoTime": float(TE[i])}) for i in range(TE.size)]
+    assert nib.load(str(files2d[0])).shape == (32, 32)
+    files3d = [write_nifti(tmp_path / f"three_echo-{i + 1}.nii.gz", sl[:, :, None, i], affine=AFFINE,
+                           sidecar={"EchoTime": float(TE[i])}) for i in range(TE.size)]
+    rc, err = _fit(["t2star", *files2d, "-o", tmp_path / "a", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    rc, err = _fit(["t2star", *files3d, "-o", tmp_path / "b", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    a, b = _maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x")
+    assert a["_T2starmap.nii.gz"].shape == (32, 32, 1)
+    _assert_same_maps(a, b)
+
+
+@pytest.mark.parametrize("kind", ["strings", "full-list-in-each-echo"])
+def test_malformed_sidecars_are_replaced_by_the_command_line(kind, tmp_path, phantom, capsys):
+    """Unusable sidecar EchoTime with --te given: one warning, and the maps of the same data without sidecars."""
+    data, *_ = phantom
+    (tmp_path / "s").mkdir()
+    (tmp_path / "n").mkdir()
+    if kind == "strings":
+        series = [write_nifti(tmp_path / "s" / "sub-01_MEGRE.nii.gz", data, affine=AFFINE,
+                              sidecar={"EchoTime": [f"{t:g}" for t in TE]})]
+    else:
+        series = _echo_files(tmp_path / "s", data, sidecar=lambda i: {"EchoTime": TE.tolist()})
+    plain = _echo_files(tmp_path / "n", data, sidecar=lambda i: None) if kind != "strings" else [
+        write_nifti(tmp_path / "n" / "sub-01_MEGRE.nii.gz", data, affine=AFFINE)]
+    rc, err = _fit(["t2star", *series, "--te", TE_MS, "-o", tmp_path / "a", "--sigma", "5"], capsys)
+    line = one_line(err)
+    want = "(list)" if kind == "strings" else "holds 8 values for a single 3D volume"
+    assert rc == 0 and "sidecar EchoTime" in line and want in line and "ignored: using --te" in line, line
+    rc, err = _fit(["t2star", *plain, "--te", TE_MS, "-o", tmp_path / "b", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    _assert_same_maps(_maps(tmp_path / "a", "x"), _maps(tmp_path / "b", "x"))
+
+
+def test_no_series_check_fits_anyway_and_warns_about_the_fit(tmp_path, capsys):
+    """Files in shell-glob order with --te in acquisition order, forced with --no-series-check: exit 0, but the
+    median R-squared (0.04 here against 0.99 in order) is reported as low."""
+    files = _glob_echoes(tmp_path, sidecars=False)
+    rc, err = _fit(["t2star", *files, "--te", _ms(TE12), "-o", tmp_path / "a", "--sigma", "5", "--no-series-check"],
+                   capsys)
+    line = one_line(err)
+    m = re.search(r"median R-squared of the fitted voxels is (-?[0-9.]+) \(below 0.5\)", line)
+    assert rc == 0 and m and float(m.group(1)) < 0.2, line
+    prov = json.loads((tmp_path / "a" / "x_provenance.json").read_text())
+    assert prov["options"]["series_check"] is False
+    ordered = sorted(files, key=lambda p: int(re.search(r"_e(\d+)_", p.name).group(1)))
+    rc, err = _fit(["t2star", *ordered, "--te", _ms(TE12), "-o", tmp_path / "b", "--sigma", "5"], capsys)
+    assert rc == 0 and err == "", err
+    r2 = _maps(tmp_path / "b", "x")["_desc-rsquared_fitmap.nii.gz"]
+    st = _maps(tmp_path / "b", "x")["_desc-status_fitmap.nii.gz"]
+    assert np.median(r2[st == 0]) > 0.95
+
+
+def test_auto_mask_covering_the_whole_image_is_reported(tmp_path, capsys):
+    """A tightly cropped export (object everywhere, no background): the automatic mask takes every voxel; a warning."""
+    x = np.indices((32, 32, 3))[0]
+    t2 = 0.01 + 0.05 * x / 31
+    rng = np.random.default_rng(5)
+    clean = 1000 * np.exp(-TE / t2[..., None])
+    data = np.abs(clean + rng.normal(0, 5, clean.shape) + 1j * rng.normal(0, 5, clean.shape)).astype(np.float32)
+    p = _good4d(tmp_path, data)
+    rc, err = _fit(["t2star", p, "-o", tmp_path / "a", "--sigma", "5"], capsys)
+    line = one_line(err)
+    assert rc == 0 and "automatic mask covers the whole image" in line and "--mask FILE" in line, line
+    assert np.all(_maps(tmp_path / "a", "x")["_desc-status_fitmap.nii.gz"] != 1)
+
+
+def test_nan_voxels_status_as_documented(tmp_path, phantom, capsys):
+    """README "Status codes": a NaN / inf sample in a fitted voxel is status 2; a NaN background outside the
+    automatic mask is status 1 (not fitted because not in the mask); with --mask none it is status 2 too."""
+    data, _, obj = phantom
+    bad = data.copy()
+    bad[~obj] = np.nan  # an export that writes NaN outside the object
+    bad[16, 16, 1, :] = np.nan  # a hole inside the object
+    bad[14, 16, 1, 3] = np.inf
+    p = _good4d(tmp_path, bad)
+    for mask, background in (("auto", 1), ("none", 2)):
+        rc, err = _fit(["t2star", p, "-o", tmp_path / mask, "--sigma", "5", "--mask", mask], capsys)
+        assert rc == 0 and err == "", err
+        st = _maps(tmp_path / mask, "x")["_desc-status_fitmap.nii.gz"]
+        assert np.all(st[~obj] == background), (mask, np.unique(st[~obj]))
+        assert st[16, 16, 1] == 2 and st[14, 16, 1] == 2

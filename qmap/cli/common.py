@@ -41,6 +41,9 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
                        help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
     g.add_argument("--chunk-size", type=int, default=DEFAULT_CHUNK, metavar="N",
                    help=f"voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
+    g.add_argument("--no-series-check", dest="series_check", action="store_false",
+                   help="fit even when the series does not behave like the model (a decay that does not fall with "
+                        "echo time, ...); qmap refuses such a series by default, naming the likely cause")
     g.add_argument("--max-memory", metavar="SIZE",
                    help="memory budget for the input series, e.g. 500MB or 2GB: a larger series is read from disk in "
                         "slabs (fastest from uncompressed .nii); results are identical")
@@ -80,6 +83,7 @@ def common_from_args(args) -> CommonOptions:
         engine=getattr(args, "engine", "fast"),
         chunk_size=args.chunk_size, command_line=args.argv, max_memory=parse_size(args.max_memory),
         stderr=getattr(args, "stderr", "noise"),
+        series_check=getattr(args, "series_check", True),
     )
 
 

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..checks import check_reordered
 from ..errors import InputError, warn
 from ..units import check_angles, check_times
 from .nifti import check_same_grid, image_data, load_image, read_sidecar
@@ -54,6 +55,8 @@ class Series:
     _order: np.ndarray | None = field(default=None, repr=False)  # volume order applied on reading
     _shape4: tuple | None = field(default=None, repr=False)
     _allow_complex: bool = field(default=False, repr=False)
+    #: negative samples are set to 0 on reading (small interpolation undershoot, see qmap.checks)
+    clip_negative: bool = field(default=False, repr=False)
 
     @property
     def data(self) -> np.ndarray:
@@ -101,11 +104,13 @@ class Series:
             if raw.ndim == 3:
                 raw = raw[:, :, :, None]
         else:
-            raw = np.stack([np.asanyarray(p[:, :, z0:z1]).reshape(p.shape[:2] + (z1 - z0,)) for p in self._proxies],
-                           axis=-1)
+            raw = np.stack([np.asanyarray(p[:, :, z0:z1] if len(p.shape) > 2 else p[:, :][:, :, None])
+                            .reshape(p.shape[:2] + (z1 - z0,)) for p in self._proxies], axis=-1)
         if np.iscomplexobj(raw) and not self._allow_complex:
             raise InputError(f"{self.paths[0]}: holds complex data but this fit expects magnitude images")
-        out = raw.astype(dtype, copy=False)
+        out = raw.astype(dtype, copy=True)
+        if self.clip_negative:
+            np.maximum(out, 0, out=out)
         return out if self._order is None else out[..., self._order]
 
     def slabs(self, max_bytes: float | None) -> list[tuple[int, int]]:
@@ -145,11 +150,18 @@ def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
                     f"(or give a single 4D file)"
                 )
             check_same_grid(first.shape, first.affine, shape, img.affine, ref_name=str(paths[0]), name=str(p))
-            vols.append(image_data(img, p, dtype=np.float32, allow_complex=allow_complex).reshape(shape[:3]))
+            # a single-slice 2D file (x, y) is one slice: (x, y, 1)
+            vols.append(image_data(img, p, dtype=np.float32, allow_complex=allow_complex).reshape(_as_3d(shape)))
         data = np.stack(vols, axis=-1)
     if data.ndim != 4:
         raise InputError(f"{paths[0]}: expected 3D volumes, got shape {data.shape}")
     return data, first
+
+
+def _as_3d(shape) -> tuple:
+    """Spatial shape (x, y, z) of one volume; a 2D image (x, y) is a single slice (x, y, 1)."""
+    shape = tuple(shape)
+    return shape[:3] if len(shape) >= 3 else shape[:2] + (1,) * (3 - len(shape))
 
 
 def _sidecar_values(paths, sidecars, key, n, *, what: str):
@@ -172,9 +184,21 @@ def _sidecar_values(paths, sidecars, key, n, *, what: str):
     for p, sc in zip(paths, sidecars):
         arr = _as_numbers(sc[key], key, p)
         if arr.size != 1:
-            raise InputError(f"{p}: sidecar {key} holds {arr.size} values for a single 3D volume; expected one")
+            raise InputError(f"{p}: sidecar {key} holds {arr.size} values for a single 3D volume; expected one "
+                                 f"(give the values on the command line: they replace unusable sidecar values)")
         vals.append(float(arr[0]))
     return np.asarray(vals)
+
+
+def _usable_sidecar_values(paths, sidecars, key, n, cli, option, *, what: str):
+    """:func:`_sidecar_values`, except that unusable sidecar values are ignored (with a warning) when ``cli`` is given."""
+    try:
+        return _sidecar_values(paths, sidecars, key, n, what=what)
+    except InputError as exc:
+        if cli is None:
+            raise
+        warn(f"{str(exc).split('; expected')[0]} -- ignored: using {option} from the command line")
+        return None
 
 
 def _as_numbers(v, key, path) -> np.ndarray:
@@ -199,11 +223,14 @@ def resolve_parameter(
     where: str,
     required: bool = True,
     check_key: str | None = None,
+    check_order: bool = True,
 ):
     """Choose between a command-line value and a sidecar value; warn when they disagree.
 
     Returns ``(value, source)``; ``value`` is an array of length ``n`` (or a
     float when ``n`` is None), ``source`` is ``"command line"``/``"sidecar"``.
+    With ``check_order``, command-line values that are the sidecars' values in
+    another order are refused (:func:`qmap.checks.check_reordered`).
     """
     ck = check_key or key
     check = check_angles if key == "FlipAngle" else (lambda a, where: check_times(a, key=ck, where=where))
@@ -231,6 +258,8 @@ def resolve_parameter(
         if n is None and value.size != 1:
             raise InputError(f"{option}: expected one value, got {value.size}")
         if sidecar is not None:
+            if check_order and n is not None:
+                check_reordered(value, sidecar, key, option, where)
             ref = np.broadcast_to(sidecar, value.shape)
             if not np.allclose(value, ref, rtol=AGREE_RTOL, atol=1e-9):
                 warn(f"{option} {_fmt(value, key)} differs from the sidecar {key} {_fmt(ref, key)}; "
@@ -266,6 +295,7 @@ def load_series(
     min_volumes: int = 2,
     what: str = "series",
     max_bytes: float | None = None,
+    check_order: bool = True,
 ) -> Series:
     """Load one 4D NIfTI or several 3D NIfTIs, with the varied acquisition parameter.
 
@@ -296,6 +326,13 @@ def load_series(
     max_bytes : float, optional
         Memory budget: when the series would take more than this in memory,
         it is left on disk and read in slabs (:meth:`Series.read`).
+    check_order : bool
+        Refuse command-line values that reorder the sidecars' values
+        (``--no-series-check`` turns this off).
+
+    Sidecar values that cannot be used (strings, a list in each 3D file's
+    sidecar, ...) are an error unless the command line gives the values: then
+    they are ignored with a warning.
 
     Returns
     -------
@@ -314,12 +351,12 @@ def load_series(
         n = data.shape[3]
     sidecars = [read_sidecar(p) for p in paths]
     where = str(paths[0]) if len(paths) == 1 else f"{paths[0].name}..{paths[-1].name}"
-    sc = _sidecar_values(paths, sidecars, key, n, what=what)
-    vals, src = resolve_parameter(key, value, sc, n, option=option, where=where)
+    sc = _usable_sidecar_values(paths, sidecars, key, n, value, option, what=what)
+    vals, src = resolve_parameter(key, value, sc, n, option=option, where=where, check_order=check_order)
     acquisition = {key: vals}
     sources = {key: src}
     for skey, (cli, sopt, required, ckey) in (scalars or {}).items():
-        scv = _sidecar_values(paths, sidecars, skey, n, what=what)
+        scv = _usable_sidecar_values(paths, sidecars, skey, n, cli, sopt, what=what)
         v, s = resolve_parameter(skey, cli, scv, None, option=sopt, where=where, required=required, check_key=ckey)
         if v is not None:
             acquisition[skey] = v
@@ -378,4 +415,4 @@ def _open_volumes(paths: list[Path], *, what: str):
         if len(img.shape) > 3 and not all(s == 1 for s in img.shape[3:]):
             raise InputError(f"{p}: has shape {img.shape}; when several files are given each must be one 3D volume")
         check_same_grid(first.shape, first.affine, img.shape, img.affine, ref_name=str(paths[0]), name=str(p))
-    return [img.dataobj for img in imgs], first, tuple(first.shape[:3]) + (len(paths),)
+    return [img.dataobj for img in imgs], first, _as_3d(first.shape) + (len(paths),)

@@ -138,8 +138,9 @@ def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, pa
         try:
             qcode = int(ref_header["qform_code"]) or 1
             sform_code = int(ref_header["sform_code"]) or 1
-            zooms = ref_header.get_zooms()[:3]
-            img.header.set_zooms(tuple(zooms[:3]) + tuple(img.header.get_zooms()[3:]))
+            zooms = tuple(ref_header.get_zooms()[:3])
+            zooms += (1.0,) * (3 - len(zooms))  # a single-slice 2D input: one slice of unit thickness
+            img.header.set_zooms(zooms + tuple(img.header.get_zooms()[3:]))
         except (KeyError, TypeError, ValueError, IndexError):
             pass
     img.set_qform(affine, code=qcode)

@@ -58,7 +58,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..epg import cpmg_cos
-from ..errors import InputError
+from ..errors import InputError, warn
 from .base import Derived, SeparableModel, delta_se_inverse
 
 __all__ = ["EpgT2", "cpmg_cos", "echo_spacing"]
@@ -69,6 +69,8 @@ SCALE_MIN = 0.5
 COS_MIN = -1.25
 #: relative tolerance on TE_k = k * ESP (sidecars round to microseconds)
 ESP_RTOL = 1e-3
+#: deviation from TE_k = k x ESP accepted (with a warning) for echo times rounded to 0.1 ms by an export, s
+TE_ROUNDING_S = 6e-5
 
 
 def echo_spacing(te, *, where: str = "--te") -> float:
@@ -97,6 +99,14 @@ def echo_spacing(te, *, where: str = "--te") -> float:
     esp0 = float(np.median(te / k)) if te.size else float("nan")
     dev = np.abs(te - k * esp0)
     tol = max(ESP_RTOL * esp0, 2e-6)
+    rounded = False
+    if te.size >= 2 and np.isfinite(esp0) and esp0 > 0 and np.any(dev > tol):
+        # exports that round echo times to 0.1 ms: accept when every echo is within TE_ROUNDING_S of k x ESP
+        # (least-squares ESP), with a warning
+        esp_ls = float(np.sum(k * te) / np.sum(k * k))
+        rounded = bool(np.all(np.abs(te - k * esp_ls) <= TE_ROUNDING_S))
+        if rounded:
+            dev = np.zeros_like(dev)
     if te.size < 2 or not np.isfinite(esp0) or esp0 <= 0 or np.any(dev > tol):
         i = int(np.argmax(dev)) if te.size else 0
         shown = ",".join(f"{1e3 * t:g}ms" for t in te)
@@ -106,6 +116,10 @@ def echo_spacing(te, *, where: str = "--te") -> float:
             f"{1e3 * (i + 1) * esp0:g} ms); give the whole train in acquisition order, or fit without --epg"
         )
     esp = float(np.sum(k * te) / np.sum(k * k))
+    if rounded:
+        warn(f"the echo times deviate from TE_k = k x ESP by up to {1e3 * float(np.max(np.abs(te - k * esp))):.3g} ms, "
+             f"as when rounded to 0.1 ms; using ESP = {1e3 * esp:.5g} ms (least squares; deviations up to "
+             f"{1e3 * TE_ROUNDING_S:g} ms are accepted)")
     return esp
 
 

@@ -162,7 +162,7 @@ def run_t1_ir(
         inputs, key="InversionTime", value=ti, option="--ti",
         scalars={"RepetitionTime": (tr, "--tr", False, "RepetitionTime")},
         allow_complex=signal == "complex", sort=not phase, min_volumes=MIN_TIS,
-        max_bytes=None if signal == "complex" else common.max_memory,
+        max_bytes=None if signal == "complex" else common.max_memory, check_order=common.series_check,
     )
     extra = []
     if signal == "complex":
@@ -182,6 +182,15 @@ def run_t1_ir(
         series.data = phase_correct(series.data)
     ti_used = np.asarray(series.acquisition["InversionTime"], float)
     tr_used = series.acquisition.get("RepetitionTime")
+    if (tr_used is not None and not look_locker and ti_used.max() >= tr_used
+            and series.sources.get("RepetitionTime") == "sidecar"):
+        # exports often store the readout's TR (a few ms) as RepetitionTime; the fit does not need TR
+        warn(f"sidecar RepetitionTime {tr_used:g} s is shorter than the inversion times (up to {ti_used.max():g} s): "
+             f"it is the readout's TR, not the time between inversions; ignored (the fit does not need it; --tr "
+             f"records the inversion repetition time)")
+        del series.acquisition["RepetitionTime"]
+        series.sources.pop("RepetitionTime", None)
+        tr_used = None
     if tr_used is not None and not look_locker and ti_used.max() >= tr_used:
         raise InputError(
             f"InversionTime up to {ti_used.max():g} s is not shorter than RepetitionTime {tr_used:g} s; "

@@ -14,6 +14,7 @@ import time
 
 import numpy as np
 
+from ..checks import check_series_shape
 from ..engine import fit_voxels
 from ..errors import InputError, UsageError, warn
 from ..fitting import status as st
@@ -352,6 +353,7 @@ def run_t2_spectrum(
     budget = common.max_memory
     check_signal(series, magnitude=True, max_bytes=budget)
     mask, mask_desc = resolve_mask(common.mask, series, budget)
+    check_series_shape(series, model, mask, enabled=common.series_check, max_bytes=budget)
     file_inputs = []
     if common.mask is not None and str(common.mask) not in ("auto", "none"):
         file_inputs.append(common.mask)

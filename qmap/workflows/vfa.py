@@ -232,7 +232,7 @@ def run_t1_vfa(
         raise UsageError(f"--t1-typical {t1_typical}: give a positive time, e.g. 1s or 900ms")
     series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
                          scalars={"RepetitionTime": (tr, "--tr", True, "RepetitionTimeSpoiled")}, min_volumes=2,
-                         max_bytes=common.max_memory)
+                         max_bytes=common.max_memory, check_order=common.series_check)
     fa_used = np.asarray(series.acquisition["FlipAngle"], float)
     tr_used = float(series.acquisition["RepetitionTime"])
     if b1 is None and (b1_scale is not None or b1_smooth):
