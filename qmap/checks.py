@@ -260,9 +260,11 @@ def warn_fit_quality(maps, mask: np.ndarray, mask_spec) -> list[str]:
     spec = "auto" if mask_spec is None else str(mask_spec)
     good = maps.status == 0
     r2 = maps.quality.get("rsquared")
-    if r2 is not None and spec != "none" and good.any():
-        med = float(np.nanmedian(r2[good]))
-        if np.isfinite(med) and med < R2_WARN:
+    v = np.asarray(r2)[good] if r2 is not None else np.zeros(0)
+    v = v[np.isfinite(v)]  # closed-form maps (b1) have no R-squared
+    if v.size and spec != "none":
+        med = float(np.median(v))
+        if med < R2_WARN:
             out.append(f"the median R-squared of the fitted voxels is {med:.2f} (below {R2_WARN:g}): the model "
                        f"does not describe these data; check the order of the files and values, and that the "
                        f"images are magnitude images of this kind of series")
