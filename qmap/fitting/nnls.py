@@ -14,13 +14,15 @@ Two exact algorithms share one solver of the passive-set systems:
 * :func:`nnls_active_set` -- Lawson & Hanson's active-set method (Solving
   Least Squares Problems, 1974, ch. 23; the algorithm behind
   ``scipy.optimize.nnls``), one variable entering per outer iteration, for
-  all voxels in lock step. It is efficient when solutions are sparse (the
-  unregularised spectra of the refocusing-angle search).
+  all voxels in lock step, optionally warm-started from a guessed support.
+  It is efficient when solutions are sparse or a close support is known (the
+  T2 spectrum uses it throughout).
 * :func:`nnls_block_pivot` -- block principal pivoting (Kim & Park, SIAM J
   Sci Comput 2011;33:3261; Portugal, Judice & Vicente, Math Comp 1994;63:625)
-  with its backup rule, which exchanges every infeasible variable at once and
-  takes a warm start: efficient for the regularised spectra, whose support
-  changes little between neighbouring ``mu``.
+  with its backup rule, which exchanges every infeasible variable at once:
+  efficient for well-conditioned problems (a ridge ``mu`` that is not tiny)
+  from a cold start; with a poor warm start on ill-conditioned problems it
+  may need many single exchanges.
 
 The passive-set systems are solved by a Cholesky factorisation written with
 element-wise operations over the voxels (padded to the largest passive set of
@@ -41,8 +43,6 @@ __all__ = ["nnls_active_set", "nnls_block_pivot", "residual_norm2"]
 DUAL_RTOL = 1e-11
 #: relative pivot floor of the Cholesky factorisation (numerically dependent columns)
 PIVOT_RTOL = 1e-13
-#: voxels per block of the batched factorisation
-_BLOCK = 256
 
 
 def _spd_solve(M: NDArray[np.float64], r: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -54,18 +54,16 @@ def _spd_solve(M: NDArray[np.float64], r: NDArray[np.float64]) -> NDArray[np.flo
     L = np.zeros_like(M)
     floor = PIVOT_RTOL * np.maximum(np.max(M[np.arange(K), np.arange(K)], axis=0), np.finfo(float).tiny)
     for j in range(K):
-        s = M[j, j] - np.sum(L[j, :j] * L[j, :j], axis=0) if j else M[j, j].copy()
-        d = np.sqrt(np.maximum(s, floor))
+        d = np.sqrt(np.maximum(M[j, j] - np.einsum("kv,kv->v", L[j, :j], L[j, :j]), floor))
         L[j, j] = d
         if j + 1 < K:
-            t = M[j + 1:, j] - np.sum(L[j + 1:, :j] * L[j, None, :j], axis=1) if j else M[j + 1:, j]
-            L[j + 1:, j] = t / d
+            L[j + 1:, j] = (M[j + 1:, j] - np.einsum("ikv,kv->iv", L[j + 1:, :j], L[j, :j])) / d
     z = np.empty_like(r)
     for i in range(K):
-        z[i] = (r[i] - np.sum(L[i, :i] * z[:i], axis=0)) / L[i, i] if i else r[i] / L[i, i]
+        z[i] = (r[i] - np.einsum("kv,kv->v", L[i, :i], z[:i])) / L[i, i]
     x = np.empty_like(r)
     for i in range(K - 1, -1, -1):
-        x[i] = (z[i] - np.sum(L[i + 1:, i] * x[i + 1:], axis=0)) / L[i, i]
+        x[i] = (z[i] - np.einsum("kv,kv->v", L[i + 1:, i], x[i + 1:])) / L[i, i]
     return x
 
 
@@ -113,20 +111,18 @@ class _Problem:
         idx = np.zeros((nv, K), np.intp)
         idx[rr, np.arange(rr.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)] = cc
         valid = np.arange(K)[None, :] < cnt[:, None]
-        g = self.group[rows]
         idxT = idx.T  # (K, nv): voxels last for the factorisation
+        pair = idxT[:, None, :] * n + idxT[None, :, :]  # flat (i, j) index into an n x n Gram matrix
         if self.Gv is not None:
-            M = self.Gv[rows[None, None, :], idxT[:, None, :], idxT[None, :, :]]
+            M = np.take(self.Gv, pair + (rows * (n * n))[None, None, :])
         else:
-            M = self.G[g[None, None, :], idxT[:, None, :], idxT[None, :, :]]
+            M = np.take(self.G.reshape(self.G.shape[0], -1), pair + (self.group[rows] * (n * n))[None, None, :])
         vT = valid.T
         M *= vT[:, None, :] & vT[None, :, :]
         ii = np.arange(K)
         M[ii, ii] += np.where(vT, self.mu[rows][None, :], 1.0)
         r = np.where(vT, np.take_along_axis(self.d[rows], idx, axis=1).T, 0.0)
-        sol = np.empty((nv, K))
-        for b0 in range(0, nv, _BLOCK):  # blocks that keep the factorisation's temporaries in cache
-            sol[b0:b0 + _BLOCK] = _spd_solve(M[:, :, b0:b0 + _BLOCK], r[:, b0:b0 + _BLOCK]).T
+        sol = _spd_solve(M, r).T
         z[rr, cc] = sol[valid]
         return z
 
@@ -137,6 +133,7 @@ def nnls_active_set(
     *,
     group: NDArray[np.intp] | None = None,
     mu: NDArray[np.float64] | float | None = None,
+    passive: NDArray[np.bool_] | None = None,
     max_iter: int | None = None,
 ) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
     """Lawson-Hanson active-set NNLS for a batch of voxels.
@@ -151,6 +148,11 @@ def nnls_active_set(
         Which Gram matrix of the stack each voxel uses (default 0).
     mu : float or (V,) ndarray, optional
         Ridge weight (regularisation) per voxel, signal units squared; default 0.
+    passive : (V, n) bool ndarray, optional
+        Warm start: a guess of the support (e.g. the solution's at a
+        neighbouring ``mu``). It is first reduced to a feasible start (the
+        unconstrained solution on it, dropping variables that come out
+        non-positive until none does); the iteration then proceeds as usual.
     max_iter : int, optional
         Outer iterations (default 3 n).
 
@@ -166,6 +168,16 @@ def nnls_active_set(
     max_iter = 3 * n if max_iter is None else int(max_iter)
     x = np.zeros((V, n))
     P = np.zeros((V, n), bool)
+    if passive is not None:
+        P[:] = passive
+        sub = np.flatnonzero(P.any(axis=1))
+        while sub.size:  # a feasible start: the solution on the guessed support, shrunk until it is positive
+            z = pb.solve(sub, P[sub])
+            pos = P[sub] & (z > 0)
+            ok = (pos == P[sub]).all(axis=1)
+            x[sub[ok]] = z[ok]
+            P[sub[~ok]] = pos[~ok]
+            sub = sub[~ok]
     active = np.ones(V, bool)
     for _ in range(max_iter):
         a = np.flatnonzero(active)

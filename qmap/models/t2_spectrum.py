@@ -30,8 +30,8 @@ T1 fixed). Per voxel:
    above the window, ``exp(sum s_j log T2_j / sum s_j)``.
 
 The NNLS problems of many voxels are solved together by
-:mod:`qmap.fitting.nnls` (active set for the sparse unregularised spectra,
-warm-started block principal pivoting for the regularised ones).
+:mod:`qmap.fitting.nnls` (Lawson-Hanson active set, each solve warm-started
+from the support of a neighbouring angle or ``mu``).
 """
 
 from __future__ import annotations
@@ -45,7 +45,7 @@ from scipy.interpolate import CubicSpline
 
 from ..epg import cpmg_echoes
 from ..fitting import status as st
-from ..fitting.nnls import nnls_active_set, nnls_block_pivot
+from ..fitting.nnls import nnls_active_set
 
 __all__ = [
     "DEFAULT_CHI2_FACTOR", "DEFAULT_MIN_SNR", "DEFAULT_N_T2", "DEFAULT_T2_RANGE", "DEFAULT_WINDOW",
@@ -256,15 +256,20 @@ class SpectrumModel:
 
     # -- the steps ------------------------------------------------------------------------
     def search_angle(self, y: NDArray[np.float64]):
-        """Refocusing angle per voxel (deg), the residual's second derivative there (1/deg^2), and the lower-bound flag."""
+        """Angle per voxel (deg), the residual's second derivative there (1/deg^2), the lower-bound flag, and the
+        support of the spectrum at the nearest grid angle (a warm start)."""
         b = self.basis
         V = y.shape[0]
         na = b.angles.size
         rss = np.empty((na, V))
         zero = np.zeros(V, np.intp)
-        for a in range(na):
+        support = None
+        sols = np.empty((na, V, b.t2.size))
+        for a in range(na - 1, -1, -1):  # from 180 degrees down, each warm-started from its neighbour's support
             d = y @ b.A[a]
-            x, _ = nnls_active_set(b.G[a], d)
+            x, _ = nnls_active_set(b.G[a], d, passive=support)
+            support = x > 0
+            sols[a] = x
             rss[a] = _rss(b.A[a:a + 1], zero, x, y)
         # cubic spline of the residual over the angle (Prasloski et al. 2012), mirrored about 180 degrees (the
         # trains are symmetric there), minimised on the tabulated 0.5-degree grid
@@ -278,7 +283,8 @@ class SpectrumModel:
         angle = fine[k]
         curv = spline(fine, 2)[k, np.arange(V)]  # second derivative at the minimum, per voxel
         at_lo = angle <= b.angles[0] + 0.5 * FINE_STEP_DEG
-        return angle, curv, at_lo
+        nearest = np.argmin(np.abs(angle[:, None] - b.angles[None, :]), axis=1)
+        return angle, curv, at_lo, sols[nearest, np.arange(V)] > 0
 
     def fit_chunk(self, y, ctx=None, sigma=None) -> SpectrumFit:
         """Fit the spectra of a chunk of voxels (V, m); ``sigma`` (V,) noise sd in signal units."""
@@ -288,12 +294,12 @@ class SpectrumModel:
         scale = np.max(np.abs(y), axis=1)
         scale = np.where(scale > 0, scale, 1.0)
         yn = y / scale[:, None]
-        angle, curv, at_lo = self.search_angle(yn)
+        angle, curv, at_lo, support = self.search_angle(yn)
         fine = np.rint((angle - b.fine_angles[0]) / FINE_STEP_DEG).astype(np.intp)
         fine = np.clip(fine, 0, b.fine_angles.size - 1)
         angle = b.fine_angles[fine]
         d = _atb(b.A_fine, fine, yn)
-        x0, ok0 = nnls_active_set(b.G_fine, d, group=fine)
+        x0, ok0 = nnls_active_set(b.G_fine, d, group=fine, passive=support)
         rss0 = _rss(b.A_fine, fine, x0, yn)
         x, mu_rel, rss, ok1 = self._regularise(yn, d, fine, x0, rss0)
         # noise level: given, or from the unregularised residuals (degrees of freedom: echoes - peaks)
@@ -351,7 +357,7 @@ class SpectrumModel:
             if a.size == 0:
                 break
             mu = 10.0 ** cur[a] * colscale[a]
-            xa, conv = nnls_block_pivot(b.G_fine, d[a], group=group[a], mu=mu, passive=warm[a])
+            xa, conv = nnls_active_set(b.G_fine, d[a], group=group[a], mu=mu, passive=warm[a])
             ra = _rss(b.A_fine, group[a], xa, y[a])
             warm[a] = xa > 0
             with np.errstate(divide="ignore", invalid="ignore"):

@@ -50,9 +50,9 @@ __all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
 #: fewest echoes a spectrum is fitted from
 MIN_ECHOES = 8
 #: voxels of the bootstrap subsample that calibrates the standard error of the fraction
-SE_SUBSAMPLE = 200
+SE_SUBSAMPLE = 100
 #: noisy replicates per subsample voxel
-SE_REPLICATES = 16
+SE_REPLICATES = 10
 
 _KEPT = (st.FITTED, st.AT_BOUND, st.LOW_SNR, st.NOT_CONVERGED)
 

@@ -132,7 +132,7 @@ def test_standard_error_is_calibrated(model):
     clean = s0 * _pools(np.column_stack([truth_f, 1 - truth_f]), np.tile([0.02, 0.085], (V, 1)), np.full(V, 0.92))
     fit = model.fit_chunk(_rician(clean, sigma, rng), sigma=np.full(V, sigma))
     sub = np.arange(0, V, 5)
-    cal = calibrate_fraction_se(model, fit.spectrum[sub], fit.angle[sub], fit.sigma[sub], replicates=16)
+    cal = calibrate_fraction_se(model, fit.spectrum[sub], fit.angle[sub], fit.sigma[sub], replicates=10)
     se = fraction_se(cal, fit.fraction, fit.snr)
     for grp in (truth_f == 0.1, truth_f == 0.25):
         ratio = np.std(fit.fraction[grp], ddof=1) / np.median(se[grp])
