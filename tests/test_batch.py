@@ -425,3 +425,38 @@ def test_up_to_date_check_ignores_outputs_of_a_longer_prefix(tmp_path):
     assert series_state(plan) == ("missing", "")
     (out / "sub-01_acq-vfa_T1map.nii.gz").write_bytes(b"x")
     assert series_state(plan)[0] == "stale"
+
+
+def test_t2_spectrum_option_fits_mese_series_by_t2_spectrum_too(tmp_path, capsys):
+    """--t2-spectrum: every MESE series is also fitted by t2-spectrum (prefix ..._acq-mesespectrum); reruns skip it."""
+    from tests.reference.epg_states import cpmg_reference
+
+    rng = np.random.default_rng(3)
+    shape, n_echoes = (6, 5, 1), 32
+    frac = np.linspace(0.05, 0.25, shape[0])[:, None, None] * np.ones(shape)
+    trains = (frac.reshape(-1, 1) * cpmg_reference(np.full(frac.size, 0.02), np.full(frac.size, 170.0), esp=0.01,
+                                                   n_echoes=n_echoes)
+              + (1 - frac.reshape(-1, 1)) * cpmg_reference(np.full(frac.size, 0.08), np.full(frac.size, 170.0),
+                                                           esp=0.01, n_echoes=n_echoes))
+    data = np.abs(1000.0 * trains.reshape(*shape, n_echoes) + rng.normal(0, 3.0, (*shape, n_echoes)))
+    a = tmp_path / "bids/sub-01/anat"
+    a.mkdir(parents=True)
+    for k in range(n_echoes):
+        nib.save(nib.Nifti1Image(data[..., k].astype(np.float32), AFFINE), str(a / f"sub-01_echo-{k + 1}_MESE.nii.gz"))
+        (a / f"sub-01_echo-{k + 1}_MESE.json").write_text(json.dumps({"EchoTime": 0.01 * (k + 1)}))
+    deriv = tmp_path / "deriv"
+    assert main(["batch", str(tmp_path / "bids"), "-o", str(deriv), "--t2-spectrum", "--dry-run"]) == 0
+    table = capsys.readouterr().out
+    assert "t2-spectrum (regularised NNLS, EPG basis)" in table and "t2 (EPG)" in table
+    report = run_batch(tmp_path / "bids", deriv, n_jobs=1, t2_spectrum=True)
+    done = {p.prefix: r for p, r in zip(report.plan.series, report.results)}
+    res = done["sub-01_acq-mesespectrum"]
+    assert res.status == "fitted", res.reason
+    out = deriv / "sub-01" / "anat"
+    mwf = nib.load(str(out / "sub-01_acq-mesespectrum_MWFmap.nii.gz")).get_fdata()
+    prov = json.loads((out / "sub-01_acq-mesespectrum_provenance.json").read_text())
+    assert prov["command_line"][:2] == ["qmap", "t2-spectrum"]
+    ok = np.isfinite(mwf)
+    assert ok.sum() >= 20 and np.median(np.abs(mwf[ok] - frac[ok])) < 0.05
+    again = run_batch(tmp_path / "bids", deriv, n_jobs=1, t2_spectrum=True)
+    assert {p.prefix: r.status for p, r in zip(again.plan.series, again.results)}["sub-01_acq-mesespectrum"] == "skipped"

@@ -72,6 +72,9 @@ UNI_SUFFIX = "UNIT1"
 #: suffixes whose fit uses the session's TB1map
 _B1_CORRECTED = ("VFA", "MP2RAGE")
 
+#: the extra fit of a MESE series with ``--t2-spectrum`` (outputs ``..._acq-mesespectrum_*``)
+SPECTRUM_KIND = FitKind("MESE", "echo", "mesespectrum", "t2-spectrum", "qmap.workflows.t2_spectrum", "run_t2_spectrum")
+
 #: ``part-`` labels that are magnitude images (absent = magnitude)
 _MAGNITUDE_PARTS = (None, "mag")
 
@@ -131,6 +134,8 @@ class SeriesPlan:
         Why the series cannot be fitted as found (reported as a failure).
     notes : list of str
         Remarks on choices made while planning.
+    spectrum : bool
+        A MESE series fitted by ``t2-spectrum`` (multi-component T2) instead of ``t2 --epg``.
     """
 
     subject: str
@@ -145,10 +150,11 @@ class SeriesPlan:
     error: str | None = None
     notes: list = field(default_factory=list)
     uni: str | None = None
+    spectrum: bool = False
 
     @property
     def kind(self) -> FitKind:
-        return FIT_KINDS[self.suffix]
+        return SPECTRUM_KIND if self.spectrum else FIT_KINDS[self.suffix]
 
     @property
     def key(self) -> str:
@@ -169,6 +175,8 @@ class SeriesPlan:
             if self.b1:
                 return f"t1-vfa (nonlinear, B1 {Path(self.b1).name} [{self.b1_scale or 'scale from its data'}])"
             return "t1-vfa (nonlinear, no B1 map)"
+        if self.spectrum:
+            return "t2-spectrum (regularised NNLS, EPG basis)"
         if k.suffix == "MESE":
             return "t2 (EPG)"
         if k.suffix == "MP2RAGE":
@@ -276,7 +284,7 @@ def _b1_scale(path: Path) -> tuple[str | None, str | None]:
     return scale, None
 
 
-def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
+def discover(bids_dir: str | Path, deriv_dir: str | Path, *, t2_spectrum: bool = False) -> BatchPlan:
     """Find every relaxometry series of a BIDS dataset and plan its fit.
 
     Parameters
@@ -285,6 +293,8 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
         Root of the raw BIDS dataset (holds ``sub-*`` folders).
     deriv_dir : path-like
         Root of the derivatives the batch writes.
+    t2_spectrum : bool
+        Also fit every MESE series by ``t2-spectrum`` (prefix method ``mesespectrum``).
 
     Returns
     -------
@@ -344,6 +354,9 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
                 if (p := parse_bids_name(f)) and p[1] == "TB1map" and _matches_session(dict(p[0]), subject, session)]
         for key, members in groups.items():
             plans.append(_plan_series(bids, deriv, subject, session, key, members, fmap, unis.get(key)))
+            if t2_spectrum and key[0] == "MESE":
+                plans.append(_plan_series(bids, deriv, subject, session, key, members, fmap, unis.get(key),
+                                          spectrum=True))
     if not plans:
         raise InputError(
             f"{bids}: no relaxometry series in {len(sessions)} subject/session folders; expected anat/ files named "
@@ -356,9 +369,10 @@ def discover(bids_dir: str | Path, deriv_dir: str | Path) -> BatchPlan:
                      n_sessions=len({(p.subject, p.session) for p in plans}))
 
 
-def _plan_series(bids, deriv, subject, session, key, members, fmap, uni=None) -> SeriesPlan:
+def _plan_series(bids, deriv, subject, session, key, members, fmap, uni=None, *,
+                 spectrum: bool = False) -> SeriesPlan:
     suffix, others = key[0], list(key[1:])
-    kind = FIT_KINDS[suffix]
+    kind = SPECTRUM_KIND if spectrum else FIT_KINDS[suffix]
     acq = dict(others).get("acq")
     rest = [(k, v) for k, v in others if k not in ("sub", "ses", "acq", "part")]
     out_dir = deriv / f"sub-{subject}" / (f"ses-{session}" if session else "") / "anat"
@@ -372,7 +386,8 @@ def _plan_series(bids, deriv, subject, session, key, members, fmap, uni=None) ->
         label = "_".join(f"{kind.index}-*" if part == f"{kind.index}-{numbered[0][0]}" else part
                          for part in stem.split("_"))
     plan = SeriesPlan(subject=subject, session=session, suffix=suffix, label=label,
-                      inputs=[str(f) for f in files], prefix=prefix, out_dir=str(out_dir.absolute()))
+                      inputs=[str(f) for f in files], prefix=prefix, out_dir=str(out_dir.absolute()),
+                      spectrum=spectrum)
     labels = [m[0] for m in numbered]
     if suffix == "MP2RAGE":
         plan.uni = None if uni is None else str(uni)

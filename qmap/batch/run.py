@@ -286,6 +286,7 @@ def run_batch(
     overwrite: bool = False,
     quiet: bool = True,
     stream=None,
+    t2_spectrum: bool = False,
 ) -> BatchReport:
     """Fit every relaxometry series of a BIDS dataset; see the module docstring.
 
@@ -307,6 +308,9 @@ def run_batch(
         No progress display.
     stream : file-like, optional
         Where the progress goes (default stderr).
+    t2_spectrum : bool
+        Also fit every MESE series by ``t2-spectrum`` (multi-component T2; outputs with the
+        method label ``mesespectrum``).
 
     Returns
     -------
@@ -316,7 +320,7 @@ def run_batch(
     t0 = time.perf_counter()
     if n_jobs is not None and n_jobs == 0:
         raise UsageError("-j 0: give a positive number of worker processes (or leave -j out for all cores)")
-    plan = discover(bids_dir, deriv_dir)
+    plan = discover(bids_dir, deriv_dir, t2_spectrum=t2_spectrum)
     report = BatchReport(plan=plan, dry_run=dry_run)
     if dry_run:
         report.actions = [_planned_action(p, overwrite) for p in plan.series]

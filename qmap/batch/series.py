@@ -58,6 +58,8 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
                 kwargs["b1_scale"] = plan.b1_scale
                 opts += ["--b1-scale", plan.b1_scale]
         return kwargs, opts
+    if plan.spectrum:
+        return {}, []
     if suffix == "MESE":
         return {"epg": True}, ["--epg"]
     if suffix == "MP2RAGE":

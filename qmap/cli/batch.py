@@ -32,6 +32,9 @@ def add_parser(sub) -> None:
     p.add_argument("-j", "--jobs", type=int, default=None, metavar="N",
                    help="local worker processes, each fitting one series at a time (default: all cores)")
     p.add_argument("--overwrite", action="store_true", help="refit every series, even those up to date")
+    p.add_argument("--t2-spectrum", action="store_true",
+                   help="also fit every MESE series by t2-spectrum (multi-component T2, short-T2 fraction); outputs "
+                        "with the prefix ..._acq-mesespectrum")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress display and no summary (warnings and "
                    "failures still go to stderr)")
     p.set_defaults(run=run)
@@ -44,7 +47,8 @@ def run(args) -> int:
         warn("-j is ignored with --scheduler (the cluster's workers do the work)")
     try:
         report = run_batch(args.bids_dir, args.out_dir, dry_run=args.dry_run, scheduler=args.scheduler,
-                           n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet)
+                           n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet,
+                           t2_spectrum=args.t2_spectrum)
     except KeyboardInterrupt as exc:
         from . import Terminated
 

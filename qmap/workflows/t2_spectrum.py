@@ -15,7 +15,7 @@ import time
 import numpy as np
 
 from ..checks import check_series_shape
-from ..engine import fit_voxels
+from ..engine import fit_voxels, resolve_jobs
 from ..errors import InputError, UsageError, warn
 from ..fitting import status as st
 from ..io.writer import OutputFile
@@ -51,6 +51,8 @@ __all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
 MIN_ECHOES = 8
 #: voxels of the bootstrap subsample that calibrates the standard error of the fraction
 SE_SUBSAMPLE = 100
+#: largest chunk of voxels per work unit (smaller chunks keep both workers busy on small volumes)
+SPECTRUM_CHUNK = 4096
 #: noisy replicates per subsample voxel
 SE_REPLICATES = 10
 
@@ -375,18 +377,22 @@ def run_t2_spectrum(
     out = _Collect(int(np.prod(shape)), model.basis.t2.size)
     n_fitted = 0
     slabs = series.slabs(budget)
+    n_mask = int(np.count_nonzero(mask))
+    workers = resolve_jobs(common.n_jobs)
+    # chunks: at most SPECTRUM_CHUNK voxels, and at least one per worker (results do not depend on it)
+    chunk = max(256, min(common.chunk_size, SPECTRUM_CHUNK, -(-n_mask // workers)))
     for k, (z0, z1) in enumerate(slabs):
         block = series.read(z0, z1)
         label = "fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}"
         slab_sig = sig[:, :, z0:z1] if isinstance(sig, np.ndarray) and sig.ndim == 3 else sig
         if len(slabs) == 1:
-            n_fitted += _fit_flat(model, block, mask, slab_sig, n_jobs=common.n_jobs, chunk_size=common.chunk_size,
+            n_fitted += _fit_flat(model, block, mask, slab_sig, n_jobs=common.n_jobs, chunk_size=chunk,
                                   scheduler=common.scheduler, quiet=common.quiet, label=label, out=out)
             continue
         # the flat C-order indices of a z-slab are not contiguous in the volume: fit it as its own volume
         sub = _Collect(int(np.prod(block.shape[:-1])), model.basis.t2.size)
         n_fitted += _fit_flat(model, block, mask[:, :, z0:z1], slab_sig, n_jobs=common.n_jobs,
-                              chunk_size=common.chunk_size, scheduler=common.scheduler, quiet=common.quiet,
+                              chunk_size=chunk, scheduler=common.scheduler, quiet=common.quiet,
                               label=label, out=sub)
         dst = np.ravel_multi_index(np.nonzero(np.ones(block.shape[:-1], bool)), shape) + z0
         out.status[dst] = sub.status

@@ -121,3 +121,15 @@ def test_sidecar_refocusing_angle_without_value_is_refused(tmp_path, capsys):
     side.write_text(json.dumps(meta))
     assert main(["t2-spectrum", str(path), "-o", str(tmp_path / "out"), "-q", "--mask", "none"]) == 2
     assert "RefocusingFlipAngle" in capsys.readouterr().err
+
+
+def test_results_do_not_depend_on_chunks_or_workers():
+    from qmap.workflows.t2_spectrum import fit_t2_spectrum
+
+    data, _, _, _ = _volume(shape=(4, 4, 2), seed=4)
+    a, ea = fit_t2_spectrum(data, TE, sigma=SIGMA, chunk_size=9, n_jobs=2, se_subsample=6)
+    b, eb = fit_t2_spectrum(data, TE, sigma=SIGMA, chunk_size=64, n_jobs=1, se_subsample=6)
+    for name in ("MWF", "RefocusAngle"):
+        np.testing.assert_array_equal(a[name], b[name])
+        np.testing.assert_array_equal(a.stderr[name], b.stderr[name])
+    np.testing.assert_array_equal(ea["spectrum"], eb["spectrum"])
