@@ -265,8 +265,8 @@ def inspect_voxel(
         if o.get("kind") in ("estimate", "stderr"):
             by_param.setdefault(o["parameter"], {})[o["kind"]] = (name, o.get("units", ""))
     for param, kinds in by_param.items():
-        if "estimate" not in kinds:
-            continue
+        if "estimate" not in kinds or len(load_image(out_dir / kinds["estimate"][0]).shape) > 3:
+            continue  # no estimate, or a 4D output (a T2 spectrum) with no single value
         v = _map_value(out_dir / kinds["estimate"][0], ijk)
         se = _map_value(out_dir / kinds["stderr"][0], ijk) if "stderr" in kinds else float("nan")
         rep.values.append((param, v, se, kinds["estimate"][1]))
@@ -277,6 +277,8 @@ def inspect_voxel(
             rep.quality[o["parameter"]] = (_map_value(out_dir / name, ijk), o.get("units", ""))
     # the curve: rebuild the model through the registry and fit this voxel again
     mname = prov.get("model", {}).get("name")
+    if mname == "t2spectrum":  # the spectrum is read from the maps: no model to rebuild
+        return _inspect_spectrum(prov, out_dir, ijk, rep, out_png)
     try:
         cls = model_class(str(mname))
     except KeyError:
@@ -286,6 +288,29 @@ def inspect_voxel(
     png = Path(out_png) if out_png is not None else out_dir / f"{prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
     with AtomicWriter(png.parent, overwrite=True) as w:
         w.stage_with(png.name, lambda p: plot_voxel_fit(p, **fig))
+        w.commit()
+    rep.png = png
+    return rep
+
+
+def _inspect_spectrum(prov: dict, out_dir: Path, ijk, rep: VoxelReport, out_png) -> VoxelReport:
+    """A t2-spectrum fit: the echo train with its fitted train, and the spectrum (read from the maps)."""
+    from .inspect_spectrum import plot_voxel_spectrum, spectrum_voxel
+
+    y, te, _ = _voxel_inputs(prov, ijk, "EchoTime")
+    y = np.abs(y).astype(float)
+    sv = spectrum_voxel(prov, out_dir, ijk, y)
+    lines = [f"{name} = {v:.4g}" + (f" +/- {se:.2g}" if np.isfinite(se) else "") + f" {u}"
+             for name, v, se, u in rep.values if np.isfinite(v)]
+    lines += [f"{q} = {v:.4g}" for q, (v, _) in rep.quality.items() if np.isfinite(v)]
+    if not np.all(np.isfinite(sv["fitted"])):
+        rep.notes.append("this voxel was not fitted; the plot shows its samples only")
+    title = f"{rep.prefix}  voxel ({ijk[0]}, {ijk[1]}, {ijk[2]})  status {rep.status}: {rep.status_text}"
+    png = Path(out_png) if out_png is not None else out_dir / f"{rep.prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
+    with AtomicWriter(png.parent, overwrite=True) as w:
+        w.stage_with(png.name, lambda p: plot_voxel_spectrum(p, te=te, y=y, fitted=sv["fitted"], t2=sv["t2"],
+                                                             spectrum=sv["spectrum"], window=sv["window"],
+                                                             title=title, lines=lines))
         w.commit()
     rep.png = png
     return rep

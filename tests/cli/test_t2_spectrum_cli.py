@@ -85,6 +85,18 @@ def test_outputs_values_and_provenance(series, tmp_path):
         assert json.loads((out / name.replace(".nii.gz", ".json")).read_text())["Units"]
     for q in ("rsquared", "rmse", "chi2", "regweight", "snr"):
         assert (out / f"{pre}_desc-{q}_fitmap.nii.gz").exists()
+    # inspect: the numbers of the maps, and a plot of the train and the spectrum
+    from qmap.workflows.inspect import inspect_voxel
+
+    rep = inspect_voxel(out, "5,3,1")
+    values = {name: v for name, v, _, _ in rep.values}
+    assert values["MWF"] == pytest.approx(mwf[5, 3, 1]) and rep.status == status[5, 3, 1]
+    assert rep.png.is_file() and rep.png.stat().st_size > 10_000
+    from qmap.workflows.inspect_spectrum import spectrum_voxel
+
+    sv = spectrum_voxel(prov, out, (5, 3, 1), np.asarray(nib.load(path).dataobj[5, 3, 1], float))
+    rms = np.sqrt(np.mean((sv["fitted"] - np.asarray(nib.load(path).dataobj[5, 3, 1], float)) ** 2))
+    assert rms < 2.5 * SIGMA  # the fitted train (spectrum x basis at the mapped angle) matches the samples
 
 
 def _series_files(tmp_path, te, shape=(4, 4, 1)):
