@@ -27,26 +27,29 @@ Syst Man Cybern 1979;9:62. doi:10.1109/TSMC.1979.4310076
 from __future__ import annotations
 
 import functools
+import logging
 import math
+from dataclasses import dataclass, field
 from typing import Protocol
 
 import numpy as np
 import numpy.typing as npt
+from scipy import ndimage
 
 from .errors import InputError
 from .noise import _check_coils
 
+log = logging.getLogger("qmap")
+
 __all__ = [
     "ArraySource",
     "auto_mask",
-    "background_exclusion",
-    "background_sigma",
+    "background_estimate",
     "estimate_sigma_background",
     "mask_from_peak",
     "object_mask",
     "otsu_threshold",
     "peak_image",
-    "sigma_from_samples",
 ]
 
 #: Largest fraction of the background that may be far brighter than noise
@@ -208,7 +211,6 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     threshold = 0.5 * otsu_threshold(clipped)
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
-    from scipy import ndimage  # imported on use (start-up time)
     mask = ndimage.binary_opening(np.pad(peak > threshold, 1, mode="edge"))[1:-1, 1:-1, 1:-1]
     return ndimage.binary_fill_holes(mask)
 
@@ -276,24 +278,15 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
 # ---------------------------------------------------------------------------
 
 
-def background_exclusion(object_mask: np.ndarray, dilate: int = 3) -> np.ndarray:
-    """The object grown by ``dilate`` voxels: everything outside it counts as background."""
-    mask = np.asarray(object_mask, dtype=bool)
-    if not mask.any():
-        raise InputError(f"cannot estimate the noise: no object was found in the image to set apart; {_HINT}")
-    from scipy import ndimage  # imported on use (start-up time)
-    return ndimage.binary_dilation(mask, iterations=dilate) if dilate > 0 else mask
-
-
-def background_sigma(
+def background_estimate(
     source: VolumeSource,
     *,
-    coils: int = 1,
-    max_bytes: float | None = None,
+    coils: int | None = None,
     obj: np.ndarray | None = None,
-    min_voxels: int = 1000,
+    max_bytes: float | None = None,
     dilate: int = 3,
-) -> tuple[float, int]:
+    min_voxels: int | None = None,
+) -> NoiseEstimate:
     """Noise sigma from the image background, reading the series slab by slab.
 
     Parameters
@@ -301,39 +294,42 @@ def background_sigma(
     source : VolumeSource
         The series (a :class:`~qmap.io.series.Series` or an :class:`ArraySource`).
     coils : int, optional
-        Root-sum-of-squares coils (background distribution chi with ``2 * coils`` degrees of freedom).
-    max_bytes : float, optional
-        Memory budget (bytes) for reading the series.
+        Root-sum-of-squares coils (background distribution chi with ``2 * coils`` degrees of
+        freedom). None: one, unless the background's moments clearly show more (then that many).
     obj : (X, Y, Z) ndarray of bool, optional
         The object; default the automatic mask (:func:`object_mask`).
-    min_voxels, dilate
-        As for :func:`estimate_sigma_background`.
+    max_bytes : float, optional
+        Memory budget (bytes) for reading the series.
+    dilate : int
+        The object is grown by this many voxels before taking the complement.
+    min_voxels : int, optional
+        Fewest background voxels; default from the precision needed: the median-based estimate from
+        n samples has a relative standard error of 0.7213 / sqrt(n) (one coil), so
+        :data:`TARGET_PRECISION` (5 %) needs 208 samples, and at least
+        :data:`MIN_BACKGROUND_VOXELS` voxels.
 
     Returns
     -------
-    sigma : float
-        Noise standard deviation per real channel (a.u.).
-    n_voxels : int
-        Usable background voxels.
+    NoiseEstimate
+        ``source="background"``.
+
+    Raises
+    ------
+    InputError
+        The background gives no trustworthy value; the message names the cause (no background / mask
+        covering the image, zero-filled or NaN background, negative values, signal or a constant in the
+        background).
     """
     if obj is None:
         obj = object_mask(source, max_bytes)
-    obj = np.asarray(obj, dtype=bool)
-    bg = ~background_exclusion(obj, dilate)
-    k = max(1, -(-int(bg.sum()) * source.n // SIGMA_SAMPLES))
-    keep = bg & (np.arange(bg.size).reshape(bg.shape) % k == 0)
-    values, peaks, n_voxels = [], [], 0
-    for z0, z1 in source.slabs(max_bytes):
-        block = source.read(z0, z1)
-        block = np.abs(block) if np.iscomplexobj(block) else block
-        b = block[bg[:, :, z0:z1]]
-        n_voxels += int(np.count_nonzero((np.isfinite(b) & (b != 0)).any(axis=1)))
-        values.append(block[keep[:, :, z0:z1]])
-        if source._peak is None:
-            peaks.append(peak_image(block)[obj[:, :, z0:z1]])
-    obj_peak = source._peak[obj] if source._peak is not None else np.concatenate(peaks)
-    return sigma_from_samples(np.concatenate(values, axis=0), obj_peak, coils=coils, n_voxels=n_voxels,
-                              min_voxels=min_voxels)
+    b = _collect_background(source, obj, max_bytes, dilate)
+    c = 1 if coils is None else _check_coils(coils)
+    if min_voxels is None:
+        need_samples = math.ceil((median_relative_se(c) / TARGET_PRECISION) ** 2)
+        need_voxels = MIN_BACKGROUND_VOXELS
+    else:
+        need_samples, need_voxels = 1, int(min_voxels)
+    return _assess_background(b, coils, need_samples, need_voxels)
 
 
 def estimate_sigma_background(
@@ -341,10 +337,10 @@ def estimate_sigma_background(
     object_mask: npt.ArrayLike,
     *,
     coils: int = 1,
-    min_voxels: int = 1000,
+    min_voxels: int | None = None,
     dilate: int = 3,
 ) -> tuple[float, int]:
-    """Robust noise standard deviation from the image background.
+    """Robust noise standard deviation from the image background of an array.
 
     Parameters
     ----------
@@ -356,7 +352,8 @@ def estimate_sigma_background(
         Number of root-sum-of-squares coils (background distribution chi with
         ``2 * coils`` degrees of freedom; 1 = Rayleigh).
     min_voxels : int, optional
-        Fewest background voxels accepted.
+        Fewest background voxels accepted (default: from the precision needed, see
+        :func:`background_estimate`).
     dilate : int, optional
         The object mask is grown by this many voxels (6-connected steps)
         before taking the complement, to keep partial-volume edges and blur
@@ -373,31 +370,30 @@ def estimate_sigma_background(
     Raises
     ------
     InputError
-        Fewer than ``min_voxels`` background voxels (e.g. a tightly cropped
-        image); the background looks like signal rather than noise (its
-        median above a third of the object's, or more than 20 % of it far
-        brighter than noise); it holds negative values (not
-        a magnitude image); or the object mask is empty. The message suggests
-        ``--sigma VALUE``.
+        Too few background voxels (e.g. a tightly cropped image, a zero-filled
+        or NaN background); the background looks like signal rather than noise
+        (its median above a third of the object's, or more than 20 % of it far
+        brighter than noise), or does not scatter like noise (a constant); it holds
+        negative values (not a magnitude image); or the object mask is empty.
 
     Notes
     -----
-    The same computation as ``--sigma auto`` on the command line
-    (:func:`background_sigma` on the array as one slab). Background values
-    that are exactly zero (zero filling outside the field of view) or not
-    finite are ignored. Pure-noise magnitude is :math:`\\sigma\\,\\chi_{2N}`
-    (Rayleigh for one coil), so :math:`\\sigma = \\mathrm{median} /
-    \\mathrm{median}(\\chi_{2N})`; for one coil :math:`\\mathrm{median}(\\chi_2)
-    = \\sqrt{2\\ln 2}`. The median is insensitive to a few bright ghosts or
-    artefacts in the background; values that pure noise would practically
-    never reach (above the ``1 - 1e-6`` quantile of :math:`\\sigma\\chi_{2N}`,
-    5.26 sigma for one coil) are set aside and the median retaken until sigma
-    settles, which removes their remaining pull. More than 20 % of such
-    values means the background is not noise (a median alone would not
-    notice up to half of it being signal). The object reference for the
-    plausibility check is the median over the object of each voxel's
-    maximum over volumes (so that a series whose late volumes have decayed
-    into the noise is not rejected).
+    The same computation as ``--sigma auto``'s background source on the command
+    line (:func:`background_estimate` on the array as one slab). Voxels that are
+    zero or not finite in every volume (zero filling outside the field of view) are
+    ignored. Pure-noise magnitude is :math:`\\sigma\\,\\chi_{2N}` (Rayleigh for
+    one coil), so :math:`\\sigma = \\mathrm{median} / \\mathrm{median}(\\chi_{2N})`;
+    for one coil :math:`\\mathrm{median}(\\chi_2) = \\sqrt{2\\ln 2}`. The median is
+    insensitive to a few bright ghosts or artefacts in the background; values
+    that pure noise would practically never reach (above the ``1 - 1e-6``
+    quantile of :math:`\\sigma\\chi_{2N}`, 5.26 sigma for one coil) are set
+    aside and the median retaken until sigma settles, which removes their
+    remaining pull. More than 20 % of such values means the background is not
+    noise (a median alone would not notice up to half of it being signal).
+    Integer-stored data are treated as grouped data (see :func:`_median`). The
+    object reference for the plausibility check is the median over the object
+    of each voxel's maximum over volumes (so that a series whose late volumes
+    have decayed into the noise is not rejected).
     """
     coils = _check_coils(coils)
     src = ArraySource(data)
@@ -407,68 +403,13 @@ def estimate_sigma_background(
             f"noise estimate: data of shape {np.shape(data)} and object mask of shape {mask.shape} do not match; "
             "expected (X,Y,Z[,n]) data with an (X,Y,Z) mask"
         )
-    return background_sigma(src, coils=coils, obj=mask, min_voxels=min_voxels, dilate=dilate)
+    if not mask.any():
+        raise InputError("cannot estimate the noise: no object was found in the image to set apart")
+    est = background_estimate(src, coils=coils, obj=mask, dilate=dilate, min_voxels=min_voxels)
+    return float(est.sigma), int(est.n_voxels)
 
 
-def sigma_from_samples(
-    values: np.ndarray,
-    object_peak: np.ndarray,
-    *,
-    coils: int = 1,
-    min_voxels: int = 1000,
-    n_voxels: int | None = None,
-) -> tuple[float, int]:
-    """Noise sigma from background samples (the core of :func:`background_sigma`).
-
-    Parameters
-    ----------
-    values : (n_bg,) or (n_bg, n) ndarray
-        Background magnitudes (voxels x volumes), possibly a subsample.
-    object_peak : (k,) ndarray
-        Each object voxel's maximum over volumes (for the plausibility check).
-    n_voxels : int, optional
-        Number of usable background voxels when ``values`` is a subsample.
-    """
-    coils = _check_coils(coils)
-    values = np.asarray(values)
-    if values.ndim == 1:
-        values = values[:, None]
-    usable = np.isfinite(values) & (values != 0)
-    if n_voxels is None:
-        n_voxels = int(np.count_nonzero(usable.any(axis=1)))
-    if n_voxels < min_voxels:
-        raise InputError(
-            f"cannot estimate the noise: only {n_voxels} background voxels outside the object "
-            f"(at least {min_voxels} needed; the image is probably cropped tightly); {_HINT}"
-        )
-    bg = values[usable].astype(np.float64)
-    if bg.size > _MAX_SAMPLES:  # an even stride; a million values fix the median to 0.1 %
-        bg = bg[:: -(-bg.size // _MAX_SAMPLES)]
-    if np.count_nonzero(bg < 0) > 0.01 * bg.size:
-        raise InputError(
-            "cannot estimate the noise: the image background has negative values, so it is not a "
-            f"magnitude image; {_HINT}"
-        )
-    med_bg = float(np.median(bg))
-    obj = np.asarray(object_peak, dtype=np.float64)
-    obj = obj[np.isfinite(obj)]
-    med_obj = float(np.median(obj)) if obj.size else 0.0
-    if not med_bg * 3.0 <= med_obj:
-        raise InputError(
-            f"cannot estimate the noise: the image background is not pure noise (background median {med_bg:.4g} "
-            f"vs object median {med_obj:.4g}, expected below a third); {_HINT}"
-        )
-    sigma, outliers = _clipped_sigma(bg, coils)
-    if outliers > _MAX_OUTLIER_FRACTION:
-        raise InputError(
-            f"cannot estimate the noise: the image background is not pure noise ({100 * outliers:.0f} % of it is "
-            f"far brighter than noise, expected below {100 * _MAX_OUTLIER_FRACTION:.0f} %; unmasked signal or "
-            f"strong artefacts); {_HINT}"
-        )
-    return sigma, int(n_voxels)
-
-
-def _clipped_sigma(bg: np.ndarray, coils: int) -> tuple[float, float]:
+def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[float, float]:
     """Median-based sigma, ignoring values far brighter than the noise.
 
     Starting from ``median / median(chi_2N)``, values above the
@@ -484,12 +425,12 @@ def _clipped_sigma(bg: np.ndarray, coils: int) -> tuple[float, float]:
         Fraction of the values set aside.
     """
     med, tail = _chi_median(coils), _chi_tail(coils)
-    sigma = float(np.median(bg)) / med
+    sigma = _median(bg, quantum) / med
     kept = bg
     new = sigma
     for _ in range(20):
         kept = bg[bg <= tail * sigma]
-        new = float(np.median(kept)) / med
+        new = _median(kept, quantum) / med
         if abs(new - sigma) <= 1e-9 * sigma:
             break
         sigma = new
@@ -498,15 +439,10 @@ def _clipped_sigma(bg: np.ndarray, coils: int) -> tuple[float, float]:
 
 @functools.lru_cache(maxsize=64)
 def _chi_tail(coils: int) -> float:
-    """The ``1 - 1e-6`` quantile of the chi distribution with ``2 * coils`` dof.
+    """The ``1 - 1e-6`` quantile of the chi distribution with ``2 * coils`` dof."""
+    from scipy import stats  # imported here: scipy.stats costs ~0.7 s at start-up
 
-    ``X^2 / 2`` of a chi variable with ``2N`` degrees of freedom is Gamma(N, 1) distributed, so the
-    quantile is ``sqrt(2 Q^-1(N, p))`` with the inverse regularised upper incomplete gamma function
-    (DLMF 8.2.4; ``scipy.special.gammainccinv``) -- no scipy.stats import (about 0.5 s at start-up).
-    """
-    from scipy import special
-
-    return math.sqrt(2.0 * float(special.gammainccinv(int(coils), 1e-6)))
+    return float(stats.chi(2 * int(coils)).isf(1e-6))
 
 
 @functools.lru_cache(maxsize=64)
@@ -514,6 +450,740 @@ def _chi_median(coils: int) -> float:
     """Median of the chi distribution with ``2 * coils`` degrees of freedom."""
     if coils == 1:
         return math.sqrt(2.0 * math.log(2.0))
-    from scipy import special
+    from scipy import stats
 
-    return math.sqrt(2.0 * float(special.gammainccinv(int(coils), 0.5)))  # as _chi_tail, at p = 1/2
+    return float(stats.chi(2 * int(coils)).median())
+
+
+# ---------------------------------------------------------------------------
+# The noise-level chain behind ``--sigma auto`` / ``--sigma local``
+# ---------------------------------------------------------------------------
+
+#: relative standard error of sigma that a source must reach to be used (``--sigma auto``)
+TARGET_PRECISION = 0.05
+#: fewest background voxels / fitted voxels behind an estimate, whatever its nominal precision
+MIN_BACKGROUND_VOXELS = 50
+MIN_RESIDUAL_VOXELS = 30
+#: a sample counts as "well above the noise floor" when its fitted value is at least this many sigma
+#: (the Rician bias of the magnitude there is sigma / (2 * 5) = 0.1 sigma and its sd is within 1 % of sigma)
+FLOOR_MARGIN = 5.0
+#: voxels fitted for the residual estimate (an even stride through the object)
+RESIDUAL_VOXELS = 4000
+#: number of chi-distributed samples below which a multi-coil background is not claimed
+_MIN_COIL_SAMPLES = 500
+
+
+@dataclass
+class NoiseEstimate:
+    """A noise level with where it came from and how precise it is.
+
+    Attributes
+    ----------
+    sigma : float or (X, Y, Z) ndarray
+        Noise standard deviation per real channel, signal units (a map for ``--sigma local``).
+    source : str
+        ``"background"``, ``"residuals"``, ``"local"``, ``"command line"`` or ``"noise map"``.
+    n_voxels : int
+        Voxels behind the estimate.
+    relative_precision : float or None
+        Estimated relative standard error of ``sigma`` (of the median of the map for ``local``).
+    coils : int or None
+        Effective number of sum-of-squares coils found in the background (None: not assessed).
+    details : dict
+        Further facts for the provenance (e.g. the other source's value when both were computed).
+    notes : list of str
+        What a user should know (printed with the run summary).
+    """
+
+    sigma: float | np.ndarray
+    source: str
+    n_voxels: int = 0
+    relative_precision: float | None = None
+    coils: int | None = None
+    details: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
+
+    @property
+    def value(self) -> float:
+        """The scalar noise level (the median of the map for a local estimate)."""
+        s = np.asarray(self.sigma, dtype=np.float64)
+        if s.ndim == 0:
+            return float(s)
+        ok = np.isfinite(s) & (s > 0)
+        return float(np.median(s[ok])) if ok.any() else float("nan")
+
+    def provenance(self, mode: str) -> dict:
+        out = {"sigma_mode": mode, "sigma": self.value, "source": self.source, "n_voxels": int(self.n_voxels),
+               "relative_precision": None if self.relative_precision is None else float(self.relative_precision)}
+        out.update(self.details)
+        return out
+
+
+def median_relative_se(coils: int = 1) -> float:
+    """Relative standard error x sqrt(n) of sigma = median / median(chi_2N) from n samples.
+
+    The sample median of n draws from a density f has the asymptotic standard error
+    :math:`1 / (2 f(m) \\sqrt n)` (e.g. Stuart & Ord, Kendall's Advanced Theory of Statistics,
+    vol. 1, §10.10; from memory). For the Rayleigh density (one coil) :math:`f(m) = m e^{-m^2/2}`
+    at :math:`m = \\sqrt{2 \\ln 2}` this gives :math:`1 / (2 \\ln 2) = 0.7213`.
+    """
+    coils = _check_coils(coils)
+    if coils == 1:
+        return 1.0 / (2.0 * math.log(2.0))
+    from scipy import stats
+
+    dist = stats.chi(2 * coils)
+    m = float(dist.median())
+    return 1.0 / (2.0 * float(dist.pdf(m)) * m)
+
+
+def _quantum(values: np.ndarray) -> float:
+    """The storage step of quantised (integer, or integer x slope) values; 0 for continuous data."""
+    v = values[: 200_000]
+    if v.size < 20:
+        return 0.0
+    u = np.unique(v)
+    if u.size < 2 or u.size > 0.25 * v.size:
+        return 0.0
+    h = float(np.min(np.diff(u)))
+    if not h > 0:
+        return 0.0
+    k = u / h
+    if np.max(np.abs(k - np.round(k))) > 1e-3:
+        return 0.0
+    return h
+
+
+def _median(values: np.ndarray, quantum: float) -> float:
+    """Median; for values stored on a grid of step ``quantum``, the grouped-data median.
+
+    Each stored value ``k * quantum`` stands for the interval ``[(k - 1/2) quantum, (k + 1/2) quantum)``
+    (``[0, quantum / 2)`` for 0); the median is interpolated linearly within the interval that holds it
+    (the usual median of grouped data). Without it, the median of integer data whose noise is about
+    one unit can only be a whole number, and sigma snaps to multiples of 1 / 1.1774 = 0.849.
+    """
+    if quantum <= 0:
+        return float(np.median(values))
+    k = np.round(values / quantum).astype(np.int64)
+    k0 = int(k.min())
+    counts = np.bincount(k - k0).astype(np.float64)
+    cum = np.cumsum(counts)
+    half = 0.5 * values.size
+    j = int(np.searchsorted(cum, half))
+    below = cum[j - 1] if j > 0 else 0.0
+    level = j + k0
+    lo = max(level - 0.5, 0.0) * quantum
+    hi = (level + 0.5) * quantum
+    return float(lo + (half - below) / counts[j] * (hi - lo))
+
+
+def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
+    """Effective number of coils from the background's moments, and its standard error.
+
+    For :math:`M = \\sigma \\chi_{2N}`: :math:`E[M^2] = 2N\\sigma^2` and :math:`E[M^4] =
+    4N(N+1)\\sigma^4`, so :math:`r = E[M^4]/E[M^2]^2 = 1 + 1/N` (Constantinides et al. 1997 give
+    the chi densities). Quantised values get Sheppard's corrections for grouping (Sheppard 1898:
+    :math:`\\mu_2 = m_2 - h^2/12`, :math:`\\mu_4 = m_4 - m_2 h^2/2 + 7h^4/240`; from memory).
+    The standard error of ``r`` is the delta-method one from the sample moments.
+    """
+    x2 = bg * bg
+    m2 = float(np.mean(x2))
+    m4 = float(np.mean(x2 * x2))
+    if quantum > 0:
+        h2 = quantum * quantum
+        m4 = m4 - m2 * h2 / 2 + 7 * h2 * h2 / 240
+        m2 = m2 - h2 / 12
+    if not (m2 > 0 and m4 > 0):
+        return float("inf"), float("inf")
+    r = m4 / (m2 * m2)
+    # delta method for r = m4 / m2^2 with the sample covariance of (x^2, x^4)
+    g = np.array([-2.0 * m4 / m2**3, 1.0 / m2**2])
+    cov = np.cov(np.vstack([x2, x2 * x2])) / bg.size
+    se_r = float(np.sqrt(max(g @ cov @ g, 0.0)))
+    if r <= 1.0:
+        return float("inf"), se_r
+    return 1.0 / (r - 1.0), se_r
+
+
+@dataclass
+class _Background:
+    """Background samples of a series (see :func:`_collect_background`)."""
+
+    values: np.ndarray  # (k, n) magnitudes of a strided subsample of the background voxels
+    index: np.ndarray  # (k,) flat voxel index of each row
+    obj_peak: np.ndarray  # (j,) each object voxel's peak
+    n_outside: int  # voxels outside the grown object
+    n_usable: int  # of which with a usable (finite, not zero-filled) sample
+    n_zero: int  # ... zero in every volume (zero filling)
+    n_nonfinite: int  # ... with no finite sample
+    n_samples: int  # usable samples (voxels x volumes)
+    mask_fraction: float  # object voxels / image voxels
+    shape: tuple = ()
+
+
+def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float | None, dilate: int) -> _Background:
+    obj = np.asarray(obj, dtype=bool)
+    bg = ~ndimage.binary_dilation(obj, iterations=dilate) if (dilate > 0 and obj.any()) else ~obj
+    n_out = int(bg.sum())
+    k = max(1, -(-n_out * source.n // SIGMA_SAMPLES))
+    keep = bg & (np.arange(bg.size).reshape(bg.shape) % k == 0)
+    values, index, peaks = [], [], []
+    n_usable = n_zero = n_nonfinite = n_samples = 0
+    flat = np.arange(bg.size).reshape(bg.shape)
+    for z0, z1 in source.slabs(max_bytes):
+        block = source.read(z0, z1)
+        block = np.abs(block) if np.iscomplexobj(block) else block
+        b = block[bg[:, :, z0:z1]]
+        fin = np.isfinite(b)
+        nz = fin & (b != 0)
+        n_nonfinite += int(np.count_nonzero(~fin.any(axis=1)))
+        n_zero += int(np.count_nonzero(fin.any(axis=1) & ~nz.any(axis=1)))
+        n_usable += int(np.count_nonzero(nz.any(axis=1)))
+        n_samples += int(np.count_nonzero(fin & nz.any(axis=1)[:, None]))
+        kk = keep[:, :, z0:z1]
+        values.append(block[kk])
+        index.append(flat[:, :, z0:z1][kk])
+        if source._peak is None:
+            peaks.append(peak_image(block)[obj[:, :, z0:z1]])
+    obj_peak = source._peak[obj] if source._peak is not None else np.concatenate(peaks) if peaks else np.zeros(0)
+    n = source.n
+    return _Background(
+        values=np.concatenate(values, axis=0).reshape(-1, n) if values else np.zeros((0, n)),
+        index=np.concatenate(index) if index else np.zeros(0, np.int64),
+        obj_peak=np.asarray(obj_peak, np.float64), n_outside=n_out, n_usable=n_usable, n_zero=n_zero,
+        n_nonfinite=n_nonfinite, n_samples=n_samples, mask_fraction=float(obj.mean()) if obj.size else 0.0,
+        shape=tuple(obj.shape),
+    )
+
+
+def _background_samples(values: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
+    """Usable background values (flat float64), their storage step, and the row of each value.
+
+    Voxels that are zero (or not finite) in every volume are zero filling, not noise. In continuous data
+    an exact zero elsewhere is zero filling too; in quantised data (integer storage) a zero is the lowest
+    bin of the noise and is kept.
+    """
+    values = np.asarray(values)
+    if values.ndim == 1:
+        values = values[:, None]
+    fin = np.isfinite(values)
+    live = (fin & (values != 0)).any(axis=1)
+    rows = np.broadcast_to(np.arange(values.shape[0])[:, None], values.shape)
+    sel = fin & live[:, None]
+    bg = values[sel].astype(np.float64)
+    row = rows[sel]
+    q = _quantum(bg[bg != 0]) if bg.size else 0.0
+    if q == 0.0:
+        nz = bg != 0
+        bg, row = bg[nz], row[nz]
+    return bg, q, row
+
+
+def _background_problem(b: _Background, need: int, need_samples: int) -> str:
+    """Why the background gives no usable estimate: the actual cause, in words."""
+    if b.n_outside == 0 or b.mask_fraction > 0.85:
+        return (f"no background: the object mask covers {100 * b.mask_fraction:.0f} % of the image (a field of view "
+                "cropped to the object, or at very low SNR an automatic mask that took in the noise itself -- "
+                "then give a mask file with --mask)")
+    if b.n_zero + b.n_nonfinite >= 0.5 * b.n_outside:
+        what = "zero-filled (exact zeros)" if b.n_zero >= b.n_nonfinite else "NaN (no finite value)"
+        return (f"the background is {what} in {b.n_zero + b.n_nonfinite} of its {b.n_outside} voxels, leaving "
+                f"{b.n_usable} noise voxels (at least {need} needed)")
+    return (f"only {b.n_usable} background voxels ({b.n_samples} samples) outside the object (at least {need} "
+            f"voxels and {need_samples} samples needed for {100 * TARGET_PRECISION:.0f} % precision; the field of "
+            "view is close to the object)")
+
+
+def _assess_background(b: _Background, coils: int | None, need_samples: int, need_voxels: int) -> NoiseEstimate:
+    """Sigma from collected background samples, or InputError naming the cause."""
+    if b.n_usable < need_voxels or b.n_samples < need_samples:
+        raise InputError(f"cannot estimate the noise from the background: {_background_problem(b, need_voxels, need_samples)}")
+    bg, quantum, rows = _background_samples(b.values)
+    if bg.size > _MAX_SAMPLES:
+        step = -(-bg.size // _MAX_SAMPLES)
+        bg, rows = bg[::step], rows[::step]
+    if np.count_nonzero(bg < 0) > 0.01 * bg.size:
+        raise InputError("cannot estimate the noise from the background: it holds negative values, so this is not "
+                         "a magnitude image (a real-valued or phase export?)")
+    med_bg = _median(bg, quantum)
+    obj = b.obj_peak[np.isfinite(b.obj_peak)]
+    med_obj = float(np.median(obj)) if obj.size else 0.0
+    if not med_bg * 3.0 <= med_obj:
+        raise InputError(
+            f"cannot estimate the noise from the background: it is not pure noise (background median {med_bg:.4g} "
+            f"vs object median {med_obj:.4g}, expected below a third; unmasked signal, or no object in the image)")
+    notes: list[str] = []
+    details: dict = {}
+    use = 1 if coils is None else _check_coils(coils)
+    sigma, outliers = _clipped_sigma(bg, use, quantum)
+    if outliers > _MAX_OUTLIER_FRACTION:
+        raise InputError(
+            f"cannot estimate the noise from the background: it is not pure noise ({100 * outliers:.0f} % of it is "
+            f"far brighter than noise, expected below {100 * _MAX_OUTLIER_FRACTION:.0f} %; unmasked signal or "
+            "strong artefacts)")
+    kept = bg <= _chi_tail(use) * sigma
+    n_eff, se_r = _moments_coils(bg[kept], quantum)
+    details["background_coils_estimate"] = None if not np.isfinite(n_eff) else round(n_eff, 2)
+    if not np.isfinite(n_eff) or n_eff > 64:
+        raise InputError(
+            "cannot estimate the noise from the background: it does not scatter like noise (its spread is far "
+            f"smaller than magnitude noise has: a constant offset, or a processed / noise-free image; median "
+            f"{med_bg:.4g})")
+    if bg.size >= _MIN_COIL_SAMPLES:
+        # r = 1 + 1/N: with one coil r = 2; claim N >= 2 only when r is clearly below 2
+        r = 1.0 + 1.0 / n_eff
+        n_round = max(1, int(round(n_eff)))
+        if coils is None and n_round >= 2 and r < 2.0 - 3.0 * se_r:
+            use = n_round
+            sigma, outliers = _clipped_sigma(bg, use, quantum)
+            notes.append(f"the background is not Rayleigh: its moments fit a sum of squares over {n_round} coils "
+                         f"(effective {n_eff:.1f}); sigma and the Rician fit use {n_round} coils (override with "
+                         "--coils N)")
+        elif coils is not None and abs(n_eff - coils) > max(0.5, 3.0 * se_r * n_eff * n_eff) and n_round != coils:
+            notes.append(f"the background's moments fit a sum of squares over about {n_eff:.1f} coils, not the "
+                         f"--coils {coils} given; check --coils")
+    rel = median_relative_se(use) / math.sqrt(bg.size)
+    if quantum > 0:
+        details["quantum"] = quantum
+    uneven = _uneven_background(bg, rows, b.index, b.shape, use, quantum)
+    if uneven:
+        notes.append(uneven)
+        details["uneven_background"] = True
+    return NoiseEstimate(sigma=float(sigma), source="background", n_voxels=b.n_usable, relative_precision=rel,
+                         coils=use, details=details, notes=notes)
+
+
+def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
+    """A note when the background noise differs between halves of the image along x or y (else "")."""
+    if bg.size < 4 * _MIN_COIL_SAMPLES or index.size == 0:
+        return ""
+    coords = np.unravel_index(index[rows], shape)
+    worst = (1.0, "")
+    for axis in (0, 1):
+        key = coords[axis]
+        cut = 0.5 * (shape[axis] - 1)
+        a, b2 = bg[key < cut], bg[key > cut]
+        if min(a.size, b2.size) < _MIN_COIL_SAMPLES:
+            continue
+        sa = _clipped_sigma(a, coils, quantum)[0]
+        sb = _clipped_sigma(b2, coils, quantum)[0]
+        ratio = max(sa, sb) / min(sa, sb)
+        se = median_relative_se(coils) * math.sqrt(1.0 / a.size + 1.0 / b2.size)
+        if ratio > max(1.2, 1.0 + 4.0 * se) and ratio > worst[0]:
+            worst = (ratio, f"the background noise differs by a factor {ratio:.2f} between the two halves of the "
+                            f"image along {'xy'[axis]} (parallel imaging or coil sensitivity?): one sigma biases "
+                            "the fit where the noise is higher; consider --sigma local")
+    return worst[1]
+
+
+# ---------------------------------------------------------------------------
+# Noise level from the residuals of a first fit inside the object
+# ---------------------------------------------------------------------------
+
+
+def _gather(source: VolumeSource, index: np.ndarray, max_bytes: float | None) -> np.ndarray:
+    """Samples (k, n) of the voxels with flat indices ``index`` (sorted), read slab by slab."""
+    shape = source.shape
+    z = np.unravel_index(index, shape)[2]
+    out = np.empty((index.size, source.n), dtype=np.float64)
+    for z0, z1 in source.slabs(max_bytes):
+        sel = (z >= z0) & (z < z1)
+        if not sel.any():
+            continue
+        block = source.read(z0, z1)
+        block = np.abs(block) if np.iscomplexobj(block) else block
+        ii, jj, kk = np.unravel_index(index[sel], shape)
+        out[sel] = block[ii, jj, kk - z0]
+    return out
+
+
+def _leverage(J: np.ndarray) -> np.ndarray:
+    """Diagonal of the hat matrix J^T (J J^T)^-1 J per voxel: J (n, P, m) -> (n, m)."""
+    A = np.einsum("npm,nqm->npq", J, J)
+    Ainv = np.linalg.pinv(A)
+    return np.einsum("npm,npq,nqm->nm", J, Ainv, J)
+
+
+def _pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
+    """Robust pooled sigma: the s with median_i F_chi2(dof_i)(rss_i / s^2) = 1/2.
+
+    For voxels whose residuals are Gaussian with sd sigma, ``rss_i / sigma^2`` is chi-squared with
+    ``dof_i`` degrees of freedom (number of residuals used minus the fitted parameters' leverage on
+    them); the median of the probability transforms is then 1/2 at the true sigma. A minority of
+    voxels where the model does not fit (edges, partial volume) moves the median little.
+    """
+    from scipy import stats
+
+    lo, hi = math.log(np.min(rss / dof) + 1e-300) / 2 - 1, math.log(np.max(rss / dof) + 1e-300) / 2 + 1
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        s2 = math.exp(2 * mid)
+        if np.median(stats.chi2.cdf(rss / s2, dof)) > 0.5:
+            lo = mid
+        else:
+            hi = mid
+    return math.exp(0.5 * (lo + hi))
+
+
+def _pooled_relative_se(dof: np.ndarray) -> float:
+    """Relative standard error of :func:`_pooled_sigma` (sample-median asymptotics, median dof)."""
+    from scipy import stats
+
+    k = float(np.median(dof))
+    q = float(stats.chi2.median(k))
+    return 1.0 / (4.0 * float(stats.chi2.pdf(q, k)) * q * math.sqrt(dof.size))
+
+
+def _residuals_above(y, pred, h, ok, sigma, n_params):
+    keep = np.abs(pred) >= FLOOR_MARGIN * np.reshape(np.asarray(sigma, float), (-1, 1))
+    r = y - pred
+    rss = np.sum(np.where(keep, r * r, 0.0), axis=1)
+    dof = np.sum(np.where(keep, 1.0 - h, 0.0), axis=1)
+    good = ok & (keep.sum(axis=1) >= n_params + 2) & np.isfinite(rss) & (dof > 0.5)
+    return np.where(good, rss, 0.0), np.where(good, dof, 0.0)
+
+
+def residual_estimate(
+    source: VolumeSource,
+    model,
+    *,
+    mask: np.ndarray,
+    ctx_maps: dict | None = None,
+    max_bytes: float | None = None,
+    max_voxels: int = RESIDUAL_VOXELS,
+) -> NoiseEstimate:
+    """Noise sigma from the scatter of the residuals of a plain fit inside the object.
+
+    Parameters
+    ----------
+    source : VolumeSource
+    model : SeparableModel
+        The command's own model (fitted without a noise floor).
+    mask : (X, Y, Z) ndarray of bool
+        Voxels that may be used (the fit mask).
+    ctx_maps : dict, optional
+        Per-voxel model inputs as (X, Y, Z) maps (e.g. B1).
+    max_bytes : float, optional
+        Memory budget for reading.
+    max_voxels : int
+        Voxels fitted (an even stride through the mask).
+
+    Returns
+    -------
+    NoiseEstimate
+        ``source="residuals"``.
+
+    Raises
+    ------
+    InputError
+        Too few voxels well above the noise floor, or too few samples per voxel for the model.
+
+    Notes
+    -----
+    For a model that describes the data, the residuals of a least-squares fit scatter with the noise sd:
+    :math:`E[\\sum_j r_j^2] = \\sigma^2 \\sum_j (1 - h_{jj})` with :math:`h` the hat matrix of the
+    (linearised) fit. Only samples whose fitted value is at least :data:`FLOOR_MARGIN` sigma count,
+    where the magnitude of a Rician sample has nearly Gaussian noise of sd sigma (Gudbjartsson & Patz
+    1995); sigma and that selection are iterated to agreement. Voxels are pooled by the median of
+    their chi-squared probabilities (:func:`_pooled_sigma`). A model that does not fit (e.g. a
+    multi-exponential decay fitted as one exponential) inflates the estimate.
+    """
+    mask = np.asarray(mask, bool)
+    n_params = len(model.param_names)
+    if model.n_samples < n_params + 2:
+        raise InputError(f"cannot estimate the noise from fit residuals: {model.n_samples} samples per voxel leave "
+                         f"too few degrees of freedom for the {n_params} fitted parameters")
+    idx = np.flatnonzero(mask.reshape(-1))
+    if idx.size > max_voxels:
+        idx = idx[:: -(-idx.size // max_voxels)]
+    if idx.size == 0:
+        raise InputError("cannot estimate the noise from fit residuals: the mask is empty")
+    y = _gather(source, idx, max_bytes)
+    ok = np.all(np.isfinite(y), axis=1)
+    ctx = None
+    if ctx_maps:
+        ctx = {k: np.asarray(v, float).reshape(-1)[idx] for k, v in ctx_maps.items()}
+        for v in ctx.values():
+            ok &= np.isfinite(v)
+        ctx = {k: v[ok] for k, v in ctx.items()}
+    y = y[ok]
+    if y.shape[0] < MIN_RESIDUAL_VOXELS:
+        raise InputError(f"cannot estimate the noise from fit residuals: only {y.shape[0]} usable voxels")
+    from .fitting.solver import fit_chunk
+
+    fit = fit_chunk(model, y, ctx=ctx)
+    pred, J = model.signal_jacobian(fit.params, ctx)
+    h = _leverage(J)
+    good = fit.status == 0
+    # start from every sample (an underestimate where the decay reaches the floor), then iterate
+    r = y - pred
+    rss0 = np.sum(r * r, axis=1)
+    dof0 = np.sum(1.0 - h, axis=1)
+    use = good & (dof0 > 0.5)
+    if use.sum() < MIN_RESIDUAL_VOXELS:
+        raise InputError("cannot estimate the noise from fit residuals: the first fit failed in most voxels")
+    sigma = _pooled_sigma(rss0[use], dof0[use])
+    rss = dof = np.zeros(0)
+    for _ in range(20):
+        rss, dof = _residuals_above(y, pred, h, good, sigma, n_params)
+        use = dof > 0
+        if use.sum() < MIN_RESIDUAL_VOXELS:
+            raise InputError(
+                f"cannot estimate the noise from fit residuals: only {int(use.sum())} of {y.shape[0]} voxels have "
+                f"enough samples well above the noise floor (fitted value >= {FLOOR_MARGIN:g} sigma)")
+        new = _pooled_sigma(rss[use], dof[use])
+        if abs(new - sigma) <= 1e-4 * sigma:
+            sigma = new
+            break
+        sigma = new
+    rss, dof = _residuals_above(y, pred, h, good, sigma, n_params)
+    use = dof > 0
+    rel = _pooled_relative_se(dof[use])
+    return NoiseEstimate(sigma=float(sigma), source="residuals", n_voxels=int(use.sum()), relative_precision=rel,
+                         details={"residual_dof_median": float(np.median(dof[use]))})
+
+
+# ---------------------------------------------------------------------------
+# The chain
+# ---------------------------------------------------------------------------
+
+
+def _agree(a: NoiseEstimate, b: NoiseEstimate) -> tuple[bool, float]:
+    """Do two estimates agree within 3 combined standard errors (+ 5 %)? Returns (agree, ratio a/b)."""
+    ratio = a.value / b.value
+    se = math.hypot(a.relative_precision or 0.0, b.relative_precision or 0.0)
+    return abs(math.log(ratio)) <= 3.0 * se + 0.05, ratio
+
+
+def estimate_noise(
+    source: VolumeSource,
+    *,
+    model=None,
+    mask: np.ndarray | None = None,
+    ctx_maps: dict | None = None,
+    coils: int | None = None,
+    max_bytes: float | None = None,
+    local: bool = False,
+    n_jobs: int | None = None,
+) -> NoiseEstimate:
+    """The noise level of a magnitude series from the data itself (``--sigma auto`` / ``--sigma local``).
+
+    Parameters
+    ----------
+    source : VolumeSource
+        The series (a :class:`~qmap.io.series.Series` or an :class:`ArraySource`).
+    model : SeparableModel, optional
+        The command's model; enables the residual source. Without it only the background is used.
+    mask : (X, Y, Z) ndarray of bool, optional
+        Voxels the residual source may use (default: the automatic object mask).
+    ctx_maps : dict, optional
+        Per-voxel model inputs (X, Y, Z) (e.g. B1).
+    coils : int, optional
+        Sum-of-squares coils; None lets the background's moments decide (default one).
+    max_bytes : float, optional
+        Memory budget for reading the series.
+    local : bool
+        Return a smooth noise map (:func:`local_noise_map`) instead of one value.
+    n_jobs : int, optional
+        Workers for the fit of the local map.
+
+    Returns
+    -------
+    NoiseEstimate
+
+    Raises
+    ------
+    InputError
+        Neither source gives a trustworthy value; the message says why for each and what to do.
+
+    Notes
+    -----
+    In order, the first source whose relative standard error is at most :data:`TARGET_PRECISION`:
+
+    1. the background (:func:`background_estimate`): Rayleigh / chi statistics of the voxels outside
+       the grown object, zero filling excluded;
+    2. the residuals of a plain fit of the model in voxels well above the noise floor
+       (:func:`residual_estimate`).
+
+    When both are available they are compared and a disagreement beyond their uncertainty is reported
+    (a model that does not fit the data, or noise that is not uniform). When neither reaches the target,
+    the more precise one is used if it is within twice the target, with a note.
+    """
+    obj = object_mask(source, max_bytes)
+    fit_mask = obj if mask is None else np.asarray(mask, bool)
+    errors = []
+    bg = res = None
+    try:
+        bg = background_estimate(source, coils=coils, obj=obj, max_bytes=max_bytes)
+    except InputError as exc:
+        errors.append(str(exc))
+    if model is not None:
+        try:
+            res = residual_estimate(source, model, mask=fit_mask, ctx_maps=ctx_maps, max_bytes=max_bytes)
+        except InputError as exc:
+            errors.append(str(exc))
+    candidates = [e for e in (bg, res) if e is not None]
+    good = [e for e in candidates if (e.relative_precision or 0.0) <= TARGET_PRECISION]
+    if good:
+        chosen = good[0]
+    else:
+        ok = [e for e in candidates if (e.relative_precision or 0.0) <= 2 * TARGET_PRECISION]
+        if not ok:
+            for e in candidates:
+                errors.append(f"the {e.source} estimate {e.value:.4g} is too imprecise "
+                              f"({100 * (e.relative_precision or 0):.0f} % relative standard error)")
+            raise InputError(_failure_message(errors, model is not None, obj))
+        chosen = min(ok, key=lambda e: e.relative_precision or 0.0)
+        chosen.notes.append(f"the noise level is known to only {100 * (chosen.relative_precision or 0):.0f} % "
+                            f"(from the {chosen.source}); give --sigma VALUE if you know it better")
+    if bg is not None and res is not None:
+        chosen.details["background_sigma"] = bg.value
+        chosen.details["residual_sigma"] = res.value
+        agree, ratio = _agree(bg, res)
+        if not agree:
+            chosen.notes.append(
+                f"the background ({bg.value:.4g}) and the fit residuals ({res.value:.4g}) disagree on the noise "
+                f"level (ratio {ratio:.2f}, beyond their uncertainty): the model may not describe the data (e.g. "
+                "a multi-exponential decay), the noise may vary over the image (--sigma local), or the background "
+                "may hold artefacts; using the " + chosen.source)
+    if chosen.coils is None:
+        chosen.coils = 1 if coils is None else coils
+    if local:
+        if model is None:
+            raise InputError("--sigma local needs a fitted model (a command that fits a signal model)")
+        return local_noise_map(source, model, mask=fit_mask, obj=obj, ctx_maps=ctx_maps, max_bytes=max_bytes,
+                               first=chosen, n_jobs=n_jobs)
+    return chosen
+
+
+def _failure_message(errors: list, have_model: bool, obj: np.ndarray) -> str:
+    fixes = ["give the noise level with --sigma VALUE (signal units)"]
+    if any("mask covers" in e for e in errors):
+        fixes.insert(0, "give a mask file with --mask")
+    if any("not a magnitude image" in e for e in errors):
+        fixes = ["check that the input is a magnitude image (not a real-valued or phase export)"] + fixes
+    if have_model:
+        fixes.append("or fit without the noise floor (--noise-floor none)")
+    if not obj.any():
+        errors.insert(0, "no object was found in the image")
+    return "cannot estimate the noise level: " + "; ".join(errors) + ". Fix: " + ", ".join(fixes)
+
+
+# ---------------------------------------------------------------------------
+# A smooth noise map (``--sigma local``)
+# ---------------------------------------------------------------------------
+
+#: relative standard error aimed at by the local map at each voxel (sets the smoothing width)
+LOCAL_PRECISION = 0.05
+#: smoothing widths tried (Gaussian sd in voxels), smallest first
+_LOCAL_WIDTHS = (1.0, 1.5, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0)
+
+
+def local_noise_map(
+    source: VolumeSource,
+    model,
+    *,
+    mask: np.ndarray,
+    obj: np.ndarray,
+    first: NoiseEstimate,
+    ctx_maps: dict | None = None,
+    max_bytes: float | None = None,
+    n_jobs: int | None = None,
+) -> NoiseEstimate:
+    """A smooth map of the noise sd for noise that varies over the field of view.
+
+    Every voxel of ``mask`` is fitted without a noise floor; its residual variance over the samples
+    well above the floor (``rss / dof``, see :func:`residual_estimate`) and, outside the grown object,
+    each background voxel's mean square over the volumes (``E[M^2] = 2 N sigma^2`` for N coils) are
+    averaged with a Gaussian kernel, weighting each voxel by its degrees of freedom (normalised
+    convolution). The kernel width is the smallest that gives the median voxel
+    ``(sum g w)^2 / sum g^2 w >= 1 / (2 p^2)`` effective degrees of freedom (relative standard error
+    ``p`` = :data:`LOCAL_PRECISION` of sigma). Voxels whose residual variance is far above the first
+    (global) estimate (beyond what a 3x change of the noise and chance explain) are left out as misfits.
+
+    Returns
+    -------
+    NoiseEstimate
+        ``sigma`` an (X, Y, Z) map, ``source="local"``, ``relative_precision`` the median over the
+        mask of each voxel's.
+    """
+    from scipy import stats
+
+    from .engine import fit_voxels
+
+    shape = source.shape
+    g = first.value
+    coils = first.coils or 1
+    idx = np.flatnonzero(np.asarray(mask, bool).reshape(-1))
+    y = _gather(source, idx, max_bytes)
+    ok = np.all(np.isfinite(y), axis=1)
+    ctx = None
+    if ctx_maps:
+        ctx = {k: np.asarray(v, float).reshape(-1)[idx] for k, v in ctx_maps.items()}
+        for v in ctx.values():
+            ok &= np.isfinite(v)
+    idx, y = idx[ok], y[ok]
+    if ctx:
+        ctx = {k: v[ok] for k, v in ctx.items()}
+    n_params = len(model.param_names)
+    rss = np.zeros(idx.size)
+    dof = np.zeros(idx.size)
+
+    def on_chunk(a: int, b: int, fit) -> None:
+        c = None if not ctx else {k: v[a:b] for k, v in ctx.items()}
+        pred, J = model.signal_jacobian(fit.params, c)
+        rss[a:b], dof[a:b] = _residuals_above(y[a:b], pred, _leverage(J), fit.status == 0, g, n_params)
+
+    if idx.size:
+        fit_voxels(model, y, ctx=ctx, n_jobs=n_jobs, on_chunk=on_chunk, label="noise map")
+    use = dof > 0
+    s2 = np.zeros(idx.size)
+    s2[use] = rss[use] / dof[use]
+    # misfits: far above what a 3x higher noise would give by chance
+    limit = 9.0 * g * g * stats.chi2.isf(1e-4, np.maximum(dof, 1.0)) / np.maximum(dof, 1.0)
+    use &= s2 <= limit
+    w = np.zeros(int(np.prod(shape)))
+    v = np.zeros_like(w)
+    w[idx[use]] = dof[use]
+    v[idx[use]] = rss[use]
+    # background voxels: sum of M^2 over the volumes, 2 N n degrees of freedom
+    b = _collect_background(source, obj, max_bytes, 3)
+    if b.values.size:
+        vals = b.values.astype(np.float64)
+        fin = np.isfinite(vals) & (vals != 0)
+        rows = fin.sum(axis=1) > 0
+        m2 = np.where(fin, vals * vals, 0.0)
+        cnt = fin.sum(axis=1)
+        w_bg = 2.0 * coils * cnt
+        w[b.index[rows]] = w_bg[rows]
+        v[b.index[rows]] = m2.sum(axis=1)[rows]  # E = 2 N sigma^2 per sample: sum / (2 N n) estimates sigma^2
+    w = w.reshape(shape)
+    v = v.reshape(shape)
+    need = 1.0 / (2.0 * LOCAL_PRECISION**2)
+    inside = np.asarray(mask, bool)
+    width = _LOCAL_WIDTHS[-1]
+    for width in _LOCAL_WIDTHS:
+        sw = ndimage.gaussian_filter(w, width, mode="nearest", truncate=3.0)
+        sw2 = ndimage.gaussian_filter(w, width / math.sqrt(2.0), mode="nearest", truncate=3.0)
+        # (sum g w)^2 / sum g^2 w with g the normalised Gaussian: g^2 is a Gaussian of sd width/sqrt(2),
+        # scaled by 1 / (2 sqrt(pi) width)^d
+        norm = (2.0 * math.sqrt(math.pi) * width) ** 3
+        with np.errstate(divide="ignore", invalid="ignore"):
+            eff = sw * sw / (sw2 / norm)
+        if not inside.any() or np.median(eff[inside]) >= need:
+            break
+    sv = ndimage.gaussian_filter(v, width, mode="nearest", truncate=3.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sig2 = sv / sw
+        eff = sw * sw / (sw2 / norm)
+    weak = ~(np.isfinite(sig2) & (sig2 > 0) & (eff >= 0.25 * need))
+    sig = np.sqrt(np.where(weak, g * g, sig2))
+    prec = 1.0 / np.sqrt(2.0 * np.maximum(eff, 1e-12))
+    rel = float(np.median(prec[inside])) if inside.any() else None
+    notes = list(first.notes)
+    notes.append(f"local noise map: smoothed over a Gaussian of sd {width:g} voxels; sigma "
+                 f"{np.percentile(sig[inside], 5):.4g}-{np.percentile(sig[inside], 95):.4g} (5-95 % over the mask)"
+                 if inside.any() else "local noise map: empty mask")
+    details = dict(first.details, smoothing_sd_voxels=width, first_source=first.source, first_sigma=g)
+    return NoiseEstimate(sigma=sig.astype(np.float32), source="local", n_voxels=int(use.sum() + b.n_usable),
+                         relative_precision=rel, coils=first.coils, details=details, notes=notes)

@@ -6,6 +6,7 @@ series key, which model, which per-voxel inputs) lives in :mod:`qmap.workflows`.
 
 from __future__ import annotations
 
+import dataclasses
 import re
 import sys
 import time
@@ -25,7 +26,7 @@ from .io.nifti import check_same_grid, image_data, load_image
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
 from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
-from .noise_level import background_sigma, object_mask
+from .noise_level import object_mask
 from .record import run_record
 
 __all__ = ["QMRI_SUFFIXES", "RESIDUAL_FALLBACK", "CommonOptions", "PreparedRun", "RunReport", "Slab",
@@ -213,20 +214,75 @@ def resolve_mask(spec, series: Series, max_bytes: float | None = None) -> tuple[
     return mask, f"file {Path(spec).absolute()}"
 
 
-def resolve_sigma(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None) -> tuple[object, dict]:
-    """Noise sd from ``"auto"`` (image background), a number, or a NIfTI noise map."""
+def resolve_sigma(
+    spec,
+    series,
+    *,
+    coils: int | None = 1,
+    max_bytes: float | None = None,
+    model=None,
+    mask: np.ndarray | None = None,
+    ctx_maps: dict | None = None,
+    n_jobs: int | None = None,
+) -> tuple[object, dict]:
+    """The noise sd of a series: ``"auto"``, ``"local"``, a number, or a NIfTI noise map.
+
+    The one entry point every command uses for its noise level.
+
+    Parameters
+    ----------
+    spec : str, float or None
+        ``"auto"`` (None): the chain of :func:`qmap.noise_level.estimate_noise` (background, then the
+        residuals of a plain fit of ``model``); ``"local"``: a smooth noise map from the same sources;
+        a positive number (signal units); or the path of a NIfTI noise map.
+    series : Series or qmap.noise_level.ArraySource
+    coils : int or None
+        Sum-of-squares coils; None lets the background's moments decide.
+    max_bytes : float, optional
+        Memory budget for reading.
+    model : SeparableModel, optional
+        The command's model (enables the residual source and ``local``).
+    mask : (X, Y, Z) ndarray of bool, optional
+        The fit mask (voxels the residual source may use).
+    ctx_maps : dict, optional
+        Per-voxel model inputs (e.g. B1).
+    n_jobs : int, optional
+        Workers for the local map's fit.
+
+    Returns
+    -------
+    sigma : float or (X, Y, Z) ndarray
+    info : dict
+        Provenance entries: ``sigma_mode`` (auto / local / value / map), ``sigma`` (the value, or the
+        median of the map), ``source``, ``n_voxels``, ``relative_precision``, ``sigma_source`` (in words),
+        ``coils``, and ``notes`` (list of str, for the run summary; to be removed before recording).
+    """
+    from .noise_level import estimate_noise
+
     spec = "auto" if spec is None else str(spec)
-    if spec == "auto":
-        sigma, nvox = background_sigma(series, coils=coils, max_bytes=max_bytes)
-        return float(sigma), {"source": "auto (image background)", "value": float(sigma), "background_voxels": int(nvox)}
+    if spec in ("auto", "local"):
+        est = estimate_noise(series, model=model, mask=mask, ctx_maps=ctx_maps, coils=coils, max_bytes=max_bytes,
+                             local=spec == "local", n_jobs=n_jobs)
+        info = est.provenance(spec)
+        words = {"background": "image background", "residuals": "residuals of a first fit inside the object",
+                 "local": "local noise map"}[est.source]
+        info.update(value=est.value, sigma_source=f"{spec} ({words})", coils=est.coils, notes=list(est.notes))
+        prec = "" if est.relative_precision is None else f" +/- {100 * est.relative_precision:.1f} %"
+        head = (f"noise sigma {est.value:.4g}{prec} from the {words} ({est.n_voxels} voxels)" if spec == "auto" else
+                f"noise sigma: local map, median {est.value:.4g}{prec} ({est.n_voxels} voxels)")
+        info["notes"].insert(0, head)
+        sigma = est.sigma if spec == "local" else float(est.sigma)
+        return sigma, info
     try:
         value = float(spec)
     except ValueError:
         value = None
     if value is not None:
         if not np.isfinite(value) or value <= 0:
-            raise InputError(f"--sigma {spec}: must be a positive number in signal units, or auto, or a NIfTI noise map")
-        return value, {"source": "command line", "value": value}
+            raise InputError(f"--sigma {spec}: must be a positive number in signal units, or auto, local, "
+                             "or a NIfTI noise map")
+        return value, {"sigma_mode": "value", "sigma": value, "source": "command line", "value": value,
+                       "sigma_source": "command line", "n_voxels": None, "relative_precision": None, "notes": []}
     img = load_image(spec, what="--sigma")
     check_same_grid(series.shape, series.affine, img.shape, img.affine, ref_name="the series",
                     name=f"--sigma {spec}")
@@ -237,8 +293,10 @@ def resolve_sigma(spec, series: Series, *, coils: int = 1, max_bytes: float | No
     if not usable.any():
         raise InputError(f"--sigma {spec}: holds no positive value; a noise map holds the noise sd (> 0) of each voxel "
                          f"in signal units (voxels where it is not positive get status 2)")
-    return data.astype(float), {"source": f"noise map {Path(spec).absolute()}", "value": float(np.median(data[usable])),
-                                "path": str(Path(spec).absolute())}
+    med = float(np.median(data[usable]))
+    return data.astype(float), {"sigma_mode": "map", "sigma": med, "source": "noise map", "value": med,
+                                "sigma_source": f"noise map {Path(spec).absolute()}", "n_voxels": int(usable.sum()),
+                                "relative_precision": None, "path": str(Path(spec).absolute()), "notes": []}
 
 
 #: ``--sigma`` values that ask qmap to estimate the noise level (a failure falls back, see sigma_for_stderr)
@@ -253,23 +311,24 @@ RESIDUAL_FALLBACK = ("the standard errors use the per-voxel residual variance in
 
 def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None,
                      notes: list | None = None, magnitude: bool = True,
-                     fallback: tuple[str, str] = RESIDUAL_FALLBACK, warn_fallback: bool = True) -> tuple[object, dict]:
+                     fallback: tuple[str, str] = RESIDUAL_FALLBACK, warn_fallback: bool = True, model=None,
+                     mask: np.ndarray | None = None, ctx_maps: dict | None = None,
+                     n_jobs: int | None = None) -> tuple[object, dict]:
     """The noise level for the standard errors of a command that does not model the noise floor.
 
-    Resolved as ``--sigma`` (:func:`resolve_sigma`). When it is to be
-    estimated (``auto``, ``local``) and cannot be, the command still runs:
-    the standard errors fall back to the per-voxel residual variance, with a
-    warning (and a note in ``notes``); ``fallback`` is the (warning, note)
-    pair saying what happens instead. A given value or file that is wrong is
-    an error as usual.
+    Resolved as ``--sigma`` (:func:`resolve_sigma`, with ``model`` / ``mask`` / ``ctx_maps`` for its
+    residual source). When it is to be estimated (``auto``, ``local``) and cannot be, the command
+    still runs: the standard errors fall back to the per-voxel residual variance, with a warning (and
+    a note in ``notes``); ``fallback`` is the (warning, note) pair saying what happens instead. A given
+    value or file that is wrong is an error as usual.
 
     Returns
     -------
     sigma : float, (X, Y, Z) ndarray or None
         None when the fallback applies.
     info : dict
-        ``sigma``, ``sigma_source`` and, for the fallback, ``stderr_fallback``
-        (the reason), for the provenance's ``noise`` entry.
+        As :func:`resolve_sigma` (its ``notes`` go to ``notes``) and, for the fallback,
+        ``stderr_fallback`` (the reason), for the provenance's ``noise`` entry.
     """
     spec = "auto" if spec is None else spec
     if not magnitude and str(spec) in ESTIMATED_SIGMA:
@@ -283,7 +342,8 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
         return None, {"sigma": None, "stderr_fallback": reason}
     fallback_text, fallback_note = fallback
     try:
-        sigma, sinfo = resolve_sigma(spec, series, coils=coils, max_bytes=max_bytes)
+        sigma, sinfo = resolve_sigma(spec, series, coils=coils, max_bytes=max_bytes, model=model, mask=mask,
+                                     ctx_maps=ctx_maps, n_jobs=n_jobs)
     except InputError as exc:
         if str(spec) not in ESTIMATED_SIGMA:
             raise
@@ -293,13 +353,10 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
         if notes is not None:
             notes.append(fallback_note)
         return None, {"sigma": None, "stderr_fallback": reason}
-    info = {"sigma": sinfo["value"], "sigma_source": sinfo["source"]}
     if notes is not None:
-        notes.append(f"standard errors from the noise sd {sinfo['value']:.4g} ({sinfo['source']})")
-    for k, v in sinfo.items():
-        if k not in ("value", "source"):
-            info[k] = v
-    return sigma, info
+        notes.extend(sinfo.pop("notes", []))
+        notes.append(f"standard errors from the noise sd {sinfo['value']:.4g} ({sinfo['sigma_source']})")
+    return sigma, sinfo
 
 
 def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | None = None) -> None:
@@ -427,6 +484,8 @@ class PreparedRun:
     inputs: list
     notes: list
     t0: float
+    extra_outputs: list = field(default_factory=list)  # e.g. the --sigma local noise map
+    noise: NoiseFloor | None = None  # the noise floor as resolved (coils from the background)
 
     @property
     def slabs(self) -> list[tuple[int, int]]:
@@ -477,7 +536,7 @@ class PreparedRun:
         """Write the maps and the provenance (see :func:`write_run`)."""
         return write_run(self.series, maps, common=self.common, prefix=self.prefix, noise_info=self.noise_info,
                          options=options, model_info=model_info, extra_inputs=self.inputs, notes=self.notes,
-                         t0=self.t0, mask_desc=self.mask_desc)
+                         t0=self.t0, mask_desc=self.mask_desc, extra_outputs=self.extra_outputs)
 
 
 def _cut(volumes: dict | None, slab: Slab) -> dict | None:
@@ -499,6 +558,9 @@ def prepare_run(
     magnitude: bool = True,
     t0: float | None = None,
     method: str | None = None,
+    model=None,
+    ctx_maps: dict | None = None,
+    coils_auto: bool = False,
 ) -> PreparedRun:
     """Check everything a fit needs before any work: outputs free, signal present, mask, noise level.
 
@@ -529,6 +591,12 @@ def prepare_run(
         Start time (default: now).
     method : str, optional
         The command's label for the default output prefix (see :func:`default_prefix`).
+    model : SeparableModel, optional
+        The command's model: the residual source of the noise level and ``--sigma local`` fit it.
+    ctx_maps : dict, optional
+        Per-voxel model inputs (X, Y, Z) for that fit (e.g. B1).
+    coils_auto : bool
+        The number of coils was not given: the background's moments may set it (``run.noise``).
 
     Returns
     -------
@@ -547,16 +615,32 @@ def prepare_run(
         file_inputs.append(common.mask)
     sigma: Any = None
     noise_info: dict | None = None
+    extra_outputs: list = []
+
+    def record(sinfo: dict, sigma) -> dict:
+        """Move the notes and input paths out of ``sinfo``; write a local noise map as an output."""
+        notes.extend(sinfo.pop("notes", []))
+        if "path" in sinfo:
+            file_inputs.append(sinfo.pop("path"))
+        sinfo.pop("value", None)
+        if sinfo.get("sigma_mode") == "local":
+            name = f"{prefix}_desc-noise_sigmamap.nii.gz"
+            sinfo["sigma_source"] = f"noise map {(common.out_dir / name).absolute()}"
+            extra_outputs.append(OutputFile(name, np.asarray(sigma, np.float32), "sigma", "quality", "a.u.",
+                                            "local noise standard deviation per real channel (--sigma local)"))
+        return sinfo
+
     if noise is not None:
         noise_info = {"mode": noise.mode, "sigma": None}
         if noise.needs_sigma:
-            sigma, sinfo = resolve_sigma(sigma_spec, series, coils=noise.coils, max_bytes=budget)
-            noise_info.update(sigma=sinfo["value"], sigma_source=sinfo["source"])
-            if "path" in sinfo:
-                file_inputs.append(sinfo["path"])
-            if "background_voxels" in sinfo:
-                noise_info["background_voxels"] = sinfo["background_voxels"]
-                notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels")
+            sigma, sinfo = resolve_sigma(sigma_spec, series, coils=None if coils_auto else noise.coils,
+                                         max_bytes=budget, model=model, mask=mask, ctx_maps=ctx_maps,
+                                         n_jobs=common.n_jobs)
+            sinfo = record(sinfo, sigma)
+            found = sinfo.pop("coils", None)
+            if noise.mode == "rician" and found and found != noise.coils:
+                noise = dataclasses.replace(noise, coils=int(found))
+            noise_info.update(sinfo)
         if noise.mode == "truncate":
             noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
         if noise.mode == "rician":
@@ -565,13 +649,13 @@ def prepare_run(
         sigma_for_se = common.stderr == "noise"
     if sigma is None and sigma_for_se:  # no noise-floor model: the noise level is for the SEs only
         sigma, sinfo = sigma_for_stderr(sigma_spec, series, max_bytes=budget, notes=notes, magnitude=magnitude,
-                                        fallback=fallback, warn_fallback=warn_fallback)
-        noise_info = dict(noise_info or {"mode": "none"}, **sinfo)
-        if "path" in sinfo:
-            file_inputs.append(sinfo["path"])
+                                        fallback=fallback, warn_fallback=warn_fallback, model=model, mask=mask,
+                                        ctx_maps=ctx_maps, n_jobs=common.n_jobs)
+        noise_info = dict(noise_info or {"mode": "none"}, **record(sinfo, sigma))
     return PreparedRun(series=series, common=common, prefix=prefix, mask=mask, mask_desc=mask_desc,
                        sigma=None if sigma is None else sigma if isinstance(sigma, np.ndarray) else float(sigma),
-                       noise_info=noise_info, inputs=file_inputs, notes=notes, t0=t0)
+                       noise_info=noise_info, inputs=file_inputs, notes=notes, t0=t0, extra_outputs=extra_outputs,
+                       noise=noise)
 
 
 def run_fit(
@@ -589,14 +673,17 @@ def run_fit(
     magnitude: bool = True,
     t0: float | None = None,
     method: str | None = None,
+    coils_auto: bool = False,
 ) -> RunReport:
     """:func:`prepare_run`, :meth:`PreparedRun.fit` and :meth:`PreparedRun.write` in one call.
 
     ``method`` is the command's label for the default output prefix (see :func:`default_prefix`).
+    ``coils_auto``: the number of coils was not given; the background's moments may set it.
     """
     run = prepare_run(series, common, noise=noise, sigma_spec=sigma_spec, extra_inputs=extra_inputs, notes=notes,
-                      magnitude=magnitude, t0=t0, method=method)
-    maps = run.fit(model, noise=noise, ctx_maps=ctx_maps)
+                      magnitude=magnitude, t0=t0, method=method, model=model, ctx_maps=ctx_maps,
+                      coils_auto=coils_auto)
+    maps = run.fit(model, noise=run.noise if run.noise is not None else noise, ctx_maps=ctx_maps)
     return run.write(maps, options=options,
                      model_info={"parameters": list(model.param_names), **(model_info or {"name": model.name})})
 

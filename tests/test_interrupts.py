@@ -161,8 +161,8 @@ def test_interrupt_between_backup_and_rename(k, tmp_path, inputs, previous, monk
 
 def test_interrupt_while_estimating_sigma(tmp_path, inputs, monkeypatch, capsys):
     """The default noise floor (rician) estimates sigma from the background first."""
-    trap = Interrupt(noise_mod.sigma_from_samples, 1)
-    monkeypatch.setattr(noise_mod, "sigma_from_samples", trap)
+    trap = Interrupt(noise_mod.background_estimate, 1)
+    monkeypatch.setattr(noise_mod, "background_estimate", trap)
     rc = main(["t2star", *map(str, inputs), "-o", str(tmp_path / "out"), "-q"])
     monkeypatch.undo()
     assert trap.fired and rc == 130

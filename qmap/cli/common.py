@@ -49,8 +49,9 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
                         "slabs (fastest from uncompressed .nii); results are identical")
 
 
-SIGMA_HELP = ("noise sd in signal units: auto (default) estimates it from the data (image background, else inside "
-              "the object); local estimates a smooth noise map; a value; or a NIfTI map of per-voxel sigma")
+SIGMA_HELP = ("noise sd in signal units: auto (default) estimates it from the data (the image background, else the "
+              "residuals of a first fit in voxels well above the noise); local: a smooth noise map for noise that "
+              "varies over the image (written as _desc-noise_sigmamap); a value; or a NIfTI map of per-voxel sigma")
 STDERR_HELP = ("convention of the standard-error maps: noise (default) = from the noise sd, sigma^2 (J^T J)^-1, so "
                "that +/-1.96 SE covers the truth ~95%% of the time; residual = from each voxel's residual variance "
                "RSS/(m-P) (t-distributed with few samples). Without a usable noise level: residual, with a warning")
@@ -112,8 +113,9 @@ def add_noise(p: argparse.ArgumentParser) -> None:
                         "none: plain exponential (biased where the decay reaches the floor)")
     g.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|FILE", help=SIGMA_HELP)
     add_stderr(g)
-    g.add_argument("--coils", type=_positive_int, default=1, metavar="N",
-                   help="rician: the magnitude is a sum of squares over N coils (noncentral chi); default 1")
+    g.add_argument("--coils", type=_positive_int, default=None, metavar="N",
+                   help="rician: the magnitude is a sum of squares over N coils (noncentral chi); default 1, or "
+                        "what the background's moments show")
 
 
 def _positive_int(text: str) -> int:

@@ -15,7 +15,7 @@ from ..record import recorded
 __all__ = ["load_echoes", "noise_options", "run_t2star"]
 
 
-def noise_options(noise_floor: str, sigma, coils: int, drop_first: bool = False) -> dict:
+def noise_options(noise_floor: str, sigma, coils: int | None, drop_first: bool = False) -> dict:
     return {"noise_floor": noise_floor, "sigma": None if sigma is None else str(sigma), "coils": coils,
             "drop_first_echo": drop_first}
 
@@ -41,7 +41,7 @@ def run_t2star(
     te=None,
     noise_floor: str = DEFAULT_MODE,
     sigma="auto",
-    coils: int = 1,
+    coils: int | None = None,
     drop_first: bool = False,
 ) -> RunReport:
     """Fit T2*, R2* and M0 maps (with standard errors, quality and status) to a multi-echo GRE series.
@@ -55,10 +55,12 @@ def run_t2star(
     te : (m,) array_like, optional
         Echo times in seconds; default from the BIDS sidecars (``EchoTime``).
     noise_floor : {"rician", "offset", "truncate", "none"}
-    sigma : "auto", float, or path
-        Noise sd: from the image background, a value in signal units, or a NIfTI noise map.
-    coils : int
-        Sum-of-squares coils for the noncentral-chi expectation (``rician``).
+    sigma : "auto", "local", float, or path
+        Noise sd: from the data (image background, else the residuals of a first fit), a smooth
+        local map, a value in signal units, or a NIfTI noise map (see :func:`qmap.pipeline.resolve_sigma`).
+    coils : int, optional
+        Sum-of-squares coils for the noncentral-chi expectation (``rician``); None: one, unless the
+        background's moments show more.
     drop_first : bool
         Ignore the first echo.
     """
@@ -66,8 +68,9 @@ def run_t2star(
     series, notes = load_echoes(inputs, te=te, drop_first=drop_first, common=common)
     model = MonoExponential(series.acquisition["EchoTime"], param="T2star")
     return run_fit(
-        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
+        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils or 1), sigma_spec=sigma,
         options=noise_options(noise_floor, sigma, coils, drop_first),
         model_info={"name": "monoexp", "equation": "S = M0 exp(-TE/T2star)"}, notes=notes, t0=t0,
         method="megre",
+        coils_auto=coils is None,
     )

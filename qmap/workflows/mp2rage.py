@@ -488,10 +488,7 @@ def run_t1_mp2rage(
             noise_info["stderr"] = f"none written: {sinfo['stderr_fallback']}"
         if "path" in sinfo:
             extra.append(Path(sinfo["path"]))
-        if "background_voxels" in sinfo:
-            noise_info["background_voxels"] = sinfo["background_voxels"]
-            notes.append(f"noise sigma {sinfo['value']:.4g} from {sinfo['background_voxels']} background voxels of "
-                         f"the inversion images")
+        notes.extend(f"{n} (inversion images)" for n in sinfo.get("notes", []))
     b1_map: np.ndarray | None = None
     b1_se: np.ndarray | None = None
     b1_info: dict = {"b1": None}

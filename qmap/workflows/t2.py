@@ -152,7 +152,7 @@ def run_t2(
     t1: float = DEFAULT_T1,
     noise_floor: str = DEFAULT_MODE,
     sigma="auto",
-    coils: int = 1,
+    coils: int | None = None,
     drop_first: bool = False,
 ) -> RunReport:
     """Fit T2, R2 and M0 (and with ``epg`` RefocusScale) maps to a multi-echo spin-echo series.
@@ -183,6 +183,6 @@ def run_t2(
         notes.append(f"EPG model: echo spacing {1e3 * model.esp:.4g} ms, refocusing {refocus_deg:g} deg x fitted "
                      f"scale, T1 fixed at {t1:g} s")
     return run_fit(
-        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils), sigma_spec=sigma,
-        options=options, model_info=info, notes=notes, t0=t0, method="mese",
+        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils or 1), sigma_spec=sigma,
+        options=options, model_info=info, notes=notes, t0=t0, method="mese", coils_auto=coils is None,
     )
