@@ -24,8 +24,8 @@ def fit_decay(
     param: str = "T2star",
     mask=None,
     noise_floor: str = DEFAULT_MODE,
-    sigma=None,
-    coils: int = 1,
+    sigma="auto",
+    coils: int | None = None,
     drop_first: bool = False,
     n_jobs: int | None = None,
     engine: str = "fast",
@@ -46,10 +46,15 @@ def fit_decay(
         Voxels to fit (default: all).
     noise_floor : {"rician", "offset", "truncate", "none"}
         Noise-floor handling (see :mod:`qmap.fitting.noise_floor`).
-    sigma : float or (...) ndarray, optional
-        Noise sd (signal units); required by ``rician`` and ``truncate``.
-    coils : int
-        ``rician``: coils combined by sum of squares.
+    sigma : "auto", "local", float or (...) ndarray
+        Noise sd (signal units), used by ``rician`` and ``truncate``. ``"auto"``
+        (default) estimates it from ``data`` as ``--sigma auto`` does (the
+        background of a 4D array, else the residuals of a first plain fit in
+        voxels well above the noise; see :func:`qmap.noise_level.estimate_noise`);
+        ``"local"`` a smooth noise map. The estimate is in ``maps.info["noise"]``.
+    coils : int, optional
+        ``rician``: coils combined by sum of squares (default one, or what the
+        background's moments show).
     drop_first : bool
         Ignore the first echo.
 
@@ -63,15 +68,34 @@ def fit_decay(
     te = np.asarray(te, float)
     if drop_first:
         data, te = data[..., 1:], te[1:]
-    noise = NoiseFloor(noise_floor, coils=coils)
-    if noise.needs_sigma and sigma is None:
-        raise ValueError(f"noise_floor={noise_floor!r} needs sigma (the noise sd in signal units)")
+    model = MonoExponential(te, param=param)
+    noise, sigma, info = _noise_for(data, model, noise_floor, sigma, coils, mask, n_jobs)
     kw = {} if chunk_size is None else {"chunk_size": chunk_size}
-    return fit_volume(MonoExponential(te, param=param), data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs,
+    maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs,
                       method=engine, scheduler=scheduler, **kw)
+    if info is not None:
+        maps.info["noise"] = info
+    return maps
 
 
-def fit_t2star(data, te, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma=None, **kwargs) -> MapSet:
+def _noise_for(data, model, noise_floor: str, sigma, coils: int | None, mask, n_jobs):
+    """The noise-floor handling and sigma of an array fit: ``sigma="auto"``/``"local"`` estimated from ``data``."""
+    from .noise_level import array_sigma
+
+    noise = NoiseFloor(noise_floor, coils=coils or 1)
+    info = None
+    if noise.needs_sigma:
+        if sigma is None:
+            raise ValueError(f"noise_floor={noise_floor!r} needs sigma (the noise sd in signal units, or 'auto')")
+        sigma, info = array_sigma(data, model, sigma, mask=mask, coils=coils, n_jobs=n_jobs)
+        if info is not None and coils is None and info.get("coils") and info["coils"] != noise.coils:
+            noise = NoiseFloor(noise_floor, coils=int(info["coils"]))
+    elif isinstance(sigma, str):
+        sigma = None  # not used by this noise-floor mode
+    return noise, sigma, info
+
+
+def fit_t2star(data, te, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma="auto", **kwargs) -> MapSet:
     """Fit T2* from multi-echo gradient-echo magnitudes; see :func:`fit_decay`.
 
     Examples

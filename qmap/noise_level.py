@@ -59,6 +59,10 @@ _MAX_OUTLIER_FRACTION = 0.2
 _MAX_SAMPLES = 2_000_000
 #: values used for the automatic mask's threshold (a stride through the peak image)
 _MASK_SAMPLES = 1_000_000
+#: the automatic mask keeps every voxel brighter than this many times the median of the dim class
+#: (the background noise's peak over the volumes: 3 x its median is 3.5 sigma for one volume, 7.2 sigma
+#: for 12 volumes; the opening removes the few isolated noise voxels above it)
+MASK_NOISE_FACTOR = 3.0
 #: background samples collected for ``--sigma auto`` (every k-th voxel by flat index, so that the
 #: choice does not depend on how the volume is read)
 SIGMA_SAMPLES = 2_000_000
@@ -208,7 +212,13 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     if nonzero.size > _MASK_SAMPLES:  # an even stride: the histogram needs no more (memory, time)
         nonzero = nonzero[:: -(-nonzero.size // _MASK_SAMPLES)]
     clipped = np.minimum(nonzero, np.percentile(nonzero, 99.9))
-    threshold = 0.5 * otsu_threshold(clipped)
+    t_otsu = otsu_threshold(clipped)
+    # dim regions clearly above the noise stay in: the threshold is at most NOISE_FACTOR x the median of
+    # the class below Otsu's threshold (the noise where the image has background)
+    lower = clipped[clipped <= t_otsu]
+    threshold = 0.5 * t_otsu
+    if lower.size:
+        threshold = min(threshold, MASK_NOISE_FACTOR * float(np.median(lower)))
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
     mask = ndimage.binary_opening(np.pad(peak > threshold, 1, mode="edge"))[1:-1, 1:-1, 1:-1]
@@ -247,12 +257,15 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
        inversion-recovery series some tissue is near its null in one volume,
        and a decaying T2 series is dim in its late echoes; the maximum shows
        every voxel at its brightest.
-    2. Threshold at half of Otsu's threshold of that maximum image. Otsu on
-       images with several tissue classes often splits dim from bright
-       tissue rather than tissue from background; half of it keeps dim
-       tissue (e.g. long-T1 / short-T2 regions) while staying far above the
-       Rayleigh noise of the background. Exact zeros (zero filling) are left
-       out of the histogram, and values above the 99.9th percentile are
+    2. Threshold at half of Otsu's threshold of that maximum image, or at
+       :data:`MASK_NOISE_FACTOR` (3) times the median of the values below
+       Otsu's threshold where that is lower. Otsu on images with several
+       tissue classes often splits dim from bright tissue rather than tissue
+       from background; half of it keeps dim tissue (e.g. long-T1 / short-T2
+       regions), and the noise-based limit keeps regions much dimmer than the
+       rest (an insert at 20 % of the surrounding signal) as long as they are
+       clearly above the background noise. Exact zeros (zero filling) are
+       left out of the histogram, and values above the 99.9th percentile are
        clipped to it so that a few very bright voxels cannot squeeze the
        tissue into the lowest bins.
     3. A binary opening with the 6-connected cross (one voxel) removes
@@ -390,7 +403,7 @@ def estimate_sigma_background(
     aside and the median retaken until sigma settles, which removes their
     remaining pull. More than 20 % of such values means the background is not
     noise (a median alone would not notice up to half of it being signal).
-    Integer-stored data are treated as grouped data (see :func:`_median`). The
+    Integer-stored data are treated as grouped data (see :func:`_median_sigma`). The
     object reference for the plausibility check is the median over the object
     of each voxel's maximum over volumes (so that a series whose late volumes
     have decayed into the noise is not rejected).
@@ -424,13 +437,13 @@ def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[fl
     outlier_fraction : float
         Fraction of the values set aside.
     """
-    med, tail = _chi_median(coils), _chi_tail(coils)
-    sigma = _median(bg, quantum) / med
+    tail = _chi_tail(coils)
+    sigma = _median_sigma(bg, quantum, coils)
     kept = bg
     new = sigma
     for _ in range(20):
         kept = bg[bg <= tail * sigma]
-        new = _median(kept, quantum) / med
+        new = _median_sigma(kept, quantum, coils)
         if abs(new - sigma) <= 1e-9 * sigma:
             break
         sigma = new
@@ -554,27 +567,26 @@ def _quantum(values: np.ndarray) -> float:
     return h
 
 
-def _median(values: np.ndarray, quantum: float) -> float:
-    """Median; for values stored on a grid of step ``quantum``, the grouped-data median.
+def _median_sigma(values: np.ndarray, quantum: float, coils: int) -> float:
+    """Sigma from the median of chi-distributed magnitudes: ``median / median(chi_2N)``.
 
-    Each stored value ``k * quantum`` stands for the interval ``[(k - 1/2) quantum, (k + 1/2) quantum)``
-    (``[0, quantum / 2)`` for 0); the median is interpolated linearly within the interval that holds it
-    (the usual median of grouped data). Without it, the median of integer data whose noise is about
-    one unit can only be a whole number, and sigma snaps to multiples of 1 / 1.1774 = 0.849.
+    For values stored on a grid of step ``quantum`` (integer storage) the median can only be a grid
+    value, and sigma would snap to multiples of ``quantum / 1.1774`` (0.849 for integers, one coil).
+    Rounding puts every magnitude below the boundary ``(k + 1/2) quantum`` at or below ``k quantum``,
+    so the fraction ``F`` of values at or below ``k quantum`` estimates the chi distribution function
+    at that boundary exactly: ``sigma = (k + 1/2) quantum / chi_2N.ppf(F)``, taken at the boundary
+    where ``F`` is closest to 1/2 (the median's own precision).
     """
     if quantum <= 0:
-        return float(np.median(values))
+        return float(np.median(values)) / _chi_median(coils)
+    from scipy import stats
+
     k = np.round(values / quantum).astype(np.int64)
     k0 = int(k.min())
-    counts = np.bincount(k - k0).astype(np.float64)
-    cum = np.cumsum(counts)
-    half = 0.5 * values.size
-    j = int(np.searchsorted(cum, half))
-    below = cum[j - 1] if j > 0 else 0.0
-    level = j + k0
-    lo = max(level - 0.5, 0.0) * quantum
-    hi = (level + 0.5) * quantum
-    return float(lo + (half - below) / counts[j] * (hi - lo))
+    frac = np.cumsum(np.bincount(k - k0)) / values.size
+    j = int(np.argmin(np.abs(frac - 0.5)))
+    f = min(max(float(frac[j]), 1e-9), 1 - 1e-9)
+    return (j + k0 + 0.5) * quantum / float(stats.chi(2 * coils).ppf(f))
 
 
 def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
@@ -705,7 +717,7 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
     if np.count_nonzero(bg < 0) > 0.01 * bg.size:
         raise InputError("cannot estimate the noise from the background: it holds negative values, so this is not "
                          "a magnitude image (a real-valued or phase export?)")
-    med_bg = _median(bg, quantum)
+    med_bg = float(np.median(bg))
     obj = b.obj_peak[np.isfinite(b.obj_peak)]
     med_obj = float(np.median(obj)) if obj.size else 0.0
     if not med_bg * 3.0 <= med_obj:
@@ -732,7 +744,7 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
     if bg.size >= _MIN_COIL_SAMPLES:
         # r = 1 + 1/N: with one coil r = 2; claim N >= 2 only when r is clearly below 2
         r = 1.0 + 1.0 / n_eff
-        n_round = max(1, int(round(n_eff)))
+        n_round = max(1, round(n_eff))
         if coils is None and n_round >= 2 and r < 2.0 - 3.0 * se_r:
             use = n_round
             sigma, outliers = _clipped_sigma(bg, use, quantum)
@@ -770,9 +782,9 @@ def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
         ratio = max(sa, sb) / min(sa, sb)
         se = median_relative_se(coils) * math.sqrt(1.0 / a.size + 1.0 / b2.size)
         if ratio > max(1.2, 1.0 + 4.0 * se) and ratio > worst[0]:
-            worst = (ratio, f"the background noise differs by a factor {ratio:.2f} between the two halves of the "
+            worst = (ratio, (f"the background noise differs by a factor {ratio:.2f} between the two halves of the "
                             f"image along {'xy'[axis]} (parallel imaging or coil sensitivity?): one sigma biases "
-                            "the fit where the noise is higher; consider --sigma local")
+                            "the fit where the noise is higher; consider --sigma local"))
     return worst[1]
 
 
@@ -1066,6 +1078,7 @@ def _failure_message(errors: list, have_model: bool, obj: np.ndarray) -> str:
         fixes.append("or fit without the noise floor (--noise-floor none)")
     if not obj.any():
         errors.insert(0, "no object was found in the image")
+    errors = [e.replace("cannot estimate the noise from ", "") for e in errors]
     return "cannot estimate the noise level: " + "; ".join(errors) + ". Fix: " + ", ".join(fixes)
 
 
@@ -1187,3 +1200,45 @@ def local_noise_map(
     details = dict(first.details, smoothing_sd_voxels=width, first_source=first.source, first_sigma=g)
     return NoiseEstimate(sigma=sig.astype(np.float32), source="local", n_voxels=int(use.sum() + b.n_usable),
                          relative_precision=rel, coils=first.coils, details=details, notes=notes)
+
+
+def array_sigma(data: np.ndarray, model, spec, *, mask=None, coils: int | None = None,
+                n_jobs: int | None = None) -> tuple[object, dict | None]:
+    """The array API's ``sigma`` argument: ``"auto"`` / ``"local"`` run :func:`estimate_noise` on ``data``.
+
+    Parameters
+    ----------
+    data : (..., m) ndarray
+        The samples (a 4D (X, Y, Z, m) array keeps its geometry for the background source; other shapes
+        are treated as a row of voxels).
+    model : SeparableModel
+    spec : "auto", "local", None, float or ndarray
+        Anything but ``"auto"`` / ``"local"`` is returned unchanged (with ``info`` None).
+    mask : (...) array_like of bool, optional
+    coils : int, optional
+
+    Returns
+    -------
+    sigma : float, ndarray or None
+        The value (or map, shaped like ``data.shape[:-1]``).
+    info : dict or None
+        The provenance of the estimate (see :meth:`NoiseEstimate.provenance`) and its ``notes``.
+    """
+    if not isinstance(spec, str):
+        return spec, None
+    if spec not in ("auto", "local"):
+        raise ValueError(f"sigma={spec!r}: expected 'auto', 'local', a positive number or an array of them")
+    a = np.asarray(data)
+    lead = a.shape[:-1]
+    a4 = a if a.ndim == 4 else a.reshape(-1, 1, 1, a.shape[-1])
+    m = None if mask is None else np.asarray(mask, bool).reshape(a4.shape[:3])
+    try:
+        est = estimate_noise(ArraySource(a4), model=model, mask=m, coils=coils, local=spec == "local",
+                             n_jobs=n_jobs)
+    except InputError as exc:
+        msg = str(exc).replace("--sigma VALUE", "sigma=VALUE").replace("--noise-floor none", 'noise_floor="none"')
+        raise InputError(msg.replace("a mask file with --mask", "a mask (mask=...)")) from None
+    info = est.provenance(spec)
+    info.update(coils=est.coils, notes=list(est.notes))
+    sigma = np.asarray(est.sigma).reshape(lead) if spec == "local" else float(est.sigma)
+    return sigma, info

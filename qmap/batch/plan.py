@@ -136,6 +136,9 @@ class SeriesPlan:
         Remarks on choices made while planning.
     spectrum : bool
         A MESE series fitted by ``t2-spectrum`` (multi-component T2) instead of ``t2 --epg``.
+    options : dict of str -> str
+        Fit options given by the user for this series type (command-line spelling without the
+        dashes, e.g. ``{"sigma": "local", "mask": "none"}``; see :func:`qmap.batch.fit_options`).
     """
 
     subject: str
@@ -151,6 +154,7 @@ class SeriesPlan:
     notes: list = field(default_factory=list)
     uni: str | None = None
     spectrum: bool = False
+    options: dict = field(default_factory=dict)
 
     @property
     def kind(self) -> FitKind:

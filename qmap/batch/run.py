@@ -26,7 +26,7 @@ from pathlib import Path
 
 from .. import __version__
 from ..errors import OutputError, UsageError
-from .plan import BatchPlan, SeriesPlan, discover
+from .plan import FIT_KINDS, BatchPlan, SeriesPlan, discover
 from .series import SeriesResult, run_series, series_state
 
 __all__ = ["BIDS_VERSION", "BatchReport", "dataset_description", "run_batch"]
@@ -287,6 +287,8 @@ def run_batch(
     quiet: bool = True,
     stream=None,
     t2_spectrum: bool = False,
+    options: dict | None = None,
+    config=None,
 ) -> BatchReport:
     """Fit every relaxometry series of a BIDS dataset; see the module docstring.
 
@@ -311,6 +313,11 @@ def run_batch(
     t2_spectrum : bool
         Also fit every MESE series by ``t2-spectrum`` (multi-component T2; outputs with the
         method label ``mesespectrum``).
+    options : dict, optional
+        Fit options for every series (command-line spelling without dashes: ``noise-floor``,
+        ``sigma``, ``coils``, ``mask``, ``units``); see :func:`fit_options`.
+    config : path-like, optional
+        A TOML file with per-series-type options (see :func:`fit_options`).
 
     Returns
     -------
@@ -320,7 +327,10 @@ def run_batch(
     t0 = time.perf_counter()
     if n_jobs is not None and n_jobs == 0:
         raise UsageError("-j 0: give a positive number of worker processes (or leave -j out for all cores)")
+    per_suffix = fit_options(options, config)
     plan = discover(bids_dir, deriv_dir, t2_spectrum=t2_spectrum)
+    for p in plan.series:
+        p.options = dict(per_suffix.get(p.suffix, {})) if not p.spectrum else {}
     report = BatchReport(plan=plan, dry_run=dry_run)
     if dry_run:
         report.actions = [_planned_action(p, overwrite) for p in plan.series]
@@ -354,6 +364,103 @@ def run_batch(
     report.results = results
     report.wall_time_s = round(time.perf_counter() - t0, 3)
     return report
+
+
+#: fit options a batch may set, and the series types they apply to
+BATCH_OPTIONS = {
+    "noise-floor": ("MEGRE", "MESE"),
+    "sigma": ("MEGRE", "MESE"),
+    "coils": ("MEGRE", "MESE"),
+    "mask": ("IRT1", "VFA", "MESE", "MEGRE"),
+    "units": ("IRT1", "VFA", "MESE", "MEGRE"),
+}
+
+
+def fit_options(options: dict | None = None, config=None) -> dict:
+    """Per-series-type fit options from the command line and a TOML configuration file.
+
+    Parameters
+    ----------
+    options : dict, optional
+        Options for every series type they apply to (e.g. ``{"sigma": "local"}``).
+    config : path-like, optional
+        A TOML file (read with :mod:`tomllib`) with one table per series suffix (``MEGRE``, ``MESE``,
+        ``IRT1``, ``VFA``) and an optional ``all`` table, e.g.::
+
+            [all]
+            mask = "none"
+
+            [MEGRE]
+            sigma = "local"
+
+            [MESE]
+            noise-floor = "rician"
+            sigma = 12.5
+            coils = 8
+
+        The suffix tables win over ``all``; the command-line ``options`` win over both.
+
+    Returns
+    -------
+    dict
+        suffix -> {option: value as text}.
+
+    Raises
+    ------
+    UsageError
+        An unreadable file, an unknown table or option, or an option that does not apply to a series type.
+    """
+    import tomllib
+
+    layers: list[tuple[str, dict]] = []
+    if config is not None:
+        try:
+            with open(config, "rb") as fh:
+                doc = tomllib.load(fh)
+        except (OSError, tomllib.TOMLDecodeError) as exc:
+            raise UsageError(f"--config {config}: cannot read it as TOML ({exc})") from None
+        for table in doc:
+            if table != "all" and table not in FIT_KINDS:
+                raise UsageError(f"--config {config}: unknown table [{table}]; expected all, "
+                                 f"{', '.join(sorted(FIT_KINDS))}")
+            if not isinstance(doc[table], dict):
+                raise UsageError(f"--config {config}: {table} must be a table ([{table}]) of options")
+        if "all" in doc:
+            layers.append(("all", doc["all"]))
+        layers += [(t, v) for t, v in doc.items() if t != "all"]
+    if options:
+        layers.append(("all", {k: v for k, v in options.items() if v is not None}))
+    out: dict = {s: {} for s in FIT_KINDS}
+    for target, table in layers:
+        for name, value in table.items():
+            if name not in BATCH_OPTIONS:
+                raise UsageError(f"batch option {name!r}: expected one of {', '.join(BATCH_OPTIONS)}")
+            text = _option_text(name, value)
+            suffixes = BATCH_OPTIONS[name] if target == "all" else (target,)
+            if target != "all" and target not in BATCH_OPTIONS[name]:
+                raise UsageError(f"batch option {name!r} does not apply to {target} series "
+                                 f"(only {', '.join(BATCH_OPTIONS[name])})")
+            for s in suffixes:
+                out[s][name] = text
+    return {s: v for s, v in out.items() if v}
+
+
+def _option_text(name: str, value) -> str:
+    from .fitting.noise_floor import MODES
+
+    text = str(value)
+    if name == "noise-floor" and text not in MODES:
+        raise UsageError(f"batch option noise-floor {text!r}: expected one of {', '.join(MODES)}")
+    if name == "units" and text not in ("s", "ms"):
+        raise UsageError(f"batch option units {text!r}: expected s or ms")
+    if name == "coils" and (isinstance(value, bool) or not text.isdigit() or int(text) < 1):
+        raise UsageError(f"batch option coils {text!r}: expected a positive whole number")
+    if name == "mask" and text not in ("auto", "none"):
+        path = Path(text).absolute()
+        if not path.is_file():
+            raise UsageError(f"batch option mask {text!r}: no such file (or give auto / none)")
+        text = str(path)
+    return text
 
 
 def _planned_action(p: SeriesPlan, overwrite: bool) -> str:

@@ -44,11 +44,17 @@ class SeriesResult:
 
 
 def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
-    """Keyword arguments of the workflow function, and the same choices as command-line options."""
+    """Keyword arguments of the workflow function, and the same choices as command-line options.
+
+    The user's per-series-type options (``plan.options``) are included; ``mask`` and ``units`` are
+    shared options (:class:`~qmap.pipeline.CommonOptions`) and appear only in the command line.
+    """
     suffix = plan.suffix
+    kwargs: dict = {}
+    opts: list[str] = []
     if suffix == "IRT1":
-        return {"signal": "magnitude"}, ["--signal", "magnitude"]
-    if suffix == "VFA":
+        kwargs, opts = {"signal": "magnitude"}, ["--signal", "magnitude"]
+    elif suffix == "VFA":
         kwargs = {"method": "nonlinear"}
         opts = ["--method", "nonlinear"]
         if plan.b1:
@@ -57,13 +63,11 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
             if plan.b1_scale:
                 kwargs["b1_scale"] = plan.b1_scale
                 opts += ["--b1-scale", plan.b1_scale]
-        return kwargs, opts
-    if plan.spectrum:
-        return {}, []
-    if suffix == "MESE":
-        return {"epg": True}, ["--epg"]
-    if suffix == "MP2RAGE":
-        kwargs, opts = {}, []
+    elif plan.spectrum:
+        pass
+    elif suffix == "MESE":
+        kwargs, opts = {"epg": True}, ["--epg"]
+    elif suffix == "MP2RAGE":
         if plan.inputs:
             kwargs.update(inv1=plan.inputs[0], inv2=plan.inputs[1])
             opts += ["--inv1", plan.inputs[0], "--inv2", plan.inputs[1]]
@@ -73,8 +77,15 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
             if plan.b1_scale:
                 kwargs["b1_scale"] = plan.b1_scale
                 opts += ["--b1-scale", plan.b1_scale]
-        return kwargs, opts
-    return {}, []
+    for name, value in sorted(plan.options.items()):
+        opts += [f"--{name}", str(value)]
+        if name == "noise-floor":
+            kwargs["noise_floor"] = str(value)
+        elif name == "sigma":
+            kwargs["sigma"] = str(value)
+        elif name == "coils":
+            kwargs["coils"] = int(value)
+    return kwargs, opts
 
 
 def positional(plan: SeriesPlan) -> list[str]:
@@ -173,7 +184,9 @@ def run_series(plan: SeriesPlan, *, overwrite: bool = False) -> SeriesResult:
                 kwargs, _ = fit_call(plan)
                 common = CommonOptions(out_dir=Path(plan.out_dir), prefix=plan.prefix, n_jobs=1,
                                        overwrite=overwrite or state == "stale", quiet=True,
-                                       command_line=equivalent_argv(plan))
+                                       command_line=equivalent_argv(plan),
+                                       mask=str(plan.options.get("mask", "auto")),
+                                       units=str(plan.options.get("units", "s")))
                 args = positional(plan)
                 report = fn(args[0] if plan.suffix == "MP2RAGE" else args, common=common, **kwargs)
                 res.written = [Path(p).name for p in report.written]

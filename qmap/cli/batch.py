@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import sys
 
+from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
+from ..defaults import NOISE_MODES as MODES
 from ..errors import warn
 
 
@@ -37,6 +39,18 @@ def add_parser(sub) -> None:
                         "with the prefix ..._acq-mesespectrum")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress display and no summary (warnings and "
                    "failures still go to stderr)")
+    g = p.add_argument_group("fit options (applied to every series type they concern; a --config file sets them "
+                             "per type)")
+    g.add_argument("--noise-floor", choices=MODES, default=None, help="MEGRE / MESE: noise-floor handling "
+                   f"(default {DEFAULT_MODE})")
+    g.add_argument("--sigma", metavar="auto|local|VALUE|NOISEMAP", default=None,
+                   help="MEGRE / MESE: the noise level (default auto: from the data)")
+    g.add_argument("--coils", metavar="N", default=None, help="MEGRE / MESE: sum-of-squares coils")
+    g.add_argument("--mask", metavar="auto|none|FILE", default=None, help="voxels to fit (default auto)")
+    g.add_argument("--units", choices=("s", "ms"), default=None, help="units of the written time maps (default s)")
+    g.add_argument("--config", metavar="FILE.toml",
+                   help="per-series-type options: a TOML file with tables [MEGRE], [MESE], [IRT1], [VFA] (and "
+                        "[all]) of the options above, e.g. [MEGRE] sigma = \"local\"; command-line options win")
     p.set_defaults(run=run)
 
 
@@ -46,9 +60,11 @@ def run(args) -> int:
     if args.scheduler and args.jobs is not None and not args.dry_run:
         warn("-j is ignored with --scheduler (the cluster's workers do the work)")
     try:
+        options = {"noise-floor": args.noise_floor, "sigma": args.sigma, "coils": args.coils, "mask": args.mask,
+                   "units": args.units}
         report = run_batch(args.bids_dir, args.out_dir, dry_run=args.dry_run, scheduler=args.scheduler,
                            n_jobs=args.jobs, overwrite=args.overwrite, quiet=args.quiet,
-                           t2_spectrum=args.t2_spectrum)
+                           t2_spectrum=args.t2_spectrum, options=options, config=args.config)
     except KeyboardInterrupt as exc:
         from . import Terminated
 

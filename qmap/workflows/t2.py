@@ -72,8 +72,8 @@ def fit_t2(
     refocus_deg: float = DEFAULT_REFOCUS,
     t1: float = DEFAULT_T1,
     noise_floor: str = DEFAULT_MODE,
-    sigma=None,
-    coils: int = 1,
+    sigma="auto",
+    coils: int | None = None,
     drop_first: bool = False,
     mask=None,
     n_jobs: int | None = None,
@@ -99,10 +99,12 @@ def fit_t2(
     noise_floor : {"rician", "offset", "truncate", "none"}
         Noise-floor handling (see :mod:`qmap.fitting.noise_floor`); default
         ``rician``, which needs ``sigma``.
-    sigma : float or (...) ndarray, optional
-        Noise sd in signal units.
-    coils : int
-        ``rician``: coils combined by sum of squares.
+    sigma : "auto", "local", float or (...) ndarray
+        Noise sd in signal units; ``"auto"`` (default) / ``"local"`` estimate it
+        from ``data`` (see :func:`qmap.fit_decay`).
+    coils : int, optional
+        ``rician``: coils combined by sum of squares (default one, or what the
+        background's moments show).
     drop_first : bool
         Do not fit the first echo (mono-exponential only).
     mask : (...) array_like of bool, optional
@@ -131,13 +133,15 @@ def fit_t2(
     model, info = t2_model(te, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
     if drop_first:
         data = data[..., 1:]
-    noise = NoiseFloor(noise_floor, coils=coils)
-    if noise.needs_sigma and sigma is None:
-        raise ValueError(f"noise_floor={noise_floor!r} needs sigma (the noise sd in signal units)")
+    from ..api import _noise_for
+
+    noise, sigma, sinfo = _noise_for(data, model, noise_floor, sigma, coils, mask, n_jobs)
     kw = {} if chunk_size is None else {"chunk_size": chunk_size}
     maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs, method=engine,
                       scheduler=scheduler, **kw)
     maps.info["model_info"] = info
+    if sinfo is not None:
+        maps.info["noise"] = sinfo
     return maps
 
 

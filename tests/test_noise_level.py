@@ -1,0 +1,390 @@
+"""The noise-level chain (``--sigma auto`` / ``local``), the automatic mask, and their diagnoses.
+
+References used below:
+- Rayleigh / Rice / chi distributions: ``scipy.stats.rayleigh``, ``rice``, ``chi`` (magnitude noise of one
+  coil and of N sum-of-squares coils; Gudbjartsson & Patz, Magn Reson Med 1995;34:910; Constantinides et al.,
+  Magn Reson Med 1997;38:852).
+- Asymptotic standard error of a sample median, 1 / (2 f(m) sqrt(n)) (common practice; e.g. Kendall's
+  Advanced Theory of Statistics; from memory).
+- Residual variance of a least-squares fit, E[RSS] = sigma^2 (m - p) (common practice; any regression text).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import nibabel as nib
+import numpy as np
+import pytest
+from scipy import stats
+
+from qmap.cli import main
+from qmap.errors import InputError
+from qmap.models.monoexp import MonoExponential
+from qmap.noise_level import (
+    ArraySource,
+    _median_sigma,
+    auto_mask,
+    background_estimate,
+    estimate_noise,
+    median_relative_se,
+    residual_estimate,
+)
+from tests.conftest import rician, write_nifti
+
+TE = np.linspace(0.002, 0.040, 12)  # 12 echoes, 2-40 ms
+
+
+def _decay_volume(shape, *, rim=0, sigma=5.0, m0=100.0, seed=0, zero_fill=False, t2_lo=0.004, t2_hi=0.06):
+    """T2* rising along x across the object (t2_lo..t2_hi), object = everything but a rim of ``rim`` voxels."""
+    rng = np.random.default_rng(seed)
+    X = shape[0]
+    x = np.indices(shape)[0]
+    obj = np.zeros(shape, bool)
+    obj[rim:X - rim, rim:shape[1] - rim, :] = True
+    frac = np.clip((x - rim) / max(X - 2 * rim - 1, 1), 0, 1)
+    t2 = t2_lo + (t2_hi - t2_lo) * frac
+    s = np.where(obj[..., None], m0 * np.exp(-TE / t2[..., None]), 0.0)
+    d = rician(s, sigma, rng)
+    if zero_fill:
+        d[~obj] = 0.0
+    return d.astype(np.float32), t2, obj
+
+
+# ---------------------------------------------------------------------------
+# Precision of the median-based background estimate
+# ---------------------------------------------------------------------------
+
+
+def test_median_relative_se_rederived_from_the_rayleigh_density_and_monte_carlo():
+    # sample-median asymptotics: se(median) = 1 / (2 f(m) sqrt(n)); for the Rayleigh density
+    # (scipy.stats.rayleigh) m = sqrt(2 ln 2) = 1.17741 and f(m) = m exp(-m^2 / 2) = m / 2
+    m = stats.rayleigh.median()
+    assert m == pytest.approx(1.17741, abs=1e-5)
+    c = 1.0 / (2.0 * stats.rayleigh.pdf(m) * m)  # relative se of sigma = median / m, times sqrt(n)
+    assert c == pytest.approx(0.7213, abs=1e-4)
+    assert median_relative_se(1) == pytest.approx(c, rel=1e-12)
+    # and for 4 coils against scipy.stats.chi(8)
+    m4 = stats.chi(8).median()
+    assert median_relative_se(4) == pytest.approx(1.0 / (2.0 * stats.chi(8).pdf(m4) * m4), rel=1e-9)
+    # Monte-Carlo: the spread of sigma-hat = median / 1.17741 from n = 300 samples
+    rng = np.random.default_rng(11)
+    est = np.median(stats.rayleigh.rvs(size=(4000, 300), random_state=rng), axis=1) / m
+    assert np.std(est) == pytest.approx(c / math.sqrt(300), rel=0.06)  # 0.7213 / sqrt(300) = 4.2 %
+
+
+def test_grouped_median_undoes_integer_rounding():
+    # integer storage of Rayleigh noise of about one unit: the plain median is a whole number, so
+    # sigma = median / 1.1774 could only be a multiple of 0.849; the fraction below a rounding
+    # boundary (k + 1/2) is the Rayleigh distribution function there (scipy.stats.rayleigh)
+    rng = np.random.default_rng(5)
+    for sigma in (0.8, 1.0, 1.3, 1.7, 2.4):
+        v = np.round(stats.rayleigh.rvs(scale=sigma, size=400_000, random_state=rng))
+        plain = np.median(v) / stats.rayleigh.median()
+        grouped = _median_sigma(v, 1.0, 1)
+        assert grouped == pytest.approx(sigma, rel=0.01), sigma
+        if sigma in (1.0, 1.3):
+            assert abs(plain / sigma - 1) > 0.1  # the snapping the grouped median removes
+
+
+def test_integer_background_near_one_unit_is_estimated_in_the_chain():
+    rng = np.random.default_rng(6)
+    shape = (48, 48, 4)
+    obj = np.zeros(shape, bool)
+    obj[14:34, 14:34] = True
+    for sigma in (0.9, 1.3):
+        d = np.round(rician(np.where(obj, 60.0, 0.0)[..., None] * np.ones(3), sigma, rng))
+        est = background_estimate(ArraySource(d))
+        assert est.value == pytest.approx(sigma, rel=0.05)
+        assert est.details.get("quantum") == 1.0
+
+
+# ---------------------------------------------------------------------------
+# The chain against the true sigma (Monte-Carlo over SNR and object size)
+# ---------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("snr", [5, 20, 200])
+def test_background_source_over_snr(snr):
+    # background Rayleigh noise drawn with scipy.stats.rayleigh, object signal with scipy.stats.rice
+    rng = np.random.default_rng(100 + snr)
+    shape = (32, 32, 3)
+    sigma = 2.0
+    obj = np.zeros(shape, bool)
+    obj[10:22, 10:22] = True
+    errs, precs = [], []
+    for _ in range(8):
+        d = stats.rayleigh.rvs(scale=sigma, size=shape + (6,), random_state=rng)
+        nu = snr * sigma
+        d[obj] = stats.rice.rvs(nu / sigma, scale=sigma, size=(int(obj.sum()), 6), random_state=rng)
+        est = estimate_noise(ArraySource(d))
+        assert est.source == "background"
+        errs.append(est.value / sigma - 1)
+        precs.append(est.relative_precision)
+    assert abs(np.mean(errs)) < 0.02
+    assert np.std(errs) < 2.0 * np.mean(precs)  # the stated precision is honest (not optimistic)
+
+
+@pytest.mark.parametrize(("snr", "side"), [(10, 8), (20, 8), (20, 24), (200, 16)])
+def test_residual_source_over_snr_and_object_size(snr, side):
+    # a field of view cropped to the object: only the residuals can give sigma
+    rng = np.random.default_rng(7 * snr + side)
+    sigma = 3.0
+    model = MonoExponential(TE)
+    errs, precs = [], []
+    for k in range(6):
+        t2 = rng.uniform(0.02, 0.2, (side, side, 2))
+        d = rician(snr * sigma * np.exp(-TE / t2[..., None]), sigma, rng)
+        est = residual_estimate(ArraySource(d), model, mask=np.ones(d.shape[:3], bool))
+        errs.append(est.value / sigma - 1)
+        precs.append(est.relative_precision)
+    prec = float(np.mean(precs))
+    assert abs(np.mean(errs)) < max(0.02, 2.5 * prec / math.sqrt(len(errs)))
+    assert np.std(errs) < 2.0 * prec + 0.005
+
+
+def test_residual_and_background_estimates_agree():
+    d, _, _ = _decay_volume((40, 40, 3), rim=8, sigma=4.0, seed=21)
+    src = ArraySource(d)
+    bg = background_estimate(src)
+    res = residual_estimate(src, MonoExponential(TE), mask=auto_mask(d))
+    assert bg.value == pytest.approx(4.0, rel=0.05)
+    assert res.value == pytest.approx(4.0, rel=0.05)
+    assert abs(math.log(bg.value / res.value)) < 3 * math.hypot(bg.relative_precision, res.relative_precision)
+    est = estimate_noise(src, model=MonoExponential(TE))
+    assert est.source == "background" and "residual_sigma" in est.details and not est.notes
+
+
+def test_model_misfit_is_reported_when_both_sources_exist():
+    # a two-compartment decay fitted as one exponential: the residuals overestimate the noise
+    rng = np.random.default_rng(3)
+    shape = (40, 40, 3)
+    obj = np.zeros(shape, bool)
+    obj[8:32, 8:32] = True
+    s = np.where(obj[..., None], 300 * (0.5 * np.exp(-TE / 0.004) + 0.5 * np.exp(-TE / 0.08)), 0.0)
+    d = rician(s, 2.0, rng)
+    est = estimate_noise(ArraySource(d), model=MonoExponential(TE))
+    assert est.source == "background" and est.value == pytest.approx(2.0, rel=0.05)
+    assert any("disagree" in n for n in est.notes)
+
+
+# ---------------------------------------------------------------------------
+# Multi-coil backgrounds, uneven noise
+# ---------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("coils", [4, 8])
+def test_sum_of_squares_background_is_recognised_from_its_moments(coils):
+    rng = np.random.default_rng(40 + coils)
+    shape = (40, 40, 3)
+    sigma = 2.0
+    obj = np.zeros(shape, bool)
+    obj[12:28, 12:28] = True
+    # background: sigma * chi(2N) drawn with scipy.stats.chi
+    d = stats.chi(2 * coils).rvs(size=shape + (4,), random_state=rng) * sigma
+    d[obj] = 200.0 + rng.normal(0, sigma, (int(obj.sum()), 4))
+    est = background_estimate(ArraySource(d))
+    assert est.coils == coils
+    assert est.value == pytest.approx(sigma, rel=0.05)
+    assert any(f"{coils} coils" in n for n in est.notes)
+    # with --coils 1 given, it says so instead of changing it
+    told = background_estimate(ArraySource(d), coils=1)
+    assert told.coils == 1 and any("check --coils" in n for n in told.notes)
+
+
+def test_rayleigh_background_is_not_mistaken_for_several_coils():
+    rng = np.random.default_rng(77)
+    for _ in range(5):
+        d = stats.rayleigh.rvs(scale=3.0, size=(40, 40, 3, 2), random_state=rng)
+        d[12:28, 12:28] = 300.0
+        assert background_estimate(ArraySource(d)).coils == 1
+
+
+def test_uneven_background_noise_suggests_local():
+    rng = np.random.default_rng(9)
+    shape = (48, 48, 3)
+    x = np.indices(shape)[0]
+    sig = 2.0 * 2.5 ** (x / 47.0)
+    obj = np.zeros(shape, bool)
+    obj[16:32, 16:32] = True
+    d = rician(np.where(obj, 200.0, 0.0)[..., None] * np.ones(4), sig[..., None], rng)
+    est = background_estimate(ArraySource(d))
+    assert any("--sigma local" in n for n in est.notes)
+    even = rician(np.where(obj, 200.0, 0.0)[..., None] * np.ones(4), 2.0, rng)
+    assert not background_estimate(ArraySource(even)).notes
+
+
+# ---------------------------------------------------------------------------
+# Hostile inputs: a clear cause, or a documented fallback
+# ---------------------------------------------------------------------------
+
+
+def test_constant_background_is_not_noise_and_the_residuals_take_over():
+    d, _t2, obj = _decay_volume((32, 32, 3), rim=6, sigma=4.0, seed=2)
+    d[~obj] = 7.0  # a constant offset outside the object
+    with pytest.raises(InputError, match="does not scatter like noise"):
+        background_estimate(ArraySource(d))
+    est = estimate_noise(ArraySource(d), model=MonoExponential(TE))
+    assert est.source == "residuals" and est.value == pytest.approx(4.0, rel=0.1)
+
+
+def test_nan_slices_are_left_out():
+    d, _t2, _obj = _decay_volume((40, 40, 4), rim=10, sigma=3.0, seed=4)
+    d[:, :, 1] = np.nan
+    est = estimate_noise(ArraySource(d), model=MonoExponential(TE))
+    assert est.value == pytest.approx(3.0, rel=0.06)
+
+
+def test_no_object_and_no_degrees_of_freedom_is_a_clear_error():
+    rng = np.random.default_rng(8)
+    noise_only = stats.rayleigh.rvs(scale=2.0, size=(24, 24, 3, 12), random_state=rng)
+    with pytest.raises(InputError, match=r"cannot estimate the noise level: .*--sigma VALUE"):
+        estimate_noise(ArraySource(noise_only), model=MonoExponential(TE))
+    zero_filled = np.zeros((24, 24, 3, 3))
+    zero_filled[4:20, 4:20] = 100 * np.exp(-TE[:3] / 0.03) + rng.normal(0, 1, (16, 16, 3, 3))
+    with pytest.raises(InputError, match=r"zero-filled.*too few degrees of freedom"):
+        estimate_noise(ArraySource(zero_filled), model=MonoExponential(TE[:3]))
+
+
+def test_mask_swallowing_the_image_is_named():
+    # SNR 2: the automatic mask takes in most of the image; the message says so and suggests --mask
+    rng = np.random.default_rng(12)
+    d = rician(2.0 * np.ones((16, 16, 3, 3)), 1.0, rng)
+    with pytest.raises(InputError, match=r"mask covers .*--mask"):
+        estimate_noise(ArraySource(d), model=MonoExponential(TE[:3]))
+
+
+# ---------------------------------------------------------------------------
+# The automatic mask keeps dim regions that are clearly above the noise
+# ---------------------------------------------------------------------------
+
+
+def test_auto_mask_keeps_an_insert_at_20_percent_of_its_surroundings():
+    rng = np.random.default_rng(0)
+    shape = (64, 64, 6)
+    x, y, _ = np.indices(shape)
+    r2 = (x - 31.5) ** 2 + (y - 31.5) ** 2
+    obj, ins = r2 < 26**2, r2 < 10**2
+    amp = np.where(obj, 100.0, 0.0)
+    amp[ins] = 20.0  # 10x the noise sd; the insert runs through every slice (not an enclosed hole)
+    d = rician(amp[..., None] * np.exp(-TE / 0.05), 2.0, rng)
+    m = auto_mask(d)
+    assert m[ins].mean() > 0.98 and m[obj].mean() > 0.98
+    assert m[~obj].mean() < 0.01
+
+
+# ---------------------------------------------------------------------------
+# Command line: the "Done when" figures
+# ---------------------------------------------------------------------------
+
+
+def _short_bias(t2map, t2, sel):
+    """Mean over the true T2* values <= 10 ms of |mean estimate / truth - 1|."""
+    sel = sel & (t2 <= 0.010) & np.isfinite(t2map)
+    vals = np.unique(np.round(t2[sel], 7))
+    return float(np.mean([abs(np.mean(t2map[sel][np.round(t2[sel], 7) == v]) / v - 1) for v in vals]))
+
+
+@pytest.mark.parametrize(("case", "shape", "rim", "zero"), [
+    ("cropped", (32, 32, 3), 0, False),
+    ("zero-filled", (40, 40, 3), 8, True),
+    ("rim", (16, 16, 3), 2, False),
+])
+def test_defaults_work_on_cropped_zero_filled_and_tiny_series(tmp_path, case, shape, rim, zero):
+    d, t2, obj = _decay_volume(shape, rim=rim, sigma=5.0, seed=len(case), zero_fill=zero)  # SNR 20
+    path = write_nifti(tmp_path / "sub-01_T2starw.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
+    out = tmp_path / "out"
+    assert main(["t2star", str(path), "-o", str(out), "-q"]) == 0
+    prov = json.loads((out / "sub-01_T2starw_provenance.json").read_text())
+    noise = prov["noise"]
+    assert noise["mode"] == "rician" and noise["sigma_mode"] == "auto"
+    assert {"sigma", "source", "n_voxels", "relative_precision"} <= set(noise)
+    if case != "rim":
+        assert noise["sigma"] == pytest.approx(5.0, rel=0.10)
+    t2map = nib.load(out / "sub-01_T2starw_T2starmap.nii.gz").get_fdata()
+    status = nib.load(out / "sub-01_T2starw_desc-status_fitmap.nii.gz").get_fdata()
+    assert _short_bias(t2map, t2, obj & (status == 0)) < 0.03
+    assert main(["t2star", str(path), "-o", str(tmp_path / "plain"), "-q", "--noise-floor", "none"]) == 0
+    plain = nib.load(tmp_path / "plain" / "sub-01_T2starw_T2starmap.nii.gz").get_fdata()
+    assert _short_bias(plain, t2, obj) > 0.1  # what the noise floor fixes
+
+
+def test_sigma_local_on_noise_varying_2_5x(tmp_path):
+    rng = np.random.default_rng(3)
+    shape = (40, 40, 3)
+    x, y, _ = np.indices(shape)
+    t2 = 0.004 + 0.056 * (y % 10) / 9.0
+    sig = 100 / 33 * 2.5 ** (x / (shape[0] - 1))  # SNR 33 .. 13, a cropped field of view
+    d = rician(100 * np.exp(-TE / t2[..., None]), sig[..., None], rng).astype(np.float32)
+    path = write_nifti(tmp_path / "sub-01_T2starw.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
+    out = tmp_path / "out"
+    assert main(["t2star", str(path), "-o", str(out), "-q", "--sigma", "local"]) == 0
+    t2map = nib.load(out / "sub-01_T2starw_T2starmap.nii.gz").get_fdata()
+    smap = nib.load(out / "sub-01_T2starw_desc-noise_sigmamap.nii.gz").get_fdata()
+    assert np.median(smap / sig) == pytest.approx(1.0, abs=0.03)
+    for half in (x < 20, x >= 20):
+        assert _short_bias(t2map, t2, half) < 0.03
+    prov = json.loads((out / "sub-01_T2starw_provenance.json").read_text())
+    assert prov["noise"]["sigma_mode"] == "local" and prov["noise"]["source"] == "local"
+    assert prov["noise"]["sigma"] == pytest.approx(float(np.median(smap[smap > 0])), rel=1e-4)
+    assert prov["outputs"]["sub-01_T2starw_desc-noise_sigmamap.nii.gz"]["units"] == "a.u."
+
+
+def test_pure_noise_voxels_with_a_given_sigma_are_not_fitted(tmp_path):
+    # very low SNR: the automatic mask takes in background; with --sigma given those voxels must not be status 0
+    rng = np.random.default_rng(31)
+    shape = (24, 24, 3)
+    obj = np.zeros(shape, bool)
+    obj[8:16, 8:16] = True
+    d = rician(np.where(obj, 6.0, 0.0)[..., None] * np.exp(-TE / 0.05), 1.0, rng)
+    path = write_nifti(tmp_path / "lo.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
+    out = tmp_path / "out"
+    assert main(["t2star", str(path), "-o", str(out), "-q", "--sigma", "1", "--mask", "none"]) == 0
+    status = nib.load(out / "lo_desc-status_fitmap.nii.gz").get_fdata()
+    assert np.mean(status[~obj] == 0) < 0.01  # a pure-noise voxel passes once in a thousand
+    assert np.mean(status[~obj] == 7) > 0.98
+    assert np.mean(status[obj] == 0) > 0.95
+
+
+def test_epg_cropped_series_runs_with_defaults(tmp_path):
+    # 32 echoes, refocusing at 150 deg; echo amplitudes from the independent isochromat simulation
+    from tests.reference.isochromat import cpmg_isochromats
+
+    esp, n = 0.01, 32
+    te = esp * np.arange(1, n + 1)
+    t2s = np.array([0.04, 0.08, 0.12])
+    trains = np.stack([cpmg_isochromats(t2, 1.0, esp, n, 150.0, n_iso=512) for t2 in t2s])
+    rng = np.random.default_rng(2)
+    shape = (12, 12, 2)
+    which = np.indices(shape)[0] % 3
+    d = rician(500 * trains[which], 5.0, rng)  # SNR 100 at TE 0 (cropped: no background)
+    path = write_nifti(tmp_path / "sub-01_MESE.nii.gz", d, sidecar={"EchoTime": te.tolist()})
+    out = tmp_path / "out"
+    assert main(["t2", str(path), "--epg", "-o", str(out), "-q"]) == 0
+    t2map = nib.load(out / "sub-01_MESE_T2map.nii.gz").get_fdata()
+    for k, t2 in enumerate(t2s):
+        assert np.median(t2map[which == k]) == pytest.approx(t2, rel=0.03)
+    prov = json.loads((out / "sub-01_MESE_provenance.json").read_text())
+    assert prov["noise"]["source"] == "residuals" and prov["noise"]["sigma"] == pytest.approx(5.0, rel=0.1)
+
+
+# ---------------------------------------------------------------------------
+# Array API
+# ---------------------------------------------------------------------------
+
+
+def test_array_api_sigma_auto_runs_the_chain():
+    import qmap
+    from qmap.fitting.noise_floor import NoiseFloor
+    from qmap.maps import fit_volume
+
+    d, t2, obj = _decay_volume((20, 20, 3), sigma=5.0, seed=9)
+    maps = qmap.fit_t2star(d, TE)  # default sigma="auto"
+    assert maps.info["noise"]["source"] == "residuals"
+    assert maps.info["noise"]["sigma"] == pytest.approx(5.0, rel=0.1)
+    assert _short_bias(maps["T2star"], t2, obj & (maps.status == 0)) < 0.03
+    with pytest.raises(ValueError, match="needs sigma"):
+        fit_volume(MonoExponential(TE), d, noise=NoiseFloor("rician"), sigma=None)
+    with pytest.raises(InputError, match=r"sigma=VALUE"):
+        qmap.fit_t2star(d[..., :3], TE[:3])
