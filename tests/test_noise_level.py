@@ -388,3 +388,76 @@ def test_array_api_sigma_auto_runs_the_chain():
         fit_volume(MonoExponential(TE), d, noise=NoiseFloor("rician"), sigma=None)
     with pytest.raises(InputError, match=r"sigma=VALUE"):
         qmap.fit_t2star(d[..., :3], TE[:3])
+
+
+# ---------------------------------------------------------------------------
+# batch: small series fit with the defaults; per-type fit options
+# ---------------------------------------------------------------------------
+
+
+def _small_bids(root, rng):
+    """sub-01: a 16x16x3 MEGRE (12 echoes) and MESE (12 echoes, 10 ms) with a 2-voxel noise rim, SNR 20."""
+    anat = root / "sub-01" / "anat"
+    anat.mkdir(parents=True)
+    obj = np.zeros((16, 16, 3), bool)
+    obj[2:14, 2:14] = True
+    te_se = 0.01 * np.arange(1, 13)
+    for suffix, te, t2 in (("MEGRE", TE, 0.02), ("MESE", te_se, 0.06)):
+        for i, t in enumerate(te, 1):
+            vol = rician(np.where(obj, 100.0 * np.exp(-t / t2), 0.0), 5.0, rng)
+            write_nifti(anat / f"sub-01_echo-{i}_{suffix}.nii.gz", vol, sidecar={"EchoTime": float(t)})
+    (root / "dataset_description.json").write_text(json.dumps({"Name": "small", "BIDSVersion": "1.8.0"}))
+    return obj
+
+
+def test_batch_fits_small_series_with_defaults_and_takes_fit_options(tmp_path, capsys):
+    from qmap.batch import fit_options
+    from qmap.errors import UsageError
+
+    rng = np.random.default_rng(13)
+    obj = _small_bids(tmp_path / "bids", rng)
+    deriv = tmp_path / "deriv"
+    assert main(["batch", str(tmp_path / "bids"), "-o", str(deriv), "-q", "-j", "1"]) == 0
+    anat = deriv / "sub-01" / "anat"
+    for stem, param, truth in (("acq-megre", "T2star", 0.02), ("acq-mese", "T2", 0.06)):
+        prov = json.loads((anat / f"sub-01_{stem}_provenance.json").read_text())
+        assert prov["noise"]["source"] == "residuals"
+        assert prov["noise"]["sigma"] == pytest.approx(5.0, rel=0.15)
+        est = nib.load(anat / f"sub-01_{stem}_{param}map.nii.gz").get_fdata()
+        status = nib.load(anat / f"sub-01_{stem}_desc-status_fitmap.nii.gz").get_fdata()
+        assert np.mean(status[obj] == 0) > 0.9
+        assert np.median(est[obj & (status == 0)]) == pytest.approx(truth, rel=0.03)
+    # per-type options from a TOML file, command line on top
+    cfg = tmp_path / "fit.toml"
+    cfg.write_text('[all]\nunits = "ms"\n\n[MEGRE]\nsigma = "local"\n\n[MESE]\nnoise-floor = "offset"\n')
+    assert main(["batch", str(tmp_path / "bids"), "-o", str(deriv), "-q", "-j", "1", "--config", str(cfg),
+                 "--mask", "none"]) == 0
+    prov = json.loads((anat / "sub-01_acq-megre_provenance.json").read_text())
+    assert prov["options"]["units"] == "ms" and prov["noise"]["sigma_mode"] == "local"
+    assert {"--sigma", "local", "--units", "ms", "--mask", "none"} <= set(prov["command_line"])
+    assert (anat / "sub-01_acq-megre_desc-noise_sigmamap.nii.gz").is_file()
+    prov = json.loads((anat / "sub-01_acq-mese_provenance.json").read_text())
+    assert prov["noise"]["mode"] == "offset" and prov["options"]["mask"].startswith("none")
+    assert (anat / "sub-01_acq-mese_Offsetmap.nii.gz").is_file()
+    capsys.readouterr()
+    # bad configurations are refused before anything runs
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[VFA]\nsigma = 3\n')
+    with pytest.raises(UsageError, match="does not apply to VFA"):
+        fit_options(None, bad)
+    bad.write_text('[MEGRE]\nnoise = "x"\n')
+    with pytest.raises(UsageError, match="batch option 'noise'"):
+        fit_options(None, bad)
+    assert main(["batch", str(tmp_path / "bids"), "-o", str(deriv), "--config", str(tmp_path / "none.toml")]) == 2
+    assert "cannot read it as TOML" in capsys.readouterr().err
+
+
+def test_signed_real_export_is_refused_with_its_cause(tmp_path, capsys):
+    rng = np.random.default_rng(17)
+    obj = np.zeros((16, 16, 2, 1))
+    obj[4:12, 4:12] = 1.0
+    d = 100 * np.exp(-TE / 0.03) * obj + rng.normal(0, 5, (16, 16, 2, 12))  # a real (signed) channel
+    path = write_nifti(tmp_path / "real.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
+    assert main(["t2star", str(path), "-o", str(tmp_path / "o"), "-q"]) == 2
+    err = capsys.readouterr().err
+    assert "negative values" in err and err.count("\n") == 1
