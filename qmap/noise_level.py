@@ -846,6 +846,21 @@ def _pooled_relative_se(dof: np.ndarray) -> float:
     return 1.0 / (4.0 * float(stats.chi2.pdf(q, k)) * q * math.sqrt(dof.size))
 
 
+def _fitted_data(model, y: np.ndarray, pred: np.ndarray) -> np.ndarray:
+    """The variant of ``y`` the fit used per voxel (``model.candidates``, e.g. IR polarity): the closest to ``pred``."""
+    cands = model.candidates(y)
+    if len(cands) == 1:
+        return y
+    best = np.asarray(cands[0], dtype=np.float64)
+    best_rss = np.sum((best - pred) ** 2, axis=1)
+    for c in cands[1:]:
+        c = np.asarray(c, dtype=np.float64)
+        rss = np.sum((c - pred) ** 2, axis=1)
+        take = rss < best_rss
+        best[take], best_rss[take] = c[take], rss[take]
+    return best
+
+
 def _residuals_above(y, pred, h, ok, sigma, n_params):
     keep = np.abs(pred) >= FLOOR_MARGIN * np.reshape(np.asarray(sigma, float), (-1, 1))
     r = y - pred
@@ -926,6 +941,7 @@ def residual_estimate(
     fit = fit_chunk(model, y, ctx=ctx)
     pred, J = model.signal_jacobian(fit.params, ctx)
     h = _leverage(J)
+    y = _fitted_data(model, y, pred)
     good = fit.status == 0
     # start from every sample (an underestimate where the decay reaches the floor), then iterate
     r = y - pred
@@ -1145,7 +1161,8 @@ def local_noise_map(
     def on_chunk(a: int, b: int, fit) -> None:
         c = None if not ctx else {k: v[a:b] for k, v in ctx.items()}
         pred, J = model.signal_jacobian(fit.params, c)
-        rss[a:b], dof[a:b] = _residuals_above(y[a:b], pred, _leverage(J), fit.status == 0, g, n_params)
+        yy = _fitted_data(model, np.asarray(y[a:b], np.float64), pred)
+        rss[a:b], dof[a:b] = _residuals_above(yy, pred, _leverage(J), fit.status == 0, g, n_params)
 
     if idx.size:
         fit_voxels(model, y, ctx=ctx, n_jobs=n_jobs, on_chunk=on_chunk, label="noise map")

@@ -419,12 +419,12 @@ def fit_options(options: dict | None = None, config=None) -> dict:
                 doc = tomllib.load(fh)
         except (OSError, tomllib.TOMLDecodeError) as exc:
             raise UsageError(f"--config {config}: cannot read it as TOML ({exc})") from None
-        for table in doc:
-            if table != "all" and table not in FIT_KINDS:
-                raise UsageError(f"--config {config}: unknown table [{table}]; expected all, "
+        for name in doc:
+            if name != "all" and name not in FIT_KINDS:
+                raise UsageError(f"--config {config}: unknown table [{name}]; expected all, "
                                  f"{', '.join(sorted(FIT_KINDS))}")
-            if not isinstance(doc[table], dict):
-                raise UsageError(f"--config {config}: {table} must be a table ([{table}]) of options")
+            if not isinstance(doc[name], dict):
+                raise UsageError(f"--config {config}: {name} must be a table ([{name}]) of options")
         if "all" in doc:
             layers.append(("all", doc["all"]))
         layers += [(t, v) for t, v in doc.items() if t != "all"]
