@@ -34,7 +34,7 @@ from typing import Protocol
 
 import numpy as np
 import numpy.typing as npt
-from scipy import ndimage
+from scipy import ndimage, special
 
 from .errors import InputError
 from .noise import _check_coils
@@ -450,12 +450,33 @@ def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[fl
     return new, 1.0 - kept.size / bg.size
 
 
+# chi-squared quantiles and densities through scipy.special (scipy.stats costs ~0.7 s to import)
+
+
+def _chi2_ppf(p, k):
+    """Quantile of the chi-squared distribution with ``k`` degrees of freedom (array_like k)."""
+    return 2.0 * special.gammaincinv(np.asarray(k, float) / 2.0, p)
+
+
+def _chi2_isf(p, k):
+    """Upper-tail quantile (the x with P(X > x) = p) of chi-squared with ``k`` degrees of freedom."""
+    return 2.0 * special.gammainccinv(np.asarray(k, float) / 2.0, p)
+
+
+def _chi2_pdf(x: float, k: float) -> float:
+    """Density of chi-squared with ``k`` degrees of freedom at ``x``."""
+    return math.exp((k / 2 - 1) * math.log(x) - x / 2 - (k / 2) * math.log(2.0) - special.gammaln(k / 2))
+
+
+def _chi_pdf(x: float, k: int) -> float:
+    """Density of the chi distribution with ``k`` degrees of freedom at ``x`` (2 x chi2_pdf(x^2) x)."""
+    return 2.0 * x * _chi2_pdf(x * x, float(k))
+
+
 @functools.lru_cache(maxsize=64)
 def _chi_tail(coils: int) -> float:
     """The ``1 - 1e-6`` quantile of the chi distribution with ``2 * coils`` dof."""
-    from scipy import stats  # imported here: scipy.stats costs ~0.7 s at start-up
-
-    return float(stats.chi(2 * int(coils)).isf(1e-6))
+    return math.sqrt(_chi2_isf(1e-6, 2.0 * int(coils)))
 
 
 @functools.lru_cache(maxsize=64)
@@ -463,9 +484,7 @@ def _chi_median(coils: int) -> float:
     """Median of the chi distribution with ``2 * coils`` degrees of freedom."""
     if coils == 1:
         return math.sqrt(2.0 * math.log(2.0))
-    from scipy import stats
-
-    return float(stats.chi(2 * int(coils)).median())
+    return math.sqrt(_chi2_ppf(0.5, 2.0 * int(coils)))
 
 
 # ---------------------------------------------------------------------------
@@ -543,11 +562,8 @@ def median_relative_se(coils: int = 1) -> float:
     coils = _check_coils(coils)
     if coils == 1:
         return 1.0 / (2.0 * math.log(2.0))
-    from scipy import stats
-
-    dist = stats.chi(2 * coils)
-    m = float(dist.median())
-    return 1.0 / (2.0 * float(dist.pdf(m)) * m)
+    m = _chi_median(coils)
+    return 1.0 / (2.0 * _chi_pdf(m, 2 * coils) * m)
 
 
 def _quantum(values: np.ndarray) -> float:
@@ -579,14 +595,12 @@ def _median_sigma(values: np.ndarray, quantum: float, coils: int) -> float:
     """
     if quantum <= 0:
         return float(np.median(values)) / _chi_median(coils)
-    from scipy import stats
-
     k = np.round(values / quantum).astype(np.int64)
     k0 = int(k.min())
     frac = np.cumsum(np.bincount(k - k0)) / values.size
     j = int(np.argmin(np.abs(frac - 0.5)))
     f = min(max(float(frac[j]), 1e-9), 1 - 1e-9)
-    return (j + k0 + 0.5) * quantum / float(stats.chi(2 * coils).ppf(f))
+    return (j + k0 + 0.5) * quantum / math.sqrt(_chi2_ppf(f, 2.0 * coils))
 
 
 def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
@@ -817,33 +831,22 @@ def _leverage(J: np.ndarray) -> np.ndarray:
 
 
 def _pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
-    """Robust pooled sigma: the s with median_i F_chi2(dof_i)(rss_i / s^2) = 1/2.
+    """Robust pooled sigma from per-voxel residual sums of squares.
 
     For voxels whose residuals are Gaussian with sd sigma, ``rss_i / sigma^2`` is chi-squared with
     ``dof_i`` degrees of freedom (number of residuals used minus the fitted parameters' leverage on
-    them); the median of the probability transforms is then 1/2 at the true sigma. A minority of
-    voxels where the model does not fit (edges, partial volume) moves the median little.
+    them), so ``u_i = rss_i / median(chi2(dof_i))`` has median ``sigma^2`` for every voxel, and so has
+    their pool: sigma is the square root of the median of the ``u_i``. A minority of voxels where the
+    model does not fit (edges, partial volume) moves the median little.
     """
-    from scipy import stats
-
-    lo, hi = math.log(np.min(rss / dof) + 1e-300) / 2 - 1, math.log(np.max(rss / dof) + 1e-300) / 2 + 1
-    for _ in range(60):
-        mid = 0.5 * (lo + hi)
-        s2 = math.exp(2 * mid)
-        if np.median(stats.chi2.cdf(rss / s2, dof)) > 0.5:
-            lo = mid
-        else:
-            hi = mid
-    return math.exp(0.5 * (lo + hi))
+    return math.sqrt(float(np.median(rss / _chi2_ppf(0.5, dof))))
 
 
 def _pooled_relative_se(dof: np.ndarray) -> float:
     """Relative standard error of :func:`_pooled_sigma` (sample-median asymptotics, median dof)."""
-    from scipy import stats
-
     k = float(np.median(dof))
-    q = float(stats.chi2.median(k))
-    return 1.0 / (4.0 * float(stats.chi2.pdf(q, k)) * q * math.sqrt(dof.size))
+    q = float(_chi2_ppf(0.5, k))
+    return 1.0 / (4.0 * _chi2_pdf(q, k) * q * math.sqrt(dof.size))
 
 
 def _fitted_data(model, y: np.ndarray, pred: np.ndarray) -> np.ndarray:
@@ -1136,8 +1139,6 @@ def local_noise_map(
         ``sigma`` an (X, Y, Z) map, ``source="local"``, ``relative_precision`` the median over the
         mask of each voxel's.
     """
-    from scipy import stats
-
     from .engine import fit_voxels
 
     shape = source.shape
@@ -1170,7 +1171,7 @@ def local_noise_map(
     s2 = np.zeros(idx.size)
     s2[use] = rss[use] / dof[use]
     # misfits: far above what a 3x higher noise would give by chance
-    limit = 9.0 * g * g * stats.chi2.isf(1e-4, np.maximum(dof, 1.0)) / np.maximum(dof, 1.0)
+    limit = 9.0 * g * g * _chi2_isf(1e-4, np.maximum(dof, 1.0)) / np.maximum(dof, 1.0)
     use &= s2 <= limit
     w = np.zeros(int(np.prod(shape)))
     v = np.zeros_like(w)
