@@ -914,8 +914,8 @@ def residual_estimate(
     :math:`E[\\sum_j r_j^2] = \\sigma^2 \\sum_j (1 - h_{jj})` with :math:`h` the hat matrix of the
     (linearised) fit. Only samples whose fitted value is at least :data:`FLOOR_MARGIN` sigma count,
     where the magnitude of a Rician sample has nearly Gaussian noise of sd sigma (Gudbjartsson & Patz
-    1995); sigma and that selection are iterated to agreement. Voxels are pooled by the median of
-    their chi-squared probabilities (:func:`_pooled_sigma`). A model that does not fit (e.g. a
+    1995); sigma and that selection are iterated to agreement. Voxels are pooled robustly
+    (:func:`_pooled_sigma`). A model that does not fit (e.g. a
     multi-exponential decay fitted as one exponential) inflates the estimate.
     """
     mask = np.asarray(mask, bool)
