@@ -525,6 +525,9 @@ class NoiseEstimate:
         Further facts for the provenance (e.g. the other source's value when both were computed).
     notes : list of str
         What a user should know (printed with the run summary).
+    warnings : list of str
+        What may make the value wrong (a model that does not fit, uneven noise, a coil count that
+        disagrees): logged as warnings by the command line and recorded in the provenance.
     """
 
     sigma: float | np.ndarray
@@ -534,6 +537,7 @@ class NoiseEstimate:
     coils: int | None = None
     details: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)
 
     @property
     def value(self) -> float:
@@ -548,6 +552,8 @@ class NoiseEstimate:
         out = {"sigma_mode": mode, "sigma": self.value, "source": self.source, "n_voxels": int(self.n_voxels),
                "relative_precision": None if self.relative_precision is None else float(self.relative_precision)}
         out.update(self.details)
+        if self.warnings:
+            out["warnings"] = list(self.warnings)
         return out
 
 
@@ -739,6 +745,7 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
             f"cannot estimate the noise from the background: it is not pure noise (background median {med_bg:.4g} "
             f"vs object median {med_obj:.4g}, expected below a third; unmasked signal, or no object in the image)")
     notes: list[str] = []
+    warns: list[str] = []
     details: dict = {}
     use = 1 if coils is None else _check_coils(coils)
     sigma, outliers = _clipped_sigma(bg, use, quantum)
@@ -766,17 +773,17 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
                          f"(effective {n_eff:.1f}); sigma and the Rician fit use {n_round} coils (override with "
                          "--coils N)")
         elif coils is not None and abs(n_eff - coils) > max(0.5, 3.0 * se_r * n_eff * n_eff) and n_round != coils:
-            notes.append(f"the background's moments fit a sum of squares over about {n_eff:.1f} coils, not the "
+            warns.append(f"the background's moments fit a sum of squares over about {n_eff:.1f} coils, not the "
                          f"--coils {coils} given; check --coils")
     rel = median_relative_se(use) / math.sqrt(bg.size)
     if quantum > 0:
         details["quantum"] = quantum
     uneven = _uneven_background(bg, rows, b.index, b.shape, use, quantum)
     if uneven:
-        notes.append(uneven)
+        warns.append(uneven)
         details["uneven_background"] = True
     return NoiseEstimate(sigma=float(sigma), source="background", n_voxels=b.n_usable, relative_precision=rel,
-                         coils=use, details=details, notes=notes)
+                         coils=use, details=details, notes=notes, warnings=warns)
 
 
 def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
@@ -1072,7 +1079,7 @@ def estimate_noise(
         chosen.details["residual_sigma"] = res.value
         agree, ratio = _agree(bg, res)
         if not agree:
-            chosen.notes.append(
+            chosen.warnings.append(
                 f"the background ({bg.value:.4g}) and the fit residuals ({res.value:.4g}) disagree on the noise "
                 f"level (ratio {ratio:.2f}, beyond their uncertainty): the model may not describe the data (e.g. "
                 "a multi-exponential decay), the noise may vary over the image (--sigma local), or the background "
@@ -1217,7 +1224,8 @@ def local_noise_map(
                  if inside.any() else "local noise map: empty mask")
     details = dict(first.details, smoothing_sd_voxels=width, first_source=first.source, first_sigma=g)
     return NoiseEstimate(sigma=sig.astype(np.float32), source="local", n_voxels=int(use.sum() + b.n_usable),
-                         relative_precision=rel, coils=first.coils, details=details, notes=notes)
+                         relative_precision=rel, coils=first.coils, details=details, notes=notes,
+                         warnings=[w for w in first.warnings if "--sigma local" not in w])
 
 
 def array_sigma(data: np.ndarray, model, spec, *, mask=None, coils: int | None = None,

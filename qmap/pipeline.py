@@ -264,6 +264,8 @@ def resolve_sigma(
         est = estimate_noise(series, model=model, mask=mask, ctx_maps=ctx_maps, coils=coils, max_bytes=max_bytes,
                              local=spec == "local", n_jobs=n_jobs)
         info = est.provenance(spec)
+        for w in est.warnings:
+            log.warning("%s", w)
         words = {"background": "image background", "residuals": "residuals of a first fit inside the object",
                  "local": "local noise map"}[est.source]
         info.update(value=est.value, sigma_source=f"{spec} ({words})", coils=est.coils, notes=list(est.notes))

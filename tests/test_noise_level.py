@@ -153,7 +153,7 @@ def test_residual_and_background_estimates_agree():
     assert res.value == pytest.approx(4.0, rel=0.05)
     assert abs(math.log(bg.value / res.value)) < 3 * math.hypot(bg.relative_precision, res.relative_precision)
     est = estimate_noise(src, model=MonoExponential(TE))
-    assert est.source == "background" and "residual_sigma" in est.details and not est.notes
+    assert est.source == "background" and "residual_sigma" in est.details and not est.warnings
 
 
 def test_model_misfit_is_reported_when_both_sources_exist():
@@ -166,7 +166,7 @@ def test_model_misfit_is_reported_when_both_sources_exist():
     d = rician(s, 2.0, rng)
     est = estimate_noise(ArraySource(d), model=MonoExponential(TE))
     assert est.source == "background" and est.value == pytest.approx(2.0, rel=0.05)
-    assert any("disagree" in n for n in est.notes)
+    assert any("disagree" in n for n in est.warnings)
 
 
 # ---------------------------------------------------------------------------
@@ -190,7 +190,7 @@ def test_sum_of_squares_background_is_recognised_from_its_moments(coils):
     assert any(f"{coils} coils" in n for n in est.notes)
     # with --coils 1 given, it says so instead of changing it
     told = background_estimate(ArraySource(d), coils=1)
-    assert told.coils == 1 and any("check --coils" in n for n in told.notes)
+    assert told.coils == 1 and any("check --coils" in n for n in told.warnings)
 
 
 def test_rayleigh_background_is_not_mistaken_for_several_coils():
@@ -210,9 +210,9 @@ def test_uneven_background_noise_suggests_local():
     obj[16:32, 16:32] = True
     d = rician(np.where(obj, 200.0, 0.0)[..., None] * np.ones(4), sig[..., None], rng)
     est = background_estimate(ArraySource(d))
-    assert any("--sigma local" in n for n in est.notes)
+    assert any("--sigma local" in n for n in est.warnings)
     even = rician(np.where(obj, 200.0, 0.0)[..., None] * np.ones(4), 2.0, rng)
-    assert not background_estimate(ArraySource(even)).notes
+    assert not background_estimate(ArraySource(even)).warnings
 
 
 # ---------------------------------------------------------------------------
