@@ -113,6 +113,10 @@ def test_t2star_and_b1_are_close_to_the_truth(demo):
     ok = np.isfinite(b1)
     assert ok.sum() > 400
     assert np.median(np.abs(b1[ok] - ref[ok])) < 0.01
+    # its standard error is finite wherever B1 is (the noise level comes from the coarse image's
+    # 240 background voxels x 2 volumes: 0.7213 / sqrt(480) = 3.3 % precision)
+    se = nib.load(str(out / "maps" / "b1_desc-stderr_TB1map.nii.gz")).get_fdata()
+    assert np.all(np.isfinite(se[ok]) & (se[ok] > 0))
 
 
 def test_printed_table_matches_the_report(demo):
