@@ -75,11 +75,11 @@ def test_4d_list_sidecar_and_3d_scalar_sidecars_give_identical_maps(tmp_path, ca
     prov = json.loads((tmp_path / "a" / "x_provenance.json").read_text())
     assert prov["acquisition"]["InversionTime"] == pytest.approx(TI.tolist())
     assert prov["acquisition"]["RepetitionTime"] == 8.0
-    # a tightly cropped image: no noise level to be had, so the standard errors fall back to the residual
-    # convention (and say so) instead of failing
-    assert prov["noise"]["sigma"] is None and "background" in prov["noise"]["stderr_fallback"]
-    assert prov["noise"]["stderr"]["convention"] == "residual"
-    assert prov["outputs"]["x_desc-stderr_T1map.nii.gz"]["convention"] == "residual"
+    # a tightly cropped image: no background, so the noise level comes from the residuals of a first fit of
+    # the inversion-recovery model inside the object (true sigma 10), and the standard errors from it
+    assert prov["noise"]["source"] == "residuals" and prov["noise"]["sigma"] == pytest.approx(10.0, rel=0.2)
+    assert prov["noise"]["stderr"]["convention"] == "noise"
+    assert prov["outputs"]["x_desc-stderr_T1map.nii.gz"]["convention"] == "noise"
     assert prov["model"]["look_locker"] is False and prov["model"]["signal"] == "magnitude"
     assert prov["outputs"]["x_InversionEfficiencymap.nii.gz"] == {
         "parameter": "InversionEfficiency", "kind": "estimate", "units": "fraction"}
