@@ -34,7 +34,6 @@ from typing import Protocol
 
 import numpy as np
 import numpy.typing as npt
-from scipy import ndimage, special
 
 from .errors import InputError
 from .noise import _check_coils
@@ -221,6 +220,8 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
         threshold = min(threshold, MASK_NOISE_FACTOR * float(np.median(lower)))
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
+    from scipy import ndimage  # imported on use (start-up time)
+
     mask = ndimage.binary_opening(np.pad(peak > threshold, 1, mode="edge"))[1:-1, 1:-1, 1:-1]
     return ndimage.binary_fill_holes(mask)
 
@@ -454,17 +455,25 @@ def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[fl
 
 
 def _chi2_ppf(p, k):
-    """Quantile of the chi-squared distribution with ``k`` degrees of freedom (array_like k)."""
+    """Quantile of the chi-squared distribution with ``k`` degrees of freedom (array_like k).
+
+    ``X / 2`` of a chi-squared variable with ``k`` degrees of freedom is Gamma(k/2, 1) distributed, so the
+    quantiles come from the inverse regularised incomplete gamma functions (DLMF 8.2.4;
+    ``scipy.special.gammaincinv`` / ``gammainccinv``).
+    """
+    from scipy import special
     return 2.0 * special.gammaincinv(np.asarray(k, float) / 2.0, p)
 
 
 def _chi2_isf(p, k):
     """Upper-tail quantile (the x with P(X > x) = p) of chi-squared with ``k`` degrees of freedom."""
+    from scipy import special
     return 2.0 * special.gammainccinv(np.asarray(k, float) / 2.0, p)
 
 
 def _chi2_pdf(x: float, k: float) -> float:
     """Density of chi-squared with ``k`` degrees of freedom at ``x``."""
+    from scipy import special
     return math.exp((k / 2 - 1) * math.log(x) - x / 2 - (k / 2) * math.log(2.0) - special.gammaln(k / 2))
 
 
@@ -654,6 +663,8 @@ class _Background:
 
 
 def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float | None, dilate: int) -> _Background:
+    from scipy import ndimage  # imported on use (start-up time)
+
     obj = np.asarray(obj, dtype=bool)
     bg = ~ndimage.binary_dilation(obj, iterations=dilate) if (dilate > 0 and obj.any()) else ~obj
     n_out = int(bg.sum())
@@ -1146,6 +1157,8 @@ def local_noise_map(
         ``sigma`` an (X, Y, Z) map, ``source="local"``, ``relative_precision`` the median over the
         mask of each voxel's.
     """
+    from scipy import ndimage
+
     from .engine import fit_voxels
 
     shape = source.shape
