@@ -165,9 +165,6 @@ def fit_volume(
         if noise.needs_sigma:
             status[sel & ~ok_sigma] = st.NONFINITE
             sel &= ok_sigma
-            noise_only = sel & _indistinguishable_from_noise(data, sig_flat, noise.coils)
-            status[noise_only] = st.TOO_FEW_SAMPLES
-            sel &= ~noise_only
     idx = np.flatnonzero(sel)
     if ctx_maps:
         ctx = {k: v[idx] for k, v in ctx_flat.items()}
@@ -229,32 +226,6 @@ def fit_volume(
     if se_in:
         info["stderr"]["propagated_inputs"] = sorted(se_in)
     return MapSet(estimates, stderr_out, units, descriptions, tuple(times), quality, status.reshape(shape), info)
-
-
-#: a voxel is left unfitted as pure noise when its samples' sum of squares is below this upper-tail
-#: quantile of what pure noise gives (a pure-noise voxel is kept, and fitted, once in 1/NOISE_ONLY_P)
-NOISE_ONLY_P = 1e-3
-
-
-def _indistinguishable_from_noise(data: np.ndarray, sigma: np.ndarray, coils: int) -> np.ndarray:
-    """Voxels whose magnitudes are consistent with pure noise (flat (nvox,) bool).
-
-    For pure noise the magnitude is :math:`\\sigma\\chi_{2N}` (N sum-of-squares coils), so
-    :math:`\\sum_k M_k^2 / \\sigma^2` over the m samples is chi-squared with :math:`2Nm` degrees of
-    freedom. A voxel below its ``1 - NOISE_ONLY_P`` quantile shows no signal that a fit could
-    describe (at very low SNR the automatic mask takes in the background): it gets status 7
-    instead of a confident-looking fit of noise.
-    """
-    from scipy import special  # scipy.stats costs ~0.7 s to import; the chi-squared quantile is a gamma one
-
-    m = data.shape[-1]
-    ss = np.zeros(data.shape[:-1])
-    for k in range(m):  # one volume at a time: no (voxels x samples) temporary
-        v = np.asarray(data[..., k], dtype=np.float64)
-        ss += v * v
-    limit = 2.0 * float(special.gammainccinv(coils * m, NOISE_ONLY_P))  # chi2(2 N m).isf(p)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return (ss.reshape(-1) / (sigma * sigma)) < limit
 
 
 def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int) -> MapSet:

@@ -40,7 +40,7 @@ STATUS_CODES = {
     NOT_CONVERGED: "the fit did not converge within the iteration limit",
     ILL_CONDITIONED: "the fit is ill-conditioned: standard errors are not estimable",
     OUTSIDE_B1: "outside the B1 map's field of view, not fitted",
-    TOO_FEW_SAMPLES: "too few samples above the noise floor to fit (or no signal distinguishable from noise)",
+    TOO_FEW_SAMPLES: "too few samples above the noise floor to fit",
     NO_VALID_ANGLE: "the signal ratio corresponds to no valid flip angle",
     OUTSIDE_LOOKUP: "the value (MP2RAGE UNI) lies outside the range the lookup table can invert at this voxel's B1",
     LOW_SNR: "signal-to-noise ratio too low for a reliable T2 spectrum (values kept; see --min-snr)",
