@@ -5,9 +5,13 @@ read slab by slab under ``--max-memory``) and the array functions (an array
 wrapped as one slab, :class:`ArraySource`):
 
 * :func:`peak_image` / :func:`mask_from_peak` / :func:`object_mask`: each
-  voxel's brightest sample, thresholded at half of Otsu's threshold;
-* :func:`background_sigma`: the noise standard deviation per real channel from
-  the Rayleigh (chi) statistics of the background outside the grown object.
+  voxel's brightest sample, thresholded at half of Otsu's threshold (or lower,
+  to keep dim regions clearly above the noise);
+* :func:`estimate_noise`: the noise standard deviation per real channel, from
+  the Rayleigh (chi) statistics of the background outside the grown object
+  (:func:`background_estimate`), else from the residuals of a plain first fit
+  inside the object (:func:`residual_estimate`); :func:`local_noise_map` for
+  ``--sigma local``.
 
 References
 ----------
