@@ -295,7 +295,7 @@ def test_defaults_work_on_cropped_zero_filled_and_tiny_series(tmp_path, case, sh
     d, t2, obj = _decay_volume(shape, rim=rim, sigma=5.0, seed=len(case), zero_fill=zero)  # SNR 20
     path = write_nifti(tmp_path / "sub-01_T2starw.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
     out = tmp_path / "out"
-    assert main(["t2star", str(path), "-o", str(out), "-q"]) == 0
+    assert main(["t2star", str(path), "-o", str(out), "-q", "--prefix", "sub-01_T2starw"]) == 0
     prov = json.loads((out / "sub-01_T2starw_provenance.json").read_text())
     noise = prov["noise"]
     assert noise["mode"] == "rician" and noise["sigma_mode"] == "auto"
@@ -306,7 +306,8 @@ def test_defaults_work_on_cropped_zero_filled_and_tiny_series(tmp_path, case, sh
     status = nib.load(out / "sub-01_T2starw_desc-status_fitmap.nii.gz").get_fdata()
     assert _short_bias(t2map, t2, obj & (status == 0)) < 0.03
     if case == "cropped":
-        assert main(["t2star", str(path), "-o", str(tmp_path / "plain"), "-q", "--noise-floor", "none"]) == 0
+        assert main(["t2star", str(path), "-o", str(tmp_path / "plain"), "-q", "--noise-floor", "none",
+                     "--prefix", "sub-01_T2starw"]) == 0
         plain = nib.load(tmp_path / "plain" / "sub-01_T2starw_T2starmap.nii.gz").get_fdata()
         assert _short_bias(plain, t2, obj) > 0.1  # what the noise floor fixes
 
@@ -320,7 +321,7 @@ def test_sigma_local_on_noise_varying_2_5x(tmp_path):
     d = rician(100 * np.exp(-TE / t2[..., None]), sig[..., None], rng).astype(np.float32)
     path = write_nifti(tmp_path / "sub-01_T2starw.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
     out = tmp_path / "out"
-    assert main(["t2star", str(path), "-o", str(out), "-q", "--sigma", "local"]) == 0
+    assert main(["t2star", str(path), "-o", str(out), "-q", "--sigma", "local", "--prefix", "sub-01_T2starw"]) == 0
     t2map = nib.load(out / "sub-01_T2starw_T2starmap.nii.gz").get_fdata()
     smap = nib.load(out / "sub-01_T2starw_desc-noise_sigmamap.nii.gz").get_fdata()
     assert np.median(smap / sig) == pytest.approx(1.0, abs=0.03)
@@ -341,7 +342,7 @@ def test_pure_noise_voxels_with_a_given_sigma_are_not_fitted(tmp_path):
     d = rician(np.where(obj, 6.0, 0.0)[..., None] * np.exp(-TE / 0.05), 1.0, rng)
     path = write_nifti(tmp_path / "lo.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
     out = tmp_path / "out"
-    assert main(["t2star", str(path), "-o", str(out), "-q", "--sigma", "1", "--mask", "none"]) == 0
+    assert main(["t2star", str(path), "-o", str(out), "-q", "--sigma", "1", "--mask", "none", "--prefix", "lo"]) == 0
     from qmap.fitting import status as st
 
     status = nib.load(out / "lo_desc-status_fitmap.nii.gz").get_fdata()
@@ -364,7 +365,7 @@ def test_epg_cropped_series_runs_with_defaults(tmp_path):
     d = rician(500 * trains[which], 5.0, rng)  # SNR 100 at TE 0 (cropped: no background)
     path = write_nifti(tmp_path / "sub-01_MESE.nii.gz", d, sidecar={"EchoTime": te.tolist()})
     out = tmp_path / "out"
-    assert main(["t2", str(path), "--epg", "-o", str(out), "-q"]) == 0
+    assert main(["t2", str(path), "--epg", "-o", str(out), "-q", "--prefix", "sub-01_MESE"]) == 0
     t2map = nib.load(out / "sub-01_MESE_T2map.nii.gz").get_fdata()
     for k, t2 in enumerate(t2s):
         assert np.median(t2map[which == k]) == pytest.approx(t2, rel=0.03)
