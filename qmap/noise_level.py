@@ -31,7 +31,6 @@ Syst Man Cybern 1979;9:62. doi:10.1109/TSMC.1979.4310076
 from __future__ import annotations
 
 import functools
-import logging
 import math
 from dataclasses import dataclass, field
 from typing import Protocol
@@ -41,8 +40,6 @@ import numpy.typing as npt
 
 from .errors import InputError
 from .noise import _check_coils
-
-log = logging.getLogger("qmap")
 
 __all__ = [
     "ArraySource",

@@ -265,7 +265,7 @@ def resolve_sigma(
                              local=spec == "local", n_jobs=n_jobs)
         info = est.provenance(spec)
         for w in est.warnings:
-            log.warning("%s", w)
+            warn(w)
         words = {"background": "image background", "residuals": "residuals of a first fit inside the object",
                  "local": "local noise map"}[est.source]
         info.update(value=est.value, sigma_source=f"{spec} ({words})", coils=est.coils, notes=list(est.notes))
