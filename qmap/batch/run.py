@@ -29,7 +29,7 @@ from ..errors import OutputError, UsageError
 from .plan import FIT_KINDS, BatchPlan, SeriesPlan, discover
 from .series import SeriesResult, run_series, series_state
 
-__all__ = ["BIDS_VERSION", "BatchReport", "dataset_description", "run_batch"]
+__all__ = ["BATCH_OPTIONS", "BIDS_VERSION", "BatchReport", "dataset_description", "fit_options", "run_batch"]
 
 #: BIDS version the derivative layout follows (qMRI suffixes and derivative
 #: dataset_description fields exist since 1.5 / 1.4; memory)
@@ -446,7 +446,7 @@ def fit_options(options: dict | None = None, config=None) -> dict:
 
 
 def _option_text(name: str, value) -> str:
-    from .fitting.noise_floor import MODES
+    from ..defaults import NOISE_MODES as MODES
 
     text = str(value)
     if name == "noise-floor" and text not in MODES:
