@@ -161,13 +161,18 @@ class NoiseFloor:
         limit = sig * (k + NOISE_ONLY_Z * sd / math.sqrt(m))
         return (np.mean(y, axis=1) < limit) & (sig > 0)
 
-    def rician_refine(self, model, y, w, p, rss, J, conv, nit, sigma, ctx, lo, hi, *, max_iter=60):
-        """Refit near-floor voxels with the Rician expectation as the model."""
+    def rician_select(self, model, p, sigma, ctx) -> np.ndarray:
+        """Indices of the voxels whose Gaussian fit ``p`` comes within ``RICIAN_SWITCH`` sigma of the floor."""
+        sig = np.broadcast_to(np.asarray(sigma, float), p.shape[:1])
+        s = model.predict(p, ctx)
+        return np.flatnonzero(np.min(s, axis=1) < RICIAN_SWITCH * sig)
+
+    def rician_refine(self, model, y, w, p, rss, J, conv, nit, sigma, ctx, lo, hi, *, max_iter=60, select=None):
+        """Refit near-floor voxels (``select``, default :meth:`rician_select`) with the Rician expectation."""
         from ..noise import rician_mean_grad
 
         sig = np.broadcast_to(np.asarray(sigma, float), y.shape[:1])
-        s = model.predict(p, ctx)
-        sel = np.flatnonzero(np.min(s, axis=1) < RICIAN_SWITCH * sig)
+        sel = self.rician_select(model, p, sigma, ctx) if select is None else np.asarray(select, np.intp)
         if sel.size == 0:
             return p, rss, J, conv, nit
         sub_ctx = None if not ctx else {k: v[sel] for k, v in ctx.items()}

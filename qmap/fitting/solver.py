@@ -21,6 +21,12 @@ For a chunk of voxels ``y`` (n, m) and a :class:`~qmap.models.base.SeparableMode
    Voxels with an estimate at a bound get an infinite covariance: the
    linearised interval means nothing there.
 
+A model may offer a cheap stand-in with the same parameters (``model.surrogate()``,
+the interpolated EPG table of :class:`qmap.models.epg_t2.EpgT2Table`): steps 1-3
+then run on the stand-in and every fit is finished by Levenberg-Marquardt on the
+exact model from there, so the minimum, RSS, Jacobian and covariance are the
+exact model's (the stand-in only saves exact evaluations).
+
 Every voxel's arithmetic after the grid search is element-wise, so results do
 not depend on the chunk size or on how many workers ran.
 """
@@ -181,6 +187,7 @@ def levenberg_marquardt(
     max_iter: int = 60,
     xtol: float = 1e-8,
     ftol: float = 1e-13,
+    se_tol: float = 1e-3,
 ):
     """Batched, bounded Levenberg-Marquardt.
 
@@ -266,7 +273,7 @@ def levenberg_marquardt(
         if m_dof > 0:
             with np.errstate(divide="ignore", invalid="ignore"):
                 se_floor = np.sqrt(wrss / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", H))
-            small_step |= np.all(step <= 1e-3 * se_floor, axis=1)
+            small_step |= np.all(step <= se_tol * se_floor, axis=1)
         small_drop = (wrss - rssn) <= ftol * wrss
         # damping after Nielsen (1999; Madsen, Nielsen & Tingleff, "Methods for non-linear least
         # squares problems", 2004): shrink by how well the linear model predicted the decrease
@@ -386,18 +393,24 @@ def fit_chunk_unit(
     lo = np.concatenate([noise.linear_lower(fit_model), lo_nl])
     hi = np.concatenate([np.full(L, np.inf), hi_nl])
 
+    # a model may offer a cheap stand-in with the same parameters (the EPG table): it does the start and the
+    # bulk of the iterations, and every fit is then finished by Levenberg-Marquardt on the exact model
+    make_guide = getattr(model, "surrogate", None)
+    guide = None if make_guide is None else noise.wrap(make_guide())
+    run_model = fit_model if guide is None else guide
+
     def evaluate(p, idx):
-        return fit_model.signal_jacobian(p, _take(ctx, idx))
+        return run_model.signal_jacobian(p, _take(ctx, idx))
 
     best = None
     for yc in model.candidates(y):
         theta0 = model.initial_guess(yc, w, ctx)
         if theta0 is None:
-            theta0 = grid_start(fit_model, yc, w, ctx)
+            theta0 = grid_start(run_model, yc, w, ctx)
             if theta0.shape[1] == 1:
-                theta0 = refine_grid_1d(fit_model, yc, w, ctx, theta0)
+                theta0 = refine_grid_1d(run_model, yc, w, ctx, theta0)
         theta0 = np.clip(theta0, lo_nl, hi_nl)
-        c0 = linear_amplitudes(fit_model, yc, w, theta0, ctx)
+        c0 = linear_amplitudes(run_model, yc, w, theta0, ctx)
         c0 = np.where(np.isfinite(c0), c0, 0.0)
         c0 = np.maximum(c0, lo[:L])
         p, rss, J, conv, nit = levenberg_marquardt(evaluate, yc, wl, np.concatenate([c0, theta0], 1), lo, hi,
@@ -410,9 +423,26 @@ def fit_chunk_unit(
                 best[k][take] = v[take]
     p, rss, J, conv, nit, yfit = best
 
-    if noise.mode == "rician":
-        p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
-                                                   max_iter=max_iter)
+    sel = noise.rician_select(run_model, p, sigma, ctx) if noise.mode == "rician" else np.zeros(0, np.intp)
+    if sel.size:
+        p, rss, J, conv, nit = noise.rician_refine(run_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
+                                                   max_iter=max_iter, select=sel)
+    if guide is not None:
+        # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
+        # for the near-floor voxels): the minimum, RSS and Jacobian are the exact model's
+        gauss = np.setdiff1d(np.arange(n), sel)
+        p, rss, J, conv, nit = p.copy(), rss.copy(), J.copy(), conv.copy(), nit.copy()
+
+        def evaluate_exact(pp, idx):
+            return fit_model.signal_jacobian(pp, _take(ctx, gauss[idx]))
+
+        out = levenberg_marquardt(evaluate_exact, yfit[gauss], None if wl is None else wl[gauss], p[gauss], lo, hi,
+                                  max_iter=max_iter)
+        p[gauss], rss[gauss], J[gauss], conv[gauss] = out[:4]
+        nit[gauss] += out[4]
+        if sel.size:
+            p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
+                                                       max_iter=max_iter, select=sel)
 
     # covariance (see qmap.fitting.uncertainty for the two conventions)
     JTJ, _ = _normal(J, wl, np.zeros_like(yfit))

@@ -55,13 +55,15 @@ independent isochromat simulation and the closed forms to rounding.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 
 from ..epg import cpmg_cos
 from ..errors import InputError, warn
 from .base import Derived, SeparableModel, delta_se_inverse
 
-__all__ = ["EpgT2", "cpmg_cos", "echo_spacing"]
+__all__ = ["EpgT2", "EpgT2Table", "cpmg_cos", "echo_spacing"]
 
 #: smallest refocusing scale searched (90 degrees for a nominal 180)
 SCALE_MIN = 0.5
@@ -222,6 +224,10 @@ class EpgT2(SeparableModel):
         tt, cc = np.meshgrid(t2, self.from_scale(scale), indexing="ij")
         return np.column_stack([tt.ravel(), cc.ravel()])
 
+    def surrogate(self) -> EpgT2Table:
+        """The interpolated stand-in used for the bulk of the iterations (built once per process and protocol)."""
+        return _table_model(self.esp, self.n_echoes, self.t1, self.refocus_deg, self.n_t2, self.n_scale)
+
     # ------------------------------------------------------- angle <-> scale
     def from_scale(self, scale) -> np.ndarray:
         """cos of the refocusing angle for a refocusing scale (exactly -1 at 180 degrees)."""
@@ -266,3 +272,95 @@ class EpgT2(SeparableModel):
             Derived("RefocusScale", self.to_scale(c), se_scale, "fraction",
                     f"actual / nominal ({self.refocus_deg:g} deg) refocusing angle, at most 180 deg"),
         ]
+
+
+#: node spacing of the stand-in's table in ln(T2) and in c = cos(refocusing angle)
+TABLE_DU = 0.1
+TABLE_DC = 0.01
+
+
+class EpgT2Table(EpgT2):
+    """Fast stand-in for :class:`EpgT2`: the train interpolated from a precomputed table.
+
+    The normalised train ``E_k(T2, c)`` and its derivatives are computed once
+    with the exact kernel (:func:`qmap.epg.cpmg_cos`) on a grid of ``u = ln T2``
+    (step ``TABLE_DU``) by ``c`` (step ``TABLE_DC``) spanning the model's
+    bounds, and evaluated by bicubic Hermite interpolation (values and first
+    derivatives at the nodes exact, the cross derivative by central
+    differences of ``dE/dc`` along ``u``). It has the parameters, bounds and
+    start dictionary of the exact model. The solver uses it for the start and
+    the bulk of the iterations and finishes every fit with the exact model
+    (:func:`qmap.fitting.solver.fit_chunk_unit`), so it decides how fast the
+    exact minimum is reached, not where it is. The interpolation is
+    element-wise per voxel (row gathers and one small product per voxel), so
+    results do not depend on chunking.
+    """
+
+    def __init__(self, exact: EpgT2):
+        self.__dict__.update(exact.__dict__)
+        lo, hi = exact.bounds()
+        u0, u1 = np.log(lo[0]), np.log(hi[0])
+        self._nu = int(np.ceil((u1 - u0) / TABLE_DU)) + 1
+        self._nc = int(np.ceil((hi[1] - lo[1]) / TABLE_DC)) + 1
+        self._u = np.linspace(u0, u1, self._nu)
+        self._c = np.linspace(lo[1], hi[1], self._nc)
+        self._hu = float(self._u[1] - self._u[0])
+        self._hc = float(self._c[1] - self._c[0])
+        uu, cc = np.meshgrid(self._u, self._c, indexing="ij")
+        t2 = np.exp(uu.ravel())
+        f, f_t2, f_c = cpmg_cos(t2, cc.ravel(), esp=self.esp, n_echoes=self.n_echoes, t1=self.t1, grad=True)
+        E = self.n_echoes
+        shape = (self._nu, self._nc, E)
+        f_u = (f_t2 * t2[:, None]).reshape(shape)
+        f_c = f_c.reshape(shape)
+        f_uc = np.gradient(f_c, self._hu, axis=0)
+        # per node: [E, h_u dE/du, h_c dE/dc, h_u h_c d2E/du dc] (derivatives scaled to the unit cell)
+        tab = np.stack([f.reshape(shape), self._hu * f_u, self._hc * f_c, self._hu * self._hc * f_uc], axis=2)
+        self._tab = np.ascontiguousarray(tab.reshape(self._nu * self._nc, 4 * E))
+
+    @staticmethod
+    def _hermite(t):
+        t2 = t * t
+        t3 = t2 * t
+        w = (2 * t3 - 3 * t2 + 1, t3 - 2 * t2 + t, -2 * t3 + 3 * t2, t3 - t2)
+        dw = (6 * t2 - 6 * t, 3 * t2 - 4 * t + 1, -6 * t2 + 6 * t, 3 * t2 - 2 * t)
+        return w, dw
+
+    def _train(self, theta, grad=False):
+        t2 = np.asarray(theta[:, 0], float)
+        c = np.asarray(theta[:, 1], float)
+        x = (np.log(t2) - self._u[0]) / self._hu
+        z = (c - self._c[0]) / self._hc
+        i = np.clip(np.floor(x), 0, self._nu - 2).astype(np.intp)
+        j = np.clip(np.floor(z), 0, self._nc - 2).astype(np.intp)
+        wu, dwu = self._hermite(np.clip(x - i, 0.0, 1.0))
+        wc, dwc = self._hermite(np.clip(z - j, 0.0, 1.0))
+        E = self.n_echoes
+        n = t2.size
+        base = i * self._nc + j
+        corners = np.stack([base, base + 1, base + self._nc, base + self._nc + 1], axis=1)
+        rows = np.take(self._tab, corners, axis=0).reshape(n, 16, E)  # corner (a, b), then [E, E_u, E_c, E_uc]
+        k = 3 if grad else 1
+        wts = np.empty((n, k, 16))
+        col = 0
+        for a in (0, 1):
+            for b in (0, 1):
+                for ku, kc in ((0, 0), (1, 0), (0, 1), (1, 1)):
+                    pu, pc = 2 * a + ku, 2 * b + kc  # Hermite basis: [value at 0, slope at 0, value at 1, slope at 1]
+                    wts[:, 0, col] = wu[pu] * wc[pc]
+                    if grad:
+                        wts[:, 1, col] = dwu[pu] * wc[pc]
+                        wts[:, 2, col] = wu[pu] * dwc[pc]
+                    col += 1
+        out = np.matmul(wts, rows)  # (n, k, E): one small product per voxel, no sum across voxels
+        if not grad:
+            return out[:, 0]
+        return out[:, 0], out[:, 1] / (self._hu * t2[:, None]), out[:, 2] / self._hc
+
+
+@lru_cache(maxsize=4)
+def _table_model(esp: float, n_echoes: int, t1: float, refocus_deg: float, n_t2: int, n_scale: int) -> EpgT2Table:
+    exact = EpgT2(esp * np.arange(1, n_echoes + 1), refocus_deg=refocus_deg, t1=t1, n_t2=n_t2, n_scale=n_scale)
+    exact.esp = esp  # the caller's spacing exactly (not re-estimated from the echo times)
+    exact.x = esp * np.arange(1, n_echoes + 1)
+    return EpgT2Table(exact)
