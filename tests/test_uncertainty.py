@@ -294,3 +294,25 @@ def test_residual_convention_is_the_relative_sigma_of_curve_fit():
     # the residual sd sqrt(RSS / (m - P)) is kept as a quality map
     fitted = res["M0"][:, None] * np.exp(-te / res["T2star"][:, None])
     np.testing.assert_allclose(res.quality["residualsd"], np.sqrt(np.sum((y - fitted) ** 2, 1) / 6), rtol=1e-6)
+
+
+def test_ir_noise_level_from_the_residual_chain_when_there_is_no_background():
+    # a tightly cropped volume (no background): the chain estimates sigma from the residuals of a first fit
+    # inside the object (pooled over many voxels); the standard errors are then as well calibrated as with
+    # sigma given, within one percentage point
+    rng = np.random.default_rng(28)
+    n = 56 * 56
+    t1 = rng.uniform(0.3, 3.0, n)
+    k = rng.uniform(0.9, 1.0, n)
+    sigma = M0 / 30
+    vol = _rician(np.abs(_ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])), sigma, rng).reshape(56, 56, 1, TI.size)
+    model = InversionRecovery(TI)
+    est_sigma, info = resolve_sigma("auto", ArraySource(vol), model=model, mask=np.ones((56, 56, 1), bool))
+    assert info["source"] == "residuals"
+    assert est_sigma == pytest.approx(sigma, rel=0.05)
+    given = fit_volume(model, vol, sigma=sigma)
+    est = fit_volume(model, vol, sigma=float(est_sigma))
+    ok = (given.status == st.FITTED) & (est.status == st.FITTED)
+    c_given = _check(given["T1"][ok], t1.reshape(56, 56, 1)[ok], given.stderr["T1"][ok], lo=0.92)
+    c_est = _check(est["T1"][ok], t1.reshape(56, 56, 1)[ok], est.stderr["T1"][ok], lo=0.92)
+    assert abs(c_est - c_given) <= 0.01
