@@ -33,20 +33,20 @@ NAN_FALLBACK = ("the TB1 standard errors are NaN (give --sigma VALUE)",
 DAM_TR_NOTE_S = 5.0
 
 
-def _load_afi(inputs, fa, tr, max_bytes):
+def _load_afi(inputs, fa, tr, max_bytes, check_order=True):
     if fa is not None and np.size(fa) != 1:
         raise UsageError(f"--fa: AFI takes one nominal flip angle, got {np.size(fa)} values")
     fa1 = None if fa is None else float(np.ravel(fa)[0])
     series = load_series(inputs, key="RepetitionTime", value=tr, option="--tr",
                          scalars={"FlipAngle": (fa1, "--fa", True, "FlipAngle")}, min_volumes=2,
-                         what="AFI images", max_bytes=max_bytes)
+                         what="AFI images", max_bytes=max_bytes, check_order=check_order)
     if series.n != 2:
         raise InputError(f"{series.paths[0]}: AFI takes two images (TR1 and TR2), got {series.n}")
     trs = np.asarray(series.acquisition["RepetitionTime"], float)
     return series, float(series.acquisition["FlipAngle"]), float(trs[1] / trs[0])
 
 
-def _load_dam(inputs, fa, tr, max_bytes):
+def _load_dam(inputs, fa, tr, max_bytes, check_order=True):
     if fa is not None:
         fa = np.atleast_1d(np.asarray(fa, float))
         if fa.size == 1:
@@ -58,7 +58,7 @@ def _load_dam(inputs, fa, tr, max_bytes):
     tr1 = None if tr is None else float(np.ravel(tr)[0])
     series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
                          scalars={"RepetitionTime": (tr1, "--tr", False, "RepetitionTime")}, min_volumes=2,
-                         what="double-angle images", max_bytes=max_bytes)
+                         what="double-angle images", max_bytes=max_bytes, check_order=check_order)
     if series.n != 2:
         raise InputError(f"{series.paths[0]}: the double-angle method takes two images (a and 2a), got {series.n}")
     a = np.asarray(series.acquisition["FlipAngle"], float)
@@ -114,9 +114,9 @@ def run_b1(
         raise UsageError("--units does not apply to qmap b1: it writes no time map (TB1 is a fraction)")
     budget = common.max_memory
     if method == "afi":
-        series, fa_nom, n = _load_afi(inputs, fa, tr, budget)
+        series, fa_nom, n = _load_afi(inputs, fa, tr, budget, common.series_check)
     else:
-        series, fa_nom, n = _load_dam(inputs, fa, tr, budget)
+        series, fa_nom, n = _load_dam(inputs, fa, tr, budget, common.series_check)
     # two images, no residual: without a noise level the standard errors are NaN
     # (the library default sigma=None stays quiet about an unknown noise level; the command line's "auto" warns)
     run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=True, fallback=NAN_FALLBACK,
