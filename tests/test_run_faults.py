@@ -22,6 +22,7 @@ import textwrap
 import time
 from pathlib import Path
 
+import nibabel as nib
 import numpy as np
 import pytest
 
@@ -175,3 +176,83 @@ def test_waiting_writer_goes_through_when_the_folder_is_freed(series, tmp_path, 
         t.join()
     assert time.monotonic() - t0 >= 0.5
     assert sorted(p.name for p in out.iterdir() if p.name.startswith(".")) == []
+
+
+_CHILD_SLOW_LOCK = textwrap.dedent("""
+    import sys, time
+    from pathlib import Path
+    import qmap.io.writer as writer
+    real = writer.AtomicWriter._lock
+
+    def slow_lock(self):
+        real(self)
+        Path(sys.argv[1]).write_text("locked")  # holds the folder now, and keeps it a while
+        time.sleep(float(sys.argv[2]))
+
+    writer.AtomicWriter._lock = slow_lock
+    from qmap.cli import main
+    sys.exit(main(sys.argv[3:]))
+""")
+
+
+def _two_processes(series, out, tmp_path, first: list[str], second: list[str], hold_s: float = 3.0):
+    """Start a qmap process that holds ``out`` for ``hold_s`` s, then a second one into the same folder."""
+    marker = tmp_path / "marker"
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    base = ["t2star", str(series), "-o", str(out), "-q", "--sigma", "5"]
+    a = subprocess.Popen([sys.executable, "-c", _CHILD_SLOW_LOCK, str(marker), str(hold_s), *base, *first],
+                         stderr=subprocess.PIPE, text=True, env=env)
+    deadline = time.monotonic() + 60
+    while not marker.exists() and a.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert marker.exists(), a.communicate()[1]
+    b = subprocess.Popen([sys.executable, "-m", "qmap", *base, *second], stderr=subprocess.PIPE, text=True, env=env)
+    _, err_a = a.communicate(timeout=120)
+    _, err_b = b.communicate(timeout=120)
+    return (a.returncode, err_a), (b.returncode, err_b)
+
+
+def _files_of(out: Path, prefix: str) -> set[str]:
+    """The files one run wrote: its provenance, the outputs it lists and their JSON sidecars."""
+    outputs = json.loads((out / f"{prefix}_provenance.json").read_text())["outputs"]
+    sidecars = {name[: -len(".nii.gz")] + ".json" for name in outputs if name.endswith(".nii.gz")}
+    return {f"{prefix}_provenance.json", *outputs, *sidecars}
+
+
+def _chunk_size_of(out: Path, prefix: str) -> int:
+    return json.loads((out / f"{prefix}_provenance.json").read_text())["options"]["chunk_size"]
+
+
+def test_two_real_processes_same_outputs_the_second_is_refused(series, tmp_path):
+    """Two separate qmap processes, same folder and prefix, no --overwrite.
+
+    The second starts while the first holds the folder (before the first has
+    written anything, so its up-front check of existing outputs passes); it
+    waits for the lock, re-checks under it, finds the first run's outputs and
+    is refused with one line. The folder holds exactly the first run's files.
+    """
+    out = tmp_path / "out"
+    (rc_a, err_a), (rc_b, err_b) = _two_processes(series, out, tmp_path, ["--prefix", "run", "--chunk-size", "100"],
+                                                  ["--prefix", "run", "--chunk-size", "200"])
+    assert rc_a == 0, err_a
+    assert rc_b == 2, err_b
+    lines = err_b.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err_b
+    assert "exists already; pass --overwrite to replace it, or choose another -o" in lines[0]
+    assert _chunk_size_of(out, "run") == 100  # the first run's record, not overwritten by the second
+    assert {p.name for p in out.iterdir()} == _files_of(out, "run")  # no temporary or lock file
+
+
+def test_two_real_processes_different_prefixes_take_turns(series, tmp_path):
+    """Two separate qmap processes into one folder with different prefixes: both complete, neither mixes files."""
+    out = tmp_path / "out"
+    (rc_a, err_a), (rc_b, err_b) = _two_processes(series, out, tmp_path, ["--prefix", "a", "--chunk-size", "100"],
+                                                  ["--prefix", "b", "--chunk-size", "200"])
+    assert (rc_a, rc_b) == (0, 0), (err_a, err_b)
+    assert _chunk_size_of(out, "a") == 100 and _chunk_size_of(out, "b") == 200
+    # every output of both runs, no temporary or lock file left
+    assert {p.name for p in out.iterdir()} == _files_of(out, "a") | _files_of(out, "b")
+    # the same data and options give the same maps whichever process wrote them
+    t2a = nib.load(out / "a_T2starmap.nii.gz").get_fdata()
+    t2b = nib.load(out / "b_T2starmap.nii.gz").get_fdata()
+    np.testing.assert_array_equal(t2a, t2b)
