@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .defaults import DEFAULT_CHUNK
 from .fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from .maps import MapSet, fit_volume
 from .models.monoexp import MonoExponential
@@ -70,9 +71,8 @@ def fit_decay(
         data, te = data[..., 1:], te[1:]
     model = MonoExponential(te, param=param)
     noise, sigma, info = _noise_for(data, model, noise_floor, sigma, coils, mask, n_jobs)
-    kw = {} if chunk_size is None else {"chunk_size": chunk_size}
     maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs,
-                      method=engine, scheduler=scheduler, **kw)
+                      method=engine, scheduler=scheduler, chunk_size=DEFAULT_CHUNK if chunk_size is None else chunk_size)
     if info is not None:
         maps.info["noise"] = info
     return maps

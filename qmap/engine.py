@@ -15,6 +15,7 @@ import os
 import sys
 import time
 from dataclasses import dataclass
+from typing import Protocol
 
 import numpy as np
 
@@ -24,6 +25,15 @@ from .fitting.noise_floor import NoiseFloor
 from .fitting.solver import ChunkFit, fit_chunk
 
 __all__ = ["DEFAULT_CHUNK", "Progress", "fit_voxels", "resolve_jobs"]
+
+
+class SampleRows(Protocol):
+    """(n, m) samples that hand out a block of rows at a time: an ndarray, or a lazy gatherer."""
+
+    @property
+    def shape(self) -> tuple[int, ...]: ...
+
+    def __getitem__(self, rows: slice, /) -> np.ndarray: ...
 
 
 def resolve_jobs(n_jobs: int | None) -> int:
@@ -108,7 +118,7 @@ class _Chunk:
 
 def fit_voxels(
     model,
-    y: np.ndarray,
+    y: SampleRows,
     *,
     ctx: dict | None = None,
     noise: NoiseFloor | None = None,
@@ -128,7 +138,7 @@ def fit_voxels(
     Parameters
     ----------
     model : SeparableModel
-    y : (n, m) ndarray
+    y : (n, m) ndarray, or an object with ``shape`` that returns ``y[a:b]`` as an ndarray
         Samples of the voxels to fit (finite; float32 or float64).
     ctx : dict, optional
         Per-voxel model inputs, each (n,).

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -144,7 +145,7 @@ def fit_volume(
                          "estimate it with qmap.noise_level.estimate_noise or give it")
     # no reshaped copy of the series: NIfTI arrays are Fortran-ordered, so data.reshape(-1, m) would
     # copy it all; only the selected voxels are gathered below (in C order, matching ``idx``)
-    finite = np.ones(shape, bool)
+    finite: np.ndarray = np.ones(shape, bool)
     for k in range(m):  # one volume at a time: no (voxels x samples) temporary
         finite &= np.isfinite(data[..., k])
     finite = finite.reshape(-1)
@@ -193,6 +194,7 @@ def fit_volume(
         at = sub[keep]
         cov = fit.cov
         for name, se in se_in.items():  # an input's own uncertainty (e.g. the B1 map's), to first order
+            assert ctx is not None, "an input with a standard error is one of the model inputs"
             cctx = {k: v[a:b] for k, v in ctx.items()}
             with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
                 cov = add_input_covariance(cov, input_sensitivity(fit_model, fit.params, cctx, name), se[a:b])
@@ -215,7 +217,7 @@ def fit_volume(
     estimates = {k: v.reshape(shape) for k, v in estimates.items()}
     stderr_out = {k: v.reshape(shape) for k, v in stderr_maps.items()}
     quality = {k: v.reshape(shape) for k, v in quality.items()}
-    info = {
+    info: dict[str, Any] = {
         "model": model.name,
         "parameters": list(model.param_names),
         "noise_floor": noise.mode,

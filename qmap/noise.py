@@ -184,10 +184,10 @@ def _evaluate(nu: npt.ArrayLike, sigma: npt.ArrayLike, coils: int, grad: bool):
             s_b if isinstance(s_b, float) else s_b[sl],
             coils,
             out_e[sl],
-            out_d[sl] if grad else None,
+            None if out_d is None else out_d[sl],
         )
     e = out_e.reshape(shape)[()]
-    if not grad:
+    if out_d is None:
         return e
     return e, out_d.reshape(shape)[()]
 

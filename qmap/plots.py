@@ -416,16 +416,16 @@ def plot_voxel_fit(
     box_x = 0.665
     fig.text(box_x, 0.92, "\n".join(lines), fontsize=8.5, va="top", ha="left", family="monospace",
              bbox={"boxstyle": "round,pad=0.5", "fc": "#f4f4f4", "ec": "#bbbbbb"})
-    y = 0.92 - 0.026 * (len(lines) + 1.5)
+    box_y = 0.92 - 0.026 * (len(lines) + 1.5)
     if notes:
         import textwrap
 
         wrapped = "\n".join(textwrap.fill(t, 52) for t in notes)
-        fig.text(box_x, y, wrapped, fontsize=8, va="top", ha="left", color="#333333")
-        y -= 0.024 * (wrapped.count("\n") + 2)
+        fig.text(box_x, box_y, wrapped, fontsize=8, va="top", ha="left", color="#333333")
+        box_y -= 0.024 * (wrapped.count("\n") + 2)
     handles, labels = ax.get_legend_handles_labels()
     h2, l2 = axr.get_legend_handles_labels()
-    fig.legend(handles + h2, labels + l2, loc="upper left", bbox_to_anchor=(box_x - 0.005, y), fontsize=8.5,
+    fig.legend(handles + h2, labels + l2, loc="upper left", bbox_to_anchor=(box_x - 0.005, box_y), fontsize=8.5,
                frameon=False)
     _save(fig, path)
 

@@ -202,7 +202,7 @@ class BatchPlan:
 
 
 def _sessions(bids: Path) -> list[tuple[str, str | None, Path]]:
-    out = []
+    out: list[tuple[str, str | None, Path]] = []
     for sub in sorted(p for p in bids.glob("sub-*") if p.is_dir()):
         s = sub.name[4:]
         sessions = sorted(p for p in sub.glob("ses-*") if p.is_dir())
@@ -246,6 +246,12 @@ def _intended_for(meta: dict) -> list[str]:
     return out
 
 
+def _acq_of(path: Path) -> str | None:
+    """The ``acq`` entity of a BIDS file name (None when absent or not a BIDS name)."""
+    parsed = parse_bids_name(path)
+    return None if parsed is None else dict(parsed[0]).get("acq")
+
+
 def _choose_b1(candidates: list[Path], series_files: list[Path], acq: str | None, bids: Path) -> tuple[Path | None, str | None]:
     """The TB1map for a VFA or MP2RAGE series: (path, None) or (None, reason) when the choice is ambiguous."""
     if not candidates:
@@ -264,7 +270,7 @@ def _choose_b1(candidates: list[Path], series_files: list[Path], acq: str | None
     if len(named) == 1:
         return named[0], None
     pool = named or candidates
-    same_acq = [c for c in pool if dict(parse_bids_name(c)[0]).get("acq") == acq]
+    same_acq = [c for c in pool if _acq_of(c) == acq]
     if len(same_acq) == 1:
         return same_acq[0], None
     names = ", ".join(c.name for c in pool)

@@ -10,6 +10,8 @@ chi-square, as ``scipy.optimize.curve_fit``).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from . import status as st
@@ -51,7 +53,7 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
     )
     for i in range(n):
         ci = None if not ctx else {k: v[i : i + 1] for k, v in ctx.items()}
-        best = None
+        best: tuple[float, Any, np.ndarray] | None = None
         for yc in model.candidates(y[i : i + 1]):
             theta0 = model.initial_guess(yc, w[i : i + 1], ci)
             if theta0 is None:
@@ -74,6 +76,7 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
             rss = float(np.sum(res.residual**2))
             if best is None or rss < best[0]:
                 best = (rss, res, yc)
+        assert best is not None, "a model offers at least one start candidate"
         rss, res, yc = best
         vec = np.array([res.params[nm].value for nm in names])
         out.params[i] = vec

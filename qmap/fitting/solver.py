@@ -179,7 +179,7 @@ def _normal(J, w, r):
 def levenberg_marquardt(
     evaluate,
     y: np.ndarray,
-    w: np.ndarray,
+    w: np.ndarray | None,
     p0: np.ndarray,
     lo: np.ndarray,
     hi: np.ndarray,
@@ -402,7 +402,7 @@ def fit_chunk_unit(
     def evaluate(p, idx):
         return run_model.signal_jacobian(p, _take(ctx, idx))
 
-    best = None
+    best: list[np.ndarray] | None = None
     for yc in model.candidates(y):
         theta0 = model.initial_guess(yc, w, ctx)
         if theta0 is None:
@@ -421,6 +421,7 @@ def fit_chunk_unit(
             take = rss < best[1]
             for k, v in enumerate((p, rss, J, conv, nit, yc)):
                 best[k][take] = v[take]
+    assert best is not None, "a model offers at least one start candidate"
     p, rss, J, conv, nit, yfit = best
 
     sel = noise.rician_select(run_model, p, sigma, ctx) if noise.mode == "rician" else np.zeros(0, np.intp)

@@ -76,13 +76,18 @@ class Series:
     def lazy(self) -> bool:
         return self._data is None
 
+    def _lazy_state(self) -> tuple[list, tuple]:
+        """The image proxies and 4D shape of a lazy series (``load_series`` sets both with ``_data`` None)."""
+        assert self._proxies is not None and self._shape4 is not None, "a lazy series keeps its proxies and shape"
+        return self._proxies, self._shape4
+
     @property
     def shape(self) -> tuple[int, int, int]:
-        return tuple(self._shape4[:3]) if self._data is None else tuple(self._data.shape[:3])
+        return tuple(self._lazy_state()[1][:3]) if self._data is None else tuple(self._data.shape[:3])
 
     @property
     def n(self) -> int:
-        return int(self._shape4[3]) if self._data is None else int(self._data.shape[3])
+        return int(self._lazy_state()[1][3]) if self._data is None else int(self._data.shape[3])
 
     def select_volumes(self, index) -> None:
         """Keep (and order) the volumes ``index`` -- without loading a lazy series."""
@@ -90,22 +95,24 @@ class Series:
         if self._data is not None:
             self._data = self._data[..., index]
             return
-        base = np.arange(self._shape4[3]) if self._order is None else self._order
+        shape4 = self._lazy_state()[1]
+        base = np.arange(shape4[3]) if self._order is None else self._order
         self._order = base[index]
-        self._shape4 = self._shape4[:3] + (len(self._order),)
+        self._shape4 = shape4[:3] + (len(self._order),)
 
     def read(self, z0: int, z1: int) -> np.ndarray:
         """Voxel data of the slices ``z0:z1`` as (X, Y, z1-z0, n) float32 / complex64."""
         if self._data is not None:
             return self._data[:, :, z0:z1]
         dtype = np.complex64 if self._allow_complex else np.float32
-        if len(self._proxies) == 1:
-            raw = np.asanyarray(self._proxies[0][:, :, z0:z1, :])
+        proxies = self._lazy_state()[0]
+        if len(proxies) == 1:
+            raw = np.asanyarray(proxies[0][:, :, z0:z1, :])
             if raw.ndim == 3:
                 raw = raw[:, :, :, None]
         else:
             raw = np.stack([np.asanyarray(p[:, :, z0:z1] if len(p.shape) > 2 else p[:, :][:, :, None])
-                            .reshape(p.shape[:2] + (z1 - z0,)) for p in self._proxies], axis=-1)
+                            .reshape(p.shape[:2] + (z1 - z0,)) for p in proxies], axis=-1)
         if np.iscomplexobj(raw) and not self._allow_complex:
             raise InputError(f"{self.paths[0]}: holds complex data but this fit expects magnitude images")
         out = raw.astype(dtype, copy=True)

@@ -318,6 +318,8 @@ class AtomicWriter:
 
     def _verify(self, path: Path, out: OutputFile, affine, status):
         img = nib.load(str(path), mmap=False)
+        if not isinstance(img, nib.spatialimages.SpatialImage):
+            raise OutputError(f"{out.name}: the written file does not read back as an image (internal check failed)")
         data = np.asanyarray(img.dataobj)
         if data.shape != np.shape(out.data) or not np.allclose(img.affine, affine, atol=1e-4):
             raise OutputError(f"{out.name}: the written file does not read back as written (shape/affine)")

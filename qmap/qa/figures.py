@@ -228,7 +228,8 @@ def roi_overlay(data: np.ndarray, zooms, rois_used: dict, labels: np.ndarray, *,
         vals = sl[np.isfinite(sl)]
     vmin, vmax = (np.percentile(vals, [1, 99]) if vals.size else (0.0, 1.0))
     if vmin > 0 and vmax / vmin > 10:  # vials spanning decades: a log scale keeps each one distinguishable
-        norm, scale = LogNorm(vmin / 1.1, vmax * 1.1), "log scale"
+        norm: Normalize = LogNorm(vmin / 1.1, vmax * 1.1)
+        scale = "log scale"
     else:
         pad = 0.05 * (vmax - vmin or abs(vmax) or 1)
         norm, scale = Normalize(vmin - pad, vmax + pad), "linear scale"
@@ -286,7 +287,8 @@ def history_panels(series: dict, trends: dict, *, param: str, unit_note: str = "
         if idx >= n:
             ax.set_visible(False)
             axes.ravel()[idx - ncol].xaxis.set_tick_params(labelbottom=True)
-    x_lo, x_hi = None, None
+    x_lo: dt.date | None = None
+    x_hi: dt.date | None = None
     for ax, ((lab, name), (dates, err, ok, tol)) in zip(axes.ravel(), series.items()):
         _style(ax)
         lim = max(lim, 1.6 * tol, 1.15 * float(np.nanmax(np.abs(err))) if np.isfinite(err).any() else 0)
@@ -308,7 +310,7 @@ def history_panels(series: dict, trends: dict, *, param: str, unit_note: str = "
             x0 = dt.date.fromisoformat(tr.x0_date)
             xe = dt.date.fromisoformat(tr.projected_date)
             xs = [x0, dates[-1], xe]
-            x_hi = max(x_hi, xe)
+            x_hi = xe if x_hi is None else max(x_hi, xe)
             ys = [tr.intercept + tr.slope_pct_per_day * (d - x0).days for d in xs]
             color = DRIFT if tr.flagged else "#8a93a3"
             ax.plot(xs[:2], ys[:2], color=color, lw=1.4, zorder=2)
@@ -325,7 +327,7 @@ def history_panels(series: dict, trends: dict, *, param: str, unit_note: str = "
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(
             loc, offset_formats=["", "%Y", "%Y", "%Y", "%Y", "%Y-%m-%d"]))
     axes[0, 0].set_ylim(-lim, lim)
-    if x_lo is not None:
+    if x_lo is not None and x_hi is not None:
         pad = dt.timedelta(days=max(1.0, 0.04 * (x_hi - x_lo).days))
         axes[0, 0].set_xlim(x_lo - pad, x_hi + pad)  # one time axis for every vial
     for r in range(nrow):

@@ -315,7 +315,8 @@ def map_provenance(path: str | Path) -> dict | None:
         return None
     if not isinstance(doc, dict) or p.name not in (doc.get("outputs") or {}):
         return None
-    model = doc.get("model") if isinstance(doc.get("model"), dict) else {}
+    raw_model = doc.get("model")
+    model = raw_model if isinstance(raw_model, dict) else {}
     cmd = doc.get("command_line") or []
     return {"file": str(prov), "command": " ".join(str(c) for c in cmd), "model": model.get("name"),
             "equation": model.get("equation"), "qmap_version": doc.get("qmap_version")}

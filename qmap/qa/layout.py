@@ -98,7 +98,10 @@ def read_layout(path: str | Path) -> Layout:
         raise InputError(f"--layout {p}: missing column(s) {', '.join(missing)} (found: "
                          f"{', '.join(c.strip() for c in reader.fieldnames or [])}); expected label, x_mm, y_mm, "
                          f"radius_mm and optionally z_mm, name")
-    labels, names, xyz, radius = [], [], [], []
+    labels: list[int] = []
+    names: list[str] = []
+    rows: list[list[float]] = []
+    radius: list[float] = []
     for i, rec in enumerate(reader, start=2):
         where = f"--layout {p} row {i}"
         lab = _field(rec, cols, "label", where)
@@ -110,13 +113,13 @@ def read_layout(path: str | Path) -> Layout:
         z = _field(rec, cols, "z_mm", where, required=False) if "z_mm" in cols else 0.0
         labels.append(int(lab))
         names.append((rec.get(cols["name"]) or "").strip() if "name" in cols else "")
-        xyz.append([_field(rec, cols, "x_mm", where), _field(rec, cols, "y_mm", where), 0.0 if math.isnan(z) else z])
+        rows.append([_field(rec, cols, "x_mm", where), _field(rec, cols, "y_mm", where), 0.0 if math.isnan(z) else z])
         radius.append(r)
     if len(labels) < 3:
         raise InputError(f"--layout {p}: {len(labels)} vial(s); at least 3 are needed to place the ROIs rigidly")
     if len(set(labels)) != len(labels):
         raise InputError(f"--layout {p}: a label appears twice; give each vial one row")
-    xyz = np.array(xyz, float)
+    xyz = np.array(rows, float)
     if np.min(np.linalg.norm(xyz[:, None] - xyz[None], axis=-1) + np.eye(len(xyz)) * 1e9) < 1e-6:
         raise InputError(f"--layout {p}: two vials share one position")
     return Layout(np.array(labels), names, xyz, np.array(radius, float), "z_mm" in cols, str(p))

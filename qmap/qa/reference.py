@@ -175,13 +175,18 @@ def read_text_table(p: Path, *, what: str, missing_hint: str) -> str:
 
 def _delimiter(header: str) -> str:
     counts = {d: header.count(d) for d in (",", ";", "\t")}
-    best = max(counts, key=counts.get)
+    best = max(counts, key=lambda d: counts[d])
     return best if counts[best] else ","
 
 
-def _classify(columns: list[str], where: str):
+def _classify(
+    columns: list[str], where: str
+) -> tuple[dict[str, str], dict[str, tuple[str, str]], dict[str, str], list[str]]:
     """Split the header into label/name/temperature, parameter, tolerance and ignored columns."""
-    special, params, tols, ignored = {}, {}, {}, []
+    special: dict[str, str] = {}
+    params: dict[str, tuple[str, str]] = {}
+    tols: dict[str, str] = {}
+    ignored: list[str] = []
     for col in columns:
         key = col.strip()
         low = key.lower()
@@ -195,10 +200,11 @@ def _classify(columns: list[str], where: str):
         stem, unit = (m.group(1), m.group(2)) if m else (key.split("_", 1) + [""])[:2]
         param = canonical_param(stem)
         if param is None:
-            if canonical_param(key) is None:
+            param = canonical_param(key)
+            if param is None:
                 ignored.append(col)
                 continue
-            param, unit = canonical_param(key), ""
+            unit = ""
         if unit.lower() in ("tolerance_pct", "tolerance_percent"):
             tols[param] = col
             continue
@@ -219,7 +225,7 @@ def _classify(columns: list[str], where: str):
     return special, params, tols, ignored
 
 
-def _number(text: str, *, where: str, what: str) -> float:
+def _number(text: str | None, *, where: str, what: str) -> float:
     s = (text or "").strip()
     if not s:
         return math.nan

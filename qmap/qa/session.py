@@ -55,9 +55,9 @@ def session_info(sidecar: dict, *, date: str | None = None, scanner: str | None 
     if scanner:
         s, sources["scanner"] = _clean(scanner), "--scanner"
     else:
-        parts = [sidecar.get(k) for k in ("Manufacturer", "ManufacturersModelName")]
-        parts.append(sidecar.get("DeviceSerialNumber") or sidecar.get("StationName"))
-        parts = [_clean(p) for p in parts if isinstance(p, (str, int)) and str(p).strip()]
+        fields = [sidecar.get(k) for k in ("Manufacturer", "ManufacturersModelName")]
+        fields.append(sidecar.get("DeviceSerialNumber") or sidecar.get("StationName"))
+        parts = [_clean(p) for p in fields if isinstance(p, (str, int)) and str(p).strip()]
         s, sources["scanner"] = (" ".join(parts), "sidecar") if parts else (UNSPECIFIED, "none")
     if protocol:
         p, sources["protocol"] = _clean(protocol), "--protocol"

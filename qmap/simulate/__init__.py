@@ -21,6 +21,7 @@ the 12-bit integer export (``sub-S_UNIT1``).
 from __future__ import annotations
 
 from dataclasses import asdict
+from typing import Any
 
 import numpy as np
 
@@ -158,7 +159,7 @@ def simulate(
     _, lr_affine, lr_f = lowres_grid(shape, affine, settings.b1_factor)
     rng = np.random.default_rng(seed)
     sub = f"sub-{subject}"
-    manifest = {
+    manifest: dict[str, Any] = {
         "description": f"simulated {phantom} phantom (invented; synthetic data, not a scan)",
         "qmap_version": __version__, "command_line": command_line, "phantom": phantom, "subject": subject,
         "seed": int(seed), "snr": float(snr), "b1_snr": float(b1_snr or 2 * snr), "coils": int(coils),

@@ -127,7 +127,7 @@ class Series:
 def _voxels(ph: Phantom, b1: np.ndarray):
     """(voxel, compartment) pairs with signal: flat voxel index, volume fraction, properties, B1 -- (n,) each."""
     idx, frac, b = [], [], []
-    props = {a: [] for a in ("t1", "t2", "t2star", "pd")}
+    props: dict[str, list[np.ndarray]] = {a: [] for a in ("t1", "t2", "t2star", "pd")}
     fractions = ph.fractions or {lab: (ph.labels == lab).astype(float) for lab in ph.tissues}
     for lab, f in sorted(fractions.items()):
         sel = np.flatnonzero(f.ravel() > 0)

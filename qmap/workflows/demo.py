@@ -48,10 +48,10 @@ from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 
 from ..errors import InputError, OutputExistsError
+from ..io.nifti import load_image
 from ..plots import _fmt
 
 __all__ = ["FITS", "DemoFit", "DemoReport", "run_demo", "sample_data_dir"]
@@ -335,10 +335,10 @@ def _truth_table(manifest: dict, rows: list) -> list:
 def _spectrum_rows(pools: Path, maps_dir: Path) -> list:
     """Median fitted and true short-T2 fraction (MWF) per half of the multi-pool disc (fitted voxels)."""
     man = json.loads((pools / "simulation.json").read_text(encoding="utf-8"))
-    truth = np.asarray(nib.load(str(pools / man["truth"]["MWF"])).dataobj, float)
-    regions = np.asarray(nib.load(str(pools / man["labels"])).dataobj)
-    mwf = np.asarray(nib.load(str(maps_dir / "pools_MWFmap.nii.gz")).dataobj, float)
-    fitted = np.asarray(nib.load(str(maps_dir / "pools_desc-status_fitmap.nii.gz")).dataobj) == 0
+    truth = np.asarray(load_image(pools / man["truth"]["MWF"]).dataobj, np.float64)
+    regions = np.asarray(load_image(pools / man["labels"]).dataobj)
+    mwf = np.asarray(load_image(maps_dir / "pools_MWFmap.nii.gz").dataobj, np.float64)
+    fitted = np.asarray(load_image(maps_dir / "pools_desc-status_fitmap.nii.gz").dataobj) == 0
     rows = []
     for lab, name in ((1, "two-pool"), (2, "three-pool")):
         sel = (regions == lab) & fitted & np.isfinite(truth)

@@ -27,6 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..defaults import DEFAULT_CHUNK
 from ..errors import InputError, UsageError, warn
 from ..io.nifti import check_same_grid, image_data, load_image
 from ..io.series import Series, load_series
@@ -300,6 +301,6 @@ def fit_t1_ir(
         raise ValueError("negative values in magnitude data; use signal='real' for phase-corrected real data")
     order = np.argsort(ti, kind="stable")
     data, ti = data[..., order], ti[order]
-    kw = {} if chunk_size is None else {"chunk_size": chunk_size}
     model = InversionRecovery(ti, signal=signal, look_locker=look_locker)
-    return fit_volume(model, data, mask=mask, n_jobs=n_jobs, method=engine, scheduler=scheduler, **kw)
+    return fit_volume(model, data, mask=mask, n_jobs=n_jobs, method=engine, scheduler=scheduler,
+                      chunk_size=DEFAULT_CHUNK if chunk_size is None else chunk_size)

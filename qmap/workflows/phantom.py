@@ -137,7 +137,7 @@ def _check_outputs_free(out_dir: Path, overwrite: bool, layout: bool) -> None:
 
 
 def _check_maps(maps: list[MapInput], table) -> None:
-    seen = {}
+    seen: dict[str, Path] = {}
     for m in maps:
         if m.key in seen:
             raise InputError(f"--map {m.path} and --map {seen[m.key]} both hold {m.key}; tell them apart with "

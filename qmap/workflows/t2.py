@@ -18,7 +18,7 @@ import time
 
 import numpy as np
 
-from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
+from ..defaults import DEFAULT_CHUNK, DEFAULT_REFOCUS, DEFAULT_T1
 from ..errors import UsageError
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..maps import MapSet, fit_volume
@@ -58,10 +58,10 @@ def t2_model(
                 "--drop-first is for the mono-exponential fit: the EPG model (--epg) describes the first echo and "
                 "needs it to tell T2 from the refocusing angle; leave out one of the two options"
             )
-        model = EpgT2(te, refocus_deg=refocus_deg, t1=t1)
-        return model, model.info()
-    model = MonoExponential(te[1:] if drop_first else te, param="T2")
-    return model, {"name": "monoexp", "equation": "S = M0 exp(-TE/T2)"}
+        epg_model = EpgT2(te, refocus_deg=refocus_deg, t1=t1)
+        return epg_model, epg_model.info()
+    return MonoExponential(te[1:] if drop_first else te, param="T2"), {"name": "monoexp",
+                                                                        "equation": "S = M0 exp(-TE/T2)"}
 
 
 def fit_t2(
@@ -136,9 +136,8 @@ def fit_t2(
     from ..api import _noise_for
 
     noise, sigma, sinfo = _noise_for(data, model, noise_floor, sigma, coils, mask, n_jobs)
-    kw = {} if chunk_size is None else {"chunk_size": chunk_size}
     maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs, method=engine,
-                      scheduler=scheduler, **kw)
+                      scheduler=scheduler, chunk_size=DEFAULT_CHUNK if chunk_size is None else chunk_size)
     maps.info["model_info"] = info
     if sinfo is not None:
         maps.info["noise"] = sinfo
@@ -182,7 +181,7 @@ def run_t2(
         notes.append("first echo dropped")
     options = noise_options(noise_floor, sigma, coils, drop_first)
     options.update(epg=bool(epg))
-    if epg:
+    if isinstance(model, EpgT2):  # epg=True
         options.update(refocus_deg=float(refocus_deg), t1_s=float(t1))
         notes.append(f"EPG model: echo spacing {1e3 * model.esp:.4g} ms, refocusing {refocus_deg:g} deg x fitted "
                      f"scale, T1 fixed at {t1:g} s")
