@@ -81,7 +81,7 @@ def peak_rss_of(cmd: list[str]) -> tuple[float, float]:
         "r=resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss/1024;"
         "print(f'{dt} {r} {p.returncode}');sys.stderr.write(p.stderr if p.returncode else '')"
     )
-    out = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True)
+    out = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True, check=False)
     dt, rss, rc = out.stdout.split()
     if int(rc) != 0:
         sys.exit(f"benchmark: {' '.join(cmd)} failed ({rc}):\n{out.stderr}")
@@ -456,7 +456,7 @@ def case_memory(nvox, work: Path, rng, series_gz: Path, tiles: int = 4):
                        np.asanyarray(nib.load(str(work / "mem_slab" / p.name)).dataobj), equal_nan=True)
         for p in (work / "mem_full").glob("*.nii.gz")
     )
-    base_t, base_rss = peak_rss_of([sys.executable, "-c", BASELINE_IMPORTS])
+    _base_t, base_rss = peak_rss_of([sys.executable, "-c", BASELINE_IMPORTS])
     n_maps = len(list((work / "mem_full").glob("*.nii.gz")))
     maps_mb = (n_maps - 1) * np.prod(shape) * 4 / 2**20  # float32 maps held until written (+ uint8 status)
     print(f"memory: {np.prod(shape)} voxels x 12 echoes, uncompressed input {size_mb:.0f} MB, "

@@ -75,8 +75,8 @@ def case_t2star(snr, rng, obj):
     te = np.arange(1, 13) * 0.004
     t2 = rng.uniform(0.010, 0.060, obj * obj)
     s = M0 * np.exp(-te / t2[:, None])
-    return dict(model=MonoExponential(te), noise=NoiseFloor("rician"), signals=s, truth=t2, param="T2star",
-                sigma=M0 / snr)
+    return {"model": MonoExponential(te), "noise": NoiseFloor("rician"), "signals": s, "truth": t2,
+            "param": "T2star", "sigma": M0 / snr}
 
 
 def case_epg(snr, rng, obj):
@@ -85,8 +85,9 @@ def case_epg(snr, rng, obj):
     trains = np.array([cpmg_isochromats(t2, t1, esp, n_echoes, ang, n_iso=512) for t2, ang in pairs])
     pick = rng.integers(0, len(pairs), obj * obj)
     truth = np.array([p[0] for p in pairs])[pick]
-    return dict(model=EpgT2(esp * np.arange(1, n_echoes + 1), refocus_deg=180.0, t1=t1), noise=NoiseFloor("rician"),
-                signals=M0 * trains[pick], truth=truth, param="T2", sigma=M0 / snr)
+    return {"model": EpgT2(esp * np.arange(1, n_echoes + 1), refocus_deg=180.0, t1=t1),
+            "noise": NoiseFloor("rician"), "signals": M0 * trains[pick], "truth": truth, "param": "T2",
+            "sigma": M0 / snr}
 
 
 def case_ir(snr, rng, obj):
@@ -94,7 +95,7 @@ def case_ir(snr, rng, obj):
     t1 = rng.uniform(0.3, 3.0, obj * obj)
     k = rng.uniform(0.9, 1.0, obj * obj)
     s = np.abs(M0 - M0 * (1 + k)[:, None] * np.exp(-ti / t1[:, None]))  # S = a + b exp(-TI/T1), magnitude
-    return dict(model=InversionRecovery(ti), noise=None, signals=s, truth=t1, param="T1", sigma=M0 / snr)
+    return {"model": InversionRecovery(ti), "noise": None, "signals": s, "truth": t1, "param": "T1", "sigma": M0 / snr}
 
 
 def case_vfa(snr, rng, obj):
@@ -106,8 +107,8 @@ def case_vfa(snr, rng, obj):
     e1 = np.exp(-tr / t1)[:, None]
     s = M0 * np.sin(a) * (1 - e1) / (1 - e1 * np.cos(a))  # Ernst & Anderson 1966, actual angle B1 x nominal
     b1_se = 0.01
-    return dict(model=SpoiledGRE(fa, tr), noise=None, signals=s, truth=t1, param="T1", sigma=float(s.max()) / snr,
-                b1=b1 + rng.normal(0.0, b1_se, n), b1_se=b1_se)
+    return {"model": SpoiledGRE(fa, tr), "noise": None, "signals": s, "truth": t1, "param": "T1",
+            "sigma": float(s.max()) / snr, "b1": b1 + rng.normal(0.0, b1_se, n), "b1_se": b1_se}
 
 
 CASES = [

@@ -60,7 +60,7 @@ def one_line(err: str) -> str:
 @pytest.fixture(scope="module")
 def phantom():
     """Rician-noise decay phantom (32x32x3, 8 echoes) shared by the module (read-only)."""
-    data, te, t2, obj = decay_phantom(te=TE)
+    data, _te, t2, obj = decay_phantom(te=TE)
     return data.astype(np.float32), t2, obj
 
 
@@ -1090,8 +1090,8 @@ def _maps(folder: Path, prefix: str) -> dict:
 
 def _assert_same_maps(a: dict, b: dict):
     assert a.keys() == b.keys() and a
-    for k in a:
-        assert np.array_equal(a[k], b[k], equal_nan=True), k
+    for k, v in a.items():
+        assert np.array_equal(v, b[k], equal_nan=True), k
 
 
 def test_integer_data_with_scaling_slope_is_honoured(tmp_path, phantom, capsys):
@@ -1121,7 +1121,7 @@ def test_integer_data_with_scaling_slope_is_honoured(tmp_path, phantom, capsys):
 
 def test_nonfinite_voxels_are_flagged_and_neighbours_unaffected(tmp_path, phantom, capsys):
     """NaN / +inf / -inf samples: exit 0, status 2 there, NaN estimates, every other voxel as in the clean run."""
-    data, t2, obj = phantom
+    data, _t2, obj = phantom
     bad = data.copy()
     spots = {(16, 16, 1, 3): np.nan, (14, 15, 0, 0): np.inf, (17, 14, 2, 7): -np.inf, (12, 18, 0, 5): np.nan}
     for idx, v in spots.items():
@@ -1147,7 +1147,7 @@ def test_nonfinite_voxels_are_flagged_and_neighbours_unaffected(tmp_path, phanto
 
 def test_nonfinite_voxels_flagged_with_auto_mask(tmp_path, phantom, capsys):
     """With the default automatic mask too, an object voxel holding NaN / inf says 'bad input', not 'masked out'."""
-    data, t2, obj = phantom
+    data, _t2, obj = phantom
     bad = data.copy()
     spots = [(16, 16, 0, 3, np.nan), (14, 15, 0, 0, np.inf), (17, 14, 2, 7, -np.inf), (15, 15, 1, 2, np.inf)]
     for i, j, k, e, v in spots:
@@ -1215,7 +1215,7 @@ def test_provenance_sha256_matches_the_input_bytes(tmp_path, phantom, capsys):
     """Provenance ``inputs``: absolute paths with the SHA-256 of each file's bytes (hashlib, FIPS 180-4)."""
     import hashlib
 
-    data, t2, obj = phantom
+    data, _t2, obj = phantom
     files = _echo_files(tmp_path, data)
     mask = write_nifti(tmp_path / "mask.nii.gz", obj.astype(np.uint8), affine=AFFINE)
     rc, _, err = cli(["t2star", *files, "--mask", mask, "-o", tmp_path / "o", "--prefix", "x", "-q", "--sigma", "5"],

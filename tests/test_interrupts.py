@@ -258,7 +258,7 @@ def _arm_other(monkeypatch, module, attr, k):
 @pytest.mark.parametrize("stage", list(OTHER_STAGES))
 @pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
 def test_interrupt_other_commands(stage, fresh, tmp_path, others, monkeypatch, capsys):
-    d, args = others
+    _d, args = others
     command, module, attr, k = OTHER_STAGES[stage]
     argv = list(args[command])
     out = tmp_path / "out"

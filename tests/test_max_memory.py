@@ -11,7 +11,7 @@ from tests.conftest import decay_phantom, write_nifti
 
 
 def test_slab_reading_gives_identical_maps(tmp_path):
-    data, te, t2, obj = decay_phantom(shape=(40, 40, 12), seed=11)
+    data, te, _t2, _obj = decay_phantom(shape=(40, 40, 12), seed=11)
     path = write_nifti(tmp_path / "raw_MEGRE.nii", data, sidecar={"EchoTime": te.tolist()})  # uncompressed
     size_mb = path.stat().st_size / 2**20
     budget = f"{size_mb / 4:.3f}MB"

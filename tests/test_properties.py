@@ -68,7 +68,8 @@ def test_4d_and_3d_files_load_the_same(shape, seed, shuffle):
         p4 = _write(d / "s4d.nii.gz", data[..., order], {"EchoTime": te[order].tolist(), "RepetitionTime": tr})
         p3 = [_write(d / f"s_echo-{i}.nii.gz", data[..., i], {"EchoTime": float(te[i]), "RepetitionTime": tr})
               for i in order]
-        kw = dict(key="EchoTime", option="--te", scalars={"RepetitionTime": (None, "--tr", True, "RepetitionTime")})
+        kw = {"key": "EchoTime", "option": "--te",
+              "scalars": {"RepetitionTime": (None, "--tr", True, "RepetitionTime")}}
         with warnings.catch_warnings():  # a shuffled series is sorted, with a warning
             warnings.simplefilter("ignore" if shuffle and n > 1 else "error", QmapWarning)
             a = load_series([p4], **kw)
@@ -280,7 +281,7 @@ def test_maps_are_bit_identical_for_any_chunking(shape, seed, chunk, jobs, mode)
     y = _volume(seed, shape, te)
     mask = np.random.default_rng(seed + 1).random(shape) < 0.8
     model = MonoExponential(te, param="T2")
-    kw = dict(mask=mask, noise=NoiseFloor(mode), sigma=10.0 if mode in ("truncate", "rician") else None)
+    kw = {"mask": mask, "noise": NoiseFloor(mode), "sigma": 10.0 if mode in ("truncate", "rician") else None}
     ref = fit_volume(model, y, n_jobs=1, chunk_size=10**6, **kw)
     got = fit_volume(model, y, n_jobs=jobs, chunk_size=chunk, **kw)
     np.testing.assert_array_equal(got.status, ref.status)

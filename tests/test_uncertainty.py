@@ -30,7 +30,6 @@ from qmap.models.monoexp import MonoExponential
 from qmap.models.vfa import SpoiledGRE
 from qmap.noise_level import ArraySource
 from qmap.pipeline import resolve_sigma
-
 from tests.reference.isochromat import cpmg_isochromats
 
 M0 = 1000.0
@@ -98,7 +97,7 @@ def test_t2star_snr50_coverage_given_and_estimated_sigma():
     assert ok.mean() > 0.99
     c_given = _check(given["T2star"][mask][ok], t2[ok], given.stderr["T2star"][mask][ok])
     # the noise level estimated from the data instead of given: same calibration within one point
-    est_sigma, info = resolve_sigma("auto", ArraySource(vol))
+    est_sigma, _info = resolve_sigma("auto", ArraySource(vol))
     assert est_sigma == pytest.approx(sigma, rel=0.03)
     est = fit_volume(model, vol, mask=mask, noise=noise, sigma=est_sigma)
     c_est = _check(est["T2star"][mask][ok], t2[ok], est.stderr["T2star"][mask][ok])
@@ -170,7 +169,7 @@ def test_ir_magnitude_snr30_coverage_crlb_and_curve_fit():
     far = np.flatnonzero(ok & (np.min(np.abs(_ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])), axis=1) > 6 * sigma))
     for i in far[:25]:
         ysgn = y[i] * np.where(TI < t1[i] * np.log(1 + k[i]), -1.0, 1.0)  # the sign the truth gives
-        p, c = curve_fit(_ir, TI, ysgn, p0=[M0, -2 * M0, t1[i]], sigma=np.full(TI.size, sigma), absolute_sigma=True)
+        _p, c = curve_fit(_ir, TI, ysgn, p0=[M0, -2 * M0, t1[i]], sigma=np.full(TI.size, sigma), absolute_sigma=True)
         assert se1[i] == pytest.approx(np.sqrt(c[2, 2]), rel=0.02)
     # Cramer-Rao bound at the truth for those voxels
     crlb = np.array([_crlb(lambda p: _ir(TI, *p), [M0, -M0 * (1 + k[i]), t1[i]], sigma, 2) for i in far[:200]])
@@ -252,8 +251,8 @@ def test_vfa_snr200_b1_map_with_its_own_error_propagated():
     g = input_sensitivity(model, np.array([[M0, t1[i]]]), {"b1": np.array([b1[i]])}, "b1")
     assert g[0, 1] == pytest.approx(dt1, rel=1e-3)
     # curve_fit with absolute sigma gives the fit part of the standard error
-    p, c = curve_fit(lambda fa, m0, tt: _spgr(fa, m0, tt, b1_map[i]), FA, vol[mask][i], p0=[M0, t1[i]],
-                     sigma=np.full(FA.size, sigma), absolute_sigma=True)
+    _p, c = curve_fit(lambda fa, m0, tt: _spgr(fa, m0, tt, b1_map[i]), FA, vol[mask][i], p0=[M0, t1[i]],
+                      sigma=np.full(FA.size, sigma), absolute_sigma=True)
     assert plain.stderr["T1"][mask][i] == pytest.approx(np.sqrt(c[1, 1]), rel=0.02)
     assert given.stderr["T1"][mask][i] == pytest.approx(float(combine_se(np.sqrt(c[1, 1]), dt1, b1_se)), rel=0.03)
 
@@ -286,10 +285,10 @@ def test_residual_convention_is_the_relative_sigma_of_curve_fit():
     noise = fit_volume(MonoExponential(te), y, sigma=5.0)
     assert res.info["stderr"]["convention"] == "residual" and noise.info["stderr"]["convention"] == "noise"
     for i in range(5):
-        p, c = curve_fit(lambda t, m, tt: m * np.exp(-t / tt), te, y[i], p0=[800, 0.025])
+        _p, c = curve_fit(lambda t, m, tt: m * np.exp(-t / tt), te, y[i], p0=[800, 0.025])
         assert res.stderr["T2star"][i] == pytest.approx(np.sqrt(c[1, 1]), rel=1e-3)
-        p, c = curve_fit(lambda t, m, tt: m * np.exp(-t / tt), te, y[i], p0=[800, 0.025], sigma=np.full(8, 5.0),
-                         absolute_sigma=True)
+        _p, c = curve_fit(lambda t, m, tt: m * np.exp(-t / tt), te, y[i], p0=[800, 0.025], sigma=np.full(8, 5.0),
+                          absolute_sigma=True)
         assert noise.stderr["T2star"][i] == pytest.approx(np.sqrt(c[1, 1]), rel=1e-3)
     # the residual sd sqrt(RSS / (m - P)) is kept as a quality map
     fitted = res["M0"][:, None] * np.exp(-te / res["T2star"][:, None])

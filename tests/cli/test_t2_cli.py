@@ -55,7 +55,7 @@ def _map(out, name):
 
 
 def test_epg_outputs_maps_and_provenance(mese, tmp_path):
-    path, t2, scale, obj = mese
+    path, t2, _scale, obj = mese
     out = tmp_path / "out"
     assert _run(path, "-o", out, "--epg", "--t1", "1200ms") == 0
     prov = json.loads((out / "sub-01_acq-mese_provenance.json").read_text())
@@ -86,7 +86,7 @@ def test_epg_outputs_maps_and_provenance(mese, tmp_path):
 
 
 def test_monoexponential_default_and_drop_first(mese, tmp_path):
-    path, t2, scale, obj = mese
+    path, t2, _scale, obj = mese
     assert _run(path, "-o", tmp_path / "a", "--sigma", SIGMA) == 0
     assert _run(path, "-o", tmp_path / "b", "--sigma", SIGMA, "--drop-first", "--units", "ms") == 0
     prov = json.loads((tmp_path / "b/sub-01_acq-mese_provenance.json").read_text())
@@ -143,7 +143,7 @@ def test_bad_options_exit_2(mese, tmp_path, capsys, args, expect):
 def test_refocus_option_is_used(mese, tmp_path):
     # the same data described with a nominal 160 deg refocusing: the fitted angle is unchanged, so
     # RefocusScale scales by 180/160 (capped at 180 deg, i.e. 1.125)
-    path, t2, scale, obj = mese
+    path, t2, _scale, obj = mese
     assert _run(path, "-o", tmp_path / "a", "--epg", "--sigma", SIGMA) == 0
     assert _run(path, "-o", tmp_path / "b", "--epg", "--refocus", "160", "--sigma", SIGMA) == 0
     prov = json.loads((tmp_path / "b/sub-01_acq-mese_provenance.json").read_text())

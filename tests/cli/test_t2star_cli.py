@@ -87,7 +87,7 @@ def test_command_line_overrides_sidecar_with_warning(megre, tmp_path, capsys):
 
 
 def test_nan_voxel_gets_status_and_neighbours_unchanged(tmp_path):
-    data, te, t2, obj = decay_phantom(seed=7)
+    data, te, _t2, _obj = decay_phantom(seed=7)
     a = write_nifti(tmp_path / "a.nii.gz", data, sidecar={"EchoTime": te.tolist()})
     bad = data.copy()
     bad[16, 16, 1, 4] = np.nan

@@ -46,7 +46,7 @@ def test_fast_engine_matches_curve_fit_estimates_and_covariance():
 
 
 def test_fast_engine_matches_lmfit():
-    y, t2, m0 = _noisy(40, seed=2)
+    y, _t2, _m0 = _noisy(40, seed=2)
     fast = fit_volume(MonoExponential(TE), y)
     ref = fit_volume(MonoExponential(TE), y, method="lmfit")  # lmfit per voxel (MINPACK)
     np.testing.assert_allclose(fast["T2star"], ref["T2star"], rtol=1e-4)

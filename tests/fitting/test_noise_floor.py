@@ -60,7 +60,7 @@ def test_truncate_reduces_the_floor_bias(low_snr):
 def test_offset_overcorrects_at_low_snr(low_snr):
     # documented behaviour (README): at SNR 20 the free offset absorbs part of the decay itself, so
     # T2* comes out low -- the opposite sign of the plain fit's bias (cf. Milford et al. 2015, memory)
-    y, truth, sigma = low_snr
+    y, truth, _sigma = low_snr
     offset = _median_bias(fit_t2star(y, TE, noise_floor="offset"), truth)
     assert all(v < 0 for v in offset.values()), offset
     assert offset[0.003] > -0.35

@@ -85,7 +85,7 @@ def test_derivatives_match_finite_differences_including_the_continuation_past_18
     t2 = rng.uniform(0.02, 0.3, 6)
     for c in (-0.5, -0.95, -1.0, -1.03):
         cc = np.full(t2.size, c)
-        s, d_t2, d_c = cpmg_cos(t2, cc, esp=ESP, n_echoes=N_ECHOES, grad=True)
+        _s, d_t2, d_c = cpmg_cos(t2, cc, esp=ESP, n_echoes=N_ECHOES, grad=True)
         h = 1e-6
         fd_c = (cpmg_cos(t2, cc + h, esp=ESP, n_echoes=N_ECHOES) - cpmg_cos(t2, cc - h, esp=ESP, n_echoes=N_ECHOES))
         fd_t = (cpmg_cos(t2 * (1 + h), cc, esp=ESP, n_echoes=N_ECHOES)

@@ -97,7 +97,7 @@ def test_jacobian_matches_central_differences():
         num = (model.predict(p + d) - model.predict(p - d)) / (2 * h)
         np.testing.assert_allclose(jac[:, j], num, rtol=1e-7, atol=1e-7 * np.abs(num).max())
     # the specialised Jacobian equals the generic one built from basis/dbasis
-    s_gen, j_gen = super(InversionRecovery, model).signal_jacobian(p)
+    _s_gen, j_gen = super(InversionRecovery, model).signal_jacobian(p)
     np.testing.assert_allclose(jac, j_gen, rtol=1e-14, atol=1e-14)
 
 
@@ -140,7 +140,7 @@ def test_sample_exactly_at_the_null():
 
 def test_results_do_not_depend_on_the_chunk_size():
     # the architecture requires bit-identical results whatever the chunking
-    t1, _, _, y = simulate(30, magnitude=True, seed=5, n=60)
+    _t1, _, _, y = simulate(30, magnitude=True, seed=5, n=60)
     a = fit_volume(InversionRecovery(TI), y, chunk_size=7, n_jobs=1)
     b = fit_volume(InversionRecovery(TI), y, chunk_size=1000, n_jobs=2)
     for name in a.names:
@@ -323,7 +323,7 @@ def test_complex_series_before_the_null_keeps_m0_positive():
 
 
 def test_unsorted_inversion_times_are_sorted_with_the_samples():
-    t1, _, _, y = simulate(100, magnitude=True, seed=9, n=20)
+    _t1, _, _, y = simulate(100, magnitude=True, seed=9, n=20)
     order = np.random.default_rng(0).permutation(TI.size)
     a = fit_t1_ir(y, TI)
     b = fit_t1_ir(y[:, order], TI[order])

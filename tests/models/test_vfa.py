@@ -18,8 +18,8 @@ import pytest
 from scipy.optimize import approx_fprime, brentq, minimize
 
 from qmap.fitting import status as st
-from qmap.maps import fit_volume
 from qmap.fitting.linearised import fit_chunk_linear
+from qmap.maps import fit_volume
 from qmap.models.vfa import SpoiledGRE, ernst_angle, optimal_angle_pair, t1_crlb
 from qmap.workflows.vfa import fit_t1_vfa, protocol_check
 

@@ -10,7 +10,6 @@ import pytest
 
 from qmap.cli import main
 from qmap.qa.quantities import example_column
-
 from tests.qa.phantom_factory import make_phantom
 
 

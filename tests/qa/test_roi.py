@@ -116,7 +116,7 @@ def test_cli_prints_the_table_per_slice_rows_and_any_map_name(scene, tmp_path, c
     rows = doc["rows"]
     # per label x map: one whole-ROI row plus one per slice the label covers (3 for label 1, 2 for label 2)
     assert len(rows) == 2 * (1 + 3 + 1 + 2)
-    whole = [r for r in rows if r["slice"] is None and r["parameter"] == "T1" and r["label"] == 1][0]
+    whole = next(r for r in rows if r["slice"] is None and r["parameter"] == "T1" and r["label"] == 1)
     per = [r for r in rows if r["slice"] is not None and r["parameter"] == "T1" and r["label"] == 1]
     assert sum(r["n_voxels"] for r in per) == whole["n_voxels"]
     e = [r for r in rows if r["parameter"] == "InversionEfficiency" and r["slice"] is None]
