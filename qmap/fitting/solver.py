@@ -79,6 +79,8 @@ def grid_start(model: SeparableModel, y: np.ndarray, w: np.ndarray, ctx: dict | 
     yw = y if uniform else y * w
     shared = not model.voxel_inputs
     L = len(model.linear)
+    if shared and uniform and L == 1:
+        return grid[_dictionary_match(model.basis(grid, None)[:, :, 0], y)].copy()
     for g0 in range(0, grid.shape[0], GRID_BLOCK):
         g = grid[g0 : g0 + GRID_BLOCK]
         if shared:
@@ -107,6 +109,37 @@ def grid_start(model: SeparableModel, y: np.ndarray, w: np.ndarray, ctx: dict | 
         best[better] = s[better]
         best_idx[better] = i[better] + g0
     return grid[best_idx].copy()
+
+
+#: grid columns per block of the dictionary match (a float32 (n, block) score array per block)
+MATCH_BLOCK = 512
+
+
+def _dictionary_match(phi: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Index of the best atom per voxel for one linear amplitude: argmax_g |<y, phi_g>| / ||phi_g||, (n,).
+
+    With a single amplitude the projection score ``b^2 / a`` of the grid search
+    is the squared normalised inner product, so the atoms are normalised once
+    and the match is one single-precision matrix product per block of atoms
+    (the scores only choose an index; atoms of zero norm never win).
+    """
+    norm = np.sqrt(np.einsum("gm,gm->g", phi, phi))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        atoms = np.where((norm > 0)[:, None] & np.isfinite(phi), phi / norm[:, None], 0.0).astype(np.float32)
+    y32 = np.ascontiguousarray(y, dtype=np.float32)
+    n = y.shape[0]
+    best = np.full(n, -1.0, np.float32)
+    best_idx = np.zeros(n, np.intp)
+    rows = np.arange(n)
+    for g0 in range(0, atoms.shape[0], MATCH_BLOCK):
+        score = y32 @ atoms[g0 : g0 + MATCH_BLOCK].T  # (n, block)
+        np.abs(score, out=score)
+        i = np.argmax(score, axis=1)
+        s = score[rows, i]
+        better = s > best
+        best[better] = s[better]
+        best_idx[better] = i[better] + g0
+    return best_idx
 
 
 def _projection_score(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -206,6 +239,17 @@ def levenberg_marquardt(
     Returns
     -------
     p, rss, J, converged, n_iter
+
+    Notes
+    -----
+    A voxel has converged when its proposed step is negligible (below
+    ``xtol`` relative, or below ``se_tol`` times a lower bound of each
+    parameter's standard error) while the damping is moderate; it is then
+    not evaluated again, so the answer is within that
+    tolerance of the minimum and costs one model evaluation less than
+    confirming the step: the step is taken, and the RSS and Jacobian
+    returned for it are those of the point before. It has also converged when an accepted step lowers
+    the RSS by less than ``ftol`` relative, or when no downhill step exists.
     """
     n, P = p0.shape
     m_dof = y.shape[1] - P
@@ -261,19 +305,31 @@ def levenberg_marquardt(
         # predicted RSS decrease of the (projected) step from the linear model: dc^T (2 g - H dc)
         dc = pn - wp
         pred = np.einsum("np,np->n", dc, 2 * g - np.einsum("npq,nq->np", H, dc))
-        sn, Jn = evaluate(pn, idx)
-        rn = wy - sn
-        rssn = np.einsum("nm,nm->n", rn if ww is None else ww * rn, rn)
-        ok = live & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
-        wit += live
         step = np.abs(pn - wp)
         small_step = np.all(step <= xtol * (np.abs(wp) + xtol), axis=1)
-        # ... or negligible against the statistical uncertainty: below 1e-3 of s / sqrt(H_ii), a lower
+        # ... or negligible against the statistical uncertainty: below se_tol of s / sqrt(H_ii), a lower
         # bound of each parameter's standard error (s^2 = RSS / dof)
         if m_dof > 0:
             with np.errstate(divide="ignore", invalid="ignore"):
                 se_floor = np.sqrt(wrss / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", H))
             small_step |= np.all(step <= se_tol * se_floor, axis=1)
+        # a small step only means convergence when it was not made small by heavy damping
+        small_step &= lam <= 1.0
+        # a voxel whose proposed step is already negligible has converged where it is: it is not evaluated
+        # again (nor are the voxels that finished earlier and still sit in the working set)
+        need = live & ~small_step
+        if need.all():
+            sn, Jn = evaluate(pn, idx)
+        else:
+            k = np.flatnonzero(need)
+            sn = np.zeros_like(wr)
+            Jn = np.zeros_like(wJ)
+            if k.size:
+                sn[k], Jn[k] = evaluate(pn[k], idx[k])
+        rn = wy - sn
+        rssn = np.einsum("nm,nm->n", rn if ww is None else ww * rn, rn)
+        ok = need & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
+        wit += live
         small_drop = (wrss - rssn) <= ftol * wrss
         # damping after Nielsen (1999; Madsen, Nielsen & Tingleff, "Methods for non-linear least
         # squares problems", 2004): shrink by how well the linear model predicted the decrease
@@ -284,8 +340,9 @@ def levenberg_marquardt(
         np.copyto(wr, rn, where=ok[:, None])
         np.copyto(wJ, Jn, where=ok[:, None, None])
         np.copyto(wrss, rssn, where=ok)
-        # a small step only means convergence when it was not made small by heavy damping
-        small_step &= lam <= 1.0
+        # the negligible steps are taken without evaluating them (RSS and Jacobian stay those of the point
+        # before: they differ by second order in a step far below the standard error)
+        np.copyto(wp, pn, where=(live & small_step & np.all(np.isfinite(pn), axis=1))[:, None])
         lam = np.where(ok, np.maximum(lam * shrink, 1e-12), lam * nu)
         nu = np.where(ok, 2.0, nu * 2.0)
         # converged: the proposed step is negligible (accepted or not: at the minimum, rounding can
