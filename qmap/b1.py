@@ -36,6 +36,7 @@ resamples it onto a data grid through the two affines, for B1 correction.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -43,6 +44,9 @@ from .defaults import B1_METHODS, B1_SCALES
 from .errors import InputError, UsageError, warn
 from .fitting import status as st
 from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
+
+if TYPE_CHECKING:
+    from nibabel.spatialimages import SpatialImage
 
 __all__ = ["B1_METHODS", "B1_SCALES", "B1ClosedForm", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
            "dam_b1", "load_b1_map", "load_b1_stderr"]
@@ -350,13 +354,8 @@ def load_b1_map(
     pulled towards 0.
     """
     path = Path(path)
-    img = load_image(path, what="--b1")
-    data = image_data(img, path)
-    if data.ndim == 4 and data.shape[3] == 1:
-        data = data[..., 0]
-    if data.ndim != 3:
-        raise InputError(f"--b1 {path}: has shape {data.shape}, expected one 3D relative B1 map "
-                         f"(for AFI/DAM raw images run qmap b1 first and pass its TB1map)")
+    img, data = _load_3d(path, "--b1", "one 3D relative B1 map (for AFI/DAM raw images run qmap b1 first and "
+                                       "pass its TB1map)")
     scale, source = _b1_scale(path, scale)
     values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
     nz = values[np.isfinite(values) & (values != 0)]
@@ -387,10 +386,7 @@ def load_b1_map(
         sw = ndimage.gaussian_filter(valid.astype(float), sig, mode="constant", cval=0.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             values = np.where(valid, sv / sw, np.nan)
-    rv = resample_to_grid(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
-    rw = resample_to_grid(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        b1 = np.where(rw >= 0.5, rv / rw, np.nan)
+    b1 = _resample_valid(values, valid, src_affine, shape, affine)
     covered = np.isfinite(b1)
     if not covered.any():
         raise InputError(
@@ -410,6 +406,30 @@ def load_b1_map(
         "b1_grid_coverage": float(covered.mean()),
     }
     return b1, info
+
+
+def _load_3d(path: Path, option: str, expected: str) -> tuple[SpatialImage, np.ndarray]:
+    """The image and data of a 3D map given with ``option`` (a 4D file of one volume is taken as 3D)."""
+    img = load_image(path, what=option)
+    data = image_data(img, path)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(f"{option} {path}: has shape {data.shape}, expected {expected}")
+    return img, data
+
+
+def _resample_valid(values: np.ndarray, valid: np.ndarray, src_affine: np.ndarray, shape: tuple,
+                    affine: np.ndarray) -> np.ndarray:
+    """Trilinear resampling of ``values`` onto a grid, normalised by the resampled coverage of ``valid``.
+
+    A voxel is kept (NaN elsewhere) where at least half of its interpolation weight is valid, so the edge of
+    a masked map is not pulled towards 0.
+    """
+    rv = resample_to_grid(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
+    rw = resample_to_grid(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(rw >= 0.5, rv / rw, np.nan)
 
 
 def b1_stderr_beside(b1_path) -> Path | None:
@@ -440,12 +460,7 @@ def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "frac
         For provenance.
     """
     path = Path(path)
-    img = load_image(path, what="--b1-stderr")
-    data = image_data(img, path)
-    if data.ndim == 4 and data.shape[3] == 1:
-        data = data[..., 0]
-    if data.ndim != 3:
-        raise InputError(f"--b1-stderr {path}: has shape {data.shape}, expected one 3D standard-error map")
+    img, data = _load_3d(path, "--b1-stderr", "one 3D standard-error map")
     values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
     valid = np.isfinite(values) & (values >= 0)
     if not valid.any():
@@ -456,10 +471,7 @@ def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "frac
         raise InputError(f"--b1-stderr {path}: median {med:.3g} ({scale}) is not a plausible standard error of a "
                          f"relative B1 map (expected about 0.005-0.1); is it the B1 map itself, or percent?")
     src_affine = np.asarray(img.affine, float)
-    rv = resample_to_grid(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
-    rw = resample_to_grid(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        se = np.where(rw >= 0.5, rv / rw, np.nan)
+    se = _resample_valid(values, valid, src_affine, shape, affine)
     return se, {"b1_stderr_median": med, "b1_stderr_resampling": "trilinear through the affines"}
 
 

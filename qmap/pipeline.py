@@ -22,7 +22,7 @@ from .engine import DEFAULT_CHUNK
 from .errors import InputError, OutputExistsError, UsageError, warn
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
-from .io.nifti import check_same_grid, image_data, load_image
+from .io.nifti import check_same_grid, image_data, load_image, split_bids_stem
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
 from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
@@ -135,23 +135,16 @@ _SUFFIX_METHOD = {"UNIT1": "mp2rage"}
 #: number (``_e2``) or image part (``_ph``, ``_real``, ``_imaginary``)
 _CONVERTER_TOKEN = re.compile(r"_(?:(?:TI|TE|TR|FA|ti|te|tr|fa|flip)[0-9]+(?:[.p][0-9]+)?(?:ms|s|deg)?|e[0-9]+|ph|real|"
                               r"imaginary)(?=_|$)")
-_BIDS_LABEL = re.compile(r"^[0-9a-zA-Z]+$")
 
 
 def _bids_parts(stem: str) -> tuple[list[tuple[str, str]], str] | None:
     """Entities and suffix of a BIDS name stem starting with ``sub-``; None when it is not one."""
-    parts = stem.split("_")
-    if len(parts) < 2 or not parts[0].startswith("sub-"):
+    if not stem.startswith("sub-"):
         return None
-    ents = []
-    for part in parts[:-1]:
-        key, sep, value = part.partition("-")
-        if not sep or not key.isalnum() or not _BIDS_LABEL.match(value):
-            return None
-        ents.append((key, value))
-    if len({k for k, _ in ents}) != len(ents) or "-" in parts[-1]:
+    parsed = split_bids_stem(stem)
+    if parsed is None or "-" in parsed[1]:
         return None
-    return ents, parts[-1]
+    return parsed
 
 
 def default_prefix(path: str | Path, method: str | None = None) -> str:

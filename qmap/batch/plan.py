@@ -32,17 +32,15 @@ worker processes or Dask workers on other machines; every path is absolute.
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import InputError, UsageError
-from ..io.nifti import read_sidecar
+from ..io.nifti import read_sidecar, split_bids_stem
 
 __all__ = ["FIT_KINDS", "BatchPlan", "FitKind", "SeriesPlan", "discover", "parse_bids_name"]
 
 _NII = (".nii.gz", ".nii")
-_LABEL = re.compile(r"^[0-9a-zA-Z]+$")
 
 
 @dataclass(frozen=True)
@@ -95,19 +93,7 @@ def parse_bids_name(path: str | Path) -> tuple[list[tuple[str, str]], str] | Non
             break
     else:
         return None
-    parts = stem.split("_")
-    if len(parts) < 2:
-        return None
-    entities = []
-    for part in parts[:-1]:
-        key, sep, value = part.partition("-")
-        if not sep or not key.isalnum() or not _LABEL.match(value):
-            return None
-        entities.append((key, value))
-    keys = [k for k, _ in entities]
-    if len(set(keys)) != len(keys):
-        return None
-    return entities, parts[-1]
+    return split_bids_stem(stem)
 
 
 @dataclass

@@ -57,12 +57,7 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
     elif suffix == "VFA":
         kwargs = {"method": "nonlinear"}
         opts = ["--method", "nonlinear"]
-        if plan.b1:
-            kwargs["b1"] = plan.b1
-            opts += ["--b1", plan.b1]
-            if plan.b1_scale:
-                kwargs["b1_scale"] = plan.b1_scale
-                opts += ["--b1-scale", plan.b1_scale]
+        _add_b1(plan, kwargs, opts)
     elif plan.spectrum:
         pass
     elif suffix == "MESE":
@@ -71,12 +66,7 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
         if plan.inputs:
             kwargs.update(inv1=plan.inputs[0], inv2=plan.inputs[1])
             opts += ["--inv1", plan.inputs[0], "--inv2", plan.inputs[1]]
-        if plan.b1:
-            kwargs["b1"] = plan.b1
-            opts += ["--b1", plan.b1]
-            if plan.b1_scale:
-                kwargs["b1_scale"] = plan.b1_scale
-                opts += ["--b1-scale", plan.b1_scale]
+        _add_b1(plan, kwargs, opts)
     for name, value in sorted(plan.options.items()):
         opts += [f"--{name}", str(value)]
         if name == "noise-floor":
@@ -86,6 +76,16 @@ def fit_call(plan: SeriesPlan) -> tuple[dict, list[str]]:
         elif name == "coils":
             kwargs["coils"] = int(value)
     return kwargs, opts
+
+
+def _add_b1(plan: SeriesPlan, kwargs: dict, opts: list[str]) -> None:
+    """The B1 map (and its units) of a fit that corrects for B1, as keyword arguments and as options."""
+    if plan.b1:
+        kwargs["b1"] = plan.b1
+        opts += ["--b1", plan.b1]
+        if plan.b1_scale:
+            kwargs["b1_scale"] = plan.b1_scale
+            opts += ["--b1-scale", plan.b1_scale]
 
 
 def positional(plan: SeriesPlan) -> list[str]:

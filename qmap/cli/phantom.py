@@ -16,30 +16,41 @@ class _MapAction(argparse.Action):
         setattr(namespace, self.dest, maps)
 
 
-class _ParamAction(argparse.Action):
+class _MapAttribute(argparse.Action):
+    """An option that describes the ``--map`` just before it, stored in slot ``slot`` of that map's entry."""
+
+    slot = 1
+    verb = "describes"
+    example = "--map FILE --param T1"
+
+    def check(self, values) -> None:
+        """Refuse a value this option cannot take."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        maps = getattr(namespace, "maps", None) or []
+        opt = option_string or self.option_strings[0]
+        if not maps:
+            raise UsageError(f"{opt} {values}: give it right after the --map it {self.verb} ({self.example})")
+        if maps[-1][self.slot] is not None:
+            raise UsageError(f"{opt} {values}: the map {maps[-1][0]} has a {opt} already ({maps[-1][self.slot]})")
+        self.check(values)
+        maps[-1][self.slot] = values
+
+
+class _ParamAction(_MapAttribute):
     """``--param P`` names the parameter of the ``--map`` just before it."""
 
-    def __call__(self, parser, namespace, values, option_string=None):
-        maps = getattr(namespace, "maps", None) or []
-        if not maps:
-            raise UsageError(f"--param {values}: give it right after the --map it describes (--map FILE --param T1)")
-        if maps[-1][1] is not None:
-            raise UsageError(f"--param {values}: the map {maps[-1][0]} has a --param already ({maps[-1][1]})")
-        maps[-1][1] = values
 
-
-class _TagAction(argparse.Action):
+class _TagAction(_MapAttribute):
     """``--tag NAME`` labels the ``--map`` just before it (two maps of one parameter: ``--tag ir``, ``--tag vfa``)."""
 
-    def __call__(self, parser, namespace, values, option_string=None):
-        maps = getattr(namespace, "maps", None) or []
-        if not maps:
-            raise UsageError(f"--tag {values}: give it right after the --map it labels (--map FILE --tag ir)")
-        if maps[-1][2] is not None:
-            raise UsageError(f"--tag {values}: the map {maps[-1][0]} has a --tag already ({maps[-1][2]})")
+    slot = 2
+    verb = "labels"
+    example = "--map FILE --tag ir"
+
+    def check(self, values) -> None:
         if not str(values).replace("-", "").isalnum():
             raise UsageError(f"--tag {values!r}: use letters, digits and '-' only (e.g. ir, vfa)")
-        maps[-1][2] = values
 
 
 def add_parser(sub) -> None:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import gzip
 import json
+import re
 import zlib
 from pathlib import Path
 
@@ -21,11 +22,15 @@ __all__ = [
     "resample_to_grid",
     "same_grid",
     "sidecar_path",
+    "split_bids_stem",
 ]
 
 #: Affines may differ by this much (mm, and unitless for the rotation part)
 #: and still count as the same grid (rounding in DICOM converters).
 AFFINE_TOL = 1e-3
+
+#: a BIDS label (the value of an entity): alphanumeric
+_BIDS_LABEL = re.compile(r"^[0-9a-zA-Z]+$")
 
 
 def sidecar_path(path: str | Path) -> Path:
@@ -36,6 +41,26 @@ def sidecar_path(path: str | Path) -> Path:
         if name.endswith(ext):
             return p.with_name(name[: -len(ext)] + ".json")
     return p.with_suffix(".json")
+
+
+def split_bids_stem(stem: str) -> tuple[list[tuple[str, str]], str] | None:
+    """Entities (in name order) and suffix of a BIDS file name without extension; None when it is not one.
+
+    ``sub-01_ses-1_echo-2_MEGRE`` -> ``([("sub", "01"), ("ses", "1"), ("echo", "2")], "MEGRE")``: every
+    part but the last is ``key-label`` (alphanumeric), no key twice.
+    """
+    parts = stem.split("_")
+    if len(parts) < 2:
+        return None
+    entities = []
+    for part in parts[:-1]:
+        key, sep, value = part.partition("-")
+        if not sep or not key.isalnum() or not _BIDS_LABEL.match(value):
+            return None
+        entities.append((key, value))
+    if len({k for k, _ in entities}) != len(entities):
+        return None
+    return entities, parts[-1]
 
 
 def read_sidecar(path: str | Path) -> dict:

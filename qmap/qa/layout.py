@@ -45,7 +45,7 @@ import numpy as np
 
 from ..errors import InputError
 from .detect import find_blobs
-from .reference import read_text_table
+from .reference import number_cell, read_text_table
 from .register import MatchFailure, RigidMatch, register_points
 
 __all__ = ["Layout", "LayoutResult", "place_rois", "plane_basis", "read_layout"]
@@ -69,18 +69,7 @@ class Layout:
 
 def _field(rec, cols, key, where, required=True) -> float:
     col = cols.get(key)
-    text = (rec.get(col) or "").strip() if col else ""
-    if not text:
-        if required:
-            raise InputError(f"{where}: {key} is empty")
-        return math.nan
-    try:
-        v = float(text)
-    except ValueError:
-        raise InputError(f"{where}: {key} {text!r} is not a number") from None
-    if not math.isfinite(v):
-        raise InputError(f"{where}: {key} {text!r} is not finite")
-    return v
+    return number_cell(rec.get(col) if col else None, where=where, what=key, required=required)
 
 
 def read_layout(path: str | Path) -> Layout:

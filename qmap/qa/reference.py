@@ -225,16 +225,20 @@ def _classify(
     return special, params, tols, ignored
 
 
-def _number(text: str | None, *, where: str, what: str) -> float:
+def number_cell(text: str | None, *, where: str, what: str, required: bool = False) -> float:
+    """The number in a table cell (reference or layout CSV); an empty cell is NaN, or an error if ``required``."""
     s = (text or "").strip()
     if not s:
+        if required:
+            raise InputError(f"{where}: {what} is empty")
         return math.nan
     try:
         v = float(s)
     except ValueError:
         raise InputError(f"{where}: {what} {s!r} is not a number") from None
     if not math.isfinite(v):
-        raise InputError(f"{where}: {what} {s!r} is not a finite number; leave the cell empty for 'no value'")
+        hint = "" if required else "; leave the cell empty for 'no value'"
+        raise InputError(f"{where}: {what} {s!r} is not a finite number{hint}")
     return v
 
 
@@ -250,21 +254,21 @@ def parse_reference(text: str, *, where: str = "reference table") -> ReferenceTa
     for i, rec in enumerate(reader, start=2):
         at = f"{where} row {i}"
         lab_text = (rec.get(special["label"]) or "").strip()
-        lab = _number(lab_text, where=at, what="label")
+        lab = number_cell(lab_text, where=at, what="label")
         if not math.isfinite(lab) or lab != int(lab) or lab <= 0:
             raise InputError(f"{at}: label {lab_text!r} is not a positive integer (0 is the background)")
         temp = None
         if "temperature_c" in special:
-            temp = _number(rec.get(special["temperature_c"]), where=at, what="temperature_C")
+            temp = number_cell(rec.get(special["temperature_c"]), where=at, what="temperature_C")
             temp = None if math.isnan(temp) else temp
         values = {}
         for param, (col, _) in params.items():
-            v = _number(rec.get(col), where=at, what=col.strip())
+            v = number_cell(rec.get(col), where=at, what=col.strip())
             if math.isfinite(v) and v <= 0:
                 raise InputError(f"{at}: {col.strip()} = {v:g}; reference values must be positive")
             values[param] = v
-        tol = {p: _number(rec.get(c), where=at, what=c.strip()) for p, c in tols.items() if p != "*"}
-        tol_all = _number(rec.get(tols["*"]), where=at, what=tols["*"].strip()) if "*" in tols else math.nan
+        tol = {p: number_cell(rec.get(c), where=at, what=c.strip()) for p, c in tols.items() if p != "*"}
+        tol_all = number_cell(rec.get(tols["*"]), where=at, what=tols["*"].strip()) if "*" in tols else math.nan
         for v in list(tol.values()) + [tol_all]:
             if math.isfinite(v) and v <= 0:
                 raise InputError(f"{at}: a tolerance of {v:g}% is not positive")

@@ -9,6 +9,7 @@ standard errors, and writes the maps through :func:`qmap.pipeline.write_run`
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -33,15 +34,45 @@ NAN_FALLBACK = ("the TB1 standard errors are NaN (give --sigma VALUE)",
 DAM_TR_NOTE_S = 5.0
 
 
-def _load_afi(inputs, fa, tr, max_bytes, check_order=True):
-    if fa is not None and np.size(fa) != 1:
-        raise UsageError(f"--fa: AFI takes one nominal flip angle, got {np.size(fa)} values")
-    fa1 = None if fa is None else float(np.ravel(fa)[0])
-    series = load_series(inputs, key="RepetitionTime", value=tr, option="--tr",
-                         scalars={"FlipAngle": (fa1, "--fa", True, "FlipAngle")}, min_volumes=2,
-                         what="AFI images", max_bytes=max_bytes, check_order=check_order)
+@dataclass(frozen=True)
+class _Pair:
+    """How one method's two images are told apart (``key``) and which scalar they share."""
+
+    name: str  # in messages about the options
+    title: str  # in messages about the images
+    images: str  # what the two images are
+    what: str  # the images, in messages of the series loader
+    key: str  # the acquisition parameter that differs between the images
+    option: str
+    scalar: str  # the acquisition parameter the images share
+    scalar_option: str
+    scalar_required: bool
+    scalar_noun: str
+
+
+_AFI = _Pair(name="AFI", title="AFI", images="TR1 and TR2", what="AFI images", key="RepetitionTime", option="--tr",
+             scalar="FlipAngle", scalar_option="--fa", scalar_required=True, scalar_noun="nominal flip angle")
+_DAM = _Pair(name="DAM", title="the double-angle method", images="a and 2a", what="double-angle images",
+             key="FlipAngle", option="--fa", scalar="RepetitionTime", scalar_option="--tr", scalar_required=False,
+             scalar_noun="repetition time")
+
+
+def _load_pair(pair: _Pair, inputs, value, scalar, max_bytes, check_order):
+    """The two images of ``pair``'s method, labelled by ``pair.key`` (``value`` or the sidecars)."""
+    if scalar is not None and np.size(scalar) != 1:
+        raise UsageError(f"{pair.scalar_option}: {pair.name} takes one {pair.scalar_noun}, got {np.size(scalar)} "
+                         f"values")
+    one = None if scalar is None else float(np.ravel(scalar)[0])
+    series = load_series(inputs, key=pair.key, value=value, option=pair.option,
+                         scalars={pair.scalar: (one, pair.scalar_option, pair.scalar_required, pair.scalar)},
+                         min_volumes=2, what=pair.what, max_bytes=max_bytes, check_order=check_order)
     if series.n != 2:
-        raise InputError(f"{series.paths[0]}: AFI takes two images (TR1 and TR2), got {series.n}")
+        raise InputError(f"{series.paths[0]}: {pair.title} takes two images ({pair.images}), got {series.n}")
+    return series
+
+
+def _load_afi(inputs, fa, tr, max_bytes, check_order=True):
+    series = _load_pair(_AFI, inputs, tr, fa, max_bytes, check_order)
     trs = np.asarray(series.acquisition["RepetitionTime"], float)
     return series, float(series.acquisition["FlipAngle"]), float(trs[1] / trs[0])
 
@@ -53,14 +84,7 @@ def _load_dam(inputs, fa, tr, max_bytes, check_order=True):
             fa = np.array([fa[0], 2.0 * fa[0]])
         elif fa.size != 2:
             raise UsageError(f"--fa: DAM takes a or a,2a, got {fa.size} values")
-    if tr is not None and np.size(tr) != 1:
-        raise UsageError(f"--tr: DAM takes one repetition time, got {np.size(tr)} values")
-    tr1 = None if tr is None else float(np.ravel(tr)[0])
-    series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
-                         scalars={"RepetitionTime": (tr1, "--tr", False, "RepetitionTime")}, min_volumes=2,
-                         what="double-angle images", max_bytes=max_bytes, check_order=check_order)
-    if series.n != 2:
-        raise InputError(f"{series.paths[0]}: the double-angle method takes two images (a and 2a), got {series.n}")
+    series = _load_pair(_DAM, inputs, fa, tr, max_bytes, check_order)
     a = np.asarray(series.acquisition["FlipAngle"], float)
     if not np.isclose(a[1], 2.0 * a[0], rtol=1e-2):
         raise InputError(f"--fa / FlipAngle {a[0]:g},{a[1]:g} deg: the double-angle method needs the angles a and 2a "
