@@ -62,3 +62,18 @@ def snapshot(folder: Path) -> dict:
     if not folder.exists():
         return {}
     return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def refused(argv: list, out: Path, capsys) -> str:
+    """Run ``qmap ARGV -o OUT -q``: exit code 2, one line ``qmap: error: ...``, no traceback, OUT not created.
+
+    Returns the error line.
+    """
+    from qmap.cli import main
+
+    code = main([*map(str, argv), "-o", str(out), "-q"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1 and err.startswith("qmap: error:") and "Traceback" not in err
+    assert not out.exists()  # no output folder, no contents
+    return err

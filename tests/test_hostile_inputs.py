@@ -962,6 +962,22 @@ def _enospc():
     return OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
 
 
+def _series_and_out(tmp_path: Path, phantom, previous_run: Path, fresh: bool) -> tuple[Path, Path]:
+    """The phantom series in ``tmp_path`` and the output folder: absent (``fresh``) or holding an earlier run."""
+    data, *_ = phantom
+    p = _good4d(tmp_path, data)
+    out = tmp_path / "out"
+    if not fresh:
+        shutil.copytree(previous_run, out)
+    return p, out
+
+
+def _rerun(p: Path, out: Path, capsys) -> tuple[int, str]:
+    """``qmap t2star`` with prefix ``run`` and --overwrite into ``out``: (exit code, the one error line)."""
+    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
+    return rc, one_line(err)
+
+
 class _FailAt:
     """Wrap ``fn``: the ``k``-th call raises ``exc()`` instead (1-based); counts calls."""
 
@@ -978,16 +994,11 @@ class _FailAt:
 @pytest.mark.parametrize("k", [1, 4, 9])  # the first, a middle and the last NIfTI (t2star writes 9)
 @pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
 def test_disk_full_while_writing_nifti(k, fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
-    data, *_ = phantom
-    p = _good4d(tmp_path, data)
-    out = tmp_path / "out"
-    if not fresh:
-        shutil.copytree(previous_run, out)
+    p, out = _series_and_out(tmp_path, phantom, previous_run, fresh)
     fail = _FailAt(nib.save, k, _enospc)
     monkeypatch.setattr(writer_mod.nib, "save", fail)
     before = snapshot(tmp_path)
-    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
-    line = one_line(err)
+    rc, line = _rerun(p, out, capsys)
     assert fail.calls >= k  # the staging threads may finish the files they had started
     assert rc == 2 and re.search(r"cannot write .*run_.*map\.nii\.gz", line) and "space" in line, line
     assert snapshot(tmp_path) == before
@@ -1008,15 +1019,10 @@ def _open_failing_for(suffix):
 @pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
 def test_disk_full_while_writing_provenance(fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
     """The last file staged (the provenance JSON) fails: every map staged before it is discarded."""
-    data, *_ = phantom
-    p = _good4d(tmp_path, data)
-    out = tmp_path / "out"
-    if not fresh:
-        shutil.copytree(previous_run, out)
+    p, out = _series_and_out(tmp_path, phantom, previous_run, fresh)
     monkeypatch.setattr(writer_mod, "open", _open_failing_for("run_provenance.json"), raising=False)
     before = snapshot(tmp_path)
-    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
-    line = one_line(err)
+    rc, line = _rerun(p, out, capsys)
     assert rc == 2 and "run_provenance.json" in line and "space" in line, line
     assert snapshot(tmp_path) == before
 
@@ -1025,11 +1031,7 @@ def test_disk_full_while_writing_provenance(fresh, tmp_path, phantom, previous_r
 @pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
 def test_rename_fails_during_commit(k, fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
     """An OSError between the renames of the commit (e.g. the folder vanished, EIO) rolls everything back."""
-    data, *_ = phantom
-    p = _good4d(tmp_path, data)
-    out = tmp_path / "out"
-    if not fresh:
-        shutil.copytree(previous_run, out)
+    p, out = _series_and_out(tmp_path, phantom, previous_run, fresh)
     fail = _FailAt(os.replace, k, lambda: OSError(errno.EIO, os.strerror(errno.EIO)))
     monkeypatch.setattr(writer_mod.os, "replace", fail)
     before = snapshot(tmp_path)
@@ -1068,14 +1070,10 @@ def _corrupting_save(kind):
 @pytest.mark.parametrize("kind", ["affine", "shape", "nonfinite"])
 def test_written_file_that_does_not_read_back_is_refused(kind, tmp_path, phantom, previous_run, capsys, monkeypatch):
     """AtomicWriter re-reads each NIfTI (shape, affine, finite where status 0) before anything is committed."""
-    data, *_ = phantom
-    p = _good4d(tmp_path, data)
-    out = tmp_path / "out"
-    shutil.copytree(previous_run, out)
+    p, out = _series_and_out(tmp_path, phantom, previous_run, fresh=False)
     monkeypatch.setattr(writer_mod.nib, "save", _corrupting_save(kind))
     before = snapshot(tmp_path)
-    rc, _, err = cli(["t2star", p, "-o", out, "--prefix", "run", "--overwrite", "-q", "--sigma", "5"], capsys)
-    line = one_line(err)
+    rc, line = _rerun(p, out, capsys)
     assert rc == 2 and "run_T2starmap.nii.gz" in line, line
     assert snapshot(tmp_path) == before
 

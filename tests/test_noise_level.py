@@ -36,6 +36,13 @@ from tests.conftest import rician, write_nifti
 TE = np.linspace(0.002, 0.040, 12)  # 12 echoes, 2-40 ms
 
 
+def _square(shape, lo: int, hi: int) -> np.ndarray:
+    """An object mask: the in-plane square [lo, hi) x [lo, hi) in every slice."""
+    obj = np.zeros(shape, bool)
+    obj[lo:hi, lo:hi] = True
+    return obj
+
+
 def _decay_volume(shape, *, rim=0, sigma=5.0, m0=100.0, seed=0, zero_fill=False, t2_lo=0.004, t2_hi=0.06):
     """T2* rising along x across the object (t2_lo..t2_hi), object = everything but a rim of ``rim`` voxels."""
     rng = np.random.default_rng(seed)
@@ -91,8 +98,7 @@ def test_grouped_median_undoes_integer_rounding():
 def test_integer_background_near_one_unit_is_estimated_in_the_chain():
     rng = np.random.default_rng(6)
     shape = (48, 48, 4)
-    obj = np.zeros(shape, bool)
-    obj[14:34, 14:34] = True
+    obj = _square(shape, 14, 34)
     for sigma in (0.9, 1.3):
         d = np.round(rician(np.where(obj, 60.0, 0.0)[..., None] * np.ones(3), sigma, rng))
         est = background_estimate(ArraySource(d))
@@ -111,8 +117,7 @@ def test_background_source_over_snr(snr):
     rng = np.random.default_rng(100 + snr)
     shape = (32, 32, 3)
     sigma = 2.0
-    obj = np.zeros(shape, bool)
-    obj[10:22, 10:22] = True
+    obj = _square(shape, 10, 22)
     errs, precs = [], []
     for _ in range(8):
         d = stats.rayleigh.rvs(scale=sigma, size=shape + (6,), random_state=rng)
@@ -160,8 +165,7 @@ def test_model_misfit_is_reported_when_both_sources_exist():
     # a two-compartment decay fitted as one exponential: the residuals overestimate the noise
     rng = np.random.default_rng(3)
     shape = (40, 40, 3)
-    obj = np.zeros(shape, bool)
-    obj[8:32, 8:32] = True
+    obj = _square(shape, 8, 32)
     s = np.where(obj[..., None], 300 * (0.5 * np.exp(-TE / 0.004) + 0.5 * np.exp(-TE / 0.08)), 0.0)
     d = rician(s, 2.0, rng)
     est = estimate_noise(ArraySource(d), model=MonoExponential(TE))
@@ -179,8 +183,7 @@ def test_sum_of_squares_background_is_recognised_from_its_moments(coils):
     rng = np.random.default_rng(40 + coils)
     shape = (40, 40, 3)
     sigma = 2.0
-    obj = np.zeros(shape, bool)
-    obj[12:28, 12:28] = True
+    obj = _square(shape, 12, 28)
     # background: sigma * chi(2N) drawn with scipy.stats.chi
     d = stats.chi(2 * coils).rvs(size=shape + (4,), random_state=rng) * sigma
     d[obj] = 200.0 + rng.normal(0, sigma, (int(obj.sum()), 4))
@@ -206,8 +209,7 @@ def test_uneven_background_noise_suggests_local():
     shape = (48, 48, 3)
     x = np.indices(shape)[0]
     sig = 2.0 * 2.5 ** (x / 47.0)
-    obj = np.zeros(shape, bool)
-    obj[16:32, 16:32] = True
+    obj = _square(shape, 16, 32)
     d = rician(np.where(obj, 200.0, 0.0)[..., None] * np.ones(4), sig[..., None], rng)
     est = background_estimate(ArraySource(d))
     assert any("--sigma local" in n for n in est.warnings)
@@ -337,8 +339,7 @@ def test_pure_noise_voxels_with_a_given_sigma_are_not_fitted(tmp_path):
     # very low SNR: the automatic mask takes in background; with --sigma given those voxels must not be status 0
     rng = np.random.default_rng(31)
     shape = (24, 24, 3)
-    obj = np.zeros(shape, bool)
-    obj[3:21, 3:21] = True  # most of the image: the series as a whole decays (qmap's pre-fit check)
+    obj = _square(shape, 3, 21)  # most of the image: the series as a whole decays (qmap's pre-fit check)
     d = rician(np.where(obj, 6.0, 0.0)[..., None] * np.exp(-TE / 0.05), 1.0, rng)
     path = write_nifti(tmp_path / "lo.nii.gz", d, sidecar={"EchoTime": TE.tolist()})
     out = tmp_path / "out"
@@ -403,8 +404,7 @@ def _small_bids(root, rng):
     """sub-01: a 16x16x3 MEGRE (12 echoes) and MESE (12 echoes, 10 ms) with a 2-voxel noise rim, SNR 20."""
     anat = root / "sub-01" / "anat"
     anat.mkdir(parents=True)
-    obj = np.zeros((16, 16, 3), bool)
-    obj[2:14, 2:14] = True
+    obj = _square((16, 16, 3), 2, 14)
     te_se = 0.01 * np.arange(1, 13)
     for suffix, te, t2 in (("MEGRE", TE, 0.02), ("MESE", te_se, 0.06)):
         for i, t in enumerate(te, 1):

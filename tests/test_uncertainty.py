@@ -146,13 +146,18 @@ def _ir(ti, a, b, t1):  # S = a + b exp(-TI/T1) (Barral et al. 2010), signed
     return a + b * np.exp(-ti / t1)
 
 
-def test_ir_magnitude_snr30_coverage_crlb_and_curve_fit():
-    rng = np.random.default_rng(23)
-    n = 56 * 56
+def _ir_voxels(rng, n: int):
+    """n voxels: T1 uniform in 0.3-3 s, inversion efficiency k in 0.9-1; returns T1, k and the signed signal (n, TI)."""
     t1 = rng.uniform(0.3, 3.0, n)
     k = rng.uniform(0.9, 1.0, n)
+    return t1, k, _ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])
+
+
+def test_ir_magnitude_snr30_coverage_crlb_and_curve_fit():
+    rng = np.random.default_rng(23)
+    t1, k, s = _ir_voxels(rng, 56 * 56)
     sigma = M0 / 30
-    vol, mask = _volume(np.abs(_ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])), sigma, rng)
+    vol, mask = _volume(np.abs(s), sigma, rng)
     model = InversionRecovery(TI)
     given = fit_volume(model, vol, mask=mask, sigma=sigma)
     ok = given.status[mask] == st.FITTED
@@ -166,7 +171,7 @@ def test_ir_magnitude_snr30_coverage_crlb_and_curve_fit():
     # curve_fit with absolute sigma on voxels with no sample near the null (there qmap's rule widens the
     # interval, tested below): the same standard errors
     y = vol[mask]
-    far = np.flatnonzero(ok & (np.min(np.abs(_ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])), axis=1) > 6 * sigma))
+    far = np.flatnonzero(ok & (np.min(np.abs(s), axis=1) > 6 * sigma))
     for i in far[:25]:
         ysgn = y[i] * np.where(TI < t1[i] * np.log(1 + k[i]), -1.0, 1.0)  # the sign the truth gives
         _p, c = curve_fit(_ir, TI, ysgn, p0=[M0, -2 * M0, t1[i]], sigma=np.full(TI.size, sigma), absolute_sigma=True)
@@ -181,11 +186,8 @@ def test_ir_near_null_rule_widens_and_keeps_low_snr_coverage():
     # standard errors (sign guessed, Rician error). Without it the 95 % interval covers only ~90 % of the
     # voxels with such a sample; with it coverage stays >= 93 % down to SNR 15
     rng = np.random.default_rng(24)
-    n = 4000
-    t1 = rng.uniform(0.3, 3.0, n)
-    k = rng.uniform(0.9, 1.0, n)
+    t1, _, s = _ir_voxels(rng, 4000)
     sigma = M0 / 15
-    s = _ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])
     y = _rician(s, sigma, rng)
     maps = fit_volume(InversionRecovery(TI), y, sigma=sigma)
     ok = maps.status == st.FITTED
@@ -300,11 +302,9 @@ def test_ir_noise_level_from_the_residual_chain_when_there_is_no_background():
     # inside the object (pooled over many voxels); the standard errors are then as well calibrated as with
     # sigma given, within one percentage point
     rng = np.random.default_rng(28)
-    n = 56 * 56
-    t1 = rng.uniform(0.3, 3.0, n)
-    k = rng.uniform(0.9, 1.0, n)
+    t1, _, s = _ir_voxels(rng, 56 * 56)
     sigma = M0 / 30
-    vol = _rician(np.abs(_ir(TI, M0, -M0 * (1 + k)[:, None], t1[:, None])), sigma, rng).reshape(56, 56, 1, TI.size)
+    vol = _rician(np.abs(s), sigma, rng).reshape(56, 56, 1, TI.size)
     model = InversionRecovery(TI)
     est_sigma, info = resolve_sigma("auto", ArraySource(vol), model=model, mask=np.ones((56, 56, 1), bool))
     assert info["source"] == "residuals"

@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 
 from qmap.cli import main
+from tests.conftest import refused, write_nifti
 
 SHAPE = (40, 40, 4)
 AFFINE = np.diag([3.0, 3.0, 4.0, 1.0])
@@ -36,10 +37,7 @@ def _noisy(s, sigma, rng):
 
 
 def _save(path, data, sidecar=None):
-    nib.save(nib.Nifti1Image(np.asarray(data, np.float32), AFFINE), str(path))
-    if sidecar is not None:
-        path.with_name(path.name.replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
-    return path
+    return write_nifti(path, data, AFFINE, sidecar)
 
 
 def _afi(fa_deg, tr1, tr2, t1, m0):
@@ -131,13 +129,7 @@ def test_dam_recovers_b1_from_single_fa(tmp_path):
 
 
 def _bad(args, tmp_path, capsys):
-    out = tmp_path / "bad"
-    code = main(["b1", *map(str, args), "-o", str(out), "-q"])
-    err = capsys.readouterr().err
-    assert code == 2
-    assert err.count("\n") == 1 and err.startswith("qmap: error:") and "Traceback" not in err
-    assert not out.exists()
-    return err
+    return refused(["b1", *args], tmp_path / "bad", capsys)
 
 
 def test_bad_inputs(tmp_path, capsys):

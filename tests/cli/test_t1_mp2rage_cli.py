@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 
 from qmap.cli import main
+from tests.conftest import write_nifti
 from tests.reference.mp2rage_pulses import simulate
 
 TI, FA, TR_PREP, TR_EXC, SHOTS, EFF = (0.7, 2.5), (4.0, 5.0), 5.0, 0.007, 176, 0.96
@@ -38,13 +39,7 @@ def _b1_of_world_y(y):
 
 
 def _save(path, data, affine=AFFINE, sidecar=None):
-    arr = np.asarray(data)
-    if arr.dtype == np.float64:
-        arr = arr.astype(np.float32)
-    nib.save(nib.Nifti1Image(arr, affine), str(path))
-    if sidecar is not None:
-        path.with_name(path.name.replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
-    return path
+    return write_nifti(path, data, affine, sidecar)
 
 
 @pytest.fixture(scope="module")

@@ -20,6 +20,7 @@ import pytest
 
 from qmap.b1 import load_b1_map
 from qmap.cli import main
+from tests.conftest import refused, write_nifti
 
 FA = np.array([3.0, 8.0, 15.0, 25.0])
 TR = 0.015
@@ -48,13 +49,6 @@ def _spgr(fa_deg, t1, m0, b1):
     return m0 * np.sin(a) * (1 - e1) / (1 - e1 * np.cos(a))
 
 
-def _save(path, data, affine, sidecar=None):
-    nib.save(nib.Nifti1Image(np.asarray(data, np.float32), affine), str(path))
-    if sidecar is not None:
-        path.with_name(path.name.replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
-    return path
-
-
 @pytest.fixture(scope="module")
 def vfa(tmp_path_factory):
     d = tmp_path_factory.mktemp("vfa")
@@ -66,11 +60,11 @@ def vfa(tmp_path_factory):
     clean = np.where(obj[..., None], _spgr(FA, t1[..., None], 1000.0, b1[..., None]), 0.0)
     sigma = clean[obj].max(axis=1).mean() / 200.0
     noisy = np.abs(clean + sigma * rng.standard_normal(clean.shape) + 1j * sigma * rng.standard_normal(clean.shape))
-    files = [_save(d / f"sub-01_flip-{i + 1}_VFA.nii.gz", noisy[..., i], AFFINE,
+    files = [write_nifti(d / f"sub-01_flip-{i + 1}_VFA.nii.gz", noisy[..., i], AFFINE,
                    {"FlipAngle": float(a), "RepetitionTime": TR}) for i, a in enumerate(FA)]
     bx, by, bz = _world(B1_AFFINE, B1_SHAPE)
-    b1map = _save(d / "sub-01_TB1map.nii.gz", _b1_field(bx, by, bz), B1_AFFINE)
-    b1pct = _save(d / "sub-01_pct_TB1map.nii.gz", 100 * _b1_field(bx, by, bz), B1_AFFINE)
+    b1map = write_nifti(d / "sub-01_TB1map.nii.gz", _b1_field(bx, by, bz), B1_AFFINE)
+    b1pct = write_nifti(d / "sub-01_pct_TB1map.nii.gz", 100 * _b1_field(bx, by, bz), B1_AFFINE)
     return {"dir": d, "files": files, "b1": b1map, "b1pct": b1pct, "t1": np.where(obj, t1, np.nan), "obj": obj,
             "b1_true": b1}
 
@@ -162,7 +156,7 @@ def test_percent_map_needs_b1_scale_percent(vfa, tmp_path, capsys):
     assert prov["options"]["b1_scale"] == "percent"
     # a sidecar saying Units "percent" (as BIDS derivatives may) is honoured without the flag
     side = tmp_path / "side_TB1map.nii.gz"
-    _save(side, nib.load(str(vfa["b1pct"])).get_fdata(), B1_AFFINE, {"Units": "percent"})
+    write_nifti(side, nib.load(str(vfa["b1pct"])).get_fdata(), B1_AFFINE, {"Units": "percent"})
     assert main(["t1-vfa", *files, "--b1", str(side), "-o", str(tmp_path / "side"), "-q"]) == 0
     c, _, prov = _maps(tmp_path / "side")
     np.testing.assert_allclose(c, b, rtol=1e-5, equal_nan=True)
@@ -186,20 +180,14 @@ def test_linear_method_close_to_nonlinear_on_noisy_data(vfa, tmp_path):
 
 
 def _bad(args, tmp_path, capsys):
-    out = tmp_path / "bad"
-    code = main(["t1-vfa", *map(str, args), "-o", str(out), "-q"])
-    err = capsys.readouterr().err
-    assert code == 2
-    assert err.count("\n") == 1 and err.startswith("qmap: error:") and "Traceback" not in err
-    assert not out.exists()  # no output folder, no contents
-    return err
+    return refused(["t1-vfa", *args], tmp_path / "bad", capsys)
 
 
 def test_b1_map_not_overlapping_the_data(vfa, tmp_path, capsys):
     far = B1_AFFINE.copy()
     far[:3, 3] += [500.0, 0.0, 0.0]
     bx, by, bz = _world(B1_AFFINE, B1_SHAPE)
-    path = _save(tmp_path / "far_TB1map.nii.gz", _b1_field(bx, by, bz), far)
+    path = write_nifti(tmp_path / "far_TB1map.nii.gz", _b1_field(bx, by, bz), far)
     err = _bad([*vfa["files"], "--b1", path], tmp_path, capsys)
     assert "does not overlap" in err
 
@@ -207,9 +195,9 @@ def test_b1_map_not_overlapping_the_data(vfa, tmp_path, capsys):
 def test_4d_or_nonpositive_b1_map(vfa, tmp_path, capsys):
     bx, by, bz = _world(B1_AFFINE, B1_SHAPE)
     f = _b1_field(bx, by, bz)
-    p4 = _save(tmp_path / "b4d.nii.gz", np.stack([f, f], -1), B1_AFFINE)
+    p4 = write_nifti(tmp_path / "b4d.nii.gz", np.stack([f, f], -1), B1_AFFINE)
     assert "3D" in _bad([*vfa["files"], "--b1", p4], tmp_path, capsys)
-    pneg = _save(tmp_path / "bneg.nii.gz", -f, B1_AFFINE)
+    pneg = write_nifti(tmp_path / "bneg.nii.gz", -f, B1_AFFINE)
     assert "not positive" in _bad([*vfa["files"], "--b1", pneg], tmp_path, capsys)
 
 
@@ -217,13 +205,13 @@ def test_fewer_than_two_flip_angles(vfa, tmp_path, capsys):
     one = vfa["files"][0]
     assert "two different flip angles" in _bad([one, "--fa", "15", "--tr", "15ms"], tmp_path, capsys)
     _bad([one], tmp_path, capsys)  # a single 3D volume
-    same = [_save(tmp_path / f"s{i}.nii.gz", nib.load(str(one)).get_fdata(), AFFINE,
+    same = [write_nifti(tmp_path / f"s{i}.nii.gz", nib.load(str(one)).get_fdata(), AFFINE,
                   {"FlipAngle": 15.0, "RepetitionTime": TR}) for i in range(2)]
     assert "FlipAngle" in _bad(same, tmp_path, capsys)
 
 
 def test_missing_tr_and_ms_hint(vfa, tmp_path, capsys):
-    nosc = [_save(tmp_path / f"n{i}.nii.gz", nib.load(str(f)).get_fdata(), AFFINE) for i, f in enumerate(vfa["files"])]
+    nosc = [write_nifti(tmp_path / f"n{i}.nii.gz", nib.load(str(f)).get_fdata(), AFFINE) for i, f in enumerate(vfa["files"])]
     assert "RepetitionTime" in _bad([*nosc, "--fa", "3,8,15,25"], tmp_path, capsys)
     assert "15ms" in _bad([*nosc, "--fa", "3,8,15,25", "--tr", "15"], tmp_path, capsys)
 
@@ -282,7 +270,7 @@ def test_b1_standard_error_beside_the_map_is_propagated(vfa, tmp_path, capsys):
     shutil_copy = __import__("shutil").copy
     shutil_copy(vfa["b1"], b1)
     img = nib.load(str(b1))
-    _save(d / "sub-01_desc-stderr_TB1map.nii.gz", np.full(img.shape, 0.02), img.affine)
+    write_nifti(d / "sub-01_desc-stderr_TB1map.nii.gz", np.full(img.shape, 0.02), img.affine)
     files = [str(f) for f in vfa["files"]]
     assert main(["t1-vfa", *files, "--b1", str(b1), "-o", str(tmp_path / "with"), "-q"]) == 0
     assert main(["t1-vfa", *files, "--b1", str(b1), "--b1-stderr", "none", "-o", str(tmp_path / "without"),
