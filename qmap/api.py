@@ -8,11 +8,12 @@ over the same machinery.
 
 from __future__ import annotations
 
+from typing import Unpack
+
 import numpy as np
 
-from .defaults import DEFAULT_CHUNK
 from .fitting.noise_floor import DEFAULT_MODE, NoiseFloor
-from .maps import MapSet, fit_volume
+from .maps import Execution, MapSet, execution_kwargs, fit_volume
 from .models.monoexp import MonoExponential
 
 __all__ = ["b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"]
@@ -28,10 +29,7 @@ def fit_decay(
     sigma="auto",
     coils: int | None = None,
     drop_first: bool = False,
-    n_jobs: int | None = None,
-    engine: str = "fast",
-    chunk_size: int | None = None,
-    scheduler: str | None = None,
+    **execution: Unpack[Execution],
 ) -> MapSet:
     """Fit a mono-exponential decay ``S = M0 exp(-TE/T)`` in every voxel.
 
@@ -58,6 +56,8 @@ def fit_decay(
         background's moments show).
     drop_first : bool
         Ignore the first echo.
+    **execution
+        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.
 
     Returns
     -------
@@ -70,9 +70,20 @@ def fit_decay(
     if drop_first:
         data, te = data[..., 1:], te[1:]
     model = MonoExponential(te, param=param)
-    noise, sigma, info = _noise_for(data, model, noise_floor, sigma, coils, mask, n_jobs)
-    maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs,
-                      method=engine, scheduler=scheduler, chunk_size=DEFAULT_CHUNK if chunk_size is None else chunk_size)
+    return _fit_with_noise_floor(model, data, mask=mask, noise_floor=noise_floor, sigma=sigma, coils=coils,
+                                 **execution)
+
+
+def _fit_with_noise_floor(model, data, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma="auto",
+                          coils: int | None = None, **execution: Unpack[Execution]) -> MapSet:
+    """Fit ``model`` to magnitudes ``data`` with a noise-floor model and its noise level (from the data with "auto").
+
+    The body of the decay fits (:func:`fit_decay`, :func:`qmap.workflows.t2.fit_t2`); the estimated noise level
+    is in ``maps.info["noise"]``.
+    """
+    kw = execution_kwargs(execution)
+    noise, sigma, info = _noise_for(data, model, noise_floor, sigma, coils, mask, kw["n_jobs"])
+    maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, **kw)
     if info is not None:
         maps.info["noise"] = info
     return maps

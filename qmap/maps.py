@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, TypedDict
 
 import numpy as np
 
@@ -12,7 +13,45 @@ from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .models.base import SeparableModel
 
-__all__ = ["MapSet", "fit_volume", "place_slab"]
+__all__ = ["Execution", "MapSet", "execution_kwargs", "fit_volume", "place_slab"]
+
+
+class Execution(TypedDict, total=False):
+    """How an array fit runs: the keyword arguments shared by the ``fit_*`` array functions.
+
+    Keys
+    ----
+    n_jobs : int or None
+        Local worker threads (default: all cores).
+    engine : {"fast", "lmfit"}
+        The vectorised solver (default) or per-voxel lmfit reference fits.
+    chunk_size : int or None
+        Voxels per work unit (default :data:`~qmap.engine.DEFAULT_CHUNK`); results do not depend on it.
+    scheduler : str or None
+        Address of an existing Dask distributed cluster that runs the chunks.
+    """
+
+    n_jobs: int | None
+    engine: str
+    chunk_size: int | None
+    scheduler: str | None
+
+
+def execution_kwargs(execution: Mapping[str, Any]) -> dict[str, Any]:
+    """The :func:`fit_volume` keyword arguments of :class:`Execution` options.
+
+    Raises
+    ------
+    TypeError
+        A name that is not an :class:`Execution` option (as for any unknown keyword argument).
+    """
+    unknown = sorted(set(execution) - Execution.__optional_keys__)
+    if unknown:
+        raise TypeError(f"unexpected keyword argument(s) {', '.join(map(repr, unknown))}; the execution options are "
+                        f"{', '.join(sorted(Execution.__optional_keys__))}")
+    chunk = execution.get("chunk_size")
+    return {"n_jobs": execution.get("n_jobs"), "method": execution.get("engine", "fast"),
+            "scheduler": execution.get("scheduler"), "chunk_size": DEFAULT_CHUNK if chunk is None else chunk}
 
 
 @dataclass

@@ -24,14 +24,14 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
+from typing import Unpack
 
 import numpy as np
 
-from ..defaults import DEFAULT_CHUNK
 from ..errors import InputError, UsageError, warn
 from ..io.nifti import check_same_grid, image_data, load_image
 from ..io.series import Series, load_series
-from ..maps import MapSet, fit_volume
+from ..maps import Execution, MapSet, execution_kwargs, fit_volume
 from ..models.ir import SIGNALS, InversionRecovery
 from ..pipeline import CommonOptions, RunReport, run_fit
 from ..record import recorded
@@ -230,10 +230,7 @@ def fit_t1_ir(
     phase=None,
     look_locker: bool = False,
     mask=None,
-    n_jobs: int | None = None,
-    engine: str = "fast",
-    chunk_size: int | None = None,
-    scheduler: str | None = None,
+    **execution: Unpack[Execution],
 ) -> MapSet:
     """Fit inversion-recovery T1 in every voxel of an array.
 
@@ -253,8 +250,8 @@ def fit_t1_ir(
         Report the Look-Locker corrected T1 ``T1* (B/A - 1)`` (Deichmann & Haase 1992).
     mask : (...) array_like of bool, optional
         Voxels to fit (default: all).
-    n_jobs, engine, chunk_size, scheduler
-        Execution, as for :func:`qmap.maps.fit_volume`.
+    **execution
+        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.
 
     Returns
     -------
@@ -302,5 +299,4 @@ def fit_t1_ir(
     order = np.argsort(ti, kind="stable")
     data, ti = data[..., order], ti[order]
     model = InversionRecovery(ti, signal=signal, look_locker=look_locker)
-    return fit_volume(model, data, mask=mask, n_jobs=n_jobs, method=engine, scheduler=scheduler,
-                      chunk_size=DEFAULT_CHUNK if chunk_size is None else chunk_size)
+    return fit_volume(model, data, mask=mask, **execution_kwargs(execution))

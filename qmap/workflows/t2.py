@@ -15,13 +15,14 @@ engine, outputs) with ``qmap t2star``:
 from __future__ import annotations
 
 import time
+from typing import Unpack
 
 import numpy as np
 
-from ..defaults import DEFAULT_CHUNK, DEFAULT_REFOCUS, DEFAULT_T1
+from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..errors import UsageError
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
-from ..maps import MapSet, fit_volume
+from ..maps import Execution, MapSet
 from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
 from ..models.monoexp import MonoExponential
@@ -76,10 +77,7 @@ def fit_t2(
     coils: int | None = None,
     drop_first: bool = False,
     mask=None,
-    n_jobs: int | None = None,
-    engine: str = "fast",
-    chunk_size: int | None = None,
-    scheduler: str | None = None,
+    **execution: Unpack[Execution],
 ) -> MapSet:
     """Fit T2 in every voxel of a multi-echo spin-echo magnitude series (array API).
 
@@ -109,8 +107,8 @@ def fit_t2(
         Do not fit the first echo (mono-exponential only).
     mask : (...) array_like of bool, optional
         Voxels to fit (default: all).
-    n_jobs, engine, chunk_size, scheduler
-        Execution (see :func:`qmap.maps.fit_volume`).
+    **execution
+        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.
 
     Returns
     -------
@@ -133,14 +131,11 @@ def fit_t2(
     model, info = t2_model(te, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
     if drop_first:
         data = data[..., 1:]
-    from ..api import _noise_for
+    from ..api import _fit_with_noise_floor
 
-    noise, sigma, sinfo = _noise_for(data, model, noise_floor, sigma, coils, mask, n_jobs)
-    maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, n_jobs=n_jobs, method=engine,
-                      scheduler=scheduler, chunk_size=DEFAULT_CHUNK if chunk_size is None else chunk_size)
+    maps = _fit_with_noise_floor(model, data, mask=mask, noise_floor=noise_floor, sigma=sigma, coils=coils,
+                                 **execution)
     maps.info["model_info"] = info
-    if sinfo is not None:
-        maps.info["noise"] = sinfo
     return maps
 
 

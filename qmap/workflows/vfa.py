@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
-from typing import Any
+from typing import Any, Unpack
 
 import numpy as np
 
@@ -31,7 +31,7 @@ from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
 from ..io.series import load_series
-from ..maps import MapSet, fit_volume
+from ..maps import Execution, MapSet, execution_kwargs, fit_volume
 from ..models.vfa import LINEAR_PASSES, SpoiledGRE, ernst_angle, optimal_angle_pair, t1_crlb
 from ..pipeline import CommonOptions, RunReport, prepare_run
 from ..record import recorded
@@ -98,13 +98,10 @@ def fit_t1_vfa(
     method: str = "nonlinear",
     mask=None,
     sigma=None,
-    n_jobs: int | None = None,
-    engine: str = "fast",
-    chunk_size: int | None = None,
-    scheduler: str | None = None,
     quiet: bool = True,
     stderr: str = "noise",
     b1_se=None,
+    **execution: Unpack[Execution],
 ) -> MapSet:
     """Fit T1, R1 and M0 to variable-flip-angle spoiled gradient-echo magnitudes.
 
@@ -128,13 +125,14 @@ def fit_t1_vfa(
         come from it (inverse Fisher information); otherwise, and without
         ``sigma``, from s^2 = RSS/(m-2) (sigma only where no residual degrees
         of freedom remain: two flip angles).
-    engine : {"fast", "lmfit"}
-        ``nonlinear`` only: the vectorised solver or the per-voxel lmfit reference.
     stderr : {"noise", "residual"}
         Standard-error convention (see :mod:`qmap.fitting.uncertainty`).
     b1_se : (...) array_like, optional
         Standard error of ``b1`` (fraction), propagated to first order into
         the covariance (``dp/dB1`` from the model at the solution).
+    **execution
+        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine`` (``nonlinear`` only: the vectorised
+        solver or the per-voxel lmfit reference), ``chunk_size``, ``scheduler``.
 
     Returns
     -------
@@ -161,14 +159,15 @@ def fit_t1_vfa(
     if data.shape[-1] != fa.size:
         raise ValueError(f"data has {data.shape[-1]} samples per voxel for {fa.size} flip angles")
     model = SpoiledGRE(fa, tr)
-    kw: dict[str, Any] = {} if chunk_size is None else {"chunk_size": chunk_size}
+    kw = execution_kwargs(execution)
+    if method == "linear":
+        kw["method"] = "linear"
     if b1_se is not None and b1 is None:
         raise ValueError("b1_se= needs b1=")
     ctx = None
     if b1 is not None:
         ctx = {"b1": np.broadcast_to(np.asarray(b1, float), data.shape[:-1])}
-    maps = fit_volume(model, data, mask=mask, ctx_maps=ctx, noise=NoiseFloor("none"), sigma=sigma, n_jobs=n_jobs,
-                      method="linear" if method == "linear" else engine, scheduler=scheduler, quiet=quiet,
+    maps = fit_volume(model, data, mask=mask, ctx_maps=ctx, noise=NoiseFloor("none"), sigma=sigma, quiet=quiet,
                       stderr=stderr, input_se=None if b1_se is None else {"b1": b1_se}, **kw)
     maps.info["method"] = method
     return maps

@@ -117,3 +117,24 @@ def test_constant_voxel_is_flagged_not_fitted_silently():
     ti = np.array([0.05, 0.15, 0.3, 0.6, 1.0, 1.6, 2.5, 4.0])
     fit = fit_chunk(InversionRecovery(ti), np.full((2, ti.size), 500.0))
     assert np.all(fit.status == 5)
+
+
+@pytest.mark.parametrize("name", ["fit_decay", "fit_t2", "fit_t1_ir"])
+def test_array_functions_share_the_execution_options(name):
+    """n_jobs / chunk_size change nothing in the maps; a misspelt execution option is a TypeError, as in Python."""
+    import qmap.api
+
+    fn = getattr(qmap.api, name)
+    y, t2, m0 = _noisy(30, 11)
+    x = TE
+    if name == "fit_t1_ir":  # magnitude IR, S = |M0 (1 - 1.9 exp(-TI/T1))| at TI = 50 x TE, plus the same noise
+        x = 50 * TE
+        y = np.abs(m0[:, None] * (1 - 1.9 * np.exp(-x / (20 * t2[:, None])))) + (y - m0[:, None] * np.exp(-TE / t2[:, None]))
+    data = np.abs(y).reshape(5, 6, 1, TE.size)
+    kw = {"noise_floor": "none"} if name != "fit_t1_ir" else {}
+    a = fn(data, x, **kw)
+    b = fn(data, x, n_jobs=2, chunk_size=7, **kw)
+    for p in a.names:
+        np.testing.assert_array_equal(a[p], b[p])
+    with pytest.raises(TypeError, match="chunksize"):
+        fn(data, x, chunksize=7, **kw)
