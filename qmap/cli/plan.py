@@ -55,7 +55,8 @@ def _times(text: str, key: str, option: str):
 
 
 def run(args: argparse.Namespace) -> int:
-    from ..workflows.plan import run_plan
+    from ..planning import plan
+    from ..workflows.plan import write_plan
 
     m = args.method
     value_range = _times(args.range, _RANGE_KEY[m], "--range")
@@ -76,8 +77,9 @@ def run(args: argparse.Namespace) -> int:
                     else _times(args.evaluate, _SAMPLE_KEY[m], "--evaluate"))
     if args.simulate < 0:
         raise UsageError("--simulate N: give a positive number of voxels (or leave it out)")
-    result = run_plan(m, value_range, out_dir=args.out_dir, samples=args.samples, snr=args.snr, tr=tr, limits=limits,
-                      evaluate=evaluate, simulate=args.simulate, overwrite=args.overwrite, command_line=args.argv)
+    result = plan(m, value_range, samples=args.samples, snr=args.snr, tr=tr, limits=limits, evaluate=evaluate,
+                  simulate=args.simulate)
+    write_plan(result, args.out_dir, overwrite=args.overwrite, command_line=args.argv)
     if not args.quiet:
         print(result.table())
         print(f"wrote {args.out_dir}/plan.json and {args.out_dir}/plan.png")

@@ -8,9 +8,9 @@ import numpy as np
 
 from .. import __version__
 from ..io.writer import AtomicWriter
-from ..planning import PlanResult, plan
+from ..planning import PlanResult
 
-__all__ = ["plan_figure", "run_plan"]
+__all__ = ["plan_figure", "write_plan"]
 
 #: figure size in pixels and resolution
 FIGURE_PX = (900, 560)
@@ -75,29 +75,14 @@ def plan_figure(result: PlanResult, path: str | Path) -> None:
     fig.savefig(str(path), format="png", dpi=DPI, facecolor="white")
 
 
-def run_plan(
-    method: str,
-    value_range,
-    *,
-    out_dir,
-    samples: int | None = None,
-    snr: float = 50.0,
-    tr: float | None = None,
-    limits=None,
-    evaluate=None,
-    simulate: int = 0,
-    overwrite: bool = False,
-    command_line: list | None = None,
-) -> PlanResult:
-    """Design (or evaluate) a protocol with :func:`qmap.plan.plan` and write ``plan.json`` and ``plan.png``.
+def write_plan(result: PlanResult, out_dir, *, overwrite: bool = False, command_line: list | None = None) -> None:
+    """Write a protocol design or evaluation (:func:`qmap.planning.plan`) as ``plan.json`` and ``plan.png``.
 
     The JSON holds ``method``, ``protocol`` (BIDS key -> values in seconds or
     degrees), ``objective`` (the worst predicted CV over the range),
     ``predicted`` (rows ``{"value_s", "cv", ...}``), the evenly spread
     comparison, the settings, the command line and qmap's version.
     """
-    result = plan(method, value_range, samples=samples, snr=snr, tr=tr, limits=limits, evaluate=evaluate,
-                  simulate=simulate)
     content = result.as_dict()
     content["qmap_version"] = __version__
     if command_line is not None:
@@ -106,4 +91,3 @@ def run_plan(
         w.stage_json("plan.json", content)
         w.stage_with("plan.png", lambda p: plan_figure(result, p))
         w.commit()
-    return result

@@ -28,7 +28,7 @@ from ..io.writer import AtomicWriter, sha256_file
 from ..qa.inputs import MapInput, label_names, labels_on_grid, load_any_map, load_labels, status_beside
 from ..qa.results import fmt
 from ..qa.rois import roi_masks, roi_values
-from ..qa.stats import summarise
+from ..qa.stats import ValueSummary, summarise
 
 __all__ = ["CSV_COLUMNS", "OUTPUTS", "RoiReport", "RoiStats", "measure_map", "run_roi"]
 
@@ -41,37 +41,31 @@ CSV_COLUMNS = ["label", "name", "parameter", "unit", "n_voxels", "mean", "median
 
 
 @dataclass
-class RoiStats:
+class RoiStats(ValueSummary):
     """Statistics of one label x map (or of one slice of it), in the map's unit.
 
-    ``n_voxels`` counts the voxels used; ``n_excluded`` the ROI voxels left
-    out because qmap's status map says they were not fitted (status != 0;
-    per code in ``excluded_by_status``); ``n_nonfinite`` the remaining ROI
-    voxels whose value is NaN / inf. ``slice`` is the index along the third
-    array axis for per-slice rows, None for the whole ROI.
+    The statistics of :class:`~qmap.qa.stats.ValueSummary` (``n_voxels`` counts the voxels used,
+    ``n_nonfinite`` the ROI voxels whose value is NaN / inf), and which label, map and slice they describe:
+    ``n_excluded`` counts the ROI voxels left out because qmap's status map says they were not fitted
+    (status != 0; per code in ``excluded_by_status``); ``slice`` is the index along the third array axis for
+    per-slice rows, None for the whole ROI.
     """
 
     label: int
     name: str
     parameter: str
     unit: str
-    n_voxels: int
-    mean: float
-    median: float
-    sd: float
-    robust_sd: float
-    p5: float
-    p95: float
     n_excluded: int
-    n_nonfinite: int
     slice: int | None
     map: str
     excluded_by_status: dict = field(default_factory=dict)
 
     def as_dict(self) -> dict:
+        """The row as JSON-ready values, in the order of :data:`CSV_COLUMNS` (NaN as None)."""
         d = asdict(self)
         d["excluded_by_status"] = {str(k): v for k, v in self.excluded_by_status.items()}
-        return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in d.items()}
+        return {k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                for k, v in ((k, d[k]) for k in [*CSV_COLUMNS, "excluded_by_status"])}
 
 
 @dataclass
@@ -141,9 +135,9 @@ def measure_map(m: MapInput, labels: np.ndarray, labels_affine: np.ndarray, want
         for z, mask in parts:
             values, excluded = roi_values(m.data, mask, status)
             s = summarise(values)
-            rows.append(RoiStats(int(k), names.get(int(k), ""), m.param, m.unit, s.n_voxels, s.mean, s.median, s.sd,
-                                 s.robust_sd, s.p5, s.p95, int(sum(excluded.values())), s.n_nonfinite, z, m.path.name,
-                                 excluded))
+            rows.append(RoiStats(**vars(s), label=int(k), name=names.get(int(k), ""), parameter=m.param,
+                                 unit=m.unit, n_excluded=int(sum(excluded.values())), slice=z, map=m.path.name,
+                                 excluded_by_status=excluded))
         if not roi.any():
             notes.append(f"label {k}: no voxel on the grid of {m.path.name}"
                          + (" after erosion" if erode and (lab_m == k).any() else "")
