@@ -73,19 +73,29 @@ def head_like(shape, rng):
     return obj, smooth.astype(np.float32)
 
 
-def peak_rss_of(cmd: list[str]) -> tuple[float, float]:
-    """Wall time and peak RSS (MB) of one child, measured by a wrapper process so runs don't mix."""
+def _child_usage(cmd: list[str]) -> tuple[float, float, float]:
+    """Wall time, peak RSS (MB) and CPU time (user + system, all threads) of one child.
+
+    Measured by a wrapper process, so that runs don't mix.
+    """
     wrapper = (
         "import resource,subprocess,sys,time;t=time.perf_counter();"
         "p=subprocess.run(sys.argv[1:],capture_output=True,text=True);dt=time.perf_counter()-t;"
-        "r=resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss/1024;"
-        "print(f'{dt} {r} {p.returncode}');sys.stderr.write(p.stderr if p.returncode else '')"
+        "u=resource.getrusage(resource.RUSAGE_CHILDREN);"
+        "print(f'{dt} {u.ru_maxrss/1024} {u.ru_utime + u.ru_stime} {p.returncode}');"
+        "sys.stderr.write(p.stderr if p.returncode else '')"
     )
     out = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True, check=False)
-    dt, rss, rc = out.stdout.split()
+    dt, rss, cpu, rc = out.stdout.split()
     if int(rc) != 0:
         sys.exit(f"benchmark: {' '.join(cmd)} failed ({rc}):\n{out.stderr}")
-    return float(dt), float(rss)
+    return float(dt), float(rss), float(cpu)
+
+
+def peak_rss_of(cmd: list[str]) -> tuple[float, float]:
+    """Wall time and peak RSS (MB) of one child."""
+    dt, rss, _ = _child_usage(cmd)
+    return dt, rss
 
 
 def qmap_cmd() -> list[str]:
@@ -199,6 +209,18 @@ def memory_line(rss: float, base_rss: float, in_mb: float) -> str:
         f"  [absolute {rss:.0f} MB, input {in_mb:.0f} MB]"
 
 
+def against_loop(title: str, label: str, args: list[str], *, loop: str, rate: float, n_fit: int, in_mb: float,
+                 target: str = ">= 60") -> None:
+    """Run ``qmap ARGS`` and print it against a per-voxel loop of ``rate`` voxels/s over the ``n_fit`` voxels."""
+    loop_s = n_fit / rate
+    t_q, rss = peak_rss_of(qmap_cmd() + args)
+    print(title)
+    print(f"  {loop}: {rate:.1f} voxels/s -> {loop_s:.1f} s extrapolated")
+    print(f"  qmap {label}: {t_q:.2f} s ({n_fit / t_q:.0f} object voxels/s), peak RSS {rss:.0f} MB")
+    print(goal(f"loop / qmap {label}", loop_s / t_q, target))
+    print(memory_line(rss, baseline_rss(), in_mb))
+
+
 def case_t2star(nvox, work: Path, rng):
     shape = shape_for(nvox)
     te = np.arange(1, 13) * 0.0035
@@ -270,13 +292,9 @@ def case_t1_ir(nvox, work: Path, rng):
         return np.abs(a + b * np.exp(-t / t1_))
 
     rate = curve_fit_rate(mag, ti, sub, lambda v: (v[-1], -2 * v[-1], 1.0))
-    loop_s = n_fit / rate
-    t_q, rss = peak_rss_of(qmap_cmd() + ["t1-ir", str(series), "-o", str(work / "ir"), "-q"])
-    print(f"t1-ir: {np.prod(shape)} voxels ({n_fit} in the object) x {ti.size} TIs, input {in_mb:.0f} MB")
-    print(f"  curve_fit loop (magnitude model): {rate:.0f} voxels/s -> {loop_s:.1f} s extrapolated")
-    print(f"  qmap t1-ir: {t_q:.2f} s, peak RSS {rss:.0f} MB")
-    print(goal("loop / qmap t1-ir", loop_s / t_q, ">= 60"))
-    print(memory_line(rss, baseline_rss(), in_mb))
+    against_loop(f"t1-ir: {np.prod(shape)} voxels ({n_fit} in the object) x {ti.size} TIs, input {in_mb:.0f} MB",
+                 "t1-ir", ["t1-ir", str(series), "-o", str(work / "ir"), "-q"],
+                 loop="curve_fit loop (magnitude model)", rate=rate, n_fit=n_fit, in_mb=in_mb)
 
 
 def case_t1_vfa(nvox, work: Path, rng):
@@ -305,13 +323,9 @@ def case_t1_vfa(nvox, work: Path, rng):
         return m * np.sin(r) * (1 - e) / (1 - e * np.cos(r))
 
     rate = curve_fit_rate(spgr, fa, sub, lambda v: (v.max() * 10, 1.0))
-    loop_s = n_fit / rate
-    t_q, rss = peak_rss_of(qmap_cmd() + ["t1-vfa", *files, "-o", str(work / "vfa"), "-q"])
-    print(f"t1-vfa: {np.prod(shape)} voxels ({n_fit} in the object) x {fa.size} flip angles, input {in_mb:.0f} MB")
-    print(f"  curve_fit loop (SPGR equation): {rate:.0f} voxels/s -> {loop_s:.1f} s extrapolated")
-    print(f"  qmap t1-vfa: {t_q:.2f} s, peak RSS {rss:.0f} MB")
-    print(goal("loop / qmap t1-vfa", loop_s / t_q, ">= 60"))
-    print(memory_line(rss, baseline_rss(), in_mb))
+    against_loop(f"t1-vfa: {np.prod(shape)} voxels ({n_fit} in the object) x {fa.size} flip angles, input "
+                 f"{in_mb:.0f} MB", "t1-vfa", ["t1-vfa", *files, "-o", str(work / "vfa"), "-q"],
+                 loop="curve_fit loop (SPGR equation)", rate=rate, n_fit=n_fit, in_mb=in_mb)
 
 
 def case_b1(nvox, work: Path, rng):
@@ -334,14 +348,9 @@ def case_b1(nvox, work: Path, rng):
     for s1, s2 in zip(vols[0], vols[1]):
         np.degrees(np.arccos(np.clip(s2 / (2.0 * s1), -1.0, 1.0))) / fa
     rate = vols[0].size / (time.perf_counter() - t)
-    loop_s = n_fit / rate
-    t_q, rss = peak_rss_of(qmap_cmd() + ["b1", *files, "--method", "dam", "--fa", str(fa), "--tr", "5s",
-                                         "-o", str(work / "b1"), "-q"])
-    print(f"b1 (DAM): {np.prod(shape)} voxels ({n_fit} in the object) x 2 images, input {in_mb:.0f} MB")
-    print(f"  per-voxel loop (numpy closed form per voxel): {rate:.0f} voxels/s -> {loop_s:.1f} s extrapolated")
-    print(f"  qmap b1: {t_q:.2f} s, peak RSS {rss:.0f} MB")
-    print(goal("loop / qmap b1", loop_s / t_q, ">= 60"))
-    print(memory_line(rss, baseline_rss(), in_mb))
+    against_loop(f"b1 (DAM): {np.prod(shape)} voxels ({n_fit} in the object) x 2 images, input {in_mb:.0f} MB",
+                 "b1", ["b1", *files, "--method", "dam", "--fa", str(fa), "--tr", "5s", "-o", str(work / "b1"), "-q"],
+                 loop="per-voxel loop (numpy closed form per voxel)", rate=rate, n_fit=n_fit, in_mb=in_mb)
 
 
 def case_t2_epg(nvox, work: Path, rng):
@@ -372,15 +381,11 @@ def case_t2_epg(nvox, work: Path, rng):
                                                          n_echoes=n_e)[0] - v,
                       x0=[v[0] * 1.1, 0.08, 0.9], bounds=([0, 0.001, 0.5], [np.inf, 2.0, 1.2]))
     rate = sub.shape[0] / (time.perf_counter() - t)
-    loop_s = n_fit / rate
     in_mb = data.nbytes / 2**20
     del data
-    t_q, rss = peak_rss_of(qmap_cmd() + ["t2", str(series), "-o", str(work / "epg"), "--epg", "-q"])
-    print(f"t2 --epg: {np.prod(shape)} voxels ({n_fit} in the object) x {n_e} echoes, input {in_mb:.0f} MB")
-    print(f"  per-voxel least_squares EPG loop: {rate:.1f} voxels/s -> {loop_s:.0f} s extrapolated")
-    print(f"  qmap t2 --epg: {t_q:.2f} s ({n_fit / t_q:.0f} object voxels/s), peak RSS {rss:.0f} MB")
-    print(goal("loop / qmap t2 --epg", loop_s / t_q, ">= 2000"))
-    print(memory_line(rss, baseline_rss(), in_mb))
+    against_loop(f"t2 --epg: {np.prod(shape)} voxels ({n_fit} in the object) x {n_e} echoes, input {in_mb:.0f} MB",
+                 "t2 --epg", ["t2", str(series), "-o", str(work / "epg"), "--epg", "-q"],
+                 loop="per-voxel least_squares EPG loop", rate=rate, n_fit=n_fit, in_mb=in_mb, target=">= 2000")
 
 
 def case_t2_spectrum(nvox, work: Path, rng):
@@ -422,17 +427,8 @@ def case_t2_spectrum(nvox, work: Path, rng):
 
 def _wall_and_cpu(cmd: list[str]) -> tuple[float, float]:
     """Wall time and CPU time (user + system, all threads) of one child process."""
-    wrapper = (
-        "import resource,subprocess,sys,time;t=time.perf_counter();"
-        "p=subprocess.run(sys.argv[1:],capture_output=True,text=True);dt=time.perf_counter()-t;"
-        "u=resource.getrusage(resource.RUSAGE_CHILDREN);"
-        "print(f'{dt} {u.ru_utime + u.ru_stime} {p.returncode}');sys.stderr.write(p.stderr if p.returncode else '')"
-    )
-    out = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True, check=False)
-    dt, cpu, rc = out.stdout.split()
-    if int(rc) != 0:
-        sys.exit(f"benchmark: {' '.join(cmd)} failed ({rc}):\n{out.stderr}")
-    return float(dt), float(cpu)
+    dt, _, cpu = _child_usage(cmd)
+    return dt, cpu
 
 
 def case_memory(nvox, work: Path, rng, series_gz: Path, tiles: int = 4):
@@ -456,7 +452,7 @@ def case_memory(nvox, work: Path, rng, series_gz: Path, tiles: int = 4):
                        np.asanyarray(nib.load(str(work / "mem_slab" / p.name)).dataobj), equal_nan=True)
         for p in (work / "mem_full").glob("*.nii.gz")
     )
-    _base_t, base_rss = peak_rss_of([sys.executable, "-c", BASELINE_IMPORTS])
+    base_rss = baseline_rss()
     n_maps = len(list((work / "mem_full").glob("*.nii.gz")))
     maps_mb = (n_maps - 1) * np.prod(shape) * 4 / 2**20  # float32 maps held until written (+ uint8 status)
     print(f"memory: {np.prod(shape)} voxels x 12 echoes, uncompressed input {size_mb:.0f} MB, "
@@ -517,16 +513,10 @@ def main(argv=None) -> int:
             series, _, _ = case_t2star(args.voxels, work, rng)
         if "memory" in cases:
             case_memory(args.voxels, work, rng, series)
-        if "t1-ir" in cases:
-            case_t1_ir(args.voxels, work, rng)
-        if "t1-vfa" in cases:
-            case_t1_vfa(args.voxels, work, rng)
-        if "b1" in cases:
-            case_b1(args.voxels, work, rng)
-        if "t2-epg" in cases:
-            case_t2_epg(args.voxels, work, rng)
-        if "mp2rage" in cases:
-            case_mp2rage(args.voxels, work, rng)
+        for name, case in (("t1-ir", case_t1_ir), ("t1-vfa", case_t1_vfa), ("b1", case_b1), ("t2-epg", case_t2_epg),
+                           ("mp2rage", case_mp2rage)):
+            if name in cases:
+                case(args.voxels, work, rng)
         if "t2-spectrum" in cases:
             case_t2_spectrum(args.spectrum_voxels, work, rng)
         print(f"load average at the end {', '.join(f'{x:.1f}' for x in os.getloadavg())}")
