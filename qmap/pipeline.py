@@ -487,18 +487,25 @@ class PreparedRun:
         """The z ranges read one at a time within ``--max-memory`` (one range without it)."""
         return self.series.slabs(self.common.max_memory)
 
-    def map_slabs(self, fn) -> MapSet:
-        """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn and join the results into one MapSet."""
+    def for_slabs(self, fn) -> list:
+        """Call ``fn(slab)`` for each :class:`Slab` in turn (read one at a time); returns the results in z order."""
         self.series._peak = None  # only the mask and the noise estimate needed it
         slabs = self.slabs
         if len(slabs) > 1:
             self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
-        maps = None
+        results = []
         for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
             sigma = self.sigma
             if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
                 sigma = sigma[:, :, z0:z1]
-            part = fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs)))
+            results.append(fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs))))
+        return results
+
+    def map_slabs(self, fn) -> MapSet:
+        """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn and join the results into one MapSet."""
+        slabs = self.slabs
+        maps = None
+        for (z0, z1), part in zip(slabs, self.for_slabs(fn), strict=True):
             maps = part if len(slabs) == 1 else place_slab(maps, part, self.series.shape, z0, z1)
         if maps is None:
             raise InputError(f"{self.series.paths[0]}: the series has no slice to fit")

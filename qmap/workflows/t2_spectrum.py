@@ -32,16 +32,7 @@ from ..models.t2_spectrum import (
     fraction_se,
     spectrum_basis,
 )
-from ..pipeline import (
-    CommonOptions,
-    RunReport,
-    check_outputs_free,
-    check_signal,
-    default_prefix,
-    resolve_mask,
-    resolve_sigma,
-    write_run,
-)
+from ..pipeline import CommonOptions, RunReport, Slab, prepare_run
 from ..record import recorded
 from .decay import load_echoes
 
@@ -56,6 +47,8 @@ SPECTRUM_CHUNK = 4096
 #: noisy replicates per subsample voxel
 SE_REPLICATES = 10
 
+#: summary note when the noise level cannot be estimated from the background
+_NO_BACKGROUND = "noise level from the fit residuals (no usable image background)"
 _KEPT = (st.FITTED, st.AT_BOUND, st.LOW_SNR, st.NOT_CONVERGED)
 
 
@@ -350,61 +343,48 @@ def run_t2_spectrum(
     refocus_deg = _refocus_angle(series, refocus_deg)
     model = _model(te_all, refocus_deg=refocus_deg, t1=t1, window=window, chi2_factor=chi2_factor, n_t2=n_t2,
                    t2_range=t2_range, min_snr=min_snr)
-    prefix = common.prefix or default_prefix(series.paths[0])
-    check_outputs_free(common, prefix)
-    budget = common.max_memory
-    check_signal(series, magnitude=True, max_bytes=budget)
-    mask, mask_desc = resolve_mask(common.mask, series, budget)
-    check_series_shape(series, model, mask, enabled=common.series_check, max_bytes=budget)
-    file_inputs = []
-    if common.mask is not None and str(common.mask) not in ("auto", "none"):
-        file_inputs.append(common.mask)
-    try:
-        sig, sinfo = resolve_sigma(sigma, series, max_bytes=budget)
-    except InputError:
-        if sigma not in (None, "auto"):
-            raise
-        sig, sinfo = None, {"source": "per voxel from the unregularised NNLS residuals (no usable background)",
-                            "value": None}
-    noise_info = {"mode": "gaussian (magnitude above the noise floor)", "sigma": sinfo["value"],
-                  "sigma_source": sinfo["source"]}
-    if "path" in sinfo:
-        file_inputs.append(sinfo["path"])
-    if sinfo["value"] is not None:
-        notes.append(f"noise sigma {sinfo['value']:.4g} ({sinfo['source']})")
-    series._peak = None
+    # the noise level is for the standard errors and the SNR only; without a usable background it comes from
+    # the pooled fit residuals (below), quietly
+    run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=True, t0=t0, notes=notes,
+                      fallback=("", _NO_BACKGROUND),
+                      warn_fallback=False)
+    check_series_shape(series, model, run.mask, enabled=common.series_check, max_bytes=common.max_memory)
+    sig = run.sigma
+    info = run.noise_info or {}
+    noise_info = {"mode": "gaussian (magnitude above the noise floor)", "sigma": info.get("sigma"),
+                  "sigma_source": info.get("source") if sig is not None else
+                  "per voxel from the unregularised NNLS residuals (no usable background)"}
+    run.noise_info = noise_info
     shape = series.shape
     out = _Collect(int(np.prod(shape)), model.basis.t2.size)
-    n_fitted = 0
-    slabs = series.slabs(budget)
-    n_mask = int(np.count_nonzero(mask))
+    n_mask = int(np.count_nonzero(run.mask))
     workers = resolve_jobs(common.n_jobs)
     # chunks: at most SPECTRUM_CHUNK voxels, and at least one per worker (results do not depend on it)
     chunk = max(256, min(common.chunk_size, SPECTRUM_CHUNK, -(-n_mask // workers)))
-    for k, (z0, z1) in enumerate(slabs):
-        block = series.read(z0, z1)
-        label = "fitting" if len(slabs) == 1 else f"fitting slab {k + 1}/{len(slabs)}"
-        slab_sig = sig[:, :, z0:z1] if isinstance(sig, np.ndarray) and sig.ndim == 3 else sig
-        if len(slabs) == 1:
-            n_fitted += _fit_flat(model, block, mask, slab_sig, n_jobs=common.n_jobs, chunk_size=chunk,
-                                  scheduler=common.scheduler, quiet=common.quiet, label=label, out=out)
-            continue
+
+    def fit_slab(slab: Slab) -> int:
+        if slab.count == 1:
+            return _fit_flat(model, slab.data, slab.mask, slab.sigma, n_jobs=common.n_jobs, chunk_size=chunk,
+                             scheduler=common.scheduler, quiet=common.quiet, label=slab.label, out=out)
         # the flat C-order indices of a z-slab are not contiguous in the volume: fit it as its own volume
-        sub = _Collect(int(np.prod(block.shape[:-1])), model.basis.t2.size)
-        n_fitted += _fit_flat(model, block, mask[:, :, z0:z1], slab_sig, n_jobs=common.n_jobs,
-                              chunk_size=chunk, scheduler=common.scheduler, quiet=common.quiet,
-                              label=label, out=sub)
-        dst = np.ravel_multi_index(np.nonzero(np.ones(block.shape[:-1], bool)), shape) + z0
+        sub = _Collect(int(np.prod(slab.data.shape[:-1])), model.basis.t2.size)
+        n = _fit_flat(model, slab.data, slab.mask, slab.sigma, n_jobs=common.n_jobs, chunk_size=chunk,
+                      scheduler=common.scheduler, quiet=common.quiet, label=slab.label, out=sub)
+        dst = np.ravel_multi_index(np.nonzero(np.ones(slab.data.shape[:-1], bool)), shape) + slab.z0
         out.status[dst] = sub.status
         for name in out.names:
             out.arr[name][dst] = sub.arr[name]
         out.spectrum[dst] = sub.spectrum
+        return n
+
+    n_fitted = sum(run.for_slabs(fit_slab))
     if sig is None:
+        run.notes.remove(_NO_BACKGROUND)  # said below, with the value
         pooled = _pool_sigma(out, model.min_snr)
         if pooled is not None:
             noise_info.update(sigma=pooled, sigma_source="median of the per-voxel residual sd sqrt(RSS/(echoes - "
                                                          "peaks)) of the unregularised spectra (no usable background)")
-            notes.append(f"noise sigma {pooled:.4g} from the fit residuals (no usable image background)")
+            run.notes.append(f"noise sigma {pooled:.4g} from the fit residuals (no usable image background)")
     cal = _calibrate(model, out, n_sub=se_subsample, replicates=SE_REPLICATES)
     se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
     maps = _mapset(model, out, shape, se, n_fitted)
@@ -429,15 +409,14 @@ def run_t2_spectrum(
         "references": ["Whittall & MacKay, J Magn Reson 1989;84:134",
                        "Prasloski et al., Magn Reson Med 2012;67:1803"],
     }
-    notes.append(f"T2 grid: {b.t2.size} values {1e3 * b.t2[0]:g} ms - {b.t2[-1]:g} s; echo spacing "
+    run.notes.append(f"T2 grid: {b.t2.size} values {1e3 * b.t2[0]:g} ms - {b.t2[-1]:g} s; echo spacing "
                  f"{1e3 * b.esp:.4g} ms; refocusing angle searched {b.angles[0]:g}-180 deg")
     if np.isfinite(cal.get("k0", np.nan)):
-        notes.append(f"standard error of MWF calibrated on {cal['n_voxels']} voxels x {cal['replicates']} replicates "
+        run.notes.append(f"standard error of MWF calibrated on {cal['n_voxels']} voxels x {cal['replicates']} replicates "
                      f"(median SD {cal['median_sd']:.3g})")
-    extra = _extra_outputs(model, out, shape, prefix, common.units)
-    return write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
-                     model_info=dict(model_info, parameters=list(model.param_names)), extra_inputs=file_inputs,
-                     notes=notes, t0=t0, mask_desc=mask_desc, extra_outputs=extra)
+    extra = _extra_outputs(model, out, shape, run.prefix, common.units)
+    run.extra_outputs.extend(extra)
+    return run.write(maps, options=options, model_info=dict(model_info, parameters=list(model.param_names)))
 
 
 # documented quality maps of this command (for the README and --help)
