@@ -563,6 +563,8 @@ def prepare_run(
     model=None,
     ctx_maps: dict | None = None,
     coils_auto: bool = False,
+    auto_mask: tuple[np.ndarray, str] | None = None,
+    auto_mask_desc: str | None = None,
 ) -> PreparedRun:
     """Check everything a fit needs before any work: outputs free, signal present, mask, noise level.
 
@@ -599,6 +601,11 @@ def prepare_run(
         Per-voxel model inputs (X, Y, Z) for that fit (e.g. B1).
     coils_auto : bool
         The number of coils was not given: the background's moments may set it (``run.noise``).
+    auto_mask : ((X, Y, Z) bool ndarray, str), optional
+        The command's own mask for ``--mask auto`` and its description (default: the object of
+        ``series``, :func:`qmap.noise_level.object_mask`).
+    auto_mask_desc : str, optional
+        Another description of the default automatic mask (e.g. which images it is the object of).
 
     Returns
     -------
@@ -610,7 +617,12 @@ def prepare_run(
     budget = common.max_memory
     check_signal(series, magnitude=magnitude, max_bytes=budget)
     notes = list(notes or [])
-    mask, mask_desc = resolve_mask(common.mask, series, budget)
+    if str(common.mask or "auto") == "auto" and auto_mask is not None:
+        mask, mask_desc = np.asarray(auto_mask[0], bool), auto_mask[1]
+    else:
+        mask, mask_desc = resolve_mask(common.mask, series, budget)
+        if str(common.mask or "auto") == "auto" and auto_mask_desc:
+            mask_desc = auto_mask_desc
     # files that shape the result are inputs too (provenance lists them with their SHA-256)
     file_inputs = list(extra_inputs or [])
     if common.mask is not None and str(common.mask) not in ("auto", "none"):

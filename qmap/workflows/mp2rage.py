@@ -18,6 +18,8 @@ B1 map, 9 UNI outside the range the lookup can invert at that voxel's B1
 from __future__ import annotations
 
 import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -34,18 +36,11 @@ from ..models.mp2rage import (
     mp2rage_signals,
     uni_stderr,
 )
-from ..pipeline import (
-    CommonOptions,
-    RunReport,
-    check_outputs_free,
-    default_prefix,
-    resolve_mask,
-    resolve_sigma,
-    write_run,
-)
+from ..pipeline import CommonOptions, RunReport, Slab, prepare_run
 from ..record import recorded
 
-__all__ = ["B1_TABLE_RANGE", "UNI_ENCODINGS", "decode_uni", "fit_t1_mp2rage", "run_t1_mp2rage"]
+__all__ = ["B1_TABLE_RANGE", "UNI_ENCODINGS", "decode_uni", "fit_t1_mp2rage", "lookup_for", "run_t1_mp2rage",
+           "uni_encoding"]
 
 #: relative B1 values the lookup table may cover; voxels outside get status 9
 B1_TABLE_RANGE = (0.2, 3.0)
@@ -55,29 +50,50 @@ UNI_ENCODINGS = {
 }
 #: relative step of the central difference for dUNI/dT1
 _H = 1e-4
+#: what the standard errors become when the inversion images' noise level cannot be estimated (warning, note)
+_NO_NOISE = ("M0 is written, the standard errors are not",
+             "no standard errors: the noise level of the inversion images could not be estimated (give --sigma VALUE)")
 NO_B1_NOTE = ("no B1 correction: nominal flip angles assumed (UNI depends on the transmit field, most for long "
               "T1; pass --b1 B1MAP to correct)")
 EQUATION = ("UNI = S1 S2/(S1^2 + S2^2), S1, S2 the k-space-centre signals of the periodic steady state of "
             "inversion (efficiency e) + two gradient-echo blocks with angles B1 x FlipAngle (Marques et al. 2010)")
 
 
-def decode_uni(values: np.ndarray, where: str) -> tuple[np.ndarray, str]:
-    """UNI in [-0.5, 0.5] from a float or 12-bit integer image, recognised by the range of its finite values."""
-    v = np.asarray(values)
-    finite = v[np.isfinite(v)] if np.issubdtype(v.dtype, np.floating) else v.reshape(-1)
-    if finite.size == 0:
-        raise InputError(f"{where}: every UNI value is NaN or infinite; nothing to invert")
-    lo, hi = float(finite.min()), float(finite.max())
+def uni_encoding(lo: float, hi: float, where: str) -> str:
+    """``"float"`` or ``"12bit"``: how a UNI image stores its values, from the range ``lo..hi`` of its finite values."""
     if lo == hi:
         raise InputError(f"{where}: the UNI image holds no signal (every value is {lo:g}); check the export")
     tol = 1e-6
     if lo >= -0.5 - tol and hi <= 0.5 + tol:
-        return np.clip(v.astype(np.float32), -0.5, 0.5), "float"
+        return "float"
     if lo >= 0 and hi <= 4095 + tol and hi > 1.0:
-        return (v.astype(np.float32) / np.float32(4095.0) - np.float32(0.5)), "12bit"
+        return "12bit"
     hint = " (rescaled to [0, 1]? subtract 0.5)" if lo >= 0 and hi <= 1 else ""
     raise InputError(f"{where}: UNI values span {lo:g}..{hi:g}, neither a float UNI in [-0.5, 0.5] nor the 12-bit "
                      f"integer export 0..4095{hint}; pass the combined MP2RAGE image (UNI/UNIT1) as exported")
+
+
+def _decode(v: np.ndarray, encoding: str) -> np.ndarray:
+    """UNI in [-0.5, 0.5] (float32) from stored values of a known encoding (element by element)."""
+    if encoding == "float":
+        return np.clip(v.astype(np.float32), -0.5, 0.5)
+    return v.astype(np.float32) / np.float32(4095.0) - np.float32(0.5)
+
+
+def _finite_range(v: np.ndarray) -> tuple[float, float] | None:
+    """(min, max) of the finite values of ``v``; None when there is none."""
+    finite = v[np.isfinite(v)] if np.issubdtype(v.dtype, np.floating) else v.reshape(-1)
+    return None if finite.size == 0 else (float(finite.min()), float(finite.max()))
+
+
+def decode_uni(values: np.ndarray, where: str) -> tuple[np.ndarray, str]:
+    """UNI in [-0.5, 0.5] from a float or 12-bit integer image, recognised by the range of its finite values."""
+    v = np.asarray(values)
+    span = _finite_range(v)
+    if span is None:
+        raise InputError(f"{where}: every UNI value is NaN or infinite; nothing to invert")
+    encoding = uni_encoding(*span, where)
+    return _decode(v, encoding), encoding
 
 
 def _merged_sidecar(uni, inv1, inv2) -> tuple[dict, str]:
@@ -158,6 +174,7 @@ def fit_t1_mp2rage(
     inv2=None,
     sigma=None,
     b1_se=None,
+    lut: Mp2rageLookup | None = None,
 ) -> MapSet:
     """T1 and R1 (and with the inversion images M0 and standard errors) from UNI by the lookup.
 
@@ -179,6 +196,10 @@ def fit_t1_mp2rage(
     b1_se : (...) array_like, optional
         Standard error of ``b1`` (fraction); added to the standard errors to
         first order (NaN counts as 0).
+    lut : Mp2rageLookup, optional
+        The lookup table to invert with (default: one for ``protocol`` over the B1 range of the voxels to
+        invert). A volume inverted in parts passes the table of the whole volume (see
+        :func:`lookup_for`), so that every part uses the same one.
 
     Returns
     -------
@@ -212,14 +233,9 @@ def fit_t1_mp2rage(
         status[sel & ~okb] = st.OUTSIDE_B1
         sel &= okb
     idx = np.flatnonzero(sel)
-    if b1f is None:
-        lut = Mp2rageLookup(protocol)
-        bsel = None
-    else:
-        bsel = b1f[idx].astype(float)
-        inside = (bsel >= B1_TABLE_RANGE[0]) & (bsel <= B1_TABLE_RANGE[1])
-        lo, hi = (float(bsel[inside].min()), float(bsel[inside].max())) if inside.any() else (1.0, 1.0)
-        lut = Mp2rageLookup(protocol, b1_range=(lo, hi))
+    bsel = None if b1f is None else b1f[idx].astype(float)
+    if lut is None:
+        lut = lookup_for(protocol, bsel)
     t1 = lut.t1(uf[idx].astype(float), bsel)
     ok = np.isfinite(t1)
     status[idx] = np.where(ok, st.FITTED, st.OUTSIDE_LOOKUP)
@@ -258,6 +274,19 @@ def fit_t1_mp2rage(
             "t1_lookup_range_s": [float(np.nanmin(lut.limits[:, 0])), float(np.nanmax(lut.limits[:, 1]))],
             "b1_table": [float(lut.b1[0]), float(lut.b1[-1])]}
     return MapSet(est, stderr, units, desc, ("T1",), quality, status.reshape(shape), info)
+
+
+def lookup_for(protocol: MP2RAGEProtocol, b1=None) -> Mp2rageLookup:
+    """The lookup table for ``protocol`` over the range of the relative B1 values ``b1`` (1-D; None: B1 = 1).
+
+    Values outside :data:`B1_TABLE_RANGE` do not widen the table (those voxels get status 9).
+    """
+    if b1 is None:
+        return Mp2rageLookup(protocol)
+    b = np.asarray(b1, float)
+    inside = (b >= B1_TABLE_RANGE[0]) & (b <= B1_TABLE_RANGE[1])
+    lo, hi = (float(b[inside].min()), float(b[inside].max())) if inside.any() else (1.0, 1.0)
+    return Mp2rageLookup(protocol, b1_range=(lo, hi))
 
 
 def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma, b1_se=None):
@@ -335,35 +364,77 @@ def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[np.ndarray | None, 
     return se, dict(info, propagated=True, path=str(Path(path).absolute())), Path(path)
 
 
-def _load_3d(path, what: str, *, allow_complex: bool = False):
+class _Slices:
+    """The slices ``z0:z1`` of a 3D image, read when ``dataobj`` is touched (for :func:`image_data`)."""
+
+    def __init__(self, img, z0: int, z1: int):
+        self.img, self.z0, self.z1 = img, z0, z1
+
+    @property
+    def dataobj(self):
+        extra = (0,) * (len(self.img.shape) - 3)  # trailing axes of length 1
+        return self.img.dataobj[(slice(None), slice(None), slice(self.z0, self.z1), *extra)]
+
+
+def _open_3d(path, what: str):
+    """The image of one 3D volume (header only: the data are read slab by slab, :func:`_read_3d`)."""
     img = load_image(path, what=what)
     shape = img.shape
     if len(shape) > 3 and not all(s == 1 for s in shape[3:]):
         raise InputError(f"{what} {path}: has shape {shape}; expected one 3D volume")
-    data = image_data(img, path, dtype=np.float32, allow_complex=allow_complex)
-    return img, data.reshape(shape[:3])
+    return img
 
 
-def _load_inversion(path, phase, what: str, ref_img):
-    img, data = _load_3d(path, what, allow_complex=True)
-    check_same_grid(ref_img.shape, ref_img.affine, img.shape, img.affine, ref_name="the UNI image",
-                    name=f"{what} {path}")
-    if phase is not None:
-        if np.iscomplexobj(data):
-            raise UsageError(f"{what}-phase: {path} already holds complex data; give a complex image or a magnitude "
-                             f"with its phase, not both")
-        pimg, ph = _load_3d(phase, f"{what}-phase")
-        check_same_grid(ref_img.shape, ref_img.affine, pimg.shape, pimg.affine, ref_name="the UNI image",
-                        name=f"{what}-phase {phase}")
-        peak = float(np.nanmax(np.abs(ph))) if np.isfinite(ph).any() else 0.0
-        if peak > 3.1416:
-            raise InputError(f"{what}-phase {phase}: values reach {peak:g}, expected radians in [-pi, pi]; convert the "
-                             f"phase first (e.g. integer-coded -4096..4095: multiply by pi/4096)")
-        data = np.abs(data) * np.exp(1j * ph.astype(np.float32))
-    elif not np.iscomplexobj(data) and np.nanmin(data) < 0:
-        raise InputError(f"{what} {path}: holds negative values but a magnitude image is >= 0; give the magnitude, "
-                         f"a complex image, or the magnitude with --{what.lstrip('-')}-phase")
-    return data
+def _read_3d(img, path, z0: int, z1: int, *, allow_complex: bool = False) -> np.ndarray:
+    """The slices ``z0:z1`` of a 3D image as float32 (complex64), scaling applied."""
+    data = image_data(_Slices(img, z0, z1), path, dtype=np.float32, allow_complex=allow_complex)
+    return data.reshape(img.shape[:2] + (z1 - z0,))
+
+
+class _Inversion:
+    """One inversion image (magnitude or complex, or a magnitude with its phase), read slab by slab."""
+
+    def __init__(self, path, phase, what: str, ref_img):
+        self.path, self.phase, self.what = path, phase, what
+        self.img = _open_3d(path, what)
+        check_same_grid(ref_img.shape, ref_img.affine, self.img.shape, self.img.affine, ref_name="the UNI image",
+                        name=f"{what} {path}")
+        self.pimg = None
+        if phase is not None:
+            if self.img.get_data_dtype().kind == "c":
+                raise UsageError(f"{what}-phase: {path} already holds complex data; give a complex image or a "
+                                 f"magnitude with its phase, not both")
+            self.pimg = _open_3d(phase, f"{what}-phase")
+            check_same_grid(ref_img.shape, ref_img.affine, self.pimg.shape, self.pimg.affine,
+                            ref_name="the UNI image", name=f"{what}-phase {phase}")
+
+    def magnitude(self, z0: int, z1: int) -> np.ndarray:
+        """(X, Y, z1 - z0) float32 magnitudes of the slices ``z0:z1``."""
+        data = _read_3d(self.img, self.path, z0, z1, allow_complex=True)
+        what = self.what
+        if self.pimg is not None:
+            ph = _read_3d(self.pimg, self.phase, z0, z1)
+            peak = float(np.nanmax(np.abs(ph))) if np.isfinite(ph).any() else 0.0
+            if peak > 3.1416:
+                raise InputError(f"{what}-phase {self.phase}: values reach {peak:g}, expected radians in [-pi, pi]; "
+                                 f"convert the phase first (e.g. integer-coded -4096..4095: multiply by pi/4096)")
+            data = np.abs(data) * np.exp(1j * ph.astype(np.float32))
+        elif not np.iscomplexobj(data) and (data < 0).any():
+            raise InputError(f"{what} {self.path}: holds negative values but a magnitude image is >= 0; give the "
+                             f"magnitude, a complex image, or the magnitude with --{what.lstrip('-')}-phase")
+        return np.abs(data)
+
+
+@dataclass
+class _Images(Series):
+    """A series whose slabs come from ``reader(z0, z1) -> (X, Y, z1 - z0, n)`` (lazy: never read whole)."""
+
+    reader: Callable[[int, int], np.ndarray] | None = field(default=None, repr=False)
+
+    def read(self, z0: int, z1: int) -> np.ndarray:
+        if self._data is not None or self.reader is None:
+            return super().read(z0, z1)
+        return self.reader(z0, z1)
 
 
 @recorded
@@ -430,65 +501,69 @@ def run_t1_mp2rage(
     if efficiency is not None and not (0 < efficiency <= 1):
         raise UsageError(f"--inversion-efficiency {efficiency:g}: expected a number in (0, 1] (1 = perfect)")
     upath = Path(uni).expanduser().absolute()
-    img, raw = _load_3d(upath, "UNI")
+    img = _open_3d(upath, "UNI")
     sidecar, where = _merged_sidecar(upath, inv1, inv2)
     protocol, sources = resolve_protocol(sidecar, where, ti=ti, fa=fa, tr_prep=tr_prep, tr_exc=tr_exc, shots=shots,
                                          efficiency=efficiency)
-    prefix = common.prefix or default_prefix(upath)
-    check_outputs_free(common, prefix)
-    u, encoding = decode_uni(raw, str(upath))
-    zero_filled = raw == 0  # a stored 0 is a zero-filled background, not a measured UNI
-    del raw
-    shape, affine = u.shape, np.asarray(img.affine, float)
-    extra = []
-    notes = []
-    i1 = i2 = None
-    inv_series = None
+    shape, affine = tuple(img.shape[:3]), np.asarray(img.affine, float)
+    budget = common.max_memory
+    inversions = None
     if inv1 is not None:
-        i1 = _load_inversion(inv1, inv1_phase, "--inv1", img)
-        i2 = _load_inversion(inv2, inv2_phase, "--inv2", img)
-        extra += [Path(p).expanduser().absolute() for p in (inv1, inv2, inv1_phase, inv2_phase) if p is not None]
-        mags = np.stack([np.abs(i1), np.abs(i2)], axis=-1).astype(np.float32)
-        inv_series = Series(_data=mags, affine=affine, header=img.header, paths=[Path(inv1).absolute()])
-    # the voxels to invert: the common mask options, except that "auto" needs the inversion images (UNI has no
-    # usable object contrast: its background is noise spread over the whole range)
-    series = Series(_data=u[..., None], affine=affine, header=img.header, acquisition=protocol.as_acquisition(),
-                    sources=sources, paths=[upath])
-    if common.mask == "auto" or common.mask is None:
-        if inv_series is not None:
-            from ..noise_level import object_mask
+        inversions = (_Inversion(inv1, inv1_phase, "--inv1", img), _Inversion(inv2, inv2_phase, "--inv2", img))
+    acq = {"acquisition": protocol.as_acquisition(), "sources": sources, "affine": affine, "header": img.header}
+    files = [upath] + [Path(p).expanduser().absolute() for p in (inv1, inv2, inv1_phase, inv2_phase) if p is not None]
 
-            mask = object_mask(inv_series)
-            mask_desc = ("auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, "
-                         "holes filled)")
-        else:
-            mask = np.isfinite(u) & ~zero_filled
-            mask_desc = ("auto without inversion images: every voxel with a finite UNI whose stored value is not 0 "
-                         "(zero-filled background) (pass --mask or --inv1/--inv2 "
-                         "to exclude the background)")
+    def read_uni(z0: int, z1: int) -> np.ndarray:
+        return _read_3d(img, upath, z0, z1)[..., None]
+
+    uni_series = _Images(_data=None, paths=files, _shape4=shape + (1,), reader=read_uni, **acq)
+    # UNI's encoding (float or 12-bit) from the range of the whole image, read slab by slab; a stored 0 is a
+    # zero-filled background, not a measured UNI
+    span: tuple[float, float] | None = None
+    finite = np.zeros(shape, bool)
+    zero_filled = np.zeros(shape, bool)
+    for z0, z1 in uni_series.slabs(budget):
+        raw = read_uni(z0, z1)[..., 0]
+        part = _finite_range(raw)
+        if part is not None:
+            span = part if span is None else (min(span[0], part[0]), max(span[1], part[1]))
+        finite[:, :, z0:z1] = np.isfinite(raw)
+        zero_filled[:, :, z0:z1] = raw == 0
+    if span is None:
+        raise InputError(f"{upath}: every UNI value is NaN or infinite; nothing to invert")
+    encoding = uni_encoding(*span, str(upath))
+    if inversions is None:
+        # the voxels to invert: the common mask options, except that "auto" needs the inversion images (UNI has
+        # no usable object contrast: its background is noise spread over the whole range)
+        run_series: Series = uni_series
+        auto = (finite & ~zero_filled, ("auto without inversion images: every voxel with a finite UNI whose stored "
+                                        "value is not 0 (zero-filled background) (pass --mask or --inv1/--inv2 to "
+                                        "exclude the background)"))
     else:
-        mask, mask_desc = resolve_mask(common.mask, series)
-        if common.mask != "none":
-            extra.append(Path(common.mask).expanduser().absolute())
-    sigma, noise_info = None, None
-    if inv_series is not None:
-        try:
-            sigma, sinfo = resolve_sigma(sigma_spec, inv_series)
-        except InputError as exc:
-            if str(sigma_spec or "auto") not in ("auto", "local"):
-                raise
-            warn(f"{str(exc).rstrip('.')} -- M0 is written, the standard errors are not")
-            notes.append("no standard errors: the noise level of the inversion images could not be estimated "
-                         "(give --sigma VALUE)")
-            sigma, sinfo = None, {"value": None, "source": None, "stderr_fallback": str(exc)}
-        noise_info = {"mode": "none", "sigma": sinfo["value"], "sigma_source": sinfo["source"],
+        first, second = inversions
+
+        def read_inversions(z0: int, z1: int) -> np.ndarray:
+            return np.stack([first.magnitude(z0, z1), second.magnitude(z0, z1)], axis=-1).astype(np.float32)
+
+        # the run reads the inversion magnitudes: their object is the mask, their background the noise level
+        run_series = _Images(_data=None, paths=files, _shape4=shape + (2,), reader=read_inversions, **acq)
+        auto = None
+    del zero_filled
+    run = prepare_run(run_series, common, sigma_spec=sigma_spec, sigma_for_se=inversions is not None, t0=t0,
+                      magnitude=inversions is not None, fallback=_NO_NOISE, auto_mask=auto,
+                      auto_mask_desc=None if auto is not None else
+                      "auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, holes "
+                      "filled)")
+    notes = run.notes
+    noise_info = None
+    if inversions is not None:
+        sinfo = run.noise_info or {}
+        noise_info = {"mode": "none", "sigma": sinfo.get("sigma"), "sigma_source": sinfo.get("source"),
                       "stderr": "first-order propagation of complex Gaussian noise (sd sigma per channel) on both "
                                 "inversion images through UNI, at the model signals"}
         if "stderr_fallback" in sinfo:
             noise_info["stderr"] = f"none written: {sinfo['stderr_fallback']}"
-        if "path" in sinfo:
-            extra.append(Path(sinfo["path"]))
-        notes.extend(f"{n} (inversion images)" for n in sinfo.get("notes", []))
+    extra = run.inputs
     b1_map: np.ndarray | None = None
     b1_se: np.ndarray | None = None
     b1_info: dict = {"b1": None}
@@ -499,7 +574,7 @@ def run_t1_mp2rage(
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")
-        if i1 is not None:
+        if inversions is not None:
             b1_se, se_info, b1_se_path = _b1_stderr(b1, b1_stderr, shape, affine, b1_info["b1_scale"])
             b1_info["b1_stderr"] = se_info
             if b1_se_path is not None:
@@ -509,7 +584,20 @@ def run_t1_mp2rage(
             raise UsageError("--b1-stderr FILE: standard errors need the inversion images (--inv1/--inv2)")
     else:
         b1_desc = NO_B1_NOTE
-    maps = fit_t1_mp2rage(u, protocol, b1=b1_map, mask=mask, inv1=i1, inv2=i2, sigma=sigma, b1_se=b1_se)
+    # one lookup table for the whole volume (its B1 range from every voxel to invert), then slab by slab
+    to_invert = run.mask & finite
+    b32 = None if b1_map is None else np.asarray(b1_map, np.float32)
+    lut = lookup_for(protocol, None if b32 is None else b32[to_invert & np.isfinite(b32)].astype(float))
+
+    def one(slab: Slab) -> MapSet:
+        z = slice(slab.z0, slab.z1)
+        u = _decode(read_uni(slab.z0, slab.z1)[..., 0], encoding)
+        mags = (None, None) if inversions is None else (slab.data[..., 0], slab.data[..., 1])
+        return fit_t1_mp2rage(u, protocol, b1=None if b1_map is None else b1_map[:, :, z], mask=slab.mask,
+                              inv1=mags[0], inv2=mags[1], sigma=slab.sigma,
+                              b1_se=None if b1_se is None else np.asarray(b1_se)[:, :, z], lut=lut)
+
+    maps = run.map_slabs(one)
     delays = {k: round(v, 6) for k, v in protocol.delays().items()}
     options = {"inversion_efficiency": protocol.efficiency, "uni_encoding": UNI_ENCODINGS[encoding],
                "b1_correction": b1 is not None, "parameter_sources": sources,
@@ -525,7 +613,7 @@ def run_t1_mp2rage(
         notes.append(f"{np.count_nonzero(maps.status == st.OUTSIDE_LOOKUP)} voxels have a UNI the lookup cannot "
                      f"invert (status 9; invertible T1 range {maps.info['t1_lookup_range_s'][0]:.3g}-"
                      f"{maps.info['t1_lookup_range_s'][1]:.3g} s)")
-    report = write_run(series, maps, common=common, prefix=prefix, noise_info=noise_info, options=options,
-                       model_info=model_info, extra_inputs=extra, notes=notes, t0=t0, mask_desc=mask_desc)
+    run.noise_info = noise_info
+    report = run.write(maps, options=options, model_info=model_info)
     report.notes.insert(0, f"UNI read as {UNI_ENCODINGS[encoding]}; {b1_desc}")
     return report

@@ -61,8 +61,7 @@ FITTING_COMMANDS = {
     "t2star": Case("t2star", (f"{ANAT}/*_MEGRE.nii.gz",), time_maps=("T2star",), crop=False),
     "t1-mp2rage": Case("t1-mp2rage", (f"{ANAT}/*_UNIT1.nii.gz",), ["--inv1", "{inv1}", "--inv2", "{inv2}"],
                        {"{inv1}": f"{ANAT}/sub-phantom_inv-1_MP2RAGE.nii.gz",
-                        "{inv2}": f"{ANAT}/sub-phantom_inv-2_MP2RAGE.nii.gz"}, time_maps=("T1",), crop=False,
-                       slabs=False),  # not yet on the shared run path: reads its images whole
+                        "{inv2}": f"{ANAT}/sub-phantom_inv-2_MP2RAGE.nii.gz"}, time_maps=("T1",), crop=False),
     "t2-spectrum": Case("t2-spectrum", (f"{ANAT}/*_echo-0[1-9]_MESE.nii.gz", f"{ANAT}/*_echo-1[0-6]_MESE.nii.gz"),
                         exact=False),
 }
