@@ -516,7 +516,7 @@ def run_t1_mp2rage(
     def read_uni(z0: int, z1: int) -> np.ndarray:
         return _read_3d(img, upath, z0, z1)[..., None]
 
-    uni_series = _Images(_data=None, paths=files, _shape4=shape + (1,), reader=read_uni, **acq)
+    uni_series = _Images(_data=None, _proxies=[], paths=files, _shape4=shape + (1,), reader=read_uni, **acq)
     # UNI's encoding (float or 12-bit) from the range of the whole image, read slab by slab; a stored 0 is a
     # zero-filled background, not a measured UNI
     span: tuple[float, float] | None = None
@@ -546,7 +546,8 @@ def run_t1_mp2rage(
             return np.stack([first.magnitude(z0, z1), second.magnitude(z0, z1)], axis=-1).astype(np.float32)
 
         # the run reads the inversion magnitudes: their object is the mask, their background the noise level
-        run_series = _Images(_data=None, paths=files, _shape4=shape + (2,), reader=read_inversions, **acq)
+        run_series = _Images(_data=None, _proxies=[], paths=files, _shape4=shape + (2,), reader=read_inversions,
+                             **acq)
         auto = None
     del zero_filled
     run = prepare_run(run_series, common, sigma_spec=sigma_spec, sigma_for_se=inversions is not None, t0=t0,
