@@ -43,6 +43,10 @@ __all__ = ["nnls_active_set", "nnls_block_pivot", "residual_norm2"]
 DUAL_RTOL = 1e-11
 #: relative pivot floor of the Cholesky factorisation (numerically dependent columns)
 PIVOT_RTOL = 1e-13
+#: passive-set systems are solved in blocks of voxels whose passive sets differ by at most this many variables
+BUCKET_WIDTH = 3
+#: ... of at least this many voxels (fewer: one block; the per-call cost of numpy dominates)
+BUCKET_MIN = 256
 
 
 def _spd_solve(M: NDArray[np.float64], r: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -80,51 +84,89 @@ class _Problem:
         self.group = np.zeros(V, np.intp) if group is None else np.asarray(group, np.intp)
         self.mu = np.zeros(V) if mu is None else np.broadcast_to(np.asarray(mu, float), (V,))
         self.groups = np.unique(self.group)
-        # many bases in one batch: each voxel's Gram matrix, gathered once (dual by element-wise products)
-        self.Gv = self.G[self.group] if self.groups.size > 4 else None
+        self.has_mu = bool(np.any(self.mu))
+        # the Gram matrices and A^T b with one more variable, decoupled from the others (G[n, n] = 1,
+        # d[n] = 0): the padding of the passive-set systems points there, so a padded system is the
+        # voxel's own system plus identity rows
+        Gx = np.zeros((self.G.shape[0], n + 1, n + 1))
+        Gx[:, :n, :n] = self.G
+        Gx[:, n, n] = 1.0
+        self.G_flat = Gx.reshape(-1)
+        dx = np.zeros((V, n + 1))
+        dx[:, :n] = self.d
+        self.d_flat = dx.reshape(-1)
         scale = np.abs(self.d).max(axis=1) if n else np.zeros(V)
         self.dual_tol = DUAL_RTOL * np.maximum(scale, np.finfo(float).tiny)
 
     def dual(self, rows: NDArray[np.intp], x: NDArray[np.float64]) -> NDArray[np.float64]:
         """w = d - (C + mu I) x for the voxels ``rows`` (x given for those rows)."""
         w = self.d[rows] - self.mu[rows, None] * x
-        g = self.group[rows]
-        if self.Gv is not None:
-            w -= np.einsum("vij,vj->vi", self.Gv[rows], x)
-        elif self.groups.size == 1:
+        if self.groups.size == 1:
             w -= x @ self.G[self.groups[0]]
-        else:
-            for k in np.unique(g):
-                sel = g == k
-                w[sel] -= x[sel] @ self.G[k]
+            return w
+        # voxels sorted by their Gram matrix: one matrix product per matrix present
+        g = self.group[rows]
+        order = np.argsort(g, kind="stable")
+        gs = g[order]
+        cut = np.flatnonzero(gs[1:] != gs[:-1]) + 1
+        for s0, s1 in zip(np.r_[0, cut], np.r_[cut, gs.size]):
+            sel = order[s0:s1]
+            w[sel] -= x[sel] @ self.G[gs[s0]]
         return w
 
     def solve(self, rows: NDArray[np.intp], P: NDArray[np.bool_]) -> NDArray[np.float64]:
-        """Unconstrained solution on the passive set ``P`` (zero elsewhere) for the voxels ``rows``."""
+        """Unconstrained solution on the passive set ``P`` (zero elsewhere) for the voxels ``rows``.
+
+        Voxels are solved in groups of similar passive-set size (the systems are padded to the largest
+        of their group only); each voxel's solution does not depend on the grouping.
+        """
         nv, n = P.shape
         z = np.zeros((nv, n))
         cnt = P.sum(axis=1)
         K = int(cnt.max()) if nv else 0
         if K == 0:
             return z
-        rr, cc = np.nonzero(P)  # row-major: each voxel's passive indices in increasing order
-        idx = np.zeros((nv, K), np.intp)
-        idx[rr, np.arange(rr.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)] = cc
-        valid = np.arange(K)[None, :] < cnt[:, None]
-        idxT = idx.T  # (K, nv): voxels last for the factorisation
-        pair = idxT[:, None, :] * n + idxT[None, :, :]  # flat (i, j) index into an n x n Gram matrix
-        if self.Gv is not None:
-            M = np.take(self.Gv, pair + (rows * (n * n))[None, None, :])
-        else:
-            M = np.take(self.G.reshape(self.G.shape[0], -1), pair + (self.group[rows] * (n * n))[None, None, :])
-        vT = valid.T
-        M *= vT[:, None, :] & vT[None, :, :]
-        ii = np.arange(K)
-        M[ii, ii] += np.where(vT, self.mu[rows][None, :], 1.0)
-        r = np.where(vT, np.take_along_axis(self.d[rows], idx, axis=1).T, 0.0)
-        sol = _spd_solve(M, r).T
-        z[rr, cc] = sol[valid]
+        if nv < 2 * BUCKET_MIN or K <= BUCKET_WIDTH:
+            self._solve_block(rows, P, cnt, K, z, None)
+            return z
+        order = np.argsort(cnt, kind="stable")
+        sc = cnt[order]
+        start = 0
+        while start < nv:
+            # the block: voxels up to BUCKET_WIDTH more passive variables than the block's smallest, at least
+            # BUCKET_MIN voxels (or all that are left)
+            stop = int(np.searchsorted(sc, sc[start] + BUCKET_WIDTH, side="right"))
+            stop = max(stop, min(start + BUCKET_MIN, nv))
+            if nv - stop < BUCKET_MIN:
+                stop = nv
+            sel = order[start:stop]
+            kb = int(sc[stop - 1])
+            if kb:
+                self._solve_block(rows[sel], P[sel], cnt[sel], kb, z, sel)
+            start = stop
         return z
+
+    def _solve_block(self, rows, P, cnt, K, z, sel) -> None:
+        """The passive-set systems of ``rows`` (largest passive set K) into ``z`` (rows ``sel``, or all)."""
+        nv, n = P.shape
+        n1 = n + 1
+        rr, cc = np.nonzero(P)  # row-major: each voxel's passive indices in increasing order
+        idx = np.full((nv, K), n, np.intp)  # padding: the decoupled extra variable n
+        idx[rr, np.arange(rr.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)] = cc
+        idxT = np.ascontiguousarray(idx.T)  # (K, nv): voxels last for the factorisation
+        first = idxT * n1 + (self.group[rows] * (n1 * n1))[None, :]
+        M = np.take(self.G_flat, first[:, None, :] + idxT[None, :, :])  # (K, K, nv)
+        if self.has_mu:
+            ii = np.arange(K)
+            M[ii, ii] += np.where(idxT < n, self.mu[rows][None, :], 0.0)
+        r = np.take(self.d_flat, idxT + (rows * n1)[None, :])
+        sol = _spd_solve(M, r).T
+        out = np.zeros((nv, n1))
+        out[np.arange(nv)[:, None], idx] = sol
+        if sel is None:
+            z[:] = out[:, :n]
+        else:
+            z[sel] = out[:, :n]
 
 
 def nnls_active_set(
@@ -134,6 +176,7 @@ def nnls_active_set(
     group: NDArray[np.intp] | None = None,
     mu: NDArray[np.float64] | float | None = None,
     passive: NDArray[np.bool_] | None = None,
+    start: NDArray[np.float64] | None = None,
     max_iter: int | None = None,
 ) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
     """Lawson-Hanson active-set NNLS for a batch of voxels.
@@ -153,6 +196,13 @@ def nnls_active_set(
         neighbouring ``mu``). It is first reduced to a feasible start (the
         unconstrained solution on it, dropping variables that come out
         non-positive until none does); the iteration then proceeds as usual.
+    start : (V, n) ndarray, optional
+        Warm start from a non-negative point (e.g. the solution of a
+        neighbouring problem): its support is the first passive set, and the
+        iteration moves from it towards the unconstrained solution on that set
+        as in Lawson & Hanson's inner loop, dropping only the variables that
+        reach zero on the way. Usually fewer variables leave (and have to
+        re-enter) than with ``passive``. Overrides ``passive``.
     max_iter : int, optional
         Outer iterations (default 3 n).
 
@@ -168,40 +218,21 @@ def nnls_active_set(
     max_iter = 3 * n if max_iter is None else int(max_iter)
     x = np.zeros((V, n))
     P = np.zeros((V, n), bool)
-    if passive is not None:
-        P[:] = passive
-        sub = np.flatnonzero(P.any(axis=1))
-        while sub.size:  # a feasible start: the solution on the guessed support, shrunk until it is positive
-            z = pb.solve(sub, P[sub])
-            pos = P[sub] & (z > 0)
-            ok = (pos == P[sub]).all(axis=1)
-            x[sub[ok]] = z[ok]
-            P[sub[~ok]] = pos[~ok]
-            sub = sub[~ok]
     active = np.ones(V, bool)
-    for _ in range(max_iter):
-        a = np.flatnonzero(active)
-        if a.size == 0:
-            break
-        w = pb.dual(a, x[a])
-        w[P[a]] = -np.inf
-        j = np.argmax(w, axis=1)
-        enter = w[np.arange(a.size), j] > pb.dual_tol[a]
-        active[a[~enter]] = False
-        a, j = a[enter], j[enter]
-        if a.size == 0:
-            break
-        P[a, j] = True
-        sub, jsub, first = a, j, True
+
+    def settle(sub: NDArray[np.intp], jsub: NDArray[np.intp] | None) -> None:
+        """Lawson & Hanson's inner loop for the voxels ``sub`` (x feasible, supported on P); ``jsub`` the
+        variables that have just entered (None: a warm start)."""
+        first = jsub is not None
         while sub.size:
             z = pb.solve(sub, P[sub])
-            if first:  # the entering variable must come out positive; if rounding says otherwise, stop there
+            if first and jsub is not None:  # the entering variable must come out positive; if rounding says otherwise, stop there
                 bad_entry = z[np.arange(sub.size), jsub] <= 0
                 if bad_entry.any():
                     P[sub[bad_entry], jsub[bad_entry]] = False
                     active[sub[bad_entry]] = False
                     keep = ~bad_entry
-                    sub, jsub, z = sub[keep], jsub[keep], z[keep]
+                    sub, z = sub[keep], z[keep]
                 first = False
             Ps = P[sub]
             neg = Ps & (z <= 0)
@@ -221,7 +252,36 @@ def nnls_active_set(
             Pb = P[s] & (xb > 0)
             P[s] = Pb
             x[s] = np.where(Pb, xb, 0.0)
-            sub, jsub = s, jsub[bad]
+            sub = s
+
+    if start is not None:
+        x[:] = np.maximum(start, 0.0)
+        P[:] = x > 0
+        settle(np.flatnonzero(P.any(axis=1)), None)
+    elif passive is not None:
+        P[:] = passive
+        sub = np.flatnonzero(P.any(axis=1))
+        while sub.size:  # a feasible start: the solution on the guessed support, shrunk until it is positive
+            z = pb.solve(sub, P[sub])
+            pos = P[sub] & (z > 0)
+            ok = (pos == P[sub]).all(axis=1)
+            x[sub[ok]] = z[ok]
+            P[sub[~ok]] = pos[~ok]
+            sub = sub[~ok]
+    for _ in range(max_iter):
+        a = np.flatnonzero(active)
+        if a.size == 0:
+            break
+        w = pb.dual(a, x[a])
+        w[P[a]] = -np.inf
+        j = np.argmax(w, axis=1)
+        enter = w[np.arange(a.size), j] > pb.dual_tol[a]
+        active[a[~enter]] = False
+        a, j = a[enter], j[enter]
+        if a.size == 0:
+            break
+        P[a, j] = True
+        settle(a, j)
     return x, ~active
 
 

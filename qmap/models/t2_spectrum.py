@@ -63,7 +63,9 @@ DEFAULT_CHI2_FACTOR = 1.02
 #: voxels whose first-echo SNR is below this get status LOW_SNR (values kept)
 DEFAULT_MIN_SNR = 50.0
 #: coarse refocusing-angle grid: this many angles from the lower bound to 180 degrees
-DEFAULT_N_ANGLES = 8
+DEFAULT_N_ANGLES = 6
+#: the angle search uses every SEARCH_STRIDE-th T2 of the grid
+SEARCH_STRIDE = 2
 #: step of the tabulated (fine) angle grid, degrees
 FINE_STEP_DEG = 0.5
 LOW_SNR = st.LOW_SNR
@@ -71,8 +73,12 @@ LOW_SNR = st.LOW_SNR
 _CHI2_RTOL = 0.1
 #: iterations of the search for mu
 _MU_ITER = 14
-#: first log10(mu / mean squared column norm) tried (typical at SNR 100-300)
-_MU_START = -5.0
+#: first log10(mu / mean squared column norm) tried: log10(RSS_min / signal energy) + this
+_MU_OFFSET = -0.8
+#: assumed slope d ln(chi^2 excess) / d ln(mu) for the steps before the target is bracketed, and the largest
+#: such step (decades)
+_MU_SLOPE = 0.7
+_MU_MAX_STEP = 1.5
 
 
 @dataclass(frozen=True)
@@ -263,14 +269,14 @@ class SpectrumModel:
         na = b.angles.size
         rss = np.empty((na, V))
         zero = np.zeros(V, np.intp)
-        support = None
-        sols = np.empty((na, V, b.t2.size))
-        for a in range(na - 1, -1, -1):  # from 180 degrees down, each warm-started from its neighbour's support
-            d = y @ b.A[a]
-            x, _ = nnls_active_set(b.G[a], d, passive=support)
-            support = x > 0
-            sols[a] = x
-            rss[a] = _rss(b.A[a:a + 1], zero, x, y)
+        x = None
+        sols = np.zeros((na, V, b.t2.size))
+        S = SEARCH_STRIDE
+        for a in range(na - 1, -1, -1):  # from 180 degrees down, each warm-started from its neighbour's solution
+            A = b.A[a][:, ::S]
+            x, _ = nnls_active_set(b.G[a][::S, ::S], y @ A, start=x)
+            sols[a][:, ::S] = x
+            rss[a] = _rss(A[None], zero, x, y)
         # cubic spline of the residual over the angle (Prasloski et al. 2012), mirrored about 180 degrees (the
         # trains are symmetric there), minimised on the tabulated 0.5-degree grid
         h = b.angles[1] - b.angles[0]
@@ -348,18 +354,22 @@ class SpectrumModel:
         # log10(mu_rel) bracket and the log of the chi^2 excess at its ends (NaN = not evaluated)
         lo, hi = np.full(V, -8.0), np.full(V, 3.0)
         flo, fhi = np.full(V, -np.inf), np.full(V, np.nan)
-        cur = np.full(V, _MU_START)
+        # first guess from the voxel's own misfit: mu scales with the noise variance relative to the signal
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cur = np.clip(np.nan_to_num(np.log10(rss0 / energy), nan=-5.0) + _MU_OFFSET, -7.5, 2.5)
         best_x, best_rss, best_mu, best_err = x0.copy(), rss0.copy(), np.zeros(V), np.full(V, np.inf)
-        warm = x0 > 0
+        warm = x0.copy()
+        prev_c, prev_f = np.full(V, np.nan), np.full(V, np.nan)  # the previous point of the secant
+        reached = np.zeros(V, bool)  # a mu with chi^2 within the tolerance of the target was found
         active = todo.copy()
         for _ in range(_MU_ITER):
             a = np.flatnonzero(active)
             if a.size == 0:
                 break
             mu = 10.0 ** cur[a] * colscale[a]
-            xa, conv = nnls_active_set(b.G_fine, d[a], group=group[a], mu=mu, passive=warm[a])
+            xa, conv = nnls_active_set(b.G_fine, d[a], group=group[a], mu=mu, start=warm[a])
             ra = _rss(b.A_fine, group[a], xa, y[a])
-            warm[a] = xa > 0
+            warm[a] = xa
             with np.errstate(divide="ignore", invalid="ignore"):
                 f = np.log(np.maximum(ra / rss0[a] - 1.0, 1e-300))
             err = np.abs(f - target)
@@ -368,24 +378,30 @@ class SpectrumModel:
             best_x[sel], best_rss[sel], best_mu[sel], best_err[sel] = xa[better], ra[better], 10.0 ** cur[sel], err[better]
             ok[a] &= conv
             done = np.abs(np.exp(f) - excess) <= _CHI2_RTOL * excess
+            reached[a] |= done
             below = f < target
             lo[a] = np.where(below, cur[a], lo[a])
             flo[a] = np.where(below, f, flo[a])
             hi[a] = np.where(below, hi[a], cur[a])
             fhi[a] = np.where(below, fhi[a], f)
-            # next point: log-log secant inside the bracket when both ends are known, else a decade step
-            both = np.isfinite(flo[a]) & np.isfinite(fhi[a])
+            # next point: the log-log secant through the last two points (before that, a step with the assumed
+            # slope), kept inside the bracket once the target is bracketed
+            pc, pf = prev_c[a], prev_f[a]
             with np.errstate(divide="ignore", invalid="ignore"):
-                sec = lo[a] + (target - flo[a]) * (hi[a] - lo[a]) / (fhi[a] - flo[a])
-            nxt = np.where(both, sec, np.where(below, cur[a] + 1.0, cur[a] - 1.0))
+                slope = (f - pf) / (cur[a] - pc) / np.log(10.0)
+            slope = np.where(np.isfinite(slope) & (slope > 0.05), slope, _MU_SLOPE)
+            step = np.clip((target - f) / (slope * np.log(10.0)), -_MU_MAX_STEP, _MU_MAX_STEP)
+            prev_c[a], prev_f[a] = cur[a], f
+            nxt = cur[a] + step
+            both = np.isfinite(flo[a]) & np.isfinite(fhi[a])
             margin = 0.05 * (hi[a] - lo[a])
-            nxt = np.clip(nxt, lo[a] + margin, hi[a] - margin)
+            nxt = np.where(both, np.clip(nxt, lo[a] + margin, hi[a] - margin), np.clip(nxt, -8.0, 3.0))
             stuck = (hi[a] - lo[a]) < 1e-3
             cur[a] = nxt
             active[a[done | stuck]] = False
-        # no mu above the lower end of the bracket kept chi^2 within the allowed increase (data fitted nearly
-        # exactly): the unregularised spectrum is the answer (mu = 0)
-        use = todo & np.isfinite(flo)
+        # no mu reached the target and none above the lower end of the bracket kept chi^2 within the allowed
+        # increase (data fitted nearly exactly): the unregularised spectrum is the answer (mu = 0)
+        use = todo & (reached | np.isfinite(flo))
         x[use], rss[use], mu_rel[use] = best_x[use], best_rss[use], best_mu[use]
         return x, mu_rel, rss, ok
 
