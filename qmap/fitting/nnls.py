@@ -49,25 +49,31 @@ BUCKET_WIDTH = 3
 BUCKET_MIN = 256
 
 
-def _spd_solve(M: NDArray[np.float64], r: NDArray[np.float64]) -> NDArray[np.float64]:
+def _spd_solve(M: NDArray[np.float64], r: NDArray[np.float64], floor: NDArray[np.float64]) -> NDArray[np.float64]:
     """Solve M x = r for a batch of SPD systems, voxels last: M (K, K, V), r (K, V) -> x (K, V).
 
-    Element-wise over V (contiguous), so each voxel's solution depends only on its own numbers.
+    Right-looking Cholesky factorisation and column-oriented triangular solves, all element-wise over V,
+    so every voxel's numbers go through the same operations in the same order whatever the batch and
+    whatever identity rows pad its system at the end (bit-identical results). ``floor`` (V,) is the
+    smallest pivot (numerically dependent columns). ``M`` is overwritten by the factor.
     """
     K = M.shape[0]
-    L = np.zeros_like(M)
-    floor = PIVOT_RTOL * np.maximum(np.max(M[np.arange(K), np.arange(K)], axis=0), np.finfo(float).tiny)
-    for j in range(K):
-        d = np.sqrt(np.maximum(M[j, j] - np.einsum("kv,kv->v", L[j, :j], L[j, :j]), floor))
-        L[j, j] = d
+    for j in range(K):  # M[j:, j] becomes column j of L
+        d = np.sqrt(np.maximum(M[j, j], floor))
+        M[j, j] = d
         if j + 1 < K:
-            L[j + 1:, j] = (M[j + 1:, j] - np.einsum("ikv,kv->iv", L[j + 1:, :j], L[j, :j])) / d
-    z = np.empty_like(r)
-    for i in range(K):
-        z[i] = (r[i] - np.einsum("kv,kv->v", L[i, :i], z[:i])) / L[i, i]
-    x = np.empty_like(r)
-    for i in range(K - 1, -1, -1):
-        x[i] = (z[i] - np.einsum("kv,kv->v", L[i + 1:, i], x[i + 1:])) / L[i, i]
+            c = M[j + 1:, j] / d
+            M[j + 1:, j] = c
+            M[j + 1:, j + 1:] -= c[:, None] * c[None, :]
+    x = r.copy()
+    for i in range(K):  # L z = r
+        x[i] /= M[i, i]
+        if i + 1 < K:
+            x[i + 1:] -= M[i + 1:, i] * x[i]
+    for i in range(K - 1, -1, -1):  # L^T x = z
+        x[i] /= M[i, i]
+        if i:
+            x[:i] -= M[i, :i] * x[i]
     return x
 
 
@@ -160,7 +166,9 @@ class _Problem:
             ii = np.arange(K)
             M[ii, ii] += np.where(idxT < n, self.mu[rows][None, :], 0.0)
         r = np.take(self.d_flat, idxT + (rows * n1)[None, :])
-        sol = _spd_solve(M, r).T
+        ii = np.arange(K)
+        floor = PIVOT_RTOL * np.maximum(np.max(np.where(idxT < n, M[ii, ii], 0.0), axis=0), np.finfo(float).tiny)
+        sol = _spd_solve(M, r, floor).T
         out = np.zeros((nv, n1))
         out[np.arange(nv)[:, None], idx] = sol
         if sel is None:

@@ -106,3 +106,35 @@ def test_warm_start_reaches_the_same_optimum():
     warm, conv = nnls_block_pivot(A.T @ A, B @ A, mu=0.3, passive=rng.random((100, 40)) < 0.5)
     assert conv.all()
     np.testing.assert_allclose(warm, cold, atol=1e-12)
+
+
+def test_large_batch_blocks_and_warm_start_from_a_point_match_scipy():
+    """Batches large enough to be solved in blocks of similar passive-set size (sparse and dense optima mixed,
+    several Gram matrices, ridge and no ridge), cold and warm-started from a feasible point (Lawson & Hanson's
+    inner loop from a neighbouring problem's solution): the same optimum as scipy.optimize.nnls."""
+    rng = np.random.default_rng(21)
+    m, n, V = 48, 40, 700
+    As = np.abs(rng.normal(size=(3, m, n))) + rng.normal(size=(3, m, n))  # correlated positive-ish columns
+    g = rng.integers(0, 3, V)
+    truth = np.where(rng.random((V, n)) < rng.uniform(0.02, 0.6, (V, 1)), rng.uniform(0, 1, (V, n)), 0.0)
+    B = np.einsum("vmn,vn->vm", As[g], truth) + rng.normal(0, 0.3, (V, m))
+    G = np.einsum("amn,amk->ank", As, As)
+    d = np.einsum("vm,vmn->vn", B, As[g])
+    mu = np.where(np.arange(V) % 2 == 0, 0.0, 10.0 ** rng.uniform(-3, 0, V))
+    ref = np.array([nnls(np.vstack([As[k], np.sqrt(u) * np.eye(n)]), np.r_[b, np.zeros(n)])[0]
+                    for k, b, u in zip(g, B, mu)])
+    x, conv = nnls_active_set(G, d, group=g, mu=mu)
+    assert conv.all()
+    assert np.ptp((x > 0).sum(axis=1)) > 8  # passive sets of very different sizes: several blocks
+    # the optimum is unique (full column rank or ridge): compare solutions
+    tol = 1e-8 * np.abs(ref).max()
+    np.testing.assert_allclose(x, ref, atol=tol)
+    # warm start from the solution of a perturbed problem (a feasible point with a nearby support)
+    start, _ = nnls_active_set(G, d * rng.uniform(0.8, 1.2, d.shape), group=g, mu=mu)
+    xw, conv = nnls_active_set(G, d, group=g, mu=mu, start=start)
+    assert conv.all()
+    np.testing.assert_allclose(xw, ref, atol=tol)
+    # one voxel's solution does not depend on the batch it is solved in
+    sub = np.arange(0, V, 7)
+    xs, _ = nnls_active_set(G, d[sub], group=g[sub], mu=mu[sub])
+    np.testing.assert_array_equal(xs, x[sub])
