@@ -24,18 +24,23 @@ Two exact algorithms share one solver of the passive-set systems:
   from a cold start; with a poor warm start on ill-conditioned problems it
   may need many single exchanges.
 
-The passive-set systems are solved by a Cholesky factorisation written with
-element-wise operations over the voxels (padded to the largest passive set of
-the batch), so every voxel's solution depends only on its own numbers. The
-dual (gradient) uses one matrix product per Gram matrix of the stack.
-Both reach the optimum that ``scipy.optimize.nnls`` reaches (the tests
-compare them on random problems).
+The passive-set systems are gathered from the Gram stack (padded with one
+decoupled extra variable) and solved by
+:func:`qmap.fitting.linalg.chol_solve_lastaxis`, a Cholesky factorisation
+written with element-wise operations over the voxels, in blocks of voxels with
+passive sets of similar size: every voxel's solution depends only on its own
+numbers (bit-identical whatever the batch; tested). The dual (gradient) uses
+one matrix product per Gram matrix of the stack. Both algorithms reach the
+optimum that ``scipy.optimize.nnls`` reaches (the tests compare them on
+random problems).
 """
 
 from __future__ import annotations
 
 import numpy as np
 from numpy.typing import NDArray
+
+from .linalg import chol_solve_lastaxis
 
 __all__ = ["nnls_active_set", "nnls_block_pivot", "residual_norm2"]
 
@@ -47,34 +52,6 @@ PIVOT_RTOL = 1e-13
 BUCKET_WIDTH = 3
 #: ... of at least this many voxels (fewer: one block; the per-call cost of numpy dominates)
 BUCKET_MIN = 256
-
-
-def _spd_solve(M: NDArray[np.float64], r: NDArray[np.float64], floor: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Solve M x = r for a batch of SPD systems, voxels last: M (K, K, V), r (K, V) -> x (K, V).
-
-    Right-looking Cholesky factorisation and column-oriented triangular solves, all element-wise over V,
-    so every voxel's numbers go through the same operations in the same order whatever the batch and
-    whatever identity rows pad its system at the end (bit-identical results). ``floor`` (V,) is the
-    smallest pivot (numerically dependent columns). ``M`` is overwritten by the factor.
-    """
-    K = M.shape[0]
-    for j in range(K):  # M[j:, j] becomes column j of L
-        d = np.sqrt(np.maximum(M[j, j], floor))
-        M[j, j] = d
-        if j + 1 < K:
-            c = M[j + 1:, j] / d
-            M[j + 1:, j] = c
-            M[j + 1:, j + 1:] -= c[:, None] * c[None, :]
-    x = r.copy()
-    for i in range(K):  # L z = r
-        x[i] /= M[i, i]
-        if i + 1 < K:
-            x[i + 1:] -= M[i + 1:, i] * x[i]
-    for i in range(K - 1, -1, -1):  # L^T x = z
-        x[i] /= M[i, i]
-        if i:
-            x[:i] -= M[i, :i] * x[i]
-    return x
 
 
 class _Problem:
@@ -168,7 +145,7 @@ class _Problem:
         r = np.take(self.d_flat, idxT + (rows * n1)[None, :])
         ii = np.arange(K)
         floor = PIVOT_RTOL * np.maximum(np.max(np.where(idxT < n, M[ii, ii], 0.0), axis=0), np.finfo(float).tiny)
-        sol = _spd_solve(M, r, floor).T
+        sol = chol_solve_lastaxis(M, r, floor).T
         out = np.zeros((nv, n1))
         out[np.arange(nv)[:, None], idx] = sol
         if sel is None:
