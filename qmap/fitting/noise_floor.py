@@ -167,8 +167,12 @@ class NoiseFloor:
         s = model.predict(p, ctx)
         return np.flatnonzero(np.min(s, axis=1) < RICIAN_SWITCH * sig)
 
-    def rician_refine(self, model, y, w, p, rss, J, conv, nit, sigma, ctx, lo, hi, *, max_iter=60, select=None):
-        """Refit near-floor voxels (``select``, default :meth:`rician_select`) with the Rician expectation."""
+    def rician_refine(self, model, y, w, p, rss, J, conv, nit, sigma, ctx, lo, hi, *, max_iter=60, select=None,
+                      se_tol=1e-3):
+        """Refit near-floor voxels (``select``, default :meth:`rician_select`) with the Rician expectation.
+
+        ``max_iter`` and ``se_tol`` are those of :func:`~qmap.fitting.solver.levenberg_marquardt`.
+        """
         from ..noise import rician_mean_grad
 
         sig = np.broadcast_to(np.asarray(sigma, float), y.shape[:1])
@@ -186,7 +190,7 @@ class NoiseFloor:
             return e, j0 * de[:, None, :]
 
         p2, rss2, J2, conv2, nit2 = levenberg_marquardt(evaluate, y[sel], None if w is None else w[sel], p[sel], lo,
-                                                        hi, max_iter=max_iter)
+                                                        hi, max_iter=max_iter, se_tol=se_tol)
         p, rss, J, conv, nit = p.copy(), rss.copy(), J.copy(), conv.copy(), nit.copy()
         p[sel], rss[sel], J[sel], conv[sel] = p2, rss2, J2, conv2
         nit[sel] += nit2
