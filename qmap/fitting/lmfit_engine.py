@@ -65,11 +65,11 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
                 pars.add(nm, value=float(v), min=float(lo[k]), max=float(hi[k]))
             keep = w[i] > 0
 
-            def resid(pp, yc=yc, ci=ci, keep=keep, i=i):
+            def resid(pp, yc=yc, ci=ci, keep=keep, sig_i=None if sig is None else sig[i]):
                 vec = np.array([[pp[nm].value for nm in names]])
                 s = fit_model.predict(vec, ci)
                 if noise.mode == "rician":
-                    s = rician_mean(s, sig[i], coils=noise.coils)
+                    s = rician_mean(s, sig_i, coils=noise.coils)
                 return (yc[0] - s[0])[keep]
 
             res = lmfit.minimize(resid, pars, method="leastsq", max_nfev=200 * (P + 1))

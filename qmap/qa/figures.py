@@ -104,8 +104,9 @@ def voxel_outline(mask2d: np.ndarray) -> list:
     return segs
 
 
-def _by_param(rows):
-    out = {}
+def _by_param(rows) -> dict[str, list]:
+    """The ROI results (:class:`qmap.qa.stats.RoiResult`) grouped by ``key``, in first-seen order."""
+    out: dict[str, list] = {}
     for r in rows:
         out.setdefault(r.key, []).append(r)
     return out

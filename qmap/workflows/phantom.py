@@ -352,9 +352,9 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
                 f"{_fov(lab.shape, lab_aff)}); check that --labels and --map belong to the same scan"
             )
         se_map = _stderr_map(m)
-        status, _, why = status_beside(m.path, m.data.shape, m.affine)
-        if why:
-            notes.append(why)
+        status, _, status_note = status_beside(m.path, m.data.shape, m.affine)
+        if status_note:
+            notes.append(status_note)
         for k in wanted:
             e = entries[k]
             values, excluded = roi_values(m.data, rois[k], status)  # the same ROI values as `qmap roi`
