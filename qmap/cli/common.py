@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import TYPE_CHECKING
 
-from ..defaults import DEFAULT_CHUNK
+from ..defaults import B1_SCALES, DEFAULT_CHUNK
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..errors import UsageError, warn
@@ -13,7 +13,7 @@ from ..errors import UsageError, warn
 if TYPE_CHECKING:
     from ..pipeline import CommonOptions
 
-__all__ = ["add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
+__all__ = ["add_b1", "add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
 
 
 def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bool = True) -> None:
@@ -113,20 +113,40 @@ def add_noise(p: argparse.ArgumentParser) -> None:
                         "none: plain exponential (biased where the decay reaches the floor)")
     g.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|FILE", help=SIGMA_HELP)
     add_stderr(g)
-    g.add_argument("--coils", type=_positive_int, default=None, metavar="N",
+    g.add_argument("--coils", type=positive_int, default=None, metavar="N",
                    help="rician: the magnitude is a sum of squares over N coils (noncentral chi); default 1, or "
                         "what the background's moments show")
 
 
-def _positive_int(text: str) -> int:
-    """argparse type: a whole number >= 1 (a bad value is a one-line usage error, exit 2)."""
+def positive_int(text: str, what: str = "") -> int:
+    """argparse type: a whole number >= 1 (a bad value is a one-line usage error, exit 2).
+
+    ``what`` names the unit in the message (``positive_int(text, "excitations")``).
+    """
     try:
         value = int(text)
     except ValueError:
         value = 0
     if value < 1:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a positive whole number")
+        raise argparse.ArgumentTypeError(f"{text!r} is not a positive whole number{' of ' + what if what else ''}")
     return value
+
+
+def add_b1(p: argparse.ArgumentParser, *, into: str) -> None:
+    """The transmit-field (B1) correction options; ``into``: what the B1 map's standard error is propagated into."""
+    g = p.add_argument_group("transmit field (B1) correction")
+    g.add_argument("--b1", metavar="B1MAP", help="relative B1 map (actual / nominal angle) on any grid, e.g. the "
+                   "TB1map written by qmap b1, resampled through the affines; voxels outside its field of view get "
+                   "status 6")
+    g.add_argument("--b1-scale", choices=B1_SCALES, default=None,
+                   help="units of the B1 map: fraction (1.0 = nominal) or percent (100 = nominal); default: the "
+                        "map's sidecar Units, else fraction")
+    g.add_argument("--b1-smooth", type=float, default=None, metavar="FWHM_MM",
+                   help="Gaussian smoothing of the B1 map before resampling, FWHM in mm (default: none)")
+    g.add_argument("--b1-stderr", default="auto", metavar="auto|none|FILE",
+                   help=f"standard error of the B1 map, propagated into {into} (first order): auto (default) uses "
+                        f"the desc-stderr map that qmap b1 writes beside its TB1map when present; none switches the "
+                        f"propagation off; or a NIfTI map in the B1 map's units")
 
 
 def times(text, key, option):

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from ..defaults import B1_SCALES, T1_TYPICAL
+from ..defaults import T1_TYPICAL
 from ..defaults import VFA_METHODS as METHODS
-from .common import add_common, add_sigma, angles, common_from_args, finish
+from .common import add_b1, add_common, add_sigma, angles, common_from_args, finish
 
 
 def add_parser(sub) -> None:
@@ -25,18 +25,7 @@ def add_parser(sub) -> None:
     p.add_argument("--method", choices=METHODS, default="nonlinear",
                    help="nonlinear (default): least squares on the signals (M0 closed form, T1 iterative); "
                         "linear: the reweighted linearised regression (Deoni et al. 2003) S/sin a = E1 S/tan a + M0 (1-E1)")
-    g = p.add_argument_group("transmit field (B1) correction")
-    g.add_argument("--b1", metavar="B1MAP", help="relative B1 map (actual / nominal angle), e.g. the TB1map "
-                   "written by qmap b1; voxels outside its field of view get status 6")
-    g.add_argument("--b1-scale", choices=B1_SCALES, default=None,
-                   help="units of the B1 map: fraction (1.0 = nominal) or percent (100 = nominal); default: the "
-                        "map's sidecar Units, else fraction")
-    g.add_argument("--b1-smooth", type=float, default=None, metavar="FWHM_MM",
-                   help="Gaussian smoothing of the B1 map before resampling, FWHM in mm (default: none)")
-    g.add_argument("--b1-stderr", default="auto", metavar="auto|none|FILE",
-                   help="standard error of the B1 map, propagated into the T1 standard error (first order): auto "
-                        "(default) uses the desc-stderr map that qmap b1 writes beside its TB1map when present; none "
-                        "switches the propagation off; or a NIfTI map in the B1 map's units")
+    add_b1(p, into="the T1 standard error")
     p.add_argument("--t1-typical", metavar="T", default=None,
                    help=f"T1 assumed by the protocol note (Ernst angle and optimal angle pair), default "
                         f"{T1_TYPICAL:g}s")
