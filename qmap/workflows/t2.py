@@ -157,12 +157,8 @@ def run_t2(
 
     Parameters
     ----------
-    inputs : list of path-like
-        One 4D NIfTI or several 3D NIfTIs (one per echo).
-    common : CommonOptions
-        Output folder, prefix, mask, workers, ...
-    te : (m,) array_like, optional
-        Echo times in seconds; default from the BIDS sidecars (``EchoTime``).
+    inputs, common, te
+        The echo train, as in :func:`~qmap.workflows.decay.run_t2star`.
     epg, refocus_deg, t1, noise_floor, sigma, coils, drop_first
         As in :func:`fit_t2` (``sigma`` may also be ``"auto"`` or a noise-map path).
     """
