@@ -849,7 +849,7 @@ def _leverage(J: np.ndarray) -> np.ndarray:
     return np.einsum("npm,npq,nqm->nm", J, Ainv, J)
 
 
-def _pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
+def pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
     """Robust pooled sigma from per-voxel residual sums of squares.
 
     For voxels whose residuals are Gaussian with sd sigma, ``rss_i / sigma^2`` is chi-squared with
@@ -861,8 +861,8 @@ def _pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
     return math.sqrt(float(np.median(rss / _chi2_ppf(0.5, dof))))
 
 
-def _pooled_relative_se(dof: np.ndarray) -> float:
-    """Relative standard error of :func:`_pooled_sigma` (sample-median asymptotics, median dof)."""
+def pooled_relative_se(dof: np.ndarray) -> float:
+    """Relative standard error of :func:`pooled_sigma` (sample-median asymptotics, median dof)."""
     k = float(np.median(dof))
     q = float(_chi2_ppf(0.5, k))
     return 1.0 / (4.0 * _chi2_pdf(q, k) * q * math.sqrt(dof.size))
@@ -934,7 +934,7 @@ def residual_estimate(
     (linearised) fit. Only samples whose fitted value is at least :data:`FLOOR_MARGIN` sigma count,
     where the magnitude of a Rician sample has nearly Gaussian noise of sd sigma (Gudbjartsson & Patz
     1995); sigma and that selection are iterated to agreement. Voxels are pooled robustly
-    (:func:`_pooled_sigma`). A model that does not fit (e.g. a
+    (:func:`pooled_sigma`). A model that does not fit (e.g. a
     multi-exponential decay fitted as one exponential) inflates the estimate.
     """
     mask = np.asarray(mask, bool)
@@ -972,7 +972,7 @@ def residual_estimate(
     use = good & (dof0 > 0.5)
     if use.sum() < MIN_RESIDUAL_VOXELS:
         raise InputError("cannot estimate the noise from fit residuals: the first fit failed in most voxels")
-    sigma = _pooled_sigma(rss0[use], dof0[use])
+    sigma = pooled_sigma(rss0[use], dof0[use])
     rss = dof = np.zeros(0)
     for _ in range(20):
         rss, dof = _residuals_above(y, pred, h, good, sigma, n_params)
@@ -981,14 +981,14 @@ def residual_estimate(
             raise InputError(
                 f"cannot estimate the noise from fit residuals: only {int(use.sum())} of {y.shape[0]} voxels have "
                 f"enough samples well above the noise floor (fitted value >= {FLOOR_MARGIN:g} sigma)")
-        new = _pooled_sigma(rss[use], dof[use])
+        new = pooled_sigma(rss[use], dof[use])
         if abs(new - sigma) <= 1e-4 * sigma:
             sigma = new
             break
         sigma = new
     rss, dof = _residuals_above(y, pred, h, good, sigma, n_params)
     use = dof > 0
-    rel = _pooled_relative_se(dof[use])
+    rel = pooled_relative_se(dof[use])
     return NoiseEstimate(sigma=float(sigma), source="residuals", n_voxels=int(use.sum()), relative_precision=rel,
                          details={"residual_dof_median": float(np.median(dof[use]))})
 
@@ -1158,13 +1158,9 @@ def local_noise_map(
         ``sigma`` an (X, Y, Z) map, ``source="local"``, ``relative_precision`` the median over the
         mask of each voxel's.
     """
-    from scipy import ndimage
-
     from .engine import fit_voxels
 
-    shape = source.shape
     g = first.value
-    coils = first.coils or 1
     idx = np.flatnonzero(np.asarray(mask, bool).reshape(-1))
     y = _gather(source, idx, max_bytes)
     ok = np.all(np.isfinite(y), axis=1)
@@ -1188,6 +1184,55 @@ def local_noise_map(
 
     if idx.size:
         fit_voxels(model, y, ctx=ctx, n_jobs=n_jobs, on_chunk=on_chunk, label="noise map")
+    return smooth_noise_map(source, idx=idx, rss=rss, dof=dof, mask=mask, obj=obj, first=first, max_bytes=max_bytes)
+
+
+def smooth_noise_map(
+    source: VolumeSource,
+    *,
+    idx: np.ndarray,
+    rss: np.ndarray,
+    dof: np.ndarray,
+    mask: np.ndarray,
+    obj: np.ndarray,
+    first: NoiseEstimate,
+    max_bytes: float | None = None,
+) -> NoiseEstimate:
+    """The smooth noise map of :func:`local_noise_map` from per-voxel residuals the caller computed.
+
+    For a command whose fit already gives each voxel's residual sum of squares and its degrees of freedom
+    (e.g. the NNLS T2 spectrum), so that no second fit is needed.
+
+    Parameters
+    ----------
+    source : VolumeSource
+        The series (its background voxels join the map).
+    idx : (N,) int ndarray
+        Flat (C-order) indices of the fitted voxels.
+    rss, dof : (N,) ndarray
+        Their residual sums of squares (signal units squared) and degrees of freedom (0: not usable).
+    mask : (X, Y, Z) ndarray of bool
+        The fit mask (where the map's precision is assessed).
+    obj : (X, Y, Z) ndarray of bool
+        The object (voxels outside it are background).
+    first : NoiseEstimate
+        A first, global estimate (sets the misfit limit and the fallback of poorly supported voxels).
+    max_bytes : float, optional
+        Memory budget for reading the background.
+
+    Returns
+    -------
+    NoiseEstimate
+        As :func:`local_noise_map`.
+    """
+    from scipy import ndimage
+
+    shape = source.shape
+    g = first.value
+    coils = first.coils or 1
+    idx = np.asarray(idx, np.intp)
+    rss = np.asarray(rss, np.float64)
+    dof = np.asarray(dof, np.float64)
     use = dof > 0
     s2 = np.zeros(idx.size)
     s2[use] = rss[use] / dof[use]

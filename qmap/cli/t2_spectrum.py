@@ -55,9 +55,10 @@ def add_parser(sub) -> None:
     g.add_argument("--se-subsample", type=int, default=SE_SUBSAMPLE, metavar="N",
                    help=f"voxels of the bootstrap that calibrates the standard error of the fraction (default "
                         f"{SE_SUBSAMPLE})")
-    g.add_argument("--sigma", default="auto", metavar="auto|VALUE|NOISEMAP",
-                   help="noise sd: auto (default) from the image background, else from the fit residuals; a value "
-                        "in signal units; or a NIfTI noise map")
+    g.add_argument("--sigma", default="auto", metavar="auto|local|VALUE|NOISEMAP",
+                   help="noise sd: auto (default) from the image background, else from the fit residuals; local: a "
+                        "smooth map from the fit residuals and the background, for noise that varies over the image "
+                        "(written as _desc-noise_sigmamap); a value in signal units; or a NIfTI noise map")
     add_common(p)
     p.set_defaults(run=run)
 

@@ -220,6 +220,7 @@ class SpectrumFit:
     snr: NDArray[np.float64]
     sigma: NDArray[np.float64]
     status: NDArray[np.uint8]
+    dof: NDArray[np.float64]  # degrees of freedom of the unregularised residual: echoes - non-zero amplitudes
 
 
 def _rss(A: NDArray[np.float64], group: NDArray[np.intp], x, y) -> NDArray[np.float64]:
@@ -314,8 +315,8 @@ class SpectrumModel:
         rss0 = _rss(b.A_fine, fine, x0, yn)
         x, mu_rel, rss, ok1 = self._regularise(yn, d, fine, x0, rss0)
         # noise level: given, or from the unregularised residuals (degrees of freedom: echoes - peaks)
+        dof = np.maximum(m - np.count_nonzero(x0, axis=1), 1).astype(float)
         if sigma is None:
-            dof = np.maximum(m - np.count_nonzero(x0, axis=1), 1)
             sig_n = np.sqrt(rss0 / dof)
         else:
             sig_n = np.asarray(sigma, float) / scale
@@ -338,7 +339,7 @@ class SpectrumModel:
         return SpectrumFit(
             spectrum=x * scale[:, None], angle=angle, angle_se=angle_se, fraction=frac, t2_short=t_in, t2_long=t_up,
             chi2=chi2, chi2_min=chi2_min, mu=mu_rel, rmse=np.sqrt(rss / m) * scale, rsquared=r2, snr=snr,
-            sigma=sig_n * scale, status=status,
+            sigma=sig_n * scale, status=status, dof=dof,
         )
 
     def _regularise(self, y, d, group, x0, rss0):

@@ -32,6 +32,15 @@ from ..models.t2_spectrum import (
     fraction_se,
     spectrum_basis,
 )
+from ..noise_level import (
+    MIN_RESIDUAL_VOXELS,
+    NoiseEstimate,
+    estimate_noise,
+    object_mask,
+    pooled_relative_se,
+    pooled_sigma,
+    smooth_noise_map,
+)
 from ..pipeline import CommonOptions, RunReport, Slab, prepare_run
 from ..record import recorded
 from .decay import load_echoes
@@ -108,7 +117,7 @@ class _Collect:
     """Flat per-voxel result arrays filled chunk by chunk."""
 
     names = ("fraction", "angle", "angle_se", "t2_short", "t2_long", "chi2", "mu", "rmse", "rsquared", "snr",
-             "sigma")
+             "sigma", "dof")
 
     def __init__(self, nvox: int, n_t2: int):
         self.arr = {k: np.full(nvox, np.nan, np.float32) for k in self.names}
@@ -150,22 +159,62 @@ def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet,
     return idx.size
 
 
+def _set_sigma(out: _Collect, sigma: np.ndarray, min_snr: float) -> None:
+    """Replace the per-voxel residual sigmas by ``sigma`` (flat, one per voxel), rescaling SNR, chi2, angle SE."""
+    sigma = np.asarray(sigma, np.float32)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = out.arr["sigma"] / sigma  # old / new
+    out.arr["snr"] *= ratio
+    out.arr["chi2"] *= ratio * ratio
+    out.arr["angle_se"] /= ratio
+    out.arr["sigma"][:] = np.where(np.isfinite(out.arr["sigma"]), sigma, np.nan)
+    low = np.isin(out.status, (st.FITTED, st.LOW_SNR))
+    out.status[low] = np.where(out.arr["snr"][low] < min_snr, st.LOW_SNR, st.FITTED)
+
+
+def _fitted(out: _Collect) -> np.ndarray:
+    """Voxels with a fitted spectrum and a residual sigma."""
+    return np.isin(out.status, (st.FITTED, st.LOW_SNR, st.AT_BOUND)) & np.isfinite(out.arr["sigma"])
+
+
 def _pool_sigma(out: _Collect, min_snr: float) -> float | None:
     """Replace per-voxel residual sigmas by their median over the fitted voxels (rescaling SNR, chi2, angle SE)."""
-    fitted = np.isin(out.status, (st.FITTED, st.LOW_SNR, st.AT_BOUND)) & np.isfinite(out.arr["sigma"])
+    fitted = _fitted(out)
     if not fitted.any():
         return None
     pooled = float(np.median(out.arr["sigma"][fitted]))
     if not pooled > 0:
         return None
-    ratio = out.arr["sigma"] / np.float32(pooled)  # old / new
-    out.arr["snr"] *= ratio
-    out.arr["chi2"] *= ratio * ratio
-    out.arr["angle_se"] /= ratio
-    out.arr["sigma"][:] = np.where(np.isfinite(out.arr["sigma"]), pooled, np.nan)
-    low = np.isin(out.status, (st.FITTED, st.LOW_SNR))
-    out.status[low] = np.where(out.arr["snr"][low] < min_snr, st.LOW_SNR, st.FITTED)
+    _set_sigma(out, np.full(out.status.size, pooled), min_snr)
     return pooled
+
+
+def _local_sigma(out: _Collect, series, mask, budget, min_snr: float):
+    """``--sigma local``: a smooth noise map from the fitted voxels' unregularised residuals and the background.
+
+    The map is :func:`qmap.noise_level.smooth_noise_map`, the same as every command's ``--sigma local``
+    (there, from the residuals of a plain fit of the command's model; here the spectrum's own unregularised
+    NNLS residuals, ``RSS_min`` with ``echoes - non-zero amplitudes`` degrees of freedom, so no second fit is
+    needed). The first, global level is the background's, else the robust pool of the residuals. The map
+    replaces the per-voxel residual sigmas (SNR, chi2 and the angle's SE are rescaled).
+    """
+    fitted = _fitted(out)
+    idx = np.flatnonzero(fitted)
+    if idx.size < MIN_RESIDUAL_VOXELS:
+        raise InputError(f"--sigma local: only {idx.size} voxels have a fitted spectrum, too few for a noise map; "
+                         f"give --sigma VALUE, a noise map, or --sigma auto")
+    dof = out.arr["dof"][idx].astype(float)
+    rss = out.arr["sigma"][idx].astype(float) ** 2 * dof
+    try:
+        first = estimate_noise(series, mask=np.asarray(mask, bool), max_bytes=budget)  # the background
+    except InputError:
+        first = NoiseEstimate(sigma=pooled_sigma(rss, dof), source="residuals", n_voxels=int(idx.size),
+                              relative_precision=pooled_relative_se(dof), coils=1)
+    est = smooth_noise_map(series, idx=idx, rss=rss, dof=dof, mask=np.asarray(mask, bool),
+                           obj=object_mask(series, budget), first=first, max_bytes=budget)
+    sig_map = np.asarray(est.sigma, np.float32)
+    _set_sigma(out, sig_map.reshape(-1), min_snr)
+    return sig_map, est
 
 
 def _calibrate(model, out: _Collect, *, n_sub: int, replicates: int) -> dict:
@@ -333,9 +382,11 @@ def run_t2_spectrum(
         ``RefocusingFlipAngle`` when present, else 180.
     t1, window, chi2_factor, n_t2, t2_range, min_snr, se_subsample
         As in :func:`fit_t2_spectrum`.
-    sigma : "auto", float or path
+    sigma : "auto", "local", float or path
         Noise sd: from the image background (falling back to the pooled fit
-        residuals when there is no usable background), a value, or a noise map.
+        residuals when there is no usable background); ``"local"``: a smooth
+        noise map from the fit residuals and the background (written as
+        ``{prefix}_desc-noise_sigmamap``); a value; or a noise map.
     """
     t0 = time.perf_counter()
     series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
@@ -345,7 +396,8 @@ def run_t2_spectrum(
                    t2_range=t2_range, min_snr=min_snr)
     # the noise level is for the standard errors and the SNR only; without a usable background it comes from
     # the pooled fit residuals (below), quietly
-    run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=True, t0=t0, notes=notes,
+    local = str(sigma) == "local"  # the map comes from this fit's residuals (below): nothing to estimate first
+    run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=not local, t0=t0, notes=notes,
                       fallback=("", _NO_BACKGROUND),
                       warn_fallback=False)
     check_series_shape(series, model, run.mask, enabled=common.series_check, max_bytes=common.max_memory)
@@ -378,7 +430,19 @@ def run_t2_spectrum(
         return n
 
     n_fitted = sum(run.for_slabs(fit_slab))
-    if sig is None:
+    if local:
+        sig_map, est = _local_sigma(out, series, run.mask, common.max_memory, model.min_snr)
+        name = f"{run.prefix}_desc-noise_sigmamap.nii.gz"
+        noise_info.update(est.provenance("local"))
+        noise_info["sigma_source"] = (f"noise map {(common.out_dir / name).absolute()} (--sigma local: the "
+                                      f"unregularised NNLS residuals and the image background, smoothed)")
+        run.notes.append(f"noise sigma: local map, median {est.value:.4g} ({est.n_voxels} voxels)")
+        run.notes.extend(est.notes)
+        for w in est.warnings:
+            warn(w)
+        run.extra_outputs.append(OutputFile(name, sig_map, "sigma", "quality", "a.u.",
+                                            "local noise standard deviation per real channel (--sigma local)"))
+    elif sig is None:
         run.notes.remove(_NO_BACKGROUND)  # said below, with the value
         pooled = _pool_sigma(out, model.min_snr)
         if pooled is not None:

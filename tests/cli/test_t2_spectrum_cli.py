@@ -145,3 +145,42 @@ def test_results_do_not_depend_on_chunks_or_workers():
         np.testing.assert_array_equal(a[name], b[name])
         np.testing.assert_array_equal(a.stderr[name], b.stderr[name])
     np.testing.assert_array_equal(ea["spectrum"], eb["spectrum"])
+
+
+def test_sigma_local_follows_noise_that_varies_over_the_image(tmp_path):
+    """--sigma local: the noise sd is 3x higher on one half of the image (e.g. a coil's sensitivity); the map
+    written follows it (within 20 % away from the step), and the chi2 maps use it: with one noise level for the
+    whole image the noisy half's chi2 is about 9x the quiet half's, with the local map about the same."""
+    rng = np.random.default_rng(12)
+    shape = (22, 12, 3)
+    x, y, _ = np.indices(shape)
+    obj = (x >= 3) & (x < 19) & (y >= 2) & (y < 10)
+    noise = np.where(x < 11, 4.0, 12.0)
+    clean = 3000.0 * (0.15 * cpmg_reference(np.full(obj.sum(), 0.02), np.full(obj.sum(), 170.0), esp=ESP,
+                                            n_echoes=N_ECHOES)
+                      + 0.85 * cpmg_reference(np.full(obj.sum(), 0.08), np.full(obj.sum(), 170.0), esp=ESP,
+                                              n_echoes=N_ECHOES))
+    signal = np.zeros((*shape, N_ECHOES))
+    signal[obj] = clean
+    data = rician(signal, noise[..., None], rng)  # noise everywhere, background included (real exports)
+    path = write_nifti(tmp_path / "sub-01_MESE.nii.gz", data.astype(np.float32), sidecar={"EchoTime": TE.tolist()})
+    pre = "sub-01_acq-mese"
+    chi2 = {}
+    for mode in ("auto", "local"):
+        out = tmp_path / mode
+        assert main(["t2-spectrum", str(path), "-o", str(out), "--sigma", mode, "-q", "--se-subsample", "20"]) == 0
+        status = nib.load(out / f"{pre}_desc-status_fitmap.nii.gz").get_fdata()
+        c = nib.load(out / f"{pre}_desc-chi2_fitmap.nii.gz").get_fdata()
+        inner = obj & (status == 0)
+        quiet, noisy = inner & (x < 8), inner & (x >= 14)
+        assert quiet.sum() > 50 and noisy.sum() > 50
+        chi2[mode] = np.median(c[noisy]) / np.median(c[quiet])
+    assert chi2["auto"] == pytest.approx(9.0, rel=0.3)
+    assert chi2["local"] == pytest.approx(1.0, abs=0.3)
+    sig = nib.load(tmp_path / "local" / f"{pre}_desc-noise_sigmamap.nii.gz").get_fdata()
+    assert np.median(sig[quiet]) == pytest.approx(4.0, rel=0.2)
+    assert np.median(sig[noisy]) == pytest.approx(12.0, rel=0.2)
+    prov = json.loads((tmp_path / "local" / f"{pre}_provenance.json").read_text())
+    assert prov["noise"]["sigma_mode"] == "local" and "noise map" in prov["noise"]["sigma_source"]
+    assert prov["outputs"][f"{pre}_desc-noise_sigmamap.nii.gz"]["kind"] == "quality"
+    assert 4.0 < prov["noise"]["sigma"] < 12.0  # the median of the map
