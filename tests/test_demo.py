@@ -92,6 +92,32 @@ def test_demo_commands_are_copyable_and_inputs_lie_beside_the_outputs(demo, tmp_
     np.testing.assert_array_equal(a, b)
 
 
+def test_layout_places_every_vial_of_the_bundled_phantom(demo, tmp_path, capsys):
+    # the shipped layout file, matched on the spin-echo M0 map (vials bright over the half-PD fill), puts each
+    # vial's ROI inside that vial: every drawn voxel lies entirely inside the vial of its own label in the
+    # simulation's label image (voxels wholly inside a vial), which the layout matching never sees
+    out = demo[0]
+    data = out / "data"
+    capsys.readouterr()
+    code = main(["phantom", "--layout", str(data / "phantom_layout.csv"), "--layout-image",
+                 str(out / "maps" / "mese_M0map.nii.gz"), "--map", str(out / "maps" / "ir_T1map.nii.gz"),
+                 "--map", str(out / "maps" / "mese_T2map.nii.gz"), "--reference", str(data / "phantom_reference.csv"),
+                 "--temperature", "21.5", "-o", str(tmp_path / "qa")])
+    printed = capsys.readouterr()
+    assert code == 0, printed
+    assert "warning" not in printed.err  # neither mirror-symmetric nor a vial missed
+    truth = np.asarray(nib.load(str(data / MANIFEST["labels"])).dataobj)
+    drawn = np.asarray(nib.load(str(tmp_path / "qa" / "phantom_labels.nii.gz")).dataobj)
+    assert set(np.unique(drawn).tolist()) == set(range(10))
+    for k in range(1, 10):
+        inside = drawn == k
+        # a 5 mm disc on 2 mm voxels holds about pi 2.5^2 = 19.6 voxels per slice, 4 slices
+        assert 60 <= inside.sum() <= 100, (k, inside.sum())
+        assert np.all(truth[inside] == k), (k, np.unique(truth[inside]))
+    reg = json.loads((tmp_path / "qa" / "phantom_results.json").read_text())["registration"]
+    assert reg["matched_vials"] == 9 and not reg["mirrored"] and reg["rms_residual_mm"] < 1.0
+
+
 @pytest.mark.parametrize("prefix,param", [("ir", "T1"), ("vfa", "T1"), ("mese", "T2")])
 def test_fitted_medians_match_the_ground_truth(demo, prefix, param):
     # the requirement of the sample data: median per vial within 2 % of the simulation's truth (T1 and T2)

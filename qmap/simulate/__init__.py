@@ -28,7 +28,17 @@ import numpy as np
 from .. import __version__
 from ..errors import UsageError
 from .output import StagedFolder, save_json, save_nifti, volume_names
-from .phantoms import FILL, PHANTOMS, REFERENCE_TEMPERATURE_C, VIALS, Phantom, b1_field, make_phantom, vial_properties
+from .phantoms import (
+    FILL,
+    PHANTOMS,
+    REFERENCE_TEMPERATURE_C,
+    VIALS,
+    Phantom,
+    b1_field,
+    make_phantom,
+    vial_layout_rows,
+    vial_properties,
+)
 from .protocols import PROTOCOLS, Protocols, Series, synthesise
 from .signals import magnitude_noise
 
@@ -166,6 +176,7 @@ def simulate(
         "shape": list(shape), "voxel_size_mm": [float(v) for v in voxel_size], "b1_range": list(map(float, b1_range)),
         "temperature_C": float(temperature_c) if phantom == "vials" else None, "signal_scale": SIGNAL_SCALE,
         "protocol_settings": asdict(settings), "series": {}, "truth": {}, "labels": None, "reference": None,
+        "layout": None,
     }
     obj = ph.labels > 0
     with StagedFolder(out_dir, overwrite=overwrite) as stage:
@@ -259,5 +270,14 @@ def _write_truth(stage, manifest, ph: Phantom, b1, affine, sub):
             w.writeheader()
             w.writerows(rows)
         manifest["reference"] = "phantom_reference.csv"
+        p = stage.path("phantom_layout.csv")
+        rows = vial_layout_rows(ph.labels.shape, np.sqrt((np.asarray(affine)[:3, :3] ** 2).sum(axis=0)))
+        with open(p, "w", newline="", encoding="utf-8") as fh:
+            fh.write("# vial centres of the simulated phantom (mm, x along the first voxel axis, y along the second,\n"
+                     "# origin at the container's centre) and the ROI radius to draw: qmap phantom --layout\n")
+            w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+            w.writeheader()
+            w.writerows(rows)
+        manifest["layout"] = "phantom_layout.csv"
     manifest["truth_values"] = {str(lab): {"name": t.name, "T1_s": t.t1, "T2_s": t.t2, "T2star_s": t.t2star,
                                            "PD": t.pd} for lab, t in sorted(ph.tissues.items()) if np.any(ph.roi == lab)}

@@ -5,6 +5,7 @@ Layout under the output folder (``S`` = subject label, default the phantom name)
     dataset_description.json
     simulation.json                       what was simulated (the manifest)
     phantom_reference.csv                 vials only: truth at two temperatures
+    phantom_layout.csv                    vials only: vial positions for qmap phantom --layout
     sub-S/anat/sub-S_inv-<i>_IRT1.nii.gz  one 3D file + sidecar per volume
     sub-S/anat/sub-S_flip-<i>_VFA.nii.gz
     sub-S/anat/sub-S_echo-<i>_MESE.nii.gz

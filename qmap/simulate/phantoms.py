@@ -4,10 +4,15 @@ Three built-in phantoms, all invented for qmap:
 
 ``vials``
     A round container of fill liquid holding nine vials (eight on a ring,
-    one in the centre) whose relaxation times span T1 0.1-2 s and T2
+    one near the centre) whose relaxation times span T1 0.1-2 s and T2
     0.02-0.5 s, with a linear temperature dependence. Values and
     temperature coefficients are invented (no real phantom is described);
-    they are plausible for doped water.
+    they are plausible for doped water. The arrangement is deliberately
+    asymmetric (vial B sits further out than the rest of the ring, vial A
+    off the centre towards vial D), so that a vial layout can be matched to
+    an image without ambiguity; the fill has half the vials' proton density
+    (a water / heavy-water mix), so the vials stand out on proton-density
+    (M0) images. See :data:`VIAL_CENTRES`.
 ``pools``
     A disc of multi-pool voxels (two pools in one half, three in the other)
     for multi-component T2; see :func:`pools_phantom`.
@@ -39,12 +44,14 @@ __all__ = [
     "TEMP_COEFF",
     "TISSUES",
     "VIALS",
+    "VIAL_CENTRES",
     "Phantom",
     "Tissue",
     "b1_field",
     "head_phantom",
     "make_phantom",
     "pools_phantom",
+    "vial_layout_rows",
     "vial_phantom",
     "vial_properties",
 ]
@@ -123,8 +130,19 @@ _VIAL_TABLE = [
     (9, "vial-I", 2.000, 0.500, 1.00),
 ]
 VIALS = [Tissue(lab, name, t1, t2, 1.0 / (1.0 / t2 + R2PRIME), pd) for lab, name, t1, t2, pd in _VIAL_TABLE]
-#: The fill liquid around the vials (invented; label 10, not part of the reference table).
-FILL = Tissue(10, "fill", 1.400, 0.300, 1.0 / (1.0 / 0.300 + R2PRIME), 1.00)
+#: The fill liquid around the vials (invented; label 10, not part of the reference table). Its proton
+#: density is half the vials' (a water / heavy-water mix), so the vials are bright on M0 images.
+FILL = Tissue(10, "fill", 1.400, 0.300, 1.0 / (1.0 / 0.300 + R2PRIME), 0.50)
+#: Radius of the round container, of the vials, normalised (1 = half the field of view).
+CONTAINER_RADIUS = 0.75
+VIAL_RADIUS = 0.15
+#: Vial centres (u, v), normalised like :data:`CONTAINER_RADIUS`, in the order of :data:`VIALS`: vial A
+#: 0.07 off the centre towards vial D; B-I clockwise from 12 o'clock on a ring of radius 0.46, vial B
+#: further out (0.56). No rotation or reflection maps this arrangement onto itself: B is the only vial
+#: off the ring, and A's offset is off the B axis. (Invented.)
+VIAL_CENTRES = tuple([(0.07, 0.0)] + [((0.56 if k == 0 else 0.46) * float(np.cos(a)),
+                                       (0.56 if k == 0 else 0.46) * float(np.sin(a)))
+                                      for k, a in enumerate(np.pi / 2 - np.arange(8) * np.pi / 4)])
 
 
 def vial_properties(tissue: Tissue, temperature_c: float) -> Tissue:
@@ -148,17 +166,36 @@ def _grid(shape, sub: int = 1):
     return np.meshgrid(u, v, w, indexing="ij")
 
 
-def _vial_centres():
-    # vial A (shortest T1) in the centre, B-I clockwise from 12 o'clock
-    return [(0.0, 0.0)] + [(0.46 * np.cos(a), 0.46 * np.sin(a)) for a in np.pi / 2 - np.arange(8) * np.pi / 4]
-
-
 def _vial_labels(u, v, w):
     labels = np.zeros(u.shape, np.int16)
-    labels[u**2 + v**2 <= 0.75**2] = FILL.label
-    for t, (cu, cv) in zip(VIALS, _vial_centres()):
-        labels[(u - cu) ** 2 + (v - cv) ** 2 <= 0.15**2] = t.label
+    labels[u**2 + v**2 <= CONTAINER_RADIUS**2] = FILL.label
+    for t, (cu, cv) in zip(VIALS, VIAL_CENTRES):
+        labels[(u - cu) ** 2 + (v - cv) ** 2 <= VIAL_RADIUS**2] = t.label
     return labels
+
+
+def vial_layout_rows(shape, voxel_size, *, roi_radius_fraction: float = 0.7) -> list[dict]:
+    """The vial layout of :func:`vial_phantom` on a grid, as rows of a ``qmap phantom --layout`` file.
+
+    Parameters
+    ----------
+    shape : (3,) tuple of int
+        Matrix size the phantom is drawn on (the normalised coordinates span its field of view).
+    voxel_size : (3,) array_like
+        Voxel size, mm.
+    roi_radius_fraction : float
+        ROI radius as a fraction of the vial radius (stays clear of the vial wall).
+
+    Returns
+    -------
+    list of dict
+        ``label, name, x_mm, y_mm, radius_mm`` per vial; x along the first voxel axis, y along the
+        second, origin at the container's centre, mm (rounded to 0.01 mm; the radius to 0.1 mm).
+    """
+    half = np.asarray(shape[:2], float) * np.asarray(voxel_size[:2], float) / 2.0
+    radius = roi_radius_fraction * VIAL_RADIUS * float(min(half))
+    return [{"label": t.label, "name": t.name, "x_mm": round(cu * half[0], 2) + 0.0,
+             "y_mm": round(cv * half[1], 2) + 0.0, "radius_mm": round(radius, 1)} for t, (cu, cv) in zip(VIALS, VIAL_CENTRES)]
 
 
 def _head_labels(u, v, w):
