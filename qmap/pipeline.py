@@ -147,7 +147,7 @@ def _bids_parts(stem: str) -> tuple[list[tuple[str, str]], str] | None:
     return parsed
 
 
-def default_prefix(path: str | Path, method: str | None = None) -> str:
+def default_prefix(path: str | Path, method: str | None = None, *, variant: str = "") -> str:
     """Output stem from the first input of a series.
 
     - A BIDS name (``sub-01[_ses-1]..._<suffix>``) gets the batch naming:
@@ -160,6 +160,11 @@ def default_prefix(path: str | Path, method: str | None = None) -> str:
       converter tokens of one volume (``_TI100``, ``_TE12``, ``_e2``, ``_ph``)
       together with a trailing series number after them:
       ``T1_IR_TI100_5.nii.gz`` -> ``T1_IR``.
+    - ``variant`` tells apart two commands fitting the same series (``t2``
+      and ``t2-spectrum`` on one spin-echo train): it is appended to the
+      method label of a BIDS name (``acq-mesespectrum``, as ``batch
+      --t2-spectrum`` names it) and as ``_<variant>`` to any other stem
+      (``T2_MESE_spectrum``).
 
     Parameters
     ----------
@@ -167,6 +172,8 @@ def default_prefix(path: str | Path, method: str | None = None) -> str:
         First input file.
     method : str, optional
         The command's method label (``irt1``, ``vfa``, ``mese``, ``megre``, ``tb1dam``, ...).
+    variant : str, optional
+        Lowercase letters and digits appended as described above (default: none).
     """
     name = Path(path).name
     for ext in (".nii.gz", ".nii"):
@@ -180,12 +187,13 @@ def default_prefix(path: str | Path, method: str | None = None) -> str:
             d.pop("acq")  # BIDS numbers the two AFI images by acq-tr1, acq-tr2
         head = [f"sub-{d['sub']}"] + ([f"ses-{d['ses']}"] if "ses" in d else [])
         rest = [f"{k}-{v}" for k, v in ents if k not in ("sub", "ses", "acq", *_VOLUME_ENTITIES)]
-        return "_".join(head + [f"acq-{d.get('acq', '')}{label}"] + rest)
+        return "_".join(head + [f"acq-{d.get('acq', '')}{label}{variant}"] + rest)
     stem = _SERIES_ENTITY.sub("", name)
     cut = _CONVERTER_TOKEN.sub("", stem)
     if cut != stem:
         cut = re.sub(r"_[0-9]+[a-z]?$", "", cut)  # the series number a converter appends after such tokens
-    return cut or stem or "qmap"
+    out = cut or stem or "qmap"
+    return f"{out}_{variant}" if variant else out
 
 
 def resolve_mask(spec, series: Series, max_bytes: float | None = None) -> tuple[np.ndarray, str]:
@@ -560,6 +568,7 @@ def prepare_run(
     magnitude: bool = True,
     t0: float | None = None,
     method: str | None = None,
+    variant: str = "",
     model=None,
     ctx_maps: dict | None = None,
     coils_auto: bool = False,
@@ -595,6 +604,9 @@ def prepare_run(
         Start time (default: now).
     method : str, optional
         The command's label for the default output prefix (see :func:`default_prefix`).
+    variant : str, optional
+        Tells the default prefix apart from another command's on the same series (see
+        :func:`default_prefix`; ``t2-spectrum``: ``"spectrum"``).
     model : SeparableModel, optional
         The command's model: the residual source of the noise level and ``--sigma local`` fit it.
     ctx_maps : dict, optional
@@ -612,7 +624,7 @@ def prepare_run(
     PreparedRun
     """
     t0 = time.perf_counter() if t0 is None else t0
-    prefix = common.prefix or default_prefix(series.paths[0], method)
+    prefix = common.prefix or default_prefix(series.paths[0], method, variant=variant)
     check_outputs_free(common, prefix)
     budget = common.max_memory
     check_signal(series, magnitude=magnitude, max_bytes=budget)

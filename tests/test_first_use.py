@@ -30,6 +30,17 @@ def test_default_prefix(name, method, prefix):
     assert default_prefix(name, method) == prefix
 
 
+@pytest.mark.parametrize(("name", "prefix"), [
+    # t2-spectrum's variant: the batch --t2-spectrum naming for BIDS inputs, "_spectrum" for any other stem
+    ("sub-01_echo-1_MESE.nii.gz", "sub-01_acq-mesespectrum"),
+    ("sub-01_ses-2_acq-fast_echo-1_MESE.nii.gz", "sub-01_ses-2_acq-fastmesespectrum"),
+    ("T2_MESE_TE10_7.nii.gz", "T2_MESE_spectrum"),
+])
+def test_default_prefix_variant(name, prefix):
+    assert default_prefix(name, variant="spectrum") == prefix
+    assert default_prefix(name, "mese") != prefix  # what t2 uses for the same series
+
+
 def test_last_line_names_the_main_map(megre, tmp_path, capsys):
     path, *_ = megre
     assert main(["t2star", str(path), "-o", str(tmp_path / "o"), "--sigma", "5"]) == 0

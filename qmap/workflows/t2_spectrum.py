@@ -397,9 +397,10 @@ def run_t2_spectrum(
     # the noise level is for the standard errors and the SNR only; without a usable background it comes from
     # the pooled fit residuals (below), quietly
     local = str(sigma) == "local"  # the map comes from this fit's residuals (below): nothing to estimate first
+    # variant "spectrum": not the prefix of a plain t2 fit of the same series (batch --t2-spectrum names it alike)
     run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=not local, t0=t0, notes=notes,
                       fallback=("", _NO_BACKGROUND),
-                      warn_fallback=False)
+                      warn_fallback=False, variant="spectrum")
     check_series_shape(series, model, run.mask, enabled=common.series_check, max_bytes=common.max_memory)
     sig = run.sigma
     info = run.noise_info or {}

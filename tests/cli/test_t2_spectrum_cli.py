@@ -55,7 +55,7 @@ def test_outputs_values_and_provenance(series, tmp_path):
     code = main(["t2-spectrum", str(path), "-o", str(out), "--mask", "none", "--sigma", str(SIGMA), "-q",
                  "--units", "ms", "--se-subsample", "24", "-j", "2", "--chunk-size", "20"])
     assert code == 0
-    pre = "sub-01_acq-mese"
+    pre = "sub-01_acq-mesespectrum"
     mwf = nib.load(out / f"{pre}_MWFmap.nii.gz").get_fdata()
     status = nib.load(out / f"{pre}_desc-status_fitmap.nii.gz").get_fdata()
     fitted = obj & (status == 0)
@@ -104,6 +104,24 @@ def _series_files(tmp_path, te, shape=(4, 4, 1)):
     clean = 1000 * np.exp(-np.asarray(te) / 0.08)
     data = rician(np.broadcast_to(clean, (*shape, len(te))), 3.0, rng)
     return write_nifti(tmp_path / "bad_MESE.nii.gz", data, sidecar={"EchoTime": list(map(float, te))})
+
+
+def test_t2_and_t2_spectrum_of_one_series_do_not_share_a_default_prefix(series, tmp_path):
+    # regression: both used sub-01_acq-mese, so the second run into the same folder was refused (or, with
+    # --overwrite, replaced the first one's T2map); the spectrum fit is named as batch --t2-spectrum names it
+    from qmap.batch.plan import SPECTRUM_KIND, _prefix
+
+    path = series[0]
+    out = tmp_path / "out"
+    assert main(["t2", str(path), "-o", str(out), "--mask", "none", "--sigma", str(SIGMA), "-q"]) == 0
+    t2_before = (out / "sub-01_acq-mese_T2map.nii.gz").read_bytes()
+    assert main(["t2-spectrum", str(path), "-o", str(out), "--mask", "none", "--sigma", str(SIGMA), "-q",
+                 "--se-subsample", "8"]) == 0
+    spectrum = _prefix("01", None, None, SPECTRUM_KIND.method, [])
+    assert spectrum == "sub-01_acq-mesespectrum"
+    assert (out / f"{spectrum}_MWFmap.nii.gz").is_file() and (out / f"{spectrum}_provenance.json").is_file()
+    assert (out / "sub-01_acq-mese_T2map.nii.gz").read_bytes() == t2_before  # the t2 fit is untouched
+    assert json.loads((out / "sub-01_acq-mese_provenance.json").read_text())["command_line"][1] == "t2"
 
 
 @pytest.mark.parametrize("te, extra, message", [
