@@ -121,3 +121,17 @@ def test_provenance_records_date_versions_and_warnings(megre, tmp_path, capsys):
     assert main(["t2star", str(path), "-o", str(tmp_path / "p"), "--sigma", "5", "-q"]) == 0
     assert json.loads((tmp_path / "p" / "sub-01_acq-megre_provenance.json").read_text())["options"]["run"][
         "warnings"] == []
+
+
+@pytest.mark.parametrize(("argv", "says"), [
+    (["b1", "a.nii", "--method", "dam", "--units", "ms"], "--units does not apply to b1: it writes no time map"),
+    (["b1", "a.nii", "--method", "dam", "--engine=lmfit"], "--engine does not apply to b1"),
+    (["t2", "a.nii", "--te", "10ms", "--frobnicate"], "unrecognized arguments: --frobnicate"),
+])
+def test_an_option_the_command_does_not_take_is_named_with_the_command_help(argv, says, tmp_path, capsys):
+    # the error names the command's own help (not the top-level 'qmap --help'), and why b1 has no --units
+    assert main([*argv, "-o", str(tmp_path / "out")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and says in err
+    assert err.rstrip().endswith(f"(see qmap {argv[0]} --help)")
+    assert not (tmp_path / "out").exists()

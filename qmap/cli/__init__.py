@@ -149,6 +149,19 @@ def get_parser(only: str | None = None) -> argparse.ArgumentParser:
     return parser
 
 
+def _unrecognized(parser: argparse.ArgumentParser, args, extra: list[str]) -> None:
+    """Refuse arguments the command does not take, in the command's own words (exit 2 via its ``error``)."""
+    cmd = getattr(args, "command", None)
+    sub = next((a for a in parser._actions if isinstance(a, argparse._SubParsersAction)), None)
+    target = sub.choices[cmd] if cmd and sub is not None else parser
+    refused = getattr(args, "_refused_options", None) or {}
+    for tok in extra:
+        reason = refused.get(tok.split("=", 1)[0])
+        if reason:
+            target.error(reason)
+    target.error(f"unrecognized arguments: {' '.join(extra)}")
+
+
 def _commits() -> int:
     """Output sets committed so far in this process (without importing the writer for ``--version``)."""
     writer = sys.modules.get("qmap.io.writer")
@@ -173,7 +186,9 @@ def _main(argv: list[str]) -> int:
             return 0
         # only the named command's module is imported (the others pull in matplotlib, scipy.stats, ...)
         parser = get_parser(argv[0] if argv and argv[0] in COMMANDS else None)
-        args = parser.parse_args(argv)
+        args, extra = parser.parse_known_args(argv)
+        if extra:
+            _unrecognized(parser, args, extra)
         if not getattr(args, "command", None):
             parser.print_help(sys.stderr)
             return 2

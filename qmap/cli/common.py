@@ -47,6 +47,16 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
     g.add_argument("--max-memory", metavar="SIZE",
                    help="memory budget for the input series, e.g. 500MB or 2GB: a larger series is read from disk in "
                         "slabs (fastest from uncompressed .nii); results are identical")
+    refused = {}  # options of the other fitting commands that this one leaves out, and why (cli.main says so)
+    name = p.prog.split()[-1]
+    if not time_maps:
+        refused["--units"] = (f"--units does not apply to {name}: it writes no time map (its map is a fraction, "
+                              f"not a time); leave --units out")
+    if not engine:
+        refused["--engine"] = (f"--engine does not apply to {name}: it computes its map in closed form, with no "
+                               f"iterative fit; leave --engine out")
+    if refused:
+        p.set_defaults(_refused_options=refused)
 
 
 SIGMA_HELP = ("noise sd in signal units: auto (default) estimates it from the data (the image background, else the "
