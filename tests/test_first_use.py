@@ -126,6 +126,8 @@ def test_provenance_records_date_versions_and_warnings(megre, tmp_path, capsys):
 @pytest.mark.parametrize(("argv", "says"), [
     (["b1", "a.nii", "--method", "dam", "--units", "ms"], "--units does not apply to b1: it writes no time map"),
     (["b1", "a.nii", "--method", "dam", "--engine=lmfit"], "--engine does not apply to b1"),
+    (["t2-spectrum", "a.nii", "--engine", "lmfit"], "--engine does not apply to t2-spectrum"),
+    (["t1-mp2rage", "a.nii", "--engine", "fast"], "--engine does not apply to t1-mp2rage"),
     (["t2", "a.nii", "--te", "10ms", "--frobnicate"], "unrecognized arguments: --frobnicate"),
 ])
 def test_an_option_the_command_does_not_take_is_named_with_the_command_help(argv, says, tmp_path, capsys):

@@ -18,7 +18,8 @@ __all__ = ["add_b1", "add_common", "add_noise", "add_sigma", "add_stderr", "angl
 
 def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bool = True) -> None:
     """The options of every fitting command; ``time_maps=False`` leaves out ``--units`` and ``engine=False``
-    ``--engine`` (``b1``: a fraction computed in closed form)."""
+    ``--engine`` (``b1``: a fraction computed in closed form; ``t1-mp2rage``: a table lookup; ``t2-spectrum``:
+    its own NNLS solver). The command line then refuses them saying why."""
     g = p.add_argument_group("output and execution (every fitting command)")
     g.add_argument("-o", "--out-dir", required=True, metavar="DIR", help="where outputs go (created if missing)")
     g.add_argument("--prefix", metavar="NAME", help="output name stem (default: from the first input's file name)")
@@ -53,8 +54,8 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
         refused["--units"] = (f"--units does not apply to {name}: it writes no time map (its map is a fraction, "
                               f"not a time); leave --units out")
     if not engine:
-        refused["--engine"] = (f"--engine does not apply to {name}: it computes its map in closed form, with no "
-                               f"iterative fit; leave --engine out")
+        refused["--engine"] = (f"--engine does not apply to {name}: it has one way of computing its maps (closed "
+                               f"form, table lookup or its own solver), nothing to choose; leave --engine out")
     if refused:
         p.set_defaults(_refused_options=refused)
 

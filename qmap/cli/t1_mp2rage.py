@@ -60,7 +60,7 @@ def add_parser(sub) -> None:
                    help="standard error of the B1 map, propagated into the standard errors (with --inv1/--inv2): "
                         "auto (default) uses the desc-stderr map that qmap b1 writes beside its TB1map when present; "
                         "none switches it off; or a NIfTI map in the B1 map's units")
-    add_common(p)
+    add_common(p, engine=False)  # a table lookup, nothing to fit: no --engine choice
     p.set_defaults(run=run)
 
 

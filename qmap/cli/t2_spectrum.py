@@ -59,7 +59,7 @@ def add_parser(sub) -> None:
                    help="noise sd: auto (default) from the image background, else from the fit residuals; local: a "
                         "smooth map from the fit residuals and the background, for noise that varies over the image "
                         "(written as _desc-noise_sigmamap); a value in signal units; or a NIfTI noise map")
-    add_common(p)
+    add_common(p, engine=False)  # one solver (batched NNLS): no --engine choice
     p.set_defaults(run=run)
 
 
@@ -74,8 +74,6 @@ def _pair(text, option, default):
 
 
 def run(args) -> int:
-    if args.engine != "fast":
-        raise UsageError("t2-spectrum has one solver (batched NNLS); leave out --engine")
     if args.se_subsample < 0:
         raise UsageError("--se-subsample must be >= 0")
     common = common_from_args(args)
