@@ -19,6 +19,7 @@ output layout (S = --subject, default the phantom name):
   DIR/sub-S/anat/sub-S_inv-<i>_MP2RAGE.nii.gz, sub-S_UNIT1.nii.gz
                                           MP2RAGE inversion magnitudes and UNI (12-bit integer export)
   DIR/phantom_reference.csv               vials: truth at 20 and 24 C (for qmap phantom --reference)
+  DIR/phantom_layout.csv                  vials: vial positions in mm (for qmap phantom --layout)
 
 noise: complex Gaussian noise, magnitude taken (Rician; noncentral chi with --coils N); sigma = the series'
 reference signal (95th percentile over the object of each voxel's largest noise-free sample) / --snr.

@@ -209,7 +209,8 @@ def place_rois(image: np.ndarray, affine: np.ndarray, layout: Layout, *, source:
     if not found:
         raise InputError(f"--layout {layout.path}: the vials on {source} cannot be matched to the layout: "
                          f"{errors[False]} ({len(blobs)} vial-like components found by {thr}); check the layout, "
-                         f"give a --layout-image where the vials are bright and separate, or pass --labels")
+                         f"give a --layout-image where the vials are bright and separate (e.g. an M0 map when the "
+                         f"vials sit in a darker fill), or pass --labels")
     mirrored = min(found, key=lambda k: (-len(found[k].pairs), found[k].rms_mm))
     match, other = found[mirrored], found.get(not mirrored)
     if other is not None and len(other.pairs) == len(match.pairs) and \
