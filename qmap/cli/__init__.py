@@ -25,21 +25,21 @@ from ..errors import QmapError, QmapWarning
 __all__ = ["get_parser", "main"]
 
 #: subcommand -> module in qmap.cli defining ``add_parser(subparsers)`` and ``run(args) -> int``
-COMMANDS = {
+COMMANDS = {  # in the order `qmap --help` lists them: fits, then checks and tools
     "t1-ir": "t1_ir",
     "t1-vfa": "t1_vfa",
+    "t1-mp2rage": "t1_mp2rage",
     "t2": "t2",
     "t2star": "t2star",
     "t2-spectrum": "t2_spectrum",
     "b1": "b1",
-    "phantom": "phantom",
-    "simulate": "simulate",
     "batch": "batch",
-    "demo": "demo",
-    "inspect": "inspect_voxel",
-    "t1-mp2rage": "t1_mp2rage",
-    "plan": "plan",
+    "phantom": "phantom",
     "roi": "roi",
+    "inspect": "inspect_voxel",
+    "plan": "plan",
+    "simulate": "simulate",
+    "demo": "demo",
 }
 
 
