@@ -138,9 +138,3 @@ def test_an_option_the_command_does_not_take_is_named_with_the_command_help(argv
     assert err.rstrip().endswith(f"(see qmap {argv[0]} --help)")
     assert not (tmp_path / "out").exists()
 
-
-def test_t2_spectrum_says_why_it_has_no_local_noise_map(tmp_path, capsys):
-    assert main(["t2-spectrum", "a.nii", "--sigma", "local", "-o", str(tmp_path / "out")]) == 2
-    err = capsys.readouterr().err
-    assert err.count("\n") == 1 and "--sigma local does not apply to t2-spectrum" in err and "noise map" in err
-    assert not (tmp_path / "out").exists()

@@ -74,10 +74,6 @@ def _pair(text, option, default):
 
 
 def run(args) -> int:
-    if str(args.sigma).strip().lower() == "local":
-        raise UsageError("--sigma local does not apply to t2-spectrum (a local noise map is built from one signal "
-                         "model's residuals; the spectrum has none): give auto, a value, or a NIfTI noise map -- e.g. "
-                         "the desc-noise_sigmamap a 'qmap t2 --sigma local' run of the same series writes")
     if args.se_subsample < 0:
         raise UsageError("--se-subsample must be >= 0")
     common = common_from_args(args)

@@ -182,7 +182,7 @@ def test_sigma_local_follows_noise_that_varies_over_the_image(tmp_path):
     signal[obj] = clean
     data = rician(signal, noise[..., None], rng)  # noise everywhere, background included (real exports)
     path = write_nifti(tmp_path / "sub-01_MESE.nii.gz", data.astype(np.float32), sidecar={"EchoTime": TE.tolist()})
-    pre = "sub-01_acq-mese"
+    pre = "sub-01_acq-mesespectrum"
     chi2 = {}
     for mode in ("auto", "local"):
         out = tmp_path / mode
