@@ -27,8 +27,8 @@ then run on the stand-in and every fit is finished by Levenberg-Marquardt on the
 exact model from there, so the minimum, RSS, Jacobian and covariance are the
 exact model's (the stand-in only saves exact evaluations). When the Rician
 objective follows, the stand-in's plain fit stops at ``GUIDE_SE_TOL`` (it only
-selects and starts the Rician fit) and the exact Rician fit at
-``FINISH_SE_TOL`` (tested: within 0.02 standard errors of the exact-only fit).
+selects and starts the Rician fit) and both Rician fits (stand-in, then exact)
+at ``FINISH_SE_TOL`` (tested: within 0.02 standard errors of the exact-only fit).
 
 Every voxel's arithmetic after the grid search is element-wise, so results do
 not depend on the chunk size or on how many workers ran.
@@ -48,10 +48,10 @@ __all__ = ["ChunkFit", "fit_chunk", "fit_chunk_unit", "grid_start", "levenberg_m
 
 #: columns of the grid handled per matrix product (bounds memory for 2D grids)
 GRID_BLOCK = 256
-#: convergence of the exact model's Rician fit that finishes a fit on the model's stand-in, in units of a lower
-#: bound of each parameter's standard error: from the stand-in's minimum the exact step is below it for almost
-#: every voxel and is taken, leaving an error of second order in it (measured on 32-echo EPG trains at SNR 125:
-#: median first step 5e-4, 90th percentile 8e-3 of that bound)
+#: convergence of the Rician fits of a fit guided by the model's stand-in (on the stand-in, then the exact model
+#: from there), in units of a lower bound of each parameter's standard error: the exact model's first step from
+#: the stand-in's minimum is below it for almost every voxel and is taken, leaving an error of second order in it
+#: (measured on 32-echo EPG trains at SNR 125: result within 5e-3 standard errors of the exact-only fit)
 FINISH_SE_TOL = 1e-2
 #: the same for the stand-in's plain least-squares fit when a Rician fit follows it (it then only chooses the
 #: voxels near the noise floor and starts their fit)
@@ -509,7 +509,8 @@ def fit_chunk_unit(
         nit[plain] += out[4]
     if sel.size:
         p, rss, J, conv, nit = noise.rician_refine(run_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
-                                                   max_iter=max_iter, select=sel)
+                                                   max_iter=max_iter, select=sel,
+                                                   se_tol=1e-3 if guide is None else FINISH_SE_TOL)
     if guide is not None:
         # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
         # for the near-floor voxels): the minimum, RSS and Jacobian are the exact model's
