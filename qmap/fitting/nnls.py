@@ -30,7 +30,8 @@ decoupled extra variable) and solved by
 written with element-wise operations over the voxels, in blocks of voxels with
 passive sets of similar size: every voxel's solution depends only on its own
 numbers (bit-identical whatever the batch; tested). The dual (gradient) uses
-one matrix product per Gram matrix of the stack. Both algorithms reach the
+one matrix product per Gram matrix of the stack (BLAS, whose rounding depends
+on the batch; the dual only chooses which variable enters, never a value). Both algorithms reach the
 optimum that ``scipy.optimize.nnls`` reaches (the tests compare them on
 random problems).
 """

@@ -197,8 +197,8 @@ def summarise(s: NDArray[np.float64], t2: NDArray[np.float64], window: tuple[flo
     a_up = s[:, above].sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.where(total > 0, a_in / total, np.nan)
-        t_in = np.exp(s[:, inside] @ logt[inside] / a_in)
-        t_up = np.exp(s[:, above] @ logt[above] / a_up)
+        t_in = np.exp(np.einsum("vn,n->v", s[:, inside], logt[inside]) / a_in)
+        t_up = np.exp(np.einsum("vn,n->v", s[:, above], logt[above]) / a_up)
     return frac, np.where(a_in > 0, t_in, np.nan), np.where(a_up > 0, t_up, np.nan)
 
 
@@ -228,7 +228,7 @@ def _rss(A: NDArray[np.float64], group: NDArray[np.intp], x, y) -> NDArray[np.fl
     out = np.empty(y.shape[0])
     for g in np.unique(group):
         sel = group == g
-        r = x[sel] @ A[g].T - y[sel]
+        r = np.einsum("vn,mn->vm", x[sel], A[g]) - y[sel]
         out[sel] = np.einsum("vm,vm->v", r, r)
     return out
 
@@ -237,7 +237,7 @@ def _atb(A: NDArray[np.float64], group: NDArray[np.intp], y) -> NDArray[np.float
     out = np.empty((y.shape[0], A.shape[2]))
     for g in np.unique(group):
         sel = group == g
-        out[sel] = y[sel] @ A[g]
+        out[sel] = np.einsum("vm,mn->vn", y[sel], A[g])
     return out
 
 
@@ -280,7 +280,7 @@ class SpectrumModel:
         S = SEARCH_STRIDE
         for a in range(na - 1, -1, -1):  # from 180 degrees down, each warm-started from its neighbour's solution
             A = b.A[a][:, ::S]
-            x, _ = nnls_active_set(b.G[a][::S, ::S], y @ A, start=x)
+            x, _ = nnls_active_set(b.G[a][::S, ::S], np.einsum("vm,mn->vn", y, A), start=x)
             sols[a][:, ::S] = x
             rss[a] = _rss(A[None], zero, x, y)
         # cubic spline of the residual over the angle (Prasloski et al. 2012), mirrored about 180 degrees (the

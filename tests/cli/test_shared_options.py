@@ -62,8 +62,7 @@ FITTING_COMMANDS = {
     "t1-mp2rage": Case("t1-mp2rage", (f"{ANAT}/*_UNIT1.nii.gz",), ["--inv1", "{inv1}", "--inv2", "{inv2}"],
                        {"{inv1}": f"{ANAT}/sub-phantom_inv-1_MP2RAGE.nii.gz",
                         "{inv2}": f"{ANAT}/sub-phantom_inv-2_MP2RAGE.nii.gz"}, time_maps=("T1",), crop=False),
-    "t2-spectrum": Case("t2-spectrum", (f"{ANAT}/*_echo-0[1-9]_MESE.nii.gz", f"{ANAT}/*_echo-1[0-6]_MESE.nii.gz"),
-                        exact=False),
+    "t2-spectrum": Case("t2-spectrum", (f"{ANAT}/*_echo-0[1-9]_MESE.nii.gz", f"{ANAT}/*_echo-1[0-6]_MESE.nii.gz")),
 }
 
 
