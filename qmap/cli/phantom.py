@@ -80,9 +80,11 @@ def add_parser(sub) -> None:
     g.add_argument("--layout", metavar="FILE",
                    help="instead of --labels: CSV of vial centres in the phantom's frame (label, x_mm, y_mm, "
                         "[z_mm,] radius_mm); the vials are detected and the ROIs drawn and saved as "
-                        "phantom_labels.nii.gz")
+                        "phantom_labels.nii.gz. Example: phantom_layout.csv of the sample data (qmap demo copies it "
+                        "to DIR/data)")
     g.add_argument("--layout-image", metavar="IMG",
-                   help="image on which to detect the vials for --layout (vials bright); default: the first --map")
+                   help="image on which to detect the vials for --layout, where they are brighter than their "
+                        "surroundings (e.g. an M0 map when the vials sit in a darker fill); default: the first --map")
     a = p.add_argument_group("analysis")
     a.add_argument("--temperature", type=float, metavar="C",
                    help="phantom temperature in degrees C; required when the table has several temperatures per "
