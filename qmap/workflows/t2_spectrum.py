@@ -371,12 +371,8 @@ def run_t2_spectrum(
 
     Parameters
     ----------
-    inputs : list of path-like
-        One 4D NIfTI or several 3D NIfTIs (one per echo).
-    common : CommonOptions
-        Output folder, prefix, mask, workers, ...
-    te : (m,) array_like, optional
-        Echo times, s (default: sidecar ``EchoTime``).
+    inputs, common, te
+        The echo train, as in :func:`~qmap.workflows.decay.run_t2star`.
     refocus_deg : float, optional
         Nominal refocusing angle, degrees; default: the sidecar's
         ``RefocusingFlipAngle`` when present, else 180.
