@@ -474,9 +474,10 @@ def fit_chunk_unit(
     def evaluate(p, idx):
         return run_model.signal_jacobian(p, _take(ctx, idx))
 
-    best: list[np.ndarray] | None = None
+    starts = []
     for yc in model.candidates(y):
         theta0 = model.initial_guess(yc, w, ctx)
+        exact = theta0 is not None and model.exact_start
         if theta0 is None:
             theta0 = grid_start(run_model, yc, w, ctx)
             if theta0.shape[1] == 1:
@@ -485,7 +486,23 @@ def fit_chunk_unit(
         c0 = linear_amplitudes(run_model, yc, w, theta0, ctx)
         c0 = np.where(np.isfinite(c0), c0, 0.0)
         c0 = np.maximum(c0, lo[:L])
-        p, rss, J, conv, nit = levenberg_marquardt(evaluate, yc, wl, np.concatenate([c0, theta0], 1), lo, hi,
+        starts.append((yc, np.concatenate([c0, theta0], 1), exact))
+    if len(starts) > 1 and all(exact for _, _, exact in starts):
+        # the starts are least-squares optima already (the refinement only confirms them): each voxel keeps the
+        # candidate of lowest start RSS, and only that one is refined
+        ys, p0s = starts[0][0].copy(), starts[0][1].copy()
+        low = None
+        for yc, p0, _ in starts:
+            r0 = yc - run_model.predict(p0, ctx)
+            rss0 = np.einsum("nm,nm->n", r0 if wl is None else wl * r0, r0)
+            rss0[~np.isfinite(rss0)] = np.inf
+            take = np.ones(n, bool) if low is None else rss0 < low
+            ys[take], p0s[take] = yc[take], p0[take]
+            low = rss0 if low is None else np.where(take, rss0, low)
+        starts = [(ys, p0s, True)]
+    best: list[np.ndarray] | None = None
+    for yc, p0, _ in starts:
+        p, rss, J, conv, nit = levenberg_marquardt(evaluate, yc, wl, p0, lo, hi,
                                                    max_iter=max_iter, se_tol=GUIDE_SE_TOL if loose else 1e-3)
         if best is None:
             best = [p, rss, J, conv, nit, yc.copy()]

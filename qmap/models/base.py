@@ -79,6 +79,9 @@ class SeparableModel(ABC):
     #: magnitude data whose sign the fit restores (inversion recovery): samples near the null get no weight in the
     #: standard errors when the noise level is known (:func:`qmap.fitting.solver.fit_chunk`)
     sign_ambiguous: bool = False
+    #: :meth:`initial_guess` (when it gives a start) is already the least-squares optimum: with several
+    #: :meth:`candidates` the solver keeps each voxel's candidate of lowest start RSS and refines that one only
+    exact_start: bool = False
     #: the sample-axis values the model is evaluated at (seconds / degrees)
     x: np.ndarray
 

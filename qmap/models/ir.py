@@ -124,6 +124,7 @@ class InversionRecovery(SeparableModel):
     varied = "InversionTime"
     axis_label = "inversion time"
     linear = ("a", "b")
+    exact_start = True  # initial_guess is the variable-projection optimum (vp_t1)
 
     @classmethod
     def from_provenance(cls, model: dict, acquisition: dict, x) -> InversionRecovery:
