@@ -102,7 +102,7 @@ class ArraySource:
 
     @property
     def shape(self) -> tuple[int, int, int]:
-        return tuple(self.data.shape[:3])  # type: ignore[return-value]
+        return tuple(self.data.shape[:3])
 
     @property
     def n(self) -> int:

@@ -192,7 +192,9 @@ def _truth_and_model(method: str, x: np.ndarray, values: np.ndarray, tr: float |
         recovery = np.zeros_like(values) if tr is None else np.exp(-tr / values)
         return InversionRecovery(x, signal="real"), np.stack([1.0 + recovery, -2.0 * one, values], axis=1)
     if method == "vfa":
-        return SpoiledGRE(x, float(tr)), np.stack([one, values], axis=1)  # type: ignore[arg-type]
+        if tr is None:
+            raise ValueError("the VFA model needs the repetition time tr (s)")
+        return SpoiledGRE(x, float(tr)), np.stack([one, values], axis=1)
     param = "T2" if method == "t2" else "T2star"
     return MonoExponential(x, param=param), np.stack([one, values], axis=1)
 

@@ -22,7 +22,7 @@ import platform
 import threading
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from typing import Any, TypeVar
+from typing import Any, TypeVar, cast
 
 from .errors import collecting_warnings
 
@@ -51,7 +51,7 @@ def recorded(fn: F) -> F:
         with recording():
             return fn(*args, **kwargs)
 
-    return wrapper  # type: ignore[return-value]
+    return cast(F, wrapper)  # functools.wraps keeps fn's signature
 
 
 def versions() -> dict[str, str]:

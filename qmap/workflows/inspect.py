@@ -20,7 +20,7 @@ What a workflow must record for its fits to be inspectable
 * ``options["drop_first_echo"]`` when the first volume was not fitted;
 * per-voxel inputs as ``options["b1"]`` (absolute path of the B1 map),
   ``options["b1_scale"]`` (``"fraction"`` or ``"percent"``) and
-  ``options["b1_smooth_fwhm_mm"]`` (as :func:`qmap.workflows.vfa.load_b1_map` takes them);
+  ``options["b1_smooth_fwhm_mm"]`` (as :func:`qmap.b1.load_b1_map` takes them);
 * the series files first in ``inputs``, extra inputs (B1 map) after them.
 """
 
@@ -113,7 +113,7 @@ def parse_voxel(text: str) -> tuple[int, int, int]:
         ijk = ()
     if len(ijk) != 3 or min(ijk) < 0:
         raise UsageError(f"--voxel {text!r}: expected three 0-based indices I,J,K such as 12,30,4")
-    return ijk  # type: ignore[return-value]
+    return ijk
 
 
 def parse_world(text: str) -> tuple[float, float, float]:
@@ -124,7 +124,7 @@ def parse_world(text: str) -> tuple[float, float, float]:
         xyz = ()
     if len(xyz) != 3 or not all(np.isfinite(xyz)):
         raise UsageError(f"--world {text!r}: expected three coordinates X,Y,Z in mm such as -12.5,30,4")
-    return xyz  # type: ignore[return-value]
+    return xyz
 
 
 def _choose_prefix(out_dir: Path, prefix: str | None) -> str:
@@ -352,7 +352,7 @@ def _ctx(model, prov, ijk, series_path):
     path = opts.get("b1")
     if not path:
         return None
-    from .vfa import load_b1_map
+    from ..b1 import load_b1_map
 
     ref = load_image(series_path)
     b1, _ = load_b1_map(path, shape=ref.shape[:3], affine=ref.affine, scale=opts.get("b1_scale"),

@@ -153,7 +153,7 @@ def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet,
     def on_chunk(a, b, fit):
         out.put(flat[idx[a:b]], fit)
 
-    fit_voxels(model, _Gather(data, idx),  # type: ignore[arg-type]  # rows gathered a chunk at a time
+    fit_voxels(model, _Gather(data, idx),  # rows gathered a chunk at a time
                sigma=None if sig is None else sig[idx], n_jobs=n_jobs,
                chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, label=label, on_chunk=on_chunk)
     return idx.size
