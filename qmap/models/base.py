@@ -91,6 +91,8 @@ class SeparableModel(ABC):
 
         ``x`` (seconds / degrees) replaces the acquired values of :attr:`varied` (a fine grid draws the curve).
         """
+        # the base class itself takes no positions: this default serves the subclasses whose constructor needs
+        # only the positions (the others override it), which the type checker cannot see from here
         return cls(x)  # type: ignore[call-arg]
 
     @property
