@@ -206,6 +206,8 @@ def fit_volume(
             status[sel & ~ok_sigma] = st.NONFINITE
             sel &= ok_sigma
     idx = np.flatnonzero(sel)
+    if nvox < 2**31:  # half the memory of int64 (the index of every fitted voxel is held through the fit)
+        idx = idx.astype(np.int32)
     if ctx_maps:
         ctx = {k: v[idx] for k, v in ctx_flat.items()}
     # the maps are filled chunk by chunk as results arrive: no all-voxel copy of parameters and
@@ -249,7 +251,7 @@ def fit_volume(
             quality["nsamples"][sub] = fit.n_used
 
     fit_voxels(
-        model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=None if sig_flat is None else sig_flat[idx],
+        model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=_per_voxel(sigma, sig_flat, idx),
         n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
         on_chunk=on_chunk, stderr=stderr,
     )
@@ -267,6 +269,15 @@ def fit_volume(
     if se_in:
         info["stderr"]["propagated_inputs"] = sorted(se_in)
     return MapSet(estimates, stderr_out, units, descriptions, tuple(times), quality, status.reshape(shape), info)
+
+
+def _per_voxel(sigma, sig_flat: np.ndarray | None, idx: np.ndarray):
+    """The noise sd of the selected voxels: one number stays one number (no array over the voxels)."""
+    if sig_flat is None:
+        return None
+    if np.ndim(sigma) == 0:
+        return float(sigma)
+    return sig_flat[idx]
 
 
 def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int) -> MapSet:

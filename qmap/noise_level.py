@@ -55,8 +55,10 @@ __all__ = [
 #: Largest fraction of the background that may be far brighter than noise
 #: (ghosts, unmasked dim tissue) before ``--sigma auto`` gives up.
 _MAX_OUTLIER_FRACTION = 0.2
-#: Most background values used for the noise estimate.
-_MAX_SAMPLES = 2_000_000
+#: Most background values used for the noise estimate: 400k values put the median's relative standard
+#: error at 0.11 % for one coil (``median_relative_se(1) / sqrt(n)``), far below TARGET_PRECISION; more
+#: only cost time and memory (measured: 2M values took ~0.6 s and ~100 MB on a 1M-voxel x 12-echo series).
+_MAX_SAMPLES = 400_000
 #: values used for the automatic mask's threshold (a stride through the peak image)
 _MASK_SAMPLES = 1_000_000
 #: the automatic mask keeps every voxel brighter than this many times the median of the dim class
@@ -65,7 +67,7 @@ _MASK_SAMPLES = 1_000_000
 MASK_NOISE_FACTOR = 3.0
 #: background samples collected for ``--sigma auto`` (every k-th voxel by flat index, so that the
 #: choice does not depend on how the volume is read)
-SIGMA_SAMPLES = 2_000_000
+SIGMA_SAMPLES = 400_000
 
 _HINT = "give the noise level with --sigma VALUE"
 
@@ -677,13 +679,22 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
     for z0, z1 in source.slabs(max_bytes):
         block = source.read(z0, z1)
         block = np.abs(block) if np.iscomplexobj(block) else block
-        b = block[bg[:, :, z0:z1]]
-        fin = np.isfinite(b)
-        nz = fin & (b != 0)
-        n_nonfinite += int(np.count_nonzero(~fin.any(axis=1)))
-        n_zero += int(np.count_nonzero(fin.any(axis=1) & ~nz.any(axis=1)))
-        n_usable += int(np.count_nonzero(nz.any(axis=1)))
-        n_samples += int(np.count_nonzero(fin & nz.any(axis=1)[:, None]))
+        # counts over the whole background, one volume at a time (no copy of the background's samples)
+        bgs = bg[:, :, z0:z1]
+        n_bg = int(np.count_nonzero(bgs))
+        any_fin = np.zeros(n_bg, bool)
+        any_nz = np.zeros(n_bg, bool)
+        n_fin = np.zeros(n_bg, np.int32)
+        for v in range(block.shape[-1]):
+            b = block[..., v][bgs]
+            fin = np.isfinite(b)
+            any_fin |= fin
+            any_nz |= fin & (b != 0)
+            n_fin += fin
+        n_nonfinite += int(np.count_nonzero(~any_fin))
+        n_zero += int(np.count_nonzero(any_fin & ~any_nz))
+        n_usable += int(np.count_nonzero(any_nz))
+        n_samples += int(n_fin[any_nz].sum())
         kk = keep[:, :, z0:z1]
         values.append(block[kk])
         index.append(flat[:, :, z0:z1][kk])
