@@ -211,28 +211,29 @@ def fit_volume(
     if ctx_maps:
         ctx = {k: v[idx] for k, v in ctx_flat.items()}
     # the maps are filled chunk by chunk as results arrive: no all-voxel copy of parameters and
-    # covariances is ever held
+    # covariances is ever held; during the fit each map holds only the fitted voxels (idx order) and
+    # is spread onto the volume at the end, one map at a time (peak memory: the masked voxels' maps)
     P = len(noise.wrap(model).param_names)
     template = noise.report(model, np.ones((1, P)), np.ones((1, P, P)))
-    estimates = {d.name: np.full(nvox, np.nan, dtype) for d in template}
-    stderr_maps = {d.name: np.full(nvox, np.nan, dtype) for d in template}
+    n_fit = idx.size
+    estimates = {d.name: np.full(n_fit, np.nan, dtype) for d in template}
+    stderr_maps = {d.name: np.full(n_fit, np.nan, dtype) for d in template}
     units = {d.name: d.units for d in template}
     descriptions = {d.name: d.description for d in template}
     times = [d.name for d in template if d.is_time]
-    quality = {"rsquared": np.full(nvox, np.nan, dtype), "rmse": np.full(nvox, np.nan, dtype),
-               "residualsd": np.full(nvox, np.nan, dtype)}
+    quality = {"rsquared": np.full(n_fit, np.nan, dtype), "rmse": np.full(n_fit, np.nan, dtype),
+               "residualsd": np.full(n_fit, np.nan, dtype)}
     if noise.mode == "truncate":
-        quality["nsamples"] = np.zeros(nvox, dtype)
+        quality["nsamples"] = np.zeros(n_fit, dtype)
     # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
     kept_codes = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
     fit_model = noise.wrap(model)
     se_in = {k: np.broadcast_to(np.asarray(v, float), shape).reshape(-1)[idx] for k, v in (input_se or {}).items()}
 
     def on_chunk(a: int, b: int, fit) -> None:
-        sub = idx[a:b]
-        status[sub] = fit.status
+        status[idx[a:b]] = fit.status
         keep = np.isin(fit.status, kept_codes)
-        at = sub[keep]
+        at = a + np.flatnonzero(keep)  # positions in the fitted-voxel maps
         cov = fit.cov
         for name, se in se_in.items():  # an input's own uncertainty (e.g. the B1 map's), to first order
             assert ctx is not None, "an input with a standard error is one of the model inputs"
@@ -248,16 +249,19 @@ def fit_volume(
         with np.errstate(invalid="ignore", divide="ignore"):
             quality["residualsd"][at] = np.where(dof > 0, np.sqrt(fit.rss[keep] / np.maximum(dof, 1)), np.nan)
         if "nsamples" in quality:
-            quality["nsamples"][sub] = fit.n_used
+            quality["nsamples"][a:b] = fit.n_used
 
     fit_voxels(
         model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=_per_voxel(sigma, sig_flat, idx),
         n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
         on_chunk=on_chunk, stderr=stderr,
     )
-    estimates = {k: v.reshape(shape) for k, v in estimates.items()}
-    stderr_out = {k: v.reshape(shape) for k, v in stderr_maps.items()}
-    quality = {k: v.reshape(shape) for k, v in quality.items()}
+    for maps_ in (estimates, stderr_maps, quality):
+        for key in list(maps_):  # replaced one at a time: the fitted-voxel array is freed as its volume is made
+            full = np.full(nvox, 0 if key == "nsamples" else np.nan, dtype)
+            full[idx] = maps_[key]
+            maps_[key] = full.reshape(shape)
+    stderr_out = stderr_maps
     info: dict[str, Any] = {
         "model": model.name,
         "parameters": list(model.param_names),
