@@ -185,6 +185,10 @@ def dam_b1(s_a, s_2a, fa_nominal: float, *, mask=None, sigma=None):
     return _finish(ang, d, fa_nominal, finite, sel)
 
 
+#: voxels per block of :func:`b1_maps`
+_B1_BLOCK = 1 << 16
+
+
 def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, sigma=None, info: dict | None = None,
             dtype=np.float64):
     """Relative B1 as a :class:`~qmap.maps.MapSet` (``maps["TB1"]``, stderr, quality, status).
@@ -221,21 +225,37 @@ def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, 
     """
     from .maps import MapSet
 
-    data = np.asarray(data, float)
+    data = np.asarray(data)
     if data.shape[-1] != 2:
         raise ValueError(f"B1 mapping takes two images (last axis 2), got {data.shape[-1]}")
     if method == "afi":
         if n is None or not n > 1:
             raise ValueError(f"AFI needs n = TR2/TR1 > 1, got {n}")
-        tb1, se, status = afi_b1(data[..., 0], data[..., 1], fa, n, mask=mask, sigma=sigma)
-    elif method == "dam":
-        tb1, se, status = dam_b1(data[..., 0], data[..., 1], fa, mask=mask, sigma=sigma)
-    else:
+        ratio = float(n)
+    elif method != "dam":
         raise ValueError(f"method {method!r}; expected one of {B1_METHODS}")
+    shape = data.shape[:-1]
+    tb1 = np.empty(shape, dtype)
+    se = np.empty(shape, dtype)
+    status = np.empty(shape, np.uint8)
+    sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), shape)
+    sel = None if mask is None else np.broadcast_to(np.asarray(mask, bool), shape)
+    # in blocks along the first axis: the float64 arithmetic never holds more than _B1_BLOCK voxels at a time
+    # (one float64 copy of the images and a dozen float64 volumes would be ~20x the input; same values)
+    rows = max(1, _B1_BLOCK // max(1, int(np.prod(shape[1:])))) if shape else 1
+    for i0 in range(0, shape[0] if shape else 1, rows):
+        part = slice(i0, i0 + rows) if shape else ...
+        d = np.asarray(data[part], float)
+        m = None if sel is None else sel[part]
+        sg = None if sig is None else sig[part]
+        if method == "afi":
+            tb1[part], se[part], status[part] = afi_b1(d[..., 0], d[..., 1], fa, ratio, mask=m, sigma=sg)
+        else:
+            tb1[part], se[part], status[part] = dam_b1(d[..., 0], d[..., 1], fa, mask=m, sigma=sg)
     # two images determine B1 exactly (closed form): no residual, so R-squared and the RMS residual are not
     # defined -- written as NaN (see QUALITY_DESCRIPTIONS), not as a perfect fit
-    r2 = np.full(status.shape, np.nan)
-    rmse = np.full(status.shape, np.nan)
+    r2 = np.full(status.shape, np.nan, dtype)
+    rmse = np.full(status.shape, np.nan, dtype)
     how = ("actual flip-angle imaging (Yarnykh 2007)" if method == "afi"
            else "the double-angle method (Insko & Bolinger 1993)")
     desc = f"relative transmit field B1 (actual / nominal flip angle, 1.0 = nominal) by {how}"

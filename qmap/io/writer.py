@@ -15,11 +15,13 @@ import os
 import re
 import shutil
 import time
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+from nibabel.openers import ImageOpener
 
 from ..errors import OutputError, OutputExistsError
 from .nifti import sidecar_path
@@ -150,9 +152,10 @@ def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, pa
     img.header["descrip"] = f"qmap {parameter} {kind} [{units}]"[:79].encode()
     img.header.set_slope_inter(None, None)  # no scaling: the stored values are the values
     if kind != "status":
-        finite = arr[np.isfinite(arr)]
-        if finite.size:
-            img.header["cal_min"], img.header["cal_max"] = float(finite.min()), float(finite.max())
+        finite = np.isfinite(arr)  # the display range of the finite values, without a copy of them
+        if finite.any():
+            img.header["cal_min"] = float(np.min(arr, where=finite, initial=np.inf))
+            img.header["cal_max"] = float(np.max(arr, where=finite, initial=-np.inf))
     return img
 
 
@@ -310,22 +313,32 @@ class AtomicWriter:
             nib.save(img, str(tmp))  # the temporary name keeps the .nii.gz ending
         except OSError as exc:
             raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
-        self._verify(tmp, out, affine, status)
+        self._verify(tmp, out, img.dataobj, affine, status)
         self.stage_json(sidecar_path(out.name).name, {"Units": out.units, "Description": out.description,
                                                       "Parameter": out.parameter, "Kind": out.kind,
                                                       **(out.sidecar or {})})
         return final
 
-    def _verify(self, path: Path, out: OutputFile, affine, status):
+    def _verify(self, path: Path, out: OutputFile, data, affine, status):
+        """Re-read the header (shape, affine) and the whole stream; check the estimates of fitted voxels.
+
+        The stream is read in blocks and not held (a gzip file's CRC-32 and length are checked at its end):
+        re-reading every map as an array doubled the memory of the writing stage.
+        """
         img = nib.load(str(path), mmap=False)
         if not isinstance(img, nib.spatialimages.SpatialImage):
             raise OutputError(f"{out.name}: the written file does not read back as an image (internal check failed)")
-        data = np.asanyarray(img.dataobj)
-        if data.shape != np.shape(out.data) or not np.allclose(img.affine, affine, atol=1e-4):
+        if tuple(img.shape) != np.shape(data) or not np.allclose(img.affine, affine, atol=1e-4):
             raise OutputError(f"{out.name}: the written file does not read back as written (shape/affine)")
-        if status is not None and out.kind in ("estimate", "stderr"):
-            good = np.asarray(status) == 0
-            if out.kind == "estimate" and not out.allow_nonfinite and not np.all(np.isfinite(data[good])):
+        try:
+            with ImageOpener(str(path), "rb") as fh:
+                while fh.read(1 << 20):
+                    pass
+        except (OSError, EOFError, zlib.error) as exc:
+            raise OutputError(f"{out.name}: the written file does not read back ({exc})") from None
+        if status is not None and out.kind == "estimate" and not out.allow_nonfinite:
+            bad = (np.asarray(status) == 0) & ~np.isfinite(data)
+            if bad.any():
                 raise OutputError(f"{out.name}: a fitted voxel has a non-finite estimate (internal check failed)")
 
     # -- commit / abort -------------------------------------------------------
