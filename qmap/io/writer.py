@@ -18,6 +18,7 @@ import time
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import nibabel as nib
 import numpy as np
@@ -320,26 +321,37 @@ class AtomicWriter:
         return final
 
     def _verify(self, path: Path, out: OutputFile, data, affine, status):
-        """Re-read the header (shape, affine) and the whole stream; check the estimates of fitted voxels.
+        """Re-read the written file: header (shape, affine), the whole stream, and the estimates of fitted voxels.
 
-        The stream is read in blocks and not held (a gzip file's CRC-32 and length are checked at its end):
-        re-reading every map as an array doubled the memory of the writing stage.
+        The voxel values are read back in blocks of 1 MB and checked against the status (finite where it
+        is 0) without holding the map: re-reading every map as an array doubled the memory of the writing
+        stage. A gzip stream's CRC-32 and length are checked at its end.
         """
         img = nib.load(str(path), mmap=False)
         if not isinstance(img, nib.spatialimages.SpatialImage):
             raise OutputError(f"{out.name}: the written file does not read back as an image (internal check failed)")
         if tuple(img.shape) != np.shape(data) or not np.allclose(img.affine, affine, atol=1e-4):
             raise OutputError(f"{out.name}: the written file does not read back as written (shape/affine)")
+        proxy: Any = img.dataobj  # an array proxy: where (offset) and how (dtype) the voxel values are stored
+        dtype = np.dtype(proxy.dtype)
+        good = None
+        if status is not None and out.kind == "estimate" and not out.allow_nonfinite:
+            good = (np.asarray(status) == 0).ravel(order="F")  # the file's voxel order
+        count = 0
         try:
             with ImageOpener(str(path), "rb") as fh:
-                while fh.read(1 << 20):
-                    pass
+                fh.seek(int(proxy.offset))
+                step = (1 << 20) // dtype.itemsize * dtype.itemsize
+                while block := fh.read(step):
+                    values = np.frombuffer(block, dtype, count=len(block) // dtype.itemsize)
+                    if good is not None and (good[count:count + values.size] & ~np.isfinite(values)).any():
+                        raise OutputError(f"{out.name}: a fitted voxel has a non-finite estimate (internal check "
+                                          f"failed)")
+                    count += values.size
         except (OSError, EOFError, zlib.error) as exc:
             raise OutputError(f"{out.name}: the written file does not read back ({exc})") from None
-        if status is not None and out.kind == "estimate" and not out.allow_nonfinite:
-            bad = (np.asarray(status) == 0) & ~np.isfinite(data)
-            if bad.any():
-                raise OutputError(f"{out.name}: a fitted voxel has a non-finite estimate (internal check failed)")
+        if count < int(np.prod(img.shape)):
+            raise OutputError(f"{out.name}: the written file is shorter than its header says (internal check failed)")
 
     # -- commit / abort -------------------------------------------------------
     def commit(self) -> list[Path]:
