@@ -16,7 +16,9 @@ and the VFA / B1 workflows):
   and the likely cause (files in another order than the times; a phase
   image); ``--no-series-check`` fits it anyway.
 * :func:`warn_fit_quality` -- after fitting, warns when the median R-squared
-  of the fitted voxels is low or the automatic mask covers the whole image.
+  of the fitted voxels is low, when fewer than a tenth of the voxels in the
+  mask were fitted (e.g. every voxel too noisy for a T2 spectrum), or when the
+  automatic mask covers the whole image.
 """
 
 from __future__ import annotations
@@ -27,6 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, warn
+from .fitting import status as st
 
 __all__ = [
     "NEGATIVE_TOLERANCE",
@@ -45,6 +48,8 @@ NEGATIVE_TOLERANCE = 0.05
 RISE_TOLERANCE = 0.25
 #: a decay must fall by at least this fraction of its first sample over the series
 MIN_DECAY = 0.05
+#: fraction of the voxels in the mask (and above the noise floor) that must be fitted (status 0), else a warning
+FITTED_WARN = 0.1
 #: median R-squared of the fitted voxels below which the run warns
 R2_WARN = 0.5
 #: object voxels sampled for the profile (strided: the choice does not depend on how the data are read)
@@ -268,6 +273,17 @@ def warn_fit_quality(maps, mask: np.ndarray, mask_spec) -> list[str]:
             out.append(f"the median R-squared of the fitted voxels is {med:.2f} (below {R2_WARN:g}): the model "
                        f"does not describe these data; check the order of the files and values, and that the "
                        f"images are magnitude images of this kind of series")
+    status = np.asarray(maps.status)
+    # voxels the fit was asked for: inside the mask, with signal above the noise floor
+    tried = np.asarray(mask, bool) & (status != st.NOISE_ONLY)
+    n_tried = int(tried.sum())
+    n_good = int((good & tried).sum())
+    if spec != "none" and n_tried and n_good < FITTED_WARN * n_tried:
+        codes, counts = np.unique(status[tried & ~good], return_counts=True)
+        top = int(codes[np.argmax(counts)])
+        out.append(f"only {n_good} of the {n_tried} voxels in the mask were fitted (status 0); most of the others "
+                   f"have status {top}: {st.STATUS_CODES.get(top, 'unknown')}; see the status map before using "
+                   f"the maps")
     if spec == "auto" and np.asarray(mask, bool).all() and np.asarray(mask).size >= 1000:
         out.append("the automatic mask covers the whole image (no background found): the maps include every "
                    "voxel; give a mask with --mask FILE if the image has background")

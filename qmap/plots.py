@@ -128,6 +128,11 @@ def pick_slices(mask: np.ndarray, n: int = MAX_SLICES) -> list[int]:
     return sorted({int(occupied[int(p)]) for p in pos})
 
 
+def display_name(param: str) -> str:
+    """How a parameter is written on a figure: ``T2star`` -> ``T2*`` (file names keep the BIDS spelling)."""
+    return param.replace("star", "*")
+
+
 def colormap_for(param: str, units: str) -> str:
     """Name of the matplotlib colour map used for ``param`` (perceptually uniform)."""
     if param == "TB1" or units == "fraction":
@@ -232,7 +237,7 @@ def montage(
     cax = fig.add_axes((cb_left / W, (y0 + 0.08 * ph) / H, 14.0 / W, 0.84 * ph / H))
     if im is not None:
         cb = fig.colorbar(im, cax=cax, extend="both")
-        cb.set_label(f"{param} [{_units_label(units)}]", fontsize=9)
+        cb.set_label(f"{display_name(param)} [{_units_label(units)}]", fontsize=9)
         if log:  # plain numbers at 1, 2, 5 x 10^k instead of powers of ten
             cb.ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
             cb.ax.yaxis.set_major_formatter(FormatStrFormatter("%g"))
@@ -287,7 +292,7 @@ def stage_previews(writer, maps, prefix: str, *, units: str, mask: np.ndarray) -
         factor = 1e3 if (units == "ms" and name in maps.time_params) else 1.0
         u = "ms" if factor == 1e3 else maps.units[name]
         vol = np.asarray(maps.estimates[name], float) * factor
-        title = f"{prefix}  {name} map"
+        title = f"{display_name(name)} map ({prefix})"
         desc = maps.descriptions.get(name, "")
 
         def draw(path, vol=vol, name=name, u=u, title=title, desc=desc):

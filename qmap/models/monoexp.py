@@ -80,8 +80,9 @@ class MonoExponential(SeparableModel):
     def report(self, params, cov):
         t = params[:, 1]
         se_t = np.sqrt(cov[:, 1, 1])
+        name, rate = self.param.replace("star", "*"), self.rate.replace("star", "*")  # T2* as written in the trade
         return [
-            Derived(self.param, t, se_t, "s", f"{self.param} decay time", is_time=True),
-            Derived(self.rate, 1.0 / t, delta_se_inverse(t, se_t), "1/s", f"{self.rate} decay rate (1/{self.param})"),
+            Derived(self.param, t, se_t, "s", f"{name} decay time", is_time=True),
+            Derived(self.rate, 1.0 / t, delta_se_inverse(t, se_t), "1/s", f"{rate} decay rate (1/{name})"),
             Derived("M0", params[:, 0], np.sqrt(cov[:, 0, 0]), "a.u.", "signal extrapolated to TE = 0"),
         ]

@@ -202,3 +202,21 @@ def test_sigma_local_follows_noise_that_varies_over_the_image(tmp_path):
     assert prov["noise"]["sigma_mode"] == "local" and "noise map" in prov["noise"]["sigma_source"]
     assert prov["outputs"][f"{pre}_desc-noise_sigmamap.nii.gz"]["kind"] == "quality"
     assert 4.0 < prov["noise"]["sigma"] < 12.0  # the median of the map
+
+
+def test_a_run_that_fits_no_voxel_says_so(series, tmp_path, capsys):
+    """Every voxel below --min-snr (status 10): exit 0 with the values kept, and one warning naming the status."""
+    path, *_ = series
+    out = tmp_path / "out"
+    capsys.readouterr()
+    code = main(["t2-spectrum", str(path), "-o", str(out), "--sigma", str(SIGMA), "-q", "--min-snr", "1e6",
+                 "--se-subsample", "24"])
+    err = capsys.readouterr().err
+    assert code == 0
+    status = nib.load(out / "sub-01_acq-mesespectrum_desc-status_fitmap.nii.gz").get_fdata()
+    n_mask = int((status != 1).sum())
+    assert n_mask > 0 and set(np.unique(status[status != 1])) <= {3, 10}
+    assert err.strip().splitlines() == [(
+        f"qmap: warning: only 0 of the {n_mask} voxels in the mask were fitted (status 0); most of the others have "
+        f"status 10: signal-to-noise ratio too low for a reliable T2 spectrum (values kept; see --min-snr); see the "
+        f"status map before using the maps")]
