@@ -277,6 +277,8 @@ class EpgT2(SeparableModel):
 #: node spacing of the stand-in's table in ln(T2) and in c = cos(refocusing angle)
 TABLE_DU = 0.1
 TABLE_DC = 0.01
+#: voxels whose table rows are gathered at once (16 rows x echoes x 8 bytes each: 4 MB for 32 echoes)
+TABLE_BLOCK = 1024
 
 
 class EpgT2Table(EpgT2):
@@ -339,7 +341,6 @@ class EpgT2Table(EpgT2):
         n = t2.size
         base = i * self._nc + j
         corners = np.stack([base, base + 1, base + self._nc, base + self._nc + 1], axis=1)
-        rows = np.take(self._tab, corners, axis=0).reshape(n, 16, E)  # corner (a, b), then [E, E_u, E_c, E_uc]
         k = 3 if grad else 1
         wts = np.empty((n, k, 16))
         col = 0
@@ -352,7 +353,12 @@ class EpgT2Table(EpgT2):
                         wts[:, 1, col] = dwu[pu] * wc[pc]
                         wts[:, 2, col] = wu[pu] * dwc[pc]
                     col += 1
-        out = np.matmul(wts, rows)  # (n, k, E): one small product per voxel, no sum across voxels
+        # (n, k, E): one small product per voxel, no sum across voxels; the gathered table rows (16 x E per
+        # voxel, five times the result) are taken a block of voxels at a time to keep the memory peak low
+        out = np.empty((n, k, E))
+        for s in range(0, n, TABLE_BLOCK):
+            rows = np.take(self._tab, corners[s : s + TABLE_BLOCK], axis=0).reshape(-1, 16, E)  # [E, E_u, E_c, E_uc]
+            np.matmul(wts[s : s + TABLE_BLOCK], rows, out=out[s : s + TABLE_BLOCK])
         if not grad:
             return out[:, 0]
         return out[:, 0], out[:, 1] / (self._hu * t2[:, None]), out[:, 2] / self._hc
