@@ -19,12 +19,13 @@ from typing import Protocol
 
 import numpy as np
 
+from . import status as st
 from .defaults import DEFAULT_CHUNK
-from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
+from .fitting.problem import FitProblem
 from .fitting.solver import ChunkFit, fit_chunk
 
-__all__ = ["DEFAULT_CHUNK", "Progress", "fit_voxels", "resolve_jobs"]
+__all__ = ["DEFAULT_CHUNK", "Progress", "dask_client", "fit_voxels", "resolve_jobs"]
 
 
 class SampleRows(Protocol):
@@ -47,43 +48,79 @@ def resolve_jobs(n_jobs: int | None) -> int:
 
 
 class Progress:
-    """A one-line progress display on stderr (silent when ``quiet`` or when stderr is not a terminal)."""
+    """The one progress display of qmap (chunks of a fit, series of a batch), on stderr.
 
-    def __init__(self, total: int, label: str, *, quiet: bool = False, stream=None):
+    On a terminal: one updating line ``label [#####   ]  42.0%  3.1 s  detail``. Elsewhere (logs,
+    pipes): nothing, or with ``log=True`` the ``line`` of each :meth:`update` as a line of its own.
+    ``quiet`` silences both.
+    """
+
+    def __init__(self, total: int, label: str, *, quiet: bool = False, stream=None, log: bool = False):
         self.total = max(int(total), 1)
         self.done = 0
         self.label = label
         self.stream = stream or sys.stderr
-        # a progress bar is for a person at a terminal; logs and pipelines get none
-        self.quiet = quiet or not getattr(self.stream, "isatty", lambda: False)()
+        try:
+            self.tty = bool(self.stream.isatty())
+        except (AttributeError, ValueError):  # no isatty, or a closed stream
+            self.tty = False
+        # a progress bar is for a person at a terminal; logs and pipelines get none (or the log lines)
+        self.quiet = quiet or not (self.tty or log)
         self.t0 = time.perf_counter()
         self._last = -1.0
 
-    def update(self, k: int = 1) -> None:
+    def update(self, k: int = 1, *, detail: str = "", line: str | None = None) -> None:
+        """``k`` more items done; ``detail`` follows the bar, ``line`` is the log line (``log=True``, no terminal)."""
         self.done += k
         if self.quiet:
+            return
+        if not self.tty:
+            if line is not None:
+                self.stream.write(line + "\n")
+                self.stream.flush()
             return
         now = time.perf_counter()
         if self.done < self.total and now - self._last < 0.25:
             return
         self._last = now
-        frac = self.done / self.total
+        frac = min(self.done / self.total, 1.0)
         bar = "#" * int(28 * frac)
-        self.stream.write(f"\r{self.label} [{bar:<28}] {100 * frac:5.1f}%  {now - self.t0:6.1f} s")
+        tail = f"  {detail}" if detail else ""
+        self.stream.write(f"\r{self.label} [{bar:<28}] {100 * frac:5.1f}%  {now - self.t0:6.1f} s{tail}")
         if self.done >= self.total:
             self.stream.write("\n")
         self.stream.flush()
 
 
-def _fit_one(model, y, ctx, noise, sigma, max_iter, method="fast", stderr="noise"):
+def dask_client(scheduler: str, *, timeout: float = 20):
+    """A client of the Dask distributed scheduler at ``scheduler`` (the one place qmap connects to one).
+
+    Raises :class:`~qmap.errors.UsageError` (one line) when the cluster extra is not installed or the
+    scheduler cannot be reached within ``timeout`` seconds. The client is not made the default; close it.
+    """
+    from .errors import UsageError
+
+    try:
+        from dask.distributed import Client
+    except ImportError:
+        raise UsageError("--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])") from None
+    try:
+        return Client(scheduler, timeout=timeout, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
+
+
+def _fit_one(problem: FitProblem, y, ctx, sigma):
+    """Fit one chunk of ``problem`` (checked once by :meth:`FitProblem.create`, never again here)."""
+    model, noise, max_iter, stderr = problem.model, problem.noise, problem.max_iter, problem.stderr
     own = getattr(model, "fit_chunk", None)  # a model with its own chunk fitter (e.g. the T2 spectrum)
     if own is not None:
         return own(y, ctx=ctx, sigma=sigma)
-    if method == "linear":
+    if problem.method == "linear":
         from .fitting.linearised import fit_chunk_linear
 
         return fit_chunk_linear(model, y, ctx=ctx, sigma=sigma, stderr=stderr)
-    if method == "lmfit":
+    if problem.method == "lmfit":
         from .fitting.lmfit_engine import fit_chunk_lmfit
 
         return fit_chunk_lmfit(model, y, ctx=ctx, noise=noise, sigma=sigma, max_iter=max_iter, stderr=stderr)
@@ -163,18 +200,18 @@ def fit_voxels(
         Covariance convention when ``sigma`` is given (see
         :mod:`qmap.fitting.uncertainty`); without ``sigma``: residual.
     """
+    problem = FitProblem.create(model, noise=noise, sigma=sigma, stderr=stderr, method=method, max_iter=max_iter)
+    noise = problem.noise
     n = y.shape[0]
     chunk_size = max(1, int(chunk_size))
     chunks = [_Chunk(i, min(i + chunk_size, n)) for i in range(0, n, chunk_size)]
-    noise = noise or NoiseFloor("none")
     sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), (n,))
     progress = Progress(len(chunks), label, quiet=quiet)
 
     def args(c: _Chunk):
         sl = slice(c.start, c.stop)
         cctx = None if not ctx else {k: np.asarray(v[sl], float) for k, v in ctx.items()}
-        return (model, np.asarray(y[sl], float), cctx, noise, None if sig is None else np.array(sig[sl]), max_iter,
-                method, stderr)
+        return (problem, np.asarray(y[sl], float), cctx, None if sig is None else np.array(sig[sl]))
 
     results: list[ChunkFit] = []
 
@@ -250,19 +287,9 @@ def _run_local(chunks, args, jobs, consume):
 
 
 def _run_dask(chunks, args, scheduler, consume):
-    from .errors import UsageError
+    from joblib import Parallel, delayed, parallel_config
 
-    try:
-        from dask.distributed import Client
-        from joblib import Parallel, delayed, parallel_config
-    except ImportError:
-        raise UsageError(
-            "--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])"
-        ) from None
-    try:
-        client = Client(scheduler, timeout=10, set_as_default=False)
-    except (OSError, TimeoutError, ValueError) as exc:
-        raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
+    client = dask_client(scheduler, timeout=10)
     try:
         with client.as_current(), parallel_config(backend="dask", wait_for_workers_timeout=60):
             par = Parallel(return_as="generator")

@@ -11,6 +11,7 @@ import numpy as np
 from .engine import DEFAULT_CHUNK, fit_voxels, status_counts
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
+from .fitting.problem import FitProblem
 from .models.base import SeparableModel
 
 __all__ = ["Execution", "MapSet", "execution_kwargs", "fit_volume", "place_slab"]
@@ -166,22 +167,17 @@ def fit_volume(
     volume), propagated to first order into the covariance.
     ``maps.info["stderr"]`` records the convention.
     """
-    from .fitting.uncertainty import CONVENTION_TEXT, CONVENTIONS, add_input_covariance, input_sensitivity
+    from .fitting.uncertainty import CONVENTION_TEXT, add_input_covariance, input_sensitivity
 
-    if stderr not in CONVENTIONS:
-        raise ValueError(f"stderr={stderr!r}; expected one of {', '.join(CONVENTIONS)}")
+    problem = FitProblem.create(model, noise=noise, sigma=sigma, stderr=stderr, method=method)  # checked once
+    noise = problem.noise
     data = np.asarray(data)
     if data.ndim == 1:
         data = data[None, :]
     shape = data.shape[:-1]
     m = data.shape[-1]
-    if m != model.n_samples:
-        raise ValueError(f"data has {m} samples per voxel, the model {model.n_samples}")
+    problem.check_samples(m)
     nvox = int(np.prod(shape))
-    noise = noise or NoiseFloor("none")
-    if noise.needs_sigma and sigma is None:
-        raise ValueError(f"the {noise.mode!r} noise floor needs sigma (the noise sd in signal units); "
-                         "estimate it with qmap.noise_level.estimate_noise or give it")
     # no reshaped copy of the series: NIfTI arrays are Fortran-ordered, so data.reshape(-1, m) would
     # copy it all; only the selected voxels are gathered below (in C order, matching ``idx``)
     finite: np.ndarray = np.ones(shape, bool)
@@ -223,7 +219,7 @@ def fit_volume(
     times = [d.name for d in template if d.is_time]
     quality = {"rsquared": np.full(n_fit, np.nan, dtype), "rmse": np.full(n_fit, np.nan, dtype),
                "residualsd": np.full(n_fit, np.nan, dtype)}
-    if noise.mode == "truncate":
+    if noise.weighted:
         quality["nsamples"] = np.zeros(n_fit, dtype)
     # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
     kept_codes = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
@@ -265,7 +261,7 @@ def fit_volume(
     info: dict[str, Any] = {
         "model": model.name,
         "parameters": list(model.param_names),
-        "noise_floor": noise.mode,
+        "noise_floor": str(noise.mode),
         "n_fitted": int(idx.size),
     }
     used = stderr if sigma is not None else "residual"

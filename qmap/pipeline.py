@@ -6,7 +6,6 @@ series key, which model, which per-voxel inputs) lives in :mod:`qmap.workflows`.
 
 from __future__ import annotations
 
-import dataclasses
 import re
 import sys
 import time
@@ -657,20 +656,15 @@ def prepare_run(
         return sinfo
 
     if noise is not None:
-        noise_info = {"mode": noise.mode, "sigma": None}
+        noise_info = {"mode": str(noise.mode), "sigma": None}
         if noise.needs_sigma:
             sigma, sinfo = resolve_sigma(sigma_spec, series, coils=None if coils_auto else noise.coils,
                                          max_bytes=budget, model=model, mask=mask, ctx_maps=ctx_maps,
                                          n_jobs=common.n_jobs)
             sinfo = record(sinfo, sigma)
-            found = sinfo.pop("coils", None)
-            if noise.mode == "rician" and found and found != noise.coils:
-                noise = dataclasses.replace(noise, coils=int(found))
+            noise = noise.with_coils(sinfo.pop("coils", None))
             noise_info.update(sinfo)
-        if noise.mode == "truncate":
-            noise_info.update(truncate_factor=noise.factor, min_samples=noise.min_samples)
-        if noise.mode == "rician":
-            noise_info["coils"] = noise.coils
+        noise_info.update(noise.provenance())
     if sigma_for_se is None:
         sigma_for_se = common.stderr == "noise"
     if sigma is None and sigma_for_se:  # no noise-floor model: the noise level is for the SEs only

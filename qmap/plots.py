@@ -28,16 +28,20 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
 __all__ = [
+    "INK",
     "MAX_SLICES",
     "PREVIEW_SIZE_PX",
     "VOXEL_PLOT_SIZE_PX",
+    "canvas",
     "colormap_for",
     "montage",
     "pick_slices",
     "plot_voxel_fit",
     "preview_name",
     "robust_range",
+    "save_png",
     "stage_previews",
+    "style_axes",
 ]
 
 #: Most slices shown in one montage.
@@ -60,15 +64,41 @@ ROBUST_PERCENTILES = (2.0, 98.0)
 _CMAPS = {"time": "viridis", "rate": "plasma", "b1": "cividis", "amplitude": "cividis", "other": "viridis"}
 
 
-def _canvas(width_px: int, height_px: int) -> Figure:
+# The one figure style of qmap: map previews, voxel plots (``qmap inspect``) and the QA figures
+# (qmap.qa.figures) are drawn with canvas(), style_axes() and these colours, and written by save_png().
+#: text, ticks and spines
+INK = "#2b2f36"
+#: grid lines
+GRID = "#e9ecf1"
+#: measured samples and their residuals
+DATA_COLOUR = "#d1495b"
+#: the fitted model
+MODEL_COLOUR = "#1b6ca8"
+#: a second curve (the expected magnitude with its noise floor, a window)
+ACCENT_COLOUR = "#e07b00"
+#: text boxes
+PANEL = "#f4f4f4"
+
+
+def canvas(width_px: int, height_px: int) -> Figure:
+    """A figure of exactly ``width_px`` x ``height_px`` pixels on the Agg canvas (no display, no pyplot state)."""
     fig = Figure(figsize=(width_px / DPI, height_px / DPI), dpi=DPI)
     FigureCanvasAgg(fig)
     return fig
 
 
-def _save(fig: Figure, path: str | Path) -> None:
+def style_axes(ax) -> None:
+    """The axes of every qmap plot: no top and right spines, ink-coloured ticks, a light grid behind the data."""
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(colors=INK, labelsize=9)
+    ax.grid(True, color=GRID, linewidth=0.8, zorder=0)
+
+
+def save_png(fig: Figure, target) -> None:
+    """Write ``fig`` as PNG to a path or a binary file object, at its own size (white background)."""
     # no bbox_inches="tight": the file must have exactly the size asked for
-    fig.savefig(str(path), format="png", dpi=DPI, facecolor="white")
+    fig.savefig(target if hasattr(target, "write") else str(target), format="png", dpi=DPI, facecolor="white")
 
 
 def preview_name(prefix: str, param: str) -> str:
@@ -205,7 +235,7 @@ def montage(
     if slices is None:
         slices = pick_slices(shown)
     cmap = _colormap(colormap_for(param, units))
-    fig = _canvas(*PREVIEW_SIZE_PX)
+    fig = canvas(*PREVIEW_SIZE_PX)
     W, H = PREVIEW_SIZE_PX
     n = max(len(slices), 1)
     # geometry in pixels: panels as large as the height allows (image aspect kept), side by side from the
@@ -250,7 +280,7 @@ def montage(
     fig.text(0.015, 0.825, f"colour range {_fmt(vmin)} to {_fmt(vmax)} {units} (2nd-98th percentile of "
              f"{int(ranged.sum())} fitted voxels{'; logarithmic colour scale' if log else ''}); white = no estimate (not fitted)", fontsize=9, va="top",
              ha="left", color="#333333")
-    _save(fig, path)
+    save_png(fig, path)
     return vmin, vmax
 
 
@@ -373,24 +403,24 @@ def plot_voxel_fit(
     res = y - np.asarray(fitted_at_x, float)
     used = np.ones(x.shape, bool) if used is None else np.asarray(used, bool)
     has_fit = xf.size > 0 and np.any(np.isfinite(curve))
-    fig = _canvas(*VOXEL_PLOT_SIZE_PX)
+    fig = canvas(*VOXEL_PLOT_SIZE_PX)
     ax = fig.add_axes((0.085, 0.40, 0.54, 0.52))
     axr = fig.add_axes((0.085, 0.08, 0.54, 0.24), sharex=ax)
     if has_fit:
-        ax.plot(xf, curve, color="#1b6ca8", lw=2, label=curve_label, zorder=2)
+        ax.plot(xf, curve, color=MODEL_COLOUR, lw=2, label=curve_label, zorder=2)
         if floor_curve is not None:
             floor_curve = np.asarray(floor_curve, float)
             # drawn only where it can be told apart from the model (near the noise floor)
             if np.nanmax(np.abs(floor_curve - curve)) > 0.005 * np.nanmax(np.abs(curve)):
-                ax.plot(xf, floor_curve, color="#e07b00", lw=1.4, ls="--", label=floor_label, zorder=2)
-    ax.plot(x[used], y[used], "o", color="#d1495b", ms=7, label="measured", zorder=3)
+                ax.plot(xf, floor_curve, color=ACCENT_COLOUR, lw=1.4, ls="--", label=floor_label, zorder=2)
+    ax.plot(x[used], y[used], "o", color=DATA_COLOUR, ms=7, label="measured", zorder=3)
     if not used.all():
-        ax.plot(x[~used], y[~used], "o", mfc="none", mec="#d1495b", ms=7, label="measured, not used by the fit",
+        ax.plot(x[~used], y[~used], "o", mfc="none", mec=DATA_COLOUR, ms=7, label="measured, not used by the fit",
                 zorder=3)
     ax.axhline(0, color="#999999", lw=0.8, zorder=1)
     ax.set_ylabel("signal [a.u.]")
-    ax.set_title(title, fontsize=11, loc="left")
-    ax.grid(alpha=0.3)
+    ax.set_title(title, fontsize=11, loc="left", color=INK)
+    style_axes(ax)
     ax.tick_params(labelbottom=False)
     if x_log:
         ax.set_xscale("log")  # shared with the residual panel
@@ -399,13 +429,13 @@ def plot_voxel_fit(
     elif x.size and np.min(x) >= 0:
         ax.set_xlim(left=0)
     if has_fit:
-        axr.axhline(0, color="#1b6ca8", lw=1)
+        axr.axhline(0, color=MODEL_COLOUR, lw=1)
         if noise_sd is not None and np.isfinite(noise_sd) and noise_sd > 0:
-            axr.axhspan(-noise_sd, noise_sd, color="#1b6ca8", alpha=0.12, lw=0, label="+/- noise sd")
-        axr.vlines(x, 0, res, color="#d1495b", lw=1)
-        axr.plot(x[used], res[used], "o", color="#d1495b", ms=5)
+            axr.axhspan(-noise_sd, noise_sd, color=MODEL_COLOUR, alpha=0.12, lw=0, label="+/- noise sd")
+        axr.vlines(x, 0, res, color=DATA_COLOUR, lw=1)
+        axr.plot(x[used], res[used], "o", color=DATA_COLOUR, ms=5)
         if not used.all():
-            axr.plot(x[~used], res[~used], "o", mfc="none", mec="#d1495b", ms=5)
+            axr.plot(x[~used], res[~used], "o", mfc="none", mec=DATA_COLOUR, ms=5)
         lim = np.nanmax(np.abs(res)) if np.any(np.isfinite(res)) else 1.0
         if noise_sd is not None and np.isfinite(noise_sd):
             lim = max(lim, noise_sd)
@@ -417,20 +447,20 @@ def plot_voxel_fit(
         axr.set_yticks([])
     axr.set_ylabel("residual [a.u.]")
     axr.set_xlabel(f"{xlabel} [{x_unit}]" if x_unit else xlabel)
-    axr.grid(alpha=0.3)
+    style_axes(axr)
     box_x = 0.665
     fig.text(box_x, 0.92, "\n".join(lines), fontsize=8.5, va="top", ha="left", family="monospace",
-             bbox={"boxstyle": "round,pad=0.5", "fc": "#f4f4f4", "ec": "#bbbbbb"})
+             bbox={"boxstyle": "round,pad=0.5", "fc": PANEL, "ec": "#bbbbbb"})
     box_y = 0.92 - 0.026 * (len(lines) + 1.5)
     if notes:
         import textwrap
 
         wrapped = "\n".join(textwrap.fill(t, 52) for t in notes)
-        fig.text(box_x, box_y, wrapped, fontsize=8, va="top", ha="left", color="#333333")
+        fig.text(box_x, box_y, wrapped, fontsize=8, va="top", ha="left", color=INK)
         box_y -= 0.024 * (wrapped.count("\n") + 2)
     handles, labels = ax.get_legend_handles_labels()
     h2, l2 = axr.get_legend_handles_labels()
     fig.legend(handles + h2, labels + l2, loc="upper left", bbox_to_anchor=(box_x - 0.005, box_y), fontsize=8.5,
                frameon=False)
-    _save(fig, path)
+    save_png(fig, path)
 

@@ -35,6 +35,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..b1 import b1_units_scale
 from ..errors import InputError, UsageError
 from ..io.nifti import read_sidecar, split_bids_stem
 
@@ -77,10 +78,6 @@ SPECTRUM_KIND = FitKind("MESE", "echo", "mesespectrum", "t2-spectrum", "qmap.wor
 _MAGNITUDE_PARTS = (None, "mag")
 
 #: sidecar ``Units`` of a TB1map -> scale name
-_B1_UNITS = {"fraction": "fraction", "ratio": "fraction", "1": "fraction", "percent": "percent", "%": "percent",
-             "pct": "percent"}
-
-
 def parse_bids_name(path: str | Path) -> tuple[list[tuple[str, str]], str] | None:
     """Entities (in file order) and suffix of a BIDS NIfTI name; None when it is not one.
 
@@ -273,7 +270,7 @@ def _b1_scale(path: Path) -> tuple[str | None, str | None]:
     units = meta.get("Units")
     if units is None or (isinstance(units, str) and not units.strip()):
         return None, None  # the fit then takes fraction, and rejects a map whose values look like percent
-    scale = _B1_UNITS.get(str(units).strip().lower())
+    scale = b1_units_scale(str(units))
     if scale is None:
         return None, (f"{path}: sidecar Units {units!r}; a TB1map is expected in fraction (1 = nominal) or "
                       f"percent (100 = nominal); fix the sidecar")

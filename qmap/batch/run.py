@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import json
 import os
-import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -139,34 +138,23 @@ def _who(p: SeriesPlan) -> str:
 
 
 class BatchProgress:
-    """Series done / failed on stderr: one updating line on a terminal, one line per series otherwise."""
+    """Series done / failed, shown by :class:`qmap.engine.Progress`: one updating line on a terminal, one
+    line per series otherwise."""
 
     def __init__(self, total: int, *, quiet: bool = True, stream=None):
+        from ..engine import Progress
+
         self.total = total
-        self.quiet = quiet
-        self.stream = stream or sys.stderr
         self.counts = {"fitted": 0, "skipped": 0, "failed": 0}
-        self.t0 = time.perf_counter()
-        try:
-            self.tty = self.stream.isatty()
-        except (AttributeError, ValueError):
-            self.tty = False
+        self.bar = Progress(total, "qmap batch", quiet=quiet, stream=stream, log=True)
 
     def update(self, plan: SeriesPlan, res: SeriesResult) -> None:
         self.counts[res.status] += 1
-        if self.quiet:
-            return
-        done = sum(self.counts.values())
         c = self.counts
-        if self.tty:
-            self.stream.write(f"\rqmap batch: {done}/{self.total} series done ({c['fitted']} fitted, "
-                              f"{c['skipped']} skipped, {c['failed']} failed)  {time.perf_counter() - self.t0:6.1f} s")
-            if done == self.total:
-                self.stream.write("\n")
-        else:
-            what = res.status if res.status != "failed" else f"FAILED: {res.reason}"
-            self.stream.write(f"qmap batch: [{done}/{self.total}] {_who(plan)}: {what} ({res.seconds:.1f} s)\n")
-        self.stream.flush()
+        what = res.status if res.status != "failed" else f"FAILED: {res.reason}"
+        self.bar.update(detail=f"{sum(c.values())}/{self.total} series ({c['fitted']} fitted, {c['skipped']} "
+                               f"skipped, {c['failed']} failed)",
+                        line=f"qmap batch: [{sum(c.values())}/{self.total}] {_who(plan)}: {what} ({res.seconds:.1f} s)")
 
 
 def _write_description(deriv: Path, overwrite: bool) -> str | None:
@@ -238,18 +226,6 @@ def _run_local(todo, *, n_jobs, overwrite, progress):
     for res in par(delayed(run_series)(p, overwrite=overwrite) for p in todo):
         progress.update(by_key[res.key], res)
         yield res
-
-
-def _connect(scheduler: str):
-    """A client of the Dask scheduler at ``scheduler`` (a one-line UsageError when unreachable)."""
-    try:
-        from dask.distributed import Client
-    except ImportError:
-        raise UsageError("--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])") from None
-    try:
-        return Client(scheduler, timeout=20, set_as_default=False)
-    except (OSError, TimeoutError, ValueError) as exc:
-        raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
 
 
 def _run_dask(todo, *, client, overwrite, progress):
@@ -337,7 +313,9 @@ def run_batch(
         report.wall_time_s = round(time.perf_counter() - t0, 3)
         return report
     todo = [p for p in plan.series if not p.error]
-    client = _connect(scheduler) if scheduler and todo else None  # before anything is written
+    from ..engine import dask_client
+
+    client = dask_client(scheduler) if scheduler and todo else None  # before anything is written
     try:
         note = _write_description(Path(plan.deriv_dir), overwrite)
         if note:

@@ -30,7 +30,6 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
     """
     import lmfit
 
-    from ..noise import rician_mean
     from .noise_floor import NoiseFloor
 
     noise = noise or NoiseFloor("none")
@@ -68,8 +67,8 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
             def resid(pp, yc=yc, ci=ci, keep=keep, sig_i=None if sig is None else sig[i]):
                 vec = np.array([[pp[nm].value for nm in names]])
                 s = fit_model.predict(vec, ci)
-                if noise.mode == "rician":
-                    s = rician_mean(s, sig_i, coils=noise.coils)
+                if noise.rician:
+                    s = noise.expectation(s, sig_i)
                 return (yc[0] - s[0])[keep]
 
             res = lmfit.minimize(resid, pars, method="leastsq", max_nfev=200 * (P + 1))

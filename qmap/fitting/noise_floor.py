@@ -25,17 +25,19 @@ Usable by every decay model (mono-exponential T2/T2*, the EPG spin-echo model):
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
+from enum import StrEnum
 
 import numpy as np
 
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..models.base import Derived, SeparableModel
-from .solver import levenberg_marquardt
+from .optimizer import levenberg_marquardt
 
-__all__ = ["DEFAULT_MODE", "MODES", "NOISE_ONLY_Z", "RICIAN_SWITCH", "NoiseFloor", "WithOffset"]
+__all__ = ["DEFAULT_MODE", "MODES", "NOISE_ONLY_Z", "RICIAN_SWITCH", "Mode", "NoiseFloor", "WithOffset"]
 
 #: voxels whose lowest fitted sample is below this many sigma get the Rician objective
 #: (relative bias of the Gaussian model there is sigma^2 / (2 S^2) < 0.25 %)
@@ -43,6 +45,23 @@ RICIAN_SWITCH = 15.0
 #: ``rician``: a voxel whose mean sample lies less than this many standard errors above the mean of pure
 #: noise is noise only (status NOISE_ONLY, not fitted); pure noise exceeds it in about 0.1 % of voxels
 NOISE_ONLY_Z = 3.0
+
+
+class Mode(StrEnum):
+    """The noise-floor modes (``--noise-floor``). A ``str``: ``Mode.RICIAN == "rician"``.
+
+    The one place where a mode name is switched on is :class:`NoiseFloor`: the rest of qmap asks it
+    what the mode implies (:attr:`NoiseFloor.needs_sigma`, :attr:`~NoiseFloor.weighted`,
+    :attr:`~NoiseFloor.rician`, :meth:`~NoiseFloor.wrap`, ...).
+    """
+
+    NONE = "none"
+    OFFSET = "offset"
+    TRUNCATE = "truncate"
+    RICIAN = "rician"
+
+
+assert tuple(m.value for m in Mode) == tuple(MODES), "qmap.defaults.NOISE_MODES and Mode list the same modes"
 
 
 class WithOffset(SeparableModel):
@@ -80,7 +99,7 @@ class WithOffset(SeparableModel):
         return self.base.grid()
 
     def report(self, params, cov):
-        return NoiseFloor("offset").report(self.base, params, cov)
+        return NoiseFloor(Mode.OFFSET).report(self.base, params, cov)
 
 
 @dataclass(frozen=True)
@@ -99,28 +118,62 @@ class NoiseFloor:
         more = noncentral chi).
     """
 
-    mode: str = "none"
+    mode: Mode | str = Mode.NONE
     factor: float = 3.0
     min_samples: int = 3
     coils: int = 1
 
     def __post_init__(self):
         if self.mode not in MODES:
-            raise ValueError(f"noise-floor mode {self.mode!r}; expected one of {', '.join(MODES)}")
+            raise ValueError(f"noise-floor mode {str(self.mode)!r}; expected one of {', '.join(MODES)}")
+        object.__setattr__(self, "mode", Mode(self.mode))
 
     @property
     def needs_sigma(self) -> bool:
-        return self.mode in ("truncate", "rician")
+        """The mode needs the noise sd (``truncate``, ``rician``)."""
+        return self.mode in (Mode.TRUNCATE, Mode.RICIAN)
+
+    @property
+    def weighted(self) -> bool:
+        """Samples are weighted (``truncate`` drops the samples near the floor): the fit uses :meth:`weights`."""
+        return self.mode == Mode.TRUNCATE
+
+    @property
+    def rician(self) -> bool:
+        """The fitted signal is the expectation of the noisy magnitude (``rician``)."""
+        return self.mode == Mode.RICIAN
+
+    def with_coils(self, coils: int | None) -> NoiseFloor:
+        """This noise floor with the number of coils found from the data (only ``rician`` uses it)."""
+        if not self.rician or not coils or int(coils) == self.coils:
+            return self
+        return dataclasses.replace(self, coils=int(coils))
+
+    def provenance(self) -> dict:
+        """The settings of this mode for the provenance's ``noise`` entry (beside ``mode`` and sigma)."""
+        if self.mode == Mode.TRUNCATE:
+            return {"truncate_factor": self.factor, "min_samples": self.min_samples}
+        if self.mode == Mode.RICIAN:
+            return {"coils": self.coils}
+        return {}
+
+    def expectation(self, s: np.ndarray, sigma) -> np.ndarray:
+        """What the fit compares with the data for the model signal ``s``: ``E|s + noise|`` (``rician``), else ``s``."""
+        if not self.rician:
+            return s
+        from ..noise import rician_mean
+
+        return rician_mean(s, sigma, coils=self.coils)
 
     def wrap(self, model: SeparableModel) -> SeparableModel:
-        return WithOffset(model) if self.mode == "offset" else model
+        return WithOffset(model) if self.mode == Mode.OFFSET else model
 
     def linear_lower(self, fit_model: SeparableModel) -> np.ndarray:
         return np.array([0.0 if name == "Offset" else -np.inf for name in fit_model.linear])
 
     def report(self, model: SeparableModel, params: np.ndarray, cov: np.ndarray) -> list[Derived]:
         """Reported maps of ``model`` fitted under this noise handling (adds the offset map)."""
-        if self.mode != "offset":
+        if self.mode != Mode.OFFSET:
             return model.report(params, cov)
         k = len(model.linear)  # the offset is the last linear amplitude
         keep = [i for i in range(params.shape[1]) if i != k]
@@ -130,7 +183,7 @@ class NoiseFloor:
     def weights(self, y: np.ndarray, sigma) -> np.ndarray:
         """Sample weights (0/1), (n, m)."""
         w = np.ones_like(y)
-        if self.mode != "truncate":
+        if not self.weighted:
             return w
         floor = self.factor * np.sqrt(np.pi / 2) * np.broadcast_to(np.asarray(sigma, float), y.shape[:1])
         below = y < floor[:, None]
@@ -153,7 +206,7 @@ class NoiseFloor:
         the noise, so it is not made.
         """
         n, m = y.shape
-        if self.mode != "rician" or sigma is None or m == 0:
+        if not self.rician or sigma is None or m == 0:
             return np.zeros(n, bool)
         k = math.sqrt(2.0) * math.exp(math.lgamma(self.coils + 0.5) - math.lgamma(self.coils))
         sd = math.sqrt(max(2.0 * self.coils - k * k, 0.0))
@@ -171,7 +224,7 @@ class NoiseFloor:
                       se_tol=1e-3):
         """Refit near-floor voxels (``select``, default :meth:`rician_select`) with the Rician expectation.
 
-        ``max_iter`` and ``se_tol`` are those of :func:`~qmap.fitting.solver.levenberg_marquardt`.
+        ``max_iter`` and ``se_tol`` are those of :func:`~qmap.fitting.optimizer.levenberg_marquardt`.
         """
         from ..noise import rician_mean_grad
 

@@ -40,9 +40,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .. import status as st
 from ..models.base import SeparableModel
-from . import status as st
 from .linalg import chol_inverse, chol_solve
+from .noise_floor import RICIAN_SWITCH, NoiseFloor
+from .optimizer import levenberg_marquardt
+from .optimizer import normal_equations as _normal
 
 __all__ = ["ChunkFit", "fit_chunk", "fit_chunk_unit", "grid_start", "levenberg_marquardt", "linear_amplitudes", "voxel_scale"]
 
@@ -206,166 +209,6 @@ def linear_amplitudes(model: SeparableModel, y, w, theta, ctx) -> np.ndarray:
     return chol_solve(a, b)
 
 
-def _normal(J, w, r):
-    """J^T W J (n, P, P) and J^T W r (n, P) for J (n, P, m); row-wise sums only. ``w`` None = all ones."""
-    n, P, _m = J.shape
-    Jw = J if w is None else J * w[:, None, :]
-    JTJ = np.empty((n, P, P))
-    g = np.empty((n, P))
-    for i in range(P):
-        g[:, i] = np.einsum("nm,nm->n", Jw[:, i], r)
-        for j in range(i, P):
-            JTJ[:, i, j] = np.einsum("nm,nm->n", Jw[:, i], J[:, j])
-            JTJ[:, j, i] = JTJ[:, i, j]
-    return JTJ, g
-
-
-def levenberg_marquardt(
-    evaluate,
-    y: np.ndarray,
-    w: np.ndarray | None,
-    p0: np.ndarray,
-    lo: np.ndarray,
-    hi: np.ndarray,
-    *,
-    max_iter: int = 60,
-    xtol: float = 1e-8,
-    ftol: float = 1e-13,
-    se_tol: float = 1e-3,
-):
-    """Batched, bounded Levenberg-Marquardt.
-
-    Parameters
-    ----------
-    evaluate : callable
-        ``evaluate(p, idx) -> (s, J)``: signal (k, m) and Jacobian (k, P, m)
-        of the voxels ``idx`` at parameters ``p`` (k, P).
-    y, w : (n, m) ndarray
-        Data and sample weights (0/1); ``w`` None means all ones.
-    p0 : (n, P) ndarray
-        Start.
-    lo, hi : (P,) ndarray
-        Bounds (``-inf``/``inf`` for none); steps are projected onto them.
-
-    Returns
-    -------
-    p, rss, J, converged, n_iter
-
-    Notes
-    -----
-    A voxel has converged when its proposed step is negligible (below
-    ``xtol`` relative, or below ``se_tol`` times a lower bound of each
-    parameter's standard error) while the damping is moderate; it is then
-    not evaluated again, so the answer is within that
-    tolerance of the minimum and costs one model evaluation less than
-    confirming the step: the step is taken, and the RSS and Jacobian
-    returned for it are those of the point before. It has also converged when an accepted step lowers
-    the RSS by less than ``ftol`` relative, or when no downhill step exists.
-    """
-    n, P = p0.shape
-    m_dof = y.shape[1] - P
-    p = p0.copy()
-    s, J = evaluate(p, np.arange(n))
-    r = y - s
-    rss = np.einsum("nm,nm->n", r if w is None else w * r, r)
-    rss[~np.isfinite(rss)] = np.inf
-    converged = rss == 0
-    n_iter = np.zeros(n, int)
-    # the working set: compacted copies of the voxels still iterating, written
-    # back whenever it is compacted (avoids fancy indexing on every step)
-    idx = np.flatnonzero(np.isfinite(rss) & ~converged)
-    wp, wy, wr, wJ, wrss = p[idx], y[idx], r[idx], J[idx], rss[idx]
-    ww = None if w is None else w[idx]
-    lam = np.full(idx.size, 1e-3)
-    nu = np.full(idx.size, 2.0)
-    live = np.ones(idx.size, bool)
-    wit = np.zeros(idx.size, int)
-
-    def write_back():
-        p[idx], rss[idx], J[idx], n_iter[idx] = wp, wrss, wJ, wit
-
-    for _ in range(max_iter):
-        if not live.any():
-            break
-        if live.sum() < 0.7 * live.size:  # compact
-            write_back()
-            converged[idx[~live]] = converged[idx[~live]]
-            keep = live
-            idx, wp, wy, wr, wJ, wrss, lam, nu, wit = (
-                idx[keep], wp[keep], wy[keep], wr[keep], wJ[keep], wrss[keep], lam[keep], nu[keep], wit[keep])
-            ww = None if ww is None else ww[keep]
-            live = np.ones(idx.size, bool)
-        JTJ, g = _normal(wJ, ww, wr)
-        # active-set handling of bounds: a parameter sitting on a bound with the
-        # gradient pointing outwards is frozen for this step
-        frozen = ((wp <= lo) & (g < 0)) | ((wp >= hi) & (g > 0))
-        if frozen.any():
-            for i in range(P):
-                f = frozen[:, i]
-                JTJ[f, i, :] = 0.0
-                JTJ[f, :, i] = 0.0
-                JTJ[f, i, i] = 1.0
-                g[f, i] = 0.0
-        d = np.einsum("npp->np", JTJ).copy()
-        d = np.maximum(d, 1e-12 * np.max(d, axis=1, keepdims=True) + 1e-300)
-        H = JTJ.copy()
-        for i in range(P):
-            JTJ[:, i, i] += lam * d[:, i]
-        delta = chol_solve(JTJ, g)
-        pn = np.clip(wp + delta, lo, hi)
-        # predicted RSS decrease of the (projected) step from the linear model: dc^T (2 g - H dc)
-        dc = pn - wp
-        pred = np.einsum("np,np->n", dc, 2 * g - np.einsum("npq,nq->np", H, dc))
-        step = np.abs(pn - wp)
-        small_step = np.all(step <= xtol * (np.abs(wp) + xtol), axis=1)
-        # ... or negligible against the statistical uncertainty: below se_tol of s / sqrt(H_ii), a lower
-        # bound of each parameter's standard error (s^2 = RSS / dof)
-        if m_dof > 0:
-            with np.errstate(divide="ignore", invalid="ignore"):
-                se_floor = np.sqrt(wrss / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", H))
-            small_step |= np.all(step <= se_tol * se_floor, axis=1)
-        # a small step only means convergence when it was not made small by heavy damping
-        small_step &= lam <= 1.0
-        # a voxel whose proposed step is already negligible has converged where it is: it is not evaluated
-        # again (nor are the voxels that finished earlier and still sit in the working set)
-        need = live & ~small_step
-        if need.all():
-            sn, Jn = evaluate(pn, idx)
-        else:
-            k = np.flatnonzero(need)
-            sn = np.zeros_like(wr)
-            Jn = np.zeros_like(wJ)
-            if k.size:
-                sn[k], Jn[k] = evaluate(pn[k], idx[k])
-        rn = wy - sn
-        rssn = np.einsum("nm,nm->n", rn if ww is None else ww * rn, rn)
-        ok = need & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
-        wit += live
-        small_drop = (wrss - rssn) <= ftol * wrss
-        # damping after Nielsen (1999; Madsen, Nielsen & Tingleff, "Methods for non-linear least
-        # squares problems", 2004): shrink by how well the linear model predicted the decrease
-        with np.errstate(divide="ignore", invalid="ignore"):
-            rho = np.where(pred > 0, (wrss - rssn) / pred, 0.0)
-        shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
-        np.copyto(wp, pn, where=ok[:, None])
-        np.copyto(wr, rn, where=ok[:, None])
-        np.copyto(wJ, Jn, where=ok[:, None, None])
-        np.copyto(wrss, rssn, where=ok)
-        # the negligible steps are taken without evaluating them (RSS and Jacobian stay those of the point
-        # before: they differ by second order in a step far below the standard error)
-        np.copyto(wp, pn, where=(live & small_step & np.all(np.isfinite(pn), axis=1))[:, None])
-        lam = np.where(ok, np.maximum(lam * shrink, 1e-12), lam * nu)
-        nu = np.where(ok, 2.0, nu * 2.0)
-        # converged: the proposed step is negligible (accepted or not: at the minimum, rounding can
-        # make a negligible step look uphill), or the RSS no longer drops, or no downhill step exists
-        done = small_step | np.where(ok, small_drop | (rssn == 0), lam > 1e12)
-        done &= live
-        converged[idx[done]] = True
-        live &= ~done
-    write_back()
-    return p, rss, J, converged, n_iter
-
-
 def voxel_scale(y: np.ndarray) -> np.ndarray:
     """Per-voxel intensity scale used to normalise the data before fitting, (n,).
 
@@ -405,8 +248,6 @@ def fit_chunk(
     sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), y.shape[:1]) / scale
     fit = fit_chunk_unit(model, y / scale[:, None], ctx=ctx, noise=noise, sigma=sig, max_iter=max_iter,
                          stderr=stderr)
-    from .noise_floor import NoiseFloor  # local import: noise_floor imports this module
-
     L = len((noise or NoiseFloor("none")).wrap(model).linear)
     f = np.ones(fit.params.shape)
     f[:, :L] = scale[:, None]
@@ -446,15 +287,13 @@ def fit_chunk_unit(
         residual variance RSS/(m_used - P). Without ``sigma`` the residual
         variance is used (and sigma nowhere).
     """
-    from .noise_floor import NoiseFloor  # local import: noise_floor imports this module
-
     noise = noise or NoiseFloor("none")
     y = np.asarray(y, dtype=np.float64)
     n, _m = y.shape
     fit_model = noise.wrap(model)
     w = noise.weights(y, sigma)
     n_used = w.sum(axis=1).astype(int)
-    wl = None if noise.mode != "truncate" else w  # all-ones weights are skipped in the hot loop
+    wl = w if noise.weighted else None  # all-ones weights are skipped in the hot loop
     P = len(fit_model.param_names)
     L = len(fit_model.linear)
     lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
@@ -469,7 +308,7 @@ def fit_chunk_unit(
 
     # with the Rician objective to follow, the stand-in's plain least-squares fit only chooses the voxels that
     # need it and starts it: it stops at a looser tolerance (and goes on for the voxels that keep it)
-    loose = guide is not None and noise.mode == "rician"
+    loose = guide is not None and noise.rician
 
     def evaluate(p, idx):
         return run_model.signal_jacobian(p, _take(ctx, idx))
@@ -513,7 +352,7 @@ def fit_chunk_unit(
     assert best is not None, "a model offers at least one start candidate"
     p, rss, J, conv, nit, yfit = best
 
-    sel = noise.rician_select(run_model, p, sigma, ctx) if noise.mode == "rician" else np.zeros(0, np.intp)
+    sel = noise.rician_select(run_model, p, sigma, ctx) if noise.rician else np.zeros(0, np.intp)
     if loose and sel.size < n:
         plain = np.setdiff1d(np.arange(n), sel)
 
@@ -559,7 +398,7 @@ def fit_chunk_unit(
             s2 = np.where(dof > 0, s2, sig2)
     cov = inv * s2[:, None, None]
     if sigma is not None and stderr == "noise":
-        if noise.mode == "rician":
+        if noise.rician:
             cov = _rician_covariance(fit_model, p, J, inv, cov, wl, sigma, ctx, noise.coils)
         if getattr(model, "sign_ambiguous", False):
             cov = _widen_near_null(fit_model, p, J, cov, wl, s2, ctx)
@@ -594,7 +433,6 @@ def _rician_covariance(fit_model, p, J, inv, cov, w, sigma, ctx, coils):
     own model); far from the floor (lowest sample above ``RICIAN_SWITCH``
     sigma) the variance is sigma^2 to better than 0.25 % and ``cov`` is kept.
     """
-    from .noise_floor import RICIAN_SWITCH
     from .uncertainty import rician_sample_variance, sandwich
 
     n = p.shape[0]

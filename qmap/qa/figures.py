@@ -15,11 +15,11 @@ import matplotlib
 import numpy as np
 from matplotlib import dates as mdates
 from matplotlib import patheffects, ticker
-from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import LineCollection
 from matplotlib.colors import LogNorm, Normalize
 from matplotlib.figure import Figure
 
+from ..plots import DPI, INK, canvas, save_png, style_axes
 from .history import ALPHA
 from .quantities import RATE_PARAMS
 
@@ -39,14 +39,6 @@ PASS = "#1d7a6a"
 FAIL = "#b4462b"
 DRIFT = "#c98a0b"
 BAND = "#dfe5ee"
-INK = "#2b2f36"
-DPI = 100
-
-
-def _fig(w_px: int, h_px: int) -> Figure:
-    fig = Figure(figsize=(w_px / DPI, h_px / DPI), dpi=DPI)
-    FigureCanvasAgg(fig)
-    return fig
 
 
 def _margins(fig: Figure, *, left, right, bottom, top, nrows=1, ncols=1, hgap=0, wgap=0) -> None:
@@ -61,15 +53,10 @@ def _margins(fig: Figure, *, left, right, bottom, top, nrows=1, ncols=1, hgap=0,
 def png_bytes(fig: Figure) -> bytes:
     """The figure as PNG bytes."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=DPI, facecolor="white")
+    save_png(fig, buf)
     return buf.getvalue()
 
 
-def _style(ax):
-    for side in ("top", "right"):
-        ax.spines[side].set_visible(False)
-    ax.tick_params(colors=INK, labelsize=9)
-    ax.grid(True, color="#e9ecf1", linewidth=0.8, zorder=0)
 
 
 def _plain_log_ticks(ax):
@@ -125,11 +112,11 @@ def measured_vs_reference(rows, tolerance_pct: float) -> Figure:
     """Median ROI value vs reference on log-log axes, one panel per parameter."""
     groups = _by_param(rows)
     n = len(groups)
-    fig = _fig(450 * n + 30, 460)
+    fig = canvas(450 * n + 30, 460)
     _margins(fig, left=80, right=20, bottom=55, top=35, ncols=n, wgap=95)
     axes = fig.subplots(1, n, squeeze=False)[0]
     for ax, (par, rs) in zip(axes, groups.items()):
-        _style(ax)
+        style_axes(ax)
         ref = np.array([r.reference for r in rs])
         med = np.array([r.median for r in rs])
         err = np.array([r.robust_sd for r in rs])
@@ -167,11 +154,11 @@ def error_per_vial(rows, tolerance_pct: float) -> Figure:
     groups = _by_param(rows)
     n = len(groups)
     nv = max(len(rs) for rs in groups.values())
-    fig = _fig(max(760, 80 * nv + 200), 300 * n + 60)
+    fig = canvas(max(760, 80 * nv + 200), 300 * n + 60)
     _margins(fig, left=75, right=20, bottom=60, top=35, nrows=n, hgap=70)
     axes = fig.subplots(n, 1, squeeze=False)[:, 0]
     for ax, (par, rs) in zip(axes, groups.items()):
-        _style(ax)
+        style_axes(ax)
         x = np.arange(len(rs))
         e = np.array([r.error_pct for r in rs])
         bars = np.array([100 * r.robust_sd / r.reference for r in rs])
@@ -236,7 +223,7 @@ def roi_overlay(data: np.ndarray, zooms, rois_used: dict, labels: np.ndarray, *,
         norm, scale = Normalize(vmin - pad, vmax + pad), "linear scale"
     ratio = data.shape[1] * zooms[1] / (data.shape[0] * zooms[0])
     w = 720
-    fig = _fig(w, int(np.clip((w - 170) * ratio, 320, 900)) + 100)
+    fig = canvas(w, int(np.clip((w - 170) * ratio, 320, 900)) + 100)
     _margins(fig, left=65, right=75, bottom=55, top=50)
     ax = fig.add_subplot()
     cmap = matplotlib.colormaps["plasma" if param in RATE_PARAMS else "viridis"].with_extremes(bad="#3a3d42")
@@ -280,7 +267,7 @@ def history_panels(series: dict, trends: dict, *, param: str, unit_note: str = "
     n = len(series)
     ncol = min(4, n)
     nrow = int(np.ceil(n / ncol))
-    fig = _fig(265 * ncol + 60, 215 * nrow + 75)
+    fig = canvas(265 * ncol + 60, 215 * nrow + 75)
     _margins(fig, left=65, right=15, bottom=45, top=60, nrows=nrow, ncols=ncol, hgap=75, wgap=22)
     axes = fig.subplots(nrow, ncol, squeeze=False, sharex=True, sharey=True)
     lim = 0.0
@@ -291,7 +278,7 @@ def history_panels(series: dict, trends: dict, *, param: str, unit_note: str = "
     x_lo: dt.date | None = None
     x_hi: dt.date | None = None
     for ax, ((lab, name), (dates, err, ok, tol)) in zip(axes.ravel(), series.items()):
-        _style(ax)
+        style_axes(ax)
         lim = max(lim, 1.6 * tol, 1.15 * float(np.nanmax(np.abs(err))) if np.isfinite(err).any() else 0)
         ax.axhspan(-tol, tol, color=BAND, zorder=1)
         ax.axhline(0, color=INK, lw=0.6, zorder=2)

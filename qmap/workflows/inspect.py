@@ -413,7 +413,6 @@ def _figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
     """
     from ..engine import fit_voxels
     from ..fitting import status as st
-    from ..noise import rician_mean
 
     minfo, acq = prov.get("model", {}), prov.get("acquisition", {})
     y, x, paths = _voxel_inputs(prov, ijk, cls.varied)
@@ -465,9 +464,9 @@ def _figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
     elif magnitude:
         curve, at_x = np.abs(curve), np.abs(at_x)
     floor = None
-    if noise.mode == "rician" and sigma:
-        floor = rician_mean(curve, sigma, coils=noise.coils)
-        at_x = rician_mean(at_x, sigma, coils=noise.coils)
+    if noise.rician and sigma:
+        floor = noise.expectation(curve, sigma)
+        at_x = noise.expectation(at_x, sigma)
     used = noise.weights(np.abs(y)[None, :], sig)[0] > 0
     label = "fitted model" + (" (signed: polarity restored)" if signed_ir else "")
     if model.discrete:

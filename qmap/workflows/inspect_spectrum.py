@@ -64,21 +64,21 @@ def spectrum_voxel(prov: dict, out_dir: Path, ijk, y: NDArray[np.float64]) -> di
 
 def plot_voxel_spectrum(path, *, te, y, fitted, t2, spectrum, window, title: str, lines) -> None:
     """PNG: the echo train with the fitted train and residuals (left), the T2 spectrum (right)."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+    from ..plots import ACCENT_COLOUR, DATA_COLOUR, INK, MODEL_COLOUR, canvas, save_png, style_axes
 
-    fig = Figure(figsize=(11, 5.2), dpi=100)
-    FigureCanvasAgg(fig)
+    fig = canvas(1100, 520)
     gs = fig.add_gridspec(2, 2, height_ratios=(3, 1), width_ratios=(1, 1), hspace=0.08, wspace=0.25)
     ax = fig.add_subplot(gs[0, 0])
     axr = fig.add_subplot(gs[1, 0], sharex=ax)
     axs = fig.add_subplot(gs[:, 1])
     ms = np.asarray(te) * 1e3
-    ax.plot(ms, y, "o", ms=4, color="0.2", label="measured echoes")
+    for a in (ax, axr, axs):
+        style_axes(a)
+    ax.plot(ms, y, "o", ms=4, color=DATA_COLOUR, label="measured echoes")
     if np.all(np.isfinite(fitted)):
-        ax.plot(ms, fitted, "-", color="tab:blue", label="fitted train (spectrum x EPG basis)")
+        ax.plot(ms, fitted, "-", color=MODEL_COLOUR, label="fitted train (spectrum x EPG basis)")
         axr.axhline(0, color="0.6", lw=0.8)
-        axr.plot(ms, y - fitted, "o-", ms=3, color="tab:red")
+        axr.plot(ms, y - fitted, "o-", ms=3, color=DATA_COLOUR)
     ax.set_ylabel("signal [a.u.]")
     ax.legend(loc="upper right", fontsize=8)
     ax.tick_params(labelbottom=False)
@@ -87,12 +87,12 @@ def plot_voxel_spectrum(path, *, te, y, fitted, t2, spectrum, window, title: str
     t2ms = np.asarray(t2) * 1e3
     ok = np.isfinite(spectrum)
     if ok.any():
-        axs.vlines(t2ms[ok], 0, spectrum[ok], color="tab:blue", lw=3)
-    axs.axvspan(window[0] * 1e3, window[1] * 1e3, color="tab:orange", alpha=0.15, label="short-T2 window")
+        axs.vlines(t2ms[ok], 0, spectrum[ok], color=MODEL_COLOUR, lw=3)
+    axs.axvspan(window[0] * 1e3, window[1] * 1e3, color=ACCENT_COLOUR, alpha=0.15, label="short-T2 window")
     axs.set_xscale("log")
     axs.set_xlabel("T2 [ms]")
     axs.set_ylabel("amplitude [a.u.]")
     axs.legend(loc="upper right", fontsize=8)
     ax.text(0.38, 0.72, "\n".join(lines), transform=ax.transAxes, va="top", fontsize=8, family="monospace")
-    fig.suptitle(title, fontsize=10)
-    fig.savefig(str(path), format="png")
+    fig.suptitle(title, fontsize=10, color=INK)
+    save_png(fig, path)

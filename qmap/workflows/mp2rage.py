@@ -24,8 +24,8 @@ from pathlib import Path
 
 import numpy as np
 
+from .. import status as st
 from ..errors import InputError, UsageError, warn
-from ..fitting import status as st
 from ..io.nifti import check_same_grid, image_data, load_image, read_sidecar
 from ..io.series import Series, resolve_parameter
 from ..maps import MapSet

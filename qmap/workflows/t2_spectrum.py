@@ -14,10 +14,10 @@ import time
 
 import numpy as np
 
+from .. import status as st
 from ..checks import check_series_shape
 from ..engine import fit_voxels, resolve_jobs
 from ..errors import InputError, UsageError, warn
-from ..fitting import status as st
 from ..io.writer import OutputFile
 from ..maps import QUALITY_DESCRIPTIONS, MapSet, _Gather
 from ..models.epg_t2 import echo_spacing
