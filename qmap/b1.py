@@ -48,8 +48,8 @@ from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
 if TYPE_CHECKING:
     from nibabel.spatialimages import SpatialImage
 
-__all__ = ["B1_METHODS", "B1_SCALES", "B1ClosedForm", "afi_angle", "afi_b1", "afi_ratio", "b1_maps", "b1_stderr_beside", "dam_angle",
-           "dam_b1", "load_b1_map", "load_b1_stderr"]
+__all__ = ["B1_METHODS", "B1_SCALES", "B1_UNITS", "B1ClosedForm", "afi_angle", "afi_b1", "afi_ratio", "b1_maps",
+           "b1_stderr_beside", "b1_units_scale", "dam_angle", "dam_b1", "load_b1_map", "load_b1_stderr"]
 
 #: plausible median of a relative B1 map (fraction)
 B1_MEDIAN_RANGE = (0.2, 5.0)
@@ -495,13 +495,28 @@ def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "frac
     return se, {"b1_stderr_median": med, "b1_stderr_resampling": "trilinear through the affines"}
 
 
+#: sidecar ``Units`` of a B1 map (lower case, stripped) -> its scale
+B1_UNITS = {"fraction": "fraction", "ratio": "fraction", "1": "fraction", "": "fraction",
+            "percent": "percent", "%": "percent", "pct": "percent"}
+
+
+def b1_units_scale(units: object) -> str | None:
+    """The scale (``"fraction"``, 1 = nominal, or ``"percent"``, 100 = nominal) a B1 sidecar's ``Units`` names.
+
+    The one reader of B1 ``Units`` (the fits and batch's planning). None when ``units`` is not a
+    string or names neither scale.
+
+    Examples
+    --------
+    >>> b1_units_scale(" Percent"), b1_units_scale("1"), b1_units_scale("Hz")
+    ('percent', 'fraction', None)
+    """
+    return B1_UNITS.get(units.strip().lower()) if isinstance(units, str) else None
+
+
 def _b1_scale(path: Path, scale: str | None) -> tuple[str, str]:
     units = read_sidecar(path).get("Units")
-    side = None
-    if isinstance(units, str):
-        u = units.strip().lower()
-        side = ("percent" if u in ("percent", "%", "pct")
-                else "fraction" if u in ("fraction", "1", "ratio", "") else None)
+    side = b1_units_scale(units)
     if scale is not None:
         if scale not in B1_SCALES:
             raise UsageError(f"--b1-scale {scale!r}: expected fraction or percent")

@@ -64,7 +64,7 @@ def spectrum_voxel(prov: dict, out_dir: Path, ijk, y: NDArray[np.float64]) -> di
 
 def plot_voxel_spectrum(path, *, te, y, fitted, t2, spectrum, window, title: str, lines) -> None:
     """PNG: the echo train with the fitted train and residuals (left), the T2 spectrum (right)."""
-    from ..plots import ACCENT_COLOUR, DATA_COLOUR, INK, MODEL_COLOUR, canvas, save_png, style_axes
+    from ..plots import ACCENT_COLOUR, DATA_COLOUR, INK, MODEL_COLOUR, PANEL, canvas, save_png, style_axes
 
     fig = canvas(1100, 520)
     gs = fig.add_gridspec(2, 2, height_ratios=(3, 1), width_ratios=(1, 1), hspace=0.08, wspace=0.25)
@@ -93,6 +93,7 @@ def plot_voxel_spectrum(path, *, te, y, fitted, t2, spectrum, window, title: str
     axs.set_xlabel("T2 [ms]")
     axs.set_ylabel("amplitude [a.u.]")
     axs.legend(loc="upper right", fontsize=8)
-    ax.text(0.38, 0.72, "\n".join(lines), transform=ax.transAxes, va="top", fontsize=8, family="monospace")
+    ax.text(0.38, 0.72, "\n".join(lines), transform=ax.transAxes, va="top", fontsize=8, family="monospace",
+            color=INK, bbox={"boxstyle": "round,pad=0.4", "fc": PANEL, "ec": "#bbbbbb", "alpha": 0.9}, zorder=5)
     fig.suptitle(title, fontsize=10, color=INK)
     save_png(fig, path)
