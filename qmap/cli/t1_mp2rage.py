@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-import argparse
-
 from ..models.mp2rage import DEFAULT_EFFICIENCY
 from ..units import parse_time
 from ..workflows.mp2rage import run_t1_mp2rage
-from .common import add_common, angles, common_from_args, finish, times
+from .common import add_b1, add_common, angles, common_from_args, finish, positive_int, times
 
 
 def add_parser(sub) -> None:
@@ -49,29 +47,13 @@ def add_parser(sub) -> None:
     q.add_argument("--inversion-efficiency", type=float, default=None, metavar="E",
                    help=f"Mz after / before the inversion, sign removed, in (0, 1]; default {DEFAULT_EFFICIENCY:g} "
                         f"(adiabatic inversion)")
-    b = p.add_argument_group("transmit field (B1) correction")
-    b.add_argument("--b1", metavar="B1MAP", help="relative B1 map (actual / nominal angle) on any grid, resampled "
-                   "through the affines; voxels outside it get status 6")
-    b.add_argument("--b1-scale", choices=("fraction", "percent"), default=None,
-                   help="units of the B1 map (default: its sidecar Units, else fraction)")
-    b.add_argument("--b1-smooth", type=float, default=None, metavar="FWHM_MM",
-                   help="Gaussian smoothing of the B1 map before resampling, FWHM in mm (default: none)")
-    b.add_argument("--b1-stderr", default="auto", metavar="auto|none|FILE",
-                   help="standard error of the B1 map, propagated into the standard errors (with --inv1/--inv2): "
-                        "auto (default) uses the desc-stderr map that qmap b1 writes beside its TB1map when present; "
-                        "none switches it off; or a NIfTI map in the B1 map's units")
+    add_b1(p, into="the standard errors (with --inv1/--inv2)")
     add_common(p, engine=False)  # a table lookup, nothing to fit: no --engine choice
     p.set_defaults(run=run)
 
 
 def _shots(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        value = 0
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a positive whole number of excitations")
-    return value
+    return positive_int(text, "excitations")
 
 
 def run(args) -> int:

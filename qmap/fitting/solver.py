@@ -47,7 +47,7 @@ from .noise_floor import RICIAN_SWITCH, NoiseFloor
 from .optimizer import levenberg_marquardt
 from .optimizer import normal_equations as _normal
 
-__all__ = ["ChunkFit", "fit_chunk", "fit_chunk_unit", "grid_start", "levenberg_marquardt", "linear_amplitudes", "voxel_scale"]
+__all__ = ["ChunkFit", "fit_chunk", "grid_start", "levenberg_marquardt", "linear_amplitudes", "voxel_scale"]
 
 #: columns of the grid handled per matrix product (bounds memory for 2D grids)
 GRID_BLOCK = 256
@@ -227,48 +227,13 @@ def fit_chunk(
     y: np.ndarray,
     *,
     ctx: dict | None = None,
-    noise=None,
+    noise: NoiseFloor | None = None,
     sigma: np.ndarray | None = None,
     max_iter: int = 60,
     stderr: str = "noise",
+    normalise: bool = True,
 ) -> ChunkFit:
     """Fit ``model`` to the voxels ``y`` (n, m); see the module docstring.
-
-    Each voxel is divided by its :func:`voxel_scale` (and ``sigma`` with it)
-    before fitting, and the amplitudes, their covariances, the RSS and the RMS
-    residual are scaled back: the answer is the same (to rounding) for data
-    multiplied by any positive factor. Without this, the damping of the
-    Levenberg-Marquardt step (relative to the largest curvature over
-    parameters with different units) froze the decay times of voxels with
-    large amplitudes (data x 1e6 moved T2* by 1.6 %, EPG T2 by 3.8 %).
-    Parameters as for :func:`fit_chunk_unit`.
-    """
-    y = np.asarray(y, dtype=np.float64)
-    scale = voxel_scale(y)
-    sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), y.shape[:1]) / scale
-    fit = fit_chunk_unit(model, y / scale[:, None], ctx=ctx, noise=noise, sigma=sig, max_iter=max_iter,
-                         stderr=stderr)
-    L = len((noise or NoiseFloor("none")).wrap(model).linear)
-    f = np.ones(fit.params.shape)
-    f[:, :L] = scale[:, None]
-    fit.params *= f
-    fit.cov *= f[:, :, None] * f[:, None, :]
-    fit.rss *= scale**2
-    fit.rmse *= scale
-    return fit
-
-
-def fit_chunk_unit(
-    model: SeparableModel,
-    y: np.ndarray,
-    *,
-    ctx: dict | None = None,
-    noise=None,
-    sigma: np.ndarray | None = None,
-    max_iter: int = 60,
-    stderr: str = "noise",
-) -> ChunkFit:
-    """Fit ``model`` to the voxels ``y`` (n, m) as given (no normalisation); see the module docstring.
 
     Parameters
     ----------
@@ -281,14 +246,43 @@ def fit_chunk_unit(
         Noise-floor handling; None means plain least squares.
     sigma : (n,) ndarray, optional
         Noise standard deviation per voxel (needed by ``truncate`` and ``rician``).
+    max_iter : int
+        Levenberg-Marquardt iterations at most.
     stderr : {"noise", "residual"}
         Covariance convention when ``sigma`` is given: the inverse Fisher
         information with the known noise sd (default), or the per-voxel
         residual variance RSS/(m_used - P). Without ``sigma`` the residual
         variance is used (and sigma nowhere).
+    normalise : bool
+        Divide each voxel by its :func:`voxel_scale` (and ``sigma`` with it)
+        before fitting, and scale the amplitudes, their covariances, the RSS
+        and the RMS residual back (default): the answer is the same (to
+        rounding) for data multiplied by any positive factor. Without this,
+        the damping of the Levenberg-Marquardt step (relative to the largest
+        curvature over parameters with different units) froze the decay
+        times of voxels with large amplitudes (data x 1e6 moved T2* by 1.6 %,
+        EPG T2 by 3.8 %). False fits the data as given.
     """
-    noise = noise or NoiseFloor("none")
     y = np.asarray(y, dtype=np.float64)
+    if not normalise:
+        return _fit_unit(model, y, ctx, noise or NoiseFloor("none"), sigma, max_iter, stderr)
+    scale = voxel_scale(y)
+    sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), y.shape[:1]) / scale
+    noise = noise or NoiseFloor("none")
+    fit = _fit_unit(model, y / scale[:, None], ctx, noise, sig, max_iter, stderr)
+    L = len(noise.wrap(model).linear)
+    f = np.ones(fit.params.shape)
+    f[:, :L] = scale[:, None]
+    fit.params *= f
+    fit.cov *= f[:, :, None] * f[:, None, :]
+    fit.rss *= scale**2
+    fit.rmse *= scale
+    return fit
+
+
+def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: NoiseFloor, sigma: np.ndarray | None,
+              max_iter: int, stderr: str) -> ChunkFit:
+    """:func:`fit_chunk` of the samples ``y`` as given (``normalise=False``)."""
     n, _m = y.shape
     fit_model = noise.wrap(model)
     w = noise.weights(y, sigma)

@@ -292,7 +292,7 @@ class EpgT2Table(EpgT2):
     differences of ``dE/dc`` along ``u``). It has the parameters, bounds and
     start dictionary of the exact model. The solver uses it for the start and
     the bulk of the iterations and finishes every fit with the exact model
-    (:func:`qmap.fitting.solver.fit_chunk_unit`), so it decides how fast the
+    (:func:`qmap.fitting.solver.fit_chunk`), so it decides how fast the
     exact minimum is reached, not where it is. The interpolation is
     element-wise per voxel (row gathers and one small product per voxel), so
     results do not depend on chunking.
