@@ -1111,7 +1111,8 @@ def estimate_noise(
         chosen.coils = 1 if coils is None else coils
     if local:
         if model is None:
-            raise InputError("--sigma local needs a fitted model (a command that fits a signal model)")
+            raise InputError("sigma='local' needs a fitted model (model=; on the command line: a command that fits a "
+                             "signal model)")
         return local_noise_map(source, model, mask=fit_mask, obj=obj, ctx_maps=ctx_maps, max_bytes=max_bytes,
                                first=chosen, n_jobs=n_jobs)
     return chosen

@@ -291,49 +291,49 @@ def _check(method, value_range, samples, limits, snr, tr, evaluate):
     spec = _METHODS[method]
     lo, hi = value_range
     if not (np.isfinite(lo) and np.isfinite(hi) and lo > 0 and hi >= lo):
-        raise InputError(f"--range {lo:g},{hi:g}: give one positive {spec.parameter} or LO,HI with LO <= HI "
+        raise InputError(f"value_range={lo:g},{hi:g}: give one positive {spec.parameter} or LO,HI with LO <= HI "
                          f"(seconds, or with a unit: 300ms,2s)")
     if not (np.isfinite(snr) and snr > 0):
-        raise InputError(f"--snr {snr:g}: give the signal-to-noise ratio M0/sigma, a positive number such as 50")
+        raise InputError(f"snr={snr:g}: give the signal-to-noise ratio M0/sigma, a positive number such as 50")
     if samples < spec.min_samples:
-        raise InputError(f"--samples {samples}: the {method} model has {spec.n_params} free parameters, so it "
-                         f"needs at least {spec.min_samples} samples; give --samples {spec.min_samples} or more")
+        raise InputError(f"samples={samples}: the {method} model has {spec.n_params} free parameters, so it "
+                         f"needs at least {spec.min_samples} samples; give samples={spec.min_samples} or more")
     if samples > 256:
-        raise InputError(f"--samples {samples}: at most 256 samples can be planned")
+        raise InputError(f"samples={samples}: at most 256 samples can be planned")
     if method == "vfa" and tr is None:
-        raise InputError("plan vfa needs the repetition time: give --tr, e.g. --tr 15ms")
+        raise InputError("the vfa plan needs the repetition time: give tr=TR in seconds, e.g. tr=0.015")
     if tr is not None and not (np.isfinite(tr) and tr > 0):
-        raise InputError(f"--tr {tr:g}: must be a positive time")
+        raise InputError(f"tr={tr:g}: must be a positive time")
     llo, lhi = limits
     if not (np.isfinite(llo) and np.isfinite(lhi) and 0 < llo < lhi):
-        raise InputError(f"--limits {llo:g},{lhi:g}: give LO,HI with 0 < LO < HI")
+        raise InputError(f"limits={llo:g},{lhi:g}: give LO,HI with 0 < LO < HI")
     if method == "vfa":
         if lhi > 180:
-            raise InputError(f"--limits {llo:g},{lhi:g}: flip angles are degrees between 0 and 180")
+            raise InputError(f"limits={llo:g},{lhi:g}: flip angles are degrees between 0 and 180")
     else:
         if hi < llo:
-            raise InputError(f"--range up to {hi:g}s lies below the sample limits {llo:g}-{lhi:g}s: every "
-                             f"{spec.parameter} in the range is shorter than the earliest sample; lower --limits")
+            raise InputError(f"value_range up to {hi:g}s lies below the sample limits {llo:g}-{lhi:g}s: every "
+                             f"{spec.parameter} in the range is shorter than the earliest sample; lower limits=")
         if lo > lhi:
-            raise InputError(f"--range from {lo:g}s lies above the sample limits {llo:g}-{lhi:g}s: every "
-                             f"{spec.parameter} in the range is longer than the latest sample; raise --limits")
+            raise InputError(f"value_range from {lo:g}s lies above the sample limits {llo:g}-{lhi:g}s: every "
+                             f"{spec.parameter} in the range is longer than the latest sample; raise limits=")
     if method == "ir" and tr is not None and lhi > tr * (1 + 1e-9):
-        raise InputError(f"--tr {tr:g}s is shorter than the largest inversion time allowed ({lhi:g}s): TR is the "
-                         f"time between inversions and must exceed every TI; lower --limits or check --tr")
+        raise InputError(f"tr={tr:g}s is shorter than the largest inversion time allowed ({lhi:g}s): TR is the "
+                         f"time between inversions and must exceed every TI; lower limits= or check tr=")
     if method == "t2" and lhi < 2 * llo:
-        raise InputError(f"--limits {llo:g},{lhi:g}: a t2 echo train needs room for at least 2 echoes "
+        raise InputError(f"limits={llo:g},{lhi:g}: a t2 echo train needs room for at least 2 echoes "
                          f"(HI >= 2 x LO, LO being the shortest echo spacing)")
     if evaluate is not None:
         ev = np.asarray(evaluate, float)
         if ev.size < spec.min_samples:
-            raise InputError(f"--evaluate: the {method} model has {spec.n_params} free parameters; give at least "
+            raise InputError(f"evaluate=: the {method} model has {spec.n_params} free parameters; give at least "
                              f"{spec.min_samples} values")
         if not np.all(np.isfinite(ev)) or np.any(ev <= 0):
-            raise InputError("--evaluate: every value must be positive")
+            raise InputError("evaluate=: every value must be positive")
         if method == "vfa" and np.any(ev > 180):
-            raise InputError("--evaluate: flip angles are degrees between 0 and 180")
+            raise InputError("evaluate=: flip angles are degrees between 0 and 180")
         if method == "ir" and tr is not None and ev.max() > tr:
-            raise InputError(f"--tr {tr:g}s is shorter than the largest inversion time {ev.max():g}s; TR is the time "
+            raise InputError(f"tr={tr:g}s is shorter than the largest inversion time {ev.max():g}s; TR is the time "
                              f"between inversions and must exceed every TI")
 
 
@@ -514,7 +514,7 @@ def plan(
     spec = _METHODS[method]
     vr = np.atleast_1d(np.asarray(value_range, float))
     if vr.size not in (1, 2):
-        raise InputError("--range: give one value or LO,HI")
+        raise InputError("value_range=: give one value or LO,HI")
     lo, hi = float(vr[0]), float(vr[-1])
     notes: list[str] = []
     if tr is not None and method in ("t2", "t2star"):

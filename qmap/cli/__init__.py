@@ -13,6 +13,7 @@ import argparse
 import contextlib
 import importlib
 import os
+import re
 import signal
 import sys
 import threading
@@ -177,6 +178,39 @@ def main(argv: list[str] | None = None) -> int:
         return _main(argv)
 
 
+#: library argument -> command-line option: the array API's messages name arguments (``sigma=``), the
+#: command line shows the option the user typed (``--sigma``)
+ARGUMENT_OPTIONS = {
+    "refocus_deg": "--refocus",
+    "t1": "--t1",
+    "sigma": "--sigma",
+    "value_range": "--range",
+    "snr": "--snr",
+    "samples": "--samples",
+    "tr": "--tr",
+    "limits": "--limits",
+    "evaluate": "--evaluate",
+}
+_ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=")
+
+
+def as_options(message: str) -> str:
+    """A library message as the command line says it: ``name=value`` of an argument -> ``--option value``.
+
+    Examples
+    --------
+    >>> as_options("t1=-1: T1 must be a positive number of seconds; give samples=4 or more")
+    '--t1 -1: T1 must be a positive number of seconds; give --samples 4 or more'
+    >>> as_options("sigma='local' needs a fitted model")
+    '--sigma local needs a fitted model'
+    """
+    def option(m: re.Match) -> str:
+        return ARGUMENT_OPTIONS[m.group(1)] + " "
+
+    out = _ARGUMENT.sub(option, message)
+    return re.sub(r"(--[a-z0-9-]+ )'([^']*)'", r"\1\2", out)
+
+
 def _main(argv: list[str]) -> int:
     commits_before = _commits()
     previous_handler = _catch_sigterm()
@@ -200,7 +234,7 @@ def _main(argv: list[str]) -> int:
     except SystemExit as exc:  # argparse: --help/--version (0) or our one-line errors (2)
         return int(exc.code or 0) if isinstance(exc.code, int) or exc.code is None else 2
     except QmapError as exc:
-        msg = " ".join(str(exc).split())
+        msg = as_options(" ".join(str(exc).split()))
         return _usage_error(msg)
     except KeyboardInterrupt as exc:
         what = "terminated (SIGTERM)" if isinstance(exc, Terminated) else "interrupted"

@@ -174,10 +174,10 @@ class EpgT2(SeparableModel):
         self.n_echoes = int(te.size)
         refocus_deg = float(refocus_deg)
         if not np.isfinite(refocus_deg) or not 0.0 < refocus_deg <= 180.0:
-            raise InputError(f"--refocus {refocus_deg:g}: the nominal refocusing angle must be degrees in (0, 180]")
+            raise InputError(f"refocus_deg={refocus_deg:g}: the nominal refocusing angle must be degrees in (0, 180]")
         t1 = float(t1)
         if not np.isfinite(t1) or t1 <= 0:
-            raise InputError(f"--t1 {t1:g}: T1 must be a positive number of seconds (e.g. 1s)")
+            raise InputError(f"t1={t1:g}: T1 must be a positive number of seconds (e.g. 1s)")
         self.refocus_deg = refocus_deg
         self.t1 = t1
         self.x = self.esp * np.arange(1, self.n_echoes + 1)
