@@ -355,6 +355,8 @@ def plot_voxel_fit(
     noise_sd: float | None = None,
     notes: Sequence[str] = (),
     x_log: bool = False,
+    ylabel: str = "signal [a.u.]",
+    x_limits: tuple[float, float] | None = None,
 ) -> None:
     """Write a PNG of one voxel's fit: samples and fitted curve above, residuals below.
 
@@ -395,6 +397,10 @@ def plot_voxel_fit(
         Further lines (model equation, noise handling) under the values.
     x_log : bool
         Logarithmic x axis (e.g. inversion times spread over decades).
+    ylabel : str
+        Label of the signal axis (with its units).
+    x_limits : (float, float), optional
+        Range of the x axis in the units of ``x`` (before ``x_scale``); default: from the samples.
     """
     x = np.asarray(x, float) * x_scale
     xf = np.asarray(x_fine, float) * x_scale
@@ -418,7 +424,7 @@ def plot_voxel_fit(
         ax.plot(x[~used], y[~used], "o", mfc="none", mec=DATA_COLOUR, ms=7, label="measured, not used by the fit",
                 zorder=3)
     ax.axhline(0, color="#999999", lw=0.8, zorder=1)
-    ax.set_ylabel("signal [a.u.]")
+    ax.set_ylabel(ylabel)
     ax.set_title(title, fontsize=11, loc="left", color=INK)
     style_axes(ax)
     ax.tick_params(labelbottom=False)
@@ -428,6 +434,8 @@ def plot_voxel_fit(
         ax.set_xlim(lo / 1.6, hi * 1.6)
     elif x.size and np.min(x) >= 0:
         ax.set_xlim(left=0)
+    if x_limits is not None:
+        ax.set_xlim(x_limits[0] * x_scale, x_limits[1] * x_scale)
     if has_fit:
         axr.axhline(0, color=MODEL_COLOUR, lw=1)
         if noise_sd is not None and np.isfinite(noise_sd) and noise_sd > 0:

@@ -182,6 +182,28 @@ class MP2RAGEProtocol:
                 )
         return self
 
+    @classmethod
+    def from_provenance(cls, model: dict, acquisition: dict, x=None) -> MP2RAGEProtocol:
+        """The protocol a ``t1-mp2rage`` fit recorded: the acquisition keys of :meth:`as_acquisition` and the
+        model entry's ``inversion_efficiency`` (default :data:`DEFAULT_EFFICIENCY`). ``x`` is not used.
+
+        Examples
+        --------
+        >>> p = MP2RAGEProtocol((0.7, 2.5), (4.0, 5.0), 5.0, 0.007, 176, efficiency=0.9)
+        >>> MP2RAGEProtocol.from_provenance({"inversion_efficiency": 0.9}, p.as_acquisition()) == p
+        True
+        """
+        a = acquisition
+        try:
+            return cls(ti=(float(a["InversionTime"][0]), float(a["InversionTime"][1])),
+                       fa=(float(a["FlipAngle"][0]), float(a["FlipAngle"][1])),
+                       tr_prep=float(a["RepetitionTimePreparation"]), tr_exc=float(a["RepetitionTimeExcitation"]),
+                       shots=int(a["NumberShots"]),
+                       efficiency=float(model.get("inversion_efficiency", DEFAULT_EFFICIENCY)))
+        except (KeyError, IndexError, TypeError, ValueError) as exc:
+            raise InputError(f"the provenance does not hold the MP2RAGE protocol ({exc!r} missing or malformed); "
+                             f"rerun t1-mp2rage with this qmap version") from None
+
     def as_acquisition(self) -> dict:
         """The BIDS keys of this protocol (seconds / degrees), as recorded in provenance."""
         return {"InversionTime": [float(t) for t in self.ti], "FlipAngle": [float(a) for a in self.fa],

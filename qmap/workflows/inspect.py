@@ -9,9 +9,10 @@ read from the written maps, so they equal the maps exactly.
 
 What a workflow must record for its fits to be inspectable
 ----------------------------------------------------------
-* ``model["name"]``: a name in :data:`qmap.models.REGISTRY` or :data:`qmap.models.CLOSED_FORMS`
-  (``"monoexp"``, ``"ir"``, ``"vfa"``, ``"dam"``, ...), whose class rebuilds itself with
-  ``from_provenance(model, acquisition, x)``;
+* ``model["name"]``: a name in one of the tables of :data:`qmap.models.KINDS` (``"monoexp"``, ``"ir"``,
+  ``"vfa"``, ``"dam"``, ``"mp2rage"``, ``"t2spectrum"``, ...), whose class rebuilds itself with
+  ``from_provenance(model, acquisition, x)``; its kind (:func:`qmap.models.model_kind`) says how the
+  voxel is drawn;
 * ``model["parameters"]``: the fitted parameter names (``run_fit`` adds them);
 * the model's constructor settings under ``model`` (``"signal"`` and
   ``"look_locker"`` for ``ir``; ``"refocus_deg"``, ``"t1"`` for ``epg``; ...);
@@ -34,7 +35,7 @@ import numpy as np
 from ..errors import InputError, UsageError, warn
 from ..io.nifti import load_image, read_sidecar
 from ..io.writer import AtomicWriter, sha256_file
-from ..models import CLOSED_FORMS, REGISTRY, model_class
+from ..models import KINDS, model_class, model_kind
 
 __all__ = ["VoxelReport", "find_prefixes", "inspect_voxel", "parse_voxel", "parse_world", "round_to_se"]
 
@@ -276,15 +277,17 @@ def inspect_voxel(
         if o.get("kind") == "quality":
             rep.quality[o["parameter"]] = (_map_value(out_dir / name, ijk), o.get("units", ""))
     # the curve: rebuild the model through the registry and fit this voxel again
-    mname = prov.get("model", {}).get("name")
-    if mname == "t2spectrum":  # the spectrum is read from the maps: no model to rebuild
-        return _inspect_spectrum(prov, out_dir, ijk, rep, out_png)
+    mname = str(prov.get("model", {}).get("name"))
     try:
-        cls = model_class(str(mname))
+        kind = model_kind(mname)
     except KeyError:
+        known = sorted(name for table in KINDS.values() for name in table)
         raise UsageError(f"{prefix}: model {mname!r} has no curve to draw; inspect redraws the models "
-                         f"{', '.join(sorted(REGISTRY) + sorted(CLOSED_FORMS))}") from None
-    fig = _closed_form_figure(cls, prov, ijk, rep) if mname in CLOSED_FORMS else _figure(cls, prov, ijk, rep)
+                         f"{', '.join(known)}") from None
+    if kind == "spectrum":  # the spectrum is read from the maps: no model to rebuild
+        return _inspect_spectrum(prov, out_dir, ijk, rep, out_png)
+    draw = {"fitted": _figure, "closed_form": _closed_form_figure, "lookup": _lookup_figure}[kind]
+    fig = draw(model_class(mname), prov, ijk, rep)
     png = Path(out_png) if out_png is not None else out_dir / f"{prefix}_voxel-{ijk[0]}-{ijk[1]}-{ijk[2]}.png"
     with AtomicWriter(png.parent, overwrite=True) as w:
         w.stage_with(png.name, lambda p: plot_voxel_fit(p, **fig))
@@ -403,6 +406,46 @@ def _closed_form_figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
         rep.notes.append("no valid angle at this voxel; the plot shows its samples only")
         fig.update(x_fine=fig["x_fine"][:0], curve=fig["curve"][:0], fitted_at_x=np.full_like(fig["y"], np.nan))
     return dict(fig, lines=_text_lines(rep), notes=notes, title=_title(rep, ijk))
+
+
+def _lookup_figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
+    """Plot of a lookup (MP2RAGE): the voxel's UNI on the UNI(T1) curve of the protocol at the voxel's B1."""
+    from ..models.mp2rage import mp2rage_uni
+    from .mp2rage import UNI_ENCODINGS, _decode, uni_encoding
+
+    minfo, opts = prov.get("model", {}), prov.get("options", {})
+    protocol = cls.from_provenance(minfo, prov.get("acquisition", {}))
+    path = Path(prov["inputs"][0]["path"])  # the UNI image
+    img = load_image(path, what="UNI (from the provenance)")
+    if not all(0 <= a < b for a, b in zip(ijk, img.shape[:3])):
+        raise UsageError(f"--voxel {','.join(map(str, ijk))} lies outside the UNI grid {img.shape[:3]} ({path})")
+    raw = np.asarray(img.dataobj[ijk[0], ijk[1], ijk[2]], np.float32).reshape(1)
+    encoding = next((k for k, v in UNI_ENCODINGS.items() if v == opts.get("uni_encoding")), None)
+    if encoding is None:
+        encoding = uni_encoding(-0.5, float(raw[0]) if raw[0] > 0.5 else 0.5, str(path))
+    uni = _decode(raw, encoding).astype(float)
+    b1 = 1.0
+    if opts.get("b1"):
+        from ..b1 import load_b1_map
+
+        b1_map, _ = load_b1_map(opts["b1"], shape=img.shape[:3], affine=img.affine, scale=opts.get("b1_scale"),
+                                smooth_fwhm_mm=opts.get("b1_smooth_fwhm_mm"))
+        b1 = float(b1_map[ijk[0], ijk[1], ijk[2]])
+    lo, hi = (float(v) for v in minfo.get("t1_lookup_range_s", (0.05, 5.0)))
+    t1f = np.geomspace(lo, hi, 400)
+    curve = mp2rage_uni(t1f, protocol, b1) if np.isfinite(b1) else np.full(t1f.shape, np.nan)
+    t1 = next((v for name, v, _, _ in rep.values if name == "T1"), float("nan"))
+    at = np.isfinite(t1)
+    if not at:
+        rep.notes.append("no T1 at this voxel (status above); the plot shows the lookup curve only")
+    notes = [f"model: {minfo['equation']}"] if minfo.get("equation") else []
+    notes.append(f"B1 at this voxel: {b1:.3g}" if opts.get("b1") else "no B1 correction (B1 = 1)")
+    return {"x": np.array([t1]) if at else np.zeros(0), "y": uni if at else np.zeros(0), "x_fine": t1f,
+            "curve": curve, "fitted_at_x": mp2rage_uni(np.array([t1]), protocol, b1) if at else np.zeros(0),
+            "xlabel": "T1", "x_scale": 1e3, "x_unit": "ms", "x_log": bool(at), "x_limits": (lo, hi),
+            "ylabel": "UNI (combined image, -0.5..0.5)",
+            "curve_label": "UNI of the signal model at the voxel's B1",
+            "lines": [*_text_lines(rep), f"UNI = {uni[0]:.4f}"], "notes": notes, "title": _title(rep, ijk)}
 
 
 def _figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:

@@ -607,6 +607,7 @@ def run_t1_mp2rage(
     model_info = {"name": "mp2rage", "parameters": maps.names, "equation": EQUATION,
                   "estimator": "lookup: UNI tabulated over a log-spaced T1 grid per B1, restricted to the monotonic "
                                "range, interpolated bilinearly in (B1, UNI) on ln T1",
+                  "inversion_efficiency": protocol.efficiency,
                   "delays_s": delays, "t1_lookup_range_s": maps.info["t1_lookup_range_s"],
                   "b1_correction": b1_desc,
                   "status_9": "UNI outside the range the lookup can invert at the voxel's B1"}
