@@ -348,15 +348,8 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
 
     sel = noise.rician_select(run_model, p, sigma, ctx) if noise.rician else np.zeros(0, np.intp)
     if loose and sel.size < n:
-        plain = np.setdiff1d(np.arange(n), sel)
-
-        def evaluate_plain(pp, idx):
-            return run_model.signal_jacobian(pp, _take(ctx, plain[idx]))
-
-        out = levenberg_marquardt(evaluate_plain, yfit[plain], None if wl is None else wl[plain], p[plain], lo, hi,
-                                  max_iter=max_iter)
-        p[plain], rss[plain], J[plain], conv[plain] = out[:4]
-        nit[plain] += out[4]
+        p, rss, J, conv, nit = _refine_rows(run_model, np.setdiff1d(np.arange(n), sel), yfit, wl, (p, rss, J, conv, nit),
+                                            ctx, lo, hi, max_iter)
     if sel.size:
         p, rss, J, conv, nit = noise.rician_refine(run_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
                                                    max_iter=max_iter, select=sel,
@@ -364,16 +357,8 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     if guide is not None:
         # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
         # for the near-floor voxels): the minimum, RSS and Jacobian are the exact model's
-        gauss = np.setdiff1d(np.arange(n), sel)
-        p, rss, J, conv, nit = p.copy(), rss.copy(), J.copy(), conv.copy(), nit.copy()
-
-        def evaluate_exact(pp, idx):
-            return fit_model.signal_jacobian(pp, _take(ctx, gauss[idx]))
-
-        out = levenberg_marquardt(evaluate_exact, yfit[gauss], None if wl is None else wl[gauss], p[gauss], lo, hi,
-                                  max_iter=max_iter)
-        p[gauss], rss[gauss], J[gauss], conv[gauss] = out[:4]
-        nit[gauss] += out[4]
+        p, rss, J, conv, nit = _refine_rows(fit_model, np.setdiff1d(np.arange(n), sel), yfit, wl,
+                                            (p, rss, J, conv, nit), ctx, lo, hi, max_iter)
         if sel.size:
             p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
                                                        max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
@@ -418,6 +403,23 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     too_few = n_used < P
     status[too_few] = st.TOO_FEW_SAMPLES
     return ChunkFit(params=p, cov=cov, rss=rss, r2=r2, rmse=rmse, n_used=n_used, status=status, n_iter=nit)
+
+
+def _refine_rows(model, rows: np.ndarray, y: np.ndarray, w: np.ndarray | None, state: tuple, ctx: dict | None,
+                 lo: np.ndarray, hi: np.ndarray, max_iter: int) -> tuple:
+    """Plain least squares of ``model`` for the voxels ``rows``, from the fit ``state`` = (p, rss, J, conv, nit).
+
+    Returns updated copies of the five arrays (the other voxels unchanged; iterations added up).
+    """
+    p, rss, J, conv, nit = (a.copy() for a in state)
+
+    def evaluate(pp, idx):
+        return model.signal_jacobian(pp, _take(ctx, rows[idx]))
+
+    out = levenberg_marquardt(evaluate, y[rows], None if w is None else w[rows], p[rows], lo, hi, max_iter=max_iter)
+    p[rows], rss[rows], J[rows], conv[rows] = out[:4]
+    nit[rows] += out[4]
+    return p, rss, J, conv, nit
 
 
 def _rician_covariance(fit_model, p, J, inv, cov, w, sigma, ctx, coils):
