@@ -33,3 +33,16 @@ def test_the_optimiser_and_the_noise_floor_do_not_import_the_solver():
     # the noise-floor object runs the optimiser itself (qmap.fitting.optimizer): no solver <-> noise_floor cycle
     for name in ("noise_floor.py", "optimizer.py", "problem.py"):
         assert not {n for n in _imports(ROOT / "fitting" / name) if n.startswith("qmap.fitting.solver")}, name
+
+
+def test_models_do_not_import_the_fitting_package():
+    # models describe the physics; fitting imports models, never the other way (no package cycle)
+    for path in sorted((ROOT / "models").glob("*.py")):
+        assert not {n for n in _imports(path) if n.startswith("qmap.fitting")}, path.name
+
+
+def test_the_numeric_kernels_import_no_higher_layer():
+    # epg, linalg and nnls sit at the bottom: models and fitting use them
+    for name in ("epg.py", "linalg.py", "nnls.py"):
+        higher = {n for n in _imports(ROOT / name) if n.startswith(("qmap.fitting", "qmap.models", "qmap.maps"))}
+        assert not higher, (name, higher)

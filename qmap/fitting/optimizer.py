@@ -4,7 +4,7 @@ It knows nothing of models or noise: it minimises ``sum w (y - s(p))^2`` per vox
 ``evaluate(p, idx) -> (s, J)``. The solver (:mod:`qmap.fitting.solver`) calls it for the Gaussian
 objective and :class:`~qmap.fitting.noise_floor.NoiseFloor` for the Rician one, so neither
 imports the other's module for it. Every voxel's arithmetic is element-wise (row-wise sums and
-the element-wise Cholesky of :mod:`qmap.fitting.linalg`): results do not depend on how many
+the element-wise Cholesky of :mod:`qmap.linalg`): results do not depend on how many
 voxels are fitted together.
 """
 
@@ -14,7 +14,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from .linalg import chol_solve
+from ..linalg import chol_solve
 
 __all__ = ["levenberg_marquardt", "normal_equations"]
 

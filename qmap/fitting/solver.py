@@ -8,7 +8,7 @@ For a chunk of voxels ``y`` (n, m) and a :class:`~qmap.models.base.SeparableMode
    by all voxels this is one matrix product per grid block).
 2. **Refine.** Levenberg-Marquardt on all parameters at once for every voxel,
    with the normal equations of each voxel solved by an element-wise batched
-   Cholesky (:mod:`qmap.fitting.linalg`). Non-linear parameters are kept in
+   Cholesky (:mod:`qmap.linalg`). Non-linear parameters are kept in
    their bounds by projection.
 3. **Noise floor.** :mod:`qmap.fitting.noise_floor` changes the objective
    (offset column, truncation weights, or the Rician expectation of the
@@ -41,8 +41,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import status as st
+from ..linalg import chol_inverse, chol_solve
 from ..models.base import SeparableModel
-from .linalg import chol_inverse, chol_solve
 from .noise_floor import RICIAN_SWITCH, NoiseFloor
 from .optimizer import levenberg_marquardt
 from .optimizer import normal_equations as _normal

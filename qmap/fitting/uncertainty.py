@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .linalg import chol_solve
+from ..linalg import chol_solve
 
 __all__ = [
     "CONVENTIONS",

@@ -35,7 +35,7 @@ T1 fixed). Per voxel:
    above the window, ``exp(sum s_j log T2_j / sum s_j)``.
 
 The NNLS problems of many voxels are solved together by
-:mod:`qmap.fitting.nnls` (Lawson-Hanson active set, each solve warm-started
+:mod:`qmap.nnls` (Lawson-Hanson active set, each solve warm-started
 from the solution at the neighbouring angle or ``mu``).
 """
 
@@ -48,9 +48,9 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.interpolate import CubicSpline
 
+from .. import status as st
 from ..epg import cpmg_echoes
-from ..fitting import status as st
-from ..fitting.nnls import nnls_active_set
+from ..nnls import nnls_active_set
 
 __all__ = [
     "DEFAULT_CHI2_FACTOR", "DEFAULT_MIN_SNR", "DEFAULT_N_T2", "DEFAULT_T2_RANGE", "DEFAULT_WINDOW",

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.optimize import nnls
 
-from qmap.fitting.nnls import nnls_active_set, nnls_block_pivot, residual_norm2
+from qmap.nnls import nnls_active_set, nnls_block_pivot, residual_norm2
 
 
 def _reference(A, B, mu=None):

@@ -79,7 +79,7 @@ def chol_inverse(a: np.ndarray) -> np.ndarray:
 def chol_solve_lastaxis(M: np.ndarray, r: np.ndarray, floor: np.ndarray) -> np.ndarray:
     """Solve M x = r for a batch of SPD systems stored voxels last: M (K, K, V), r (K, V) -> x (K, V).
 
-    For systems of up to a few dozen unknowns (the passive sets of :mod:`qmap.fitting.nnls`): O(K)
+    For systems of up to a few dozen unknowns (the passive sets of :mod:`qmap.nnls`): O(K)
     numpy operations on whole slices instead of :func:`chol_solve`'s O(K^3). Right-looking Cholesky
     factorisation and column-oriented triangular solves, all element-wise over V, so every voxel's
     numbers go through the same operations in the same order whatever the batch and whatever identity

@@ -26,7 +26,7 @@ Two exact algorithms share one solver of the passive-set systems:
 
 The passive-set systems are gathered from the Gram stack (padded with one
 decoupled extra variable) and solved by
-:func:`qmap.fitting.linalg.chol_solve_lastaxis`, a Cholesky factorisation
+:func:`qmap.linalg.chol_solve_lastaxis`, a Cholesky factorisation
 written with element-wise operations over the voxels, in blocks of voxels with
 passive sets of similar size: every voxel's solution depends only on its own
 numbers (bit-identical whatever the batch; tested). The dual (gradient) uses
