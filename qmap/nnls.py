@@ -9,20 +9,15 @@ all voxels, or one of a small stack selected per voxel by ``group``) and
 ``d = A^T b`` per voxel. With ``mu > 0`` this is the Tikhonov ("minimum
 energy") regularised NNLS of Whittall & MacKay (J Magn Reson 1989;84:134).
 
-Two exact algorithms share one solver of the passive-set systems:
-
-* :func:`nnls_active_set` -- Lawson & Hanson's active-set method (Solving
-  Least Squares Problems, 1974, ch. 23; the algorithm behind
-  ``scipy.optimize.nnls``), one variable entering per outer iteration, for
-  all voxels in lock step, optionally warm-started from a guessed support.
-  It is efficient when solutions are sparse or a close support is known (the
-  T2 spectrum uses it throughout).
-* :func:`nnls_block_pivot` -- block principal pivoting (Kim & Park, SIAM J
-  Sci Comput 2011;33:3261; Portugal, Judice & Vicente, Math Comp 1994;63:625)
-  with its backup rule, which exchanges every infeasible variable at once:
-  efficient for well-conditioned problems (a ridge ``mu`` that is not tiny)
-  from a cold start; with a poor warm start on ill-conditioned problems it
-  may need many single exchanges.
+The algorithm is Lawson & Hanson's active-set method (Solving Least Squares
+Problems, 1974, ch. 23; the algorithm behind ``scipy.optimize.nnls``),
+:func:`nnls_active_set`: one variable entering per outer iteration, for all
+voxels in lock step, optionally warm-started from a guessed support or a
+feasible point. It is efficient when solutions are sparse or a close support
+is known (the T2 spectrum uses it throughout). Block principal pivoting (Kim &
+Park, SIAM J Sci Comput 2011;33:3261), which exchanges every infeasible
+variable at once, was tried and dropped: on the unregularised, ill-conditioned
+problems of the refocusing-angle search it fell back to single exchanges.
 
 The passive-set systems are gathered from the Gram stack (padded with one
 decoupled extra variable) and solved by
@@ -31,9 +26,9 @@ written with element-wise operations over the voxels, in blocks of voxels with
 passive sets of similar size: every voxel's solution depends only on its own
 numbers (bit-identical whatever the batch; tested). The dual (gradient) uses
 one matrix product per Gram matrix of the stack (BLAS, whose rounding depends
-on the batch; the dual only chooses which variable enters, never a value). Both algorithms reach the
-optimum that ``scipy.optimize.nnls`` reaches (the tests compare them on
-random problems).
+on the batch; the dual only chooses which variable enters, never a value). It reaches the optimum
+that ``scipy.optimize.nnls`` reaches (the tests compare them on random
+problems).
 """
 
 from __future__ import annotations
@@ -43,7 +38,7 @@ from numpy.typing import NDArray
 
 from .linalg import chol_solve_lastaxis
 
-__all__ = ["nnls_active_set", "nnls_block_pivot", "residual_norm2"]
+__all__ = ["nnls_active_set", "residual_norm2"]
 
 #: relative size of the dual (gradient) below which a variable does not enter
 DUAL_RTOL = 1e-11
@@ -268,63 +263,6 @@ def nnls_active_set(
             break
         P[a, j] = True
         settle(a, j)
-    return x, ~active
-
-
-def nnls_block_pivot(
-    gram: NDArray[np.float64],
-    atb: NDArray[np.float64],
-    *,
-    group: NDArray[np.intp] | None = None,
-    mu: NDArray[np.float64] | float | None = None,
-    passive: NDArray[np.bool_] | None = None,
-    max_iter: int | None = None,
-) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
-    """NNLS by block principal pivoting, optionally warm-started, for a batch of voxels.
-
-    Same problem and parameters as :func:`nnls_active_set`; ``passive``
-    (V, n) is the initial guess of the support (e.g. that of a neighbouring
-    ``mu``). Full exchanges are made while the number of infeasible variables
-    decreases; after three that do not, one variable at a time (the largest
-    infeasible index; Kim & Park 2011, Algorithm 2), which guarantees
-    termination. Best with ``mu > 0`` (well-conditioned systems).
-    """
-    pb = _Problem(gram, atb, group, mu)
-    V, n = pb.d.shape
-    max_iter = 5 * n if max_iter is None else int(max_iter)
-    F = np.zeros((V, n), bool) if passive is None else np.array(passive, bool)
-    x = np.zeros((V, n))
-    ninf = np.full(V, n + 1)
-    budget = np.full(V, 3)
-    active = np.ones(V, bool)
-    cols = np.arange(n)
-    for _ in range(max_iter):
-        a = np.flatnonzero(active)
-        if a.size == 0:
-            break
-        Fa = F[a]
-        z = pb.solve(a, Fa)
-        w = pb.dual(a, z)  # w = d - (C + mu I) z = -y
-        infeas = (Fa & (z < 0)) | (~Fa & (w > pb.dual_tol[a, None]))
-        nv = infeas.sum(axis=1)
-        done = nv == 0
-        x[a[done]] = np.maximum(z[done], 0.0)
-        active[a[done]] = False
-        keep = ~done
-        a, infeas, nv, Fa = a[keep], infeas[keep], nv[keep], Fa[keep]
-        if a.size == 0:
-            break
-        fewer = nv < ninf[a]
-        full = fewer | (budget[a] >= 1)
-        ninf[a] = np.where(fewer, nv, ninf[a])
-        budget[a] = np.where(fewer, 3, np.where(full, budget[a] - 1, budget[a]))
-        last = np.max(np.where(infeas, cols, -1), axis=1)
-        single = cols[None, :] == last[:, None]
-        flip = np.where(full[:, None], infeas, single)
-        F[a] = Fa ^ flip
-    if active.any():  # iteration limit: the last feasible part of the iterate
-        a = np.flatnonzero(active)
-        x[a] = np.maximum(pb.solve(a, F[a]), 0.0)
     return x, ~active
 
 
