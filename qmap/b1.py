@@ -154,10 +154,18 @@ def afi_b1(s1, s2, fa_nominal: float, n: float, *, mask=None, sigma=None):
         r = np.where(r >= 0, r, np.nan)
         u = (r * n - 1.0) / (n - r)
         ang = np.arccos(np.where(np.abs(u) <= 1.0, u, np.nan))
-        sig = np.nan if sigma is None else np.asarray(sigma, float)
+        sig = _known_sigma(sigma)
         se_r = sig * np.sqrt(1.0 + r * r) / s1
         d = (n * n - 1.0) / ((n - r) ** 2 * np.sqrt(1.0 - u * u)) * se_r
     return _finish(ang, d, fa_nominal, finite, sel)
+
+
+def _known_sigma(sigma) -> np.ndarray | float:
+    """The noise sd where it is known (finite, > 0), NaN elsewhere (a noise map's hole: no standard error)."""
+    if sigma is None:
+        return np.nan
+    sig = np.asarray(sigma, float)
+    return np.where(np.isfinite(sig) & (sig > 0), sig, np.nan)
 
 
 def dam_b1(s_a, s_2a, fa_nominal: float, *, mask=None, sigma=None):
@@ -179,7 +187,7 @@ def dam_b1(s_a, s_2a, fa_nominal: float, *, mask=None, sigma=None):
         u = np.where(s_a > 0, s_2a / (2.0 * s_a), np.nan)
         u = np.where((u >= 0) & (u <= 1), u, np.nan)
         ang = np.arccos(u)
-        sig = np.nan if sigma is None else np.asarray(sigma, float)
+        sig = _known_sigma(sigma)
         se_u = sig * np.sqrt(1.0 + 4.0 * u * u) / (2.0 * s_a)
         d = se_u / np.sqrt(1.0 - u * u)
     return _finish(ang, d, fa_nominal, finite, sel)

@@ -266,6 +266,10 @@ def fit_volume(
     }
     used = stderr if sigma is not None else "residual"
     info["stderr"] = {"convention": used, "meaning": CONVENTION_TEXT[used]}
+    if used == "noise" and sig_flat is not None and np.ndim(sigma) > 0:
+        # one convention per map: a fitted voxel without a usable noise sd (a noise map's hole) has NaN
+        # standard errors, never the residual variance (counted here: the provenance and sidecars say so)
+        info["stderr"]["no_noise_level_voxels"] = int(np.count_nonzero(~ok_sigma[idx]))
     if se_in:
         info["stderr"]["propagated_inputs"] = sorted(se_in)
     return MapSet(estimates, stderr_out, units, descriptions, tuple(times), quality, status.reshape(shape), info)
@@ -288,9 +292,14 @@ def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int
 
         full = MapSet(blank(part.estimates), blank(part.stderr), dict(part.units), dict(part.descriptions),
                       part.time_params, blank(part.quality), np.zeros(shape, np.uint8), dict(part.info, n_fitted=0))
+        if "no_noise_level_voxels" in (part.info.get("stderr") or {}):  # summed over the slabs below
+            full.info["stderr"] = dict(part.info["stderr"], no_noise_level_voxels=0)
     for dst, src in ((full.estimates, part.estimates), (full.stderr, part.stderr), (full.quality, part.quality)):
         for k, v in src.items():
             dst[k][:, :, z0:z1] = v
     full.status[:, :, z0:z1] = part.status
     full.info["n_fitted"] += part.info.get("n_fitted", 0)
+    holes = (part.info.get("stderr") or {}).get("no_noise_level_voxels")
+    if holes is not None:
+        full.info["stderr"]["no_noise_level_voxels"] += holes
     return full

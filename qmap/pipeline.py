@@ -294,7 +294,8 @@ def resolve_sigma(
     usable = np.isfinite(data) & (data > 0)
     if not usable.any():
         raise InputError(f"--sigma {spec}: holds no positive value; a noise map holds the noise sd (> 0) of each voxel "
-                         f"in signal units (voxels where it is not positive get status 2)")
+                         f"in signal units (where it is not positive the standard errors are NaN, and a fit that "
+                         f"models the noise floor skips the voxel: status 2)")
     med = float(np.median(data[usable]))
     return data.astype(float), {"sigma_mode": "map", "sigma": med, "source": "noise map", "value": med,
                                 "sigma_source": f"noise map {Path(spec).absolute()}", "n_voxels": int(usable.sum()),
@@ -411,7 +412,9 @@ def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
 def _convention_note(maps: MapSet) -> str:
     conv = (maps.info.get("stderr") or {}).get("convention")
     if conv == "noise":
-        return "; from the noise sd (inverse Fisher information)"
+        holes = (maps.info.get("stderr") or {}).get("no_noise_level_voxels")
+        return "; from the noise sd (inverse Fisher information)" + (
+            f"; NaN in the {holes} fitted voxels where the noise map has no positive value" if holes else "")
     if conv == "residual":
         return "; from the per-voxel residual variance RSS/(m-P)"
     return ""

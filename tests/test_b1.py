@@ -92,6 +92,28 @@ def test_standard_error_matches_monte_carlo(method):
     assert float(np.median(maps.stderr["TB1"])) == pytest.approx(mc, rel=0.05)
 
 
+@pytest.mark.parametrize("method", ["afi", "dam"])
+def test_noise_map_holes_give_nan_standard_errors_not_zero(method):
+    # a noise map that is NaN, zero or negative somewhere: no noise sd known there, so no standard error
+    # (NaN) -- never 0 or a negative one; the angle itself does not use sigma
+    b1 = _b1_field((6, 5, 2))
+    if method == "afi":
+        s1, s2 = _afi_signals(60.0 * b1, 0.02, 0.10, 1000.0, m0=500.0)
+        data, kw = np.stack([s1, s2], axis=-1), {"n": 5.0}
+    else:
+        data = np.stack([500.0 * np.sin(np.radians(60.0 * b1)), 500.0 * np.sin(np.radians(120.0 * b1))], axis=-1)
+        kw = {}
+    smap = np.full(b1.shape, 2.0)
+    smap[0, 0, 0], smap[2, 3, 1], smap[5, 4, 0] = np.nan, 0.0, -2.0
+    holes = ~(smap > 0)
+    whole = b1_maps(data, method=method, fa=60.0, sigma=2.0, **kw)
+    holed = b1_maps(data, method=method, fa=60.0, sigma=smap, **kw)
+    np.testing.assert_array_equal(whole["TB1"], holed["TB1"])
+    assert np.isnan(holed.stderr["TB1"][holes]).all()
+    np.testing.assert_array_equal(whole.stderr["TB1"][~holes], holed.stderr["TB1"][~holes])
+    assert (whole.stderr["TB1"] > 0).all()
+
+
 def test_invalid_ratios_get_status_8_not_silent_nan():
     # AFI: r > 1 has no angle; S1 = 0 has no ratio. DAM: S(2a) > 2 S(a) has no angle.
     s1 = np.array([100.0, 100.0, 0.0, 100.0, np.nan, 100.0])

@@ -315,3 +315,60 @@ def test_ir_noise_level_from_the_residual_chain_when_there_is_no_background():
     c_given = _check(given["T1"][ok], t1.reshape(56, 56, 1)[ok], given.stderr["T1"][ok], lo=0.92)
     c_est = _check(est["T1"][ok], t1.reshape(56, 56, 1)[ok], est.stderr["T1"][ok], lo=0.92)
     assert abs(c_est - c_given) <= 0.01
+
+
+# --------------------------------------------------------------------- one convention per map
+@pytest.mark.parametrize("method", ["fast", "lmfit"])
+def test_noise_map_holes_get_nan_standard_errors_never_the_residual_variance(method):
+    # one convention per standard-error map: with a noise map, a voxel where it has no positive value gets
+    # a NaN standard error (the noise sd is not known there), not the residual variance of the other
+    # convention; its estimate is the plain least-squares one, unchanged
+    rng = np.random.default_rng(41)
+    te = np.linspace(0.005, 0.06, 8)
+    shape = (4, 3, 2) if method == "lmfit" else (6, 5, 2)
+    t2 = rng.uniform(0.02, 0.08, shape)
+    sigma = 10.0
+    vol = M0 * np.exp(-te / t2[..., None]) + rng.normal(0.0, sigma, shape + (te.size,))
+    smap = np.full(shape, sigma)
+    holes = np.zeros(shape, bool)
+    holes[0, 0, 0] = holes[1, 2, 1] = holes[3, 1, 0] = True
+    smap[0, 0, 0], smap[1, 2, 1], smap[3, 1, 0] = np.nan, 0.0, -3.0
+    model = MonoExponential(te)
+    whole = fit_volume(model, vol, sigma=np.full(shape, sigma), method=method)
+    holed = fit_volume(model, vol, sigma=smap, method=method)
+    assert np.array_equal(whole.status, holed.status) and (holed.status == st.FITTED).all()
+    for name in ("T2star", "M0"):
+        assert np.array_equal(whole[name], holed[name])  # the estimates do not use sigma
+        assert np.isnan(holed.stderr[name][holes]).all()
+        assert np.array_equal(whole.stderr[name][~holes], holed.stderr[name][~holes])
+    assert holed.info["stderr"]["convention"] == "noise"
+    assert holed.info["stderr"]["no_noise_level_voxels"] == 3
+    assert whole.info["stderr"]["no_noise_level_voxels"] == 0
+    # the kept standard errors are curve_fit's with the known sigma (absolute_sigma=True)
+    i = (2, 2, 1)
+    _p, c = curve_fit(lambda t, a, tt: a * np.exp(-t / tt), te, vol[i], p0=[M0, 0.04], sigma=np.full(te.size, sigma),
+                      absolute_sigma=True)
+    assert holed.stderr["T2star"][i] == pytest.approx(np.sqrt(c[1, 1]), rel=0.01)
+
+
+def test_noise_map_holes_in_the_linear_vfa_method():
+    # the linearised VFA regression (Deoni et al. 2003) follows the same rule as the least-squares fit
+    rng = np.random.default_rng(43)
+    fa = np.array([3.0, 8.0, 15.0, 25.0])
+    tr = 0.015
+    t1 = rng.uniform(0.6, 2.0, (5, 4, 1))
+    a = np.deg2rad(fa)
+    e1 = np.exp(-tr / t1)[..., None]
+    vol = M0 * np.sin(a) * (1 - e1) / (1 - e1 * np.cos(a)) + rng.normal(0.0, 0.5, t1.shape + (fa.size,))
+    smap = np.full(t1.shape, 0.5)
+    smap[2, 1, 0] = np.nan
+    model = SpoiledGRE(fa, tr)
+    whole = fit_volume(model, vol, sigma=np.full(t1.shape, 0.5), method="linear")
+    holed = fit_volume(model, vol, sigma=smap, method="linear")
+    assert np.array_equal(whole["T1"], holed["T1"])
+    assert np.isnan(holed.stderr["T1"][2, 1, 0])
+    keep = np.ones(t1.shape, bool)
+    keep[2, 1, 0] = False
+    assert np.array_equal(whole.stderr["T1"][keep], holed.stderr["T1"][keep])
+    assert np.isfinite(holed.stderr["T1"][keep]).all()
+    assert holed.info["stderr"]["no_noise_level_voxels"] == 1

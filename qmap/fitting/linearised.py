@@ -102,9 +102,11 @@ def fit_chunk_linear(
         dof = n_used - 2
         s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
         if sigma is not None:
-            sig2 = np.asarray(sigma, float) ** 2 * np.ones(n)
-            usable = np.isfinite(sig2) & (sig2 > 0)
-            s2 = np.where(usable, sig2, s2) if stderr == "noise" else np.where(dof > 0, s2, sig2)
+            sig = np.asarray(sigma, float) * np.ones(n)
+            sig2 = sig**2
+            usable = np.isfinite(sig) & (sig > 0)
+            # one convention per map: under "noise" a voxel without a usable sigma has no standard error
+            s2 = np.where(usable, sig2, np.nan) if stderr == "noise" else np.where(dof > 0, s2, sig2)
         v_e, v_c, c_ec = s2 * sw / dd, s2 * sxx / dd, -s2 * sx / dd
         icpt = m0 * (1.0 - e1)
         lg = np.log(e1)

@@ -86,7 +86,8 @@ def fit_chunk_lmfit(model, y, *, ctx=None, noise=None, sigma=None, max_iter: int
             if sig is not None and stderr == "noise":
                 nfree = int(np.sum(w[i] > 0)) - P
                 redchi = rss / nfree if nfree > 0 else np.nan
-                out.cov[i] = res.covar / redchi * sig[i] ** 2 if redchi > 0 else np.nan
+                usable = np.isfinite(sig[i]) and sig[i] > 0  # no usable sigma: no standard error (one convention)
+                out.cov[i] = res.covar / redchi * sig[i] ** 2 if redchi > 0 and usable else np.nan
         else:
             out.status[i] = st.ILL_CONDITIONED
         if not res.success:

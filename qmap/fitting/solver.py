@@ -252,7 +252,9 @@ def fit_chunk(
         Covariance convention when ``sigma`` is given: the inverse Fisher
         information with the known noise sd (default), or the per-voxel
         residual variance RSS/(m_used - P). Without ``sigma`` the residual
-        variance is used (and sigma nowhere).
+        variance is used (and sigma nowhere). One convention per voxel set:
+        under ``"noise"`` a voxel whose sigma is not a positive number gets a
+        NaN covariance (no standard error), never the residual variance.
     normalise : bool
         Divide each voxel by its :func:`voxel_scale` (and ``sigma`` with it)
         before fitting, and scale the amplitudes, their covariances, the RSS
@@ -370,9 +372,10 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     with np.errstate(divide="ignore", invalid="ignore"):
         s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
     if sigma is not None:
-        sig2 = np.broadcast_to(np.asarray(sigma, float), (n,)) ** 2
-        if stderr == "noise":  # voxels without a usable sigma (a noise map's holes) keep the residual variance
-            s2 = np.where(np.isfinite(sig2) & (sig2 > 0), sig2, s2)
+        sig = np.broadcast_to(np.asarray(sigma, float), (n,))
+        sig2 = sig**2
+        if stderr == "noise":  # one convention per map: no usable sigma (a noise map's hole) -> no standard error
+            s2 = np.where(np.isfinite(sig) & (sig > 0), sig2, np.nan)
         else:
             s2 = np.where(dof > 0, s2, sig2)
     cov = inv * s2[:, None, None]

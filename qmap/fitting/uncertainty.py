@@ -15,7 +15,9 @@ Two conventions for the covariance of a least-squares estimate with Jacobian
     ``Var M = nu^2 + 2 N sigma^2 - (E M)^2`` (``N`` coils; Gudbjartsson &
     Patz 1995), in the sandwich ``(J^T J)^-1 J^T V J (J^T J)^-1`` -- the
     covariance of the least-squares estimator when the sample variances
-    differ from ``sigma^2``.
+    differ from ``sigma^2``. One convention per map: a voxel whose sigma is
+    not known (a noise map that is NaN or not positive there) gets a NaN
+    covariance, never the residual one.
 ``residual``
     ``s^2 (J^T J)^-1`` with the per-voxel residual variance
     ``s^2 = RSS / (m_used - P)`` (``curve_fit`` with ``absolute_sigma=False``).

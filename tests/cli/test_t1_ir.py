@@ -182,3 +182,39 @@ def test_short_tr_note_in_the_summary(tmp_path, capsys):
     assert main(["t1-ir", path, "--tr", "5.5s", "--mask", "none", "-o", str(tmp_path / "o")]) == 0
     out = capsys.readouterr().out
     assert "T1: median 1.6 s" in out and "TR 5.5 s is < 5 x the median T1" in out
+
+
+def test_noise_map_with_holes_one_standard_error_convention(tmp_path):
+    # a noise map with holes inside the fitted voxels: there the standard errors are NaN (no noise sd known),
+    # not the residual variance -- one convention per map, said in the provenance and the sidecars; the
+    # estimates, the status map and the other voxels' standard errors are those of the hole-free map,
+    # slab by slab too (--max-memory)
+    _t1, obj, z = phantom(3)
+    mag = save(tmp_path / "ir.nii.gz", np.abs(z).astype(np.float32), {"InversionTime": TI.tolist(),
+                                                                       "RepetitionTime": 8.0})
+    full = np.full(SHAPE, 10.0, np.float32)
+    holed = full.copy()
+    holes = np.zeros(SHAPE, bool)
+    holes[3, 3, 0] = holes[6, 4, 1] = holes[4, 5, 1] = True
+    holed[holes] = 0.0
+    mask = save(tmp_path / "mask.nii.gz", obj.astype(np.uint8))
+    base = ["t1-ir", mag, "--mask", mask, "--prefix", "x", "-q"]
+    assert main([*base, "--sigma", save(tmp_path / "full.nii.gz", full), "-o", str(tmp_path / "a")]) == 0
+    assert main([*base, "--sigma", save(tmp_path / "holed.nii.gz", holed), "-o", str(tmp_path / "b"),
+                 "--max-memory", "4KB"]) == 0
+    a, b = maps_in(tmp_path / "a", "x"), maps_in(tmp_path / "b", "x")
+    assert set(a) == set(b)
+    for name in a:
+        if "stderr" in name:
+            assert np.isnan(b[name][holes]).all(), name
+            np.testing.assert_array_equal(a[name][~holes], b[name][~holes], err_msg=name)
+        else:
+            np.testing.assert_array_equal(a[name], b[name], err_msg=name)
+    assert (a["x_desc-status_fitmap.nii.gz"][holes] == 0).all()
+    prov = json.loads((tmp_path / "b" / "x_provenance.json").read_text())
+    assert prov["noise"]["stderr"]["convention"] == "noise"
+    assert prov["noise"]["stderr"]["no_noise_level_voxels"] == 3
+    assert json.loads((tmp_path / "a" / "x_provenance.json").read_text())["noise"]["stderr"][
+        "no_noise_level_voxels"] == 0
+    side = json.loads((tmp_path / "b" / "x_desc-stderr_T1map.json").read_text())
+    assert "NaN in the 3 fitted voxels where the noise map has no positive value" in side["Description"]
