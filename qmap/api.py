@@ -12,6 +12,7 @@ from typing import Unpack
 
 import numpy as np
 
+from .docstrings import shared_parameters
 from .fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from .maps import Execution, MapSet, execution_kwargs, fit_volume
 from .models.monoexp import MonoExponential
@@ -19,6 +20,7 @@ from .models.monoexp import MonoExponential
 __all__ = ["b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"]
 
 
+@shared_parameters("mask", "decay_coils", "execution")
 def fit_decay(
     data,
     te,
@@ -41,8 +43,6 @@ def fit_decay(
         Echo times in seconds.
     param : {"T2star", "T2"}
         Name of the decay time in the outputs.
-    mask : (...) array_like of bool, optional
-        Voxels to fit (default: all).
     noise_floor : {"rician", "offset", "truncate", "none"}
         Noise-floor handling (see :mod:`qmap.fitting.noise_floor`).
     sigma : "auto", "local", float or (...) ndarray
@@ -51,13 +51,8 @@ def fit_decay(
         background of a 4D array, else the residuals of a first plain fit in
         voxels well above the noise; see :func:`qmap.noise_level.estimate_noise`);
         ``"local"`` a smooth noise map. The estimate is in ``maps.info["noise"]``.
-    coils : int, optional
-        ``rician``: coils combined by sum of squares (default one, or what the
-        background's moments show).
     drop_first : bool
         Ignore the first echo.
-    **execution
-        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.
 
     Returns
     -------

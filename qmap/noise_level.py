@@ -38,6 +38,7 @@ from typing import Protocol
 import numpy as np
 import numpy.typing as npt
 
+from .docstrings import shared_parameters
 from .errors import InputError
 from .noise import _check_coils
 
@@ -295,6 +296,7 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
 # ---------------------------------------------------------------------------
 
 
+@shared_parameters("source", "max_bytes")
 def background_estimate(
     source: VolumeSource,
     *,
@@ -308,15 +310,11 @@ def background_estimate(
 
     Parameters
     ----------
-    source : VolumeSource
-        The series (a :class:`~qmap.io.series.Series` or an :class:`ArraySource`).
     coils : int, optional
         Root-sum-of-squares coils (background distribution chi with ``2 * coils`` degrees of
         freedom). None: one, unless the background's moments clearly show more (then that many).
     obj : (X, Y, Z) ndarray of bool, optional
         The object; default the automatic mask (:func:`object_mask`).
-    max_bytes : float, optional
-        Memory budget (bytes) for reading the series.
     dilate : int
         The object is grown by this many voxels before taking the complement.
     min_voxels : int, optional
@@ -853,6 +851,25 @@ def _gather(source: VolumeSource, index: np.ndarray, max_bytes: float | None) ->
     return out
 
 
+def _gather_finite(
+    source: VolumeSource, index: np.ndarray, ctx_maps: dict | None, max_bytes: float | None
+) -> tuple[np.ndarray, np.ndarray, dict | None]:
+    """The voxels of ``index`` whose samples and model inputs are all finite, for a fit.
+
+    Returns their flat indices (k,), their samples (k, n) (see :func:`_gather`) and, with ``ctx_maps``
+    ((X, Y, Z) maps of per-voxel model inputs), their model inputs as ``{name: (k,) ndarray}`` (else None).
+    """
+    y = _gather(source, index, max_bytes)
+    ok = np.all(np.isfinite(y), axis=1)
+    ctx = None
+    if ctx_maps:
+        ctx = {k: np.asarray(v, float).reshape(-1)[index] for k, v in ctx_maps.items()}
+        for v in ctx.values():
+            ok &= np.isfinite(v)
+        ctx = {k: v[ok] for k, v in ctx.items()}
+    return index[ok], y[ok], ctx
+
+
 def _leverage(J: np.ndarray) -> np.ndarray:
     """Diagonal of the hat matrix J^T (J J^T)^-1 J per voxel: J (n, P, m) -> (n, m)."""
     A = np.einsum("npm,nqm->npq", J, J)
@@ -903,6 +920,7 @@ def _residuals_above(y, pred, h, ok, sigma, n_params):
     return np.where(good, rss, 0.0), np.where(good, dof, 0.0)
 
 
+@shared_parameters("source", "max_bytes")
 def residual_estimate(
     source: VolumeSource,
     model,
@@ -916,15 +934,12 @@ def residual_estimate(
 
     Parameters
     ----------
-    source : VolumeSource
     model : SeparableModel
         The command's own model (fitted without a noise floor).
     mask : (X, Y, Z) ndarray of bool
         Voxels that may be used (the fit mask).
     ctx_maps : dict, optional
         Per-voxel model inputs as (X, Y, Z) maps (e.g. B1).
-    max_bytes : float, optional
-        Memory budget for reading.
     max_voxels : int
         Voxels fitted (an even stride through the mask).
 
@@ -958,15 +973,7 @@ def residual_estimate(
         idx = idx[:: -(-idx.size // max_voxels)]
     if idx.size == 0:
         raise InputError("cannot estimate the noise from fit residuals: the mask is empty")
-    y = _gather(source, idx, max_bytes)
-    ok = np.all(np.isfinite(y), axis=1)
-    ctx = None
-    if ctx_maps:
-        ctx = {k: np.asarray(v, float).reshape(-1)[idx] for k, v in ctx_maps.items()}
-        for v in ctx.values():
-            ok &= np.isfinite(v)
-        ctx = {k: v[ok] for k, v in ctx.items()}
-    y = y[ok]
+    idx, y, ctx = _gather_finite(source, idx, ctx_maps, max_bytes)
     if y.shape[0] < MIN_RESIDUAL_VOXELS:
         raise InputError(f"cannot estimate the noise from fit residuals: only {y.shape[0]} usable voxels")
     from .fitting.solver import fit_chunk
@@ -1016,6 +1023,7 @@ def _agree(a: NoiseEstimate, b: NoiseEstimate) -> tuple[bool, float]:
     return abs(math.log(ratio)) <= 3.0 * se + 0.05, ratio
 
 
+@shared_parameters("source", "max_bytes")
 def estimate_noise(
     source: VolumeSource,
     *,
@@ -1031,8 +1039,6 @@ def estimate_noise(
 
     Parameters
     ----------
-    source : VolumeSource
-        The series (a :class:`~qmap.io.series.Series` or an :class:`ArraySource`).
     model : SeparableModel, optional
         The command's model; enables the residual source. Without it only the background is used.
     mask : (X, Y, Z) ndarray of bool, optional
@@ -1041,8 +1047,6 @@ def estimate_noise(
         Per-voxel model inputs (X, Y, Z) (e.g. B1).
     coils : int, optional
         Sum-of-squares coils; None lets the background's moments decide (default one).
-    max_bytes : float, optional
-        Memory budget for reading the series.
     local : bool
         Return a smooth noise map (:func:`local_noise_map`) instead of one value.
     n_jobs : int, optional
@@ -1174,16 +1178,7 @@ def local_noise_map(
 
     g = first.value
     idx = np.flatnonzero(np.asarray(mask, bool).reshape(-1))
-    y = _gather(source, idx, max_bytes)
-    ok = np.all(np.isfinite(y), axis=1)
-    ctx = None
-    if ctx_maps:
-        ctx = {k: np.asarray(v, float).reshape(-1)[idx] for k, v in ctx_maps.items()}
-        for v in ctx.values():
-            ok &= np.isfinite(v)
-    idx, y = idx[ok], y[ok]
-    if ctx:
-        ctx = {k: v[ok] for k, v in ctx.items()}
+    idx, y, ctx = _gather_finite(source, idx, ctx_maps, max_bytes)
     n_params = len(model.param_names)
     rss = np.zeros(idx.size)
     dof = np.zeros(idx.size)

@@ -152,45 +152,47 @@ def _volume(sel, values: np.ndarray, shape) -> np.ndarray:
 def synthesise(name: str, ph: Phantom, b1: np.ndarray, p: Protocols) -> Series:
     """Noise-free series of protocol ``name`` for phantom ``ph`` in the transmit field ``b1`` (X, Y, Z)."""
     sel, t, b = _voxels(ph, b1)
+
+    def series(suffix: str, entity: str, s: np.ndarray, key: str, values, sidecar: dict, **more) -> Series:
+        """The series of the compartment signals ``s`` (n, m), whose volumes vary ``key`` over ``values``."""
+        return Series(name, suffix, entity, _volume(sel, s, ph.labels.shape), key, np.asarray(values, float),
+                      sidecar, **more)
+
     if name == "ir":
-        ti = np.asarray(p.ir_ti, float)
-        s = signals.ir(ti, tr=p.ir_tr, te=p.ir_te, t1=t["t1"], t2=t["t2"], pd=t["pd"], efficiency=p.ir_efficiency)
-        return Series("ir", "IRT1", "inv", _volume(sel, s, ph.labels.shape), "InversionTime", ti,
+        s = signals.ir(p.ir_ti, tr=p.ir_tr, te=p.ir_te, t1=t["t1"], t2=t["t2"], pd=t["pd"], efficiency=p.ir_efficiency)
+        return series("IRT1", "inv", s, "InversionTime", p.ir_ti,
                       {"RepetitionTime": p.ir_tr, "EchoTime": p.ir_te, "FlipAngle": 90.0,
                        "PulseSequenceType": "inversion recovery spin echo (simulated)"})
     if name == "vfa":
-        fa = np.asarray(p.vfa_fa, float)
-        s = signals.spgr(fa, tr=p.vfa_tr, te=p.vfa_te, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
-        return Series("vfa", "VFA", "flip", _volume(sel, s, ph.labels.shape), "FlipAngle", fa,
+        s = signals.spgr(p.vfa_fa, tr=p.vfa_tr, te=p.vfa_te, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
+        return series("VFA", "flip", s, "FlipAngle", p.vfa_fa,
                       {"RepetitionTime": p.vfa_tr, "EchoTime": p.vfa_te,
                        "PulseSequenceType": "spoiled gradient echo (simulated)"})
     if name == "mese":
-        te = p.mese_esp * np.arange(1, int(p.mese_echoes) + 1)
         s = signals.mese(esp=p.mese_esp, n_echoes=int(p.mese_echoes), refocus_deg=p.mese_refocus, t1=t["t1"],
                          t2=t["t2"], pd=t["pd"], b1=b)
-        return Series("mese", "MESE", "echo", _volume(sel, s, ph.labels.shape), "EchoTime", te,
+        return series("MESE", "echo", s, "EchoTime", p.mese_esp * np.arange(1, int(p.mese_echoes) + 1),
                       {"RepetitionTime": p.mese_tr, "FlipAngle": 90.0, "RefocusingFlipAngle": p.mese_refocus,
                        "PulseSequenceType": "CPMG multi-echo spin echo (simulated by extended phase graphs)"})
     if name == "megre":
-        te = np.asarray(p.megre_te, float)
-        s = signals.megre(te, tr=p.megre_tr, fa_deg=p.megre_fa, t1=t["t1"], t2star=t["t2star"], pd=t["pd"], b1=b)
-        return Series("megre", "MEGRE", "echo", _volume(sel, s, ph.labels.shape), "EchoTime", te,
+        s = signals.megre(p.megre_te, tr=p.megre_tr, fa_deg=p.megre_fa, t1=t["t1"], t2star=t["t2star"], pd=t["pd"],
+                          b1=b)
+        return series("MEGRE", "echo", s, "EchoTime", p.megre_te,
                       {"RepetitionTime": p.megre_tr, "FlipAngle": p.megre_fa,
                        "PulseSequenceType": "multi-echo spoiled gradient echo (simulated)"})
     if name == "b1":
         if p.b1_method == "dam":
             s = signals.dam(p.dam_fa, tr=p.dam_tr, t1=t["t1"], pd=t["pd"], b1=b)
-            return Series("b1", "TB1DAM", "flip", _volume(sel, s, ph.labels.shape), "FlipAngle",
-                          np.array([p.dam_fa, 2 * p.dam_fa]), {"RepetitionTime": p.dam_tr}, lowres=True)
+            return series("TB1DAM", "flip", s, "FlipAngle", [p.dam_fa, 2 * p.dam_fa], {"RepetitionTime": p.dam_tr},
+                          lowres=True)
         s = signals.afi(p.afi_fa, tr1=p.afi_tr[0], tr2=p.afi_tr[1], t1=t["t1"], pd=t["pd"], b1=b)
-        return Series("b1", "TB1AFI", "acq", _volume(sel, s, ph.labels.shape), "RepetitionTime", np.asarray(p.afi_tr, float),
-                      {"FlipAngle": p.afi_fa}, lowres=True, labels=["tr1", "tr2"])
+        return series("TB1AFI", "acq", s, "RepetitionTime", p.afi_tr, {"FlipAngle": p.afi_fa}, lowres=True,
+                      labels=["tr1", "tr2"])
     if name == "mp2rage":
         s = signals.mp2rage(ti=p.mp2rage_ti, fa_deg=p.mp2rage_fa, tr_prep=p.mp2rage_tr_prep, tr_exc=p.mp2rage_tr_exc,
                             shots=p.mp2rage_shots, efficiency=p.mp2rage_efficiency, te=p.mp2rage_te, t1=t["t1"],
                             t2star=t["t2star"], pd=t["pd"], b1=b)
-        return Series("mp2rage", "MP2RAGE", "inv", _volume(sel, s, ph.labels.shape), "InversionTime",
-                      np.asarray(p.mp2rage_ti, float),
+        return series("MP2RAGE", "inv", s, "InversionTime", p.mp2rage_ti,
                       {"RepetitionTimePreparation": p.mp2rage_tr_prep, "RepetitionTimeExcitation": p.mp2rage_tr_exc,
                        "NumberShots": int(p.mp2rage_shots), "EchoTime": p.mp2rage_te,
                        "PulseSequenceType": "MP2RAGE (simulated)"},

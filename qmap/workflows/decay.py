@@ -6,6 +6,7 @@ import time
 
 import numpy as np
 
+from ..docstrings import shared_parameters
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..io.series import load_series
 from ..models.monoexp import MonoExponential
@@ -34,6 +35,7 @@ def load_echoes(inputs, *, te, drop_first: bool, common: CommonOptions, min_volu
 
 
 @recorded
+@shared_parameters("inputs", "common")
 def run_t2star(
     inputs,
     *,
@@ -48,10 +50,6 @@ def run_t2star(
 
     Parameters
     ----------
-    inputs : list of path-like
-        One 4D NIfTI or several 3D NIfTIs (one per echo).
-    common : CommonOptions
-        Output folder, prefix, mask, workers, ...
     te : (m,) array_like, optional
         Echo times in seconds; default from the BIDS sidecars (``EchoTime``).
     noise_floor : {"rician", "offset", "truncate", "none"}

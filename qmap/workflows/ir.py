@@ -28,6 +28,7 @@ from typing import Unpack
 
 import numpy as np
 
+from ..docstrings import shared_parameters
 from ..errors import InputError, UsageError, warn
 from ..io.nifti import check_same_grid, image_data, load_image
 from ..io.series import Series, load_series
@@ -111,6 +112,7 @@ def _sort_by_ti(series: Series) -> None:
 
 
 @recorded
+@shared_parameters("inputs", "common")
 def run_t1_ir(
     inputs,
     *,
@@ -126,10 +128,6 @@ def run_t1_ir(
 
     Parameters
     ----------
-    inputs : list of path-like
-        One 4D NIfTI or several 3D NIfTIs (one per inversion time).
-    common : CommonOptions
-        Output folder, prefix, mask, workers, ...
     ti : (m,) array_like, optional
         Inversion times in seconds; default from the BIDS sidecars (``InversionTime``).
     tr : float, optional
@@ -222,6 +220,7 @@ def run_t1_ir(
     return report
 
 
+@shared_parameters("mask", "execution")
 def fit_t1_ir(
     data,
     ti,
@@ -248,10 +247,6 @@ def fit_t1_ir(
         Phase in radians, for magnitude ``data`` with ``signal="complex"``.
     look_locker : bool
         Report the Look-Locker corrected T1 ``T1* (B/A - 1)`` (Deichmann & Haase 1992).
-    mask : (...) array_like of bool, optional
-        Voxels to fit (default: all).
-    **execution
-        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.
 
     Returns
     -------

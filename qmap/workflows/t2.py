@@ -20,6 +20,7 @@ from typing import Unpack
 import numpy as np
 
 from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
+from ..docstrings import shared_parameters
 from ..errors import UsageError
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..maps import Execution, MapSet
@@ -65,6 +66,7 @@ def t2_model(
                                                                         "equation": "S = M0 exp(-TE/T2)"}
 
 
+@shared_parameters("decay_coils", "mask", "execution")
 def fit_t2(
     data,
     te,
@@ -100,15 +102,8 @@ def fit_t2(
     sigma : "auto", "local", float or (...) ndarray
         Noise sd in signal units; ``"auto"`` (default) / ``"local"`` estimate it
         from ``data`` (see :func:`qmap.fit_decay`).
-    coils : int, optional
-        ``rician``: coils combined by sum of squares (default one, or what the
-        background's moments show).
     drop_first : bool
         Do not fit the first echo (mono-exponential only).
-    mask : (...) array_like of bool, optional
-        Voxels to fit (default: all).
-    **execution
-        :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.
 
     Returns
     -------

@@ -27,6 +27,7 @@ import numpy as np
 from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
 from ..defaults import T1_TYPICAL
 from ..defaults import VFA_METHODS as METHODS
+from ..docstrings import shared_parameters
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
@@ -89,6 +90,7 @@ def protocol_check(fa, tr: float, t1_typical: float = T1_TYPICAL) -> tuple[dict,
 
 
 # ------------------------------------------------------------------ fitting
+@shared_parameters("mask")
 def fit_t1_vfa(
     data,
     fa,
@@ -118,8 +120,6 @@ def fit_t1_vfa(
         fitted. Without it the nominal angles are used.
     method : {"nonlinear", "linear"}
         Least squares on the signals, or the reweighted linearised regression.
-    mask : (...) array_like of bool, optional
-        Voxels to fit (default: all).
     sigma : float or (...) ndarray, optional
         Noise sd (signal units). With ``stderr="noise"`` the standard errors
         come from it (inverse Fisher information); otherwise, and without
@@ -174,6 +174,7 @@ def fit_t1_vfa(
 
 
 @recorded
+@shared_parameters("inputs", "common")
 def run_t1_vfa(
     inputs,
     *,
@@ -192,10 +193,6 @@ def run_t1_vfa(
 
     Parameters
     ----------
-    inputs : list of path-like
-        One 4D NIfTI or several 3D NIfTIs (one per flip angle).
-    common : CommonOptions
-        Output folder, prefix, mask, workers, ...
     fa : (m,) array_like, optional
         Nominal flip angles, degrees; default from the sidecars (``FlipAngle``).
     tr : float, optional
