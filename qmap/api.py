@@ -13,26 +13,16 @@ from typing import Unpack
 import numpy as np
 
 from .docstrings import shared_parameters
-from .fitting.noise_floor import DEFAULT_MODE, NoiseFloor
-from .maps import Execution, MapSet, execution_kwargs, fit_volume
+from .maps import MapSet, execution_kwargs, fit_volume
+from .models.base import SeparableModel
 from .models.monoexp import MonoExponential
+from .workflows.decay import DecayFitOptions, DecayOptions, DecaySettings
 
 __all__ = ["b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"]
 
 
-@shared_parameters("mask", "decay_coils", "execution")
-def fit_decay(
-    data,
-    te,
-    *,
-    param: str = "T2star",
-    mask=None,
-    noise_floor: str = DEFAULT_MODE,
-    sigma="auto",
-    coils: int | None = None,
-    drop_first: bool = False,
-    **execution: Unpack[Execution],
-) -> MapSet:
+@shared_parameters("mask", "decay_options")
+def fit_decay(data, te, *, param: str = "T2star", mask=None, **options: Unpack[DecayFitOptions]) -> MapSet:
     """Fit a mono-exponential decay ``S = M0 exp(-TE/T)`` in every voxel.
 
     Parameters
@@ -43,16 +33,6 @@ def fit_decay(
         Echo times in seconds.
     param : {"T2star", "T2"}
         Name of the decay time in the outputs.
-    noise_floor : {"rician", "offset", "truncate", "none"}
-        Noise-floor handling (see :mod:`qmap.fitting.noise_floor`).
-    sigma : "auto", "local", float or (...) ndarray
-        Noise sd (signal units), used by ``rician`` and ``truncate``. ``"auto"``
-        (default) estimates it from ``data`` as ``--sigma auto`` does (the
-        background of a 4D array, else the residuals of a first plain fit in
-        voxels well above the noise; see :func:`qmap.noise_level.estimate_noise`);
-        ``"local"`` a smooth noise map. The estimate is in ``maps.info["noise"]``.
-    drop_first : bool
-        Ignore the first echo.
 
     Returns
     -------
@@ -60,49 +40,56 @@ def fit_decay(
         ``maps[param]``, ``maps["R..."]``, ``maps["M0"]``, their ``stderr``,
         ``quality`` and ``status``.
     """
+    settings, execution = DecaySettings.split(options, DecayOptions.__optional_keys__)
     data = np.asarray(data)
     te = np.asarray(te, float)
-    if drop_first:
+    if settings.drop_first:
         data, te = data[..., 1:], te[1:]
     model = MonoExponential(te, param=param)
-    return _fit_with_noise_floor(model, data, mask=mask, noise_floor=noise_floor, sigma=sigma, coils=coils,
-                                 **execution)
+    return _fit_with_noise_floor(model, data, settings, mask=mask, execution=execution)
 
 
-def _fit_with_noise_floor(model, data, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma="auto",
-                          coils: int | None = None, **execution: Unpack[Execution]) -> MapSet:
+def _fit_with_noise_floor(model: SeparableModel, data, settings: DecaySettings, *, mask, execution: dict) -> MapSet:
     """Fit ``model`` to magnitudes ``data`` with a noise-floor model and its noise level (from the data with "auto").
 
-    The body of the decay fits (:func:`fit_decay`, :func:`qmap.workflows.t2.fit_t2`); the estimated noise level
-    is in ``maps.info["noise"]``.
+    The body of the decay fits (:func:`fit_decay`, :func:`qmap.workflows.t2.fit_t2`); ``execution`` holds the
+    :class:`~qmap.maps.Execution` options (TypeError for any other name); the estimated noise level is in
+    ``maps.info["noise"]``.
     """
     kw = execution_kwargs(execution)
-    noise, sigma, info = _noise_for(data, model, noise_floor, sigma, coils, mask, kw["n_jobs"])
+    noise, sigma, info = _noise_for(data, model, settings, mask, kw["n_jobs"])
     maps = fit_volume(model, data, mask=mask, noise=noise, sigma=sigma, **kw)
     if info is not None:
         maps.info["noise"] = info
     return maps
 
 
-def _noise_for(data, model, noise_floor: str, sigma, coils: int | None, mask, n_jobs):
+def _noise_for(data, model: SeparableModel, settings: DecaySettings, mask, n_jobs):
     """The noise-floor handling and sigma of an array fit: ``sigma="auto"``/``"local"`` estimated from ``data``."""
     from .noise_level import array_sigma
 
-    noise = NoiseFloor(noise_floor, coils=coils or 1)
+    noise = settings.noise()
+    sigma, coils = settings.sigma, settings.coils
     info = None
     if noise.needs_sigma:
         if sigma is None:
-            raise ValueError(f"noise_floor={noise_floor!r} needs sigma (the noise sd in signal units, or 'auto')")
+            raise ValueError(f"noise_floor={settings.noise_floor!r} needs sigma (the noise sd in signal units, or "
+                             f"'auto')")
         sigma, info = array_sigma(data, model, sigma, mask=mask, coils=coils, n_jobs=n_jobs)
         if info is not None and coils is None and info.get("coils") and info["coils"] != noise.coils:
-            noise = NoiseFloor(noise_floor, coils=int(info["coils"]))
+            noise = settings.noise(int(info["coils"]))
     elif isinstance(sigma, str):
         sigma = None  # not used by this noise-floor mode
     return noise, sigma, info
 
 
-def fit_t2star(data, te, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma="auto", **kwargs) -> MapSet:
-    """Fit T2* from multi-echo gradient-echo magnitudes; see :func:`fit_decay`.
+def fit_t2star(data, te, *, mask=None, **options: Unpack[DecayFitOptions]) -> MapSet:
+    """Fit T2* from multi-echo gradient-echo magnitudes: :func:`fit_decay` with ``param="T2star"``.
+
+    Parameters
+    ----------
+    data, te, mask, **options
+        As in :func:`fit_decay`.
 
     Examples
     --------
@@ -113,7 +100,7 @@ def fit_t2star(data, te, *, mask=None, noise_floor: str = DEFAULT_MODE, sigma="a
     >>> float(np.round(maps["T2star"][0, 0, 0], 6))
     0.03
     """
-    return fit_decay(data, te, param="T2star", mask=mask, noise_floor=noise_floor, sigma=sigma, **kwargs)
+    return fit_decay(data, te, param="T2star", mask=mask, **options)
 
 
 # the other models' array-level functions live beside their workflows; re-exported here

@@ -55,9 +55,9 @@ PARAMETERS: dict[str, str] = {
     Voxels to fit (default: all).""",
     "execution": """**execution
     :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.""",
-    "decay_coils": """coils : int, optional
-    ``rician``: coils combined by sum of squares (default one, or what the
-    background's moments show).""",
+    "decay_options": """**options
+    :class:`~qmap.workflows.decay.DecayOptions` (``noise_floor``, ``sigma``, ``coils``, ``drop_first``) and
+    :class:`~qmap.maps.Execution` (``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``) keywords.""",
     # the noise-level estimators (qmap.noise_level)
     "source": """source : VolumeSource
     The series (a :class:`~qmap.io.series.Series` or an :class:`ArraySource`).""",

@@ -22,14 +22,13 @@ import numpy as np
 from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..docstrings import shared_parameters
 from ..errors import UsageError
-from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
-from ..maps import Execution, MapSet
+from ..maps import MapSet
 from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
 from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
 from ..record import recorded
-from .decay import load_echoes, noise_options
+from .decay import DecaySettings, T2FitOptions, T2Options, load_echoes
 
 __all__ = ["DEFAULT_REFOCUS", "DEFAULT_T1", "fit_t2", "run_t2", "t2_model"]
 
@@ -66,21 +65,8 @@ def t2_model(
                                                                         "equation": "S = M0 exp(-TE/T2)"}
 
 
-@shared_parameters("decay_coils", "mask", "execution")
-def fit_t2(
-    data,
-    te,
-    *,
-    epg: bool = False,
-    refocus_deg: float = DEFAULT_REFOCUS,
-    t1: float = DEFAULT_T1,
-    noise_floor: str = DEFAULT_MODE,
-    sigma="auto",
-    coils: int | None = None,
-    drop_first: bool = False,
-    mask=None,
-    **execution: Unpack[Execution],
-) -> MapSet:
+@shared_parameters("mask")
+def fit_t2(data, te, *, mask=None, **options: Unpack[T2FitOptions]) -> MapSet:
     """Fit T2 in every voxel of a multi-echo spin-echo magnitude series (array API).
 
     Parameters
@@ -89,21 +75,10 @@ def fit_t2(
         Magnitudes; the last axis runs over the echoes of the whole train.
     te : (m,) array_like
         Echo times in seconds. With ``epg`` they must be TE_k = k * ESP.
-    epg : bool
-        Fit the extended-phase-graph model (M0, T2 and the refocusing scale)
-        instead of a mono-exponential.
-    refocus_deg : float
-        ``epg``: nominal refocusing angle in degrees (default 180).
-    t1 : float
-        ``epg``: fixed T1 in seconds (default 1).
-    noise_floor : {"rician", "offset", "truncate", "none"}
-        Noise-floor handling (see :mod:`qmap.fitting.noise_floor`); default
-        ``rician``, which needs ``sigma``.
-    sigma : "auto", "local", float or (...) ndarray
-        Noise sd in signal units; ``"auto"`` (default) / ``"local"`` estimate it
-        from ``data`` (see :func:`qmap.fit_decay`).
-    drop_first : bool
-        Do not fit the first echo (mono-exponential only).
+    **options
+        :class:`~qmap.workflows.decay.T2Options` (``epg``, ``refocus_deg``, ``t1``, ``noise_floor``,
+        ``sigma``, ``coils``, ``drop_first``) and :class:`~qmap.maps.Execution` (``n_jobs``, ``engine``,
+        ``chunk_size``, ``scheduler``) keywords.
 
     Returns
     -------
@@ -122,56 +97,47 @@ def fit_t2(
     >>> float(np.round(maps["T2"][0, 0, 0], 6)), float(np.round(maps["RefocusScale"][0, 0, 0], 4))
     (0.08, 1.0)
     """
+    settings, execution = DecaySettings.split(options, T2Options.__optional_keys__)
     data = np.asarray(data)
-    model, info = t2_model(te, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
-    if drop_first:
+    model, info = t2_model(te, epg=settings.epg, refocus_deg=settings.refocus_deg, t1=settings.t1,
+                           drop_first=settings.drop_first)
+    if settings.drop_first:
         data = data[..., 1:]
     from ..api import _fit_with_noise_floor
 
-    maps = _fit_with_noise_floor(model, data, mask=mask, noise_floor=noise_floor, sigma=sigma, coils=coils,
-                                 **execution)
+    maps = _fit_with_noise_floor(model, data, settings, mask=mask, execution=execution)
     maps.info["model_info"] = info
     return maps
 
 
 @recorded
-def run_t2(
-    inputs,
-    *,
-    common: CommonOptions,
-    te=None,
-    epg: bool = False,
-    refocus_deg: float = DEFAULT_REFOCUS,
-    t1: float = DEFAULT_T1,
-    noise_floor: str = DEFAULT_MODE,
-    sigma="auto",
-    coils: int | None = None,
-    drop_first: bool = False,
-) -> RunReport:
+def run_t2(inputs, *, common: CommonOptions, te=None, **options: Unpack[T2Options]) -> RunReport:
     """Fit T2, R2 and M0 (and with ``epg`` RefocusScale) maps to a multi-echo spin-echo series.
 
     Parameters
     ----------
     inputs, common, te
         The echo train, as in :func:`~qmap.workflows.decay.run_t2star`.
-    epg, refocus_deg, t1, noise_floor, sigma, coils, drop_first
-        As in :func:`fit_t2` (``sigma`` may also be ``"auto"`` or a noise-map path).
+    **options
+        :class:`~qmap.workflows.decay.T2Options`: ``epg``, ``refocus_deg``, ``t1``, ``noise_floor``,
+        ``sigma`` (also a noise-map path), ``coils``, ``drop_first``.
     """
     t0 = time.perf_counter()
+    s = DecaySettings.of(options, T2Options.__optional_keys__)
     series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
     te_all = np.asarray(series.acquisition["EchoTime"], float)
-    model, info = t2_model(te_all, epg=epg, refocus_deg=refocus_deg, t1=t1, drop_first=drop_first)
-    if drop_first:  # after t2_model, which checks the echo spacing on the whole train
+    model, info = t2_model(te_all, epg=s.epg, refocus_deg=s.refocus_deg, t1=s.t1, drop_first=s.drop_first)
+    if s.drop_first:  # after t2_model, which checks the echo spacing on the whole train
         series.select_volumes(np.arange(1, series.n))
         series.acquisition["EchoTime"] = te_all[1:]
         notes.append("first echo dropped")
-    options = noise_options(noise_floor, sigma, coils, drop_first)
-    options.update(epg=bool(epg))
+    provenance = s.provenance()
+    provenance.update(epg=bool(s.epg))
     if isinstance(model, EpgT2):  # epg=True
-        options.update(refocus_deg=float(refocus_deg), t1_s=float(t1))
-        notes.append(f"EPG model: echo spacing {1e3 * model.esp:.4g} ms, refocusing {refocus_deg:g} deg x fitted "
-                     f"scale, T1 fixed at {t1:g} s")
+        provenance.update(refocus_deg=float(s.refocus_deg), t1_s=float(s.t1))
+        notes.append(f"EPG model: echo spacing {1e3 * model.esp:.4g} ms, refocusing {s.refocus_deg:g} deg x fitted "
+                     f"scale, T1 fixed at {s.t1:g} s")
     return run_fit(
-        series, model, common=common, noise=NoiseFloor(noise_floor, coils=coils or 1), sigma_spec=sigma,
-        options=options, model_info=info, notes=notes, t0=t0, method="mese", coils_auto=coils is None,
+        series, model, common=common, noise=s.noise(), sigma_spec=s.sigma, options=provenance, model_info=info,
+        notes=notes, t0=t0, method="mese", coils_auto=s.coils is None,
     )

@@ -11,6 +11,8 @@ through the same machinery as every fitting command.
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass
+from typing import TypedDict, Unpack
 
 import numpy as np
 
@@ -45,7 +47,7 @@ from ..pipeline import CommonOptions, RunReport, Slab, prepare_run
 from ..record import recorded
 from .decay import load_echoes
 
-__all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "fit_t2_spectrum", "run_t2_spectrum"]
+__all__ = ["MIN_ECHOES", "SE_SUBSAMPLE", "SpectrumOptions", "SpectrumSettings", "fit_t2_spectrum", "run_t2_spectrum"]
 
 #: fewest echoes a spectrum is fitted from
 MIN_ECHOES = 8
@@ -106,11 +108,61 @@ def _refocus_angle(series, given: float | None) -> float:
     return 180.0
 
 
-def _model(te, *, refocus_deg, t1, window, chi2_factor, n_t2, t2_range, min_snr) -> SpectrumModel:
-    esp = _check_protocol(te, window, chi2_factor, n_t2, t2_range)
-    basis = spectrum_basis(round(esp, 9), int(np.size(te)), t1=float(t1), refocus_deg=float(refocus_deg),
-                           t2_range=(float(t2_range[0]), float(t2_range[1])), n_t2=int(n_t2))
-    return SpectrumModel(basis, window=window, chi2_factor=chi2_factor, min_snr=min_snr)
+class SpectrumOptions(TypedDict, total=False):
+    """How the T2 spectra are computed: the keyword arguments shared by ``qmap t2-spectrum``
+    (:func:`run_t2_spectrum`) and the array API (:func:`fit_t2_spectrum`). Their defaults are those of
+    :class:`SpectrumSettings`.
+
+    Keys
+    ----
+    t1 : float
+        Fixed T1 of the EPG basis, s (default 1).
+    window : (float, float)
+        Short-T2 window, s (default 10-40 ms).
+    chi2_factor : float
+        Allowed chi^2 increase of the regularised spectrum (default 1.02).
+    n_t2, t2_range
+        T2 grid: ``n_t2`` log-spaced values over ``t2_range`` (s) (default 40 over 10 ms - 2 s).
+    min_snr : float
+        First-echo SNR below which a voxel gets status LOW_SNR (default 50).
+    se_subsample : int
+        Voxels of the bootstrap that calibrates the standard error of the fraction.
+    """
+
+    t1: float
+    window: tuple[float, float]
+    chi2_factor: float
+    n_t2: int
+    t2_range: tuple[float, float]
+    min_snr: float
+    se_subsample: int
+
+
+@dataclass(frozen=True)
+class SpectrumSettings:
+    """:class:`SpectrumOptions` with their defaults filled in (the one place they are set)."""
+
+    t1: float = 1.0
+    window: tuple[float, float] = DEFAULT_WINDOW
+    chi2_factor: float = DEFAULT_CHI2_FACTOR
+    n_t2: int = DEFAULT_N_T2
+    t2_range: tuple[float, float] = DEFAULT_T2_RANGE
+    min_snr: float = DEFAULT_MIN_SNR
+    se_subsample: int = SE_SUBSAMPLE
+
+    def model(self, te, refocus_deg: float) -> SpectrumModel:
+        """The spectrum model of an echo train ``te`` (s) with nominal refocusing angle ``refocus_deg``."""
+        esp = _check_protocol(te, self.window, self.chi2_factor, self.n_t2, self.t2_range)
+        basis = spectrum_basis(round(esp, 9), int(np.size(te)), t1=float(self.t1), refocus_deg=float(refocus_deg),
+                               t2_range=(float(self.t2_range[0]), float(self.t2_range[1])), n_t2=int(self.n_t2))
+        return SpectrumModel(basis, window=self.window, chi2_factor=self.chi2_factor, min_snr=self.min_snr)
+
+    def provenance(self) -> dict:
+        """The provenance ``options`` these settings contribute."""
+        return {"t1_s": float(self.t1), "window_s": [float(self.window[0]), float(self.window[1])],
+                "chi2_factor": float(self.chi2_factor), "n_t2": int(self.n_t2),
+                "t2_range_s": [float(self.t2_range[0]), float(self.t2_range[1])], "min_snr": float(self.min_snr),
+                "se_subsample": int(self.se_subsample)}
 
 
 class _Collect:
@@ -278,17 +330,11 @@ def fit_t2_spectrum(
     te,
     *,
     refocus_deg: float = 180.0,
-    t1: float = 1.0,
-    window=DEFAULT_WINDOW,
-    chi2_factor: float = DEFAULT_CHI2_FACTOR,
-    n_t2: int = DEFAULT_N_T2,
-    t2_range=DEFAULT_T2_RANGE,
-    min_snr: float = DEFAULT_MIN_SNR,
     sigma=None,
     mask=None,
     n_jobs: int | None = None,
     chunk_size: int = 2048,
-    se_subsample: int = SE_SUBSAMPLE,
+    **options: Unpack[SpectrumOptions],
 ) -> tuple[MapSet, dict]:
     """Fit T2 spectra in every voxel of a multi-echo spin-echo magnitude series (array API).
 
@@ -300,23 +346,14 @@ def fit_t2_spectrum(
         Echo times, s, equally spaced at TE_k = k * ESP.
     refocus_deg : float
         Nominal refocusing angle, degrees (searched from half of it to 180).
-    t1 : float
-        Fixed T1 of the EPG basis, s.
-    window : (float, float)
-        Short-T2 window, s.
-    chi2_factor : float
-        Allowed chi^2 increase of the regularised spectrum.
-    n_t2, t2_range
-        T2 grid: ``n_t2`` log-spaced values over ``t2_range`` (s).
-    min_snr : float
-        First-echo SNR below which a voxel gets status LOW_SNR.
     sigma : float or (X, Y, Z) ndarray, optional
         Noise sd, signal units; default: per voxel from the unregularised residuals.
     mask : (X, Y, Z) array_like of bool, optional
     n_jobs, chunk_size
         Execution (results do not depend on them).
-    se_subsample : int
-        Voxels of the bootstrap that calibrates the standard error of the fraction.
+    **options
+        :class:`SpectrumOptions`: ``t1``, ``window``, ``chi2_factor``, ``n_t2``, ``t2_range``, ``min_snr``,
+        ``se_subsample``.
 
     Returns
     -------
@@ -330,14 +367,14 @@ def fit_t2_spectrum(
     data = np.asarray(data)
     if data.ndim == 2:
         data = data[:, None, None, :]
-    model = _model(te, refocus_deg=refocus_deg, t1=t1, window=window, chi2_factor=chi2_factor, n_t2=n_t2,
-                   t2_range=t2_range, min_snr=min_snr)
+    settings = SpectrumSettings(**options)
+    model = settings.model(te, refocus_deg)
     shape = data.shape[:-1]
     mask = np.ones(shape, bool) if mask is None else np.asarray(mask, bool)
     out = _Collect(int(np.prod(shape)), model.basis.t2.size)
     n = _fit_flat(model, data, mask, sigma, n_jobs=n_jobs, chunk_size=chunk_size, scheduler=None, quiet=True,
                   label="fitting", out=out)
-    cal = _calibrate(model, out, n_sub=se_subsample, replicates=SE_REPLICATES)
+    cal = _calibrate(model, out, n_sub=settings.se_subsample, replicates=SE_REPLICATES)
     se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
     maps = _mapset(model, out, shape, se, n)
     kept = np.isin(out.status, _KEPT)
@@ -358,14 +395,8 @@ def run_t2_spectrum(
     common: CommonOptions,
     te=None,
     refocus_deg: float | None = None,
-    t1: float = 1.0,
-    window=DEFAULT_WINDOW,
-    chi2_factor: float = DEFAULT_CHI2_FACTOR,
-    n_t2: int = DEFAULT_N_T2,
-    t2_range=DEFAULT_T2_RANGE,
-    min_snr: float = DEFAULT_MIN_SNR,
     sigma="auto",
-    se_subsample: int = SE_SUBSAMPLE,
+    **options: Unpack[SpectrumOptions],
 ) -> RunReport:
     """Fit T2 spectra to a multi-echo spin-echo series and write the maps (see the module docstring).
 
@@ -376,20 +407,20 @@ def run_t2_spectrum(
     refocus_deg : float, optional
         Nominal refocusing angle, degrees; default: the sidecar's
         ``RefocusingFlipAngle`` when present, else 180.
-    t1, window, chi2_factor, n_t2, t2_range, min_snr, se_subsample
-        As in :func:`fit_t2_spectrum`.
     sigma : "auto", "local", float or path
         Noise sd: from the image background (falling back to the pooled fit
         residuals when there is no usable background); ``"local"``: a smooth
         noise map from the fit residuals and the background (written as
         ``{prefix}_desc-noise_sigmamap``); a value; or a noise map.
+    **options
+        :class:`SpectrumOptions`, as in :func:`fit_t2_spectrum`.
     """
     t0 = time.perf_counter()
     series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
     te_all = np.asarray(series.acquisition["EchoTime"], float)
     refocus_deg = _refocus_angle(series, refocus_deg)
-    model = _model(te_all, refocus_deg=refocus_deg, t1=t1, window=window, chi2_factor=chi2_factor, n_t2=n_t2,
-                   t2_range=t2_range, min_snr=min_snr)
+    settings = SpectrumSettings(**options)
+    model = settings.model(te_all, refocus_deg)
     # the noise level is for the standard errors and the SNR only; without a usable background it comes from
     # the pooled fit residuals (below), quietly
     local = str(sigma) == "local"  # the map comes from this fit's residuals (below): nothing to estimate first
@@ -446,15 +477,12 @@ def run_t2_spectrum(
             noise_info.update(sigma=pooled, sigma_source="median of the per-voxel residual sd sqrt(RSS/(echoes - "
                                                          "peaks)) of the unregularised spectra (no usable background)")
             run.notes.append(f"noise sigma {pooled:.4g} from the fit residuals (no usable image background)")
-    cal = _calibrate(model, out, n_sub=se_subsample, replicates=SE_REPLICATES)
+    cal = _calibrate(model, out, n_sub=settings.se_subsample, replicates=SE_REPLICATES)
     se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
     maps = _mapset(model, out, shape, se, n_fitted)
     b = model.basis
-    options = {
-        "refocus_deg": float(refocus_deg), "t1_s": float(t1), "window_s": [float(window[0]), float(window[1])],
-        "chi2_factor": float(chi2_factor), "n_t2": int(n_t2), "t2_range_s": [float(t2_range[0]), float(t2_range[1])],
-        "min_snr": float(min_snr), "sigma": None if sigma is None else str(sigma), "se_subsample": int(se_subsample),
-    }
+    provenance = {"refocus_deg": float(refocus_deg), **settings.provenance(),
+                  "sigma": None if sigma is None else str(sigma)}
     model_info = {
         "name": "t2spectrum",
         "equation": "y_k = sum_j s_j E_k(T2_j, alpha; ESP, T1), s_j >= 0; min ||A s - y||^2 + mu ||s||^2 with "
@@ -477,7 +505,7 @@ def run_t2_spectrum(
                      f"(median SD {cal['median_sd']:.3g})")
     extra = _extra_outputs(model, out, shape, run.prefix, common.units)
     run.extra_outputs.extend(extra)
-    return run.write(maps, options=options, model_info=dict(model_info, parameters=list(model.param_names)))
+    return run.write(maps, options=provenance, model_info=dict(model_info, parameters=list(model.param_names)))
 
 
 # documented quality maps of this command (for the README and --help)
