@@ -16,7 +16,7 @@ import numpy as np
 
 from ..linalg import chol_solve
 
-__all__ = ["levenberg_marquardt", "normal_equations"]
+__all__ = ["gram", "levenberg_marquardt", "normal_equations"]
 
 #: ``evaluate(p, idx) -> (s, J)``: signal (k, m) and Jacobian (k, P, m) of the voxels ``idx`` at ``p`` (k, P)
 Evaluate = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
@@ -36,6 +36,92 @@ def normal_equations(J: np.ndarray, w: np.ndarray | None, r: np.ndarray) -> tupl
     return JTJ, g
 
 
+#: undamped Gauss-Newton steps tried before the damped iteration (unweighted problems)
+GAUSS_NEWTON_STEPS = 3
+
+
+def _solve_normal(JTJ: np.ndarray, g: np.ndarray) -> np.ndarray:
+    """``JTJ x = g`` per voxel: closed form for 2 x 2 (Cramer's rule), Cholesky otherwise; NaN where singular."""
+    if g.shape[1] == 2:
+        a, b, c = JTJ[:, 0, 0], JTJ[:, 0, 1], JTJ[:, 1, 1]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            inv_det = 1.0 / (a * c - b * b)
+            inv_det[~(inv_det > 0)] = np.nan  # not positive definite
+            return np.stack([(c * g[:, 0] - b * g[:, 1]) * inv_det, (a * g[:, 1] - b * g[:, 0]) * inv_det], axis=1)
+    return chol_solve(JTJ, g)
+
+
+def _gauss_newton(evaluate: Evaluate, y, p, r, rss, J, converged, n_iter, lo, hi, *, steps: int, xtol: float,
+                  ftol: float, se_tol: float) -> tuple:
+    """Undamped Gauss-Newton steps for the unweighted voxels (see :func:`levenberg_marquardt`).
+
+    Returns the updated ``p, r, rss, J, converged, n_iter`` (full length; the arrays given may have been
+    updated in place). A voxel stays in this phase while each step stays inside the bounds, is finite and
+    lowers the RSS; it has converged on a negligible step (taken without evaluating it, as in the damped
+    loop) or a negligible drop of the RSS.
+    """
+    n, P = p.shape
+    m_dof = y.shape[1] - P
+    act = np.flatnonzero(np.isfinite(rss) & ~converged)
+    for _ in range(steps):
+        if act.size == 0:
+            break
+        every = act.size == n  # the whole chunk: no gathering
+        pa, rssa = (p, rss) if every else (p[act], rss[act])
+        JTJ, g = normal_equations(J if every else J[act], None, r if every else r[act])
+        pn = pa + _solve_normal(JTJ, g)
+        inside = np.all((pn >= lo) & (pn <= hi) & np.isfinite(pn), axis=1)
+        step = np.abs(pn - pa)
+        small = np.all(step <= xtol * (np.abs(pa) + xtol), axis=1)
+        if m_dof > 0:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                se_floor = np.sqrt(rssa / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", JTJ))
+            small |= np.all(step <= se_tol * se_floor, axis=1)
+        small &= inside
+        done = act[small]
+        p[done] = pn[small]
+        converged[done] = True
+        n_iter[done] += 1
+        go = np.flatnonzero(inside & ~small)
+        if go.size == 0:
+            break
+        k = act[go]
+        all_go = go.size == n
+        sn, Jn = evaluate(pn if all_go else pn[go], k)
+        rn = (y if all_go else y[k]) - sn
+        rssn = np.einsum("nm,nm->n", rn, rn)
+        rss_go = rssa if all_go else rssa[go]
+        ok = np.isfinite(rssn) & (rssn <= rss_go)
+        n_iter[k] += 1
+        if all_go:  # the whole chunk moved: the new arrays replace the old (the few rejected steps undone)
+            rej = np.flatnonzero(~ok)
+            if rej.size:
+                pn[rej], rn[rej], Jn[rej], rssn[rej] = p[rej], r[rej], J[rej], rss[rej]
+            flat = ok & ((rss - rssn <= ftol * rss) | (rssn == 0))
+            p, r, J, rss = pn, rn, Jn, rssn
+            acc = k[ok]
+            flat = flat[ok]
+        else:
+            acc = k[ok]
+            p[acc], r[acc], J[acc], rss[acc] = pn[go[ok]], rn[ok], Jn[ok], rssn[ok]
+            flat = (rss_go[ok] - rssn[ok] <= ftol * rss_go[ok]) | (rssn[ok] == 0)
+        converged[acc[flat]] = True
+        act = acc[~flat]
+    return p, r, rss, J, converged, n_iter
+
+
+def gram(J: np.ndarray, w: np.ndarray | None) -> np.ndarray:
+    """J^T W J (n, P, P) for J (n, P, m) (:func:`normal_equations` without the gradient)."""
+    n, P, _m = J.shape
+    Jw = J if w is None else J * w[:, None, :]
+    JTJ = np.empty((n, P, P))
+    for i in range(P):
+        for j in range(i, P):
+            JTJ[:, i, j] = np.einsum("nm,nm->n", Jw[:, i], J[:, j])
+            JTJ[:, j, i] = JTJ[:, i, j]
+    return JTJ
+
+
 def levenberg_marquardt(
     evaluate: Evaluate,
     y: np.ndarray,
@@ -48,6 +134,7 @@ def levenberg_marquardt(
     xtol: float = 1e-8,
     ftol: float = 1e-13,
     se_tol: float = 1e-3,
+    gauss_newton: int = GAUSS_NEWTON_STEPS,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Batched, bounded Levenberg-Marquardt.
 
@@ -62,6 +149,8 @@ def levenberg_marquardt(
         Start.
     lo, hi : (P,) ndarray
         Bounds (``-inf``/``inf`` for none); steps are projected onto them.
+    gauss_newton : int
+        Undamped Gauss-Newton steps tried first (unweighted problems only; see Notes).
 
     Returns
     -------
@@ -77,6 +166,14 @@ def levenberg_marquardt(
     confirming the step: the step is taken, and the RSS and Jacobian
     returned for it are those of the point before. It has also converged when an accepted step lowers
     the RSS by less than ``ftol`` relative, or when no downhill step exists.
+
+    From a start next to the minimum (a model's closed-form start) the
+    damping only costs work: with ``w`` None, up to ``gauss_newton`` plain
+    Gauss-Newton steps are taken first (the same step with no damping, the
+    same convergence test). A voxel leaves that phase for the damped loop as
+    soon as its step would leave the bounds, is not finite or does not lower
+    the RSS, so the damped iteration still decides every hard case; the
+    answer is the same to within the convergence tolerance.
     """
     n, P = p0.shape
     m_dof = y.shape[1] - P
@@ -87,6 +184,9 @@ def levenberg_marquardt(
     rss[~np.isfinite(rss)] = np.inf
     converged = rss == 0
     n_iter = np.zeros(n, int)
+    if w is None and gauss_newton > 0:
+        p, r, rss, J, converged, n_iter = _gauss_newton(evaluate, y, p, r, rss, J, converged, n_iter, lo, hi,
+                                                        steps=gauss_newton, xtol=xtol, ftol=ftol, se_tol=se_tol)
     # the working set: compacted copies of the voxels still iterating, written
     # back whenever it is compacted (avoids fancy indexing on every step)
     idx = np.flatnonzero(np.isfinite(rss) & ~converged)
@@ -145,17 +245,30 @@ def levenberg_marquardt(
         # a voxel whose proposed step is already negligible has converged where it is: it is not evaluated
         # again (nor are the voxels that finished earlier and still sit in the working set)
         need = live & ~small_step
-        if need.all():
-            sn, Jn = evaluate(pn, idx)
-        else:
-            k = np.flatnonzero(need)
-            sn = np.zeros_like(wr)
-            Jn = np.zeros_like(wJ)
-            if k.size:
-                sn[k], Jn[k] = evaluate(pn[k], idx[k])
-        rn = wy - sn
-        rssn = np.einsum("nm,nm->n", rn if ww is None else ww * rn, rn)
-        ok = need & np.isfinite(rssn) & (rssn <= wrss) & np.all(np.isfinite(pn), axis=1)
+        # evaluate only the voxels that need it (no full-size scratch arrays); ``ok`` and the new RSS are
+        # gathered back to the working set's length
+        rssn = np.full(idx.size, np.inf)
+        ok = np.zeros(idx.size, bool)
+        k = None if need.all() else np.flatnonzero(need)
+        if k is None or k.size:
+            pk = pn if k is None else pn[k]
+            sn, Jn = evaluate(pk, idx if k is None else idx[k])
+            rn = (wy if k is None else wy[k]) - sn
+            wk = None if ww is None else (ww if k is None else ww[k])
+            rk = np.einsum("nm,nm->n", rn if wk is None else wk * rn, rn)
+            okk = np.isfinite(rk) & (rk <= (wrss if k is None else wrss[k])) & np.all(np.isfinite(pk), axis=1)
+            if k is None:
+                rssn, ok = rk, okk
+            else:
+                rssn[k] = rk
+                ok[k] = okk
+            if okk.all() and k is None:  # every voxel's step accepted: take the new arrays as they are
+                wr, wJ = rn, Jn
+            elif okk.any():
+                a = np.flatnonzero(okk)
+                dest = a if k is None else k[a]
+                wr[dest] = rn[a]
+                wJ[dest] = Jn[a]
         wit += live
         small_drop = (wrss - rssn) <= ftol * wrss
         # damping after Nielsen (1999; Madsen, Nielsen & Tingleff, "Methods for non-linear least
@@ -164,8 +277,6 @@ def levenberg_marquardt(
             rho = np.where(pred > 0, (wrss - rssn) / pred, 0.0)
         shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
         np.copyto(wp, pn, where=ok[:, None])
-        np.copyto(wr, rn, where=ok[:, None])
-        np.copyto(wJ, Jn, where=ok[:, None, None])
         np.copyto(wrss, rssn, where=ok)
         # the negligible steps are taken without evaluating them (RSS and Jacobian stay those of the point
         # before: they differ by second order in a step far below the standard error)

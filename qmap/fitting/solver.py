@@ -44,8 +44,8 @@ from .. import status as st
 from ..linalg import chol_inverse, chol_solve
 from ..models.base import SeparableModel
 from .noise_floor import RICIAN_SWITCH, NoiseFloor
+from .optimizer import gram as _normal
 from .optimizer import levenberg_marquardt
-from .optimizer import normal_equations as _normal
 
 __all__ = ["ChunkFit", "fit_chunk", "grid_start", "levenberg_marquardt", "linear_amplitudes", "voxel_scale"]
 
@@ -198,12 +198,16 @@ def refine_grid_1d(model: SeparableModel, y, w, ctx, theta0) -> np.ndarray:
 
 
 def linear_amplitudes(model: SeparableModel, y, w, theta, ctx) -> np.ndarray:
-    """Least-squares linear amplitudes (n, L) for fixed non-linear parameters."""
+    """Least-squares linear amplitudes (n, L) for fixed non-linear parameters (``w`` None: all samples)."""
     phi = model.basis(theta, ctx)
     L = phi.shape[2]
     if L == 1:
+        f = phi[:, :, 0]
+        fw = f if w is None else f * w
         with np.errstate(divide="ignore", invalid="ignore"):
-            return (np.sum(phi[:, :, 0] * y * w, axis=1) / np.sum(phi[:, :, 0] ** 2 * w, axis=1))[:, None]
+            return (np.einsum("nm,nm->n", fw, y) / np.einsum("nm,nm->n", fw, f))[:, None]
+    if w is None:
+        w = np.ones(y.shape)
     a = np.einsum("nmk,nml,nm->nkl", phi, phi, w)
     b = np.einsum("nml,nm->nl", phi, y * w)
     return chol_solve(a, b)
@@ -288,8 +292,8 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     n, _m = y.shape
     fit_model = noise.wrap(model)
     w = noise.weights(y, sigma)
-    n_used = w.sum(axis=1).astype(int)
     wl = w if noise.weighted else None  # all-ones weights are skipped in the hot loop
+    n_used = np.full(n, y.shape[1]) if wl is None else w.sum(axis=1).astype(int)
     P = len(fit_model.param_names)
     L = len(fit_model.linear)
     lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
@@ -311,14 +315,14 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
 
     starts = []
     for yc in model.candidates(y):
-        theta0 = model.initial_guess(yc, w, ctx)
+        theta0 = model.initial_guess(yc, wl, ctx)
         exact = theta0 is not None and model.exact_start
         if theta0 is None:
             theta0 = grid_start(run_model, yc, w, ctx)
             if theta0.shape[1] == 1:
                 theta0 = refine_grid_1d(run_model, yc, w, ctx, theta0)
         theta0 = np.clip(theta0, lo_nl, hi_nl)
-        c0 = linear_amplitudes(run_model, yc, w, theta0, ctx)
+        c0 = linear_amplitudes(run_model, yc, wl, theta0, ctx)
         c0 = np.where(np.isfinite(c0), c0, 0.0)
         c0 = np.maximum(c0, lo[:L])
         starts.append((yc, np.concatenate([c0, theta0], 1), exact))
@@ -366,7 +370,7 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
                                                        max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
 
     # covariance (see qmap.fitting.uncertainty for the two conventions)
-    JTJ, _ = _normal(J, wl, np.zeros_like(yfit))
+    JTJ = _normal(J, wl)
     inv = chol_inverse(JTJ)
     dof = n_used - P
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -385,8 +389,9 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
         if getattr(model, "sign_ambiguous", False):
             cov = _widen_near_null(fit_model, p, J, cov, wl, s2, ctx)
     # quality
-    ybar = np.sum(w * yfit, axis=1) / np.maximum(n_used, 1)
-    tss = np.sum(w * (yfit - ybar[:, None]) ** 2, axis=1)
+    ybar = np.einsum("nm->n", yfit if wl is None else wl * yfit) / np.maximum(n_used, 1)
+    dev = yfit - ybar[:, None]
+    tss = np.einsum("nm,nm->n", dev if wl is None else wl * dev, dev)
     with np.errstate(divide="ignore", invalid="ignore"):  # exactly determined (dof 0): no quality (NaN)
         r2 = np.where((tss > 0) & (dof > 0), 1.0 - rss / tss, np.nan)
         rmse = np.where(dof > 0, np.sqrt(rss / np.maximum(n_used, 1)), np.nan)
@@ -470,7 +475,7 @@ def _widen_near_null(fit_model, p, J, cov, w, s2, ctx):
     keep = (~near[sel]).astype(float)
     if w is not None:
         keep = keep * w[sel]
-    JTJ, _ = _normal(J[sel], keep, np.zeros(keep.shape))
+    JTJ = _normal(J[sel], keep)
     inv = chol_inverse(JTJ)
     bad = ~np.all(np.isfinite(np.einsum("npp->np", inv)) & (np.einsum("npp->np", inv) >= 0), axis=1)
     cov = cov.copy()
