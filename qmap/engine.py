@@ -69,6 +69,11 @@ class Progress:
         self.t0 = time.perf_counter()
         self._last = -1.0
 
+    def finish(self) -> None:
+        """Show the display complete (e.g. when fewer items than announced were left to do)."""
+        if self.done < self.total:
+            self.update(self.total - self.done)
+
     def update(self, k: int = 1, *, detail: str = "", line: str | None = None) -> None:
         """``k`` more items done; ``detail`` follows the bar, ``line`` is the log line (``log=True``, no terminal)."""
         self.done += k
@@ -169,6 +174,7 @@ def fit_voxels(
     method: str = "fast",
     on_chunk=None,
     stderr: str = "noise",
+    progress: Progress | None = None,
 ) -> ChunkFit | None:
     """Fit every row of ``y`` (n, m) with ``model``; returns a :class:`ChunkFit` over all rows.
 
@@ -199,6 +205,9 @@ def fit_voxels(
     stderr : {"noise", "residual"}
         Covariance convention when ``sigma`` is given (see
         :mod:`qmap.fitting.uncertainty`); without ``sigma``: residual.
+    progress : Progress, optional
+        A display shared by several calls (the slabs of one run), advanced by the voxels of each chunk;
+        ``quiet`` and ``label`` are then not used.
     """
     problem = FitProblem.create(model, noise=noise, sigma=sigma, stderr=stderr, method=method, max_iter=max_iter)
     noise = problem.noise
@@ -206,7 +215,8 @@ def fit_voxels(
     chunk_size = max(1, int(chunk_size))
     chunks = [_Chunk(i, min(i + chunk_size, n)) for i in range(0, n, chunk_size)]
     sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), (n,))
-    progress = Progress(len(chunks), label, quiet=quiet)
+    shared = progress is not None
+    progress = progress if progress is not None else Progress(len(chunks), label, quiet=quiet)
 
     def args(c: _Chunk):
         sl = slice(c.start, c.stop)
@@ -220,7 +230,7 @@ def fit_voxels(
             results.append(res)
         else:
             on_chunk(c.start, c.stop, res)
-        progress.update()
+        progress.update(c.stop - c.start if shared else 1)
 
     if n == 0:
         pass

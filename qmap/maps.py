@@ -152,6 +152,7 @@ def fit_volume(
     dtype=np.float64,
     stderr: str = "noise",
     input_se: dict | None = None,
+    progress=None,
 ) -> MapSet:
     """Fit ``model`` in every voxel of ``data`` (X, Y, Z, m) inside ``mask``.
 
@@ -165,7 +166,8 @@ def fit_volume(
     noise sd; otherwise the per-voxel residual variance. ``input_se`` maps a
     ``ctx_maps`` name to the standard error of that input (same shape as the
     volume), propagated to first order into the covariance.
-    ``maps.info["stderr"]`` records the convention.
+    ``maps.info["stderr"]`` records the convention. ``progress`` (:class:`qmap.engine.Progress`) is a
+    display shared with the other slabs of a run.
     """
     from .fitting.uncertainty import CONVENTION_TEXT, add_input_covariance, input_sensitivity
 
@@ -250,7 +252,7 @@ def fit_volume(
     fit_voxels(
         model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=_per_voxel(sigma, sig_flat, idx),
         n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
-        on_chunk=on_chunk, stderr=stderr,
+        on_chunk=on_chunk, stderr=stderr, progress=progress,
     )
     for maps_ in (estimates, stderr_maps, quality):
         for key in list(maps_):  # replaced one at a time: the fitted-voxel array is freed as its volume is made

@@ -198,13 +198,15 @@ def peak_image(block: npt.ArrayLike) -> np.ndarray:
             peak = np.fmax.reduce(np.abs(block), axis=3)
         else:
             lo = np.fmin.reduce(block, axis=3)
-            hi = np.fmax.reduce(block, axis=3)
-            peak = np.fmax(hi, -lo)  # real-valued data may be negative (phase-corrected IR)
+            peak = np.fmax.reduce(block, axis=3)
+            np.negative(lo, out=lo)
+            np.fmax(peak, lo, out=peak)  # real-valued data may be negative (phase-corrected IR)
+            del lo
     bad = ~np.isfinite(peak)
     if bad.any():  # rare: only the voxels holding +-inf (or nothing finite at all) are looked at again
         sub = np.abs(block[bad])
         peak[bad] = np.max(np.where(np.isfinite(sub), sub, 0.0), axis=-1)
-    return peak.astype(np.float32)
+    return peak.astype(np.float32, copy=False)
 
 
 def mask_from_peak(peak: np.ndarray) -> np.ndarray:
@@ -670,10 +672,12 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
     bg = ~ndimage.binary_dilation(obj, iterations=dilate) if (dilate > 0 and obj.any()) else ~obj
     n_out = int(bg.sum())
     k = max(1, -(-n_out * source.n // SIGMA_SAMPLES))
-    keep = bg & (np.arange(bg.size).reshape(bg.shape) % k == 0)
+    # the sampled background voxels: every k-th flat (C-order) index, without a volume of indices
+    kept = np.flatnonzero(bg)
+    kept = kept[kept % k == 0]
+    kept_z = kept % bg.shape[2]
     values, index, peaks = [], [], []
     n_usable = n_zero = n_nonfinite = n_samples = 0
-    flat = np.arange(bg.size).reshape(bg.shape)
     for z0, z1 in source.slabs(max_bytes):
         block = source.read(z0, z1)
         block = np.abs(block) if np.iscomplexobj(block) else block
@@ -693,9 +697,10 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
         n_zero += int(np.count_nonzero(any_fin & ~any_nz))
         n_usable += int(np.count_nonzero(any_nz))
         n_samples += int(n_fin[any_nz].sum())
-        kk = keep[:, :, z0:z1]
-        values.append(block[kk])
-        index.append(flat[:, :, z0:z1][kk])
+        at = kept[(kept_z >= z0) & (kept_z < z1)]  # in C order, as boolean indexing of the slab takes them
+        x, y, z = np.unravel_index(at, bg.shape)
+        values.append(block[x, y, z - z0])
+        index.append(at)
         if source._peak is None:
             peaks.append(peak_image(block)[obj[:, :, z0:z1]])
     obj_peak = source._peak[obj] if source._peak is not None else np.concatenate(peaks) if peaks else np.zeros(0)

@@ -27,6 +27,11 @@ from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename,
 from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
 from .noise_level import object_mask
 from .record import run_record
+from .streaming import MapStream, StreamedMaps
+
+#: voxels per slab of a run whose series is in memory: its maps are fitted and written one slab at a time
+#: (peak memory: the series, the slab's maps and the fit's work arrays; results do not depend on it)
+AUTO_SLAB_VOXELS = 1 << 17
 
 __all__ = ["QMRI_SUFFIXES", "RESIDUAL_FALLBACK", "CommonOptions", "PreparedRun", "RunReport", "Slab",
            "check_outputs_free", "check_signal", "default_prefix", "prepare_run", "resolve_mask", "resolve_sigma",
@@ -388,19 +393,24 @@ def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | N
         clip_small_negatives(series, lo, hi, n_negative)  # small undershoot: clipped with a warning; else refused
 
 
-def _outputs_for(maps: MapSet, prefix: str, units: str) -> list[OutputFile]:
+def _outputs_for(maps: MapSet, prefix: str, units: str, *, data: bool = True) -> list[OutputFile]:
+    """The NIfTI outputs of ``maps`` (``data=False``: descriptions only, the maps are not read)."""
     outs = []
+
+    def of(group, name):
+        return group[name] if data else None
+
     for name in maps.names:
         f = 1e3 if (units == "ms" and name in maps.time_params) else 1.0
         u = "ms" if f == 1e3 else maps.units[name]
-        outs.append(OutputFile(map_filename(prefix, name, "estimate"), maps.estimates[name], name, "estimate", u,
+        outs.append(OutputFile(map_filename(prefix, name, "estimate"), of(maps.estimates, name), name, "estimate", u,
                                maps.descriptions[name], scale=f))
         if name in maps.stderr:  # a map without any noise information (e.g. a lookup) has no stderr file
-            outs.append(OutputFile(map_filename(prefix, name, "stderr"), maps.stderr[name], name, "stderr", u,
+            outs.append(OutputFile(map_filename(prefix, name, "stderr"), of(maps.stderr, name), name, "stderr", u,
                                    f"standard error (1 sigma) of {name}{_convention_note(maps)}", scale=f))
-    for q, arr in maps.quality.items():
-        outs.append(OutputFile(map_filename(prefix, q, "quality"), arr, q, "quality", QUALITY_UNITS[q],
-                               QUALITY_DESCRIPTIONS[q]))
+    for q in maps.quality:
+        outs.append(OutputFile(map_filename(prefix, q, "quality"), of(maps.quality, q), q, "quality",
+                               QUALITY_UNITS[q], QUALITY_DESCRIPTIONS[q]))
     used = sorted(int(c) for c in maps.status_counts)
     outs.append(OutputFile(map_filename(prefix, "status", "status"), maps.status, "status", "status", "code",
                            "per-voxel fit status (0 = fitted); the codes this map uses are listed in StatusCodes, "
@@ -442,6 +452,7 @@ class Slab:
     z1: int
     index: int  #: 0-based position among the slabs
     count: int  #: number of slabs
+    progress: Any = None  #: the run's progress display (qmap.engine.Progress), shared by its slabs
 
     @property
     def label(self) -> str:
@@ -497,29 +508,79 @@ class PreparedRun:
         """The z ranges read one at a time within ``--max-memory`` (one range without it)."""
         return self.series.slabs(self.common.max_memory)
 
-    def for_slabs(self, fn) -> list:
-        """Call ``fn(slab)`` for each :class:`Slab` in turn (read one at a time); returns the results in z order."""
-        self.series._peak = None  # only the mask and the noise estimate needed it
-        slabs = self.slabs
-        if len(slabs) > 1:
-            self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
-        results = []
-        for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
-            sigma = self.sigma
-            if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
-                sigma = sigma[:, :, z0:z1]
-            results.append(fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs))))
-        return results
+    @property
+    def fit_slabs(self) -> list[tuple[int, int]]:
+        """The z ranges fitted and written one at a time: ``--max-memory`` slabs for a series read in slabs,
+        else slabs of about :data:`AUTO_SLAB_VOXELS` voxels (one range on a Dask cluster)."""
+        if self.series.lazy or self.common.scheduler:
+            return self.slabs
+        nx, ny, nz = self.series.shape
+        k = max(1, AUTO_SLAB_VOXELS // max(1, nx * ny))
+        return [(z, min(z + k, nz)) for z in range(0, nz, k)]
 
-    def map_slabs(self, fn) -> MapSet:
-        """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn and join the results into one MapSet."""
-        slabs = self.slabs
-        maps = None
-        for (z0, z1), part in zip(slabs, self.for_slabs(fn), strict=True):
-            maps = part if len(slabs) == 1 else place_slab(maps, part, self.series.shape, z0, z1)
-        if maps is None:
+    def for_slabs(self, fn, slabs: list[tuple[int, int]] | None = None, progress=None) -> list:
+        """Call ``fn(slab)`` for each :class:`Slab` in turn (read one at a time); returns the results in z order."""
+        return list(self._each_slab(fn, self.slabs if slabs is None else slabs, progress))
+
+    def _each_slab(self, fn, slabs: list[tuple[int, int]], progress=None):
+        """``fn(slab)`` for each slab, in z order; a series on disk reads slab k + 1 in a thread meanwhile."""
+        self.series._peak = None  # only the mask and the noise estimate needed it
+        if len(slabs) > 1 and self.series.lazy:
+            self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
+        ahead = None
+        pool = None
+        if len(slabs) > 1 and self.series.lazy:
+            from concurrent.futures import ThreadPoolExecutor
+
+            pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="qmap-read")
+        try:
+            for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
+                data = ahead.result() if ahead is not None else self.series.read(z0, z1)
+                ahead = None
+                if pool is not None and k + 1 < len(slabs):  # the next slab decompresses while this one fits
+                    ahead = pool.submit(self.series.read, *slabs[k + 1])
+                sigma = self.sigma
+                if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
+                    sigma = sigma[:, :, z0:z1]
+                slab = Slab(data, self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs), progress)
+                del data
+                yield fn(slab)
+        finally:
+            if pool is not None:
+                pool.shutdown(wait=True, cancel_futures=True)
+
+    def map_slabs(self, fn, *, progress=None) -> MapSet:
+        """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn, streaming the maps into the output files.
+
+        The slabs are :attr:`fit_slabs`; each slab's maps are appended to the run's output files (in a
+        background thread, while the next slab is fitted) and dropped, so the maps are never held whole.
+        Returns a :class:`~qmap.streaming.StreamedMaps` (the status map held, the others read from the files
+        on access); :meth:`write` completes and commits the files.
+        """
+        slabs = self.fit_slabs
+        if not slabs:
             raise InputError(f"{self.series.paths[0]}: the series has no slice to fit")
+        series = self.series
+        stream = MapStream(self.common.out_dir, overwrite=self.common.overwrite,
+                           specs=lambda m: _outputs_for(m, self.prefix, self.common.units), shape=series.shape,
+                           affine=series.affine, ref_header=series.header)
+        try:
+            for (z0, z1), part in zip(slabs, self._each_slab(fn, slabs, progress), strict=True):
+                stream.add(part, z0, z1)
+                del part
+            maps = stream.maps()
+        except BaseException:
+            stream.abort()
+            raise
+        finally:
+            if progress is not None:
+                progress.finish()
         return maps
+
+    def discard(self, maps: MapSet) -> None:
+        """Remove the files a :meth:`map_slabs` run streamed, when it stops before :meth:`write`."""
+        if isinstance(maps, StreamedMaps) and maps.stream is not None:
+            maps.stream.abort()
 
     def fit(self, model, *, noise: NoiseFloor | None = None, ctx_maps: dict | None = None,
             method: str | None = None, input_se: dict | None = None) -> MapSet:
@@ -528,10 +589,13 @@ class PreparedRun:
         ``method``: ``"fast"``, ``"lmfit"`` (default: ``common.engine``) or ``"linear"`` (the model's
         closed-form linearised estimator, where it has one). ``ctx_maps`` (per-voxel model inputs such
         as B1) and ``input_se`` (their standard errors, propagated to first order) are volumes cut to
-        each slab.
+        each slab. The maps are streamed into the output files (:meth:`map_slabs`).
         """
+        from .engine import Progress
+
         common = self.common
         check_series_shape(self.series, model, self.mask, enabled=common.series_check, max_bytes=common.max_memory)
+        progress = Progress(int(np.count_nonzero(self.mask)), "fitting", quiet=common.quiet)
 
         def one(slab: Slab) -> MapSet:
             return fit_volume(
@@ -539,10 +603,10 @@ class PreparedRun:
                 ctx_maps=_cut(ctx_maps, slab),
                 noise=noise, sigma=slab.sigma, n_jobs=common.n_jobs, chunk_size=common.chunk_size,
                 scheduler=common.scheduler, quiet=common.quiet, method=method or common.engine, label=slab.label,
-                dtype=np.float32, stderr=common.stderr, input_se=_cut(input_se, slab),
+                dtype=np.float32, stderr=common.stderr, input_se=_cut(input_se, slab), progress=slab.progress,
             )
 
-        return self.map_slabs(one)
+        return self.map_slabs(one, progress=progress)
 
     def write(self, maps: MapSet, *, options: dict | None = None, model_info: dict) -> RunReport:
         """Write the maps and the provenance (see :func:`write_run`)."""
@@ -757,8 +821,21 @@ def write_run(
     ``extra_outputs`` (list of :class:`~qmap.io.writer.OutputFile`) are written beside the maps of
     ``maps`` (e.g. a 4D spectrum or maps with their own names) and listed in the provenance too.
     """
+    stream = maps.stream if isinstance(maps, StreamedMaps) else None
+    try:
+        return _write_run(series, maps, stream, common=common, prefix=prefix, noise_info=noise_info, options=options,
+                          model_info=model_info, extra_inputs=extra_inputs, notes=notes, t0=t0, mask_desc=mask_desc,
+                          extra_outputs=extra_outputs)
+    except BaseException:
+        if stream is not None:  # the streamed maps go with the rest (a no-op once committed)
+            stream.abort()
+        raise
+
+
+def _write_run(series, maps, stream, *, common, prefix, noise_info, options, model_info, extra_inputs, notes, t0,
+               mask_desc, extra_outputs) -> RunReport:
     warn_fit_quality(maps, maps.status != st.MASKED, common.mask)
-    outs = _outputs_for(maps, prefix, common.units) + list(extra_outputs or [])
+    outs = _outputs_for(maps, prefix, common.units, data=stream is None) + list(extra_outputs or [])
     notes = list(notes or [])
     good = maps.status == st.FITTED
     if "rsquared" in maps.quality and good.any() and not np.isfinite(maps.quality["rsquared"][good]).any():
@@ -788,14 +865,22 @@ def write_run(
     stderr_info = maps.info.get("stderr")
     if stderr_info and provenance["noise"] is not None:
         provenance["noise"] = dict(provenance["noise"], stderr=stderr_info)
-    with AtomicWriter(common.out_dir, overwrite=common.overwrite) as w:
-        _stage_all(w, outs, series, maps.status, common.n_jobs)
+
+    def stage(w: AtomicWriter, files: list) -> None:
+        _stage_all(w, files, series, maps.status, common.n_jobs)
         if common.preview:
             from .plots import stage_previews
 
             stage_previews(w, maps, prefix, units=common.units, mask=maps.status != st.MASKED)
         provenance["wall_time_s"] = round(time.perf_counter() - t0, 3)
         w.stage_json(f"{prefix}_provenance.json", provenance)
-        written = w.commit()
+
+    if stream is None:
+        with AtomicWriter(common.out_dir, overwrite=common.overwrite) as w:
+            stage(w, outs)
+            written = w.commit()
+    else:  # the maps are in their files already: complete them, stage the rest, commit
+        written = stream.write([o for o in outs if o.name in stream.streams],
+                               lambda w: stage(w, [o for o in outs if o.name not in stream.streams]))
     return RunReport(maps=maps, written=written, provenance=provenance, prefix=prefix, out_dir=common.out_dir,
                      notes=notes)

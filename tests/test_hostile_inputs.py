@@ -994,9 +994,10 @@ class _FailAt:
 @pytest.mark.parametrize("k", [1, 4, 9])  # the first, a middle and the last NIfTI (t2star writes 9)
 @pytest.mark.parametrize("fresh", [True, False], ids=["fresh", "previous"])
 def test_disk_full_while_writing_nifti(k, fresh, tmp_path, phantom, previous_run, capsys, monkeypatch):
+    # the maps are streamed into their files as they are fitted: the k-th write of map data fails
     p, out = _series_and_out(tmp_path, phantom, previous_run, fresh)
-    fail = _FailAt(nib.save, k, _enospc)
-    monkeypatch.setattr(writer_mod.nib, "save", fail)
+    fail = _FailAt(writer_mod.NiftiStream._put, k, _enospc)
+    monkeypatch.setattr(writer_mod.NiftiStream, "_put", lambda self, raw: fail(self, raw))
     before = snapshot(tmp_path)
     rc, line = _rerun(p, out, capsys)
     assert fail.calls >= k  # the staging threads may finish the files they had started
@@ -1047,31 +1048,33 @@ def test_rename_fails_during_commit(k, fresh, tmp_path, phantom, previous_run, c
 # --------------------------------------------------------------------------- output integrity
 
 
-def _corrupting_save(kind):
-    real_save = nib.save
+def _corrupting_finish(kind):
+    """Complete a streamed map, then damage the T2* map's file (as a faulty disk or filesystem would)."""
+    real_finish = writer_mod.NiftiStream.finish
 
-    def save(img, path):
-        name = str(path)
-        if "_T2starmap.nii.gz" in name and "stderr" not in name:
-            data = np.asanyarray(img.dataobj)
-            aff = img.affine.copy()
-            if kind == "affine":
-                aff[0, 3] += 5.0
-            elif kind == "shape":
-                data = data[:-1]
-            elif kind == "nonfinite":
-                data = np.full_like(data, np.nan)
-            img = nib.Nifti1Image(data, aff)
-        return real_save(img, path)
+    def finish(self):
+        real_finish(self)
+        if "_T2starmap.nii.gz" not in self.path.name or "stderr" in self.path.name:
+            return
+        img = nib.load(str(self.path))
+        data = np.asanyarray(img.dataobj)
+        aff = img.affine.copy()
+        if kind == "affine":
+            aff[0, 3] += 5.0
+        elif kind == "shape":
+            data = data[:-1]
+        elif kind == "nonfinite":
+            data = np.full_like(data, np.nan)
+        nib.save(nib.Nifti1Image(data, aff), str(self.path))
 
-    return save
+    return finish
 
 
 @pytest.mark.parametrize("kind", ["affine", "shape", "nonfinite"])
 def test_written_file_that_does_not_read_back_is_refused(kind, tmp_path, phantom, previous_run, capsys, monkeypatch):
     """AtomicWriter re-reads each NIfTI (shape, affine, finite where status 0) before anything is committed."""
     p, out = _series_and_out(tmp_path, phantom, previous_run, fresh=False)
-    monkeypatch.setattr(writer_mod.nib, "save", _corrupting_save(kind))
+    monkeypatch.setattr(writer_mod.NiftiStream, "finish", _corrupting_finish(kind))
     before = snapshot(tmp_path)
     rc, line = _rerun(p, out, capsys)
     assert rc == 2 and "run_T2starmap.nii.gz" in line, line

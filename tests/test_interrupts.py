@@ -82,9 +82,13 @@ STAGES = {
     "automatic-mask": (noise_mod, "mask_from_peak", 1, None),
     "fit-chunk-3": (engine_mod, "fit_chunk", 3, None),
     "fit-last-chunk": (engine_mod, "fit_chunk", 9, None),
-    "writing-1st-nifti": (writer_mod.nib, "save", 1, None),
-    "writing-6th-nifti": (writer_mod.nib, "save", 6, None),
-    "writing-last-nifti": (writer_mod.nib, "save", 11, None),
+    # the maps are streamed into their files as they are fitted (one slab here: one write per map), and
+    # completed (header, gzip trailer) when the run writes
+    "writing-1st-nifti": (writer_mod.NiftiStream, "_put", 1, "method"),
+    "writing-6th-nifti": (writer_mod.NiftiStream, "_put", 6, "method"),
+    "writing-last-nifti": (writer_mod.NiftiStream, "_put", 11, "method"),
+    "completing-1st-nifti": (writer_mod.NiftiStream, "finish", 1, "method"),
+    "completing-last-nifti": (writer_mod.NiftiStream, "finish", 11, "method"),
     "writing-4th-sidecar": (writer_mod, "open", 4, "json"),
     "writing-provenance": (writer_mod, "open", 12, "json"),
     "commit-1st-rename": (writer_mod.os, "replace", 1, None),
@@ -101,6 +105,9 @@ def _arm(monkeypatch, stage):
     if kind == "json":
         trap = _open_interrupting(k)
         monkeypatch.setattr(mod, attr, trap, raising=False)
+    elif kind == "method":  # a method of a class: the trap gets ``self`` too
+        trap = Interrupt(getattr(mod, attr), k)
+        monkeypatch.setattr(mod, attr, lambda self, *a, **kw: trap(self, *a, **kw))
     else:
         trap = Interrupt(getattr(mod, attr), k)
         monkeypatch.setattr(mod, attr, trap)
@@ -113,7 +120,7 @@ def _run(inputs, out, *extra):
 
 
 # two workers matter where threads run: the fit (joblib) and the staging of the NIfTI files
-THREADED = [s for s in STAGES if s.startswith(("fit", "writing"))]
+THREADED = [s for s in STAGES if s.startswith(("fit", "writing", "completing"))]
 
 
 @pytest.mark.parametrize("stage, jobs", [(s, "1") for s in STAGES] + [(s, "2") for s in THREADED])
@@ -227,13 +234,13 @@ def others(tmp_path_factory):
 OTHER_STAGES = {
     "t1-vfa-resampling-b1": ("t1-vfa", "qmap.b1", "resample_to_grid", 1),
     "t1-vfa-fit": ("t1-vfa", "qmap.engine", "fit_chunk", 1),
-    "t1-vfa-3rd-nifti": ("t1-vfa", "qmap.io.writer", "nib.save", 3),
-    "b1-2nd-nifti": ("b1", "qmap.io.writer", "nib.save", 2),
+    "t1-vfa-3rd-nifti": ("t1-vfa", "qmap.io.writer", "NiftiStream._put", 3),
+    "b1-2nd-nifti": ("b1", "qmap.io.writer", "NiftiStream._put", 2),
     "b1-commit": ("b1", "qmap.io.writer", "os.replace", 5),
     "t1-ir-fit": ("t1-ir", "qmap.engine", "fit_chunk", 1),
-    "t1-ir-last-nifti": ("t1-ir", "qmap.io.writer", "nib.save", 11),
+    "t1-ir-last-nifti": ("t1-ir", "qmap.io.writer", "NiftiStream.finish", 11),
     "t2-epg-fit": ("t2", "qmap.engine", "fit_chunk", 1),
-    "t2-epg-4th-nifti": ("t2", "qmap.io.writer", "nib.save", 4),
+    "t2-epg-4th-nifti": ("t2", "qmap.io.writer", "NiftiStream._put", 4),
     "phantom-3rd-file": ("phantom", "qmap.io.writer", "open", 3),
     "phantom-commit": ("phantom", "qmap.io.writer", "os.replace", 4),
 }
@@ -249,6 +256,9 @@ def _arm_other(monkeypatch, module, attr, k):
     if attr == "open":
         trap = _open_interrupting(k, suffix="")
         monkeypatch.setattr(mod, "open", trap, raising=False)
+    elif isinstance(mod, type):  # a method: the trap gets ``self`` too
+        trap = Interrupt(getattr(mod, attr), k)
+        monkeypatch.setattr(mod, attr, lambda self, *a, **kw: trap(self, *a, **kw))
     else:
         trap = Interrupt(getattr(mod, attr), k)
         monkeypatch.setattr(mod, attr, trap)

@@ -67,7 +67,8 @@ def test_sigterm_is_an_interrupt(where, series, tmp_path, monkeypatch, capsys):
     if where == "fit":
         monkeypatch.setattr(engine_mod, "fit_chunk", _SigtermAt(engine_mod.fit_chunk, 2))
     else:
-        monkeypatch.setattr(writer_mod.nib, "save", _SigtermAt(writer_mod.nib.save, 4))
+        trap = _SigtermAt(writer_mod.NiftiStream._put, 4)  # the 4th write of streamed map data
+        monkeypatch.setattr(writer_mod.NiftiStream, "_put", lambda self, raw: trap(self, raw))
     capsys.readouterr()
     rc = _run(series, out, "--overwrite", "-j", "1", "--chunk-size", "100")
     monkeypatch.undo()

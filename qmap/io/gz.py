@@ -19,9 +19,10 @@ import builtins
 
 from isal import igzip
 
+from nibabel.openers import ImageOpener
+
 #: ISA-L's highest level
 BEST = 3
-from nibabel.openers import ImageOpener
 
 __all__ = ["gzip_open", "register"]
 
@@ -31,6 +32,9 @@ __all__ = ["gzip_open", "register"]
 #: whole-image read is then verified, while a header sniff or a slab read from the middle of a large file is
 #: not made to decompress the remainder
 VERIFY_TAIL = 1 << 20
+
+#: bytes decompressed at a time by ``readinto`` (the temporary it needs)
+READ_BLOCK = 1 << 22
 
 
 class _Deterministic(igzip.IGzipFile):
@@ -58,6 +62,23 @@ class _Deterministic(igzip.IGzipFile):
             fh.close()
             raise
         self.myfileobj = fh  # type: ignore[assignment]  # closed with this object (as gzip.GzipFile does for files it opened)
+
+    def readinto(self, b) -> int:
+        """Decompress into ``b`` a block of :data:`READ_BLOCK` bytes at a time.
+
+        The inherited ``readinto`` decompresses the whole request into a temporary ``bytes`` object first
+        (nibabel reads a whole image with one ``readinto``): twice the image in memory while it is read.
+        """
+        if self.mode != 1:  # gzip.READ
+            return super().readinto(b)
+        with memoryview(b) as view, view.cast("B") as out:
+            done = 0
+            while done < len(out):
+                k = super().readinto(out[done:done + READ_BLOCK])
+                if not k:
+                    break
+                done += k
+        return done
 
     def close(self) -> None:
         try:

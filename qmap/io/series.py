@@ -151,7 +151,6 @@ def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
         if data.ndim == 3:
             data = data[..., None]
     else:
-        vols = []
         for p, img in zip(paths, imgs):
             shape = img.shape
             if len(shape) > 3 and not all(s == 1 for s in shape[3:]):
@@ -160,9 +159,17 @@ def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
                     f"(or give a single 4D file)"
                 )
             check_same_grid(first.shape, first.affine, shape, img.affine, ref_name=str(paths[0]), name=str(p))
+        # one volume at a time into the series (no list of volumes and stacked copy: twice the series)
+        data = None
+        for v, (p, img) in enumerate(zip(paths, imgs)):
             # a single-slice 2D file (x, y) is one slice: (x, y, 1)
-            vols.append(image_data(img, p, dtype=np.float32, allow_complex=allow_complex).reshape(_as_3d(shape)))
-        data = np.stack(vols, axis=-1)
+            vol = image_data(img, p, dtype=np.float32, allow_complex=allow_complex).reshape(_as_3d(img.shape))
+            if data is None:
+                data = np.empty(vol.shape + (len(paths),), vol.dtype)
+            elif vol.dtype != data.dtype:  # a complex file after real ones: the series becomes complex
+                data = data.astype(np.result_type(data, vol))
+            data[..., v] = vol
+            del vol
     if data.ndim != 4:
         raise InputError(f"{paths[0]}: expected 3D volumes, got shape {data.shape}")
     return data, first

@@ -27,7 +27,8 @@ from nibabel.openers import ImageOpener
 from ..errors import OutputError, OutputExistsError
 from .nifti import sidecar_path
 
-__all__ = ["AtomicWriter", "OutputFile", "existing_outputs", "is_output_of", "map_filename", "nifti_for", "sha256_file"]
+__all__ = ["AtomicWriter", "NiftiStream", "OutputFile", "existing_outputs", "is_output_of", "map_filename", "nifti_for",
+           "nifti_header", "sha256_file"]
 
 #: number of successful commits in this process (lets the command line tell an interrupt that came
 #: after the outputs were in place from one that left the output folder untouched)
@@ -130,11 +131,15 @@ def is_output_of(name: str, prefix: str) -> bool:
     return name.startswith(f"{prefix}_") and _OUTPUT_REST.match(name[len(prefix) + 1:]) is not None
 
 
-def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, parameter: str, units: str):
-    """A NIfTI-1 image of ``data`` on the grid of ``ref_header`` with a sensible header."""
+def nifti_header(shape: tuple, affine: np.ndarray, ref_header, *, kind: str, parameter: str,
+                 units: str) -> nib.Nifti1Header:
+    """The NIfTI-1 header of a map of ``shape`` on the grid of ``ref_header`` (no display range set).
+
+    ``kind`` ``"status"`` stores uint8, any other float32; no scaling (the stored values are the values).
+    """
     dtype = np.uint8 if kind == "status" else np.float32
-    arr = np.asarray(data, dtype=dtype)
-    img = nib.Nifti1Image(arr, affine)
+    img = nib.Nifti1Image(np.zeros((1,) * len(shape), dtype), affine)
+    img.header.set_data_shape(tuple(int(s) for s in shape))
     img.set_data_dtype(dtype)
     qcode = sform_code = 1
     if ref_header is not None:
@@ -152,12 +157,138 @@ def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, pa
     img.header.set_intent(NIFTI_INTENT[kind], name=parameter[:16])
     img.header["descrip"] = f"qmap {parameter} {kind} [{units}]"[:79].encode()
     img.header.set_slope_inter(None, None)  # no scaling: the stored values are the values
+    return img.header
+
+
+def nifti_for(data: np.ndarray, affine: np.ndarray, ref_header, *, kind: str, parameter: str, units: str):
+    """A NIfTI-1 image of ``data`` on the grid of ``ref_header`` with a sensible header."""
+    dtype = np.uint8 if kind == "status" else np.float32
+    arr = np.asarray(data, dtype=dtype)
+    header = nifti_header(arr.shape, affine, ref_header, kind=kind, parameter=parameter, units=units)
+    img = nib.Nifti1Image(arr, affine, header)
     if kind != "status":
         finite = np.isfinite(arr)  # the display range of the finite values, without a copy of them
         if finite.any():
             img.header["cal_min"] = float(np.min(arr, where=finite, initial=np.inf))
             img.header["cal_max"] = float(np.max(arr, where=finite, initial=-np.inf))
     return img
+
+
+#: the start of a gzip stream as the streamed outputs write it: magic, deflate, no flags, mtime 0, no extra
+#: flags, OS unknown (RFC 1952; as Python's gzip with mtime 0 and no file name)
+_GZIP_HEAD = b"\x1f\x8b\x08\x00\x00\x00\x00\x00\x00\xff"
+#: bytes of a NIfTI-1 single-file header with no extensions: 348 + the 4-byte extension flag
+NIFTI1_OFFSET = 352
+
+
+class NiftiStream:
+    """One NIfTI-1 map written slab by slab along the last axis, as the slabs are fitted.
+
+    NIfTI stores x fastest, so the slab ``z0:z1`` of an (X, Y, Z) map is one contiguous byte range of the
+    data block: the slabs are appended in z order. The header comes first in the file but its display range
+    (``cal_min`` / ``cal_max``, the finite values' range) is known only at the end, so a ``.nii.gz`` is laid
+    out as one ordinary gzip member (RFC 1951/1952) whose first deflate block is a *stored* block holding
+    the 352 header bytes (fixed size, so they are rewritten in place at the end), followed by the data
+    compressed with ISA-L (raw deflate, level 1) and the trailer (CRC-32 of header and data, joined with
+    ``crc32_combine``; length). Any gzip reader reads it. A ``.nii`` is written raw, its header likewise
+    rewritten at the end. :meth:`finish` completes the file; the AtomicWriter owns the temporary name.
+
+    Parameters
+    ----------
+    path : Path
+        The temporary file.
+    out : OutputFile
+        What is written (name, kind, parameter, units, scale); its ``data`` is not used.
+    shape : (X, Y, Z) tuple
+    affine : (4, 4) ndarray
+    ref_header : nibabel header or None
+        The input's header (qform / sform codes, voxel sizes).
+    """
+
+    def __init__(self, path: Path, out: OutputFile, shape: tuple, affine: np.ndarray, ref_header):
+        self.path = Path(path)
+        self.out = out
+        self.shape = tuple(int(s) for s in shape)
+        self.affine = np.asarray(affine, float)
+        self.header = nifti_header(self.shape, self.affine, ref_header, kind=out.kind, parameter=out.parameter,
+                                   units=out.units)
+        self.header.set_data_offset(NIFTI1_OFFSET)
+        self.header.set_slope_inter(1.0, 0.0)  # as nibabel writes an unscaled float32 / uint8 array
+        self.dtype = np.dtype(self.header.get_data_dtype())
+        self.gz = self.path.name.endswith(".gz")
+        self.z = 0  # slices written so far
+        self.finished = False
+        self._lo, self._hi = np.inf, -np.inf
+        self._crc = 0
+        self._size = 0
+        self._fh = open(self.path, "wb")  # noqa: SIM115 - closed by finish / close
+        self._at = 0  # offset of the header bytes in the file
+        if self.gz:
+            from isal import isal_zlib
+
+            self._zlib = isal_zlib
+            self._fh.write(_GZIP_HEAD)
+            # a stored, not final, deflate block (BFINAL 0, BTYPE 00, padded to the byte) of LEN bytes, NLEN = ~LEN
+            self._fh.write(bytes([0]) + NIFTI1_OFFSET.to_bytes(2, "little") + (NIFTI1_OFFSET ^ 0xFFFF).to_bytes(2, "little"))
+            self._at = self._fh.tell()
+            self._deflate = isal_zlib.compressobj(1, isal_zlib.DEFLATED, -15)
+        self._fh.write(bytes(NIFTI1_OFFSET))  # the header's place
+
+    def append(self, block: np.ndarray) -> None:
+        """Write the next slab (X, Y, k) of the map (values as the fit gives them; ``out.scale`` applied here)."""
+        block = np.asarray(block)
+        if block.ndim == 2:
+            block = block[:, :, None]
+        if block.shape[:2] != self.shape[:2] or self.z + block.shape[2] > self.shape[2]:
+            raise ValueError(f"{self.out.name}: slab {block.shape} does not continue a map of shape {self.shape}")
+        data = block if self.out.scale == 1.0 else block * self.out.scale
+        arr = np.asarray(data, dtype=self.dtype)
+        if self.out.kind != "status" and arr.size:
+            finite = np.isfinite(arr)
+            if finite.any():
+                self._lo = min(self._lo, float(np.min(arr, where=finite, initial=np.inf)))
+                self._hi = max(self._hi, float(np.max(arr, where=finite, initial=-np.inf)))
+        try:
+            self._put(arr.tobytes(order="F"))
+        except OSError as exc:
+            raise OutputError(f"cannot write {self.path.parent / self.out.name} ({exc.strerror}); check free space "
+                              f"and permissions") from None
+        self.z += block.shape[2]
+
+    def _put(self, raw: bytes) -> None:
+        """Compress (``.gz``) and write bytes of the data block."""
+        self._size += len(raw)
+        if self.gz:
+            self._crc = self._zlib.crc32(raw, self._crc)
+            raw = self._deflate.compress(raw)
+        self._fh.write(raw)
+
+    def finish(self) -> None:
+        """Complete the file: the rest of the deflate stream, the header (with the display range), the trailer."""
+        if self.finished:
+            return
+        if self.z != self.shape[2]:
+            raise ValueError(f"{self.out.name}: {self.z} of {self.shape[2]} slices written")
+        if self._lo <= self._hi:
+            self.header["cal_min"] = self._lo
+            self.header["cal_max"] = self._hi
+        head = self.header.binaryblock + bytes(NIFTI1_OFFSET - 348)
+        try:
+            if self.gz:
+                crc = self._zlib.crc32_combine(self._zlib.crc32(head), self._crc, self._size)
+                self._fh.write(self._deflate.flush())
+                self._fh.write(crc.to_bytes(4, "little") + ((NIFTI1_OFFSET + self._size) & 0xFFFFFFFF).to_bytes(4, "little"))
+            self._fh.seek(self._at)
+            self._fh.write(head)
+            self._fh.close()
+            self.finished = True
+        except OSError as exc:
+            raise OutputError(f"cannot write {self.path.parent / self.out.name} ({exc.strerror}); check free space "
+                              f"and permissions") from None
+
+    def close(self) -> None:
+        """Close the file without completing it (the writer removes the temporary)."""
+        self._fh.close()
 
 
 class AtomicWriter:
@@ -176,13 +307,16 @@ class AtomicWriter:
     with another run's.
     """
 
-    def __init__(self, out_dir: str | Path, *, overwrite: bool = False):
+    def __init__(self, out_dir: str | Path, *, overwrite: bool = False, lock_at_commit: bool = False):
         self.out_dir = Path(out_dir)
         self.overwrite = overwrite
         self._pending: list[tuple[Path, Path]] = []  # (tmp, final)
         self._created: list[Path] = []
         self._committed = False
         self._lock_fd: int | None = None
+        # a writer that stages its files while a fit runs (streamed maps) locks the folder only to commit
+        self.lock_at_commit = lock_at_commit
+        self._streams: list[NiftiStream] = []
 
     # -- context management -------------------------------------------------
     def __enter__(self):
@@ -203,6 +337,8 @@ class AtomicWriter:
         if not os.access(self.out_dir, os.W_OK | os.X_OK):
             self._remove_created()
             raise OutputError(f"the output folder {self.out_dir} is not writable; choose another -o or fix permissions")
+        if self.lock_at_commit:
+            return self
         try:
             self._lock()
         except BaseException:
@@ -314,13 +450,41 @@ class AtomicWriter:
             nib.save(img, str(tmp))  # the temporary name keeps the .nii.gz ending
         except OSError as exc:
             raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
-        self._verify(tmp, out, img.dataobj, affine, status)
+        self._verify(tmp, out, np.shape(img.dataobj), affine, status)
         self.stage_json(sidecar_path(out.name).name, {"Units": out.units, "Description": out.description,
                                                       "Parameter": out.parameter, "Kind": out.kind,
                                                       **(out.sidecar or {})})
         return final
 
-    def _verify(self, path: Path, out: OutputFile, data, affine, status):
+    def open_stream(self, out: OutputFile, shape: tuple, affine, ref_header) -> NiftiStream:
+        """Start a NIfTI output written slab by slab (:class:`NiftiStream`) under a temporary name.
+
+        Complete it with :meth:`finish_stream`; an abort removes it like any staged file.
+        """
+        final = self._final(out.name)
+        tmp = self._tmp(out.name)
+        self._pending.append((tmp, final))
+        try:
+            stream = NiftiStream(tmp, out, shape, affine, ref_header)
+        except OSError as exc:
+            raise OutputError(f"cannot write {final} ({exc.strerror}); check free space and permissions") from None
+        self._streams.append(stream)
+        return stream
+
+    def finish_stream(self, stream: NiftiStream, out: OutputFile, status: np.ndarray | None = None) -> Path:
+        """Complete a streamed output, re-read it (as :meth:`stage_nifti` does) and stage its sidecar.
+
+        ``out`` describes the file as the run ends (the sidecar's description may name what was learnt
+        during the fit, e.g. the standard-error convention).
+        """
+        stream.finish()
+        self._verify(stream.path, out, stream.shape, stream.affine, status)
+        self.stage_json(sidecar_path(out.name).name, {"Units": out.units, "Description": out.description,
+                                                      "Parameter": out.parameter, "Kind": out.kind,
+                                                      **(out.sidecar or {})})
+        return self.out_dir / out.name
+
+    def _verify(self, path: Path, out: OutputFile, shape: tuple, affine, status):
         """Re-read the written file: header (shape, affine), the whole stream, and the estimates of fitted voxels.
 
         The voxel values are read back in blocks of 1 MB and checked against the status (finite where it
@@ -330,7 +494,7 @@ class AtomicWriter:
         img = nib.load(str(path), mmap=False)
         if not isinstance(img, nib.spatialimages.SpatialImage):
             raise OutputError(f"{out.name}: the written file does not read back as an image (internal check failed)")
-        if tuple(img.shape) != np.shape(data) or not np.allclose(img.affine, affine, atol=1e-4):
+        if tuple(img.shape) != tuple(shape) or not np.allclose(img.affine, affine, atol=1e-4):
             raise OutputError(f"{out.name}: the written file does not read back as written (shape/affine)")
         proxy: Any = img.dataobj  # an array proxy: where (offset) and how (dtype) the voxel values are stored
         dtype = np.dtype(proxy.dtype)
@@ -364,6 +528,13 @@ class AtomicWriter:
         """
         backups: list[tuple[Path, Path]] = []
         done: list[Path] = []
+        if self._lock_fd is None and self.lock_at_commit:
+            self._lock()
+            if not self.overwrite:  # staged while the folder was not locked: another run may have written since
+                for _, final in self._pending:
+                    if final.exists():
+                        raise OutputExistsError(f"{final} exists already; pass --overwrite to replace it, or "
+                                                f"choose another -o")
         try:
             for tmp, final in self._pending:
                 if final.exists():
@@ -411,6 +582,9 @@ class AtomicWriter:
         return done
 
     def abort(self) -> None:
+        for stream in self._streams:
+            stream.close()
+        self._streams = []
         for tmp, _ in self._pending:
             try:
                 tmp.unlink()

@@ -166,6 +166,7 @@ def run_b1(
     if fitted.any() and np.mean(maps.status[fitted] == st.NO_VALID_ANGLE) > 0.5:
         swap = ("the two images (or --tr TR1,TR2) are probably in the wrong order" if method == "afi"
                 else "the two images are probably in the wrong order (give S(a) first, then S(2a))")
+        run.discard(maps)  # the maps streamed into the output folder go again
         raise InputError(
             f"{series.paths[0]}: {np.mean(maps.status[fitted] == st.NO_VALID_ANGLE):.0%} of the object has a signal "
             f"ratio that corresponds to no flip angle; {swap}"

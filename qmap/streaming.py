@@ -1,0 +1,193 @@
+"""Maps written as they are fitted: the slabs of a run streamed into the output files.
+
+A fitting run (:meth:`qmap.pipeline.PreparedRun.map_slabs`) fits the volume one slab of slices
+(along z) at a time. Each finished slab of every output map is appended to that map's file
+(:class:`qmap.io.writer.NiftiStream`: NIfTI stores x fastest, so a z-slab is one contiguous byte range
+of the data block) by one background thread -- compressing slab k while slab k + 1 is fitted -- under
+the temporary names of the run's :class:`~qmap.io.writer.AtomicWriter`. Only the status map (one byte per
+voxel) is held whole; the other maps are read back from their files when asked for
+(:class:`FileMaps`), e.g. for the run's summary. The writer commits (renames) the files when the run
+writes its provenance, or removes them when anything fails: all or nothing, as before.
+"""
+
+from __future__ import annotations
+
+import weakref
+from collections.abc import Callable, Iterator, Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .io.writer import AtomicWriter, NiftiStream, OutputFile
+from .maps import MapSet
+
+__all__ = ["FileMaps", "MapStream", "StreamedMaps"]
+
+
+class FileMaps(Mapping):
+    """Maps of a run read from their files on access, in the units the fit gives them (seconds for times).
+
+    A map written with a scale (``--units ms``: x 1000) is divided by it again in float32 (within one
+    unit in the last place of the value the fit gave). Each access reads the file (nothing is cached).
+    """
+
+    def __init__(self, files: dict[str, tuple[Callable[[], Path], float]]):
+        self._files = files
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        import nibabel as nib
+
+        where, scale = self._files[name]
+        arr = np.asarray(nib.load(str(where())).dataobj, dtype=np.float32)
+        return arr if scale == 1.0 else (arr / np.float32(scale)).astype(np.float32)
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._files)
+
+    def __len__(self) -> int:
+        return len(self._files)
+
+
+@dataclass
+class StreamedMaps(MapSet):
+    """A :class:`~qmap.maps.MapSet` whose maps went to the output files slab by slab (:class:`MapStream`).
+
+    ``estimates``, ``stderr`` and ``quality`` are :class:`FileMaps`; ``status`` is held.
+    """
+
+    stream: MapStream | None = field(default=None, repr=False)
+
+
+class MapStream:
+    """The maps of one run, streamed slab by slab into the temporary files of an :class:`AtomicWriter`.
+
+    Parameters
+    ----------
+    out_dir : Path
+    overwrite : bool
+    specs : callable
+        ``specs(maps) -> list of OutputFile``: the NIfTI outputs of a MapSet (names, kinds, units, scale);
+        called on the first slab (its ``data`` are not used).
+    shape : (X, Y, Z) tuple
+    affine : (4, 4) ndarray
+    ref_header : nibabel header
+    background : bool
+        Compress and write in a background thread (slab k while slab k + 1 is fitted).
+    """
+
+    def __init__(self, out_dir: Path, *, overwrite: bool, specs: Callable[[MapSet], list[OutputFile]], shape: tuple,
+                 affine, ref_header, background: bool = True):
+        self.shape = tuple(shape)
+        self.affine = affine
+        self.ref_header = ref_header
+        self.specs = specs
+        self.writer = AtomicWriter(out_dir, overwrite=overwrite, lock_at_commit=True)
+        self.streams: dict[str, NiftiStream] = {}
+        self.status = np.zeros(self.shape, np.uint8)
+        self.first: MapSet | None = None
+        self.n_fitted = 0
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="qmap-write") if background else None
+        self._pending: Future | None = None
+        self._open = False
+        self._done = False
+        # a run abandoned between its fit and its writing (an error in the command's own checks) leaves nothing
+        self._finalizer = weakref.finalize(self, _discard, self.writer, self._pool)
+
+    # -- slabs ----------------------------------------------------------------------------------
+    def add(self, part: MapSet, z0: int, z1: int) -> None:
+        """The maps of the slices ``z0:z1`` (slabs arrive in z order, each exactly once)."""
+        if self.first is None:
+            self.first = part
+            self.writer.__enter__()
+            self._open = True
+            for out in self.specs(part):
+                self.streams[out.name] = self.writer.open_stream(out, self.shape, self.affine, self.ref_header)
+        self.status[:, :, z0:z1] = part.status
+        self.n_fitted += int(part.info.get("n_fitted", 0))
+        self._wait()
+        if self._pool is None:
+            self._write(part)
+        else:
+            self._pending = self._pool.submit(self._write, part)
+
+    def _write(self, part: MapSet) -> None:
+        for out in self.specs(part):
+            self.streams[out.name].append(out.data)
+
+    def _wait(self) -> None:
+        pending, self._pending = self._pending, None
+        if pending is not None:
+            pending.result()  # re-raises a failure of the writing thread
+
+    def maps(self) -> StreamedMaps:
+        """Complete the files after the last slab; the maps, read from them on access."""
+        self._wait()
+        for stream in self.streams.values():
+            stream.finish()
+        self._done = True
+        first = self.first
+        assert first is not None, "at least one slab was added"
+
+        groups: dict[str, dict] = {"estimate": {}, "stderr": {}, "quality": {}}
+        for out in self.specs(first):
+            if out.kind in groups:
+                groups[out.kind][out.parameter] = (self._where(out.name), out.scale)
+        est, se, qual = (FileMaps(groups[k]) for k in ("estimate", "stderr", "quality"))
+        return StreamedMaps(est, se, dict(first.units), dict(first.descriptions), first.time_params, qual,
+                            self.status, dict(first.info, n_fitted=self.n_fitted), stream=self)
+
+    def _where(self, name: str) -> Callable[[], Path]:
+        stream = self.streams[name]
+        final = self.writer.out_dir / name
+
+        def where() -> Path:
+            return final if self.writer._committed else stream.path
+
+        return where
+
+    # -- the end --------------------------------------------------------------------------------
+    def write(self, outs: list[OutputFile], stage_rest: Callable[[AtomicWriter], None]) -> list[Path]:
+        """Check the files against ``outs`` (the run's final descriptions), stage the rest, and commit.
+
+        ``stage_rest(writer)`` stages every other file of the run (other maps, previews, provenance).
+        Everything is removed again when anything fails.
+        """
+        try:
+            by_name = {o.name: o for o in outs}
+            if set(self.streams) - set(by_name):
+                raise ValueError(f"streamed outputs {sorted(set(self.streams) - set(by_name))} not described")
+            for name, stream in self.streams.items():
+                self.writer.finish_stream(stream, by_name[name], self.status)
+            stage_rest(self.writer)
+            written = self.writer.commit()
+        except BaseException:
+            self.abort()
+            raise
+        self.writer.__exit__(None, None, None)
+        self._open = False
+        self._close_pool()
+        return written
+
+    def abort(self) -> None:
+        """Remove every file staged so far (and an output folder the run created)."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)  # no slab is written while the files go
+        self._pending = None
+        if self._open:
+            self.writer.__exit__(RuntimeError, None, None)
+            self._open = False
+
+    def _close_pool(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
+
+
+def _discard(writer: AtomicWriter, pool: ThreadPoolExecutor | None) -> None:
+    """Remove the staged files of a stream that was never written (garbage-collected or at exit)."""
+    if pool is not None:
+        pool.shutdown(wait=True, cancel_futures=True)
+    if not writer._committed:
+        writer.abort()
+        writer._unlock()
