@@ -14,7 +14,7 @@ from .fitting.noise_floor import NoiseFloor
 from .fitting.problem import FitProblem
 from .models.base import SeparableModel
 
-__all__ = ["Execution", "MapSet", "execution_kwargs", "fit_volume", "place_slab"]
+__all__ = ["Execution", "MapSet", "execution_kwargs", "fit_volume", "join_info", "place_slab"]
 
 
 class Execution(TypedDict, total=False):
@@ -78,12 +78,12 @@ class MapSet:
     ``maps["T2star"]`` is short for ``maps.estimates["T2star"]``.
     """
 
-    estimates: dict
-    stderr: dict
+    estimates: Mapping[str, np.ndarray]  # a dict, or maps read from their files (qmap.streaming.FileMaps)
+    stderr: Mapping[str, np.ndarray]
     units: dict
     descriptions: dict
     time_params: tuple
-    quality: dict
+    quality: Mapping[str, np.ndarray]
     status: np.ndarray
     info: dict = field(default_factory=dict)
 
@@ -286,6 +286,22 @@ def _per_voxel(sigma, sig_flat: np.ndarray | None, idx: np.ndarray):
     return sig_flat[idx]
 
 
+def join_info(info: dict | None, part: MapSet) -> dict:
+    """The ``info`` of the maps of several slabs: the first slab's, with the counts summed over the slabs.
+
+    ``info`` is the running result (None before the first slab); returns it updated with ``part``.
+    """
+    if info is None:
+        info = dict(part.info, n_fitted=0)
+        if "no_noise_level_voxels" in (part.info.get("stderr") or {}):  # summed over the slabs below
+            info["stderr"] = dict(part.info["stderr"], no_noise_level_voxels=0)
+    info["n_fitted"] += part.info.get("n_fitted", 0)
+    holes = (part.info.get("stderr") or {}).get("no_noise_level_voxels")
+    if holes is not None:
+        info["stderr"]["no_noise_level_voxels"] += holes
+    return info
+
+
 def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int) -> MapSet:
     """Copy the maps of the slab ``z0:z1`` into ``full`` (allocated on the first slab) -- one copy of the maps only."""
     if full is None:
@@ -293,15 +309,11 @@ def place_slab(full: MapSet | None, part: MapSet, shape: tuple, z0: int, z1: int
             return {k: np.full(shape, fill, dtype=v.dtype) for k, v in d.items()}
 
         full = MapSet(blank(part.estimates), blank(part.stderr), dict(part.units), dict(part.descriptions),
-                      part.time_params, blank(part.quality), np.zeros(shape, np.uint8), dict(part.info, n_fitted=0))
-        if "no_noise_level_voxels" in (part.info.get("stderr") or {}):  # summed over the slabs below
-            full.info["stderr"] = dict(part.info["stderr"], no_noise_level_voxels=0)
+                      part.time_params, blank(part.quality), np.zeros(shape, np.uint8), join_info(None, part))
+    else:
+        join_info(full.info, part)
     for dst, src in ((full.estimates, part.estimates), (full.stderr, part.stderr), (full.quality, part.quality)):
         for k, v in src.items():
             dst[k][:, :, z0:z1] = v
     full.status[:, :, z0:z1] = part.status
-    full.info["n_fitted"] += part.info.get("n_fitted", 0)
-    holes = (part.info.get("stderr") or {}).get("no_noise_level_voxels")
-    if holes is not None:
-        full.info["stderr"]["no_noise_level_voxels"] += holes
     return full

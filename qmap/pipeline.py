@@ -24,7 +24,7 @@ from .fitting.noise_floor import NoiseFloor
 from .io.nifti import check_same_grid, image_data, load_image, split_bids_stem
 from .io.series import Series
 from .io.writer import AtomicWriter, OutputFile, existing_outputs, map_filename, sha256_file
-from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume, place_slab
+from .maps import EXACTLY_DETERMINED, QUALITY_DESCRIPTIONS, QUALITY_UNITS, MapSet, fit_volume
 from .noise_level import object_mask
 from .record import run_record
 from .streaming import MapStream, StreamedMaps

@@ -17,13 +17,17 @@ from collections.abc import Callable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from .io.writer import AtomicWriter, NiftiStream, OutputFile
-from .maps import MapSet
+from .maps import MapSet, join_info
 
-__all__ = ["FileMaps", "MapStream", "StreamedMaps"]
+__all__ = ["BACKGROUND_WRITES", "FileMaps", "MapStream", "StreamedMaps"]
+
+#: compress and write the slabs in a background thread while the next slab is fitted (default of MapStream)
+BACKGROUND_WRITES = True
 
 
 class FileMaps(Mapping):
@@ -40,7 +44,8 @@ class FileMaps(Mapping):
         import nibabel as nib
 
         where, scale = self._files[name]
-        arr = np.asarray(nib.load(str(where())).dataobj, dtype=np.float32)
+        img: Any = nib.load(str(where()))
+        arr = np.asarray(img.dataobj, dtype=np.float32)
         return arr if scale == 1.0 else (arr / np.float32(scale)).astype(np.float32)
 
     def __iter__(self) -> Iterator[str]:
@@ -78,7 +83,7 @@ class MapStream:
     """
 
     def __init__(self, out_dir: Path, *, overwrite: bool, specs: Callable[[MapSet], list[OutputFile]], shape: tuple,
-                 affine, ref_header, background: bool = True):
+                 affine, ref_header, background: bool | None = None):
         self.shape = tuple(shape)
         self.affine = affine
         self.ref_header = ref_header
@@ -87,7 +92,9 @@ class MapStream:
         self.streams: dict[str, NiftiStream] = {}
         self.status = np.zeros(self.shape, np.uint8)
         self.first: MapSet | None = None
-        self.n_fitted = 0
+        self.info: dict | None = None  # the first slab's, with the counts summed over the slabs
+        if background is None:
+            background = BACKGROUND_WRITES
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="qmap-write") if background else None
         self._pending: Future | None = None
         self._open = False
@@ -105,7 +112,7 @@ class MapStream:
             for out in self.specs(part):
                 self.streams[out.name] = self.writer.open_stream(out, self.shape, self.affine, self.ref_header)
         self.status[:, :, z0:z1] = part.status
-        self.n_fitted += int(part.info.get("n_fitted", 0))
+        self.info = join_info(self.info, part)
         self._wait()
         if self._pool is None:
             self._write(part)
@@ -136,7 +143,7 @@ class MapStream:
                 groups[out.kind][out.parameter] = (self._where(out.name), out.scale)
         est, se, qual = (FileMaps(groups[k]) for k in ("estimate", "stderr", "quality"))
         return StreamedMaps(est, se, dict(first.units), dict(first.descriptions), first.time_params, qual,
-                            self.status, dict(first.info, n_fitted=self.n_fitted), stream=self)
+                            self.status, dict(self.info or {}), stream=self)
 
     def _where(self, name: str) -> Callable[[], Path]:
         stream = self.streams[name]

@@ -173,13 +173,11 @@ t = time.perf_counter()
 import numpy as np
 from qmap.fitting.noise_floor import NoiseFloor
 from qmap.io.series import load_series
-from qmap.maps import fit_volume
 from qmap.models.monoexp import MonoExponential
-from qmap.pipeline import CommonOptions, resolve_mask, resolve_sigma, write_run
+from qmap.pipeline import CommonOptions, PreparedRun, resolve_mask, resolve_sigma
 out = {"imports": time.perf_counter() - t}
-t = time.perf_counter()
+t0 = t = time.perf_counter()
 series = load_series([sys.argv[1]], key="EchoTime", option="--te")
-data = series.read(0, series.shape[2])
 out["load"] = time.perf_counter() - t
 t = time.perf_counter()
 mask, desc = resolve_mask("auto", series)
@@ -189,13 +187,15 @@ sigma, _ = resolve_sigma("auto", series)
 out["noise level"] = time.perf_counter() - t
 t = time.perf_counter()
 model = MonoExponential(series.acquisition["EchoTime"], param="T2star")
-maps = fit_volume(model, data, mask=mask, noise=NoiseFloor("rician"), sigma=sigma, dtype=np.float32)
-out["fit"] = time.perf_counter() - t
-t = time.perf_counter()
 common = CommonOptions(out_dir=sys.argv[2], quiet=True, overwrite=True)
-write_run(series, maps, common=common, prefix="stages", noise_info=None, options=None,
-          model_info={"name": "monoexp"}, t0=t, mask_desc=desc)
-out["write"] = time.perf_counter() - t
+noise = NoiseFloor("rician")
+run = PreparedRun(series=series, common=common, prefix="stages", mask=mask, mask_desc=desc, sigma=sigma,
+                  noise_info=None, inputs=[], notes=[], t0=t0, noise=noise)
+maps = run.fit(model, noise=noise)
+out["fit (+ streamed writing)"] = time.perf_counter() - t
+t = time.perf_counter()
+run.write(maps, model_info={"name": "monoexp"})
+out["write (complete, check, commit)"] = time.perf_counter() - t
 print(json.dumps(out))
 """
 
@@ -228,23 +228,32 @@ def goal(name: str, value: float, target: str) -> str:
     return f"  {name:<38} = {value:8.2f}   (goal {target}: {'met' if ok else 'NOT met'})"
 
 
-def memory_line(rss: float, base_rss: float, in_mb: float, out_dir: Path | None = None, n_vol: int = 1) -> str:
+#: command -> (peak RSS - import baseline) / input series, for the summary at the end
+MEMORY: dict[str, float] = {}
+
+
+def memory_line(rss: float, base_rss: float, in_mb: float, out_dir: Path | None = None, n_vol: int = 1,
+                command: str | None = None) -> str:
     """The memory goal: (peak RSS - import-only baseline) / input series.
 
     "Input series" is the voxel data as qmap holds them: float32 (complex64 for complex data), which is
     also the uncompressed size of a float32 file (an int16 file is half of it on disk). The baseline is
     the peak RSS of a process that only imports what a fitting run imports (Python, numpy, scipy,
     nibabel, qmap): a fixed cost, subtracted. With ``out_dir`` (the run's outputs) and ``n_vol`` (volumes
-    in the input) the line also gives the structural part: the series plus the output maps held until
-    written (float32 maps, uint8 status), which no run that holds its maps can go below.
+    in the input) the line also gives the series plus the output maps (float32 maps, uint8 status): the
+    floor of a run that held its maps until written (qmap streams them to the files slab by slab).
+    ``command`` records the ratio for the summary printed at the end.
     """
+    if command is not None:
+        MEMORY[command] = (rss - base_rss) / in_mb
     text = goal("(peak RSS - import baseline) / input", (rss - base_rss) / in_mb, "<= 3") + \
         f"  [peak {rss:.0f} MB - baseline {base_rss:.0f} MB, input series {in_mb:.1f} MB float32"
     if out_dir is not None:
         files = [f for f in Path(out_dir).glob("*.nii.gz") if not f.name.startswith("floor")]
         n_maps = sum(1 for f in files if "desc-status" not in f.name)
         maps_mb = in_mb / n_vol * (n_maps + 0.25)
-        text += f"; series + {n_maps} float32 maps + status = {(in_mb + maps_mb) / in_mb:.2f} x input"
+        text += (f"; series + {n_maps} float32 maps + status = {(in_mb + maps_mb) / in_mb:.2f} x input, the floor of a "
+                 f"run that held its maps (qmap streams them slab by slab)")
     return text + "]"
 
 
@@ -260,7 +269,7 @@ def against_loop(title: str, label: str, args: list[str], *, loop: str, rate: fl
     print(f"  {loop}: {rate:.1f} voxels/s -> {loop_s:.1f} s extrapolated")
     print(f"  qmap {label}: {t_q:.2f} s ({n_fit / t_q:.0f} object voxels/s), peak RSS {rss:.0f} MB")
     print(goal(f"loop / qmap {label}", loop_s / t_q, target))
-    print(memory_line(rss, baseline_rss(), in_mb, Path(args[args.index("-o") + 1]), n_vol))
+    print(memory_line(rss, baseline_rss(), in_mb, Path(args[args.index("-o") + 1]), n_vol, command=label))
 
 
 def case_t2star(nvox, work: Path, rng):
@@ -301,12 +310,15 @@ def case_t2star(nvox, work: Path, rng):
     print(f"  start-up: qmap t2star --help {t_help:.3f} s (bare python -c pass {t_py:.3f} s)")
     print("  stages of the default run (one process): " + ", ".join(f"{k} {v:.2f} s" for k, v in stages.items())
           + f"; total {sum(stages.values()):.2f} s")
+    print("    (the stages overlap: the maps are compressed and written slab by slab in a background thread while "
+          "the next slab is fitted, so 'fit' includes most of the writing; 'write' is completing the files, "
+          "re-reading them and committing)")
     print(goal("loop / default", loop_s / t_def, ">= 60"))
     print(goal("default / I/O floor", t_def / floor, "<= 2"))
     print(goal("loop / --noise-floor none", loop_s / t_none, ">= 100"))
     print(goal("--mask none: default / plain", t_mn_def / t_mn_none, "<= 2"))
     print(goal("qmap t2star --help (s)", t_help, "<= 0.3"))
-    print(memory_line(max(rss_none, rss_def, rss_mn), base_rss, in_mb, work / "def", te.size))
+    print(memory_line(max(rss_none, rss_def, rss_mn), base_rss, in_mb, work / "def", te.size, command="t2star"))
     return series, in_mb, base_rss
 
 
@@ -471,7 +483,7 @@ def case_t2_spectrum(nvox, work: Path, rng):
         unit = (time.process_time() - t) / sub.shape[0]
     cmd = qmap_cmd() + ["t2-spectrum", str(series), "-o", str(work / "spectrum"), "-q", "--mask", "none",
                         "--sigma", f"{sigma:g}", "-j", "2"]
-    t_q, cpu = _wall_and_cpu(cmd)
+    t_q, rss_q, cpu = _child_usage(cmd)
     # the fixed cost of a run (imports, EPG basis, the SE bootstrap on 100 voxels x 10, writing): a 20 x 20 slice
     small = work / "bench_spectrum_small_MESE.nii.gz"
     write_series(small, data[:20, :20, :1].astype(np.float32), np.eye(4), {"EchoTime": te})
@@ -493,6 +505,7 @@ def case_t2_spectrum(nvox, work: Path, rng):
     print(f"  fixed cost of a run (400 voxels): CPU {cpu0:.2f} s; per voxel beyond it: {2 * (n - 400) / (cpu - cpu0):.0f} "
           f"voxels/s on 2 cores (a 500k-voxel mask: {500_000 * (cpu - cpu0) / (n - 400) / 2 + cpu0 / 2:.0f} s)")
     print(f"  fit stage alone, one thread: {n / cpu1:.0f} voxels/s")
+    print(memory_line(rss_q, baseline_rss(), n * n_e * 4 / 2**20, work / "spectrum", n_e, command="t2-spectrum"))
     print(f"  scipy.optimize.nnls (32 x 40, one voxel, one thread): {1e6 * unit:.0f} us CPU;  qmap CPU per voxel = "
           f"{cpu / n / unit:.1f} such calls (the method solves about 11 NNLS problems per voxel: 6 angles, the "
           f"chosen angle, 2-3 for the regularisation)")
@@ -564,6 +577,8 @@ def case_mp2rage(nvox, work: Path, rng):
           f"(goal <= 2)")
     print(f"  with --b1 (half-resolution map, resampled): {t_b1:.2f} s, peak RSS {rss_b1:.0f} MB;  ratio / I/O floor "
           f"= {t_b1 / floor:.2f}")
+    in_mb = np.prod(shape) * 4 / 2**20  # the UNI as qmap holds it (float32)
+    print(memory_line(max(rss, rss_b1), baseline_rss(), in_mb, work / "mp2", 1, command="t1-mp2rage"))
 
 
 def main(argv=None) -> int:
@@ -592,6 +607,9 @@ def main(argv=None) -> int:
                 case(args.voxels, work, rng)
         if "t2-spectrum" in cases:
             case_t2_spectrum(args.spectrum_voxels, work, rng)
+        if MEMORY:
+            print("memory, (peak RSS - import baseline) / input series (goal < 3 for every command): "
+                  + ", ".join(f"{k} {v:.2f}" for k, v in MEMORY.items()))
         print(f"load average at the end {', '.join(f'{x:.1f}' for x in os.getloadavg())}")
     finally:
         if not args.keep:

@@ -18,7 +18,6 @@ from __future__ import annotations
 import builtins
 
 from isal import igzip
-
 from nibabel.openers import ImageOpener
 
 #: ISA-L's highest level

@@ -170,6 +170,7 @@ def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
                 data = data.astype(np.result_type(data, vol))
             data[..., v] = vol
             del vol
+    assert data is not None, "at least one file was read"
     if data.ndim != 4:
         raise InputError(f"{paths[0]}: expected 3D volumes, got shape {data.shape}")
     return data, first
