@@ -13,7 +13,7 @@ from scipy import stats
 from qmap.cli import main
 from qmap.simulate import grid_affine, lowres_grid, signals, simulate
 from qmap.simulate.phantoms import TEMP_COEFF, VIALS, b1_field, make_phantom, vial_properties
-from tests.reference.bloch import afi_signals_bloch, ir_signal_bloch, spgr_signal_bloch
+from tests.reference.bloch import Tissue, afi_signals_bloch, ir_signal_bloch, spgr_signal_bloch
 
 
 # ----------------------------------------------------------------------------- signal equations
@@ -24,7 +24,7 @@ def test_ir_with_finite_tr_matches_bloch_integration():
     t1, t2, tr, k = 0.8, 0.09, 3.0, 0.94
     # 1 us pulses: T2 decay while the magnetisation passes the transverse plane during a pulse costs
     # ~pulse/T2 (1e-4 with the default 10 us pulses), which the closed form ignores
-    ref = ir_signal_bloch(ti, t1, t2, efficiency=k, tr=tr, pulse_duration=1e-6)
+    ref = ir_signal_bloch(ti, Tissue(t1, t2), efficiency=k, tr=tr, pulse_duration=1e-6)
     got = signals.ir(ti, tr=tr, te=0.0, t1=[t1], t2=[t2], pd=[1.0], efficiency=k)[0]
     np.testing.assert_allclose(got, ref, rtol=0, atol=3e-5)
 
@@ -34,19 +34,19 @@ def test_spgr_and_dam_match_bloch_steady_state(fa):
     # Ernst & Anderson 1966 steady state vs repeated-TR Bloch integration (tests/reference/bloch.py),
     # 1 us pulses (relaxation during a pulse is outside the closed form)
     t1, tr, b1 = 0.9, 0.015, 1.1
-    ref = spgr_signal_bloch(fa * b1, tr, t1, pulse_duration=1e-6)
+    ref = spgr_signal_bloch(fa * b1, tr, Tissue(t1, 0.05), pulse_duration=1e-6)
     got = signals.spgr([fa], tr=tr, te=0.0, t1=[t1], t2star=[np.inf], pd=[1.0], b1=[b1])[0, 0]
     np.testing.assert_allclose(got, ref, rtol=2e-5)
     # double angle with finite TR is the same steady state at a and 2a
     dam = signals.dam(fa, tr=tr, t1=[t1], pd=[1.0], b1=[b1])[0]
-    np.testing.assert_allclose(dam[1], spgr_signal_bloch(2 * fa * b1, tr, t1, pulse_duration=1e-6), rtol=2e-5)
+    np.testing.assert_allclose(dam[1], spgr_signal_bloch(2 * fa * b1, tr, Tissue(t1, 0.05), pulse_duration=1e-6), rtol=2e-5)
 
 
 def test_afi_with_t1_matches_bloch_and_reduces_to_yarnykh_ratio():
     # Yarnykh, Magn Reson Med 2007;57:192: exact steady state vs Bloch integration ...
     t1 = 0.3
     s = signals.afi(60.0, tr1=0.02, tr2=0.1, t1=[t1], pd=[1.0], b1=[1.0])[0]
-    ref = afi_signals_bloch(60.0, 0.02, 0.1, t1, pulse_duration=1e-6)
+    ref = afi_signals_bloch(60.0, 0.02, 0.1, Tissue(t1, 0.05), pulse_duration=1e-6)
     np.testing.assert_allclose(s, ref, rtol=2e-5)
     # ... and for TR << T1 the ratio tends to (1 + n cos a)/(n + cos a): a = 60 deg, n = 5 -> 0.636364
     s = signals.afi(60.0, tr1=0.0002, tr2=0.001, t1=[100.0], pd=[1.0], b1=[1.0])[0]

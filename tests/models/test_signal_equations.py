@@ -26,7 +26,7 @@ from scipy.optimize import brentq
 from qmap.b1 import afi_angle, afi_ratio, dam_angle
 from qmap.models.ir import ir_signal
 from qmap.models.vfa import ernst_angle, spgr_signal
-from tests.reference.bloch import afi_signals_bloch, ir_signal_bloch, spgr_signal_bloch
+from tests.reference.bloch import Tissue, afi_signals_bloch, ir_signal_bloch, spgr_signal_bloch
 
 TAU = 1e-6  # RF block duration for the reference simulations, s
 
@@ -41,7 +41,7 @@ TI_GRID = np.array([0.01, 0.03, 0.07, 0.15, 0.3, 0.6, 1.0, 1.6, 2.5, 3.5, 5.0])
 @pytest.mark.parametrize("efficiency", [1.0, 0.9])
 @pytest.mark.parametrize("t1", [0.1, 0.5, 1.0, 2.0, 4.0])
 def test_ir_closed_form_matches_bloch(t1: float, efficiency: float) -> None:
-    bloch = ir_signal_bloch(TI_GRID, t1, t1, efficiency=efficiency, pulse_duration=TAU)
+    bloch = ir_signal_bloch(TI_GRID, Tissue(t1, t1), efficiency=efficiency, pulse_duration=TAU)
     closed = np.asarray(ir_signal(TI_GRID, t1, efficiency=efficiency), dtype=float)
     assert closed.shape == TI_GRID.shape
     # absolute, M0 = 1; finite-pulse error <= ~1e-5 (module docstring)
@@ -50,7 +50,7 @@ def test_ir_closed_form_matches_bloch(t1: float, efficiency: float) -> None:
 
 def test_ir_m0_scales_signal() -> None:
     # Bloch equations are linear in M0 (the driving term is M0 / T1).
-    bloch = ir_signal_bloch(TI_GRID, 0.8, 0.8, m0=2.5, efficiency=0.95, pulse_duration=TAU)
+    bloch = ir_signal_bloch(TI_GRID, Tissue(0.8, 0.8, m0=2.5), efficiency=0.95, pulse_duration=TAU)
     closed = np.asarray(ir_signal(TI_GRID, 0.8, m0=2.5, efficiency=0.95), dtype=float)
     np.testing.assert_allclose(closed, bloch, rtol=0, atol=2.5e-4)
 
@@ -66,7 +66,7 @@ def test_ir_null_point_is_t1_ln2() -> None:
     # the same null from the Bloch simulation; slope at the null is 1/T1, so
     # the ~1e-5 finite-pulse signal error moves it by ~1e-5 s
     ti_null_bloch = brentq(
-        lambda ti: float(ir_signal_bloch([ti], t1, t1, pulse_duration=TAU)[0]), 0.5, 0.9, xtol=1e-9
+        lambda ti: float(ir_signal_bloch([ti], Tissue(t1, t1), pulse_duration=TAU)[0]), 0.5, 0.9, xtol=1e-9
     )
     assert ti_null_bloch == pytest.approx(expected, abs=5e-5)
 
@@ -79,7 +79,7 @@ def test_ir_finite_tr_keeps_three_parameter_form() -> None:
     # qmap's TR >> T1 form differs from it by exactly the constant k exp(-TR/T1).
     t1, k, tr = 0.8, 0.95, 2.0
     ti = np.array([0.05, 0.2, 0.5, 1.0, 1.5])
-    bloch = ir_signal_bloch(ti, t1, t1, efficiency=k, tr=tr, pulse_duration=TAU)
+    bloch = ir_signal_bloch(ti, Tissue(t1, t1), efficiency=k, tr=tr, pulse_duration=TAU)
     a = 1.0 + k * math.exp(-tr / t1)
     b = -(1.0 + k)
     np.testing.assert_allclose(bloch, a + b * np.exp(-ti / t1), rtol=0, atol=1e-4)
@@ -134,7 +134,7 @@ def test_spgr_closed_form_matches_repeated_tr_bloch(fa_deg: float, tr: float, t1
     # Repeated pulses with perfect spoiling to steady state (Ernst & Anderson
     # 1966; Bernstein et al. 2004). Tolerance 1e-6 absolute (M0 = 1); the
     # finite-pulse error here is ~4e-8.
-    bloch = spgr_signal_bloch(fa_deg, tr, t1, t2=t1, pulse_duration=TAU)
+    bloch = spgr_signal_bloch(fa_deg, tr, Tissue(t1, t1), pulse_duration=TAU)
     assert float(spgr_signal(fa_deg, tr, t1)) == pytest.approx(bloch, abs=1e-6)
 
 
@@ -144,8 +144,8 @@ def test_spgr_steady_state_reached_by_plain_repetition() -> None:
     # (E1 cos a)^300 ~ 1e-20) must give the same steady state, and both the
     # closed form.
     fa, tr, t1 = 15.0, 0.015, 0.1
-    plain = spgr_signal_bloch(fa, tr, t1, t2=t1, n_pulses=300, pulse_duration=TAU)
-    accelerated = spgr_signal_bloch(fa, tr, t1, t2=t1, pulse_duration=TAU)
+    plain = spgr_signal_bloch(fa, tr, Tissue(t1, t1), n_pulses=300, pulse_duration=TAU)
+    accelerated = spgr_signal_bloch(fa, tr, Tissue(t1, t1), pulse_duration=TAU)
     assert plain == pytest.approx(accelerated, abs=1e-10)
     assert float(spgr_signal(fa, tr, t1)) == pytest.approx(plain, abs=1e-6)
 
@@ -155,7 +155,7 @@ def test_spgr_b1_scales_the_angle(b1: float) -> None:
     # actual angle = B1 x nominal (Cheng & Wright, Magn Reson Med 2006;55:566):
     # simulate the actual angle, evaluate qmap at the nominal one with b1
     fa, tr, t1 = 12.0, 0.015, 1.2
-    bloch = spgr_signal_bloch(b1 * fa, tr, t1, t2=t1, pulse_duration=TAU)
+    bloch = spgr_signal_bloch(b1 * fa, tr, Tissue(t1, t1), pulse_duration=TAU)
     assert float(spgr_signal(fa, tr, t1, b1=b1)) == pytest.approx(bloch, abs=1e-6)
     # and the B1 effect is far larger than the tolerance
     assert abs(float(spgr_signal(fa, tr, t1)) - bloch) > 1e-3
@@ -200,7 +200,7 @@ def test_afi_ratio_against_bloch(fa_deg: float) -> None:
     # TR1 = 20 ms, TR2 = 100 ms (n = 5), T1 = 1.5 s, perfect spoiling (Yarnykh 2007).
     tr1, tr2, t1 = 0.02, 0.10, 1.5
     n = tr2 / tr1
-    s1, s2 = afi_signals_bloch(fa_deg, tr1, tr2, t1, t2=t1, pulse_duration=TAU)
+    s1, s2 = afi_signals_bloch(fa_deg, tr1, tr2, Tissue(t1, t1), pulse_duration=TAU)
     # 1) the simulation reproduces the exact finite-T1 steady state
     e1, e2 = _afi_exact(fa_deg, tr1, tr2, t1)
     assert s1 == pytest.approx(e1, abs=1e-6)
@@ -227,7 +227,7 @@ def test_afi_approximation_error_vanishes_for_long_t1() -> None:
     fa, tr1, tr2 = 60.0, 0.02, 0.10
     err = []
     for t1 in (1.5, 15.0):
-        s1, s2 = afi_signals_bloch(fa, tr1, tr2, t1, t2=t1, pulse_duration=TAU)
+        s1, s2 = afi_signals_bloch(fa, tr1, tr2, Tissue(t1, t1), pulse_duration=TAU)
         err.append(abs(float(afi_angle(s2 / s1, tr2 / tr1)) - fa))
     assert err[0] > 0.05
     assert 7.0 < err[0] / err[1] < 13.0
@@ -243,8 +243,8 @@ def test_dam_against_bloch(fa_deg: float) -> None:
     # at ~3e-7 in the ratio.
     t1 = 1.0
     tr = 30 * t1
-    s1 = spgr_signal_bloch(fa_deg, tr, t1, t2=t1, pulse_duration=TAU)
-    s2 = spgr_signal_bloch(2 * fa_deg, tr, t1, t2=t1, pulse_duration=TAU)
+    s1 = spgr_signal_bloch(fa_deg, tr, Tissue(t1, t1), pulse_duration=TAU)
+    s2 = spgr_signal_bloch(2 * fa_deg, tr, Tissue(t1, t1), pulse_duration=TAU)
     assert s2 / (2 * s1) == pytest.approx(math.cos(math.radians(fa_deg)), abs=1e-6)
     # arccos amplifies by 1/sin a: 1e-6 -> < 3e-6 rad ~ 2e-4 deg at 20 deg
     assert float(dam_angle(s1, s2)) == pytest.approx(fa_deg, abs=1e-3)
@@ -264,6 +264,6 @@ def test_finite_pulse_residual_scales_with_pulse_duration() -> None:
     # during the block), so the closed form is the hard-pulse limit.
     fa, tr, t1 = 15.0, 0.015, 1.0
     closed = _spgr_formula(fa, tr, t1)
-    res = [abs(spgr_signal_bloch(fa, tr, t1, t2=0.05, pulse_duration=tau) - closed) for tau in (1e-5, 1e-6)]
+    res = [abs(spgr_signal_bloch(fa, tr, Tissue(t1, 0.05), pulse_duration=tau) - closed) for tau in (1e-5, 1e-6)]
     assert res[0] > 1e-6
     assert 8.0 < res[0] / res[1] < 12.0

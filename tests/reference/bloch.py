@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -34,6 +35,7 @@ __all__ = [
     "ATOL",
     "GAMMA",
     "RTOL",
+    "Tissue",
     "afi_signals_bloch",
     "ir_signal_bloch",
     "relax",
@@ -51,6 +53,15 @@ ATOL = 1e-12
 PULSE_DURATION = 10e-6
 
 
+@dataclass(frozen=True)
+class Tissue:
+    """The isochromat every simulation here follows: relaxation times T1, T2 (s) and equilibrium M0."""
+
+    t1: float
+    t2: float
+    m0: float = 1.0
+
+
 def _bloch_rhs(b1: float, t1: float, t2: float, m0: float) -> Callable[[float, np.ndarray], np.ndarray]:
     """Right-hand side of the Bloch equations for a constant field B = (b1, 0, 0) (tesla)."""
     w = GAMMA * b1  # rad/s
@@ -65,14 +76,14 @@ def _bloch_rhs(b1: float, t1: float, t2: float, m0: float) -> Callable[[float, n
     return rhs
 
 
-def _integrate(m: np.ndarray, duration: float, b1: float, t1: float, t2: float, m0: float) -> np.ndarray:
+def _integrate(m: np.ndarray, duration: float, b1: float, tissue: Tissue) -> np.ndarray:
     """Integrate from state ``m`` (shape (3,)) for ``duration`` seconds; return the end state."""
     if duration < 0:
         raise ValueError(f"negative duration {duration!r} s")
     if duration == 0:
         return np.array(m, dtype=float)
     sol = solve_ivp(
-        _bloch_rhs(b1, t1, t2, m0),
+        _bloch_rhs(b1, tissue.t1, tissue.t2, tissue.m0),
         (0.0, duration),
         np.asarray(m, dtype=float),
         method="DOP853",
@@ -84,23 +95,15 @@ def _integrate(m: np.ndarray, duration: float, b1: float, t1: float, t2: float, 
     return sol.y[:, -1]
 
 
-def relax(m: ArrayLike, duration: float, t1: float, t2: float, *, m0: float = 1.0) -> np.ndarray:
+def relax(m: ArrayLike, duration: float, tissue: Tissue) -> np.ndarray:
     """Free precession on resonance (B = 0) for ``duration`` s from state ``m`` (shape (3,))."""
-    return _integrate(np.asarray(m, dtype=float), duration, 0.0, t1, t2, m0)
+    return _integrate(np.asarray(m, dtype=float), duration, 0.0, tissue)
 
 
-def rf_pulse(
-    m: ArrayLike,
-    angle_deg: float,
-    t1: float,
-    t2: float,
-    *,
-    m0: float = 1.0,
-    duration: float = PULSE_DURATION,
-) -> np.ndarray:
+def rf_pulse(m: ArrayLike, angle_deg: float, tissue: Tissue, *, duration: float = PULSE_DURATION) -> np.ndarray:
     """Rectangular RF block along x of ``duration`` s giving ``angle_deg``, relaxation included."""
     b1 = math.radians(angle_deg) / (GAMMA * duration)  # tesla
-    return _integrate(np.asarray(m, dtype=float), duration, b1, t1, t2, m0)
+    return _integrate(np.asarray(m, dtype=float), duration, b1, tissue)
 
 
 def spoil(m: ArrayLike) -> np.ndarray:
@@ -112,10 +115,8 @@ def spoil(m: ArrayLike) -> np.ndarray:
 
 def ir_signal_bloch(
     ti: ArrayLike,
-    t1: float,
-    t2: float,
+    tissue: Tissue,
     *,
-    m0: float = 1.0,
     efficiency: float = 1.0,
     tr: float | None = None,
     n_rep: int = 3,
@@ -132,10 +133,7 @@ def ir_signal_bloch(
     ----------
     ti : array_like, shape (n,)
         Inversion times, s (each > ``pulse_duration``).
-    t1, t2 : float
-        Relaxation times, s.
-    m0 : float
-        Equilibrium magnetisation.
+    tissue : Tissue
     efficiency : float
         Inversion efficiency k in [0, 1].
     tr : float or None
@@ -162,19 +160,19 @@ def ir_signal_bloch(
     for i, t in enumerate(ti):
         if t <= pulse_duration:
             raise ValueError(f"TI {t!r} s not longer than the pulse ({pulse_duration} s)")
-        m = np.array([0.0, 0.0, m0])
+        m = np.array([0.0, 0.0, tissue.m0])
         reps = 1 if tr is None else n_rep
         if tr is not None and tr <= t + pulse_duration:
             raise ValueError(f"TR {tr!r} s must exceed TI {t!r} s")
         for _ in range(reps):
-            m = rf_pulse(m, inv_angle, t1, t2, m0=m0, duration=pulse_duration)
+            m = rf_pulse(m, inv_angle, tissue, duration=pulse_duration)
             m = spoil(m)
-            m = relax(m, t - pulse_duration, t1, t2, m0=m0)
-            m = rf_pulse(m, 90.0, t1, t2, m0=m0, duration=pulse_duration)
+            m = relax(m, t - pulse_duration, tissue)
+            m = rf_pulse(m, 90.0, tissue, duration=pulse_duration)
             signal = m[1]
             if tr is not None:
                 m = spoil(m)
-                m = relax(m, tr - t - pulse_duration, t1, t2, m0=m0)
+                m = relax(m, tr - t - pulse_duration, tissue)
         out[i] = signal
     return out
 
@@ -212,13 +210,23 @@ def _steady_state(one_period: Callable[[float], tuple[float, tuple[float, ...]]]
     raise RuntimeError("steady state not reached")  # pragma: no cover
 
 
+def _spoiled_period(mz: float, fa_deg: float, period: float, tissue: Tissue, pulse_duration: float) -> tuple[float, float]:
+    """One spoiled period from the state (0, 0, ``mz``): pulse (centre at its start), free relaxation.
+
+    Returns the transverse magnitude right after the pulse and Mz at the start of the next period
+    (after perfect spoiling; the pulse centres are ``period`` apart).
+    """
+    m = rf_pulse([0.0, 0.0, mz], fa_deg, tissue, duration=pulse_duration)
+    signal = float(np.hypot(m[0], m[1]))
+    m = relax(spoil(m), period - pulse_duration, tissue)
+    return float(m[2]), signal
+
+
 def spgr_signal_bloch(
     fa_deg: float,
     tr: float,
-    t1: float,
+    tissue: Tissue,
     *,
-    t2: float = 0.05,
-    m0: float = 1.0,
     n_pulses: int | None = None,
     pulse_duration: float = PULSE_DURATION,
 ) -> float:
@@ -231,12 +239,10 @@ def spgr_signal_bloch(
     ----------
     fa_deg : float
         Flip angle, degrees.
-    tr, t1 : float
-        Repetition time and T1, s.
-    t2 : float
-        T2, s (only acts during the pulse, spoiling removes the rest).
-    m0 : float
-        Equilibrium magnetisation.
+    tr : float
+        Repetition time, s.
+    tissue : Tissue
+        (T2 only acts during the pulse, spoiling removes the rest.)
     n_pulses : int or None
         Number of pulses to simulate (the signal after the last is returned);
         None: simulate until steady state (see ``_steady_state``).
@@ -249,23 +255,18 @@ def spgr_signal_bloch(
         Transverse magnitude right after the (last) pulse.
     """
     def one_period(mz: float) -> tuple[float, tuple[float, ...]]:
-        m = rf_pulse([0.0, 0.0, mz], fa_deg, t1, t2, m0=m0, duration=pulse_duration)
-        sig = float(np.hypot(m[0], m[1]))
-        # pulse centres are exactly tr apart
-        m = relax(spoil(m), tr - pulse_duration, t1, t2, m0=m0)
-        return float(m[2]), (sig,)
+        mz, signal = _spoiled_period(mz, fa_deg, tr, tissue, pulse_duration)
+        return mz, (signal,)
 
-    return _steady_state(one_period, m0, n_pulses)[0]
+    return _steady_state(one_period, tissue.m0, n_pulses)[0]
 
 
 def afi_signals_bloch(
     fa_deg: float,
     tr1: float,
     tr2: float,
-    t1: float,
+    tissue: Tissue,
     *,
-    t2: float = 0.05,
-    m0: float = 1.0,
     n_cycles: int | None = None,
     pulse_duration: float = PULSE_DURATION,
 ) -> tuple[float, float]:
@@ -280,12 +281,8 @@ def afi_signals_bloch(
         Flip angle, degrees.
     tr1, tr2 : float
         The two interleaved repetition times, s.
-    t1 : float
-        T1, s.
-    t2 : float
-        T2, s (acts only during the pulses).
-    m0 : float
-        Equilibrium magnetisation.
+    tissue : Tissue
+        (T2 acts only during the pulses.)
     n_cycles : int or None
         Number of (TR1, TR2) cycles; None: until steady state.
     pulse_duration : float
@@ -299,13 +296,9 @@ def afi_signals_bloch(
     """
 
     def one_cycle(mz: float) -> tuple[float, tuple[float, ...]]:
-        m = rf_pulse([0.0, 0.0, mz], fa_deg, t1, t2, m0=m0, duration=pulse_duration)
-        s1 = float(np.hypot(m[0], m[1]))
-        m = relax(spoil(m), tr1 - pulse_duration, t1, t2, m0=m0)
-        m = rf_pulse(spoil(m), fa_deg, t1, t2, m0=m0, duration=pulse_duration)
-        s2 = float(np.hypot(m[0], m[1]))
-        m = relax(spoil(m), tr2 - pulse_duration, t1, t2, m0=m0)
-        return float(m[2]), (s1, s2)
+        mz, s1 = _spoiled_period(mz, fa_deg, tr1, tissue, pulse_duration)
+        mz, s2 = _spoiled_period(mz, fa_deg, tr2, tissue, pulse_duration)
+        return mz, (s1, s2)
 
-    s1, s2 = _steady_state(one_cycle, m0, n_cycles)
+    s1, s2 = _steady_state(one_cycle, tissue.m0, n_cycles)
     return s1, s2
