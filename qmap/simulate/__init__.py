@@ -111,7 +111,7 @@ def simulate(
     settings: Protocols | None = None,
     subject: str | None = None,
     overwrite: bool = False,
-    command_line: list | None = None,
+    command_line: list[str] | None = None,
 ) -> dict:
     """Simulate series with known ground truth and write them to ``out_dir``.
 

@@ -218,7 +218,7 @@ def _run_command(argv: list) -> int:
 
 
 def run_demo(out_dir, *, n_jobs: int | None = None, overwrite: bool = False, quiet: bool = True,
-             command_line: list | None = None, echo=print) -> DemoReport:
+             command_line: list[str] | None = None, echo=print) -> DemoReport:
     """Run every fit and the phantom QA on the sample data; see the module docstring.
 
     Parameters

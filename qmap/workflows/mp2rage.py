@@ -21,8 +21,10 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TypedDict, Unpack
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .. import status as st
 from ..errors import InputError, UsageError, warn
@@ -126,9 +128,44 @@ def _numbers(sc: dict, key: str, where: str):
     return np.asarray(vals, float)
 
 
-def resolve_protocol(sidecar: dict, where: str, *, ti=None, fa=None, tr_prep=None, tr_exc=None, shots=None,
-                     efficiency: float | None = None) -> tuple[MP2RAGEProtocol, dict]:
-    """The protocol from the command line (wins, with a warning on disagreement) and the sidecar keys."""
+class ProtocolOverrides(TypedDict, total=False):
+    """MP2RAGE protocol values given on the command line (:func:`run_t1_mp2rage`, :func:`resolve_protocol`):
+    each wins over the sidecars, with a warning where they disagree; None or left out: from the sidecars.
+
+    Keys
+    ----
+    ti, fa : two values each
+        Inversion times (s) and nominal flip angles (deg).
+    tr_prep, tr_exc : float
+        ``RepetitionTimePreparation`` and ``RepetitionTimeExcitation``, s.
+    shots : int
+        ``NumberShots`` (excitations per block).
+    efficiency : float
+        Inversion efficiency (never from a sidecar: default :data:`~qmap.models.mp2rage.DEFAULT_EFFICIENCY`).
+    """
+
+    ti: ArrayLike | None
+    fa: ArrayLike | None
+    tr_prep: float | None
+    tr_exc: float | None
+    shots: int | None
+    efficiency: float | None
+
+
+def resolve_protocol(sidecar: dict, where: str, **given: Unpack[ProtocolOverrides]) -> tuple[MP2RAGEProtocol, dict]:
+    """The protocol from the command line (``given``: wins, with a warning on disagreement) and the sidecar keys.
+
+    Raises
+    ------
+    TypeError
+        A name in ``given`` that is not a :class:`ProtocolOverrides` key (as for any unknown keyword argument).
+    """
+    unknown = sorted(set(given) - ProtocolOverrides.__optional_keys__)
+    if unknown:
+        raise TypeError(f"unexpected keyword argument(s) {', '.join(map(repr, unknown))}; the protocol values are "
+                        f"{', '.join(sorted(ProtocolOverrides.__optional_keys__))}")
+    ti, fa, tr_prep, tr_exc = given.get("ti"), given.get("fa"), given.get("tr_prep"), given.get("tr_exc")
+    shots, efficiency = given.get("shots"), given.get("efficiency")
     if fa is not None and np.size(fa) != 2:
         raise UsageError(f"--fa: MP2RAGE has two flip angles (one per block), got {np.size(fa)}: "
                          f"{','.join(f'{a:g}' for a in np.atleast_1d(fa))}")
@@ -165,15 +202,15 @@ def resolve_protocol(sidecar: dict, where: str, *, ti=None, fa=None, tr_prep=Non
 
 
 def fit_t1_mp2rage(
-    uni,
+    uni: ArrayLike,
     protocol: MP2RAGEProtocol,
     *,
-    b1=None,
-    mask=None,
-    inv1=None,
-    inv2=None,
-    sigma=None,
-    b1_se=None,
+    b1: ArrayLike | None = None,
+    mask: ArrayLike | None = None,
+    inv1: ArrayLike | None = None,
+    inv2: ArrayLike | None = None,
+    sigma: ArrayLike | None = None,
+    b1_se: ArrayLike | None = None,
     lut: Mp2rageLookup | None = None,
 ) -> MapSet:
     """T1 and R1 (and with the inversion images M0 and standard errors) from UNI by the lookup.
@@ -439,24 +476,19 @@ class _Images(Series):
 
 @recorded
 def run_t1_mp2rage(
-    uni,
+    uni: str | Path,
     *,
     common: CommonOptions,
-    inv1=None,
-    inv2=None,
-    inv1_phase=None,
-    inv2_phase=None,
-    ti=None,
-    fa=None,
-    tr_prep: float | None = None,
-    tr_exc: float | None = None,
-    shots: int | None = None,
-    efficiency: float | None = None,
-    b1=None,
+    inv1: str | Path | None = None,
+    inv2: str | Path | None = None,
+    inv1_phase: str | Path | None = None,
+    inv2_phase: str | Path | None = None,
+    b1: str | Path | None = None,
     b1_scale: str | None = None,
     b1_smooth: float | None = None,
     b1_stderr: str | None = "auto",
-    sigma_spec=None,
+    sigma_spec: str | None = None,
+    **overrides: Unpack[ProtocolOverrides],
 ) -> RunReport:
     """T1, R1 (and with the inversion images M0 and standard errors) maps from an MP2RAGE UNI image.
 
@@ -469,14 +501,6 @@ def run_t1_mp2rage(
         The two inversion images (magnitude or complex), same grid as UNI.
     inv1_phase, inv2_phase : path-like, optional
         Phase images (radians) of magnitude inversion images.
-    ti, fa : two values each, optional
-        Inversion times (s) and nominal flip angles (deg); default from the sidecars.
-    tr_prep, tr_exc : float, optional
-        ``RepetitionTimePreparation`` and ``RepetitionTimeExcitation``, s.
-    shots : int, optional
-        ``NumberShots`` (excitations per block).
-    efficiency : float, optional
-        Inversion efficiency (default :data:`~qmap.models.mp2rage.DEFAULT_EFFICIENCY`).
     b1 : path-like, optional
         Relative B1 map (any grid, resampled through the affines).
     b1_scale, b1_smooth, b1_stderr
@@ -485,6 +509,10 @@ def run_t1_mp2rage(
         propagated into the standard errors when the inversion images are given.
     sigma_spec : str, optional
         ``--sigma`` (auto, a value or a noise map) for the inversion images' noise.
+    **overrides
+        :class:`ProtocolOverrides`: ``ti``, ``fa``, ``tr_prep``, ``tr_exc``, ``shots``, ``efficiency``
+        (default: from the sidecars; the efficiency from
+        :data:`~qmap.models.mp2rage.DEFAULT_EFFICIENCY`).
     """
     t0 = time.perf_counter()
     if common.engine != "fast":
@@ -498,13 +526,13 @@ def run_t1_mp2rage(
         raise UsageError("--sigma is the noise of the inversion images: it needs --inv1/--inv2")
     if (b1_scale is not None or b1_smooth or b1_stderr not in (None, "auto", "none")) and b1 is None:
         raise UsageError("--b1-scale / --b1-smooth / --b1-stderr FILE need --b1 B1MAP")
+    efficiency = overrides.get("efficiency")
     if efficiency is not None and not (0 < efficiency <= 1):
         raise UsageError(f"--inversion-efficiency {efficiency:g}: expected a number in (0, 1] (1 = perfect)")
     upath = Path(uni).expanduser().absolute()
     img = _open_3d(upath, "UNI")
     sidecar, where = _merged_sidecar(upath, inv1, inv2)
-    protocol, sources = resolve_protocol(sidecar, where, ti=ti, fa=fa, tr_prep=tr_prep, tr_exc=tr_exc, shots=shots,
-                                         efficiency=efficiency)
+    protocol, sources = resolve_protocol(sidecar, where, **overrides)
     shape, affine = tuple(img.shape[:3]), np.asarray(img.affine, float)
     budget = common.max_memory
     inversions = None

@@ -205,7 +205,7 @@ def run_phantom(
     protocol: str | None = None,
     date: str | None = None,
     overwrite: bool = False,
-    command_line: list | None = None,
+    command_line: list[str] | None = None,
 ) -> PhantomReport:
     """Compare ROI statistics of parameter maps with a phantom's reference values.
 

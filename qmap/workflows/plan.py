@@ -75,7 +75,7 @@ def plan_figure(result: PlanResult, path: str | Path) -> None:
     fig.savefig(str(path), format="png", dpi=DPI, facecolor="white")
 
 
-def write_plan(result: PlanResult, out_dir, *, overwrite: bool = False, command_line: list | None = None) -> None:
+def write_plan(result: PlanResult, out_dir, *, overwrite: bool = False, command_line: list[str] | None = None) -> None:
     """Write a protocol design or evaluation (:func:`qmap.planning.plan`) as ``plan.json`` and ``plan.png``.
 
     The JSON holds ``method``, ``protocol`` (BIDS key -> values in seconds or

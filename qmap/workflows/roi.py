@@ -158,7 +158,7 @@ def stats_csv(rows) -> bytes:
 
 
 def run_roi(maps, *, labels, out_dir, params=None, names=None, erode: int = 0, per_slice: bool = False,
-            use_status: bool = True, overwrite: bool = False, command_line: list | None = None) -> RoiReport:
+            use_status: bool = True, overwrite: bool = False, command_line: list[str] | None = None) -> RoiReport:
     """Statistics of every map inside every label of ``labels``; writes roi_stats.csv / .json.
 
     Parameters
