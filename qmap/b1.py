@@ -341,27 +341,27 @@ class B1ClosedForm:
 
 
 def load_b1_map(
-    path,
+    b1,
     *,
     shape: tuple,
     affine: np.ndarray,
-    scale: str | None = None,
-    smooth_fwhm_mm: float | None = None,
+    b1_scale: str | None = None,
+    b1_smooth: float | None = None,
 ) -> tuple[np.ndarray, dict]:
     """Load a relative B1 map and resample it onto a data grid.
 
     Parameters
     ----------
-    path : path-like
+    b1 : path-like
         3D NIfTI of relative B1 (actual / nominal angle).
     shape : tuple
         Data grid shape (X, Y, Z).
     affine : (4, 4) ndarray
         Data grid voxel-to-world affine.
-    scale : {"fraction", "percent"}, optional
+    b1_scale : {"fraction", "percent"}, optional
         Units of the map; default from its JSON sidecar ``Units`` when that
         says ``percent`` / ``%``, else fraction.
-    smooth_fwhm_mm : float, optional
+    b1_smooth : float, optional
         Gaussian smoothing (FWHM, mm) on the map's own grid before resampling.
 
     Returns
@@ -380,34 +380,38 @@ def load_b1_map(
     interpolated alike, a voxel kept where at least half of its
     interpolation weight is valid), so the edge of a masked B1 map is not
     pulled towards 0.
+
+    Messages name these arguments (``b1=PATH``, ``b1_scale='percent'``); the command line shows
+    its options (``--b1``, ``--b1-scale``, ``--b1-smooth``) instead.
     """
-    path = Path(path)
-    img, data = _load_3d(path, "--b1", "one 3D relative B1 map (for AFI/DAM raw images run qmap b1 first and "
-                                       "pass its TB1map)")
-    scale, source = _b1_scale(path, scale)
+    path = Path(b1)
+    smooth_fwhm_mm = b1_smooth
+    img, data = _load_3d(path, "b1=", "one 3D relative B1 map (for AFI/DAM raw images run qmap b1 first and "
+                                      "pass its TB1map)")
+    scale, source = _b1_scale(path, b1_scale)
     values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
     nz = values[np.isfinite(values) & (values != 0)]
     med = float(np.median(nz)) if nz.size else float("nan")
     if not nz.size or not med > 0:
-        raise InputError(f"--b1 {path}: median value {med:g} is not positive; a relative B1 map holds values near 1 "
+        raise InputError(f"b1={path}: median value {med:g} is not positive; a relative B1 map holds values near 1 "
                          f"(fraction) or 100 (percent) -- check the file")
     lo, hi = B1_MEDIAN_RANGE
     if not lo <= med <= hi:
         if scale == "fraction" and med > 10:
-            raise InputError(f"--b1 {path}: median value {med:.4g} is far from 1 -- the map looks like percent; "
-                             f"pass --b1-scale percent (a flip-angle map in degrees must be divided by the nominal "
+            raise InputError(f"b1={path}: median value {med:.4g} is far from 1 -- the map looks like percent; "
+                             f"pass b1_scale='percent' (a flip-angle map in degrees must be divided by the nominal "
                              f"angle first)")
         if scale == "percent" and med < 0.05:
-            raise InputError(f"--b1 {path}: with --b1-scale percent the median is {med:.4g}; the map is already a "
-                             f"fraction -- drop --b1-scale percent")
-        raise InputError(f"--b1 {path}: median relative B1 {med:.4g} ({scale}) is implausible (expected "
-                         f"{lo:g}-{hi:g}); check --b1-scale and that this is a relative B1 map")
+            raise InputError(f"b1={path}: with b1_scale='percent' the median is {med:.4g}; the map is already a "
+                             f"fraction -- drop b1_scale='percent'")
+        raise InputError(f"b1={path}: median relative B1 {med:.4g} ({scale}) is implausible (expected "
+                         f"{lo:g}-{hi:g}); check b1_scale={scale!r} and that this is a relative B1 map")
     valid = np.isfinite(values) & (values > 0)
     src_affine = np.asarray(img.affine, float)
     voxel_mm = np.sqrt(np.sum(src_affine[:3, :3] ** 2, axis=0))
     if smooth_fwhm_mm:
         if not np.isfinite(smooth_fwhm_mm) or smooth_fwhm_mm < 0:
-            raise UsageError(f"--b1-smooth {smooth_fwhm_mm}: give a non-negative FWHM in mm")
+            raise UsageError(f"b1_smooth={smooth_fwhm_mm}: give a non-negative FWHM in mm")
         sig = smooth_fwhm_mm / (2.0 * np.sqrt(2.0 * np.log(2.0))) / voxel_mm
         from scipy import ndimage  # imported on use (start-up time)
         sv = ndimage.gaussian_filter(np.where(valid, values, 0.0), sig, mode="constant", cval=0.0)
@@ -418,7 +422,7 @@ def load_b1_map(
     covered = np.isfinite(b1)
     if not covered.any():
         raise InputError(
-            f"--b1 {path}: does not overlap the data (its field of view spans {_extent(src_affine, data.shape)} mm, "
+            f"b1={path}: does not overlap the data (its field of view spans {_extent(src_affine, data.shape)} mm, "
             f"the series {_extent(affine, shape)} mm in world coordinates); is it from another session or "
             f"coordinate frame?"
         )
@@ -436,14 +440,14 @@ def load_b1_map(
     return b1, info
 
 
-def _load_3d(path: Path, option: str, expected: str) -> tuple[SpatialImage, np.ndarray]:
-    """The image and data of a 3D map given with ``option`` (a 4D file of one volume is taken as 3D)."""
-    img = load_image(path, what=option)
+def _load_3d(path: Path, argument: str, expected: str) -> tuple[SpatialImage, np.ndarray]:
+    """The image and data of a 3D map given as ``argument`` (``"b1="``; a 4D file of one volume is taken as 3D)."""
+    img = load_image(path, what=argument)
     data = image_data(img, path)
     if data.ndim == 4 and data.shape[3] == 1:
         data = data[..., 0]
     if data.ndim != 3:
-        raise InputError(f"{option} {path}: has shape {data.shape}, expected {expected}")
+        raise InputError(f"{argument}{path}: has shape {data.shape}, expected {expected}")
     return img, data
 
 
@@ -467,16 +471,16 @@ def b1_stderr_beside(b1_path) -> Path | None:
     return stderr_map_beside(b1_path)
 
 
-def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "fraction") -> tuple[np.ndarray, dict]:
+def load_b1_stderr(b1_se, *, shape: tuple, affine: np.ndarray, b1_scale: str = "fraction") -> tuple[np.ndarray, dict]:
     """Load the standard error of a relative B1 map and resample it onto a data grid.
 
     Parameters
     ----------
-    path : path-like
+    b1_se : path-like
         3D NIfTI of the B1 map's standard error, in the units of the map.
     shape, affine
         Data grid (as :func:`load_b1_map`).
-    scale : {"fraction", "percent"}
+    b1_scale : {"fraction", "percent"}
         Units of the B1 map it belongs to (percent is divided by 100).
 
     Returns
@@ -486,17 +490,20 @@ def load_b1_stderr(path, *, shape: tuple, affine: np.ndarray, scale: str = "frac
         map holds no finite non-negative value (nothing is added there).
     info : dict
         For provenance.
+
+    Messages name the argument (``b1_se=PATH``; on the command line ``--b1-stderr``).
     """
-    path = Path(path)
-    img, data = _load_3d(path, "--b1-stderr", "one 3D standard-error map")
+    path = Path(b1_se)
+    scale = b1_scale
+    img, data = _load_3d(path, "b1_se=", "one 3D standard-error map")
     values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
     valid = np.isfinite(values) & (values >= 0)
     if not valid.any():
-        raise InputError(f"--b1-stderr {path}: holds no finite non-negative value; give the B1 map's standard "
-                         f"error (e.g. the desc-stderr TB1map of qmap b1) or --b1-stderr none")
+        raise InputError(f"b1_se={path}: holds no finite non-negative value; give the B1 map's standard "
+                         f"error (e.g. the desc-stderr TB1map of qmap b1) or b1_se='none'")
     med = float(np.median(values[valid]))
     if med > 0.5:
-        raise InputError(f"--b1-stderr {path}: median {med:.3g} ({scale}) is not a plausible standard error of a "
+        raise InputError(f"b1_se={path}: median {med:.3g} ({scale}) is not a plausible standard error of a "
                          f"relative B1 map (expected about 0.005-0.1); is it the B1 map itself, or percent?")
     src_affine = np.asarray(img.affine, float)
     se = _resample_valid(values, valid, src_affine, shape, affine)
@@ -527,9 +534,9 @@ def _b1_scale(path: Path, scale: str | None) -> tuple[str, str]:
     side = b1_units_scale(units)
     if scale is not None:
         if scale not in B1_SCALES:
-            raise UsageError(f"--b1-scale {scale!r}: expected fraction or percent")
+            raise UsageError(f"b1_scale={scale!r}: expected fraction or percent")
         if side is not None and side != scale:
-            warn(f"--b1-scale {scale} differs from the B1 sidecar Units {units!r}; using --b1-scale")
+            warn(f"b1_scale={scale!r} differs from the B1 sidecar Units {units!r}; using b1_scale={scale!r}")
         return scale, "command line"
     if side is not None:
         return side, f"sidecar Units {units!r}"

@@ -112,8 +112,8 @@ def _usage_error(line: str) -> int:
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
     """:func:`warnings.showwarning` for the command line: a qmap warning is one line on stderr."""
-    if issubclass(category, QmapWarning):
-        sys.stderr.write(f"qmap: warning: {' '.join(str(message).split())}\n")
+    if issubclass(category, QmapWarning):  # a library warning names arguments; the command line, options
+        sys.stderr.write(f"qmap: warning: {as_options(' '.join(str(message).split()))}\n")
     else:
         sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
 
@@ -190,12 +190,33 @@ ARGUMENT_OPTIONS = {
     "tr": "--tr",
     "limits": "--limits",
     "evaluate": "--evaluate",
+    # B1 maps (qmap.b1.load_b1_map / load_b1_stderr and the workflows of t1-vfa and t1-mp2rage)
+    "b1": "--b1",
+    "b1_scale": "--b1-scale",
+    "b1_smooth": "--b1-smooth",
+    "b1_se": "--b1-stderr",
+    # qmap.simulate.simulate and its Protocols
+    "protocols": "--protocol",
+    "phantom": "--phantom",
+    "shape": "--shape",
+    "b1_snr": "--b1-snr",
+    "coils": "--coils",
+    "subject": "--subject",
+    "b1_range": "--b1-range",
+    "b1_method": "--b1-method",
+    "ir_tr": "--ir-tr",
+    "mese_echoes": "--echoes",
+    "out_dir": "-o",
+    "overwrite": "--overwrite",
 }
-_ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=")
+_ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
 
 
 def as_options(message: str) -> str:
     """A library message as the command line says it: ``name=value`` of an argument -> ``--option value``.
+
+    A quoted string loses its quotes, a tuple or list becomes a comma separated list, and
+    ``flag=True`` becomes the bare flag.
 
     Examples
     --------
@@ -203,12 +224,24 @@ def as_options(message: str) -> str:
     '--t1 -1: T1 must be a positive number of seconds; give --samples 4 or more'
     >>> as_options("sigma='local' needs a fitted model")
     '--sigma local needs a fitted model'
+    >>> as_options("b1_range=(1.2, 0.8): expected 0 < MIN <= MAX (e.g. b1_range=(0.85, 1.15))")
+    '--b1-range 1.2,0.8: expected 0 < MIN <= MAX (e.g. --b1-range 0.85,1.15)'
+    >>> as_options("out_dir=sim: the folder is not empty; pass overwrite=True to replace it")
+    '-o sim: the folder is not empty; pass --overwrite to replace it'
     """
     def option(m: re.Match) -> str:
-        return ARGUMENT_OPTIONS[m.group(1)] + " "
+        opt, value = ARGUMENT_OPTIONS[m.group(1)], m.group(2)
+        if value is None:
+            return opt + " "
+        if value == "True":
+            return opt
+        if value[0] == "'":
+            return f"{opt} {value[1:-1]}"
+        items = (t.strip().strip("'\"") for t in value[1:-1].split(","))
+        return f"{opt} {','.join(t for t in items if t)}"
 
     out = _ARGUMENT.sub(option, message)
-    return re.sub(r"(--[a-z0-9-]+ )'([^']*)'", r"\1\2", out)
+    return re.sub(r"(--[a-z0-9-]+ )'([^']*)'", r"\1\2", out)  # and a quoted value after any option
 
 
 def _main(argv: list[str]) -> int:

@@ -79,21 +79,26 @@ def read_sidecar(path: str | Path) -> dict:
 
 
 def load_image(path: str | Path, *, what: str = "input") -> nib.spatialimages.SpatialImage:
-    """Open a NIfTI image lazily, turning every failure into a one-line :class:`InputError`."""
+    """Open a NIfTI image lazily, turning every failure into a one-line :class:`InputError`.
+
+    ``what`` names the file in messages: an option (``"--b1"``: ``--b1 PATH: ...``) or a library
+    argument (``"b1="``: ``b1=PATH: ...``, which the command line shows as its option).
+    """
     p = Path(path)
+    what = what if what.endswith("=") else f"{what} "
     if not p.exists():
-        raise InputError(f"{what} {p}: no such file; check the path")
+        raise InputError(f"{what}{p}: no such file; check the path")
     if p.is_dir():
-        raise InputError(f"{what} {p}: is a folder, expected a NIfTI file (.nii or .nii.gz)")
+        raise InputError(f"{what}{p}: is a folder, expected a NIfTI file (.nii or .nii.gz)")
     try:
         img = nib.load(str(p))
     except Exception as exc:  # noqa: BLE001 -- nibabel raises many types for unreadable files
         raise InputError(
-            f"{what} {p}: not a readable NIfTI file ({_short(exc)}); qmap reads .nii / .nii.gz "
+            f"{what}{p}: not a readable NIfTI file ({_short(exc)}); qmap reads .nii / .nii.gz "
             f"(convert DICOM first)"
         ) from None
     if not isinstance(img, (nib.Nifti1Image, nib.Nifti2Image)):
-        raise InputError(f"{what} {p}: is a {type(img).__name__}, expected NIfTI (.nii / .nii.gz)")
+        raise InputError(f"{what}{p}: is a {type(img).__name__}, expected NIfTI (.nii / .nii.gz)")
     return img
 
 

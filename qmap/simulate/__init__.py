@@ -154,14 +154,16 @@ def simulate(
     protocols = list(dict.fromkeys(protocols))
     bad = [p for p in protocols if p not in PROTOCOLS]
     if bad or not protocols:
-        raise UsageError(f"--protocol {','.join(protocols)}: expected a comma separated list of {', '.join(PROTOCOLS)}")
-    if not snr > 0 or (b1_snr is not None and not b1_snr > 0):
-        raise UsageError(f"--snr {snr}: must be a positive number")
+        raise UsageError(f"protocols={tuple(protocols)}: expected some of {', '.join(PROTOCOLS)}")
+    if not snr > 0:
+        raise UsageError(f"snr={snr}: must be a positive number")
+    if b1_snr is not None and not b1_snr > 0:
+        raise UsageError(f"b1_snr={b1_snr}: must be a positive number")
     if int(coils) < 1:
-        raise UsageError(f"--coils {coils}: must be a positive integer")
+        raise UsageError(f"coils={coils}: must be a positive integer")
     subject = subject or phantom
     if not subject.isalnum():
-        raise UsageError(f"--subject {subject!r}: a BIDS label holds letters and digits only")
+        raise UsageError(f"subject={subject!r}: a BIDS label holds letters and digits only")
     ph: Phantom = make_phantom(phantom, shape, temperature_c=temperature_c)
     shape = ph.labels.shape
     affine = grid_affine(shape, voxel_size)

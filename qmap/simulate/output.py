@@ -41,10 +41,10 @@ class StagedFolder:
     def __init__(self, target: str | Path, *, overwrite: bool = False):
         self.target = Path(target).absolute()
         if self.target.exists() and not self.target.is_dir():
-            raise OutputError(f"-o {self.target}: exists and is not a folder; choose another -o")
+            raise OutputError(f"out_dir={self.target}: exists and is not a folder; choose another folder")
         if self.target.is_dir() and any(self.target.iterdir()) and not overwrite:
-            raise OutputExistsError(f"-o {self.target}: the folder is not empty; pass --overwrite to replace it, "
-                                    f"or choose another -o")
+            raise OutputExistsError(f"out_dir={self.target}: the folder is not empty; pass overwrite=True to replace "
+                                    f"it, or choose another folder")
         self.tmp = self.target.with_name(f".{self.target.name}.qmap-tmp-{os.getpid()}")
         self._created: list[Path] = []  # parent folders this run made (removed again unless committed)
         self._committed = False

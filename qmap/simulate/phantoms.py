@@ -307,14 +307,14 @@ def make_phantom(name: str, shape, *, temperature_c: float = REFERENCE_TEMPERATU
     """Build the built-in phantom ``name`` (``vials`` or ``head``) on a matrix of ``shape``."""
     shape = tuple(int(s) for s in shape)
     if len(shape) != 3 or min(shape[:2]) < 24 or shape[2] < 1:
-        raise UsageError(f"--shape {shape}: expected X,Y,Z with X and Y at least 24 (e.g. 48,48,4)")
+        raise UsageError(f"shape={shape}: expected shape=(X, Y, Z) with X and Y at least 24 (e.g. shape=(48, 48, 4))")
     if name == "vials":
         return vial_phantom(shape, temperature_c=temperature_c)
     if name == "head":
         return head_phantom(shape)
     if name == "pools":
         return pools_phantom(shape)
-    raise UsageError(f"--phantom {name!r}: expected one of {', '.join(PHANTOMS)}")
+    raise UsageError(f"phantom={name!r}: expected one of {', '.join(PHANTOMS)}")
 
 
 def b1_field(shape, voxel_size=(1.0, 1.0, 1.0), *, low: float = 0.85, high: float = 1.15) -> np.ndarray:
@@ -328,7 +328,7 @@ def b1_field(shape, voxel_size=(1.0, 1.0, 1.0), *, low: float = 0.85, high: floa
     and ``high``.
     """
     if not 0 < low <= high:
-        raise UsageError(f"--b1-range {low},{high}: expected 0 < MIN <= MAX (fractions, e.g. 0.85,1.15)")
+        raise UsageError(f"b1_range={(low, high)}: expected 0 < MIN <= MAX (fractions, e.g. b1_range=(0.85, 1.15))")
     shape = tuple(int(s) for s in shape)
     vs = np.asarray(voxel_size, float)
     half = shape[0] * vs[0] / 2.0  # mm: normalise every axis by the half field of view along x

@@ -82,11 +82,12 @@ class Protocols:
 
     def __post_init__(self):
         if self.b1_method not in ("dam", "afi"):
-            raise UsageError(f"--b1-method {self.b1_method!r}: expected dam or afi")
+            raise UsageError(f"b1_method={self.b1_method!r}: expected dam or afi")
         if self.ir_tr <= max(self.ir_ti):
-            raise UsageError(f"--ir-tr {self.ir_tr:g} s must exceed the longest inversion time {max(self.ir_ti):g} s")
+            raise UsageError(f"ir_tr={self.ir_tr:g}: the time between inversions (s) must exceed the longest "
+                             f"inversion time, {max(self.ir_ti):g} s")
         if int(self.mese_echoes) < 2:
-            raise UsageError("--echoes: a spin-echo train needs at least 2 echoes")
+            raise UsageError(f"mese_echoes={self.mese_echoes}: a spin-echo train needs at least 2 echoes")
 
 
 @dataclass
@@ -197,4 +198,4 @@ def synthesise(name: str, ph: Phantom, b1: np.ndarray, p: Protocols) -> Series:
                        "NumberShots": int(p.mp2rage_shots), "EchoTime": p.mp2rage_te,
                        "PulseSequenceType": "MP2RAGE (simulated)"},
                       per_volume={"FlipAngle": [float(a) for a in p.mp2rage_fa]})
-    raise UsageError(f"--protocol {name!r}: expected some of {', '.join(PROTOCOLS)}")
+    raise UsageError(f"name={name!r}: expected one of {', '.join(PROTOCOLS)} (a protocol of qmap.simulate)")

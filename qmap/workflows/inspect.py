@@ -358,8 +358,8 @@ def _ctx(model, prov, ijk, series_path):
     from ..b1 import load_b1_map
 
     ref = load_image(series_path)
-    b1, _ = load_b1_map(path, shape=ref.shape[:3], affine=ref.affine, scale=opts.get("b1_scale"),
-                        smooth_fwhm_mm=opts.get("b1_smooth_fwhm_mm"))
+    b1, _ = load_b1_map(path, shape=ref.shape[:3], affine=ref.affine, b1_scale=opts.get("b1_scale"),
+                        b1_smooth=opts.get("b1_smooth_fwhm_mm"))
     return {"b1": np.array([b1[ijk[0], ijk[1], ijk[2]]])}
 
 
@@ -428,8 +428,8 @@ def _lookup_figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
     if opts.get("b1"):
         from ..b1 import load_b1_map
 
-        b1_map, _ = load_b1_map(opts["b1"], shape=img.shape[:3], affine=img.affine, scale=opts.get("b1_scale"),
-                                smooth_fwhm_mm=opts.get("b1_smooth_fwhm_mm"))
+        b1_map, _ = load_b1_map(opts["b1"], shape=img.shape[:3], affine=img.affine, b1_scale=opts.get("b1_scale"),
+                                b1_smooth=opts.get("b1_smooth_fwhm_mm"))
         b1 = float(b1_map[ijk[0], ijk[1], ijk[2]])
     lo, hi = (float(v) for v in minfo.get("t1_lookup_range_s", (0.05, 5.0)))
     t1f = np.geomspace(lo, hi, 400)

@@ -392,7 +392,7 @@ def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[np.ndarray | None, 
     if path is None:
         return None, {"propagated": False, "reason": "no standard-error map beside the B1 map"}, None
     try:
-        se, info = load_b1_stderr(path, shape=shape, affine=affine, scale=scale)
+        se, info = load_b1_stderr(path, shape=shape, affine=affine, b1_scale=scale)
     except InputError as exc:
         if spec != "auto":
             raise
@@ -599,7 +599,7 @@ def run_t1_mp2rage(
     if b1 is not None:
         from ..b1 import load_b1_map
 
-        b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, scale=b1_scale, smooth_fwhm_mm=b1_smooth)
+        b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, b1_scale=b1_scale, b1_smooth=b1_smooth)
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")

@@ -247,8 +247,8 @@ def run_t1_vfa(
     b1_map = None
     b1_info: dict[str, Any] = {"b1": None}
     if b1 is not None:
-        b1_map, b1_info = load_b1_map(b1, shape=series.shape, affine=series.affine, scale=b1_scale,
-                                      smooth_fwhm_mm=b1_smooth)
+        b1_map, b1_info = load_b1_map(b1, shape=series.shape, affine=series.affine, b1_scale=b1_scale,
+                                      b1_smooth=b1_smooth)
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data"
                    + (f", smoothed FWHM {b1_smooth:g} mm" if b1_smooth else "") + ")")
@@ -288,13 +288,13 @@ def _b1_stderr(b1, spec, series, scale: str) -> tuple[np.ndarray | None, dict]:
         if path is None:
             return None, {"propagated": False, "reason": "no standard-error map beside the B1 map"}
         try:
-            se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, scale=scale)
+            se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, b1_scale=scale)
         except InputError as exc:  # e.g. all NaN: qmap b1 had no noise level; nothing known to propagate
             return None, {"propagated": False, "reason": f"the standard-error map beside the B1 map is not usable "
                                                          f"({exc})", "path": str(path.absolute())}
     else:
         path = Path(spec)
-        se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, scale=scale)
+        se, info = load_b1_stderr(path, shape=series.shape, affine=series.affine, b1_scale=scale)
     return se, dict(info, propagated=True, path=str(Path(path).absolute()))
 
 

@@ -135,7 +135,7 @@ def test_b1_resampling_reproduces_the_field(vfa):
     assert np.all(np.isnan(b1[~_inside_b1_fov(0.0)]))
     assert info["b1_voxel_mm"] == [4.0, 4.0, 6.0]
     # smoothing by a Gaussian of 8 mm FWHM changes a near-linear field only slightly, and keeps the FOV
-    b1s, _ = load_b1_map(vfa["b1"], shape=SHAPE, affine=AFFINE, smooth_fwhm_mm=8.0)
+    b1s, _ = load_b1_map(vfa["b1"], shape=SHAPE, affine=AFFINE, b1_smooth=8.0)
     np.testing.assert_array_equal(np.isnan(b1s), np.isnan(b1))
     assert np.nanmax(np.abs(b1s - b1)) < 0.02
 

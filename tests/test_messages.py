@@ -1,0 +1,159 @@
+"""Messages in the caller's words: the library names its arguments, the command line its options.
+
+A function called from Python says ``b1=PATH`` / ``b1_scale='percent'`` (what the caller typed); the
+command line turns each ``name=value`` into the option the user typed (``--b1 PATH``, ``--b1-scale
+percent``) through :func:`qmap.cli.as_options` -- for errors and for warnings alike.
+"""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pytest
+
+from qmap.b1 import load_b1_map, load_b1_stderr
+from qmap.cli import ARGUMENT_OPTIONS, as_options, main
+from qmap.errors import InputError, OutputExistsError, QmapWarning, UsageError
+from qmap.simulate import Protocols, simulate
+from tests.conftest import write_nifti
+
+SHAPE = (6, 5, 2)
+AFFINE = np.diag([2.0, 2.0, 3.0, 1.0])
+FA = (3.0, 8.0, 15.0, 25.0)
+TR = 0.015
+
+
+def _no_option(message: str) -> None:
+    """A library message names no command-line option (``--x`` or ``-o``)."""
+    assert not re.search(r"(?<![\w-])--?[a-z]", message), message
+
+
+def _vfa(d):
+    """A small VFA series (SPGR signal, Fram et al. 1987), one 3D file per flip angle with its sidecar."""
+    a = np.deg2rad(np.asarray(FA))
+    e1 = np.exp(-TR / 1.0)
+    s = 1000.0 * np.sin(a) * (1 - e1) / (1 - e1 * np.cos(a))
+    return [str(write_nifti(d / f"vfa_flip-{i + 1}.nii.gz", np.full(SHAPE, v), AFFINE,
+                            {"FlipAngle": FA[i], "RepetitionTime": TR})) for i, v in enumerate(s)]
+
+
+def _one_error(capsys) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("qmap: error: "), err
+    return err[0]
+
+
+# --------------------------------------------------------------------- B1 maps
+def test_b1_map_messages_name_arguments_in_the_library_and_options_on_the_command_line(tmp_path, capsys):
+    pct = write_nifti(tmp_path / "b1pct.nii.gz", np.full(SHAPE, 98.0), AFFINE)
+    with pytest.raises(InputError) as exc:
+        load_b1_map(pct, shape=SHAPE, affine=AFFINE)
+    msg = str(exc.value)
+    assert msg.startswith(f"b1={pct}: median value 98 is far from 1") and "b1_scale='percent'" in msg
+    _no_option(msg)
+    with pytest.raises(InputError, match=r"^b1=\S*missing\.nii\.gz: no such file") as exc:
+        load_b1_map(tmp_path / "missing.nii.gz", shape=SHAPE, affine=AFFINE)
+    _no_option(str(exc.value))
+    frac = write_nifti(tmp_path / "b1.nii.gz", np.full(SHAPE, 0.98), AFFINE)
+    with pytest.raises(UsageError, match=r"^b1_smooth=-2\.0: give a non-negative FWHM in mm$"):
+        load_b1_map(frac, shape=SHAPE, affine=AFFINE, b1_smooth=-2.0)
+    with pytest.raises(UsageError, match=r"^b1_scale='permille': expected fraction or percent$"):
+        load_b1_map(frac, shape=SHAPE, affine=AFFINE, b1_scale="permille")
+    # the same cases on the command line: the options
+    files = _vfa(tmp_path)
+    assert main(["t1-vfa", *files, "--b1", str(pct), "-o", str(tmp_path / "o"), "-q", "--sigma", "5"]) == 2
+    line = _one_error(capsys)
+    assert line.startswith(f"qmap: error: --b1 {pct}: median value 98 is far from 1")
+    assert "pass --b1-scale percent (" in line and "=" not in line
+    assert main(["t1-vfa", *files, "--b1", str(frac), "--b1-smooth", "-2", "-o", str(tmp_path / "o"), "-q",
+                 "--sigma", "5"]) == 2
+    assert _one_error(capsys) == "qmap: error: --b1-smooth -2.0: give a non-negative FWHM in mm"
+
+
+def test_b1_stderr_messages_and_the_units_warning(tmp_path, capsys):
+    nan = write_nifti(tmp_path / "se.nii.gz", np.full(SHAPE, np.nan), AFFINE)
+    with pytest.raises(InputError) as exc:
+        load_b1_stderr(nan, shape=SHAPE, affine=AFFINE)
+    msg = str(exc.value)
+    assert msg.startswith(f"b1_se={nan}: holds no finite non-negative value") and msg.endswith("or b1_se='none'")
+    _no_option(msg)
+    # a B1 sidecar saying percent while the caller says fraction: a warning in the caller's words
+    b1 = write_nifti(tmp_path / "b1.nii.gz", np.full(SHAPE, 0.98), AFFINE, {"Units": "percent"})
+    with pytest.warns(QmapWarning, match=r"^b1_scale='fraction' differs from the B1 sidecar Units 'percent'; "
+                                         r"using b1_scale='fraction'$"):
+        load_b1_map(b1, shape=SHAPE, affine=AFFINE, b1_scale="fraction")
+    files = _vfa(tmp_path)
+    plain = write_nifti(tmp_path / "plain_b1.nii.gz", np.full(SHAPE, 0.98), AFFINE)
+    assert main(["t1-vfa", *files, "--b1", str(plain), "--b1-stderr", str(nan), "-o", str(tmp_path / "o"), "-q",
+                 "--sigma", "5"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err[-1] == (f"qmap: error: --b1-stderr {nan}: holds no finite non-negative value; give the B1 map's "
+                       f"standard error (e.g. the desc-stderr TB1map of qmap b1) or --b1-stderr none")
+    assert main(["t1-vfa", *files, "--b1", str(b1), "--b1-scale", "fraction", "-o", str(tmp_path / "w"), "-q",
+                 "--sigma", "5"]) == 0
+    warned = [w for w in capsys.readouterr().err.splitlines() if "sidecar Units" in w]
+    assert warned == [("qmap: warning: --b1-scale fraction differs from the B1 sidecar Units 'percent'; "
+                       "using --b1-scale fraction")]
+
+
+# --------------------------------------------------------------------- simulate
+LIBRARY_CASES = [
+    # (keyword arguments of simulate, the message's start in the library, the same on the command line)
+    ({"protocols": ["ir", "dwi"]}, "protocols=('ir', 'dwi'): expected some of", ["--protocol", "ir,dwi"],
+     "--protocol ir,dwi: expected some of"),
+    ({"shape": (20, 48, 2)}, "shape=(20, 48, 2): expected shape=(X, Y, Z) with X and Y at least 24",
+     ["--shape", "20,48,2"], "--shape 20,48,2: expected --shape X,Y,Z with X and Y at least 24 (e.g. --shape 48,48,4)"),
+    ({"b1_range": (1.2, 0.8)}, "b1_range=(1.2, 0.8): expected 0 < MIN <= MAX", ["--b1-range", "1.2,0.8"],
+     "--b1-range 1.2,0.8: expected 0 < MIN <= MAX (fractions, e.g. --b1-range 0.85,1.15)"),
+    ({"snr": -1.0}, "snr=-1.0: must be a positive number", ["--snr", "-1"], "--snr -1.0: must be a positive number"),
+    ({"b1_snr": 0.0}, "b1_snr=0.0: must be a positive number", ["--b1-snr", "0"],
+     "--b1-snr 0.0: must be a positive number"),
+    ({"coils": 0}, "coils=0: must be a positive integer", ["--coils", "0"], "--coils 0: must be a positive integer"),
+    ({"subject": "a-b"}, "subject='a-b': a BIDS label", ["--subject", "a-b"], "--subject a-b: a BIDS label"),
+    ({"settings": "ir_tr"}, "ir_tr=3: the time between inversions (s) must exceed the longest inversion time, 6 s",
+     ["--ir-tr", "3s"], "--ir-tr 3: the time between inversions (s) must exceed the longest inversion time, 6 s"),
+    ({"settings": "echoes"}, "mese_echoes=1: a spin-echo train needs at least 2 echoes", ["--echoes", "1"],
+     "--echoes 1: a spin-echo train needs at least 2 echoes"),
+]
+
+
+@pytest.mark.parametrize("kwargs, library, argv, cli", LIBRARY_CASES, ids=lambda v: str(v)[:20])
+def test_simulate_messages_name_arguments_and_the_command_line_its_options(tmp_path, capsys, kwargs, library, argv,
+                                                                          cli):
+    with pytest.raises(UsageError) as exc:
+        if kwargs.get("settings") == "ir_tr":
+            Protocols(ir_tr=3.0)
+        elif kwargs.get("settings") == "echoes":
+            Protocols(mese_echoes=1)
+        else:
+            simulate(tmp_path / "lib", **kwargs)
+    assert str(exc.value).startswith(library), str(exc.value)
+    _no_option(str(exc.value))
+    assert not (tmp_path / "lib").exists()
+    assert main(["simulate", "-o", str(tmp_path / "cli"), *argv]) == 2
+    assert _one_error(capsys).startswith(f"qmap: error: {cli}")
+
+
+def test_simulate_output_folder_messages(tmp_path, capsys):
+    out = tmp_path / "full"
+    out.mkdir()
+    (out / "x.txt").write_text("kept")
+    with pytest.raises(OutputExistsError) as exc:
+        simulate(out, protocols=["ir"], shape=(24, 24, 1))
+    assert str(exc.value) == (f"out_dir={out}: the folder is not empty; pass overwrite=True to replace it, "
+                              f"or choose another folder")
+    assert main(["simulate", "-o", str(out), "--protocol", "ir", "--shape", "24,24,1"]) == 2
+    assert _one_error(capsys) == (f"qmap: error: -o {out}: the folder is not empty; pass --overwrite to replace it, "
+                                  f"or choose another folder")
+
+
+def test_every_translated_argument_is_an_option_of_some_command():
+    # the table behind as_options names real options (a renamed option would otherwise leave a stale entry)
+    from qmap.cli import get_parser
+
+    parser = get_parser()
+    sub = next(a for a in parser._actions if a.dest == "command")
+    options = {s for p in sub.choices.values() for a in p._actions for s in a.option_strings}
+    assert set(ARGUMENT_OPTIONS.values()) <= options, set(ARGUMENT_OPTIONS.values()) - options
+    assert as_options("coils=(1, 2) and overwrite=True") == "--coils 1,2 and --overwrite"
