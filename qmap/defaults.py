@@ -1,12 +1,14 @@
 """Option choices and defaults that the command line shows in ``--help``.
 
-This module imports nothing (no numpy): the command-line parser reads its
-choices and defaults from here, so that ``qmap COMMAND --help`` starts in a
-fraction of a second; the library modules that use these values import them
-from here too (one definition each).
+This module imports no numpy (only the model registry, which is plain data): the command-line parser
+reads its choices and defaults from here, so that ``qmap COMMAND --help`` starts in a fraction of a
+second; the library modules that use these values import them from here too (one definition each).
+The model choices (``B1_METHODS``, ``VFA_METHODS``) are the registry's (:data:`qmap.models.COMMAND_MODELS`).
 """
 
 from __future__ import annotations
+
+from .models import COMMAND_MODELS
 
 __all__ = [
     "B1_METHODS",
@@ -29,12 +31,12 @@ NOISE_MODES = ("none", "offset", "truncate", "rician")
 DEFAULT_NOISE_MODE = "rician"
 #: inversion-recovery signal types
 IR_SIGNALS = ("magnitude", "real", "complex")
-#: B1 mapping methods (actual flip angle imaging, double angle method)
-B1_METHODS = ("afi", "dam")
+#: B1 mapping methods (actual flip angle imaging, double angle method): the models of qmap b1
+B1_METHODS: tuple[str, ...] = COMMAND_MODELS["b1"].values
 #: how a B1 map stores actual / nominal angle
 B1_SCALES = ("fraction", "percent")
-#: t1-vfa fitting methods
-VFA_METHODS = ("nonlinear", "linear")
+#: t1-vfa fitting methods: the estimators of the VFA model in the registry
+VFA_METHODS: tuple[str, ...] = COMMAND_MODELS["t1-vfa"].values
 #: T1 assumed for the VFA protocol note unless --t1-typical is given, seconds (brain white matter at 3 T is
 #: about 0.8-1.1 s: Stanisz et al., Magn Reson Med 2005;54:507, (memory))
 T1_TYPICAL = 1.0

@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-from ..defaults import B1_METHODS
-from .common import add_common, angles, common_from_args, finish, times
+from .common import add_model_option, angles, common_from_args, end_fitting_parser, finish, times
 
 
 def add_parser(sub) -> None:
@@ -19,7 +18,7 @@ def add_parser(sub) -> None:
     )
     p.add_argument("series", nargs="+", metavar="SERIES",
                    help="two 3D NIfTIs or one 4D NIfTI with two volumes: afi in the order TR1, TR2; dam at a, 2a")
-    p.add_argument("--method", choices=B1_METHODS, required=True, help="afi or dam")
+    add_model_option(p, "b1")  # --method afi|dam, from the model registry
     p.add_argument("--fa", metavar="DEG[,DEG]",
                    help="nominal flip angle in degrees: afi one angle; dam a or a,2a (default: sidecar FlipAngle)")
     p.add_argument("--tr", metavar="TR1,TR2",
@@ -29,8 +28,7 @@ def add_parser(sub) -> None:
                    help="image noise sd for the standard errors (first-order propagation through the closed form): "
                         "auto (default) estimates it from the images, local a smooth noise map; when it cannot be "
                         "estimated the standard errors are NaN, with a warning; or a value, or a NIfTI noise map")
-    add_common(p, time_maps=False, engine=False)  # TB1 is a fraction, computed in closed form
-    p.set_defaults(run=run)
+    end_fitting_parser(p, run, noise="own", time_maps=False, engine=False)  # TB1: a fraction, in closed form
 
 
 def run(args) -> int:

@@ -7,6 +7,7 @@ import sys
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..errors import warn
+from .common import add_execution
 
 
 def add_parser(sub) -> None:
@@ -28,12 +29,9 @@ def add_parser(sub) -> None:
     p.add_argument("--dry-run", action="store_true",
                    help="print the plan (one line per series: subject, session, fit, action) and stop; "
                         "creates nothing")
-    p.add_argument("--scheduler", metavar="ADDRESS",
-                   help="run the series on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
-                        "its workers must see BIDS_DIR and DERIV_DIR at the same paths; -j is then ignored")
-    p.add_argument("-j", "--jobs", type=int, default=None, metavar="N",
-                   help="local worker processes, each fitting one series at a time (default: all cores)")
-    p.add_argument("--overwrite", action="store_true", help="refit every series, even those up to date")
+    add_execution(p, workers="local worker processes, each fitting one series at a time", scheduler="the series",
+                  cluster_note="its workers must see BIDS_DIR and DERIV_DIR at the same paths",
+                  overwrite="refit every series, even those up to date")
     p.add_argument("--t2-spectrum", action="store_true",
                    help="also fit every MESE series by t2-spectrum (multi-component T2, short-T2 fraction); outputs "
                         "with the prefix ..._acq-mesespectrum")

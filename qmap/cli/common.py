@@ -13,7 +13,70 @@ from ..errors import UsageError, warn
 if TYPE_CHECKING:
     from ..pipeline import CommonOptions
 
-__all__ = ["add_b1", "add_common", "add_noise", "add_sigma", "add_stderr", "angles", "common_from_args", "finish", "times"]
+__all__ = ["add_b1", "add_common", "add_execution", "add_model_option", "add_noise", "add_series", "add_sigma",
+           "add_stderr", "angles", "check_model_settings", "common_from_args", "end_fitting_parser", "finish",
+           "one_time", "times"]
+
+
+def add_series(p: argparse.ArgumentParser, per: str) -> None:
+    """The positional SERIES of a fitting command: one 4D NIfTI or several 3D NIfTIs, ``per`` saying of what."""
+    p.add_argument("series", nargs="+", metavar="SERIES", help=f"one 4D NIfTI or several 3D NIfTIs{per}")
+
+
+def add_model_option(p, command: str) -> None:
+    """The option that chooses the model of ``command`` (``t2 --epg``, ``t1-vfa --method``, ``b1 --method``).
+
+    Its choices, default and help come from the model registry (:data:`qmap.models.COMMAND_MODELS`);
+    a command with one model gets no option. ``p``: the parser or an argument group.
+    """
+    from ..models import COMMAND_MODELS
+
+    m = COMMAND_MODELS[command]
+    if m.option is None:
+        return
+    if m.flag:
+        p.add_argument(m.option, action="store_true", help=m.help())
+    else:
+        p.add_argument(m.option, choices=m.values, help=m.help(),
+                       **({"required": True} if m.required else {"default": m.default}))
+
+
+def check_model_settings(args, command: str, given: dict) -> None:
+    """Refuse options that set a model ``command`` did not choose (``--refocus`` without ``--epg``).
+
+    ``given``: option -> its value (None when not given); the registry says which choice takes which.
+    """
+    from ..models import COMMAND_MODELS
+
+    m = COMMAND_MODELS[command]
+    owner, got = m.foreign_settings(getattr(args, m.dest) if m.dest else None, given)
+    if owner is not None:
+        verb, it = ("apply", "them") if len(got) > 1 else ("applies", "it")
+        how = f"add {m.option}" if m.flag else f"choose {m.option} {owner.value}"
+        raise UsageError(f"{' and '.join(got)} {verb} only to {owner.label}; {how} or leave {it} out")
+
+
+def end_fitting_parser(p: argparse.ArgumentParser, run, *, noise: str = "sigma", **common) -> None:
+    """The options every fitting command ends with -- its noise options (``noise="sigma"``: ``--sigma`` and
+    ``--stderr``; ``"floor"``: with the noise-floor handling; ``"own"``: the command adds its own), then
+    :func:`add_common` (``common``: its keywords) -- and ``run`` as what the command does."""
+    if noise != "own":
+        (add_sigma if noise == "sigma" else add_noise)(p)
+    add_common(p, **common)
+    p.set_defaults(run=run)
+
+
+def add_execution(g, *, workers: str, scheduler: str, overwrite: str, cluster_note: str = "") -> None:
+    """``-j``, ``--scheduler`` and ``--overwrite`` (every fitting command, and ``batch`` in its own words).
+
+    ``workers``: what ``-j`` counts; ``scheduler``: what runs on the cluster; ``cluster_note``: what the
+    cluster needs besides; ``overwrite``: the help of ``--overwrite``.
+    """
+    g.add_argument("-j", "--jobs", type=int, default=None, metavar="N", help=f"{workers} (default: all cores)")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help=f"run {scheduler} on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
+                        f"{cluster_note + '; ' if cluster_note else ''}-j is then ignored")
+    g.add_argument("--overwrite", action="store_true", help=overwrite)
 
 
 def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bool = True) -> None:
@@ -26,11 +89,7 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
     g.add_argument("--mask", default="auto", metavar="auto|none|FILE",
                    help="voxels to fit: auto (default) thresholds the signal at half the Otsu level of each "
                         "voxel's maximum; none fits every voxel; or a NIfTI mask (> 0 = fit)")
-    g.add_argument("-j", "--jobs", type=int, default=None, metavar="N", help="local worker threads (default: all cores)")
-    g.add_argument("--scheduler", metavar="ADDRESS",
-                   help="run the voxel chunks on an existing Dask distributed cluster (e.g. tcp://10.0.0.5:8786); "
-                        "-j is then ignored")
-    g.add_argument("--overwrite", action="store_true", help="replace existing outputs")
+    add_execution(g, workers="local worker threads", scheduler="the voxel chunks", overwrite="replace existing outputs")
     if time_maps:
         g.add_argument("--units", choices=("s", "ms"), default="s",
                        help="units of the written time maps (default s, the BIDS convention); rate maps stay in 1/s")
@@ -164,6 +223,13 @@ def times(text, key, option):
     from ..units import parse_time_list
 
     return None if text is None else parse_time_list(text, key=key, what=option)
+
+
+def one_time(text, key, option):
+    """One time (``--tr 15ms``) in seconds, None when the option was not given."""
+    from ..units import parse_time
+
+    return None if text is None else parse_time(text, key=key, what=option)
 
 
 def angles(text, option="--fa"):

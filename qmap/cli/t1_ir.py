@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from ..defaults import IR_SIGNALS as SIGNALS
-from .common import add_common, add_sigma, common_from_args, finish, times
+from .common import add_series, common_from_args, end_fitting_parser, finish, one_time, times
 
 
 def add_parser(sub) -> None:
@@ -17,8 +17,7 @@ def add_parser(sub) -> None:
         "map and provenance. Magnitude images have lost the sign of the samples before the null: it is restored "
         "per voxel by fitting both sign patterns around the smallest sample and keeping the better fit.",
     )
-    p.add_argument("series", nargs="+", metavar="SERIES",
-                   help="one 4D NIfTI or several 3D NIfTIs, one per inversion time (at least 4)")
+    add_series(p, ", one per inversion time (at least 4)")
     p.add_argument("--ti", metavar="LIST",
                    help="inversion times, e.g. 50ms,150ms,400ms,1.2s (bare numbers are seconds; "
                         "default: sidecar InversionTime)")
@@ -37,19 +36,15 @@ def add_parser(sub) -> None:
                    help="Look-Locker (continuous readout) series: the fitted recovery time is the apparent T1*; "
                         "report T1 = T1* (B/A - 1) for S = A - B exp(-TI/T1*) (Deichmann & Haase 1992) and "
                         "ApparentT1 instead of InversionEfficiency")
-    add_sigma(p)
-    add_common(p)
-    p.set_defaults(run=run)
+    end_fitting_parser(p, run)
 
 
 def run(args) -> int:
-    from ..units import parse_time
     from ..workflows.ir import run_t1_ir
 
-    common = common_from_args(args)
-    tr = None if args.tr is None else parse_time(args.tr, key="RepetitionTime", what="--tr")
     report = run_t1_ir(
-        args.series, common=common, ti=times(args.ti, "InversionTime", "--ti"), tr=tr, signal=args.signal,
-        look_locker=args.look_locker, phase=args.phase, sigma=args.sigma,
+        args.series, common=common_from_args(args), ti=times(args.ti, "InversionTime", "--ti"),
+        tr=one_time(args.tr, "RepetitionTime", "--tr"), signal=args.signal, look_locker=args.look_locker,
+        phase=args.phase, sigma=args.sigma,
     )
     return finish(report, args)

@@ -6,7 +6,15 @@ import math
 
 from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..errors import InputError, UsageError
-from .common import add_common, add_noise, common_from_args, finish, times
+from .common import (
+    add_model_option,
+    add_series,
+    check_model_settings,
+    common_from_args,
+    end_fitting_parser,
+    finish,
+    times,
+)
 
 #: a bare --t1 above this many seconds is taken to be milliseconds by mistake
 _T1_PLAUSIBLE_MAX_S = 10.0
@@ -22,7 +30,7 @@ def add_parser(sub) -> None:
         "phase graphs and fits M0, T2 and the refocusing angle per voxel. Writes T2, R2 and M0 maps (and "
         "RefocusScale with --epg) with standard errors, R-squared / RMS-residual maps, a status map and provenance.",
     )
-    p.add_argument("series", nargs="+", metavar="SERIES", help="one 4D NIfTI or several 3D NIfTIs (one per echo)")
+    add_series(p, " (one per echo)")
     p.add_argument("--te", metavar="LIST", help="echo times, e.g. 10ms,20ms,30ms (default: sidecar EchoTime)")
     p.add_argument("--drop-first", action="store_true",
                    help="do not fit the first echo. With imperfect refocusing the first echo of a CPMG train has no "
@@ -30,10 +38,7 @@ def add_parser(sub) -> None:
                         "trend of the rest and biases a mono-exponential fit; dropping it is common practice for "
                         "mono-exponential T2. Not with --epg, which models the first echo and needs it")
     g = p.add_argument_group("stimulated-echo correction (extended phase graphs)")
-    g.add_argument("--epg", action="store_true",
-                   help="fit the echo train by extended phase graphs: M0, T2 and a per-voxel refocusing scale "
-                        "(written as the RefocusScale map, actual / nominal angle). The echoes must be equally "
-                        "spaced at TE_k = k x ESP")
+    add_model_option(g, "t2")  # --epg, from the model registry
     g.add_argument("--refocus", metavar="DEG",
                    help=f"nominal refocusing flip angle in degrees (default {DEFAULT_REFOCUS:g}); the fitted angle is "
                         "this times RefocusScale, at most 180")
@@ -41,9 +46,7 @@ def add_parser(sub) -> None:
                    help=f"fixed T1 of the EPG model (default {DEFAULT_T1:g}s; e.g. 1.2s or 1200ms). It only affects the "
                         "stimulated-echo pathways: none at 180 deg refocusing, and a T1 off by a factor of two changes "
                         "the fitted T2 by less than 1%% for refocusing scales 0.8-1 (32 echoes, 10 ms spacing)")
-    add_noise(p)
-    add_common(p)
-    p.set_defaults(run=run)
+    end_fitting_parser(p, run, noise="floor")
 
 
 def _refocus(text) -> float:
@@ -76,11 +79,7 @@ def _t1(text) -> float:
 
 
 def run(args) -> int:
-    if not args.epg:
-        given = [opt for opt, v in (("--refocus", args.refocus), ("--t1", args.t1)) if v is not None]
-        if given:
-            verb, it = ("apply", "them") if len(given) > 1 else ("applies", "it")
-            raise UsageError(f"{' and '.join(given)} {verb} only to the EPG model; add --epg or leave {it} out")
+    check_model_settings(args, "t2", {"--refocus": args.refocus, "--t1": args.t1})
     from ..workflows.t2 import run_t2
 
     common = common_from_args(args)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import add_common, add_noise, common_from_args, finish, times
+from .common import add_series, common_from_args, end_fitting_parser, finish, times
 
 
 def add_parser(sub) -> None:
@@ -13,12 +13,10 @@ def add_parser(sub) -> None:
         "Writes T2star, R2star and M0 maps with standard errors, R-squared / RMS-residual maps, a status map and "
         "provenance.",
     )
-    p.add_argument("series", nargs="+", metavar="SERIES", help="one 4D NIfTI or several 3D NIfTIs (one per echo)")
+    add_series(p, " (one per echo)")
     p.add_argument("--te", metavar="LIST", help="echo times, e.g. 2.5ms,5ms,7.5ms (default: sidecar EchoTime)")
     p.add_argument("--drop-first", action="store_true", help="ignore the first echo")
-    add_noise(p)
-    add_common(p)
-    p.set_defaults(run=run)
+    end_fitting_parser(p, run, noise="floor")
 
 
 def run(args) -> int:

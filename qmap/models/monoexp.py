@@ -44,6 +44,10 @@ class MonoExponential(SeparableModel):
         param = next((p for p in model.get("parameters", ()) if p in ("T2", "T2star")), "T2star")
         return cls(x, param=param)
 
+    def info(self) -> dict:
+        """Model description for provenance (with ``parameters``, what :meth:`from_provenance` reads back)."""
+        return {"name": self.name, "equation": f"S = M0 exp(-TE/{self.param})"}
+
     def __init__(self, te, *, param: str = "T2star"):
         self.x = te
         self.param = param

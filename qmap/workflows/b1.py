@@ -17,6 +17,7 @@ from ..b1 import B1_METHODS, b1_maps
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..io.series import load_series
+from ..models import choose
 from ..pipeline import CommonOptions, RunReport, prepare_run
 from ..record import recorded
 
@@ -181,7 +182,7 @@ def run_b1(
         elif float(trv) < DAM_TR_NOTE_S:
             notes.append(f"the double-angle method assumes full recovery (TR >= ~5 T1): with TR {float(trv):g} s, "
                          f"tissue with T1 above {float(trv) / 5:.2g} s biases B1")
-    model_info = {"name": method, "equation": EQUATIONS[method], "parameters": ["TB1"],
+    model_info = {"name": choose("b1", method).model, "equation": EQUATIONS[method], "parameters": ["TB1"],
                   "nominal_flip_angle_deg": fa_nom}
     if n is not None:
         model_info["tr_ratio"] = n

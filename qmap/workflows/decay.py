@@ -14,7 +14,7 @@ from ..docstrings import shared_parameters
 from ..fitting.noise_floor import DEFAULT_MODE, NoiseFloor
 from ..io.series import load_series
 from ..maps import Execution
-from ..models.monoexp import MonoExponential
+from ..models import build_model
 from ..pipeline import CommonOptions, RunReport, run_fit
 from ..record import recorded
 
@@ -142,11 +142,11 @@ def run_t2star(inputs, *, common: CommonOptions, te=None, **options: Unpack[Deca
     t0 = time.perf_counter()
     settings = DecaySettings.of(options, DecayOptions.__optional_keys__)
     series, notes = load_echoes(inputs, te=te, drop_first=settings.drop_first, common=common)
-    model = MonoExponential(series.acquisition["EchoTime"], param="T2star")
+    model, _ = build_model("t2star", None, series.acquisition["EchoTime"])  # the registry's model of t2star
     return run_fit(
         series, model, common=common, noise=settings.noise(), sigma_spec=settings.sigma,
         options=settings.provenance(),
-        model_info={"name": "monoexp", "equation": "S = M0 exp(-TE/T2star)"}, notes=notes, t0=t0,
+        model_info=model.info(), notes=notes, t0=t0,
         method="megre",
         coils_auto=settings.coils is None,
     )

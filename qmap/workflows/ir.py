@@ -33,7 +33,8 @@ from ..errors import InputError, UsageError, warn
 from ..io.nifti import check_same_grid, image_data, load_image
 from ..io.series import Series, load_series
 from ..maps import Execution, MapSet, execution_kwargs, fit_volume
-from ..models.ir import SIGNALS, InversionRecovery
+from ..models import build_model
+from ..models.ir import SIGNALS
 from ..pipeline import CommonOptions, RunReport, run_fit
 from ..record import recorded
 
@@ -195,8 +196,8 @@ def run_t1_ir(
             f"InversionTime up to {ti_used.max():g} s is not shorter than RepetitionTime {tr_used:g} s; "
             f"check --ti / --tr and their units (e.g. --tr 6s or --tr 6000ms)"
         )
-    model = InversionRecovery(ti_used, signal=signal, look_locker=look_locker)
-    model_info = {"name": "ir", "equation": EQUATION, "signal": signal, "look_locker": bool(look_locker),
+    model, _ = build_model("t1-ir", None, ti_used, signal=signal, look_locker=look_locker)
+    model_info = {"name": model.name, "equation": EQUATION, "signal": signal, "look_locker": bool(look_locker),
                   # qmap's own parametrisation (the solver's amplitudes a, b are an implementation detail)
                   "parameters": ["M0", "ApparentT1" if look_locker else "InversionEfficiency", "T1"]}
     if signal == "magnitude":
@@ -293,5 +294,5 @@ def fit_t1_ir(
         raise ValueError("negative values in magnitude data; use signal='real' for phase-corrected real data")
     order = np.argsort(ti, kind="stable")
     data, ti = data[..., order], ti[order]
-    model = InversionRecovery(ti, signal=signal, look_locker=look_locker)
+    model, _ = build_model("t1-ir", None, ti, signal=signal, look_locker=look_locker)
     return fit_volume(model, data, mask=mask, **execution_kwargs(execution))

@@ -23,9 +23,9 @@ from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..docstrings import shared_parameters
 from ..errors import UsageError
 from ..maps import MapSet
+from ..models import build_model, choose
 from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
-from ..models.monoexp import MonoExponential
 from ..pipeline import CommonOptions, RunReport, run_fit
 from ..record import recorded
 from .decay import DecaySettings, T2FitOptions, T2Options, load_echoes
@@ -43,9 +43,10 @@ def t2_model(
 ) -> tuple[SeparableModel, dict]:
     """The T2 model for a train with echo times ``te`` (s), and its provenance description.
 
-    With ``epg`` the model describes the whole train (equally spaced, TE_k =
-    k * ESP, every echo fitted); otherwise the mono-exponential model gets the
-    echo times that are fitted (without the first with ``drop_first``).
+    The model registry (:data:`qmap.models.COMMAND_MODELS`, command ``t2``) says which model ``epg``
+    selects: with ``epg`` the model describes the whole train (equally spaced, TE_k = k * ESP, every
+    echo fitted); otherwise the mono-exponential model gets the echo times that are fitted (without the
+    first with ``drop_first``).
 
     Raises
     ------
@@ -53,16 +54,14 @@ def t2_model(
         ``epg`` together with ``drop_first``.
     """
     te = np.asarray(te, float).ravel()
-    if epg:
-        if drop_first:
-            raise UsageError(
-                "--drop-first is for the mono-exponential fit: the EPG model (--epg) describes the first echo and "
-                "needs it to tell T2 from the refocusing angle; leave out one of the two options"
-            )
-        epg_model = EpgT2(te, refocus_deg=refocus_deg, t1=t1)
-        return epg_model, epg_model.info()
-    return MonoExponential(te[1:] if drop_first else te, param="T2"), {"name": "monoexp",
-                                                                        "equation": "S = M0 exp(-TE/T2)"}
+    whole_train = choose("t2", bool(epg)).model == "epg_t2"
+    if whole_train and drop_first:
+        raise UsageError(
+            "--drop-first is for the mono-exponential fit: the EPG model (--epg) describes the first echo and "
+            "needs it to tell T2 from the refocusing angle; leave out one of the two options"
+        )
+    model, _ = build_model("t2", bool(epg), te[1:] if drop_first else te, refocus_deg=refocus_deg, t1=t1)
+    return model, model.info()
 
 
 @shared_parameters("mask")

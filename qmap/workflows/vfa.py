@@ -26,14 +26,14 @@ import numpy as np
 
 from ..b1 import b1_stderr_beside, load_b1_map, load_b1_stderr
 from ..defaults import T1_TYPICAL
-from ..defaults import VFA_METHODS as METHODS
 from ..docstrings import shared_parameters
 from ..errors import InputError, UsageError
 from ..fitting import status as st
 from ..fitting.noise_floor import NoiseFloor
 from ..io.series import load_series
 from ..maps import Execution, MapSet, execution_kwargs, fit_volume
-from ..models.vfa import LINEAR_PASSES, SpoiledGRE, ernst_angle, optimal_angle_pair, t1_crlb
+from ..models import COMMAND_MODELS, build_model
+from ..models.vfa import LINEAR_PASSES, ernst_angle, optimal_angle_pair, t1_crlb
 from ..pipeline import CommonOptions, RunReport, prepare_run
 from ..record import recorded
 
@@ -46,6 +46,8 @@ __all__ = [
     "run_t1_vfa",
 ]
 
+#: the estimators of t1-vfa (``method=``), from the model registry
+METHODS = COMMAND_MODELS["t1-vfa"].values
 #: the CRLB of T1 may be this many times that of the optimal two-angle protocol before the note is printed
 PROTOCOL_RATIO = 1.5
 NO_B1_NOTE = ("no B1 correction applied: nominal flip angles assumed (T1 errs roughly in proportion to B1^2 "
@@ -158,10 +160,10 @@ def fit_t1_vfa(
         raise ValueError(f"VFA needs at least two different flip angles, got {fa.tolist()}")
     if data.shape[-1] != fa.size:
         raise ValueError(f"data has {data.shape[-1]} samples per voxel for {fa.size} flip angles")
-    model = SpoiledGRE(fa, tr)
+    model, choice = build_model("t1-vfa", method, fa, tr=tr)  # the registry: the model and its estimator
     kw = execution_kwargs(execution)
-    if method == "linear":
-        kw["method"] = "linear"
+    if choice.method is not None:
+        kw["method"] = choice.method
     if b1_se is not None and b1 is None:
         raise ValueError("b1_se= needs b1=")
     ctx = None
@@ -257,7 +259,7 @@ def run_t1_vfa(
     options = {"method": method, "t1_typical_s": float(t1_typical), "b1_correction": b1 is not None,
                "sigma": None if sigma is None else str(sigma)}
     options.update(b1_info)
-    model = SpoiledGRE(fa_used, tr_used)
+    model, choice = build_model("t1-vfa", method, fa_used, tr=tr_used)
     model_info = {"name": model.name, "equation": EQUATION, "method": method,
                   "estimator": NONLINEAR_DESC if method == "nonlinear" else LINEAR_DESC,
                   "b1_correction": b1_desc, "protocol": proto}
@@ -270,7 +272,7 @@ def run_t1_vfa(
             run.notes.append(f"the B1 map's standard error ({Path(se_info['path']).name}) is propagated into the "
                              f"T1 standard error")
     maps = run.fit(model, noise=NoiseFloor("none"), ctx_maps=None if b1_map is None else {"b1": b1_map},
-                   method="linear" if method == "linear" else None,
+                   method=choice.method,
                    input_se=None if b1_se_map is None else {"b1": b1_se_map})
     maps.info["method"] = method
     report = run.write(maps, options=options, model_info=dict(model_info, parameters=list(model.param_names)))
