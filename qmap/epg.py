@@ -90,14 +90,14 @@ respect to T2 and c are propagated in forward mode alongside the states.
 from __future__ import annotations
 
 import math
-from typing import NamedTuple
+from typing import NamedTuple, NotRequired, TypedDict, Unpack
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from qmap.errors import InputError, UsageError
 
-__all__ = ["cpmg_cos", "cpmg_echoes", "cpmg_echoes_grad", "n_state_rows"]
+__all__ = ["Train", "cpmg_cos", "cpmg_echoes", "cpmg_echoes_grad", "n_state_rows"]
 
 #: Voxels per internal block (state arrays of a block stay in the CPU cache).
 _BLOCK = 2048
@@ -135,6 +135,17 @@ def _sind(deg: NDArray[np.float64]) -> NDArray[np.float64]:
     return np.sin(np.deg2rad(r))
 
 
+class Train(TypedDict):
+    """Keyword parameters of a CPMG train (:func:`cpmg_echoes`, :func:`cpmg_echoes_grad`); see there."""
+
+    esp: float
+    n_echoes: int
+    t1: NotRequired[ArrayLike]
+    refocus_deg: NotRequired[float]
+    excite_deg: NotRequired[float]
+    scale_excitation: NotRequired[bool]
+
+
 class _Inputs(NamedTuple):
     t2: NDArray[np.float64]
     b1: NDArray[np.float64]
@@ -143,6 +154,7 @@ class _Inputs(NamedTuple):
     n_echoes: int
     refocus_deg: float
     excite_deg: float
+    scale_excitation: bool
 
 
 def _as_vector(name: str, value: ArrayLike) -> NDArray[np.float64]:
@@ -158,12 +170,15 @@ def _as_vector(name: str, value: ArrayLike) -> NDArray[np.float64]:
 def _prepare(
     t2: ArrayLike,
     b1: ArrayLike,
-    t1: ArrayLike,
+    *,
     esp: float,
     n_echoes: int,
-    refocus_deg: float,
-    excite_deg: float,
+    t1: ArrayLike = 1.0,
+    refocus_deg: float = 180.0,
+    excite_deg: float = 90.0,
+    scale_excitation: bool = True,
 ) -> _Inputs:
+    """Checked inputs of :func:`cpmg_echoes` / :func:`cpmg_echoes_grad` (the defaults of :class:`Train` live here)."""
     t2a = _as_vector("t2", t2)
     b1a = _as_vector("b1", b1)
     t1a = _as_vector("t1", t1)
@@ -193,7 +208,7 @@ def _prepare(
     for name, val in (("refocus_deg", refocus_deg), ("excite_deg", excite_deg)):
         if not math.isfinite(float(val)):
             raise InputError(f"EPG: {name} must be a finite angle in degrees, got {val!r}")
-    return _Inputs(t2a, b1a, t1a, esp_f, int(n_echoes), float(refocus_deg), float(excite_deg))
+    return _Inputs(t2a, b1a, t1a, esp_f, int(n_echoes), float(refocus_deg), float(excite_deg), bool(scale_excitation))
 
 
 def cpmg_cos(t2: ArrayLike, c: ArrayLike, *, esp: float, n_echoes: int, t1: ArrayLike = 1.0, grad: bool = False):
@@ -352,9 +367,8 @@ def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC):
     S[...] = echo.T
 
 
-def _by_angle(
-    inp: _Inputs, *, grad: bool, scale_excitation: bool
-) -> tuple[NDArray[np.float64], NDArray[np.float64] | None, NDArray[np.float64] | None]:
+def _by_angle(inp: _Inputs, *, grad: bool) -> tuple[NDArray[np.float64], NDArray[np.float64] | None,
+                                                    NDArray[np.float64] | None]:
     """Echo magnitudes (and d/dT2, d/db1) for refocusing ``b1 * refocus_deg`` through :func:`cpmg_cos`.
 
     The train depends on the refocusing angle only through its cosine, and
@@ -362,7 +376,7 @@ def _by_angle(
     """
     alpha = inp.refocus_deg * inp.b1  # degrees
     c = _sind(90.0 - alpha)  # cos(alpha), exactly -1 at 180 degrees
-    beta = inp.excite_deg * inp.b1 if scale_excitation else np.full_like(inp.b1, inp.excite_deg)
+    beta = inp.excite_deg * inp.b1 if inp.scale_excitation else np.full_like(inp.b1, inp.excite_deg)
     sb = _sind(beta)
     t1 = inp.t1[0] if inp.t1.size and np.all(inp.t1 == inp.t1[0]) else inp.t1
     out = cpmg_cos(inp.t2, c, esp=inp.esp, n_echoes=inp.n_echoes, t1=t1, grad=grad)
@@ -372,23 +386,13 @@ def _by_angle(
     S, dT, dC = out
     # chain rule: dc/db1 = -sin(alpha) * refocus (rad); d|sin(beta)|/db1 = sign * cos(beta) * excite (rad)
     dB = dC * (amp * (-_sind(alpha) * math.radians(inp.refocus_deg))[:, None])
-    if scale_excitation:
+    if inp.scale_excitation:
         sign = np.where(sb < 0.0, -1.0, 1.0)
         dB += S * (sign * _sind(90.0 - beta) * math.radians(inp.excite_deg))[:, None]
     return amp * S, amp * dT, dB
 
 
-def cpmg_echoes(
-    t2: ArrayLike,
-    b1: ArrayLike,
-    *,
-    esp: float,
-    n_echoes: int,
-    t1: ArrayLike = 1.0,
-    refocus_deg: float = 180.0,
-    excite_deg: float = 90.0,
-    scale_excitation: bool = True,
-) -> NDArray[np.float64]:
+def cpmg_echoes(t2: ArrayLike, b1: ArrayLike, **train: Unpack[Train]) -> NDArray[np.float64]:
     """CPMG echo amplitudes by extended phase graphs.
 
     Parameters
@@ -429,21 +433,12 @@ def cpmg_echoes(
     UsageError
         ``n_echoes`` not a positive integer.
     """
-    inp = _prepare(t2, b1, t1, esp, n_echoes, refocus_deg, excite_deg)
-    S, _, _ = _by_angle(inp, grad=False, scale_excitation=scale_excitation)
+    S, _, _ = _by_angle(_prepare(t2, b1, **train), grad=False)
     return S
 
 
 def cpmg_echoes_grad(
-    t2: ArrayLike,
-    b1: ArrayLike,
-    *,
-    esp: float,
-    n_echoes: int,
-    t1: ArrayLike = 1.0,
-    refocus_deg: float = 180.0,
-    excite_deg: float = 90.0,
-    scale_excitation: bool = True,
+    t2: ArrayLike, b1: ArrayLike, **train: Unpack[Train]
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
     """CPMG echo amplitudes and their analytic derivatives.
 
@@ -463,7 +458,6 @@ def cpmg_echoes_grad(
         magnitude has a kink; the derivative of the real amplitude is
         returned there.
     """
-    inp = _prepare(t2, b1, t1, esp, n_echoes, refocus_deg, excite_deg)
-    S, dt2, db1 = _by_angle(inp, grad=True, scale_excitation=scale_excitation)
+    S, dt2, db1 = _by_angle(_prepare(t2, b1, **train), grad=True)
     assert dt2 is not None and db1 is not None
     return S, dt2, db1
