@@ -211,7 +211,8 @@ def _prepare(
     return _Inputs(t2a, b1a, t1a, esp_f, int(n_echoes), float(refocus_deg), float(excite_deg), bool(scale_excitation))
 
 
-def cpmg_cos(t2: ArrayLike, c: ArrayLike, *, esp: float, n_echoes: int, t1: ArrayLike = 1.0, grad: bool = False):
+def cpmg_cos(t2: ArrayLike, c: ArrayLike, *, esp: float, n_echoes: int, t1: ArrayLike = 1.0, grad: bool = False,
+             signed: bool = False):
     """CPMG echo magnitudes (ideal 90 degree excitation) as a function of c = cos(refocusing angle).
 
     Parameters
@@ -229,11 +230,15 @@ def cpmg_cos(t2: ArrayLike, c: ArrayLike, *, esp: float, n_echoes: int, t1: Arra
         T1, s (``inf`` allowed): one value or one per voxel.
     grad : bool
         Also return the derivatives with respect to T2 (1/s) and c.
+    signed : bool
+        Return the real CPMG amplitudes (and their derivatives) instead of
+        the magnitudes: smooth (polynomial in c) where the magnitude has a
+        kink at a sign change.
 
     Returns
     -------
     S : (n, n_echoes) ndarray
-        Echo magnitudes for M0 = 1.
+        Echo magnitudes (amplitudes with ``signed``) for M0 = 1.
     dS_dT2, dS_dc : (n, n_echoes) ndarray
         Only with ``grad``.
 
@@ -258,7 +263,7 @@ def cpmg_cos(t2: ArrayLike, c: ArrayLike, *, esp: float, n_echoes: int, t1: Arra
         sl = slice(i0, min(i0 + block, n))
         e1 = float(e1_all) if e1_all.ndim == 0 else np.ascontiguousarray(np.broadcast_to(e1_all, (n,))[sl])
         _train_block(work, t2[sl], c[sl], 0.5 * esp, E, e1, grad, S[sl], None if dT is None else dT[sl],
-                     None if dC is None else dC[sl])
+                     None if dC is None else dC[sl], signed)
     return (S, dT, dC) if grad else S
 
 
@@ -301,7 +306,7 @@ def _shift(P, N, Y, a, e2, e1, nP, nN, nY):
     np.multiply(e1, nY[:a], out=Y[:a])
 
 
-def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC):
+def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC, signed=False):
     states, new, scratch, echoes = work.view(t2.size)
     states.fill(0.0)
     P, N, Y = states[0], states[1], states[2]
@@ -358,12 +363,14 @@ def _train_block(work, t2, c, half_esp, E, e1, grad, S, dT, dC):
             _shift(Pc, Nc, Yc, a, e2, e1, nPc, nNc, nYc)
     # magnitudes: the real CPMG amplitude can change sign from echo to echo
     if grad:
-        neg = echo < 0.0
-        np.negative(echo_t, out=echo_t, where=neg)
-        np.negative(echo_c, out=echo_c, where=neg)
+        if not signed:
+            neg = echo < 0.0
+            np.negative(echo_t, out=echo_t, where=neg)
+            np.negative(echo_c, out=echo_c, where=neg)
         dT[...] = echo_t.T
         dC[...] = echo_c.T
-    np.abs(echo, out=echo)
+    if not signed:
+        np.abs(echo, out=echo)
     S[...] = echo.T
 
 

@@ -24,8 +24,12 @@ For a chunk of voxels ``y`` (n, m) and a :class:`~qmap.models.base.SeparableMode
 A model may offer a cheap stand-in with the same parameters (``model.surrogate()``,
 the interpolated EPG table of :class:`qmap.models.epg_t2.EpgT2Table`): steps 1-3
 then run on the stand-in and every fit is finished by Levenberg-Marquardt on the
-exact model from there, so the minimum, RSS, Jacobian and covariance are the
-exact model's (the stand-in only saves exact evaluations). When the Rician
+exact model from there, so the minimum and RSS are the exact model's (the
+stand-in only saves exact evaluations). The model may name the model of that
+finish (``model.finisher()``; default the exact model itself): the EPG model
+finishes on the exact trains with the stand-in's derivatives
+(:class:`qmap.models.epg_t2.EpgT2Finish`), whose error moves the minimum by far
+less than the finish's tolerance. When the Rician
 objective follows, the stand-in's plain fit stops at ``GUIDE_SE_TOL`` (it only
 selects and starts the Rician fit) and both Rician fits (stand-in, then exact)
 at ``FINISH_SE_TOL`` (tested: within 0.02 standard errors of the exact-only fit).
@@ -305,6 +309,9 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     make_guide = getattr(model, "surrogate", None)
     guide = None if make_guide is None else noise.wrap(make_guide())
     run_model = fit_model if guide is None else guide
+    # ... and the model of that finish: the exact one, or one with its values and cheaper derivatives (EPG)
+    make_finish = getattr(model, "finisher", None)
+    finish_model = fit_model if guide is None or make_finish is None else noise.wrap(make_finish())
 
     # with the Rician objective to follow, the stand-in's plain least-squares fit only chooses the voxels that
     # need it and starts it: it stops at a looser tolerance (and goes on for the voxels that keep it)
@@ -363,11 +370,11 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     if guide is not None:
         # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
         # for the near-floor voxels): the minimum, RSS and Jacobian are the exact model's
-        p, rss, J, conv, nit = _refine_rows(fit_model, np.setdiff1d(np.arange(n), sel), yfit, wl,
+        p, rss, J, conv, nit = _refine_rows(finish_model, np.setdiff1d(np.arange(n), sel), yfit, wl,
                                             (p, rss, J, conv, nit), ctx, lo, hi, max_iter)
         if sel.size:
-            p, rss, J, conv, nit = noise.rician_refine(fit_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
-                                                       max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
+            p, rss, J, conv, nit = noise.rician_refine(finish_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo,
+                                                       hi, max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
 
     # covariance (see qmap.fitting.uncertainty for the two conventions)
     JTJ = _normal(J, wl)

@@ -33,7 +33,15 @@ def test_table_reproduces_the_kernel_between_nodes():
     th = np.column_stack([np.exp(rng.uniform(np.log(0.01), np.log(0.5), 3000)), rng.uniform(-1.0, -0.6, 3000)])
     exact, tabbed = m._train(th, grad=True), tab._train(th, grad=True)
     err = np.abs(exact[0] - tabbed[0])
-    assert np.median(err) < 1e-6 and np.percentile(err, 99) < 1e-3
+    # the table holds the signed amplitudes (smooth) and takes the magnitude after interpolating: no smeared kinks
+    # where a late echo changes sign (interpolating magnitudes gave 1e-3 at the 99th percentile here)
+    assert np.median(err) < 1e-7 and np.percentile(err, 99) < 1e-6
+    assert np.max(np.abs(exact[1] - tabbed[1]) * th[:, :1]) < 1e-4  # T2 dE/dT2
+    assert np.percentile(np.abs(exact[2] - tabbed[2]), 99) < 1e-4  # dE/dc
+    # just beyond 180 degrees (where noise puts half of the perfectly refocused voxels): nodes 0.0025 apart in c
+    th2 = np.column_stack([np.exp(rng.uniform(np.log(0.02), np.log(0.3), 3000)), rng.uniform(-1.03, -1.0, 3000)])
+    err = np.abs(m._train(th2) - tab._train(th2))
+    assert np.median(err) < 1e-6 and np.percentile(err, 99) < 2e-5
     # element-wise: a sub-batch gives the very same numbers
     part = tab._train(th[:77], grad=True)
     assert all(np.array_equal(p, q[:77]) for p, q in zip(part, tabbed))
@@ -47,8 +55,11 @@ def test_fit_ends_at_an_exact_model_minimum_same_as_before():
     a, b = fit_chunk(exact, y), fit_chunk(fast, y)
     se = np.sqrt(b.cov[:, 1, 1])
     assert np.all(np.isfinite(se)) and np.all(b.status == 0)
-    # where the previous path ran out of iterations (status 4) the new one converges, to no higher RSS
-    assert np.array_equal(a.status == 0, b.status == 0) or np.all(b.rss[a.status != 0] <= a.rss[a.status != 0])
+    # where the previous path ran out of iterations (status 4: a slow crawl along c near 180 degrees, 60 steps)
+    # the new one converges, to no higher RSS (to 1e-7 relative: both stop on that flat valley, some 1e-2
+    # standard errors of c short of scipy's minimum, whose RSS is below both)
+    crawl = a.status != 0
+    assert np.array_equal(a.status == 0, b.status == 0) or np.all(b.rss[crawl] <= a.rss[crawl] * (1 + 1e-7))
     same = np.abs(a.params[:, 1] - b.params[:, 1]) <= 0.01 * se
     # near 180 degrees the objective can have two close minima in c; a different start may pick the other one
     assert same.mean() >= 0.97
