@@ -20,7 +20,9 @@ from the OS):
   curve_fit loop of the same signal model ``M |sin(k a B1)|``, k = 1, 2 (the
   per-voxel numpy loop of the closed form itself is printed too).
 * ``t2 --epg`` -- 1M voxels x 32 echoes against a per-voxel least-squares EPG
-  fit (scipy.optimize.least_squares on qmap.epg) on a subsample.
+  fit (scipy.optimize.least_squares on qmap.epg) on a subsample; and the fit
+  stage alone (32k object voxels, Rician, one thread) as voxels/s, with
+  ``--baseline DIR`` also with the qmap of another checkout, alternating.
 * ``memory`` -- the t2star fit of an uncompressed input read in slabs.
 * ``t1-mp2rage`` -- 1M-voxel 12-bit UNI (with a sidecar) against the I/O floor
   (loading UNI + writing the same number of maps), with and without a B1 map.
@@ -418,7 +420,40 @@ def case_b1(nvox, work: Path, rng):
                  loop="curve_fit loop (M |sin(k a B1)|, k = 1, 2)", rate=rate, n_fit=n_fit, in_mb=in_mb, n_vol=2)
 
 
-def case_t2_epg(nvox, work: Path, rng):
+#: the fit stage of ``t2 --epg`` alone, in a fresh process on one thread: the default noise floor (Rician, the
+#: sigma of the data given) on chunks of 8192 voxels (the command's default), CPU seconds -> voxels/s. Run with the
+#: PYTHONPATH of the tree to measure, so that another checkout (``--baseline``) is timed by the same code.
+FIT_STAGE_EPG = """
+import sys, time
+import numpy as np
+from threadpoolctl import threadpool_limits
+from qmap.fitting.noise_floor import NoiseFloor
+from qmap.fitting.solver import fit_chunk
+from qmap.models.epg_t2 import EpgT2
+y = np.load(sys.argv[1]).astype(np.float64)
+esp, sigma, chunk = float(sys.argv[2]), float(sys.argv[3]), 8192
+model = EpgT2(esp * np.arange(1, y.shape[1] + 1))
+with threadpool_limits(1):
+    fit_chunk(model, y[:64], noise=NoiseFloor("rician"), sigma=np.full(64, sigma))  # builds the table once
+    t = time.process_time()
+    for i in range(0, y.shape[0], chunk):
+        part = y[i:i + chunk]
+        fit_chunk(model, part, noise=NoiseFloor("rician"), sigma=np.full(part.shape[0], sigma))
+    print(y.shape[0] / (time.process_time() - t))
+"""
+
+
+def fit_stage_rate(sample: Path, esp: float, sigma: float, tree: Path | None = None) -> float:
+    """Voxels/s of the ``t2 --epg`` fit stage alone (:data:`FIT_STAGE_EPG`) with qmap from ``tree`` (default: this one)."""
+    env = dict(os.environ, PYTHONPATH=str(tree or HERE.parent))
+    res = subprocess.run([sys.executable, "-c", FIT_STAGE_EPG, str(sample), str(esp), str(sigma)], env=env,
+                         capture_output=True, text=True, check=False)
+    if res.returncode:
+        sys.exit(f"benchmark: the t2 --epg fit stage failed with qmap from {tree or HERE.parent}:\n{res.stderr}")
+    return float(res.stdout.strip().splitlines()[-1])
+
+
+def case_t2_epg(nvox, work: Path, rng, baseline: Path | None = None):
     from scipy.optimize import least_squares
 
     from qmap.epg import cpmg_echoes
@@ -440,6 +475,9 @@ def case_t2_epg(nvox, work: Path, rng):
     write_series(series, data, np.eye(4), {"EchoTime": te})
     n_fit = int(obj.sum())
     sub = object_sample(data, obj, 60, rng)
+    sample = work / "bench_MESE_fit_sample.npy"
+    # (its own seeded generator: the other cases keep their data)
+    np.save(sample, object_sample(data, obj, min(n_fit, 32768), np.random.default_rng(1)).astype(np.float32))
     t = time.perf_counter()
     for v in sub:
         least_squares(lambda p, v=v: p[0] * cpmg_echoes(np.array([p[1]]), np.array([p[2]]), esp=esp,
@@ -452,6 +490,19 @@ def case_t2_epg(nvox, work: Path, rng):
                  "t2 --epg", ["t2", str(series), "-o", str(work / "epg"), "--epg", "-q"],
                  loop="per-voxel least_squares EPG loop", rate=rate, n_fit=n_fit, in_mb=in_mb, n_vol=n_e,
                  target=">= 2000")
+    # the fit stage alone (the default Rician objective, one thread), alternating with the baseline checkout if given
+    trees = [None] if baseline is None else [None, baseline]
+    rates: dict = {t: [] for t in trees}
+    for _ in range(2 if baseline is not None else 1):
+        for tree in trees:
+            rates[tree].append(fit_stage_rate(sample, esp, 8.0, tree))
+    mine = max(rates[None])
+    print(f"  fit stage alone ({np.load(sample, mmap_mode='r').shape[0]} object voxels, Rician, one thread, chunks "
+          f"of 8192): {mine:.0f} voxels/s")
+    if baseline is not None:
+        base = max(rates[baseline])
+        print(f"  the same with qmap from {baseline}: {base:.0f} voxels/s;  this tree / baseline = {mine / base:.2f}x "
+              f"(best of two, alternating)")
 
 
 def case_t2_spectrum(nvox, work: Path, rng):
@@ -588,6 +639,9 @@ def main(argv=None) -> int:
     p.add_argument("--keep", metavar="DIR", help="keep the synthetic data and outputs here")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--spectrum-voxels", type=int, default=20_000, help="voxels of the t2-spectrum case")
+    p.add_argument("--baseline", type=Path, metavar="DIR",
+                   help="t2-epg: also time the fit stage with the qmap package of this checkout (e.g. an older "
+                        "commit's `git worktree`), alternating with this tree")
     args = p.parse_args(argv)
     rng = np.random.default_rng(args.seed)
     cases = set(args.cases.split(","))
@@ -604,7 +658,10 @@ def main(argv=None) -> int:
         for name, case in (("t1-ir", case_t1_ir), ("t1-vfa", case_t1_vfa), ("b1", case_b1), ("t2-epg", case_t2_epg),
                            ("mp2rage", case_mp2rage)):
             if name in cases:
-                case(args.voxels, work, rng)
+                if name == "t2-epg":
+                    case_t2_epg(args.voxels, work, rng, args.baseline)
+                else:
+                    case(args.voxels, work, rng)
         if "t2-spectrum" in cases:
             case_t2_spectrum(args.spectrum_voxels, work, rng)
         if MEMORY:
