@@ -369,7 +369,7 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
                                                    se_tol=1e-3 if guide is None else FINISH_SE_TOL)
     if guide is not None:
         # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
-        # for the near-floor voxels): the minimum, RSS and Jacobian are the exact model's
+        # for the near-floor voxels): the minimum and RSS are the exact model's
         p, rss, J, conv, nit = _refine_rows(finish_model, np.setdiff1d(np.arange(n), sel), yfit, wl,
                                             (p, rss, J, conv, nit), ctx, lo, hi, max_iter)
         if sel.size:
