@@ -100,18 +100,24 @@ STAGES = {
 # 11 sidecars + provenance = 23 files. 9 chunks (of the ~870 object voxels) with --chunk-size 100.
 
 
+def _set_trap(monkeypatch, owner, attr, k, *, opening=None, method=False):
+    """Replace ``owner.attr`` by an :class:`Interrupt` after ``k`` calls and return it.
+
+    ``opening``: ``attr`` is ``open`` and only writes of files ending so count; ``method``: a method of a
+    class (the trap gets ``self`` too).
+    """
+    if opening is not None:
+        trap = _open_interrupting(k, suffix=opening)
+        monkeypatch.setattr(owner, attr, trap, raising=False)
+        return trap
+    trap = Interrupt(getattr(owner, attr), k)
+    monkeypatch.setattr(owner, attr, (lambda self, *a, **kw: trap(self, *a, **kw)) if method else trap)
+    return trap
+
+
 def _arm(monkeypatch, stage):
     mod, attr, k, kind = STAGES[stage]
-    if kind == "json":
-        trap = _open_interrupting(k)
-        monkeypatch.setattr(mod, attr, trap, raising=False)
-    elif kind == "method":  # a method of a class: the trap gets ``self`` too
-        trap = Interrupt(getattr(mod, attr), k)
-        monkeypatch.setattr(mod, attr, lambda self, *a, **kw: trap(self, *a, **kw))
-    else:
-        trap = Interrupt(getattr(mod, attr), k)
-        monkeypatch.setattr(mod, attr, trap)
-    return trap
+    return _set_trap(monkeypatch, mod, attr, k, opening=".json" if kind == "json" else None, method=kind == "method")
 
 
 def _run(inputs, out, *extra):
@@ -253,16 +259,7 @@ def _arm_other(monkeypatch, module, attr, k):
     if "." in attr:
         owner, attr = attr.split(".")
         mod = getattr(mod, owner)
-    if attr == "open":
-        trap = _open_interrupting(k, suffix="")
-        monkeypatch.setattr(mod, "open", trap, raising=False)
-    elif isinstance(mod, type):  # a method: the trap gets ``self`` too
-        trap = Interrupt(getattr(mod, attr), k)
-        monkeypatch.setattr(mod, attr, lambda self, *a, **kw: trap(self, *a, **kw))
-    else:
-        trap = Interrupt(getattr(mod, attr), k)
-        monkeypatch.setattr(mod, attr, trap)
-    return trap
+    return _set_trap(monkeypatch, mod, attr, k, opening="" if attr == "open" else None, method=isinstance(mod, type))
 
 
 @pytest.mark.parametrize("stage", list(OTHER_STAGES))

@@ -108,10 +108,6 @@ __all__ = [
 DEFAULT_EFFICIENCY = 0.96
 #: T1 range (s) of the lookup grid; the invertible range is the monotonic part of UNI(T1) inside it
 T1_LOOKUP_RANGE = (0.02, 10.0)
-#: lookup resolution: T1 points (log-spaced), UNI points (regular over [-0.5, 0.5]), B1 step
-T1_POINTS = 1500
-UNI_POINTS = 2001
-B1_STEP = 0.01
 
 
 @dataclass(frozen=True)
@@ -316,6 +312,12 @@ def monotonic_run(values: NDArray[np.float64]) -> tuple[int, int]:
     if length[k] == 0:
         return (0, 0)
     return int(starts[k]), int(ends[k])
+
+
+#: lookup resolution: T1 points (log-spaced), UNI points (regular over [-0.5, 0.5]), B1 step
+T1_POINTS = 1500
+UNI_POINTS = 2001
+B1_STEP = 0.01
 
 
 class Mp2rageLookup:

@@ -17,25 +17,8 @@ t = (k - 1/2) esp, k = 1..n_echoes (CPMG phase).
 from __future__ import annotations
 
 import numpy as np
-from scipy.spatial.transform import Rotation
 
-
-def _pulse_matrix(angle_deg: float, axis_phase_deg: float) -> np.ndarray:
-    """Rotation by ``angle_deg`` about the transverse axis at ``axis_phase_deg`` from x."""
-    phi = np.deg2rad(axis_phase_deg)
-    axis = np.array([np.cos(phi), np.sin(phi), 0.0])
-    return Rotation.from_rotvec(np.deg2rad(angle_deg) * axis).as_matrix()
-
-
-def _free(m: np.ndarray, dphi: np.ndarray, dt: float, t1: float, t2: float) -> np.ndarray:
-    """Free precession by angle ``dphi`` (per isochromat) plus relaxation over ``dt`` s."""
-    e2 = np.exp(-dt / t2)
-    e1 = np.exp(-dt / t1)
-    cos, sin = np.cos(dphi), np.sin(dphi)
-    mx = e2 * (cos * m[:, 0] - sin * m[:, 1])
-    my = e2 * (sin * m[:, 0] + cos * m[:, 1])
-    mz = e1 * m[:, 2] + (1.0 - e1)
-    return np.stack([mx, my, mz], axis=1)
+from .magnetisation import free, rotation
 
 
 def cpmg_isochromats(
@@ -68,15 +51,15 @@ def cpmg_isochromats(
         |mean(Mx + i My)| at each echo, for M0 = 1.
     """
     dphi = 2.0 * np.pi * np.arange(n_iso) / n_iso
-    excite = _pulse_matrix(excite_deg, 0.0)  # about x
-    refocus = _pulse_matrix(refocus_deg, 90.0)  # about y
+    excite = rotation(excite_deg, 0.0)  # about x
+    refocus = rotation(refocus_deg, 90.0)  # about y
     m = np.tile([0.0, 0.0, 1.0], (n_iso, 1))
     m = m @ excite.T
     out = np.empty(n_echoes)
     half = 0.5 * esp
     for k in range(n_echoes):
-        m = _free(m, dphi, half, t1, t2)
+        m = free(m, half, t1, t2, dphi)
         m = m @ refocus.T
-        m = _free(m, dphi, half, t1, t2)
+        m = free(m, half, t1, t2, dphi)
         out[k] = abs(complex(m[:, 0].mean(), m[:, 1].mean()))
     return out

@@ -17,27 +17,7 @@ from __future__ import annotations
 
 import numpy as np
 
-
-def _rot_x(theta):
-    c, s = np.cos(theta), np.sin(theta)
-    z, o = np.zeros_like(theta), np.ones_like(theta)
-    return np.stack([np.stack([o, z, z], -1), np.stack([z, c, -s], -1), np.stack([z, s, c], -1)], -2)
-
-
-def _rot_y(theta):
-    c, s = np.cos(theta), np.sin(theta)
-    z, o = np.zeros_like(theta), np.ones_like(theta)
-    return np.stack([np.stack([c, z, s], -1), np.stack([z, o, z], -1), np.stack([-s, z, c], -1)], -2)
-
-
-def _relax(m, dt, t1, t2):
-    e1 = np.exp(-dt / t1)
-    e2 = np.exp(-dt / t2)
-    out = m.copy()
-    out[:, 0] *= e2
-    out[:, 1] *= e2
-    out[:, 2] = m[:, 2] * e1 + (1.0 - e1)
-    return out
+from .magnetisation import free, rotation
 
 
 def simulate(t1, b1, *, ti, fa, tr_prep, tr_exc, shots, efficiency=0.96, t2=0.05, max_cycles=400, tol=1e-14):
@@ -63,8 +43,8 @@ def simulate(t1, b1, *, ti, fa, tr_prep, tr_exc, shots, efficiency=0.96, t2=0.05
             events.append((ti[k] + (j - centre) * tr_exc, "exc", k, j == centre))
     events.sort(key=lambda ev: (ev[0], ev[1] != "inv"))
     assert events[0][1] == "inv" and events[-1][0] < tr_prep, "the protocol overlaps"
-    inv = _rot_x(np.full(t1.shape, np.arccos(-efficiency)))
-    exc = [_rot_y(np.deg2rad(fa[k]) * b1) for k in range(2)]
+    inv = rotation(np.full(t1.shape, np.degrees(np.arccos(-efficiency))), 0.0)  # about x
+    exc = [rotation(fa[k] * b1, 90.0) for k in range(2)]  # about y
     m = np.zeros((t1.size, 3))
     m[:, 2] = 1.0
     sig = np.zeros((2, t1.size))
@@ -72,7 +52,7 @@ def simulate(t1, b1, *, ti, fa, tr_prep, tr_exc, shots, efficiency=0.96, t2=0.05
         start = m.copy()
         t = 0.0
         for time, kind, k, is_centre in events:
-            m = _relax(m, time - t, t1, t2)
+            m = free(m, time - t, t1, t2)
             t = time
             m[:, :2] = 0.0  # ideal spoiling / crusher before every pulse
             if kind == "inv":
@@ -82,7 +62,7 @@ def simulate(t1, b1, *, ti, fa, tr_prep, tr_exc, shots, efficiency=0.96, t2=0.05
                 m = np.einsum("nij,nj->ni", exc[k], m)
                 if is_centre:
                     sig[k] = m[:, 0]
-        m = _relax(m, tr_prep - t, t1, t2)
+        m = free(m, tr_prep - t, t1, t2)
         m[:, :2] = 0.0
         if np.max(np.abs(m - start)) < tol:
             break
