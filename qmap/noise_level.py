@@ -228,8 +228,48 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
     from scipy import ndimage  # imported on use (start-up time)
 
-    mask = ndimage.binary_opening(np.pad(peak > threshold, 1, mode="edge"))[1:-1, 1:-1, 1:-1]
+    mask = dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
     return ndimage.binary_fill_holes(mask)
+
+
+def erode_cross(a: np.ndarray) -> np.ndarray:
+    """Binary erosion by the 6-connected cross (one voxel), outside the array False, (X, Y, Z) bool.
+
+    The same as ``scipy.ndimage.binary_erosion(a)`` (its default structure and border), by shifted
+    views: a few milliseconds on 1M voxels instead of tens.
+    """
+    a = np.asarray(a, dtype=bool)
+    out = a.copy()
+    for axis in range(a.ndim):
+        lo = [slice(None)] * a.ndim
+        hi = [slice(None)] * a.ndim
+        lo[axis], hi[axis] = slice(None, -1), slice(1, None)
+        out[tuple(hi)] &= a[tuple(lo)]
+        out[tuple(lo)] &= a[tuple(hi)]
+        edge: list[slice | int] = [slice(None)] * a.ndim
+        for k in (0, -1):
+            edge[axis] = k
+            out[tuple(edge)] = False
+    return out
+
+
+def dilate_cross(a: np.ndarray, iterations: int = 1) -> np.ndarray:
+    """Binary dilation by the 6-connected cross, ``iterations`` times, (X, Y, Z) bool.
+
+    The same as ``scipy.ndimage.binary_dilation(a, iterations=iterations)`` (its default structure
+    and border), by shifted views.
+    """
+    out = np.asarray(a, dtype=bool)
+    for _ in range(iterations):
+        src = out
+        out = src.copy()
+        for axis in range(src.ndim):
+            lo = [slice(None)] * src.ndim
+            hi = [slice(None)] * src.ndim
+            lo[axis], hi[axis] = slice(None, -1), slice(1, None)
+            out[tuple(hi)] |= src[tuple(lo)]
+            out[tuple(lo)] |= src[tuple(hi)]
+    return out
 
 
 def object_mask(source: VolumeSource, max_bytes: float | None = None) -> np.ndarray:
@@ -666,10 +706,8 @@ class _Background:
 
 
 def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float | None, dilate: int) -> _Background:
-    from scipy import ndimage  # imported on use (start-up time)
-
     obj = np.asarray(obj, dtype=bool)
-    bg = ~ndimage.binary_dilation(obj, iterations=dilate) if (dilate > 0 and obj.any()) else ~obj
+    bg = ~dilate_cross(obj, dilate) if (dilate > 0 and obj.any()) else ~obj
     n_out = int(bg.sum())
     k = max(1, -(-n_out * source.n // SIGMA_SAMPLES))
     # the sampled background voxels: every k-th flat (C-order) index, without a volume of indices
@@ -877,9 +915,21 @@ def _gather_finite(
 
 def _leverage(J: np.ndarray) -> np.ndarray:
     """Diagonal of the hat matrix J^T (J J^T)^-1 J per voxel: J (n, P, m) -> (n, m)."""
-    A = np.einsum("npm,nqm->npq", J, J)
-    Ainv = np.linalg.pinv(A)
-    return np.einsum("npm,npq,nqm->nm", J, Ainv, J)
+    if J.shape[1] == 2:  # two parameters: the closed-form inverse (an SVD per voxel costs ~20x more)
+        j0, j1 = J[:, 0], J[:, 1]
+        a, b, c = (np.einsum("nm,nm->n", u, v) for u, v in ((j0, j0), (j0, j1), (j1, j1)))
+        A = np.stack([np.stack([a, b], 1), np.stack([b, c], 1)], 1)
+        det = a * c - b * b
+        ok = det > 1e-12 * np.maximum(a * c, np.finfo(float).tiny)
+        Ainv = np.empty_like(A)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            Ainv[:, 0, 0], Ainv[:, 1, 1] = c / det, a / det
+            Ainv[:, 0, 1] = Ainv[:, 1, 0] = -b / det
+        if not ok.all():
+            Ainv[~ok] = np.linalg.pinv(A[~ok])
+        return (Ainv[:, 0, 0, None] * j0 * j0 + 2.0 * Ainv[:, 0, 1, None] * j0 * j1
+                + Ainv[:, 1, 1, None] * j1 * j1)
+    return np.einsum("npm,npq,nqm->nm", J, np.linalg.pinv(np.einsum("npm,nqm->npq", J, J)), J)
 
 
 def pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:

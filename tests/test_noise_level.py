@@ -480,3 +480,19 @@ def test_residual_source_is_generic_over_models_magnitude_inversion_recovery():
     est = residual_estimate(ArraySource(d), InversionRecovery(ti, signal="magnitude"),
                             mask=np.ones(d.shape[:3], bool))
     assert est.value == pytest.approx(5.0, rel=0.06)
+
+
+@pytest.mark.parametrize("shape", [(1, 1, 1), (5, 1, 7), (17, 23, 9)])
+@pytest.mark.parametrize("fill", [0.3, 0.7, 0.95])
+def test_cross_morphology_matches_scipy_ndimage(shape, fill):
+    # reference: scipy.ndimage's binary erosion / dilation / opening with their default structure (the
+    # 6-connected cross) and border (outside the array False)
+    from scipy import ndimage
+
+    from qmap.noise_level import dilate_cross, erode_cross
+
+    a = np.random.default_rng(int(fill * 100) + shape[0]).random(shape) < fill
+    assert np.array_equal(erode_cross(a), ndimage.binary_erosion(a))
+    assert np.array_equal(dilate_cross(erode_cross(a)), ndimage.binary_opening(a))
+    for it in (1, 3):
+        assert np.array_equal(dilate_cross(a, it), ndimage.binary_dilation(a, iterations=it))

@@ -96,6 +96,9 @@ class MonoExponential(SeparableModel):
         e = self.decay(1.0 / theta[:, 0])
         return (e * self.x[None, :] / t**2)[:, :, None, None]
 
+    def predict(self, params, ctx=None):
+        return params[:, 0:1] * self.decay(1.0 / params[:, 1])
+
     def signal_jacobian(self, params, ctx=None):
         # specialised for speed: the decay once, both derivatives from it
         n, m = params.shape[0], self.x.size
