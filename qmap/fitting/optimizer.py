@@ -66,11 +66,20 @@ def _gauss_newton(evaluate: Evaluate, y, p, r, rss, J, converged, n_iter, lo, hi
     for _ in range(steps):
         if act.size == 0:
             break
-        every = act.size == n  # the whole chunk: no gathering
-        pa, rssa = (p, rss) if every else (p[act], rss[act])
-        JTJ, g = normal_equations(J if every else J[act], None, r if every else r[act])
+        # most of the chunk still stepping: work on whole arrays (no gathering), the others masked out
+        dense = act.size > n // 2
+        if dense:
+            pa, rssa, Ja, ra = p, rss, J, r
+            live = np.zeros(n, bool)
+            live[act] = True
+        else:
+            pa, rssa, Ja, ra = p[act], rss[act], J[act], r[act]
+            live = None
+        JTJ, g = normal_equations(Ja, None, ra)
         pn = pa + _solve_normal(JTJ, g)
         inside = np.all((pn >= lo) & (pn <= hi) & np.isfinite(pn), axis=1)
+        if live is not None:
+            inside &= live
         step = np.abs(pn - pa)
         small = np.all(step <= xtol * (np.abs(pa) + xtol), axis=1)
         if m_dof > 0:
@@ -78,14 +87,15 @@ def _gauss_newton(evaluate: Evaluate, y, p, r, rss, J, converged, n_iter, lo, hi
                 se_floor = np.sqrt(rssa / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", JTJ))
             small |= np.all(step <= se_tol * se_floor, axis=1)
         small &= inside
-        done = act[small]
-        p[done] = pn[small]
+        rows = np.flatnonzero(small)  # positions in the (gathered or whole) arrays
+        done = rows if dense else act[rows]
+        p[done] = pn[rows]
         converged[done] = True
         n_iter[done] += 1
         go = np.flatnonzero(inside & ~small)
         if go.size == 0:
             break
-        k = act[go]
+        k = go if dense else act[go]
         all_go = go.size == n
         sn, Jn = evaluate(pn if all_go else pn[go], k)
         rn = (y if all_go else y[k]) - sn
