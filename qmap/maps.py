@@ -179,6 +179,11 @@ def fit_volume(
     shape = data.shape[:-1]
     m = data.shape[-1]
     problem.check_samples(m)
+    if stderr == "residual" and sigma is not None and m <= len(noise.wrap(model).param_names):
+        # exactly determined (e.g. two flip angles for M0 and T1): no voxel has a residual degree of freedom,
+        # so the residual convention has nothing to go on; the whole map takes the known noise sd and says so
+        # (one convention per map, never sigma in some voxels of a map labelled "residual")
+        stderr = "noise"
     nvox = int(np.prod(shape))
     # no reshaped copy of the series: NIfTI arrays are Fortran-ordered, so data.reshape(-1, m) would
     # copy it all; only the selected voxels are gathered below (in C order, matching ``idx``)

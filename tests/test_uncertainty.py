@@ -372,3 +372,32 @@ def test_noise_map_holes_in_the_linear_vfa_method():
     assert np.array_equal(whole.stderr["T1"][keep], holed.stderr["T1"][keep])
     assert np.isfinite(holed.stderr["T1"][keep]).all()
     assert holed.info["stderr"]["no_noise_level_voxels"] == 1
+
+
+@pytest.mark.parametrize("method", ["fast", "linear"])
+def test_an_exactly_determined_fit_says_its_standard_errors_come_from_the_noise_sd(method):
+    # two flip angles for M0 and T1: no voxel has a residual degree of freedom, so under stderr="residual"
+    # the known sigma is the only source -- for the whole map, recorded as the "noise" convention (never a
+    # map labelled "residual" that holds sigma-based values); the values are the Cramer-Rao bound
+    # sigma sqrt([(J^T J)^-1]_T1) (Kay 1993), computed here by central differences of the SPGR signal
+    # S = M0 sin a (1 - E1) / (1 - E1 cos a) (Fram et al. 1987)
+    fa, tr, t1, m0, sigma = np.array([4.0, 24.0]), 0.015, 1.1, 800.0, 0.4
+    a = np.deg2rad(fa)
+
+    def spgr(p):
+        e1 = np.exp(-tr / p[1])
+        return p[0] * np.sin(a) * (1 - e1) / (1 - e1 * np.cos(a))
+
+    y = np.tile(spgr(np.array([m0, t1])), (3, 1))
+    res = fit_volume(SpoiledGRE(fa, tr), y, sigma=sigma, stderr="residual", method=method)
+    noise = fit_volume(SpoiledGRE(fa, tr), y, sigma=sigma, method=method)
+    assert res.info["stderr"]["convention"] == "noise"
+    np.testing.assert_array_equal(res.stderr["T1"], noise.stderr["T1"])
+    np.testing.assert_allclose(res.stderr["T1"], _crlb(spgr, [m0, t1], sigma, 1), rtol=1e-4)
+    # with samples to spare the residual convention stays what it says (and without sigma it is all there is)
+    fa4 = np.array([3.0, 8.0, 15.0, 25.0])
+    y4 = 800.0 * np.sin(np.deg2rad(fa4)) * 0.1 + np.array([0.3, -0.2, 0.1, -0.25])
+    assert fit_volume(SpoiledGRE(fa4, tr), y4[None, :], sigma=sigma, stderr="residual",
+                      method=method).info["stderr"]["convention"] == "residual"
+    assert fit_volume(SpoiledGRE(fa, tr), y, method=method).info["stderr"]["convention"] == "residual"
+    assert np.isnan(fit_volume(SpoiledGRE(fa, tr), y, method=method).stderr["T1"]).all()

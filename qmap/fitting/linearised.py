@@ -106,7 +106,8 @@ def fit_chunk_linear(
             sig2 = sig**2
             usable = np.isfinite(sig) & (sig > 0)
             # one convention per map: under "noise" a voxel without a usable sigma has no standard error
-            s2 = np.where(usable, sig2, np.nan) if stderr == "noise" else np.where(dof > 0, s2, sig2)
+            if stderr == "noise":  # "residual": s2 as it is (NaN without residual degrees of freedom)
+                s2 = np.where(usable, sig2, np.nan)
         v_e, v_c, c_ec = s2 * sw / dd, s2 * sxx / dd, -s2 * sx / dd
         icpt = m0 * (1.0 - e1)
         lg = np.log(e1)

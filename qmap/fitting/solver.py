@@ -387,8 +387,8 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
         sig2 = sig**2
         if stderr == "noise":  # one convention per map: no usable sigma (a noise map's hole) -> no standard error
             s2 = np.where(np.isfinite(sig) & (sig > 0), sig2, np.nan)
-        else:
-            s2 = np.where(dof > 0, s2, sig2)
+        # "residual": a voxel without residual degrees of freedom has no standard error (NaN, as s2 is);
+        # an exactly determined fit as a whole is given the noise convention by the caller (fit_volume)
     cov = inv * s2[:, None, None]
     if sigma is not None and stderr == "noise":
         if noise.rician:
