@@ -127,7 +127,7 @@ def _runs(d):
         ("t1-vfa", "linear", ["t1-vfa", *vfa, "--method", "linear", "--b1", str(fmap / "sub-phantom_TB1map.nii.gz")]),
         ("b1", "dam", ["b1", *sorted(str(p) for p in fmap.glob("*_TB1DAM.nii.gz")), "--method", "dam",
                 "--mask", "auto"]),
-        ("b1", "afi", ["b1", *_afi_images(d), "--method", "afi", "--mask", "none"]),
+        ("b1", "afi", ["b1", *_afi_images(d), "--method", "afi", "--mask", "none", "--sigma", "5"]),
     ]
 
 
@@ -170,6 +170,8 @@ def test_every_choice_round_trips_through_its_provenance_and_inspect_refits_it(t
         capsys.readouterr()
         rep = inspect_voxel(out, ijk, prefix="fit", out_png=tmp_path / f"v{k}.png")
         assert rep.status == 0 and not [n for n in rep.notes if "refitting" in n], rep.notes
+        # the standard-error wording follows the registry's kind: a closed form has no J^T J
+        assert rep.convention == ("noise" if model_kind(name) == "fitted" else "noise, propagated")
     # every choice of every command that fits was run
     assert seen == {(c, v) for c, m in COMMAND_MODELS.items() for v in m.values
                     if c not in ("t1-mp2rage", "t2-spectrum")}

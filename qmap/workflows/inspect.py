@@ -73,7 +73,10 @@ class VoxelReport:
 
 #: how ``inspect`` names each standard-error convention (see qmap.fitting.uncertainty)
 CONVENTIONS_SHOWN = {"noise": "from the noise sd: sigma^2 (J^T J)^-1",
-                     "residual": "from this voxel's residual variance RSS/(m-P)"}
+                     "residual": "from this voxel's residual variance RSS/(m-P)",
+                     # a model that is not fitted (registry kinds closed_form, lookup): nothing has a J^T J
+                     "noise, propagated": "from the noise sd of the images, propagated to first order through "
+                                          "the estimate's formula"}
 
 
 def _num(v) -> str:
@@ -284,6 +287,8 @@ def inspect_voxel(
         known = sorted(name for table in KINDS.values() for name in table)
         raise UsageError(f"{prefix}: model {mname!r} has no curve to draw; inspect redraws the models "
                          f"{', '.join(known)}") from None
+    if kind in ("closed_form", "lookup") and rep.convention == "noise":  # no least-squares fit behind the maps
+        rep.convention = "noise, propagated"
     if kind == "spectrum":  # the spectrum is read from the maps: no model to rebuild
         return _inspect_spectrum(prov, out_dir, ijk, rep, out_png)
     draw = {"fitted": _figure, "closed_form": _closed_form_figure, "lookup": _lookup_figure}[kind]
