@@ -13,7 +13,7 @@ from typing import Unpack
 import numpy as np
 
 from .docstrings import shared_parameters
-from .maps import MapSet, execution_kwargs, fit_volume
+from .maps import Execution, MapSet, execution_kwargs, fit_volume
 from .models.base import SeparableModel
 from .models.monoexp import MonoExponential
 from .workflows.decay import DecayFitOptions, DecayOptions, DecaySettings
@@ -21,7 +21,7 @@ from .workflows.decay import DecayFitOptions, DecayOptions, DecaySettings
 __all__ = ["b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"]
 
 
-@shared_parameters("mask", "decay_options")
+@shared_parameters("mask", "decay_options", keys=(DecayOptions, Execution))
 def fit_decay(data, te, *, param: str = "T2star", mask=None, **options: Unpack[DecayFitOptions]) -> MapSet:
     """Fit a mono-exponential decay ``S = M0 exp(-TE/T)`` in every voxel.
 
@@ -83,6 +83,7 @@ def _noise_for(data, model: SeparableModel, settings: DecaySettings, mask, n_job
     return noise, sigma, info
 
 
+@shared_parameters(keys=(DecayOptions, Execution))
 def fit_t2star(data, te, *, mask=None, **options: Unpack[DecayFitOptions]) -> MapSet:
     """Fit T2* from multi-echo gradient-echo magnitudes: :func:`fit_decay` with ``param="T2star"``.
 

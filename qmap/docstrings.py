@@ -37,7 +37,7 @@ import re
 from collections.abc import Callable
 from typing import TypeVar
 
-__all__ = ["PARAMETERS", "shared_parameters"]
+__all__ = ["PARAMETERS", "keys_section", "shared_parameters"]
 
 F = TypeVar("F", bound=Callable)
 
@@ -56,8 +56,8 @@ PARAMETERS: dict[str, str] = {
     "execution": """**execution
     :class:`~qmap.maps.Execution` options: ``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``.""",
     "decay_options": """**options
-    :class:`~qmap.workflows.decay.DecayOptions` (``noise_floor``, ``sigma``, ``coils``, ``drop_first``) and
-    :class:`~qmap.maps.Execution` (``n_jobs``, ``engine``, ``chunk_size``, ``scheduler``) keywords.""",
+    The keyword options of :class:`~qmap.workflows.decay.DecayOptions` (the fit) and
+    :class:`~qmap.maps.Execution` (how it runs); see Other Parameters.""",
     # the noise-level estimators (qmap.noise_level)
     "source": """source : VolumeSource
     The series (a :class:`~qmap.io.series.Series` or an :class:`ArraySource`).""",
@@ -73,8 +73,8 @@ def _names(entry_line: str) -> list[str]:
     return [n.strip().lstrip("*") for n in entry_line.split(" : ")[0].split(",")]
 
 
-def _insert(doc: str, names: tuple[str, ...], order: list[str]) -> str:
-    """``doc`` with the entries ``PARAMETERS[name]`` placed in its Parameters section by the signature ``order``."""
+def _split(doc: str) -> tuple[str, str, list[str], list[str]]:
+    """``doc`` cut around its Parameters section: (text up to the section, base indent, section lines, rest)."""
     m = _HEADER.search(doc)
     if m is None:
         raise ValueError("shared_parameters: the docstring has no numpydoc 'Parameters' section")
@@ -88,7 +88,11 @@ def _insert(doc: str, names: tuple[str, ...], order: list[str]) -> str:
             break
     while end > 0 and not lines[end - 1].strip():
         end -= 1
-    section = lines[:end]
+    return doc[: m.end() + 1], indent, lines[:end], lines[end:]
+
+
+def _insert(section: list[str], indent: str, names: tuple[str, ...], order: list[str]) -> None:
+    """Put the entries ``PARAMETERS[name]`` into the Parameters ``section`` (lines) by the signature ``order``."""
 
     def rank(name: str) -> int:
         return order.index(name) if name in order else len(order)
@@ -103,30 +107,57 @@ def _insert(doc: str, names: tuple[str, ...], order: list[str]) -> str:
                 at = i
                 break
         section[at:at] = [indent + t if t else t for t in text]
-    return doc[: m.end() + 1] + "\n".join(section + lines[end:])
 
 
-def shared_parameters(*names: str) -> Callable[[F], F]:
-    """Decorator: add the entries ``PARAMETERS[name]`` to the function's ``Parameters`` section.
+def keys_section(cls: type) -> list[str]:
+    """The lines (dedented) of the ``Keys`` section of a TypedDict's docstring: its keys as numpydoc entries."""
+    lines = inspect.cleandoc(cls.__doc__ or "").splitlines()
+    for i in range(len(lines) - 1):
+        if lines[i] == "Keys" and re.fullmatch(r"-{3,}", lines[i + 1]):
+            body = []
+            for j in range(i + 2, len(lines)):
+                if j + 1 < len(lines) and lines[j] and not lines[j][0].isspace() and re.fullmatch(r"-{3,}",
+                                                                                                 lines[j + 1]):
+                    break
+                body.append(lines[j])
+            while body and not body[-1].strip():
+                body.pop()
+            return body
+    raise ValueError(f"shared_parameters: {cls.__name__} has no 'Keys' section in its docstring")
+
+
+def shared_parameters(*names: str, keys: tuple[type, ...] = ()) -> Callable[[F], F]:
+    """Decorator: add shared entries to the function's docstring.
 
     Parameters
     ----------
     *names : str
-        Keys of :data:`PARAMETERS`; each entry goes before the first documented parameter that
-        follows it in the signature (after the last one if none does).
+        Keys of :data:`PARAMETERS`; each entry goes into the ``Parameters`` section before the first
+        documented parameter that follows it in the signature (after the last one if none does).
+    keys : tuple of TypedDict classes
+        The option sets the function takes as ``**kwargs``: the entries of their docstrings' ``Keys``
+        sections, in this order, become an ``Other Parameters`` section after ``Parameters`` (numpydoc's
+        place for keyword arguments that are not in the signature).
 
     Raises
     ------
     KeyError
         A name that :data:`PARAMETERS` does not hold.
+    ValueError
+        A docstring without a ``Parameters`` section, or a class in ``keys`` without a ``Keys`` section.
     """
     unknown = [n for n in names if n not in PARAMETERS]
     if unknown:
         raise KeyError(f"shared_parameters: no entry {unknown} in qmap.docstrings.PARAMETERS")
+    other = [line for cls in keys for line in keys_section(cls)]
 
     def decorate(func: F) -> F:
-        order = list(inspect.signature(func).parameters)
-        func.__doc__ = _insert(func.__doc__ or "", names, order)
+        head, indent, section, rest = _split(func.__doc__ or "")
+        _insert(section, indent, names, list(inspect.signature(func).parameters))
+        if other:
+            section += ["", indent + "Other Parameters", indent + "-" * len("Other Parameters")]
+            section += [indent + line if line else line for line in other]
+        func.__doc__ = head + "\n".join(section + rest)
         return func
 
     return decorate

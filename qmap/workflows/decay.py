@@ -128,7 +128,7 @@ def load_echoes(inputs, *, te, drop_first: bool, common: CommonOptions, min_volu
 
 
 @recorded
-@shared_parameters("inputs", "common")
+@shared_parameters("inputs", "common", keys=(DecayOptions,))
 def run_t2star(inputs, *, common: CommonOptions, te=None, **options: Unpack[DecayOptions]) -> RunReport:
     """Fit T2*, R2* and M0 maps (with standard errors, quality and status) to a multi-echo GRE series.
 
@@ -137,7 +137,7 @@ def run_t2star(inputs, *, common: CommonOptions, te=None, **options: Unpack[Deca
     te : (m,) array_like, optional
         Echo times in seconds; default from the BIDS sidecars (``EchoTime``).
     **options
-        :class:`DecayOptions`: ``noise_floor``, ``sigma`` (also a noise-map path), ``coils``, ``drop_first``.
+        The keyword options of :class:`DecayOptions`; see Other Parameters.
     """
     t0 = time.perf_counter()
     settings = DecaySettings.of(options, DecayOptions.__optional_keys__)

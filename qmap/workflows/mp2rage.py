@@ -27,6 +27,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from .. import status as st
+from ..docstrings import shared_parameters
 from ..errors import InputError, UsageError, warn
 from ..io.nifti import check_same_grid, image_data, load_image, read_sidecar
 from ..io.series import Series, resolve_parameter
@@ -475,6 +476,7 @@ class _Images(Series):
 
 
 @recorded
+@shared_parameters(keys=(ProtocolOverrides,))
 def run_t1_mp2rage(
     uni: str | Path,
     *,
@@ -510,9 +512,8 @@ def run_t1_mp2rage(
     sigma_spec : str, optional
         ``--sigma`` (auto, a value or a noise map) for the inversion images' noise.
     **overrides
-        :class:`ProtocolOverrides`: ``ti``, ``fa``, ``tr_prep``, ``tr_exc``, ``shots``, ``efficiency``
-        (default: from the sidecars; the efficiency from
-        :data:`~qmap.models.mp2rage.DEFAULT_EFFICIENCY`).
+        The protocol values of :class:`ProtocolOverrides` (default: from the sidecars); see Other
+        Parameters.
     """
     t0 = time.perf_counter()
     if common.engine != "fast":

@@ -22,13 +22,13 @@ import numpy as np
 from ..defaults import DEFAULT_REFOCUS, DEFAULT_T1
 from ..docstrings import shared_parameters
 from ..errors import UsageError
-from ..maps import MapSet
+from ..maps import Execution, MapSet
 from ..models import build_model, choose
 from ..models.base import SeparableModel
 from ..models.epg_t2 import EpgT2
 from ..pipeline import CommonOptions, RunReport, run_fit
 from ..record import recorded
-from .decay import DecaySettings, T2FitOptions, T2Options, load_echoes
+from .decay import DecayOptions, DecaySettings, T2FitOptions, T2Options, load_echoes
 
 __all__ = ["DEFAULT_REFOCUS", "DEFAULT_T1", "fit_t2", "run_t2", "t2_model"]
 
@@ -64,7 +64,7 @@ def t2_model(
     return model, model.info()
 
 
-@shared_parameters("mask")
+@shared_parameters("mask", keys=(T2Options, DecayOptions, Execution))
 def fit_t2(data, te, *, mask=None, **options: Unpack[T2FitOptions]) -> MapSet:
     """Fit T2 in every voxel of a multi-echo spin-echo magnitude series (array API).
 
@@ -75,9 +75,8 @@ def fit_t2(data, te, *, mask=None, **options: Unpack[T2FitOptions]) -> MapSet:
     te : (m,) array_like
         Echo times in seconds. With ``epg`` they must be TE_k = k * ESP.
     **options
-        :class:`~qmap.workflows.decay.T2Options` (``epg``, ``refocus_deg``, ``t1``, ``noise_floor``,
-        ``sigma``, ``coils``, ``drop_first``) and :class:`~qmap.maps.Execution` (``n_jobs``, ``engine``,
-        ``chunk_size``, ``scheduler``) keywords.
+        The keyword options of :class:`~qmap.workflows.decay.T2Options` (the fit) and
+        :class:`~qmap.maps.Execution` (how it runs); see Other Parameters.
 
     Returns
     -------
@@ -110,6 +109,7 @@ def fit_t2(data, te, *, mask=None, **options: Unpack[T2FitOptions]) -> MapSet:
 
 
 @recorded
+@shared_parameters(keys=(T2Options, DecayOptions))
 def run_t2(inputs, *, common: CommonOptions, te=None, **options: Unpack[T2Options]) -> RunReport:
     """Fit T2, R2 and M0 (and with ``epg`` RefocusScale) maps to a multi-echo spin-echo series.
 
@@ -118,8 +118,7 @@ def run_t2(inputs, *, common: CommonOptions, te=None, **options: Unpack[T2Option
     inputs, common, te
         The echo train, as in :func:`~qmap.workflows.decay.run_t2star`.
     **options
-        :class:`~qmap.workflows.decay.T2Options`: ``epg``, ``refocus_deg``, ``t1``, ``noise_floor``,
-        ``sigma`` (also a noise-map path), ``coils``, ``drop_first``.
+        The keyword options of :class:`~qmap.workflows.decay.T2Options`; see Other Parameters.
     """
     t0 = time.perf_counter()
     s = DecaySettings.of(options, T2Options.__optional_keys__)

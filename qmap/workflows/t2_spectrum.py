@@ -18,6 +18,7 @@ import numpy as np
 
 from .. import status as st
 from ..checks import check_series_shape
+from ..docstrings import shared_parameters
 from ..engine import fit_voxels, resolve_jobs
 from ..errors import InputError, UsageError, warn
 from ..io.writer import OutputFile
@@ -325,6 +326,7 @@ def _extra_outputs(model, out: _Collect, shape, prefix: str, units: str) -> list
     return res
 
 
+@shared_parameters(keys=(SpectrumOptions,))
 def fit_t2_spectrum(
     data,
     te,
@@ -352,8 +354,7 @@ def fit_t2_spectrum(
     n_jobs, chunk_size
         Execution (results do not depend on them).
     **options
-        :class:`SpectrumOptions`: ``t1``, ``window``, ``chi2_factor``, ``n_t2``, ``t2_range``, ``min_snr``,
-        ``se_subsample``.
+        The keyword options of :class:`SpectrumOptions`; see Other Parameters.
 
     Returns
     -------
@@ -389,6 +390,7 @@ def fit_t2_spectrum(
 
 
 @recorded
+@shared_parameters(keys=(SpectrumOptions,))
 def run_t2_spectrum(
     inputs,
     *,
@@ -413,7 +415,7 @@ def run_t2_spectrum(
         noise map from the fit residuals and the background (written as
         ``{prefix}_desc-noise_sigmamap``); a value; or a noise map.
     **options
-        :class:`SpectrumOptions`, as in :func:`fit_t2_spectrum`.
+        The keyword options of :class:`SpectrumOptions`; see Other Parameters.
     """
     t0 = time.perf_counter()
     series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
