@@ -46,6 +46,21 @@ def test_each_model_option_is_built_from_the_registry(command):
         assert c.model in MODELS
 
 
+@pytest.mark.parametrize("command", sorted(COMMAND_MODELS))
+def test_the_shared_options_follow_the_registry(command):
+    # --engine only where every model is fitted by least squares, --units only where a time map is written,
+    # the noise-floor options where the command's models take the noise floor (COMMAND_MODELS[...].noise)
+    m = COMMAND_MODELS[command]
+    parser = get_parser(command)
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    options = {s for a in sub.choices[command]._actions for s in a.option_strings}
+    assert ("--engine" in options) == m.engine_choice == all(MODELS[c.model].kind == "fitted" for c in m.choices)
+    assert ("--units" in options) == m.time_maps
+    assert ("--noise-floor" in options) == ("--coils" in options) == (m.noise == "floor")
+    assert "--sigma" in options and "--stderr" in options if m.noise != "own" else "--sigma" in options
+    assert m.time_maps == (command != "b1") and m.engine_choice == (command in ("t2", "t2star", "t1-ir", "t1-vfa"))
+
+
 def test_a_choice_added_to_the_registry_reaches_the_command_line(monkeypatch):
     m = COMMAND_MODELS["t1-vfa"]
     extra = Choice("weighted", "vfa", "an estimator added to the registry", ("T1", "R1", "M0"), method="linear")
@@ -128,6 +143,9 @@ def _runs(d):
         ("b1", "dam", ["b1", *sorted(str(p) for p in fmap.glob("*_TB1DAM.nii.gz")), "--method", "dam",
                 "--mask", "auto"]),
         ("b1", "afi", ["b1", *_afi_images(d), "--method", "afi", "--mask", "none", "--sigma", "5"]),
+        ("t1-mp2rage", None, ["t1-mp2rage", str(data / "sub-phantom_UNIT1.nii.gz"), "--inv1",
+                              str(data / "sub-phantom_inv-1_MP2RAGE.nii.gz"), "--inv2",
+                              str(data / "sub-phantom_inv-2_MP2RAGE.nii.gz")]),
     ]
 
 
@@ -149,6 +167,12 @@ def test_every_choice_round_trips_through_its_provenance_and_inspect_refits_it(t
         choice = choose(command, value)
         name = prov["model"]["name"]
         assert name == choice.model
+        # the maps written, and their units, are those the registry names for the model and the choice
+        units = dict(MODELS[name].units)
+        written = {o["parameter"]: o["units"] for o in prov["outputs"].values() if o["kind"] == "estimate"}
+        assert all(units[k] == u for k, u in written.items()), written
+        if "--look-locker" not in argv:  # (Look-Locker writes ApparentT1 instead of InversionEfficiency)
+            assert set(written) == set(choice.maps), written
         seen.add((command, choice.value))
         cls = model_class(name)
         if model_kind(name) == "fitted":
@@ -162,8 +186,10 @@ def test_every_choice_round_trips_through_its_provenance_and_inspect_refits_it(t
             lo, hi = built.bounds()
             p = np.concatenate([np.full(len(built.linear), 700.0), lo + 0.37 * (hi - lo)])[None, :]
             np.testing.assert_array_equal(model.predict(p), built.predict(p))
-        else:
+        elif model_kind(name) == "closed_form":
             assert cls.from_provenance(prov["model"], prov["acquisition"]).name == choice.model
+        else:  # the MP2RAGE protocol round-trips (its acquisition as recorded)
+            assert cls.from_provenance(prov["model"], prov["acquisition"]).as_acquisition() == prov["acquisition"]
         # inspect re-creates the fit of a fitted voxel from the provenance and reproduces the written maps
         status = np.asarray(nib.load(str(out / "fit_desc-status_fitmap.nii.gz")).dataobj)
         ijk = tuple(int(v) for v in np.argwhere(status == 0)[0])
@@ -173,6 +199,6 @@ def test_every_choice_round_trips_through_its_provenance_and_inspect_refits_it(t
         # the standard-error wording follows the registry's kind: a closed form has no J^T J
         assert rep.convention == ("noise" if model_kind(name) == "fitted" else "noise, propagated")
     # every choice of every command that fits was run
-    assert seen == {(c, v) for c, m in COMMAND_MODELS.items() for v in m.values
-                    if c not in ("t1-mp2rage", "t2-spectrum")}
-    assert set(models.REGISTRY) | set(models.CLOSED_FORMS) == {choose(c, v).model for c, v in seen}
+    assert seen == {(c, v) for c, m in COMMAND_MODELS.items() for v in m.values if c != "t2-spectrum"}
+    assert set(models.REGISTRY) | set(models.CLOSED_FORMS) | set(models.LOOKUPS) == {choose(c, v).model
+                                                                                    for c, v in seen}

@@ -28,7 +28,7 @@ def add_parser(sub) -> None:
                    help="image noise sd for the standard errors (first-order propagation through the closed form): "
                         "auto (default) estimates it from the images, local a smooth noise map; when it cannot be "
                         "estimated the standard errors are NaN, with a warning; or a value, or a NIfTI noise map")
-    end_fitting_parser(p, run, noise="own", time_maps=False, engine=False)  # TB1: a fraction, in closed form
+    end_fitting_parser(p, run)  # the registry: TB1 is a fraction (no --units), in closed form (no --engine)
 
 
 def run(args) -> int:

@@ -56,13 +56,20 @@ def check_model_settings(args, command: str, given: dict) -> None:
         raise UsageError(f"{' and '.join(got)} {verb} only to {owner.label}; {how} or leave {it} out")
 
 
-def end_fitting_parser(p: argparse.ArgumentParser, run, *, noise: str = "sigma", **common) -> None:
-    """The options every fitting command ends with -- its noise options (``noise="sigma"``: ``--sigma`` and
-    ``--stderr``; ``"floor"``: with the noise-floor handling; ``"own"``: the command adds its own), then
-    :func:`add_common` (``common``: its keywords) -- and ``run`` as what the command does."""
-    if noise != "own":
-        (add_sigma if noise == "sigma" else add_noise)(p)
-    add_common(p, **common)
+def end_fitting_parser(p: argparse.ArgumentParser, run) -> None:
+    """The options every fitting command ends with, as its models in the registry need them, and ``run``.
+
+    From :data:`qmap.models.COMMAND_MODELS` (the command is the parser's name): the noise options
+    (``noise="sigma"``: ``--sigma`` and ``--stderr``; ``"floor"``: with the noise-floor handling; ``"own"``:
+    the command has its own), then :func:`add_common` -- with ``--engine`` only where every model is
+    fitted by least squares and ``--units`` only where one writes a time map.
+    """
+    from ..models import COMMAND_MODELS
+
+    m = COMMAND_MODELS[p.prog.split()[-1]]
+    if m.noise != "own":
+        (add_sigma if m.noise == "sigma" else add_noise)(p)
+    add_common(p, time_maps=m.time_maps, engine=m.engine_choice)
     p.set_defaults(run=run)
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from ..models.mp2rage import DEFAULT_EFFICIENCY
 from ..units import parse_time
 from ..workflows.mp2rage import run_t1_mp2rage
-from .common import add_b1, add_common, angles, common_from_args, finish, positive_int, times
+from .common import add_b1, angles, common_from_args, end_fitting_parser, finish, positive_int, times
 
 
 def add_parser(sub) -> None:
@@ -48,8 +48,7 @@ def add_parser(sub) -> None:
                    help=f"Mz after / before the inversion, sign removed, in (0, 1]; default {DEFAULT_EFFICIENCY:g} "
                         f"(adiabatic inversion)")
     add_b1(p, into="the standard errors (with --inv1/--inv2)")
-    add_common(p, engine=False)  # a table lookup, nothing to fit: no --engine choice
-    p.set_defaults(run=run)
+    end_fitting_parser(p, run)  # the registry: a table lookup, nothing to fit (no --engine)
 
 
 def _shots(text: str) -> int:

@@ -46,7 +46,7 @@ def add_parser(sub) -> None:
                    help=f"fixed T1 of the EPG model (default {DEFAULT_T1:g}s; e.g. 1.2s or 1200ms). It only affects the "
                         "stimulated-echo pathways: none at 180 deg refocusing, and a T1 off by a factor of two changes "
                         "the fitted T2 by less than 1%% for refocusing scales 0.8-1 (32 echoes, 10 ms spacing)")
-    end_fitting_parser(p, run, noise="floor")
+    end_fitting_parser(p, run)
 
 
 def _refocus(text) -> float:

@@ -13,7 +13,7 @@ from ..models.t2_spectrum import (
 from ..units import parse_time_list
 from ..workflows.t2 import DEFAULT_REFOCUS, DEFAULT_T1
 from ..workflows.t2_spectrum import MIN_ECHOES, SE_SUBSAMPLE, run_t2_spectrum
-from .common import add_common, common_from_args, finish, times
+from .common import common_from_args, end_fitting_parser, finish, times
 from .t2 import _refocus, _t1
 
 
@@ -59,8 +59,7 @@ def add_parser(sub) -> None:
                    help="noise sd: auto (default) from the image background, else from the fit residuals; local: a "
                         "smooth map from the fit residuals and the background, for noise that varies over the image "
                         "(written as _desc-noise_sigmamap); a value in signal units; or a NIfTI noise map")
-    add_common(p, engine=False)  # one solver (batched NNLS): no --engine choice
-    p.set_defaults(run=run)
+    end_fitting_parser(p, run)  # the registry: one solver (batched NNLS), no --engine choice
 
 
 def _pair(text, option, default):

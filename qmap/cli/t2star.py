@@ -16,7 +16,7 @@ def add_parser(sub) -> None:
     add_series(p, " (one per echo)")
     p.add_argument("--te", metavar="LIST", help="echo times, e.g. 2.5ms,5ms,7.5ms (default: sidecar EchoTime)")
     p.add_argument("--drop-first", action="store_true", help="ignore the first echo")
-    end_fitting_parser(p, run, noise="floor")
+    end_fitting_parser(p, run)
 
 
 def run(args) -> int:

@@ -141,6 +141,10 @@ class ModelChoice:
         The option must be given (``b1 --method``).
     group : str or None
         Title of the ``--help`` group the option goes in (None: the command's own options).
+    noise : {"sigma", "floor", "own"}
+        How the command's models meet the noise: ``"sigma"``, the noise level serves the standard errors
+        (``--sigma``, ``--stderr``); ``"floor"``, the fit also models the noise floor of magnitude data
+        (``--noise-floor``, ``--coils``); ``"own"``, the command words its own ``--sigma``.
     """
 
     command: str
@@ -150,6 +154,22 @@ class ModelChoice:
     default: str | bool | None = None
     required: bool = False
     group: str | None = None
+    noise: str = "sigma"
+
+    @property
+    def entries(self) -> tuple[ModelEntry, ...]:
+        """The registry entries of the models it can fit, once each."""
+        return tuple(MODELS[name] for name in dict.fromkeys(c.model for c in self.choices))
+
+    @property
+    def engine_choice(self) -> bool:
+        """Its models are all fitted by least squares, so the engine can be chosen (``--engine fast|lmfit``)."""
+        return all(e.kind == "fitted" for e in self.entries)
+
+    @property
+    def time_maps(self) -> bool:
+        """It writes a map of a time (seconds), so ``--units ms`` applies."""
+        return any(u == "s" for e in self.entries for _, u in e.units)
 
     @property
     def flag(self) -> bool:
@@ -242,17 +262,19 @@ MODELS: dict[str, ModelEntry] = {e.name: e for e in (
                "a = arccos(S(2a) / (2 S(a))) (Insko & Bolinger 1993)", (("TB1", "fraction"),)),
     ModelEntry("mp2rage", "qmap.models.mp2rage:MP2RAGEProtocol", "lookup",
                "UNI(T1, B1) of the MP2RAGE steady state (Marques et al. 2010), inverted through a table",
-               (("T1", "s"), ("R1", "1/s"))),
+               _times("T1")),
     ModelEntry("t2spectrum", "qmap.models.t2_spectrum:SpectrumModel", "spectrum",
                "S_k = sum_j A_j EPG_k(T2_j, refocusing angle), non-negative and regularised (Whittall & MacKay "
-               "1989; Prasloski et al. 2012)", ()),
+               "1989; Prasloski et al. 2012)",
+               (("MWF", "fraction"), ("RefocusAngle", "deg"), ("T2short", "s"), ("T2long", "s"),
+                ("T2spectrum", "a.u."))),
 )}
 
 _MONO_T2 = "S = M0 exp(-TE/T2)"
 #: each fitting command's models and the option that chooses among them
 COMMAND_MODELS: dict[str, ModelChoice] = {m.command: m for m in (
     ModelChoice("t2star", None, None, (Choice("monoexp", "monoexp", "", ("T2star", "R2star", "M0"),
-                                              fixed=(("param", "T2star"),)),), default="monoexp"),
+                                              fixed=(("param", "T2star"),)),), default="monoexp", noise="floor"),
     ModelChoice("t2", "--epg", "epg", (
         Choice(False, "monoexp", _MONO_T2, ("T2", "R2", "M0"), fixed=(("param", "T2"),), label="the mono-exponential"),
         Choice(True, "epg_t2",
@@ -260,7 +282,7 @@ COMMAND_MODELS: dict[str, ModelChoice] = {m.command: m for m in (
                "the RefocusScale map, actual / nominal angle). The echoes must be equally spaced at TE_k = k x ESP",
                ("T2", "R2", "M0", "RefocusScale"), settings=("refocus_deg", "t1"), options=("--refocus", "--t1"),
                label="the EPG model"),
-    ), default=False, group="stimulated-echo correction (extended phase graphs)"),
+    ), default=False, group="stimulated-echo correction (extended phase graphs)", noise="floor"),
     ModelChoice("t1-ir", None, None, (Choice("ir", "ir", "", ("T1", "R1", "M0", "InversionEfficiency"),
                                              settings=("signal", "look_locker")),), default="ir"),
     ModelChoice("t1-vfa", "--method", "method", (
@@ -272,9 +294,12 @@ COMMAND_MODELS: dict[str, ModelChoice] = {m.command: m for m in (
     ModelChoice("b1", "--method", "method", (
         Choice("afi", "afi", "", ("TB1",)),
         Choice("dam", "dam", "", ("TB1",)),
-    ), required=True),
-    ModelChoice("t1-mp2rage", None, None, (Choice("mp2rage", "mp2rage", "", ("T1", "R1")),), default="mp2rage"),
-    ModelChoice("t2-spectrum", None, None, (Choice("t2spectrum", "t2spectrum", "", ()),), default="t2spectrum"),
+    ), required=True, noise="own"),
+    ModelChoice("t1-mp2rage", None, None, (Choice("mp2rage", "mp2rage", "", ("T1", "R1", "M0")),), default="mp2rage",
+                noise="own"),
+    ModelChoice("t2-spectrum", None, None, (Choice("t2spectrum", "t2spectrum", "",
+                                                   ("MWF", "RefocusAngle", "T2short", "T2long", "T2spectrum")),),
+                default="t2spectrum", noise="own"),
 )}
 
 
