@@ -422,10 +422,12 @@ def case_b1(nvox, work: Path, rng):
 
 #: the fit stage of ``t2 --epg`` alone, in a fresh process on one thread: the default noise floor (Rician, the
 #: sigma of the data given) on chunks of 8192 voxels (the command's default), CPU seconds -> voxels/s. Run with the
-#: PYTHONPATH of the tree to measure, so that another checkout (``--baseline``) is timed by the same code.
+#: PYTHONPATH of the tree to measure, so that another checkout (``--baseline``) is timed by the same code; it
+#: prints the rate and where qmap came from (checked).
 FIT_STAGE_EPG = """
-import sys, time
+import os, sys, time
 import numpy as np
+import qmap
 from threadpoolctl import threadpool_limits
 from qmap.fitting.noise_floor import NoiseFloor
 from qmap.fitting.solver import fit_chunk
@@ -439,18 +441,22 @@ with threadpool_limits(1):
     for i in range(0, y.shape[0], chunk):
         part = y[i:i + chunk]
         fit_chunk(model, part, noise=NoiseFloor("rician"), sigma=np.full(part.shape[0], sigma))
-    print(y.shape[0] / (time.process_time() - t))
+    print(y.shape[0] / (time.process_time() - t), os.path.dirname(os.path.dirname(qmap.__file__)))
 """
 
 
 def fit_stage_rate(sample: Path, esp: float, sigma: float, tree: Path | None = None) -> float:
     """Voxels/s of the ``t2 --epg`` fit stage alone (:data:`FIT_STAGE_EPG`) with qmap from ``tree`` (default: this one)."""
     env = dict(os.environ, PYTHONPATH=str(tree or HERE.parent))
+    # (run from the sample's folder: ``python -c`` puts the working directory first on the path)
     res = subprocess.run([sys.executable, "-c", FIT_STAGE_EPG, str(sample), str(esp), str(sigma)], env=env,
-                         capture_output=True, text=True, check=False)
+                         cwd=sample.parent, capture_output=True, text=True, check=False)
     if res.returncode:
         sys.exit(f"benchmark: the t2 --epg fit stage failed with qmap from {tree or HERE.parent}:\n{res.stderr}")
-    return float(res.stdout.strip().splitlines()[-1])
+    rate, origin = res.stdout.split()
+    if Path(origin).resolve() != Path(tree or HERE.parent).resolve():
+        sys.exit(f"benchmark: the fit stage imported qmap from {origin}, not from {tree or HERE.parent}")
+    return float(rate)
 
 
 def case_t2_epg(nvox, work: Path, rng, baseline: Path | None = None):
