@@ -35,7 +35,7 @@ import numpy as np
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..models.base import Derived, SeparableModel
-from .optimizer import levenberg_marquardt
+from .optimizer import levenberg_marquardt, row_min
 
 __all__ = ["DEFAULT_MODE", "MODES", "NOISE_ONLY_Z", "RICIAN_SWITCH", "Mode", "NoiseFloor", "WithOffset"]
 
@@ -218,7 +218,7 @@ class NoiseFloor:
         """Indices of the voxels whose Gaussian fit ``p`` comes within ``RICIAN_SWITCH`` sigma of the floor."""
         sig = np.broadcast_to(np.asarray(sigma, float), p.shape[:1])
         s = model.predict(p, ctx)
-        return np.flatnonzero(np.min(s, axis=1) < RICIAN_SWITCH * sig)
+        return np.flatnonzero(row_min(s) < RICIAN_SWITCH * sig)
 
     def rician_refine(self, model, y, w, p, rss, J, conv, nit, sigma, ctx, lo, hi, *, max_iter=60, select=None,
                       se_tol=1e-3):

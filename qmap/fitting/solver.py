@@ -49,7 +49,7 @@ from ..linalg import chol_inverse, chol_solve
 from ..models.base import SeparableModel
 from .noise_floor import RICIAN_SWITCH, NoiseFloor
 from .optimizer import gram as _normal
-from .optimizer import levenberg_marquardt
+from .optimizer import levenberg_marquardt, row_all, row_any, row_max, row_min
 
 __all__ = ["ChunkFit", "fit_chunk", "grid_start", "levenberg_marquardt", "linear_amplitudes", "voxel_scale"]
 
@@ -226,7 +226,7 @@ def voxel_scale(y: np.ndarray) -> np.ndarray:
     scale and are multiplied back afterwards, while the non-linear parameters,
     R-squared and the status are those of the normalised problem.
     """
-    s = np.max(np.abs(y), axis=1) if y.shape[1] else np.ones(y.shape[0])
+    s = row_max(np.abs(y)) if y.shape[1] else np.ones(y.shape[0])
     return np.where(np.isfinite(s) & (s > 0), s, 1.0)
 
 
@@ -392,7 +392,10 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     cov = inv * s2[:, None, None]
     if sigma is not None and stderr == "noise":
         if noise.rician:
-            cov = _rician_covariance(fit_model, p, J, inv, cov, wl, sigma, ctx, noise.coils)
+            # without a stand-in the voxels not refined by the Rician fit kept the parameters whose lowest
+            # sample was found above the floor: only the refined ones can be near it
+            cov = _rician_covariance(fit_model, p, J, inv, cov, wl, sigma, ctx, noise.coils,
+                                     rows=sel if guide is None else None)
         if getattr(model, "sign_ambiguous", False):
             cov = _widen_near_null(fit_model, p, J, cov, wl, s2, ctx)
     # quality
@@ -406,11 +409,11 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     status[~conv] = st.NOT_CONVERGED
     theta = p[:, L:]
     span = hi_nl - lo_nl
-    at_bound = np.any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span), axis=1)
+    at_bound = row_any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span))
     status[at_bound] = st.AT_BOUND
     cov[at_bound] = np.inf  # never a small standard error for an estimate pinned at a bound
     diag = np.einsum("npp->np", inv)
-    ill = ~np.all(np.isfinite(diag) & (diag >= 0), axis=1)
+    ill = ~row_all(np.isfinite(diag) & (diag >= 0))
     status[ill & (status == 0)] = st.ILL_CONDITIONED
     # all samples equal: the non-linear parameters are not determined by the data at all
     status[(tss == 0) & (status == 0)] = st.ILL_CONDITIONED
@@ -437,22 +440,28 @@ def _refine_rows(model, rows: np.ndarray, y: np.ndarray, w: np.ndarray | None, s
     return p, rss, J, conv, nit
 
 
-def _rician_covariance(fit_model, p, J, inv, cov, w, sigma, ctx, coils):
+def _rician_covariance(fit_model, p, J, inv, cov, w, sigma, ctx, coils, rows=None):
     """Sandwich covariance with the Rician sample variances, for the voxels near the noise floor.
 
     ``J`` there is already the Jacobian of the Rician expectation (the fit's
     own model); far from the floor (lowest sample above ``RICIAN_SWITCH``
     sigma) the variance is sigma^2 to better than 0.25 % and ``cov`` is kept.
+    ``rows`` (indices), when given, are the only voxels that can be near the floor.
     """
     from .uncertainty import rician_sample_variance, sandwich
 
     n = p.shape[0]
     sig = np.broadcast_to(np.asarray(sigma, float), (n,))
-    s = fit_model.predict(p, ctx)
-    sel = np.flatnonzero(np.min(s, axis=1) < RICIAN_SWITCH * sig)
-    if sel.size == 0:
+    rows = np.arange(n) if rows is None else np.asarray(rows, np.intp)
+    if rows.size == 0:
         return cov
-    var = rician_sample_variance(s[sel], sig[sel, None], coils=coils)
+    s = fit_model.predict(p[rows], _take(ctx, rows))
+    near = np.flatnonzero(row_min(s) < RICIAN_SWITCH * sig[rows])
+    if near.size == 0:
+        return cov
+    sel = rows[near]
+    s = s[near]
+    var = rician_sample_variance(s, sig[sel, None], coils=coils)
     cov = cov.copy()
     cov[sel] = sandwich(J[sel], inv[sel], var, None if w is None else w[sel])
     return cov
