@@ -746,10 +746,24 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
     return _Background(
         values=np.concatenate(values, axis=0).reshape(-1, n) if values else np.zeros((0, n)),
         index=np.concatenate(index) if index else np.zeros(0, np.int64),
-        obj_peak=np.asarray(obj_peak, np.float64), n_outside=n_out, n_usable=n_usable, n_zero=n_zero,
+        obj_peak=np.asarray(obj_peak), n_outside=n_out, n_usable=n_usable, n_zero=n_zero,
         n_nonfinite=n_nonfinite, n_samples=n_samples, mask_fraction=float(obj.mean()) if obj.size else 0.0,
         shape=tuple(obj.shape),
     )
+
+
+def _median64(values: np.ndarray) -> float:
+    """``np.median`` of ``values`` taken in float64, without a float64 copy of them (the peak image is float32).
+
+    The median is one order statistic (odd count) or the float64 mean of two; both are exact whatever the
+    storage type, so this is ``float(np.median(values.astype(np.float64)))`` to the bit.
+    """
+    n = values.size
+    k = n // 2
+    if n % 2:
+        return float(np.partition(values, k)[k])
+    part = np.partition(values, [k - 1, k])
+    return float((np.float64(part[k - 1]) + np.float64(part[k])) / 2.0)
 
 
 def _background_samples(values: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
@@ -764,14 +778,18 @@ def _background_samples(values: np.ndarray) -> tuple[np.ndarray, float, np.ndarr
         values = values[:, None]
     fin = np.isfinite(values)
     live = (fin & (values != 0)).any(axis=1)
-    rows = np.broadcast_to(np.arange(values.shape[0])[:, None], values.shape)
+    rtype = np.int32 if values.shape[0] < 2**31 else np.int64  # row numbers: half the memory of int64
+    rows = np.broadcast_to(np.arange(values.shape[0], dtype=rtype)[:, None], values.shape)
     sel = fin & live[:, None]
+    del fin, live
     bg = values[sel].astype(np.float64)
     row = rows[sel]
-    q = _quantum(bg[bg != 0]) if bg.size else 0.0
+    del sel
+    nz = bg != 0
+    nonzero = bg[nz]
+    q = _quantum(nonzero) if bg.size else 0.0
     if q == 0.0:
-        nz = bg != 0
-        bg, row = bg[nz], row[nz]
+        bg, row = nonzero, row[nz]
     return bg, q, row
 
 
@@ -803,7 +821,8 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
                          "a magnitude image (a real-valued or phase export?)")
     med_bg = float(np.median(bg))
     obj = b.obj_peak[np.isfinite(b.obj_peak)]
-    med_obj = float(np.median(obj)) if obj.size else 0.0
+    med_obj = _median64(obj) if obj.size else 0.0
+    del obj
     if not med_bg * 3.0 <= med_obj:
         raise InputError(
             f"cannot estimate the noise from the background: it is not pure noise (background median {med_bg:.4g} "
@@ -854,10 +873,10 @@ def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
     """A note when the background noise differs between halves of the image along x or y (else "")."""
     if bg.size < 4 * _MIN_COIL_SAMPLES or index.size == 0:
         return ""
-    coords = np.unravel_index(index[rows], shape)
+    flat = index[rows]
     worst = (1.0, "")
-    for axis in (0, 1):
-        key = coords[axis]
+    for axis in (0, 1):  # the voxel's x, then y (C order), one at a time: np.unravel_index's coordinates
+        key = flat // (shape[1] * shape[2]) if axis == 0 else (flat // shape[2]) % shape[1]
         cut = 0.5 * (shape[axis] - 1)
         a, b2 = bg[key < cut], bg[key > cut]
         if min(a.size, b2.size) < _MIN_COIL_SAMPLES:

@@ -496,3 +496,13 @@ def test_cross_morphology_matches_scipy_ndimage(shape, fill):
     assert np.array_equal(dilate_cross(erode_cross(a)), ndimage.binary_opening(a))
     for it in (1, 3):
         assert np.array_equal(dilate_cross(a, it), ndimage.binary_dilation(a, iterations=it))
+
+
+def test_median64_is_numpys_float64_median_to_the_bit():
+    # the object's peak stays float32 (memory); its median must be np.median of the float64 values exactly
+    from qmap.noise_level import _median64
+
+    rng = np.random.default_rng(7)
+    for n in (1, 2, 3, 10, 1001, 20000):
+        x = (rng.lognormal(5.0, 1.0, n)).astype(np.float32)
+        assert _median64(x) == float(np.median(x.astype(np.float64))), n
