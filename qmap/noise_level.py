@@ -670,9 +670,12 @@ def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
     :math:`\\mu_2 = m_2 - h^2/12`, :math:`\\mu_4 = m_4 - m_2 h^2/2 + 7h^4/240`; from memory).
     The standard error of ``r`` is the delta-method one from the sample moments.
     """
-    x2 = bg * bg
+    xs = np.empty((2, bg.size))  # rows x^2 and x^4, made in place (no separate arrays and stacked copy)
+    x2, x4 = xs
+    np.multiply(bg, bg, out=x2)
+    np.multiply(x2, x2, out=x4)
     m2 = float(np.mean(x2))
-    m4 = float(np.mean(x2 * x2))
+    m4 = float(np.mean(x4))
     if quantum > 0:
         h2 = quantum * quantum
         m4 = m4 - m2 * h2 / 2 + 7 * h2 * h2 / 240
@@ -682,7 +685,7 @@ def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
     r = m4 / (m2 * m2)
     # delta method for r = m4 / m2^2 with the sample covariance of (x^2, x^4)
     g = np.array([-2.0 * m4 / m2**3, 1.0 / m2**2])
-    cov = np.cov(np.vstack([x2, x2 * x2])) / bg.size
+    cov = np.cov(xs) / bg.size
     se_r = float(np.sqrt(max(g @ cov @ g, 0.0)))
     if r <= 1.0:
         return float("inf"), se_r
@@ -711,8 +714,7 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
     n_out = int(bg.sum())
     k = max(1, -(-n_out * source.n // SIGMA_SAMPLES))
     # the sampled background voxels: every k-th flat (C-order) index, without a volume of indices
-    kept = np.flatnonzero(bg)
-    kept = kept[kept % k == 0]
+    kept = np.flatnonzero(bg.reshape(-1)[::k]) * k  # the background's flat (C-order) indices that are multiples of k
     kept_z = kept % bg.shape[2]
     values, index, peaks = [], [], []
     n_usable = n_zero = n_nonfinite = n_samples = 0
@@ -873,7 +875,7 @@ def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
     """A note when the background noise differs between halves of the image along x or y (else "")."""
     if bg.size < 4 * _MIN_COIL_SAMPLES or index.size == 0:
         return ""
-    flat = index[rows]
+    flat = (index.astype(np.int32) if np.prod(shape) < 2**31 else index)[rows]  # half the memory of int64
     worst = (1.0, "")
     for axis in (0, 1):  # the voxel's x, then y (C order), one at a time: np.unravel_index's coordinates
         key = flat // (shape[1] * shape[2]) if axis == 0 else (flat // shape[2]) % shape[1]

@@ -12,6 +12,7 @@ writes its provenance, or removes them when anything fails: all or nothing, as b
 
 from __future__ import annotations
 
+import dataclasses
 import weakref
 from collections.abc import Callable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -90,6 +91,7 @@ class MapStream:
         self.specs = specs
         self.writer = AtomicWriter(out_dir, overwrite=overwrite, lock_at_commit=True)
         self.streams: dict[str, NiftiStream] = {}
+        self.outputs: list[OutputFile] = []  # the streamed files (without data), in the order of specs()
         self.status = np.zeros(self.shape, np.uint8)
         self.first: MapSet | None = None
         self.info: dict | None = None  # the first slab's, with the counts summed over the slabs
@@ -106,10 +108,13 @@ class MapStream:
     def add(self, part: MapSet, z0: int, z1: int) -> None:
         """The maps of the slices ``z0:z1`` (slabs arrive in z order, each exactly once)."""
         if self.first is None:
-            self.first = part
+            # what the maps are (names, units, descriptions, info), without the first slab's arrays
+            self.first = MapSet({}, {}, dict(part.units), dict(part.descriptions), part.time_params, {},
+                                np.zeros(0, np.uint8), dict(part.info))
             self.writer.__enter__()
             self._open = True
             for out in self.specs(part):
+                self.outputs.append(dataclasses.replace(out, data=None))
                 self.streams[out.name] = self.writer.open_stream(out, self.shape, self.affine, self.ref_header)
         self.status[:, :, z0:z1] = part.status
         self.info = join_info(self.info, part)
@@ -121,6 +126,7 @@ class MapStream:
 
     def _write(self, part: MapSet) -> None:
         for out in self.specs(part):
+            assert out.data is not None, "specs() gives the slab's maps"
             self.streams[out.name].append(out.data)
 
     def _wait(self) -> None:
@@ -138,7 +144,7 @@ class MapStream:
         assert first is not None, "at least one slab was added"
 
         groups: dict[str, dict] = {"estimate": {}, "stderr": {}, "quality": {}}
-        for out in self.specs(first):
+        for out in self.outputs:
             if out.kind in groups:
                 groups[out.kind][out.parameter] = (self._where(out.name), out.scale)
         est, se, qual = (FileMaps(groups[k]) for k in ("estimate", "stderr", "quality"))

@@ -86,7 +86,7 @@ class OutputFile:
     """One NIfTI output: data plus what provenance and the sidecar say about it."""
 
     name: str
-    data: np.ndarray
+    data: np.ndarray | None  # None: a map streamed into its file slab by slab (NiftiStream)
     parameter: str
     kind: str
     units: str
@@ -444,6 +444,8 @@ class AtomicWriter:
         final = self._final(out.name)
         tmp = self._tmp(out.name)
         self._pending.append((tmp, final))
+        if out.data is None:
+            raise ValueError(f"{out.name}: no data to write (a streamed map is completed by finish_stream)")
         data = out.data if out.scale == 1.0 else np.asarray(out.data) * out.scale
         img = nifti_for(data, affine, ref_header, kind=out.kind, parameter=out.parameter, units=out.units)
         try:
