@@ -10,6 +10,7 @@ import pytest
 
 import qmap
 from qmap.docstrings import PARAMETERS, shared_parameters
+from qmap.maps import Execution
 from qmap.noise_level import background_estimate, estimate_noise
 from qmap.workflows.decay import DecayOptions, DecaySettings, T2Options, run_t2star
 from qmap.workflows.ir import fit_t1_ir, run_t1_ir
@@ -118,9 +119,11 @@ def test_array_fits_take_the_options_by_keyword_as_before():
 
 
 @pytest.mark.parametrize("func, sets", [
-    (qmap.fit_decay, (DecayOptions,)),
-    (qmap.fit_t2star, (DecayOptions,)),
-    (qmap.fit_t2, (T2Options,)),
+    (qmap.fit_decay, (DecayOptions, Execution)),
+    (qmap.fit_t2star, (DecayOptions, Execution)),
+    (qmap.fit_t2, (T2Options, Execution)),
+    (qmap.fit_t1_ir, (Execution,)),
+    (qmap.fit_t1_vfa, (Execution,)),
     (run_t2star, (DecayOptions,)),
     (run_t2, (T2Options,)),
     (fit_t2_spectrum, (SpectrumOptions,)),

@@ -221,7 +221,7 @@ def run_t1_ir(
     return report
 
 
-@shared_parameters("mask", "execution")
+@shared_parameters("mask", "execution", keys=(Execution,))
 def fit_t1_ir(
     data,
     ti,

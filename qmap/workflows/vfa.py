@@ -92,7 +92,7 @@ def protocol_check(fa, tr: float, t1_typical: float = T1_TYPICAL) -> tuple[dict,
 
 
 # ------------------------------------------------------------------ fitting
-@shared_parameters("mask")
+@shared_parameters("mask", keys=(Execution,))
 def fit_t1_vfa(
     data,
     fa,
