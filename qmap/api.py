@@ -40,7 +40,7 @@ def fit_decay(data, te, *, param: str = "T2star", mask=None, **options: Unpack[D
         ``maps[param]``, ``maps["R..."]``, ``maps["M0"]``, their ``stderr``,
         ``quality`` and ``status``.
     """
-    settings, execution = DecaySettings.split(options, DecayOptions.__optional_keys__)
+    settings, execution = DecaySettings.split(options, DecayOptions.__optional_keys__, Execution.__optional_keys__)
     data = np.asarray(data)
     te = np.asarray(te, float)
     if settings.drop_first:

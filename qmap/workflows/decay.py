@@ -90,19 +90,21 @@ class DecaySettings:
     t1: float = DEFAULT_T1
 
     @classmethod
-    def split(cls, options: Mapping[str, Any], keys: frozenset[str]) -> tuple[DecaySettings, dict[str, Any]]:
-        """The settings from the ``keys`` (an options TypedDict's) of ``options``, and the other options."""
+    def split(cls, options: Mapping[str, Any], keys: frozenset[str],
+              others: frozenset[str] = frozenset()) -> tuple[DecaySettings, dict[str, Any]]:
+        """The settings from the ``keys`` (an options TypedDict's) of ``options``, and the ``others`` given.
+
+        Raises
+        ------
+        TypeError
+            A name in neither ``keys`` nor ``others`` (as for any unknown keyword argument).
+        """
+        unknown = sorted(set(options) - keys - others)
+        if unknown:
+            raise TypeError(f"unexpected keyword argument(s) {', '.join(map(repr, unknown))}; the options are "
+                            f"{', '.join(sorted(keys | others))}")
         return (cls(**{k: v for k, v in options.items() if k in keys}),
                 {k: v for k, v in options.items() if k not in keys})
-
-    @classmethod
-    def of(cls, options: Mapping[str, Any], keys: frozenset[str]) -> DecaySettings:
-        """The settings from ``options``, which may hold only the ``keys`` (TypeError otherwise)."""
-        settings, unknown = cls.split(options, keys)
-        if unknown:
-            raise TypeError(f"unexpected keyword argument(s) {', '.join(map(repr, sorted(unknown)))}; the options are "
-                            f"{', '.join(sorted(keys))}")
-        return settings
 
     def noise(self, coils: int | None = None) -> NoiseFloor:
         """The noise-floor handling (``coils``: the background's count where :attr:`coils` is None)."""
@@ -140,7 +142,7 @@ def run_t2star(inputs, *, common: CommonOptions, te=None, **options: Unpack[Deca
         The keyword options of :class:`DecayOptions`; see Other Parameters.
     """
     t0 = time.perf_counter()
-    settings = DecaySettings.of(options, DecayOptions.__optional_keys__)
+    settings, _ = DecaySettings.split(options, DecayOptions.__optional_keys__)
     series, notes = load_echoes(inputs, te=te, drop_first=settings.drop_first, common=common)
     model, _ = build_model("t2star", None, series.acquisition["EchoTime"])  # the registry's model of t2star
     return run_fit(

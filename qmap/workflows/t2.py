@@ -95,7 +95,7 @@ def fit_t2(data, te, *, mask=None, **options: Unpack[T2FitOptions]) -> MapSet:
     >>> float(np.round(maps["T2"][0, 0, 0], 6)), float(np.round(maps["RefocusScale"][0, 0, 0], 4))
     (0.08, 1.0)
     """
-    settings, execution = DecaySettings.split(options, T2Options.__optional_keys__)
+    settings, execution = DecaySettings.split(options, T2Options.__optional_keys__, Execution.__optional_keys__)
     data = np.asarray(data)
     model, info = t2_model(te, epg=settings.epg, refocus_deg=settings.refocus_deg, t1=settings.t1,
                            drop_first=settings.drop_first)
@@ -121,7 +121,7 @@ def run_t2(inputs, *, common: CommonOptions, te=None, **options: Unpack[T2Option
         The keyword options of :class:`~qmap.workflows.decay.T2Options`; see Other Parameters.
     """
     t0 = time.perf_counter()
-    s = DecaySettings.of(options, T2Options.__optional_keys__)
+    s, _ = DecaySettings.split(options, T2Options.__optional_keys__)
     series, notes = load_echoes(inputs, te=te, drop_first=False, common=common)
     te_all = np.asarray(series.acquisition["EchoTime"], float)
     model, info = t2_model(te_all, epg=s.epg, refocus_deg=s.refocus_deg, t1=s.t1, drop_first=s.drop_first)
