@@ -14,11 +14,15 @@ import numpy as np
 
 from .docstrings import shared_parameters
 from .maps import Execution, MapSet, execution_kwargs, fit_volume
+from .models import build_model
 from .models.base import SeparableModel
-from .models.monoexp import MonoExponential
 from .workflows.decay import DecayFitOptions, DecayOptions, DecaySettings
 
 __all__ = ["b1_maps", "fit_decay", "fit_t1_ir", "fit_t1_vfa", "fit_t2", "fit_t2star"]
+
+
+#: the decay time named in the outputs -> the command whose (default) model fits it
+_DECAY_COMMANDS = {"T2star": "t2star", "T2": "t2"}
 
 
 @shared_parameters("mask", "decay_options", keys=(DecayOptions, Execution))
@@ -45,7 +49,9 @@ def fit_decay(data, te, *, param: str = "T2star", mask=None, **options: Unpack[D
     te = np.asarray(te, float)
     if settings.drop_first:
         data, te = data[..., 1:], te[1:]
-    model = MonoExponential(te, param=param)
+    if param not in _DECAY_COMMANDS:
+        raise ValueError(f"param={param!r}; expected 'T2star' or 'T2'")
+    model, _ = build_model(_DECAY_COMMANDS[param], None, te)  # the registry's mono-exponential of that command
     return _fit_with_noise_floor(model, data, settings, mask=mask, execution=execution)
 
 

@@ -53,9 +53,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError
-from .models.ir import InversionRecovery
-from .models.monoexp import MonoExponential
-from .models.vfa import SpoiledGRE
+from .models import build_model
 
 __all__ = ["METHODS", "PlanResult", "cv_table", "default_limits", "plan", "predicted_cv"]
 
@@ -185,18 +183,21 @@ class PlanResult:
 
 # ----------------------------------------------------------------------------- the bound
 def _truth_and_model(method: str, x: np.ndarray, values: np.ndarray, tr: float | None):
-    """The fitted model at samples ``x`` and the true parameters (R, P) for relaxation times ``values``."""
+    """The fitted model at samples ``x`` and the true parameters (R, P) for relaxation times ``values``.
+
+    The model is the one the method's fitting command fits by default (the model registry's choice):
+    inversion recovery (as phase-sensitive real data, the best case), spoiled gradient echo, the
+    mono-exponential decay (T2 or T2*).
+    """
     values = np.asarray(values, float)
     one = np.ones_like(values)
+    if method == "vfa" and tr is None:
+        raise ValueError("the VFA model needs the repetition time tr (s)")
+    model, _ = build_model(_METHODS[method].command, None, x, signal="real", tr=None if tr is None else float(tr))
     if method == "ir":
         recovery = np.zeros_like(values) if tr is None else np.exp(-tr / values)
-        return InversionRecovery(x, signal="real"), np.stack([1.0 + recovery, -2.0 * one, values], axis=1)
-    if method == "vfa":
-        if tr is None:
-            raise ValueError("the VFA model needs the repetition time tr (s)")
-        return SpoiledGRE(x, float(tr)), np.stack([one, values], axis=1)
-    param = "T2" if method == "t2" else "T2star"
-    return MonoExponential(x, param=param), np.stack([one, values], axis=1)
+        return model, np.stack([1.0 + recovery, -2.0 * one, values], axis=1)
+    return model, np.stack([one, values], axis=1)
 
 
 def predicted_cv(method: str, samples, values, *, snr: float, tr: float | None = None) -> np.ndarray:
