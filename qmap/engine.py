@@ -102,17 +102,19 @@ def dask_client(scheduler: str, *, timeout: float = 20):
 
     Raises :class:`~qmap.errors.UsageError` (one line) when the cluster extra is not installed or the
     scheduler cannot be reached within ``timeout`` seconds. The client is not made the default; close it.
+    Messages name the argument (``scheduler='tcp://...'``); the command line shows its ``--scheduler``.
     """
     from .errors import UsageError
 
     try:
         from dask.distributed import Client
     except ImportError:
-        raise UsageError("--scheduler needs the cluster extra: pip install 'qmap[cluster]' (dask[distributed])") from None
+        raise UsageError(f"scheduler={scheduler!r}: needs the cluster extra: pip install 'qmap[cluster]' "
+                         f"(dask[distributed])") from None
     try:
         return Client(scheduler, timeout=timeout, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
-        raise UsageError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); check the address") from None
+        raise UsageError(f"scheduler={scheduler!r}: cannot reach the Dask scheduler ({exc}); check the address") from None
 
 
 def _fit_one(problem: FitProblem, y, ctx, sigma):

@@ -157,3 +157,16 @@ def test_every_translated_argument_is_an_option_of_some_command():
     options = {s for p in sub.choices.values() for a in p._actions for s in a.option_strings}
     assert set(ARGUMENT_OPTIONS.values()) <= options, set(ARGUMENT_OPTIONS.values()) - options
     assert as_options("coils=(1, 2) and overwrite=True") == "--coils 1,2 and --overwrite"
+
+
+def test_scheduler_message_names_the_argument_and_the_command_line_its_option():
+    # qmap.engine.dask_client serves the array API's scheduler= and the commands' --scheduler; a closed port
+    # on the loopback address is refused (nothing is sent anywhere else)
+    from qmap.engine import dask_client
+
+    with pytest.raises(UsageError) as exc:
+        dask_client("tcp://127.0.0.1:1", timeout=1)
+    msg = str(exc.value)
+    assert msg.startswith("scheduler='tcp://127.0.0.1:1': cannot reach the Dask scheduler") and "check the address" in msg
+    _no_option(msg)
+    assert as_options(msg).startswith("--scheduler tcp://127.0.0.1:1: cannot reach the Dask scheduler")

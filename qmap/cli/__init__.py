@@ -208,6 +208,8 @@ ARGUMENT_OPTIONS = {
     "mese_echoes": "--echoes",
     "out_dir": "-o",
     "overwrite": "--overwrite",
+    # the Dask cluster (qmap.engine.dask_client: the array API's scheduler=, fitting commands and batch)
+    "scheduler": "--scheduler",
 }
 _ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
 
