@@ -486,7 +486,11 @@ def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[fl
     kept = bg
     new = sigma
     for _ in range(20):
+        size = kept.size
         kept = bg[bg <= tail * sigma]
+        if kept.size == size:  # {x <= limit} with as many values: the same values, the same median
+            new = sigma
+            break
         new = _median_sigma(kept, quantum, coils)
         if abs(new - sigma) <= 1e-9 * sigma:
             break
