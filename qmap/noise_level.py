@@ -196,12 +196,13 @@ def peak_image(block: npt.ArrayLike) -> np.ndarray:
     with np.errstate(invalid="ignore"):
         if np.iscomplexobj(block):
             peak = np.fmax.reduce(np.abs(block), axis=3)
-        else:
-            lo = np.fmin.reduce(block, axis=3)
-            peak = np.fmax.reduce(block, axis=3)
-            np.negative(lo, out=lo)
-            np.fmax(peak, lo, out=peak)  # real-valued data may be negative (phase-corrected IR)
-            del lo
+        else:  # real-valued data may be negative (phase-corrected IR): the largest |value|, one volume at a time
+            # (one pass over the series; a temporary of one volume)
+            peak = np.abs(block[..., 0])
+            tmp = np.empty_like(peak)
+            for v in range(1, block.shape[3]):
+                np.fmax(peak, np.abs(block[..., v], out=tmp), out=peak)
+            del tmp
     bad = ~np.isfinite(peak)
     if bad.any():  # rare: only the voxels holding +-inf (or nothing finite at all) are looked at again
         sub = np.abs(block[bad])
