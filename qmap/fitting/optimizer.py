@@ -82,6 +82,23 @@ def _solve_normal(JTJ: np.ndarray, g: np.ndarray) -> np.ndarray:
     return chol_solve(JTJ, g)
 
 
+def _negligible_step(step: np.ndarray, p: np.ndarray, rss: np.ndarray, H: np.ndarray, m_dof: int, xtol: float,
+                     se_tol: float) -> np.ndarray:
+    """Rows (n,) whose proposed step ``|dp|`` (n, P) from ``p`` is negligible.
+
+    Every component is below ``xtol`` relative (``xtol (|p| + xtol)``), or, with residual degrees of freedom
+    ``m_dof > 0``, below ``se_tol`` of ``s / sqrt(H_ii)`` (``s^2 = RSS / m_dof``, ``H`` the undamped
+    ``J^T J``): a lower bound of each parameter's standard error, so the step is negligible against the
+    statistical uncertainty.
+    """
+    small = row_all(step <= xtol * (np.abs(p) + xtol))
+    if m_dof > 0:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            se_floor = np.sqrt(rss / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", H))
+        small |= row_all(step <= se_tol * se_floor)
+    return small
+
+
 def _gauss_newton(evaluate: Evaluate, y, p, r, rss, J, converged, n_iter, lo, hi, *, steps: int, xtol: float,
                   ftol: float, se_tol: float) -> tuple:
     """Undamped Gauss-Newton steps for the unweighted voxels (see :func:`levenberg_marquardt`).
@@ -111,12 +128,7 @@ def _gauss_newton(evaluate: Evaluate, y, p, r, rss, J, converged, n_iter, lo, hi
         inside = row_all((pn >= lo) & (pn <= hi) & np.isfinite(pn))
         if live is not None:
             inside &= live
-        step = np.abs(pn - pa)
-        small = row_all(step <= xtol * (np.abs(pa) + xtol))
-        if m_dof > 0:
-            with np.errstate(divide="ignore", invalid="ignore"):
-                se_floor = np.sqrt(rssa / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", JTJ))
-            small |= row_all(step <= se_tol * se_floor)
+        small = _negligible_step(np.abs(pn - pa), pa, rssa, JTJ, m_dof, xtol, se_tol)
         small &= inside
         rows = np.flatnonzero(small)  # positions in the (gathered or whole) arrays
         done = rows if dense else act[rows]
@@ -273,14 +285,7 @@ def levenberg_marquardt(
         # predicted RSS decrease of the (projected) step from the linear model: dc^T (2 g - H dc)
         dc = pn - wp
         pred = np.einsum("np,np->n", dc, 2 * g - np.einsum("npq,nq->np", H, dc))
-        step = np.abs(pn - wp)
-        small_step = row_all(step <= xtol * (np.abs(wp) + xtol))
-        # ... or negligible against the statistical uncertainty: below se_tol of s / sqrt(H_ii), a lower
-        # bound of each parameter's standard error (s^2 = RSS / dof)
-        if m_dof > 0:
-            with np.errstate(divide="ignore", invalid="ignore"):
-                se_floor = np.sqrt(wrss / m_dof)[:, None] / np.sqrt(np.einsum("npp->np", H))
-            small_step |= row_all(step <= se_tol * se_floor)
+        small_step = _negligible_step(np.abs(pn - wp), wp, wrss, H, m_dof, xtol, se_tol)
         # a small step only means convergence when it was not made small by heavy damping
         small_step &= lam <= 1.0
         # a voxel whose proposed step is already negligible has converged where it is: it is not evaluated

@@ -94,6 +94,19 @@ def _rician_mean(nu, sigma):
     return sigma * np.sqrt(np.pi / 2) * ((1 + 2 * x) * i0e(x) + 2 * x * i1e(x))
 
 
+def _rician_fits(y):
+    """The exact model alone and the fast path (the table) fitting ``y`` under the Rician objective with sigma 8.
+
+    Returns (exact model, fast model, exact fit, fast fit); both fits must succeed in every voxel.
+    """
+    exact, fast = EpgT2(np.arange(1, E + 1) * ESP), EpgT2(np.arange(1, E + 1) * ESP)
+    exact.surrogate = None
+    nf, sig = NoiseFloor("rician"), np.full(len(y), 8.0)
+    a, b = fit_chunk(exact, y, noise=nf, sigma=sig), fit_chunk(fast, y, noise=nf, sigma=sig)
+    assert np.all(a.status == 0) and np.all(b.status == 0)
+    return exact, fast, a, b
+
+
 def test_rician_fit_through_the_table_matches_the_exact_model_fit():
     # the default noise floor (rician) on a 32-echo train decaying into the floor: every voxel takes the Rician
     # objective; the fast path (table fits, a looser plain fit, then the exact Rician fit stopped at 1e-2 of the
@@ -103,12 +116,7 @@ def test_rician_fit_through_the_table_matches_the_exact_model_fit():
     t2 = rng.uniform(0.03, 0.12, n)
     s = 1000.0 * cpmg_echoes(t2, rng.uniform(0.85, 1.0, n), esp=ESP, n_echoes=E)
     y = np.abs(s + rng.normal(0, 8, s.shape) + 1j * rng.normal(0, 8, s.shape))
-    fast = EpgT2(np.arange(1, E + 1) * ESP)
-    exact = EpgT2(np.arange(1, E + 1) * ESP)
-    exact.surrogate = None
-    nf, sig = NoiseFloor("rician"), np.full(n, 8.0)
-    a, b = fit_chunk(exact, y, noise=nf, sigma=sig), fit_chunk(fast, y, noise=nf, sigma=sig)
-    assert np.all(a.status == 0) and np.all(b.status == 0)
+    exact, fast, a, b = _rician_fits(y)
     se = np.sqrt(np.einsum("npp->np", b.cov))
     assert np.all(np.abs(a.params - b.params) <= 0.02 * se)
     assert np.allclose(b.rss, a.rss, rtol=1e-5)
@@ -128,12 +136,7 @@ def test_noise_free_trains_fit_as_with_the_exact_model_alone():
     n = 150
     t2, b1 = rng.uniform(0.02, 0.2, n), rng.uniform(0.6, 1.0, n)
     y = 1000.0 * cpmg_echoes(t2, b1, esp=ESP, n_echoes=E, scale_excitation=False)
-    fast = EpgT2(np.arange(1, E + 1) * ESP)
-    exact = EpgT2(np.arange(1, E + 1) * ESP)
-    exact.surrogate = None
-    nf, sig = NoiseFloor("rician"), np.full(n, 8.0)
-    a, b = fit_chunk(exact, y, noise=nf, sigma=sig), fit_chunk(fast, y, noise=nf, sigma=sig)
-    assert np.all(a.status == 0) and np.all(b.status == 0)
+    _, fast, a, b = _rician_fits(y)
     se_a, se_b = (np.sqrt(np.einsum("npp->np", f.cov)) for f in (a, b))
     assert np.max(np.abs(b.params[:, 1] / a.params[:, 1] - 1)) < 1e-4
     assert np.all(np.abs(b.params - a.params) <= 0.01 * se_b)
