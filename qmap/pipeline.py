@@ -523,31 +523,19 @@ class PreparedRun:
         return list(self._each_slab(fn, self.slabs if slabs is None else slabs, progress))
 
     def _each_slab(self, fn, slabs: list[tuple[int, int]], progress=None):
-        """``fn(slab)`` for each slab, in z order; a series on disk reads slab k + 1 in a thread meanwhile."""
+        """``fn(slab)`` for each slab, in z order, each read when it is its turn.
+
+        (Reading slab k + 1 in a thread while slab k fits was measured: no gain on 2 cores, whose both
+        cores the fit uses, and one more slab in memory; so the slabs are read in turn.)
+        """
         self.series._peak = None  # only the mask and the noise estimate needed it
         if len(slabs) > 1 and self.series.lazy:
             self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
-        ahead = None
-        pool = None
-        if len(slabs) > 1 and self.series.lazy:
-            from concurrent.futures import ThreadPoolExecutor
-
-            pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="qmap-read")
-        try:
-            for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
-                data = ahead.result() if ahead is not None else self.series.read(z0, z1)
-                ahead = None
-                if pool is not None and k + 1 < len(slabs):  # the next slab decompresses while this one fits
-                    ahead = pool.submit(self.series.read, *slabs[k + 1])
-                sigma = self.sigma
-                if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
-                    sigma = sigma[:, :, z0:z1]
-                slab = Slab(data, self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs), progress)
-                del data
-                yield fn(slab)
-        finally:
-            if pool is not None:
-                pool.shutdown(wait=True, cancel_futures=True)
+        for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
+            sigma = self.sigma
+            if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
+                sigma = sigma[:, :, z0:z1]
+            yield fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs), progress))
 
     def map_slabs(self, fn, *, progress=None) -> MapSet:
         """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn, streaming the maps into the output files.
