@@ -49,6 +49,9 @@ class FileMaps(Mapping):
         arr = np.asarray(img.dataobj, dtype=np.float32)
         return arr if scale == 1.0 else (arr / np.float32(scale)).astype(np.float32)
 
+    def __contains__(self, name: object) -> bool:  # without reading the map (Mapping's default reads it)
+        return name in self._files
+
     def __iter__(self) -> Iterator[str]:
         return iter(self._files)
 
