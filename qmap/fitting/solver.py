@@ -295,9 +295,9 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     """:func:`fit_chunk` of the samples ``y`` as given (``normalise=False``)."""
     n, _m = y.shape
     fit_model = noise.wrap(model)
-    w = noise.weights(y, sigma)
-    wl = w if noise.weighted else None  # all-ones weights are skipped in the hot loop
-    n_used = np.full(n, y.shape[1]) if wl is None else w.sum(axis=1).astype(int)
+    # all-ones weights are skipped in the hot loop (and only made for the grid search, which takes them)
+    wl = noise.weights(y, sigma) if noise.weighted else None
+    n_used = np.full(n, y.shape[1]) if wl is None else wl.sum(axis=1).astype(int)
     P = len(fit_model.param_names)
     L = len(fit_model.linear)
     lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
@@ -325,6 +325,7 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
         theta0 = model.initial_guess(yc, wl, ctx)
         exact = theta0 is not None and model.exact_start
         if theta0 is None:
+            w = np.ones_like(y) if wl is None else wl
             theta0 = grid_start(run_model, yc, w, ctx)
             if theta0.shape[1] == 1:
                 theta0 = refine_grid_1d(run_model, yc, w, ctx, theta0)
