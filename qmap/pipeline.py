@@ -701,11 +701,14 @@ def prepare_run(
         """Move the notes and input paths out of ``sinfo``; write a local noise map as an output."""
         notes.extend(sinfo.pop("notes", []))
         if "path" in sinfo:
-            file_inputs.append(sinfo.pop("path"))
+            path = sinfo.pop("path")
+            file_inputs.append(path)
+            sinfo["noise_map"] = noise_map_entry(path)
         sinfo.pop("value", None)
         if sinfo.get("sigma_mode") == "local":
             name = f"{prefix}_desc-noise_sigmamap.nii.gz"
             sinfo["sigma_source"] = f"noise map {(common.out_dir / name).absolute()}"
+            sinfo["noise_map"] = noise_map_entry(common.out_dir / name, written=True)
             extra_outputs.append(OutputFile(name, np.asarray(sigma, np.float32), "sigma", "quality", "a.u.",
                                             "local noise standard deviation per real channel (--sigma local)"))
         return sinfo
@@ -731,6 +734,15 @@ def prepare_run(
                        sigma=None if sigma is None else sigma if isinstance(sigma, np.ndarray) else float(sigma),
                        noise_info=noise_info, inputs=file_inputs, notes=notes, t0=t0, extra_outputs=extra_outputs,
                        noise=noise)
+
+
+def noise_map_entry(path, *, written: bool = False) -> dict:
+    """The provenance ``noise.noise_map`` entry: where the run's noise map is, for re-creating a voxel's fit.
+
+    ``role`` is ``"input"`` (a noise map given as ``sigma``; its ``sha256`` is added on writing, as in
+    ``inputs``) or ``"output"`` (the smooth map of ``sigma='local'``, written by the run beside the maps).
+    """
+    return {"path": str(Path(path).absolute()), "role": "output" if written else "input"}
 
 
 def run_fit(
@@ -850,6 +862,10 @@ def _write_run(series, maps, stream, *, common, prefix, noise_info, options, mod
         "wall_time_s": None,
         "outputs": {o.name: _output_entry(o, maps) for o in outs},
     }
+    noise_map = (noise_info or {}).get("noise_map")
+    if noise_map and noise_map.get("role") == "input":  # the hash of the noise map as read (one hash per file)
+        digest = next((e["sha256"] for e in inputs if e["path"] == noise_map["path"]), None)
+        provenance["noise"] = dict(noise_info, noise_map=dict(noise_map, sha256=digest))
     stderr_info = maps.info.get("stderr")
     if stderr_info and provenance["noise"] is not None:
         provenance["noise"] = dict(provenance["noise"], stderr=stderr_info)

@@ -184,3 +184,46 @@ def test_ir_plot_is_signed_on_a_log_axis(fits, tmp_path, monkeypatch):
     assert main(["inspect", str(fits), "--prefix", "ir", "--voxel", "33,24,1", "-o", str(tmp_path / "p.png")]) == 0
     assert seen["x_log"] is True
     assert seen["y"][0] < 0 < seen["y"][-1] and seen["curve"][0] < 0 < seen["curve"][-1]
+
+
+def test_inspect_refits_a_sigma_local_run_with_its_noise_map(tmp_path, capsys):
+    # the provenance names the run's noise map as a structured field (noise.noise_map: path, role); inspect
+    # reads the voxel's sigma from it, so the Rician refit (its expectation depends on sigma) reproduces the
+    # maps; provenance written before the field existed ("noise map PATH" in sigma_source) still works
+    rng = np.random.default_rng(21)
+    te = np.array([0.004, 0.008, 0.014, 0.022, 0.032, 0.045])
+    x, y, _ = np.indices((18, 16, 2))
+    obj = (x - 9) ** 2 + (y - 8) ** 2 < 36
+    noise = np.where(x < 9, 6.0, 18.0)  # the noise sd varies over the image: one number would not do
+    s = np.where(obj, 600.0, 0.0)[..., None] * np.exp(-te / 0.02)
+    mag = np.abs(s + noise[..., None] * (rng.standard_normal(s.shape) + 1j * rng.standard_normal(s.shape)))
+    nib.save(nib.Nifti1Image(mag.astype(np.float32), np.diag([2.0, 2.0, 3.0, 1.0])), str(tmp_path / "megre.nii.gz"))
+    (tmp_path / "megre.json").write_text(json.dumps({"EchoTime": te.tolist()}))
+    out = tmp_path / "out"
+    assert main(["t2star", str(tmp_path / "megre.nii.gz"), "--sigma", "local", "-o", str(out), "--prefix", "m",
+                 "-q"]) == 0
+    prov_path = out / "m_provenance.json"
+    prov = json.loads(prov_path.read_text())
+    sigma_map = out / "m_desc-noise_sigmamap.nii.gz"
+    assert prov["noise"]["noise_map"] == {"path": str(sigma_map.absolute()), "role": "output"}
+    ijk = (12, 8, 1)  # on the noisier side, where the map is far from its median
+    local = float(_at(sigma_map, ijk))
+    assert abs(local / prov["noise"]["sigma"] - 1) > 0.2
+    capsys.readouterr()
+    text_source = prov["noise"]["sigma_source"]
+    for old in (False, True):
+        if old:  # the previous format: the path only inside the sigma_source text
+            del prov["noise"]["noise_map"]
+            prov["noise"]["sigma_source"] = text_source
+        else:  # the structured field alone finds the map
+            prov["noise"]["sigma_source"] = "local"
+        prov_path.write_text(json.dumps(prov))
+        assert main(["inspect", str(out), "--voxel", "12,8,1", "-o", str(tmp_path / f"v{old}.png")]) == 0
+        text = capsys.readouterr().out
+        assert "refitting this voxel" not in text, text
+    # the median sigma instead of the voxel's (what inspect used when it could not find the map) does not
+    # reproduce the voxel's fit: the check above can fail
+    prov["noise"]["sigma_source"] = "local"
+    prov_path.write_text(json.dumps(prov))
+    assert main(["inspect", str(out), "--voxel", "12,8,1", "-o", str(tmp_path / "median.png")]) == 0
+    assert "refitting this voxel" in capsys.readouterr().out

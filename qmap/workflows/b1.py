@@ -161,6 +161,12 @@ def run_b1(
                                               sigma=slab.sigma, info=info, dtype=np.float32))
     if run.sigma is not None:  # two images, no residual: the standard error is the noise propagated
         maps.info["stderr"] = {"convention": "noise", "meaning": noise_info["stderr"]}
+        if isinstance(run.sigma, np.ndarray):
+            # one convention per map: a noise map's holes (no positive value) give NaN standard errors in the
+            # voxels computed there, counted as by the fitting commands (provenance and sidecars say so)
+            usable = np.isfinite(run.sigma) & (run.sigma > 0)
+            computed = ~np.isin(maps.status, (st.MASKED, st.NONFINITE))
+            maps.info["stderr"]["no_noise_level_voxels"] = int(np.count_nonzero(computed & ~usable))
     notes = run.notes
     ok = maps.status == 0
     fitted = maps.status != st.MASKED

@@ -345,8 +345,14 @@ def _noise(prov, ijk):
     noise = NoiseFloor(mode, **kw)
     sigma = None
     src = str(info.get("sigma_source") or "")
-    if src.startswith("noise map "):
-        sigma = _map_value(Path(src[len("noise map "):]), ijk)
+    noise_map = info.get("noise_map")
+    if noise_map:  # the run's noise map (a file given, or the map of sigma='local' written beside the maps)
+        path = Path(noise_map["path"])
+        sigma = _map_value(path, ijk)
+        if noise_map.get("sha256") and sha256_file(path) != noise_map["sha256"]:
+            warn(f"{path} has changed since the fit (SHA-256 differs); the plot uses the noise map as it is now")
+    elif src.startswith("noise map "):  # provenance written before noise.noise_map was recorded
+        sigma = _map_value(Path(src[len("noise map "):].split(" (")[0]), ijk)
     elif info.get("sigma") is not None:
         sigma = float(info["sigma"])
     return noise, sigma

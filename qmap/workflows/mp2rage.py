@@ -293,11 +293,20 @@ def fit_t1_mp2rage(
             "R1": "longitudinal relaxation rate R1 = 1/T1"}
     stderr: dict = {}
     quality: dict = {}
+    holes = None
     if inv1 is not None and inv2 is not None:
+        sig_good = None
+        if sigma is not None:
+            sig_good = np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1)[good]
+            if np.ndim(sigma) > 0:
+                # one convention per map: a voxel without a usable noise sd (a noise map's hole) has NaN
+                # standard errors (counted: the provenance and the sidecars say so)
+                usable = np.isfinite(sig_good) & (sig_good > 0)
+                holes = int(np.count_nonzero(~usable))
+                if holes:
+                    sig_good = np.where(usable, sig_good, np.nan)
         m0, se = _m0_and_errors(t1g, bg, protocol, np.asarray(inv1).reshape(-1)[good],
-                                np.asarray(inv2).reshape(-1)[good],
-                                None if sigma is None else np.broadcast_to(np.asarray(sigma, float),
-                                                                           shape).reshape(-1)[good],
+                                np.asarray(inv2).reshape(-1)[good], sig_good,
                                 None if b1_se is None else np.broadcast_to(np.asarray(b1_se, float),
                                                                            shape).reshape(-1)[good])
         est["M0"] = volume(m0["M0"])
@@ -308,7 +317,8 @@ def fit_t1_mp2rage(
             stderr = {k: volume(v) for k, v in se.items()}
         quality["rmse"] = volume(m0["rmse"])
     info = {"model": "mp2rage", "parameters": list(est), "noise_floor": "none", "n_fitted": int(idx.size),
-            "stderr": {"convention": "noise"} if stderr else {},
+            "stderr": ({"convention": "noise"} if holes is None else
+                       {"convention": "noise", "no_noise_level_voxels": holes}) if stderr else {},
             "t1_lookup_range_s": [float(np.nanmin(lut.limits[:, 0])), float(np.nanmax(lut.limits[:, 1]))],
             "b1_table": [float(lut.b1[0]), float(lut.b1[-1])]}
     return MapSet(est, stderr, units, desc, ("T1",), quality, status.reshape(shape), info)
@@ -593,6 +603,8 @@ def run_t1_mp2rage(
                                 "inversion images through UNI, at the model signals"}
         if "stderr_fallback" in sinfo:
             noise_info["stderr"] = f"none written: {sinfo['stderr_fallback']}"
+        if sinfo.get("noise_map"):
+            noise_info["noise_map"] = sinfo["noise_map"]
     extra = run.inputs
     b1_map: np.ndarray | None = None
     b1_se: np.ndarray | None = None

@@ -44,7 +44,7 @@ from ..noise_level import (
     pooled_sigma,
     smooth_noise_map,
 )
-from ..pipeline import CommonOptions, RunReport, Slab, prepare_run
+from ..pipeline import CommonOptions, RunReport, Slab, noise_map_entry, prepare_run
 from ..record import recorded
 from .decay import load_echoes
 
@@ -436,6 +436,8 @@ def run_t2_spectrum(
     noise_info = {"mode": "gaussian (magnitude above the noise floor)", "sigma": info.get("sigma"),
                   "sigma_source": info.get("source") if sig is not None else
                   "per voxel from the unregularised NNLS residuals (no usable background)"}
+    if info.get("noise_map"):
+        noise_info["noise_map"] = info["noise_map"]
     run.noise_info = noise_info
     shape = series.shape
     out = _Collect(int(np.prod(shape)), model.basis.t2.size)
@@ -470,6 +472,7 @@ def run_t2_spectrum(
         run.notes.extend(est.notes)
         for w in est.warnings:
             warn(w)
+        noise_info["noise_map"] = noise_map_entry(common.out_dir / name, written=True)
         run.extra_outputs.append(OutputFile(name, sig_map, "sigma", "quality", "a.u.",
                                             "local noise standard deviation per real channel (--sigma local)"))
     elif sig is None:

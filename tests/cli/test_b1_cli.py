@@ -148,3 +148,38 @@ def test_bad_inputs(tmp_path, capsys):
     # b1 writes no time map and computes B1 in closed form: --units and --engine are not options of b1
     assert "--units" in _bad([a, b, "--method", "dam", "--fa", "30", "--units", "ms"], tmp_path, capsys)
     assert "--engine" in _bad([a, b, "--method", "dam", "--fa", "30", "--engine", "lmfit"], tmp_path, capsys)
+
+
+def test_noise_map_with_holes_gives_nan_standard_errors_counted(tmp_path):
+    # one convention per map (as the fitting commands): where the noise map has no positive value the TB1
+    # standard error is NaN (first-order noise propagation needs sigma), counted in the provenance and said
+    # in the stderr sidecar; every other voxel is that of a hole-free map; the map's path and SHA-256 are
+    # recorded as a structured field
+    obj, b1, rng = _scene(4)
+    s1, s2 = _afi(60.0 * b1, 0.020, 0.100, 5.0, 20000.0)
+    files = [str(_save(tmp_path / f"afi{i}.nii.gz", _noisy(np.where(obj, s, 0), 1.0, rng),
+                       {"FlipAngle": 60.0, "RepetitionTime": tr})) for i, (s, tr) in enumerate([(s1, 0.02), (s2, 0.1)])]
+    full = np.ones(SHAPE, np.float32)
+    holed = full.copy()
+    holes = np.zeros(SHAPE, bool)
+    holes[20, 20, 1] = holes[21, 22, 2] = True  # inside the object
+    holed[20, 20, 1], holed[21, 22, 2] = 0.0, -1.0
+    holed[0, 0, 0] = 0.0  # a hole in the background (masked out) is not counted
+    runs = {}
+    for name, sig in (("full", full), ("holed", holed)):
+        sp = _save(tmp_path / f"{name}.nii.gz", sig)
+        assert main(["b1", *files, "--method", "afi", "--sigma", str(sp), "-o", str(tmp_path / name), "-q",
+                     "--prefix", "x", "--max-memory", "20KB"]) == 0
+        runs[name] = _read(tmp_path / name, "x")
+    (tb1_a, se_a, st_a, prov_a), (tb1_b, se_b, st_b, prov_b) = runs["full"], runs["holed"]
+    assert (st_b[holes] == 0).all() and np.isfinite(se_a[holes]).all() and np.isnan(se_b[holes]).all()
+    np.testing.assert_array_equal(se_a[~holes], se_b[~holes])
+    np.testing.assert_array_equal(tb1_a, tb1_b)
+    np.testing.assert_array_equal(st_a, st_b)
+    assert prov_b["noise"]["stderr"]["no_noise_level_voxels"] == 2
+    assert prov_a["noise"]["stderr"]["no_noise_level_voxels"] == 0
+    side = json.loads((tmp_path / "holed" / "x_desc-stderr_TB1map.json").read_text())
+    assert "NaN in the 2 fitted voxels where the noise map has no positive value" in side["Description"]
+    entry = prov_b["noise"]["noise_map"]
+    assert entry["path"] == str((tmp_path / "holed.nii.gz").absolute()) and entry["role"] == "input"
+    assert {"path": entry["path"], "sha256": entry["sha256"]} in prov_b["inputs"]

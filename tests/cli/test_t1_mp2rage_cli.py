@@ -252,3 +252,35 @@ def test_zero_filled_background_is_not_looked_up(mp2, tmp_path):
     assert main(["t1-mp2rage", str(path), *CLI_PROTOCOL, "-o", str(tmp_path / "o"), "-q"]) == 0
     status = np.asarray(nib.load(str(tmp_path / "o" / "uni0_desc-status_fitmap.nii.gz")).dataobj)
     assert np.all(status[~mp2["obj"]] == 1) and np.all(status[mp2["obj"]] == 0)
+
+
+def test_noise_map_with_holes_gives_nan_standard_errors_counted(mp2, tmp_path):
+    # one convention per map: where the noise map of the inversion images has no positive value the standard
+    # errors are NaN (not 0), counted in the provenance; the estimates and the other voxels' standard errors
+    # are those of the hole-free map
+    p = mp2["paths"]
+    full = np.full(SHAPE, mp2["sigma"], np.float32)
+    holed = full.copy()
+    inside = np.argwhere(mp2["obj"])[[50, 200, 400]]
+    holes = np.zeros(SHAPE, bool)
+    holes[tuple(inside.T)] = True
+    holed[holes] = [0.0, -2.0, np.nan]
+    maps = {}
+    for name, sig in (("full", full), ("holed", holed)):
+        sp = _save(tmp_path / f"{name}.nii.gz", sig)
+        assert main(["t1-mp2rage", str(p["uni_float"]), "--inv1", str(p["inv1"]), "--inv2", str(p["inv2"]),
+                     *CLI_PROTOCOL, "--sigma", str(sp), "-o", str(tmp_path / name), "--prefix", "x", "-q"]) == 0
+        maps[name] = {f.name: np.asarray(nib.load(str(f)).dataobj) for f in (tmp_path / name).glob("*.nii.gz")}
+    a, b = maps["full"], maps["holed"]
+    assert set(a) == set(b) and (b["x_desc-status_fitmap.nii.gz"][holes] == 0).all()
+    for name in a:
+        if "stderr" in name:
+            assert np.isfinite(a[name][holes]).all() and np.isnan(b[name][holes]).all(), name
+            np.testing.assert_array_equal(a[name][~holes], b[name][~holes], err_msg=name)
+        else:
+            np.testing.assert_array_equal(a[name], b[name], err_msg=name)
+    prov = json.loads((tmp_path / "holed" / "x_provenance.json").read_text())
+    assert prov["noise"]["stderr"] == {"convention": "noise", "no_noise_level_voxels": 3}
+    assert prov["noise"]["noise_map"]["path"] == str((tmp_path / "holed.nii.gz").absolute())
+    full_prov = json.loads((tmp_path / "full" / "x_provenance.json").read_text())
+    assert full_prov["noise"]["stderr"]["no_noise_level_voxels"] == 0

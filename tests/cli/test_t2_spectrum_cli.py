@@ -220,3 +220,35 @@ def test_a_run_that_fits_no_voxel_says_so(series, tmp_path, capsys):
         f"qmap: warning: only 0 of the {n_mask} voxels in the mask were fitted (status 0); most of the others have "
         f"status 10: signal-to-noise ratio too low for a reliable T2 spectrum (values kept; see --min-snr); see the "
         f"status map before using the maps")]
+
+
+def test_noise_map_with_holes_skips_those_voxels(tmp_path):
+    # the spectrum's regularisation and SNR need the noise sd: as the fits that model the noise floor, a voxel
+    # where the noise map has no positive value is not fitted (status 2, every map NaN there); the other voxels'
+    # estimates are those of a hole-free map, and the provenance names the map (path, SHA-256)
+    data, _frac, _b1, _obj = _volume()
+    path = write_nifti(tmp_path / "sub-01_MESE.nii.gz", data.astype(np.float32), sidecar={"EchoTime": TE.tolist()})
+    full = np.full(data.shape[:3], SIGMA, np.float32)
+    holed = full.copy()
+    holes = np.zeros(full.shape, bool)
+    holes[3, 3, 0] = holes[4, 2, 1] = True
+    holed[3, 3, 0], holed[4, 2, 1] = 0.0, np.nan
+    maps = {}
+    for name, sig in (("full", full), ("holed", holed)):
+        sp = write_nifti(tmp_path / f"{name}.nii.gz", sig)
+        assert main(["t2-spectrum", str(path), "-o", str(tmp_path / name), "--sigma", str(sp), "-q", "--mask", "none",
+                     "--se-subsample", "20", "--prefix", "x"]) == 0
+        maps[name] = {f.name: np.asarray(nib.load(str(f)).dataobj) for f in (tmp_path / name).glob("*.nii.gz")}
+    a, b = maps["full"], maps["holed"]
+    status = b["x_desc-status_fitmap.nii.gz"]
+    assert (status[holes] == 2).all() and (a["x_desc-status_fitmap.nii.gz"][holes] == 0).all()
+    for name in a:
+        if name.startswith("x_desc-status"):
+            continue
+        assert np.isnan(b[name][holes]).all(), name
+        if "stderr" not in name:  # the standard errors are calibrated on a subsample of the fitted voxels
+            np.testing.assert_array_equal(a[name][~holes], b[name][~holes], err_msg=name)
+    prov = json.loads((tmp_path / "holed" / "x_provenance.json").read_text())
+    assert prov["status_counts"]["2"] == 2
+    entry = prov["noise"]["noise_map"]
+    assert entry["path"] == str((tmp_path / "holed.nii.gz").absolute()) and len(entry["sha256"]) == 64
