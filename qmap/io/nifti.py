@@ -182,11 +182,13 @@ def resample_to_grid(
     # destination voxel -> world -> source voxel
     mat = np.linalg.inv(np.asarray(src_affine, float)) @ np.asarray(dst_affine, float)
     idx = np.indices(dst_shape, dtype=float).reshape(3, -1)
-    src = mat[:3, :3] @ idx + mat[:3, 3:4]
+    src = mat[:3, :3] @ idx
+    del idx
+    src += mat[:3, 3:4]  # in place: the coordinates are (3, voxels) float64, 24 bytes a voxel
     src_shape = np.array(data.shape, float)[:, None]
     inside = np.all((src >= -0.5) & (src <= src_shape - 0.5), axis=0)
     # clamp to the edge voxel centres so edge voxels are not blended with cval
-    srcc = np.clip(src, 0, src_shape - 1)
+    srcc = np.clip(src, 0, src_shape - 1, out=src)
     if order == 0:
         ii = np.rint(srcc).astype(np.intp)
         out = data[ii[0], ii[1], ii[2]]
