@@ -227,10 +227,27 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
         threshold = min(threshold, MASK_NOISE_FACTOR * float(np.median(lower)))
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
+    mask = dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
+    return fill_holes(mask)
+
+
+def fill_holes(mask: np.ndarray) -> np.ndarray:
+    """``mask`` with every region of False not 6-connected to the array's faces set True, (X, Y, Z) bool.
+
+    The same as ``scipy.ndimage.binary_fill_holes(mask)`` (its default cross): the background is
+    labelled once (``scipy.ndimage.label``) and the components touching a face are kept as
+    background, about twice as fast as the iterated dilation of ``binary_fill_holes``.
+    """
     from scipy import ndimage  # imported on use (start-up time)
 
-    mask = dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
-    return ndimage.binary_fill_holes(mask)
+    mask = np.asarray(mask, dtype=bool)
+    lab, n = ndimage.label(~mask)
+    outside = np.zeros(n + 1, bool)
+    outside[0] = True  # label 0: the mask itself
+    for axis in range(mask.ndim):
+        for k in (0, -1):
+            outside[np.take(lab, k, axis=axis).ravel()] = True
+    return mask | ~outside[lab]
 
 
 def erode_cross(a: np.ndarray) -> np.ndarray:
@@ -324,7 +341,7 @@ def auto_mask(data: npt.ArrayLike) -> np.ndarray:
        fit and, once dilated, eat the background used by
        :func:`estimate_sigma_background`. Structures thinner than 3 voxels
        are lost with them.
-    4. Holes enclosed in 3D are filled (``scipy.ndimage.binary_fill_holes``),
+    4. Holes enclosed in 3D are filled (:func:`fill_holes`),
        so that dark structures inside the object (e.g. a voxel at its null,
        fluid, an air bubble in a phantom) are kept.
     """

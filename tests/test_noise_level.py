@@ -489,13 +489,32 @@ def test_cross_morphology_matches_scipy_ndimage(shape, fill):
     # 6-connected cross) and border (outside the array False)
     from scipy import ndimage
 
-    from qmap.noise_level import dilate_cross, erode_cross
+    from qmap.noise_level import dilate_cross, erode_cross, fill_holes
 
     a = np.random.default_rng(int(fill * 100) + shape[0]).random(shape) < fill
     assert np.array_equal(erode_cross(a), ndimage.binary_erosion(a))
     assert np.array_equal(dilate_cross(erode_cross(a)), ndimage.binary_opening(a))
     for it in (1, 3):
         assert np.array_equal(dilate_cross(a, it), ndimage.binary_dilation(a, iterations=it))
+    assert np.array_equal(fill_holes(a), ndimage.binary_fill_holes(a))
+    assert np.array_equal(fill_holes(~a), ndimage.binary_fill_holes(~a))
+
+
+def test_fill_holes_matches_scipy_on_a_shell_with_cavities():
+    # reference: scipy.ndimage.binary_fill_holes (default cross connectivity)
+    from scipy import ndimage
+
+    from qmap.noise_level import fill_holes
+
+    x, y, z = np.indices((24, 26, 22)) - np.array([12, 13, 11])[:, None, None, None]
+    r = np.sqrt(x**2 + y**2 + z**2)
+    shell = (r < 10) & ~((r > 3) & (r < 5))  # a ball with an enclosed spherical cavity
+    shell[12, 13, :3] = False  # a channel from the face that reaches nothing
+    shell &= ~((np.abs(x) < 2) & (np.abs(y) < 2) & (z > 6))  # a well open to the outside
+    out = fill_holes(shell)
+    assert np.array_equal(out, ndimage.binary_fill_holes(shell))
+    assert out[12, 13, 11 + 4] and not out[12, 13, 21]  # the cavity filled, the well kept
+    assert not fill_holes(np.zeros((3, 4, 5), bool)).any() and fill_holes(np.ones((3, 4, 5), bool)).all()
 
 
 def test_median64_is_numpys_float64_median_to_the_bit():
