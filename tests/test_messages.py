@@ -8,6 +8,7 @@ percent``) through :func:`qmap.cli.as_options` -- for errors and for warnings al
 from __future__ import annotations
 
 import re
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -170,3 +171,111 @@ def test_scheduler_message_names_the_argument_and_the_command_line_its_option():
     assert msg.startswith("scheduler='tcp://127.0.0.1:1': cannot reach the Dask scheduler") and "check the address" in msg
     _no_option(msg)
     assert as_options(msg).startswith("--scheduler tcp://127.0.0.1:1: cannot reach the Dask scheduler")
+
+
+# --------------------------------------------------------------------- phantom QA and ROI statistics
+def _qa_case(name, d, p):
+    """(library call, its message's start, command line, the command line's message start) of one bad input."""
+    from qmap.qa.history import read_history
+    from qmap.qa.inputs import label_names, load_labels, load_map
+    from qmap.qa.layout import read_layout
+    from qmap.workflows.phantom import run_phantom
+
+    base = ["phantom", "--reference", str(p["ref"]), "--temperature", "21.5", "-o", str(d / "cli")]
+    lab = ["--labels", str(p["labels"])]
+    if name == "stderr map":
+        se = write_nifti(d / "sess_desc-stderr_T1map.nii.gz", np.ones((4, 4, 2)), AFFINE)
+        return (lambda: load_map(se), f"map={se}: is a standard-error map", [*base, *lab, "--map", str(se)],
+                f"--map {se}: is a standard-error map")
+    if name == "param":
+        return (lambda: load_map(p["t1"], "T9"), "param='T9': unknown parameter",
+                [*base, *lab, "--map", str(p["t1"]), "--param", "T9"], "--param T9: unknown parameter")
+    if name == "labels":
+        neg = write_nifti(d / "neg.nii.gz", -np.ones((4, 4, 2), np.int16), AFFINE)
+        return (lambda: load_labels(neg), f"labels={neg}: holds negative values",
+                [*base, "--labels", str(neg), "--map", str(p["t1"])], f"--labels {neg}: holds negative values")
+    if name == "layout":
+        empty = d / "layout.csv"
+        empty.write_text("")
+        return (lambda: read_layout(empty), f"layout={empty}: the file is empty",
+                [*base, "--layout", str(empty), "--map", str(p["t1"])], f"--layout {empty}: the file is empty")
+    if name == "history":
+        hist = d / "history.csv"
+        hist.write_text("a,b\n1,2\n")
+        return (lambda: read_history(hist), f"history={hist}: not a qmap phantom history",
+                [*base, *lab, "--map", str(p["t1"]), "--history", str(hist)],
+                f"--history {hist}: not a qmap phantom history")
+    if name == "names":
+        missing = d / "names.tsv"
+        return (lambda: label_names(p["labels"], missing), f"names={missing}: no such file",
+                ["roi", "--labels", str(p["labels"]), "--map", str(p["t1"]), "--names", str(missing), "-o",
+                 str(d / "roi")], f"--names {missing}: no such file")
+    # two maps of one parameter: each needs its tag (or its parameter)
+    copy = d / "vfa_T1map.nii.gz"
+    copy.write_bytes(Path(p["t1"]).read_bytes())
+    return (lambda: run_phantom([p["t1"], copy], reference=p["ref"], labels=p["labels"], temperature=21.5,
+                                out_dir=d / "lib"),
+            (f"map={copy} and map={p['t1']} both hold T1; give each map its tag=TAG to tell them apart "
+            f"(e.g. tag='ir' and tag='vfa'), or its param=NAME to say what it holds"),
+            [*base, *lab, "--map", str(p["t1"]), "--map", str(copy)],
+            (f"--map {copy} and --map {p['t1']} both hold T1; give each map its --tag TAG to tell them apart "
+            f"(e.g. --tag ir and --tag vfa), or its --param NAME to say what it holds"))
+
+
+@pytest.mark.parametrize("name", ["stderr map", "param", "labels", "layout", "history", "names", "two T1 maps"])
+def test_phantom_qa_messages_name_arguments_and_the_command_line_its_options(tmp_path, capsys, name):
+    from tests.qa.phantom_factory import make_phantom
+
+    p = make_phantom(tmp_path / "in")
+    call, library, argv, cli = _qa_case(name, tmp_path, p)
+    with pytest.raises(InputError) as exc:
+        call()
+    msg = str(exc.value)
+    assert msg.startswith(library), msg
+    _no_option(msg)
+    assert main(argv) == 2
+    assert _one_error(capsys).startswith(f"qmap: error: {cli}")
+
+
+def test_phantom_argument_checks_name_arguments():
+    # the checks of run_phantom's own arguments, in the library's words and, through as_options, the command's
+    from qmap.workflows.phantom import run_phantom
+
+    cases = [({"tolerance": -5.0}, "tolerance=-5.0: give a positive percentage", "--tolerance -5.0: give"),
+             ({"erode": -1}, "erode=-1: give 0 or a positive number of voxels", "--erode -1: give 0"),
+             ({"min_voxels": 0}, "min_voxels=0: give a positive number of voxels", "--min-voxels 0: give"),
+             ({"layout": "l.csv"}, ("give either labels=FILE (a label image) or layout=FILE (vial positions), not "
+                                   "both or neither"), "give either --labels FILE (a label image) or --layout FILE")]
+    for kwargs, library, cli in cases:
+        args = {"labels": "lab.nii.gz", **kwargs}
+        with pytest.raises(UsageError) as exc:
+            run_phantom(["m_T1map.nii.gz"], reference="ref.csv", out_dir="out", **args)
+        assert str(exc.value).startswith(library), str(exc.value)
+        _no_option(str(exc.value))
+        assert as_options(str(exc.value)).startswith(cli), as_options(str(exc.value))
+    # a bare argument name reads as the option alone
+    assert (as_options("check that labels= and map= belong to the same scan; choose another out_dir=")
+            == "check that --labels and --map belong to the same scan; choose another -o")
+
+
+# --------------------------------------------------------------------- the T2 model choice
+def test_epg_messages_name_the_argument_and_the_command_line_its_option(tmp_path, capsys):
+    from qmap.workflows.t2 import fit_t2
+
+    te = np.array([0.01, 0.02, 0.03])
+    data = np.tile(1000.0 * np.exp(-te / 0.08), (2, 1))  # mono-exponential decay (the signal's definition)
+    with pytest.raises(InputError) as exc:
+        fit_t2(data, te, epg=True)
+    assert str(exc.value) == "epg=True fits M0, T2 and the refocusing angle and needs at least 4 echoes, got 3"
+    with pytest.raises(UsageError) as exc2:
+        fit_t2(np.tile(1000.0 * np.exp(-np.arange(1, 7) * 0.01 / 0.08), (2, 1)), np.arange(1, 7) * 0.01, epg=True,
+               drop_first=True)
+    assert str(exc2.value).startswith("drop_first=True is for the mono-exponential fit: the EPG model (epg=True)")
+    for m in (str(exc.value), str(exc2.value)):
+        _no_option(m)
+    series = write_nifti(tmp_path / "mese.nii.gz", np.broadcast_to(1000.0 * np.exp(-te / 0.08), (*SHAPE, 3)).copy(),
+                         AFFINE, {"EchoTime": te.tolist()})
+    assert main(["t2", str(series), "--epg", "-o", str(tmp_path / "o"), "--sigma", "5", "-q"]) == 2
+    assert _one_error(capsys) == ("qmap: error: --epg fits M0, T2 and the refocusing angle and needs at least 4 "
+                                  "echoes, got 3")
+    assert as_options(str(exc2.value)).startswith("--drop-first is for the mono-exponential fit: the EPG model (--epg)")

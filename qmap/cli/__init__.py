@@ -210,6 +210,26 @@ ARGUMENT_OPTIONS = {
     "overwrite": "--overwrite",
     # the Dask cluster (qmap.engine.dask_client: the array API's scheduler=, fitting commands and batch)
     "scheduler": "--scheduler",
+    # phantom QA and ROI statistics (qmap.workflows.phantom / roi and their loaders in qmap.qa); one map of
+    # maps= is map=, with its param= and tag=
+    "maps": "--map",
+    "map": "--map",
+    "param": "--param",
+    "tag": "--tag",
+    "labels": "--labels",
+    "names": "--names",
+    "layout": "--layout",
+    "layout_image": "--layout-image",
+    "reference": "--reference",
+    "history": "--history",
+    "temperature": "--temperature",
+    "tolerance": "--tolerance",
+    "erode": "--erode",
+    "min_voxels": "--min-voxels",
+    "date": "--date",
+    # the T2 model choice (qmap.workflows.t2.fit_t2 / run_t2 and qmap.models.epg_t2)
+    "epg": "--epg",
+    "drop_first": "--drop-first",
 }
 _ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
 
@@ -243,7 +263,8 @@ def as_options(message: str) -> str:
         return f"{opt} {','.join(t for t in items if t)}"
 
     out = _ARGUMENT.sub(option, message)
-    return re.sub(r"(--[a-z0-9-]+ )'([^']*)'", r"\1\2", out)  # and a quoted value after any option
+    out = re.sub(r"(--[a-z0-9-]+ )'([^']*)'", r"\1\2", out)  # and a quoted value after any option
+    return re.sub(r"(?<![\w-])(--?[a-z0-9-]+) (?=[\s,;:.)]|$)", r"\1", out)  # a bare name= as the option alone
 
 
 def _main(argv: list[str]) -> int:

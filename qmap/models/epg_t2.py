@@ -183,7 +183,7 @@ class EpgT2(SeparableModel):
         self.x = self.esp * np.arange(1, self.n_echoes + 1)
         if self.x.size < 4:
             raise InputError(
-                f"--epg fits M0, T2 and the refocusing angle and needs at least 4 echoes, got {self.x.size}"
+                f"epg=True fits M0, T2 and the refocusing angle and needs at least 4 echoes, got {self.x.size}"
             )
         #: refocusing scale at which the angle is 180 degrees (largest reported scale)
         self.scale_180 = 180.0 / refocus_deg

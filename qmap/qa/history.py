@@ -71,11 +71,14 @@ class Trend:
         return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in self.__dict__.items()}
 
 
-def parse_date(text: str, *, what: str = "--date") -> dt.date:
+def parse_date(text: str, *, what: str | None = None) -> dt.date:
+    """A date from ``YYYY-MM-DD`` (a time after it is ignored); ``what`` names where it came from in messages
+    (default: the argument, ``date='...'``)."""
     try:
         return dt.date.fromisoformat(str(text).strip()[:10])
     except ValueError:
-        raise InputError(f"{what} {text!r}: expected a date as YYYY-MM-DD") from None
+        where = f"date={str(text)!r}" if what is None else f"{what} {text!r}"
+        raise InputError(f"{where}: expected a date as YYYY-MM-DD") from None
 
 
 def read_history(path: str | Path) -> list[dict]:
@@ -86,22 +89,22 @@ def read_history(path: str | Path) -> list[dict]:
     try:
         text = p.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"--history {p}: cannot be read ({exc}); give a qmap phantom history CSV or a new file name") from None
+        raise InputError(f"history={p}: cannot be read ({exc}); give a qmap phantom history CSV or a new file name") from None
     if not text.strip():
         return []
     reader = csv.DictReader(io.StringIO(text))
     missing = [c for c in ("date", "scanner", "protocol", "label", "parameter", "error_pct", "tolerance_pct")
                if c not in (reader.fieldnames or [])]
     if missing:
-        raise InputError(f"--history {p}: not a qmap phantom history (missing column(s) {', '.join(missing)}); "
+        raise InputError(f"history={p}: not a qmap phantom history (missing column(s) {', '.join(missing)}); "
                          f"give another file name to start a new history")
     rows = []
     for i, rec in enumerate(reader, start=2):
         try:
-            parse_date(rec["date"], what=f"--history {p} row {i}: date")
+            parse_date(rec["date"], what=f"history={p} row {i}: column date")
             int(rec["label"])
         except (ValueError, TypeError):
-            raise InputError(f"--history {p} row {i}: label {rec.get('label')!r} is not an integer") from None
+            raise InputError(f"history={p} row {i}: label {rec.get('label')!r} is not an integer") from None
         rows.append({c: rec.get(c, "") or "" for c in HISTORY_COLUMNS})
     return rows
 

@@ -83,31 +83,31 @@ def _volume(img, path, what) -> np.ndarray:
     if len(shape) == 2:
         shape = shape + (1,)
     if len(shape) != 3:
-        raise InputError(f"{what} {path}: has shape {img.shape}; expected one 3D volume")
+        raise InputError(f"{what}{path}: has shape {img.shape}; expected one 3D volume")
     return shape
 
 
 def load_map(path: str | Path, param: str | None = None) -> MapInput:
     """Load one parameter map; the parameter from ``param``, the file name or the sidecar ``Parameter``."""
     p = Path(path)
-    img = load_image(p, what="--map")
-    shape = _volume(img, p, "--map")
+    img = load_image(p, what="map=")
+    shape = _volume(img, p, "map=")
     side = read_sidecar(p)
     if "desc-stderr" in p.name or str(side.get("Kind", "")).lower() == "stderr":
-        raise InputError(f"--map {p}: is a standard-error map; give the estimate map ({p.name.replace('desc-stderr_', '')})")
+        raise InputError(f"map={p}: is a standard-error map; give the estimate map ({p.name.replace('desc-stderr_', '')})")
     if param is not None:
         canon, source = canonical_param(param), "--param"
         if canon is None:
-            raise InputError(f"--param {param!r}: unknown parameter; use one of {', '.join(PARAMETERS)}")
+            raise InputError(f"param={param!r}: unknown parameter; use one of {', '.join(PARAMETERS)}")
     else:
         canon, source = param_from_name(p), "file name"
         if canon is None and isinstance(side.get("Parameter"), str):
             canon, source = canonical_param(side["Parameter"]), "sidecar"
         if canon is None:
-            raise InputError(f"--map {p}: cannot tell which parameter it holds from its name; name it like "
-                             f"sub-01_T1map.nii.gz or give --param T1 right after this --map")
+            raise InputError(f"map={p}: cannot tell which parameter it holds from its name; name it like "
+                             f"sub-01_T1map.nii.gz or give its param='T1'")
     if "Units" in side:
-        unit, usource = sidecar_unit(canon, side["Units"], where=f"--map {p}"), "sidecar"
+        unit, usource = sidecar_unit(canon, side["Units"], where=f"map={p}"), "sidecar"
     else:
         unit, usource = default_unit(canon), "default"
     data = image_data(img, p).reshape(shape)
@@ -128,24 +128,24 @@ def load_labels(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
         Non-integer, negative or non-finite values, or no label at all.
     """
     p = Path(path)
-    img = load_image(p, what="--labels")
-    shape = _volume(img, p, "--labels")
+    img = load_image(p, what="labels=")
+    shape = _volume(img, p, "labels=")
     raw = image_data(img, p).reshape(shape)
     if not np.all(np.isfinite(raw)):
-        raise InputError(f"--labels {p}: contains NaN or infinite values; a label image holds integers (0 = background)")
+        raise InputError(f"labels={p}: contains NaN or infinite values; a label image holds integers (0 = background)")
     rounded = np.rint(raw)
     bad = np.abs(raw - rounded) > 1e-3
     if bad.any():
         example = float(raw[bad][0])
-        raise InputError(f"--labels {p}: holds non-integer values (e.g. {example:.4g} in {int(bad.sum())} voxels); "
+        raise InputError(f"labels={p}: holds non-integer values (e.g. {example:.4g} in {int(bad.sum())} voxels); "
                          f"expected an integer label image (0 = background, 1..N = vials), not a probability or "
                          f"parameter map")
     if rounded.min() < 0:
-        raise InputError(f"--labels {p}: holds negative values (min {int(rounded.min())}); labels are 0 (background) "
+        raise InputError(f"labels={p}: holds negative values (min {int(rounded.min())}); labels are 0 (background) "
                          f"or positive integers")
     labels = rounded.astype(np.int64)
     if not labels.any():
-        raise InputError(f"--labels {p}: holds no label (every voxel is 0)")
+        raise InputError(f"labels={p}: holds no label (every voxel is 0)")
     return labels, np.asarray(img.affine, float)
 
 
@@ -180,15 +180,15 @@ def load_any_map(path: str | Path, param: str | None = None) -> MapInput:
     when unknown).
     """
     p = Path(path)
-    img = load_image(p, what="--map")
-    shape = _volume(img, p, "--map")
+    img = load_image(p, what="map=")
+    shape = _volume(img, p, "map=")
     side = read_sidecar(p)
     canon: str | None = None
     name: str | None
     if param is not None:
         name, source = str(param).strip(), "--param"
         if not name:
-            raise InputError(f"--param {param!r}: give a parameter name such as T1")
+            raise InputError(f"param={param!r}: give a parameter name such as T1")
         canon = canonical_param(name)
         name = canon or name
     else:
@@ -204,7 +204,7 @@ def load_any_map(path: str | Path, param: str | None = None) -> MapInput:
     units = side.get("Units")
     if canon is not None and "desc-stderr" not in p.name and str(side.get("Kind", "")) != "stderr":
         if units is not None:
-            unit, usource = sidecar_unit(canon, units, where=f"--map {p}"), "sidecar"
+            unit, usource = sidecar_unit(canon, units, where=f"map={p}"), "sidecar"
         else:
             unit, usource = default_unit(canon), "default"
     elif isinstance(units, str):
@@ -268,7 +268,7 @@ def label_names(labels_path: str | Path, names_path: str | Path | None = None) -
     else:
         tp = Path(names_path)
         if not tp.is_file():
-            raise InputError(f"--names {tp}: no such file; give a tab-separated table with columns index and name")
+            raise InputError(f"names={tp}: no such file; give a tab-separated table with columns index and name")
     try:
         text = tp.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:

@@ -75,16 +75,16 @@ def _field(rec, cols, key, where, required=True) -> float:
 def read_layout(path: str | Path) -> Layout:
     """Read a layout CSV (see the module docstring)."""
     p = Path(path)
-    text = read_text_table(p, what=f"--layout {p}", missing_hint="check the path")
+    text = read_text_table(p, what=f"layout={p}", missing_hint="check the path")
     lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
     if not lines:
-        raise InputError(f"--layout {p}: the file is empty; expected label,x_mm,y_mm,radius_mm columns")
+        raise InputError(f"layout={p}: the file is empty; expected label,x_mm,y_mm,radius_mm columns")
     delim = max((",", ";", "\t"), key=lines[0].count)
     reader = csv.DictReader(io.StringIO("\n".join(lines)), delimiter=delim)
     cols = {c.strip().lower(): c for c in reader.fieldnames or []}
     missing = [c for c in ("label", "x_mm", "y_mm", "radius_mm") if c not in cols]
     if missing:
-        raise InputError(f"--layout {p}: missing column(s) {', '.join(missing)} (found: "
+        raise InputError(f"layout={p}: missing column(s) {', '.join(missing)} (found: "
                          f"{', '.join(c.strip() for c in reader.fieldnames or [])}); expected label, x_mm, y_mm, "
                          f"radius_mm and optionally z_mm, name")
     labels: list[int] = []
@@ -92,7 +92,7 @@ def read_layout(path: str | Path) -> Layout:
     rows: list[list[float]] = []
     radius: list[float] = []
     for i, rec in enumerate(reader, start=2):
-        where = f"--layout {p} row {i}"
+        where = f"layout={p} row {i}"
         lab = _field(rec, cols, "label", where)
         if lab != int(lab) or lab <= 0:
             raise InputError(f"{where}: label {lab:g} is not a positive integer")
@@ -105,12 +105,12 @@ def read_layout(path: str | Path) -> Layout:
         rows.append([_field(rec, cols, "x_mm", where), _field(rec, cols, "y_mm", where), 0.0 if math.isnan(z) else z])
         radius.append(r)
     if len(labels) < 3:
-        raise InputError(f"--layout {p}: {len(labels)} vial(s); at least 3 are needed to place the ROIs rigidly")
+        raise InputError(f"layout={p}: {len(labels)} vial(s); at least 3 are needed to place the ROIs rigidly")
     if len(set(labels)) != len(labels):
-        raise InputError(f"--layout {p}: a label appears twice; give each vial one row")
+        raise InputError(f"layout={p}: a label appears twice; give each vial one row")
     xyz = np.array(rows, float)
     if np.min(np.linalg.norm(xyz[:, None] - xyz[None], axis=-1) + np.eye(len(xyz)) * 1e9) < 1e-6:
-        raise InputError(f"--layout {p}: two vials share one position")
+        raise InputError(f"layout={p}: two vials share one position")
     return Layout(np.array(labels), names, xyz, np.array(radius, float), "z_mm" in cols, str(p))
 
 
@@ -207,10 +207,10 @@ def place_rois(image: np.ndarray, affine: np.ndarray, layout: Layout, *, source:
         except MatchFailure as exc:
             errors[mirrored] = exc
     if not found:
-        raise InputError(f"--layout {layout.path}: the vials on {source} cannot be matched to the layout: "
+        raise InputError(f"layout={layout.path}: the vials on {source} cannot be matched to the layout: "
                          f"{errors[False]} ({len(blobs)} vial-like components found by {thr}); check the layout, "
-                         f"give a --layout-image where the vials are bright and separate (e.g. an M0 map when the "
-                         f"vials sit in a darker fill), or pass --labels")
+                         f"give a layout_image=FILE where the vials are bright and separate (e.g. an M0 map when the "
+                         f"vials sit in a darker fill), or pass labels=FILE")
     mirrored = min(found, key=lambda k: (-len(found[k].pairs), found[k].rms_mm))
     match, other = found[mirrored], found.get(not mirrored)
     if other is not None and len(other.pairs) == len(match.pairs) and \

@@ -98,7 +98,7 @@ def sidecar_unit(param: str, units, *, where: str) -> str:
     if unit is None or unit not in _FAMILY_UNITS[family(param)]:
         allowed = ", ".join(_FAMILY_UNITS[family(param)])
         raise InputError(f"{where}: sidecar Units {units!r} is not a unit of {param} (expected one of {allowed}); "
-                         f"fix the sidecar or pass the right --param")
+                         f"fix the sidecar or pass the right param=NAME")
     return unit
 
 

@@ -106,7 +106,7 @@ class ReferenceTable:
             lab = next(lab for lab in self.labels if len(set(self.temperatures(lab))) > 1)
             t = self.temperatures(lab)
             raise UsageError(f"{self.path}: vial {lab} has values at {len(t)} temperatures ({_trange(t)}); give "
-                             f"--temperature C (the phantom temperature during the scan) to interpolate between them")
+                             f"temperature=C (the phantom temperature during the scan) to interpolate between them")
         out = {}
         for lab in self.labels:
             rows = [r for r in self.rows if r["label"] == lab]
@@ -139,7 +139,7 @@ class ReferenceTable:
             return float(v[0]), False
         lo, hi = float(t.min()), float(t.max())
         if not lo - 1e-9 <= temperature <= hi + 1e-9:
-            raise InputError(f"{self.path}: --temperature {temperature:g} C lies outside the table's range for vial "
+            raise InputError(f"{self.path}: temperature={temperature:g} C lies outside the table's range for vial "
                              f"{lab} ({what}: {_trange(t)}); values are not extrapolated -- check the temperature or "
                              f"extend the table")
         order = np.argsort(t)
@@ -159,7 +159,7 @@ def _trange(t) -> str:
 def read_reference(path: str | Path) -> ReferenceTable:
     """Read and validate a reference CSV (see the module docstring)."""
     p = Path(path)
-    text = read_text_table(p, what=f"reference table {p}", missing_hint="check the --reference path")
+    text = read_text_table(p, what=f"reference={p}", missing_hint="check the path")
     return parse_reference(text, where=str(p))
 
 

@@ -108,22 +108,23 @@ def describe_failure(r: RoiResult) -> str:
 
 def _check_options(maps, params, labels, layout, layout_image, tolerance, erode, min_voxels, temperature):
     if not maps:
-        raise UsageError("give at least one --map (a parameter map such as sub-01_T1map.nii.gz)")
+        raise UsageError("maps is empty: give at least one parameter map (e.g. maps=['sub-01_T1map.nii.gz'])")
     if len(params) != len(maps):
         raise UsageError("params must have one entry (or None) per map")
     if (labels is None) == (layout is None):
-        raise UsageError("give either --labels (a label image) or --layout (vial positions), not both or neither")
+        raise UsageError("give either labels=FILE (a label image) or layout=FILE (vial positions), not both or "
+                         "neither")
     if layout_image is not None and layout is None:
-        raise UsageError("--layout-image only applies with --layout")
+        raise UsageError("layout_image=FILE only applies with layout=FILE")
     if tolerance is not None and not (isinstance(tolerance, (int, float)) and math.isfinite(tolerance)
                                       and tolerance > 0):
-        raise UsageError(f"--tolerance {tolerance}: give a positive percentage, e.g. 10")
+        raise UsageError(f"tolerance={tolerance}: give a positive percentage, e.g. 10")
     if erode is not None and erode < 0:
-        raise UsageError(f"--erode {erode}: give 0 or a positive number of voxels")
+        raise UsageError(f"erode={erode}: give 0 or a positive number of voxels")
     if min_voxels < 1:
-        raise UsageError(f"--min-voxels {min_voxels}: give a positive number of voxels")
+        raise UsageError(f"min_voxels={min_voxels}: give a positive number of voxels")
     if temperature is not None and not (math.isfinite(temperature) and -50 < temperature < 100):
-        raise UsageError(f"--temperature {temperature}: give the phantom temperature in degrees Celsius")
+        raise UsageError(f"temperature={temperature}: give the phantom temperature in degrees Celsius")
 
 
 def _check_outputs_free(out_dir: Path, overwrite: bool, layout: bool) -> None:
@@ -132,21 +133,21 @@ def _check_outputs_free(out_dir: Path, overwrite: bool, layout: bool) -> None:
     names = list(FIXED_OUTPUTS) + (["phantom_labels.nii.gz"] if layout else [])
     found = [n for n in names if (out_dir / n).exists()]
     if found:
-        raise OutputExistsError(f"{out_dir / found[0]} exists already; pass --overwrite to replace the phantom "
-                                f"outputs, or choose another -o")
+        raise OutputExistsError(f"{out_dir / found[0]} exists already; pass overwrite=True to replace the phantom "
+                                f"outputs, or choose another out_dir=")
 
 
 def _check_maps(maps: list[MapInput], table) -> None:
     seen: dict[str, Path] = {}
     for m in maps:
         if m.key in seen:
-            raise InputError(f"--map {m.path} and --map {seen[m.key]} both hold {m.key}; tell them apart with "
-                             f"--tag after each (--map A --tag ir --map B --tag vfa), or --param to say what each "
+            raise InputError(f"map={m.path} and map={seen[m.key]} both hold {m.key}; give each map its tag=TAG to "
+                             f"tell them apart (e.g. tag='ir' and tag='vfa'), or its param=NAME to say what it "
                              f"holds")
         seen[m.key] = m.path
         if m.param not in table.units:
             cols = ", ".join(table.units)
-            raise InputError(f"--map {m.path} holds {m.param} but {table.path} has no {m.param} column (parameter "
+            raise InputError(f"map={m.path} holds {m.param} but {table.path} has no {m.param} column (parameter "
                              f"columns found: {cols}); add a column such as {example_column(m.param)}, or leave "
                              f"this map out")
 
@@ -167,14 +168,14 @@ def _label_image(labels, layout, layout_image, maps, table):
         raise InputError(f"{table.path}: label(s) {', '.join(map(str, missing))} are not in the layout {layout} "
                          f"(it has {_list(sorted(lay.labels.tolist()))}); add them to the layout or remove those rows")
     if layout_image is not None:
-        img = load_image(layout_image, what="--layout-image")
+        img = load_image(layout_image, what="layout_image=")
         data = image_data(img, layout_image)
         if data.ndim == 4 and data.shape[3] == 1:
             data = data[..., 0]
         if data.ndim == 2:
             data = data[..., None]
         if data.ndim != 3:
-            raise InputError(f"--layout-image {layout_image}: has shape {data.shape}; expected one 3D volume")
+            raise InputError(f"layout_image={layout_image}: has shape {data.shape}; expected one 3D volume")
         aff, source = np.asarray(img.affine, float), str(layout_image)
     else:
         data, aff, source = maps[0].data, maps[0].affine, str(maps[0].path)
@@ -278,7 +279,7 @@ def run_phantom(
     _check_maps(loaded, table)
     session = session_info(loaded[0].sidecar, date=date, scanner=scanner, protocol=protocol)
     if history is not None and not Path(history).absolute().parent.is_dir():
-        raise InputError(f"--history {history}: the folder {Path(history).absolute().parent} does not exist; create "
+        raise InputError(f"history={history}: the folder {Path(history).absolute().parent} does not exist; create "
                          f"it or give another path")
     old_history = read_history(history) if history is not None else None
     lab, lab_aff, placed, roi_source = _label_image(labels, layout, layout_image, loaded, table)
@@ -349,7 +350,7 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
                    else "the map has no finite value inside any labelled vial")
             raise InputError(
                 f"{m.path.name}: {why} (map field of view {_fov(m.data.shape, m.affine)}, labels "
-                f"{_fov(lab.shape, lab_aff)}); check that --labels and --map belong to the same scan"
+                f"{_fov(lab.shape, lab_aff)}); check that labels= and map= belong to the same scan"
             )
         se_map = _stderr_map(m)
         status, _, status_note = status_beside(m.path, m.data.shape, m.affine)

@@ -190,18 +190,18 @@ def run_roi(maps, *, labels, out_dir, params=None, names=None, erode: int = 0, p
     """
     maps = [Path(m) for m in (maps or [])]
     if not maps:
-        raise UsageError("give at least one --map (e.g. --map sub-01_T1map.nii.gz)")
+        raise UsageError("maps is empty: give at least one map (e.g. maps=['sub-01_T1map.nii.gz'])")
     params = list(params) if params is not None else [None] * len(maps)
     if len(params) != len(maps):
         raise UsageError("params must have one entry (or None) per map")
     if erode < 0:
-        raise UsageError(f"--erode {erode}: give 0 or a positive number of voxels")
+        raise UsageError(f"erode={erode}: give 0 or a positive number of voxels")
     out_dir = Path(out_dir)
     if not overwrite:
         found = [n for n in OUTPUTS if (out_dir / n).exists()]
         if found:
-            raise OutputExistsError(f"{out_dir / found[0]} exists already; pass --overwrite to replace it, or "
-                                    f"choose another -o")
+            raise OutputExistsError(f"{out_dir / found[0]} exists already; pass overwrite=True to replace it, or "
+                                    f"choose another out_dir=")
     lab, lab_aff = load_labels(labels)
     table, table_path = label_names(labels, names)
     wanted = sorted(set(np.unique(lab).tolist()) - {0})
@@ -214,7 +214,7 @@ def run_roi(maps, *, labels, out_dir, params=None, names=None, erode: int = 0, p
                                  use_status=use_status)
         if not any(x.n_voxels for x in r):
             raise InputError(f"{m.path.name}: no finite value inside any label (the label image and the map may not "
-                             f"overlap); check that --labels and --map belong to the same scan")
+                             f"overlap); check that labels= and map= belong to the same scan")
         rows += r
         notes += n
         map_info.append({"path": str(m.path.absolute()), "parameter": m.param, "parameter_source": m.param_source,

@@ -57,8 +57,8 @@ def t2_model(
     whole_train = choose("t2", bool(epg)).model == "epg_t2"
     if whole_train and drop_first:
         raise UsageError(
-            "--drop-first is for the mono-exponential fit: the EPG model (--epg) describes the first echo and "
-            "needs it to tell T2 from the refocusing angle; leave out one of the two options"
+            "drop_first=True is for the mono-exponential fit: the EPG model (epg=True) describes the first echo "
+            "and needs it to tell T2 from the refocusing angle; leave out one of the two"
         )
     model, _ = build_model("t2", bool(epg), te[1:] if drop_first else te, refocus_deg=refocus_deg, t1=t1)
     return model, model.info()

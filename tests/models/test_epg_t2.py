@@ -116,7 +116,7 @@ def test_echo_spacing_validation():
             EpgT2(bad)
     with pytest.raises(InputError, match="at least 4 echoes"):
         EpgT2(TE[:3])
-    with pytest.raises(UsageError, match="drop-first"):
+    with pytest.raises(UsageError, match="drop_first=True"):
         fit_t2(np.ones((2, N_ECHOES)), TE, epg=True, drop_first=True, noise_floor="none")
     with pytest.raises(InputError, match="refocus"):
         EpgT2(TE, refocus_deg=200.0)

@@ -45,7 +45,7 @@ def test_temperature_outside_the_table_is_refused():
 
 
 def test_temperature_required_when_the_table_has_several():
-    with pytest.raises(UsageError, match="--temperature"):
+    with pytest.raises(UsageError, match="give temperature=C "):
         parse_reference(TWO_TEMPS).at(None)
 
 
