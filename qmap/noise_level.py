@@ -70,7 +70,6 @@ MASK_NOISE_FACTOR = 3.0
 #: choice does not depend on how the volume is read)
 SIGMA_SAMPLES = 400_000
 
-_HINT = "give the noise level with --sigma VALUE"
 
 
 class VolumeSource(Protocol):
@@ -822,7 +821,7 @@ def _background_problem(b: _Background, need: int, need_samples: int) -> str:
     if b.n_outside == 0 or b.mask_fraction > 0.85:
         return (f"no background: the object mask covers {100 * b.mask_fraction:.0f} % of the image (a field of view "
                 "cropped to the object, or at very low SNR an automatic mask that took in the noise itself -- "
-                "then give a mask file with --mask)")
+                "then give a mask file: mask=FILE)")
     if b.n_zero + b.n_nonfinite >= 0.5 * b.n_outside:
         what = "zero-filled (exact zeros)" if b.n_zero >= b.n_nonfinite else "NaN (no finite value)"
         return (f"the background is {what} in {b.n_zero + b.n_nonfinite} of its {b.n_outside} voxels, leaving "
@@ -881,7 +880,7 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
                          "--coils N)")
         elif coils is not None and abs(n_eff - coils) > max(0.5, 3.0 * se_r * n_eff * n_eff) and n_round != coils:
             warns.append(f"the background's moments fit a sum of squares over about {n_eff:.1f} coils, not the "
-                         f"--coils {coils} given; check --coils")
+                         f"coils={coils} given; check coils=")
     rel = median_relative_se(use) / math.sqrt(bg.size)
     if quantum > 0:
         details["quantum"] = quantum
@@ -912,7 +911,7 @@ def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
         if ratio > max(1.2, 1.0 + 4.0 * se) and ratio > worst[0]:
             worst = (ratio, (f"the background noise differs by a factor {ratio:.2f} between the two halves of the "
                             f"image along {'xy'[axis]} (parallel imaging or coil sensitivity?): one sigma biases "
-                            "the fit where the noise is higher; consider --sigma local"))
+                            "the fit where the noise is higher; consider sigma='local'"))
     return worst[1]
 
 
@@ -1207,7 +1206,7 @@ def estimate_noise(
             chosen.warnings.append(
                 f"the background ({bg.value:.4g}) and the fit residuals ({res.value:.4g}) disagree on the noise "
                 f"level (ratio {ratio:.2f}, beyond their uncertainty): the model may not describe the data (e.g. "
-                "a multi-exponential decay), the noise may vary over the image (--sigma local), or the background "
+                "a multi-exponential decay), the noise may vary over the image (sigma='local'), or the background "
                 "may hold artefacts; using the " + chosen.source)
     if chosen.coils is None:
         chosen.coils = 1 if coils is None else coils
@@ -1221,13 +1220,13 @@ def estimate_noise(
 
 
 def _failure_message(errors: list, have_model: bool, obj: np.ndarray) -> str:
-    fixes = ["give the noise level with --sigma VALUE (signal units)"]
+    fixes = ["give the noise level with sigma=VALUE (signal units)"]
     if any("mask covers" in e for e in errors):
-        fixes.insert(0, "give a mask file with --mask")
+        fixes.insert(0, "give a mask file (mask=FILE)")
     if any("not a magnitude image" in e for e in errors):
         fixes = ["check that the input is a magnitude image (not a real-valued or phase export)"] + fixes
     if have_model:
-        fixes.append("or fit without the noise floor (--noise-floor none)")
+        fixes.append("or fit without the noise floor (noise_floor='none')")
     if not obj.any():
         errors.insert(0, "no object was found in the image")
     errors = [e.replace("cannot estimate the noise from ", "") for e in errors]
@@ -1389,7 +1388,7 @@ def smooth_noise_map(
     details = dict(first.details, smoothing_sd_voxels=width, first_source=first.source, first_sigma=g)
     return NoiseEstimate(sigma=sig.astype(np.float32), source="local", n_voxels=int(use.sum() + b.n_usable),
                          relative_precision=rel, coils=first.coils, details=details, notes=notes,
-                         warnings=[w for w in first.warnings if "--sigma local" not in w])
+                         warnings=[w for w in first.warnings if "sigma='local'" not in w])
 
 
 def array_sigma(data: np.ndarray, model, spec, *, mask=None, coils: int | None = None,
@@ -1422,12 +1421,7 @@ def array_sigma(data: np.ndarray, model, spec, *, mask=None, coils: int | None =
     lead = a.shape[:-1]
     a4 = a if a.ndim == 4 else a.reshape(-1, 1, 1, a.shape[-1])
     m = None if mask is None else np.asarray(mask, bool).reshape(a4.shape[:3])
-    try:
-        est = estimate_noise(ArraySource(a4), model=model, mask=m, coils=coils, local=spec == "local",
-                             n_jobs=n_jobs)
-    except InputError as exc:
-        msg = str(exc).replace("--sigma VALUE", "sigma=VALUE").replace("--noise-floor none", 'noise_floor="none"')
-        raise InputError(msg.replace("a mask file with --mask", "a mask (mask=...)")) from None
+    est = estimate_noise(ArraySource(a4), model=model, mask=m, coils=coils, local=spec == "local", n_jobs=n_jobs)
     info = est.provenance(spec)
     info.update(coils=est.coils, notes=list(est.notes))
     sigma = np.asarray(est.sigma).reshape(lead) if spec == "local" else float(est.sigma)

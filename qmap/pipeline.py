@@ -61,13 +61,13 @@ class CommonOptions:
     def __post_init__(self):
         self.out_dir = Path(self.out_dir)
         if self.stderr not in ("noise", "residual"):
-            raise UsageError(f"--stderr {self.stderr!r}: expected noise or residual")
+            raise UsageError(f"stderr={self.stderr!r}: expected noise or residual")
         if self.units not in ("s", "ms"):
-            raise UsageError(f"--units {self.units!r}: expected s or ms")
+            raise UsageError(f"units={self.units!r}: expected s or ms")
         if self.engine not in ("fast", "lmfit"):
-            raise UsageError(f"--engine {self.engine!r}: expected fast or lmfit")
+            raise UsageError(f"engine={self.engine!r}: expected fast or lmfit")
         if self.prefix is not None and (not self.prefix or "/" in self.prefix or self.prefix.startswith(".")):
-            raise UsageError(f"--prefix {self.prefix!r}: give a plain file-name stem such as sub-01_T2star")
+            raise UsageError(f"prefix={self.prefix!r}: give a plain file-name stem such as sub-01_T2star")
 
     def as_dict(self) -> dict:
         return {
@@ -208,14 +208,14 @@ def resolve_mask(spec, series: Series, max_bytes: float | None = None) -> tuple[
     if spec == "auto":
         return (object_mask(series, max_bytes),
                 "auto (0.5 x Otsu threshold of the per-voxel maximum, opened, holes filled)")
-    img = load_image(spec, what="--mask")
-    check_same_grid(series.shape, series.affine, img.shape, img.affine, ref_name="the series", name=f"--mask {spec}")
+    img = load_image(spec, what="mask=")
+    check_same_grid(series.shape, series.affine, img.shape, img.affine, ref_name="the series", name=f"mask={spec}")
     data = image_data(img, spec)
     if data.ndim != 3:
-        raise InputError(f"--mask {spec}: expected a 3D image, got shape {data.shape}")
+        raise InputError(f"mask={spec}: expected a 3D image, got shape {data.shape}")
     mask = np.isfinite(data) & (data > 0)
     if not mask.any():
-        raise InputError(f"--mask {spec}: no voxel is > 0; the mask selects nothing")
+        raise InputError(f"mask={spec}: no voxel is > 0; the mask selects nothing")
     return mask, f"file {Path(spec).absolute()}"
 
 
@@ -286,19 +286,19 @@ def resolve_sigma(
         value = None
     if value is not None:
         if not np.isfinite(value) or value <= 0:
-            raise InputError(f"--sigma {spec}: must be a positive number in signal units, or auto, local, "
+            raise InputError(f"sigma={spec}: must be a positive number in signal units, or auto, local, "
                              "or a NIfTI noise map")
         return value, {"sigma_mode": "value", "sigma": value, "source": "command line", "value": value,
                        "sigma_source": "command line", "n_voxels": None, "relative_precision": None, "notes": []}
-    img = load_image(spec, what="--sigma")
+    img = load_image(spec, what="sigma=")
     check_same_grid(series.shape, series.affine, img.shape, img.affine, ref_name="the series",
-                    name=f"--sigma {spec}")
+                    name=f"sigma={spec}")
     data = image_data(img, spec)
     if data.ndim != 3:
-        raise InputError(f"--sigma {spec}: expected a 3D noise map, got shape {data.shape}")
+        raise InputError(f"sigma={spec}: expected a 3D noise map, got shape {data.shape}")
     usable = np.isfinite(data) & (data > 0)
     if not usable.any():
-        raise InputError(f"--sigma {spec}: holds no positive value; a noise map holds the noise sd (> 0) of each voxel "
+        raise InputError(f"sigma={spec}: holds no positive value; a noise map holds the noise sd (> 0) of each voxel "
                          f"in signal units (where it is not positive the standard errors are NaN, and a fit that "
                          f"models the noise floor skips the voxel: status 2)")
     med = float(np.median(data[usable]))
@@ -343,7 +343,7 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
         # signed (phase-corrected) data: the background is Gaussian, not Rayleigh, and the magnitude
         # statistics of the estimator would give about 0.57 sigma -- too small standard errors
         reason = "the noise of signed (real / phase-corrected) data is not estimated from the background"
-        warn(f"{reason}; the standard errors use the per-voxel residual variance (give --sigma VALUE for "
+        warn(f"{reason}; the standard errors use the per-voxel residual variance (give sigma=VALUE for "
              "noise-based ones)")
         if notes is not None:
             notes.append("standard errors from the per-voxel residual variance (signed data: give --sigma VALUE)")
@@ -437,7 +437,7 @@ def check_outputs_free(common: CommonOptions, prefix: str) -> None:
     if found:
         raise OutputExistsError(
             f"{found[0]} exists already (and {len(found) - 1} more outputs with prefix {prefix}); "
-            f"pass --overwrite to replace them, or choose another -o / --prefix"
+            f"pass overwrite=True to replace them, or choose another out_dir= / prefix="
         )
 
 

@@ -279,3 +279,40 @@ def test_epg_messages_name_the_argument_and_the_command_line_its_option(tmp_path
     assert _one_error(capsys) == ("qmap: error: --epg fits M0, T2 and the refocusing angle and needs at least 4 "
                                   "echoes, got 3")
     assert as_options(str(exc2.value)).startswith("--drop-first is for the mono-exponential fit: the EPG model (--epg)")
+
+
+# --------------------------------------------------------------------- shared options of the fitting commands
+def test_shared_fit_options_and_the_noise_level_name_arguments(tmp_path, capsys):
+    from qmap.io.series import load_series
+    from qmap.pipeline import CommonOptions, resolve_mask, resolve_sigma
+
+    files = _vfa(tmp_path)
+    series = load_series(files, key="FlipAngle", option="--fa")
+    empty = write_nifti(tmp_path / "empty_mask.nii.gz", np.zeros(SHAPE), AFFINE)
+    cases = [
+        (lambda: resolve_sigma("-3", series), "sigma=-3: must be a positive number", ["--sigma", "-3"],
+         "--sigma -3: must be a positive number"),
+        (lambda: resolve_mask(str(empty), series), f"mask={empty}: no voxel is > 0", ["--sigma", "5", "--mask",
+                                                                                        str(empty)],
+         f"--mask {empty}: no voxel is > 0"),
+    ]
+    for call, library, argv, cli in cases:
+        with pytest.raises(InputError) as exc:
+            call()
+        assert str(exc.value).startswith(library), str(exc.value)
+        _no_option(str(exc.value))
+        assert main(["t1-vfa", *files, "-o", str(tmp_path / "o"), "-q", *argv]) == 2
+        assert _one_error(capsys).startswith(f"qmap: error: {cli}")
+    for kwargs, library, cli in [({"units": "min"}, "units='min': expected s or ms", "--units min: expected"),
+                                 ({"prefix": "a/b"}, "prefix='a/b': give a plain file-name stem", "--prefix a/b:"),
+                                 ({"stderr": "x"}, "stderr='x': expected noise or residual", "--stderr x:")]:
+        with pytest.raises(UsageError) as uexc:
+            CommonOptions(out_dir=tmp_path / "o", **kwargs)
+        assert str(uexc.value).startswith(library) and as_options(str(uexc.value)).startswith(cli)
+    # the noise level's diagnosis, as the array functions and as the command line say it
+    fix = ("give a mask file (mask=FILE), give the noise level with sigma=VALUE (signal units), or fit without the "
+           "noise floor (noise_floor='none')")
+    assert as_options(fix) == ("give a mask file (--mask FILE), give the noise level with --sigma VALUE (signal "
+                               "units), or fit without the noise floor (--noise-floor none)")
+    assert (as_options("the background's moments fit about 3.9 coils, not the coils=1 given; check coils=")
+            == "the background's moments fit about 3.9 coils, not the --coils 1 given; check --coils")

@@ -230,6 +230,14 @@ ARGUMENT_OPTIONS = {
     # the T2 model choice (qmap.workflows.t2.fit_t2 / run_t2 and qmap.models.epg_t2)
     "epg": "--epg",
     "drop_first": "--drop-first",
+    # the shared options of the fitting commands (qmap.pipeline.CommonOptions, resolve_mask / resolve_sigma)
+    # and the noise level's estimation (qmap.noise_level)
+    "mask": "--mask",
+    "stderr": "--stderr",
+    "units": "--units",
+    "engine": "--engine",
+    "prefix": "--prefix",
+    "noise_floor": "--noise-floor",
 }
 _ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
 

@@ -29,7 +29,7 @@ EQUATIONS = {
     "dam": "a = arccos(S(2a) / (2 S(a))) (TR >> T1; Insko & Bolinger 1993); TB1 = a / nominal",
 }
 #: (warning, summary note) when the noise level cannot be estimated: no residual to fall back on
-NAN_FALLBACK = ("the TB1 standard errors are NaN (give --sigma VALUE)",
+NAN_FALLBACK = ("the TB1 standard errors are NaN (give sigma=VALUE)",
                 "standard errors are NaN: the noise could not be estimated (give --sigma VALUE)")
 #: DAM needs full recovery; below this TR (s) the summary reminds the user (TR >= ~5 T1, common practice)
 DAM_TR_NOTE_S = 5.0

@@ -254,8 +254,8 @@ def _local_sigma(out: _Collect, series, mask, budget, min_snr: float):
     fitted = _fitted(out)
     idx = np.flatnonzero(fitted)
     if idx.size < MIN_RESIDUAL_VOXELS:
-        raise InputError(f"--sigma local: only {idx.size} voxels have a fitted spectrum, too few for a noise map; "
-                         f"give --sigma VALUE, a noise map, or --sigma auto")
+        raise InputError(f"sigma='local': only {idx.size} voxels have a fitted spectrum, too few for a noise map; "
+                         f"give sigma=VALUE, a noise map, or sigma='auto'")
     dof = out.arr["dof"][idx].astype(float)
     rss = out.arr["sigma"][idx].astype(float) ** 2 * dof
     try:
