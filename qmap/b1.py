@@ -43,7 +43,7 @@ import numpy as np
 from .defaults import B1_METHODS, B1_SCALES
 from .errors import InputError, UsageError, warn
 from .fitting import status as st
-from .io.nifti import image_data, load_image, read_sidecar, resample_to_grid
+from .io.nifti import image_data, load_image, read_sidecar, resample_blocks
 
 if TYPE_CHECKING:
     from nibabel.spatialimages import SpatialImage
@@ -347,6 +347,7 @@ def load_b1_map(
     affine: np.ndarray,
     b1_scale: str | None = None,
     b1_smooth: float | None = None,
+    dtype: np.dtype | type = float,
 ) -> tuple[np.ndarray, dict]:
     """Load a relative B1 map and resample it onto a data grid.
 
@@ -363,6 +364,8 @@ def load_b1_map(
         says ``percent`` / ``%``, else fraction.
     b1_smooth : float, optional
         Gaussian smoothing (FWHM, mm) on the map's own grid before resampling.
+    dtype : dtype, optional
+        Of the returned map (default float64; float32 halves its memory, the values rounded once).
 
     Returns
     -------
@@ -418,7 +421,7 @@ def load_b1_map(
         sw = ndimage.gaussian_filter(valid.astype(float), sig, mode="constant", cval=0.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             values = np.where(valid, sv / sw, np.nan)
-    b1 = _resample_valid(values, valid, src_affine, shape, affine)
+    b1 = _resample_valid(values, valid, src_affine, shape, affine, dtype)
     covered = np.isfinite(b1)
     if not covered.any():
         raise InputError(
@@ -452,16 +455,20 @@ def _load_3d(path: Path, argument: str, expected: str) -> tuple[SpatialImage, np
 
 
 def _resample_valid(values: np.ndarray, valid: np.ndarray, src_affine: np.ndarray, shape: tuple,
-                    affine: np.ndarray) -> np.ndarray:
+                    affine: np.ndarray, dtype=float) -> np.ndarray:
     """Trilinear resampling of ``values`` onto a grid, normalised by the resampled coverage of ``valid``.
 
     A voxel is kept (NaN elsewhere) where at least half of its interpolation weight is valid, so the edge of
     a masked map is not pulled towards 0.
     """
-    rv = resample_to_grid(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
-    rw = resample_to_grid(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(rw >= 0.5, rv / rw, np.nan)
+    out = np.empty(int(np.prod(shape[:3])), dtype)
+    # block by block (qmap.io.nifti.resample_blocks): never the coordinates or the two resampled images whole
+    blocks_v = resample_blocks(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
+    blocks_w = resample_blocks(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
+    for (start, rv), (_, rw) in zip(blocks_v, blocks_w, strict=True):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[start:start + rv.size] = np.where(rw >= 0.5, rv / rw, np.nan)
+    return out.reshape(tuple(int(s) for s in shape[:3]))
 
 
 def b1_stderr_beside(b1_path) -> Path | None:

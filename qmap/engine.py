@@ -324,7 +324,11 @@ def _concat(results: list[ChunkFit], model, noise, n: int, m: int) -> ChunkFit:
 
 def status_counts(status: np.ndarray) -> dict[str, int]:
     """Voxel count per status code (code as a string), only codes that occur."""
-    counts = np.bincount(np.asarray(status, np.uint8).reshape(-1), minlength=256)  # no sort (np.unique sorts)
+    flat = np.asarray(status, np.uint8).reshape(-1)
+    counts = np.zeros(256, np.int64)
+    # no sort (np.unique sorts); in parts: bincount casts its input to intp, 8 bytes a voxel
+    for i in range(0, flat.size, 1 << 18):
+        counts += np.bincount(flat[i:i + (1 << 18)], minlength=256)
     return {str(c): int(counts[c]) for c in np.flatnonzero(counts)}
 
 

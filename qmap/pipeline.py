@@ -502,6 +502,9 @@ class PreparedRun:
     t0: float
     extra_outputs: list = field(default_factory=list)  # e.g. the --sigma local noise map
     noise: NoiseFloor | None = None  # the noise floor as resolved (coils from the background)
+    #: a lazy series whose reader reads any z range cheaply (e.g. one 3D image): fitted and written in
+    #: :data:`AUTO_SLAB_VOXELS` slabs (at least 1/16 of the volume each) also without ``--max-memory``
+    slab_lazy: bool = False
 
     @property
     def slabs(self) -> list[tuple[int, int]]:
@@ -512,10 +515,12 @@ class PreparedRun:
     def fit_slabs(self) -> list[tuple[int, int]]:
         """The z ranges fitted and written one at a time: ``--max-memory`` slabs for a series read in slabs,
         else slabs of about :data:`AUTO_SLAB_VOXELS` voxels (one range on a Dask cluster)."""
-        if self.series.lazy or self.common.scheduler:
+        if self.common.scheduler or (self.series.lazy and not (self.slab_lazy and self.common.max_memory is None)):
             return self.slabs
         nx, ny, nz = self.series.shape
         k = max(1, AUTO_SLAB_VOXELS // max(1, nx * ny))
+        if self.series.lazy:  # each slab is read anew from the file: not more than 16 reads
+            k = max(k, -(-nz // 16))
         return [(z, min(z + k, nz)) for z in range(0, nz, k)]
 
     def for_slabs(self, fn, slabs: list[tuple[int, int]] | None = None, progress=None) -> list:

@@ -19,6 +19,7 @@ __all__ = [
     "image_data",
     "load_image",
     "read_sidecar",
+    "resample_blocks",
     "resample_to_grid",
     "same_grid",
     "sidecar_path",
@@ -181,10 +182,47 @@ def resample_to_grid(
     dst_shape = tuple(int(s) for s in dst_shape[:3])
     # destination voxel -> world -> source voxel
     mat = np.linalg.inv(np.asarray(src_affine, float)) @ np.asarray(dst_affine, float)
-    idx = np.indices(dst_shape, dtype=float).reshape(3, -1)
+    if order == 0:  # (labels: small images; the output's dtype depends on the whole grid)
+        return _resample_block(data, mat, dst_shape, 0, dst_shape[0], order, cval).reshape(dst_shape)
+    out = np.empty(int(np.prod(dst_shape)), float)
+    for start, block in resample_blocks(data, src_affine, dst_shape, dst_affine, order=order, cval=cval):
+        out[start:start + block.size] = block
+    return out.reshape(dst_shape)
+
+
+def resample_blocks(data: np.ndarray, src_affine: np.ndarray, dst_shape: tuple[int, ...], dst_affine: np.ndarray, *,
+                    order: int = 1, cval: float = np.nan):
+    """:func:`resample_to_grid` (``order`` >= 1) block by block: yields ``(start, values)``.
+
+    ``values`` (float64, flat) are the resampled image's C-order elements ``start:start + values.size``: whole
+    planes of the first axis, about :data:`RESAMPLE_BLOCK` voxels a block, so that the coordinates
+    ((3, voxels) float64, 24 bytes a voxel) are never those of the whole grid. The values are the same as
+    those of one call on the whole grid.
+    """
+    data = np.asarray(data, float)
+    if data.ndim != 3:
+        raise InputError(f"expected a 3D image to resample, got shape {data.shape}")
+    dst_shape = tuple(int(s) for s in dst_shape[:3])
+    mat = np.linalg.inv(np.asarray(src_affine, float)) @ np.asarray(dst_affine, float)
+    plane = dst_shape[1] * dst_shape[2]
+    step = max(1, RESAMPLE_BLOCK // max(1, plane))
+    for x0 in range(0, dst_shape[0], step):
+        yield x0 * plane, _resample_block(data, mat, dst_shape, x0, min(x0 + step, dst_shape[0]), order, cval)
+
+
+#: destination voxels resampled at a time by :func:`resample_to_grid` (its coordinates: 24 bytes a voxel)
+RESAMPLE_BLOCK = 1 << 16
+
+
+def _resample_block(data: np.ndarray, mat: np.ndarray, dst_shape: tuple[int, ...], x0: int, x1: int,
+                    order: int, cval: float) -> np.ndarray:
+    """The destination planes ``x0:x1`` (first axis) of :func:`resample_to_grid`, flat in C order."""
+    idx = np.indices((x1 - x0, dst_shape[1], dst_shape[2]), dtype=float)
+    idx[0] += x0
+    idx = idx.reshape(3, -1)
     src = mat[:3, :3] @ idx
     del idx
-    src += mat[:3, 3:4]  # in place: the coordinates are (3, voxels) float64, 24 bytes a voxel
+    src += mat[:3, 3:4]  # in place
     src_shape = np.array(data.shape, float)[:, None]
     inside = np.all((src >= -0.5) & (src <= src_shape - 0.5), axis=0)
     # clamp to the edge voxel centres so edge voxels are not blended with cval
@@ -195,9 +233,9 @@ def resample_to_grid(
     else:
         from scipy import ndimage  # imported on use (start-up time)
 
-        out = ndimage.map_coordinates(np.asarray(data, float), srcc, order=order, mode="nearest")
+        out = ndimage.map_coordinates(data, srcc, order=order, mode="nearest")
     if not inside.all():
         if np.isnan(cval) and not np.issubdtype(out.dtype, np.floating):
             out = out.astype(float)
         out[~inside] = cval
-    return out.reshape(dst_shape)
+    return out

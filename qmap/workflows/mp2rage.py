@@ -337,6 +337,20 @@ def lookup_for(protocol: MP2RAGEProtocol, b1=None) -> Mp2rageLookup:
     return Mp2rageLookup(protocol, b1_range=(lo, hi))
 
 
+def _b1_range(b1: np.ndarray, select: np.ndarray) -> tuple[float, float]:
+    """The B1 range :func:`lookup_for` takes from the finite values of ``b1[select]``, plane by plane.
+
+    (The same range as ``lookup_for(protocol, b1[select & finite])``, without that whole copy.)
+    """
+    lo, hi = np.inf, -np.inf
+    for z in range(b1.shape[2]):
+        b = b1[:, :, z][select[:, :, z]].astype(float)
+        b = b[np.isfinite(b) & (b >= B1_TABLE_RANGE[0]) & (b <= B1_TABLE_RANGE[1])]
+        if b.size:
+            lo, hi = min(lo, float(b.min())), max(hi, float(b.max()))
+    return (lo, hi) if np.isfinite(lo) else (1.0, 1.0)
+
+
 def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma, b1_se=None):
     """M0 by least squares of the magnitudes, and first-order standard errors of T1, R1, M0.
 
@@ -561,7 +575,10 @@ def run_t1_mp2rage(
     span: tuple[float, float] | None = None
     finite = np.zeros(shape, bool)
     zero_filled = np.zeros(shape, bool)
-    for z0, z1 in uni_series.slabs(budget):
+    # (in about 16 parts without --max-memory: the float32 UNI is never whole in memory)
+    k16 = -(-shape[2] // 16)
+    scan = uni_series.slabs(budget) if budget else [(z, min(z + k16, shape[2])) for z in range(0, shape[2], k16)]
+    for z0, z1 in scan:
         raw = read_uni(z0, z1)[..., 0]
         part = _finite_range(raw)
         if part is not None:
@@ -594,6 +611,7 @@ def run_t1_mp2rage(
                       auto_mask_desc=None if auto is not None else
                       "auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, holes "
                       "filled)")
+    run.slab_lazy = True  # UNI (and the inversion images) are read, inverted and written slab by slab
     notes = run.notes
     noise_info = None
     if inversions is not None:
@@ -612,7 +630,8 @@ def run_t1_mp2rage(
     if b1 is not None:
         from ..b1 import load_b1_map
 
-        b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, b1_scale=b1_scale, b1_smooth=b1_smooth)
+        b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, b1_scale=b1_scale, b1_smooth=b1_smooth,
+                                      dtype=np.float32)
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")
@@ -628,14 +647,15 @@ def run_t1_mp2rage(
         b1_desc = NO_B1_NOTE
     # one lookup table for the whole volume (its B1 range from every voxel to invert), then slab by slab
     to_invert = run.mask & finite
+    # the B1 map is held as float32 only: fit_t1_mp2rage reads it as float32 in any case
     b32 = None if b1_map is None else np.asarray(b1_map, np.float32)
-    lut = lookup_for(protocol, None if b32 is None else b32[to_invert & np.isfinite(b32)].astype(float))
+    lut = lookup_for(protocol) if b32 is None else Mp2rageLookup(protocol, b1_range=_b1_range(b32, to_invert))
 
     def one(slab: Slab) -> MapSet:
         z = slice(slab.z0, slab.z1)
         u = _decode(read_uni(slab.z0, slab.z1)[..., 0], encoding)
         mags = (None, None) if inversions is None else (slab.data[..., 0], slab.data[..., 1])
-        return fit_t1_mp2rage(u, protocol, b1=None if b1_map is None else b1_map[:, :, z], mask=slab.mask,
+        return fit_t1_mp2rage(u, protocol, b1=None if b32 is None else b32[:, :, z], mask=slab.mask,
                               inv1=mags[0], inv2=mags[1], sigma=slab.sigma,
                               b1_se=None if b1_se is None else np.asarray(b1_se)[:, :, z], lut=lut)
 
