@@ -148,7 +148,9 @@ def otsu_threshold(values: npt.ArrayLike) -> float:
     :math:`m_0, m_1` of the histogram split after bin :math:`k`, the
     threshold maximises :math:`w_0 w_1 (m_0 - m_1)^2`.
     """
-    v = np.ravel(np.asarray(values, dtype=np.float64))
+    v = np.ravel(np.asarray(values))
+    if v.dtype.kind not in "fiub":
+        v = v.astype(np.float64)
     if v.size == 0:
         raise ValueError("otsu_threshold needs at least one value")
     if not np.all(np.isfinite(v)):
@@ -156,8 +158,11 @@ def otsu_threshold(values: npt.ArrayLike) -> float:
     lo, hi = float(v.min()), float(v.max())
     if lo == hi:
         return lo
-    hist, edges = np.histogram(v, bins=256, range=(lo, hi))
-    hist = hist.astype(np.float64)
+    # the histogram of the float64 values, taken in parts (no float64 copy of them all; the same counts)
+    hist = np.zeros(256, np.float64)
+    for i in range(0, v.size, 1 << 16):
+        part, edges = np.histogram(v[i:i + (1 << 16)].astype(np.float64), bins=256, range=(lo, hi))
+        hist += part
     centres = 0.5 * (edges[:-1] + edges[1:])
     w0 = np.cumsum(hist)[:-1]
     s0 = np.cumsum(hist * centres)[:-1]
@@ -215,15 +220,19 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     if nonzero.size == 0:
         return np.zeros(peak.shape, dtype=bool)
     if nonzero.size > _MASK_SAMPLES:  # an even stride: the histogram needs no more (memory, time)
-        nonzero = nonzero[:: -(-nonzero.size // _MASK_SAMPLES)]
-    clipped = np.minimum(nonzero, np.percentile(nonzero, 99.9))
+        nonzero = nonzero[:: -(-nonzero.size // _MASK_SAMPLES)].copy()
+    # in place on this copy of the values: the percentile, Otsu's histogram and the median depend on the
+    # values, not on their order
+    clipped = np.minimum(nonzero, np.percentile(nonzero, 99.9, overwrite_input=True), out=nonzero)
     t_otsu = otsu_threshold(clipped)
     # dim regions clearly above the noise stay in: the threshold is at most NOISE_FACTOR x the median of
     # the class below Otsu's threshold (the noise where the image has background)
     lower = clipped[clipped <= t_otsu]
+    del clipped, nonzero
     threshold = 0.5 * t_otsu
     if lower.size:
-        threshold = min(threshold, MASK_NOISE_FACTOR * float(np.median(lower)))
+        threshold = min(threshold, MASK_NOISE_FACTOR * float(np.median(lower, overwrite_input=True)))
+    del lower
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
     mask = dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]

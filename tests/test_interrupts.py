@@ -238,7 +238,7 @@ def others(tmp_path_factory):
 
 # command -> (module, attribute, k): where the interrupt is injected
 OTHER_STAGES = {
-    "t1-vfa-resampling-b1": ("t1-vfa", "qmap.b1", "resample_to_grid", 1),
+    "t1-vfa-resampling-b1": ("t1-vfa", "qmap.b1", "resample_blocks", 1),
     "t1-vfa-fit": ("t1-vfa", "qmap.engine", "fit_chunk", 1),
     "t1-vfa-3rd-nifti": ("t1-vfa", "qmap.io.writer", "NiftiStream._put", 3),
     "b1-2nd-nifti": ("b1", "qmap.io.writer", "NiftiStream._put", 2),
