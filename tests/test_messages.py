@@ -316,3 +316,38 @@ def test_shared_fit_options_and_the_noise_level_name_arguments(tmp_path, capsys)
                                "units), or fit without the noise floor (--noise-floor none)")
     assert (as_options("the background's moments fit about 3.9 coils, not the coils=1 given; check coils=")
             == "the background's moments fit about 3.9 coils, not the --coils 1 given; check --coils")
+
+
+# --------------------------------------------------------------------- inspect, t1-vfa and b1 arguments
+def test_inspect_vfa_and_b1_messages_name_arguments(tmp_path, capsys):
+    from qmap.pipeline import CommonOptions
+    from qmap.workflows.b1 import run_b1
+    from qmap.workflows.inspect import parse_voxel, parse_world
+    from qmap.workflows.vfa import run_t1_vfa
+
+    common = CommonOptions(out_dir=tmp_path / "o")
+    files = _vfa(tmp_path)
+    cases = [
+        (lambda: parse_voxel("1,2"), "voxel='1,2': expected three 0-based indices", "--voxel 1,2: expected"),
+        (lambda: parse_world("a,b,c"), "world='a,b,c': expected three coordinates", "--world a,b,c: expected"),
+        (lambda: run_t1_vfa(files, common=common, method="quick"), "method='quick': expected nonlinear or linear",
+         "--method quick: expected"),
+        (lambda: run_t1_vfa(files, common=common, fa=[10, 10, 10, 10]),
+         "fa=(10, 10, 10, 10): VFA T1 needs at least two different flip angles", "--fa 10,10,10,10: VFA T1 needs"),
+        (lambda: run_t1_vfa(files, common=common, b1_scale="percent"), "b1_scale= / b1_smooth= need b1=B1MAP",
+         "--b1-scale / --b1-smooth need --b1 B1MAP"),
+        (lambda: run_b1(files[:2], common=common, method="dam", fa=[10, 20, 30]),
+         "fa=(10, 20, 30): the double-angle method takes one angle a or two", "--fa 10,20,30: the double-angle"),
+        (lambda: run_b1(files[:2], common=CommonOptions(out_dir=tmp_path / "o", units="ms"), method="dam"),
+         "units='ms' does not apply to B1 maps", "--units ms does not apply to B1 maps"),
+    ]
+    for call, library, cli in cases:
+        with pytest.raises(UsageError) as exc:
+            call()
+        msg = str(exc.value)
+        assert msg.startswith(library), msg
+        _no_option(msg)
+        assert as_options(msg).startswith(cli), as_options(msg)
+    assert main(["t1-vfa", *files, "--method", "linear", "--engine", "lmfit", "-o", str(tmp_path / "o"), "-q"]) == 2
+    assert _one_error(capsys) == ("qmap: error: --engine lmfit applies to --method nonlinear; the linear method is a "
+                                  "closed-form regression")

@@ -238,6 +238,12 @@ ARGUMENT_OPTIONS = {
     "engine": "--engine",
     "prefix": "--prefix",
     "noise_floor": "--noise-floor",
+    # qmap.workflows.inspect (inspect_voxel), t1-vfa and b1 (run_t1_vfa, run_b1)
+    "voxel": "--voxel",
+    "world": "--world",
+    "method": "--method",
+    "fa": "--fa",
+    "t1_typical": "--t1-typical",
 }
 _ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
 

@@ -84,12 +84,13 @@ def _load_dam(inputs, fa, tr, max_bytes, check_order=True):
         if fa.size == 1:
             fa = np.array([fa[0], 2.0 * fa[0]])
         elif fa.size != 2:
-            raise UsageError(f"--fa: DAM takes a or a,2a, got {fa.size} values")
+            raise UsageError(f"fa=({', '.join(f'{v:g}' for v in fa)}): the double-angle method takes one angle a "
+                             f"or two, a and 2a; got {fa.size}")
     series = _load_pair(_DAM, inputs, fa, tr, max_bytes, check_order)
     a = np.asarray(series.acquisition["FlipAngle"], float)
     if not np.isclose(a[1], 2.0 * a[0], rtol=1e-2):
-        raise InputError(f"--fa / FlipAngle {a[0]:g},{a[1]:g} deg: the double-angle method needs the angles a and 2a "
-                         f"(e.g. 60,120)")
+        raise InputError(f"flip angles {a[0]:g},{a[1]:g} deg (fa= or the sidecar FlipAngle): the double-angle method needs the "
+                         f"angles a and 2a (e.g. 60,120)")
     return series, float(a[0]), None
 
 
@@ -132,11 +133,12 @@ def run_b1(
     """
     t0 = time.perf_counter()
     if method not in B1_METHODS:
-        raise UsageError(f"--method {method!r}: expected afi or dam")
+        raise UsageError(f"method={method!r}: expected afi or dam")
     if common.engine != "fast":
-        raise UsageError("--engine does not apply to qmap b1: B1 is computed in closed form")
+        raise UsageError(f"engine={common.engine!r} does not apply to B1 maps: B1 is computed in closed form")
     if common.units != "s":
-        raise UsageError("--units does not apply to qmap b1: it writes no time map (TB1 is a fraction)")
+        raise UsageError(f"units={common.units!r} does not apply to B1 maps: no time map is written (TB1 is a "
+                         f"fraction)")
     budget = common.max_memory
     if method == "afi":
         series, fa_nom, n = _load_afi(inputs, fa, tr, budget, common.series_check)

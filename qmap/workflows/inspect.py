@@ -116,7 +116,7 @@ def parse_voxel(text: str) -> tuple[int, int, int]:
     except ValueError:
         ijk = ()
     if len(ijk) != 3 or min(ijk) < 0:
-        raise UsageError(f"--voxel {text!r}: expected three 0-based indices I,J,K such as 12,30,4")
+        raise UsageError(f"voxel={text!r}: expected three 0-based indices I,J,K such as 12,30,4")
     return ijk
 
 
@@ -127,7 +127,7 @@ def parse_world(text: str) -> tuple[float, float, float]:
     except ValueError:
         xyz = ()
     if len(xyz) != 3 or not all(np.isfinite(xyz)):
-        raise UsageError(f"--world {text!r}: expected three coordinates X,Y,Z in mm such as -12.5,30,4")
+        raise UsageError(f"world={text!r}: expected three coordinates X,Y,Z in mm such as -12.5,30,4")
     return xyz
 
 
@@ -138,12 +138,12 @@ def _choose_prefix(out_dir: Path, prefix: str | None) -> str:
     if prefix is not None:
         if prefix not in found:
             avail = ", ".join(found) if found else "none"
-            raise InputError(f"{out_dir}: no {prefix}_provenance.json (fits found: {avail}); check --prefix")
+            raise InputError(f"{out_dir}: no {prefix}_provenance.json (fits found: {avail}); check prefix=")
         return prefix
     if not found:
         raise InputError(f"{out_dir}: holds no qmap fit (no *_provenance.json); give the -o folder of a fitting command")
     if len(found) > 1:
-        raise UsageError(f"{out_dir} holds {len(found)} fits ({', '.join(found)}); choose one with --prefix NAME")
+        raise UsageError(f"{out_dir} holds {len(found)} fits ({', '.join(found)}); choose one with prefix=NAME")
     return found[0]
 
 
@@ -191,7 +191,7 @@ def _voxel_samples(paths: list[Path], ijk, key: str, used: np.ndarray, drop_firs
     for p in paths:
         img = load_image(p, what="series")
         if not all(a < b for a, b in zip(ijk, img.shape[:3])):
-            raise UsageError(f"--voxel {i},{j},{k} lies outside the series grid {img.shape[:3]} ({p})")
+            raise UsageError(f"voxel=({i}, {j}, {k}) lies outside the series grid {img.shape[:3]} ({p})")
         v = np.atleast_1d(np.asarray(img.dataobj[i, j, k]))
         vals.append(v.reshape(-1))
         sc = read_sidecar(p).get(key)
@@ -240,7 +240,7 @@ def inspect_voxel(
 
     out_dir = Path(out_dir)
     if (voxel is None) == (world is None):
-        raise UsageError("give the voxel either as --voxel I,J,K (indices) or as --world X,Y,Z (mm), not both")
+        raise UsageError("give the voxel either as voxel=(I, J, K) (indices) or as world=(X, Y, Z) (mm), not both")
     prefix = _choose_prefix(out_dir, prefix)
     prov = _read_json(out_dir / f"{prefix}_provenance.json")
     outputs = prov.get("outputs", {})
@@ -253,12 +253,12 @@ def inspect_voxel(
         xyz = parse_world(world) if isinstance(world, str) else tuple(float(v) for v in world)
         ijk = tuple(int(v) for v in np.rint(np.linalg.solve(status_img.affine, [*xyz, 1.0])[:3]))
         if not all(0 <= a < b for a, b in zip(ijk, shape)):
-            raise UsageError(f"--world {','.join(f'{v:g}' for v in xyz)} mm lies outside the maps (nearest voxel "
+            raise UsageError(f"world=({', '.join(f'{v:g}' for v in xyz)}) mm lies outside the maps (nearest voxel "
                              f"{','.join(map(str, ijk))}, grid {tuple(shape)})")
     else:
         ijk = parse_voxel(voxel) if isinstance(voxel, str) else tuple(int(v) for v in voxel)
     if not all(0 <= a < b for a, b in zip(ijk, shape)) or len(ijk) != 3:
-        raise UsageError(f"--voxel {','.join(map(str, ijk))} lies outside the map grid {tuple(shape)} "
+        raise UsageError(f"voxel=({', '.join(map(str, ijk))}) lies outside the map grid {tuple(shape)} "
                          f"(indices are 0-based: 0..{shape[0] - 1}, 0..{shape[1] - 1}, 0..{shape[2] - 1})")
     status = round(_map_value(out_dir / status_file, ijk))
     codes = prov.get("status_codes", {})
@@ -429,7 +429,7 @@ def _lookup_figure(cls, prov: dict, ijk, rep: VoxelReport) -> dict:
     path = Path(prov["inputs"][0]["path"])  # the UNI image
     img = load_image(path, what="UNI (from the provenance)")
     if not all(0 <= a < b for a, b in zip(ijk, img.shape[:3])):
-        raise UsageError(f"--voxel {','.join(map(str, ijk))} lies outside the UNI grid {img.shape[:3]} ({path})")
+        raise UsageError(f"voxel=({', '.join(map(str, ijk))}) lies outside the UNI grid {img.shape[:3]} ({path})")
     raw = np.asarray(img.dataobj[ijk[0], ijk[1], ijk[2]], np.float32).reshape(1)
     encoding = next((k for k, v in UNI_ENCODINGS.items() if v == opts.get("uni_encoding")), None)
     if encoding is None:

@@ -220,23 +220,23 @@ def run_t1_vfa(
     """
     t0 = time.perf_counter()
     if method not in METHODS:
-        raise UsageError(f"--method {method!r}: expected nonlinear or linear")
+        raise UsageError(f"method={method!r}: expected nonlinear or linear")
     if method == "linear" and common.engine == "lmfit":
-        raise UsageError("--engine lmfit applies to --method nonlinear; the linear method is a closed-form regression")
+        raise UsageError("engine='lmfit' applies to method='nonlinear'; the linear method is a closed-form regression")
     if fa is not None and np.unique(np.asarray(fa, float)).size < 2:
-        raise UsageError(f"--fa {','.join(f'{a:g}' for a in np.atleast_1d(fa))}: VFA T1 needs at least two "
+        raise UsageError(f"fa=({', '.join(f'{a:g}' for a in np.atleast_1d(fa))}): VFA T1 needs at least two "
                          f"different flip angles")
     if not (np.isfinite(t1_typical) and t1_typical > 0):
-        raise UsageError(f"--t1-typical {t1_typical}: give a positive time, e.g. 1s or 900ms")
+        raise UsageError(f"t1_typical={t1_typical}: give a positive time, e.g. 1s or 900ms")
     series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
                          scalars={"RepetitionTime": (tr, "--tr", True, "RepetitionTimeSpoiled")}, min_volumes=2,
                          max_bytes=common.max_memory, check_order=common.series_check)
     fa_used = np.asarray(series.acquisition["FlipAngle"], float)
     tr_used = float(series.acquisition["RepetitionTime"])
     if b1 is None and (b1_scale is not None or b1_smooth):
-        raise UsageError("--b1-scale / --b1-smooth need --b1 B1MAP")
+        raise UsageError("b1_scale= / b1_smooth= need b1=B1MAP")
     if b1 is None and b1_se not in (None, "auto", "none"):
-        raise UsageError("--b1-stderr FILE needs --b1 B1MAP")
+        raise UsageError("b1_se=FILE needs b1=B1MAP")
     proto, proto_note = protocol_check(fa_used, tr_used, t1_typical)
     # two angles leave no residual degrees of freedom: the noise level is needed under either convention
     run = prepare_run(series, common, sigma_spec=sigma, sigma_for_se=common.stderr == "noise" or fa_used.size == 2,

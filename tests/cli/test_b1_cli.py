@@ -140,7 +140,7 @@ def test_bad_inputs(tmp_path, capsys):
     assert "one nominal flip angle" in _bad([a, b, "--method", "afi", "--fa", "60,120", "--tr", "20ms,100ms"],
                                             tmp_path, capsys)
     assert "RepetitionTime" in _bad([a, b, "--method", "afi", "--fa", "60"], tmp_path, capsys)
-    assert "a or a,2a" in _bad([a, b, "--method", "dam", "--fa", "30,60,90"], tmp_path, capsys)
+    assert "one angle a or two, a and 2a; got 3" in _bad([a, b, "--method", "dam", "--fa", "30,60,90"], tmp_path, capsys)
     three = [_save(tmp_path / f"t{k}.nii.gz", _noisy(np.where(obj, 300.0 * k, 0), 1.0, rng), {"FlipAngle": 30.0 * k})
              for k in (1, 2, 3)]
     assert "two images" in _bad([*three, "--method", "dam"], tmp_path, capsys)
