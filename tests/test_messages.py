@@ -351,3 +351,46 @@ def test_inspect_vfa_and_b1_messages_name_arguments(tmp_path, capsys):
     assert main(["t1-vfa", *files, "--method", "linear", "--engine", "lmfit", "-o", str(tmp_path / "o"), "-q"]) == 2
     assert _one_error(capsys) == ("qmap: error: --engine lmfit applies to --method nonlinear; the linear method is a "
                                   "closed-form regression")
+
+
+# --------------------------------------------------------------------- t2-spectrum, t1-mp2rage and t1-ir arguments
+def test_spectrum_mp2rage_and_ir_messages_name_arguments(tmp_path):
+    from qmap.workflows.ir import run_t1_ir
+    from qmap.workflows.mp2rage import resolve_protocol, run_t1_mp2rage
+    from qmap.workflows.t2_spectrum import fit_t2_spectrum
+
+    te = 0.01 * np.arange(1, 33)
+    data = np.tile(1000.0 * np.exp(-te / 0.08), (2, 1))  # mono-exponential decay
+    common = _common(tmp_path)
+    uni = write_nifti(tmp_path / "uni.nii.gz", np.zeros(SHAPE), AFFINE)
+    cases = [
+        (lambda: fit_t2_spectrum(data, te, sigma=4.0, window=(0.04, 0.01)),
+         "window=(0.04, 0.01) s: give (LO, HI) with 0 < LO < HI", "--window 0.04,0.01 s: give"),
+        (lambda: fit_t2_spectrum(data, te, sigma=4.0, chi2_factor=0.5), "chi2_factor=0.5: must be >= 1",
+         "--chi2-factor 0.5: must be"),
+        (lambda: fit_t2_spectrum(data, te, sigma=4.0, n_t2=5), "n_t2=5: use at least 10 T2 values", "--n-t2 5: use"),
+        (lambda: resolve_protocol({}, "uni.nii.gz", fa=(4.0, 5.0, 6.0)),
+         "fa=(4, 5, 6): MP2RAGE has two flip angles (one per block), got 3", "--fa 4,5,6: MP2RAGE has two"),
+        (lambda: run_t1_mp2rage(uni, common=common, inv1=uni), "inv1= and inv2= go together",
+         "--inv1 and --inv2 go together"),
+        (lambda: run_t1_mp2rage(uni, common=common, efficiency=1.5), "efficiency=1.5: expected a number in (0, 1]",
+         "--inversion-efficiency 1.5: expected"),
+        (lambda: run_t1_ir([uni], common=common, signal="phase"), "signal='phase': expected one of",
+         "--signal phase: expected one of"),
+        (lambda: run_t1_ir([uni], common=common, phase=[uni]),
+         "phase= is for complex data: add signal='complex' (or leave phase= out)",
+         "--phase is for complex data: add --signal complex (or leave --phase out)"),
+    ]
+    for call, library, cli in cases:
+        with pytest.raises(UsageError) as exc:
+            call()
+        msg = str(exc.value)
+        assert msg.startswith(library), msg
+        _no_option(msg)
+        assert as_options(msg).startswith(cli), as_options(msg)
+
+
+def _common(tmp_path):
+    from qmap.pipeline import CommonOptions
+
+    return CommonOptions(out_dir=tmp_path / "o")

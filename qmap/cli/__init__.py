@@ -244,6 +244,21 @@ ARGUMENT_OPTIONS = {
     "method": "--method",
     "fa": "--fa",
     "t1_typical": "--t1-typical",
+    # t2-spectrum (fit_t2_spectrum, run_t2_spectrum), t1-mp2rage (run_t1_mp2rage, resolve_protocol), t1-ir
+    "te": "--te",
+    "window": "--window",
+    "chi2_factor": "--chi2-factor",
+    "n_t2": "--n-t2",
+    "t2_range": "--t2-range",
+    "ti": "--ti",
+    "shots": "--shots",
+    "efficiency": "--inversion-efficiency",
+    "inv1": "--inv1",
+    "inv2": "--inv2",
+    "inv1_phase": "--inv1-phase",
+    "inv2_phase": "--inv2-phase",
+    "signal": "--signal",
+    "phase": "--phase",
 }
 _ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
 

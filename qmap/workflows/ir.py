@@ -155,9 +155,9 @@ def run_t1_ir(
     """
     t0 = time.perf_counter()
     if signal not in SIGNALS:
-        raise UsageError(f"--signal {signal!r}: expected one of {', '.join(SIGNALS)}")
+        raise UsageError(f"signal={signal!r}: expected one of {', '.join(SIGNALS)}")
     if phase and signal != "complex":
-        raise UsageError("--phase is for complex data: add --signal complex (or leave --phase out)")
+        raise UsageError("phase= is for complex data: add signal='complex' (or leave phase= out)")
     series = load_series(
         inputs, key="InversionTime", value=ti, option="--ti",
         scalars={"RepetitionTime": (tr, "--tr", False, "RepetitionTime")},
@@ -168,16 +168,16 @@ def run_t1_ir(
     if signal == "complex":
         if phase:
             if np.iscomplexobj(series.data):
-                raise UsageError("--phase: SERIES already holds complex data; give either a complex series or "
-                                 "magnitude SERIES with --phase, not both")
+                raise UsageError("phase=: the series already holds complex data; give either a complex series or a "
+                                 "magnitude series with phase=, not both")
             ph = _load_phase(phase, series)
             series.data = (series.data * np.exp(1j * ph)).astype(np.complex64)
             extra = [Path(p).expanduser().absolute() for p in phase]
             _sort_by_ti(series)
         elif not np.iscomplexobj(series.data):
             raise InputError(
-                f"{series.paths[0]}: --signal complex but the series holds real values; give a complex NIfTI, "
-                f"or the phase images with --phase, or use --signal magnitude / real"
+                f"{series.paths[0]}: signal='complex' but the series holds real values; give a complex NIfTI, "
+                f"or the phase images with phase=, or use signal='magnitude' / signal='real'"
             )
         series.data = phase_correct(series.data)
     ti_used = np.asarray(series.acquisition["InversionTime"], float)

@@ -168,10 +168,11 @@ def resolve_protocol(sidecar: dict, where: str, **given: Unpack[ProtocolOverride
     ti, fa, tr_prep, tr_exc = given.get("ti"), given.get("fa"), given.get("tr_prep"), given.get("tr_exc")
     shots, efficiency = given.get("shots"), given.get("efficiency")
     if fa is not None and np.size(fa) != 2:
-        raise UsageError(f"--fa: MP2RAGE has two flip angles (one per block), got {np.size(fa)}: "
-                         f"{','.join(f'{a:g}' for a in np.atleast_1d(fa))}")
+        raise UsageError(f"fa=({', '.join(f'{a:g}' for a in np.atleast_1d(fa))}): MP2RAGE has two flip angles "
+                         f"(one per block), got {np.size(fa)}")
     if ti is not None and np.size(ti) != 2:
-        raise UsageError(f"--ti: MP2RAGE has two inversion times, got {np.size(ti)}")
+        raise UsageError(f"ti=({', '.join(f'{t:g}' for t in np.atleast_1d(ti))}): MP2RAGE has two inversion times, "
+                         f"got {np.size(ti)}")
     sources = {}
     tiv, sources["InversionTime"] = resolve_parameter("InversionTime", ti, _numbers(sidecar, "InversionTime", where),
                                                       2, option="--ti", where=where)
@@ -190,11 +191,11 @@ def resolve_protocol(sidecar: dict, where: str, **given: Unpack[ProtocolOverride
     if shots is not None:
         n, sources["NumberShots"] = int(shots), "command line"
         if side_shots is not None and int(side_shots[0]) != n:
-            warn(f"--shots {n} differs from the sidecar NumberShots {int(side_shots[0])}; using the command line")
+            warn(f"shots={n} differs from the sidecar NumberShots {int(side_shots[0])}; using shots={n}")
     elif side_shots is not None:
         n, sources["NumberShots"] = int(side_shots[0]), "sidecar"
     else:
-        raise InputError(f"{where}: no NumberShots found; give --shots or add NumberShots to the BIDS sidecar")
+        raise InputError(f"{where}: no NumberShots found; give shots=N or add NumberShots to the BIDS sidecar")
     eff = DEFAULT_EFFICIENCY if efficiency is None else float(efficiency)
     sources["InversionEfficiency"] = "default" if efficiency is None else "command line"
     proto = MP2RAGEProtocol(ti=(float(tiv[0]), float(tiv[1])), fa=(float(fav[0]), float(fav[1])), tr_prep=float(tp),
@@ -541,19 +542,19 @@ def run_t1_mp2rage(
     """
     t0 = time.perf_counter()
     if common.engine != "fast":
-        raise UsageError("--engine lmfit: t1-mp2rage fits nothing (UNI -> T1 is a table lookup); leave --engine out")
+        raise UsageError("engine='lmfit': t1-mp2rage fits nothing (UNI -> T1 is a table lookup); leave engine= out")
     if (inv1 is None) != (inv2 is None):
-        raise UsageError("--inv1 and --inv2 go together: give both inversion images, or neither")
+        raise UsageError("inv1= and inv2= go together: give both inversion images, or neither")
     if (inv1_phase is not None and inv1 is None) or (inv2_phase is not None and inv2 is None) or (
             (inv1_phase is None) != (inv2_phase is None)):
-        raise UsageError("--inv1-phase/--inv2-phase: give the phase of both inversion images, with --inv1/--inv2")
+        raise UsageError("inv1_phase= / inv2_phase=: give the phase of both inversion images, with inv1= / inv2=")
     if sigma_spec not in (None, "auto") and inv1 is None:
-        raise UsageError("--sigma is the noise of the inversion images: it needs --inv1/--inv2")
+        raise UsageError("sigma= is the noise of the inversion images: it needs inv1= / inv2=")
     if (b1_scale is not None or b1_smooth or b1_stderr not in (None, "auto", "none")) and b1 is None:
-        raise UsageError("--b1-scale / --b1-smooth / --b1-stderr FILE need --b1 B1MAP")
+        raise UsageError("b1_scale= / b1_smooth= / b1_se=FILE need b1=B1MAP")
     efficiency = overrides.get("efficiency")
     if efficiency is not None and not (0 < efficiency <= 1):
-        raise UsageError(f"--inversion-efficiency {efficiency:g}: expected a number in (0, 1] (1 = perfect)")
+        raise UsageError(f"efficiency={efficiency:g}: expected a number in (0, 1] (1 = perfect)")
     upath = Path(uni).expanduser().absolute()
     img = _open_3d(upath, "UNI")
     sidecar, where = _merged_sidecar(upath, inv1, inv2)
@@ -642,7 +643,7 @@ def run_t1_mp2rage(
                 extra.append(b1_se_path.absolute())
                 b1_desc += f"; its standard error ({b1_se_path.name}) is propagated into the standard errors"
         elif b1_stderr not in (None, "auto", "none"):
-            raise UsageError("--b1-stderr FILE: standard errors need the inversion images (--inv1/--inv2)")
+            raise UsageError("b1_se=FILE: standard errors need the inversion images (inv1= / inv2=)")
     else:
         b1_desc = NO_B1_NOTE
     # one lookup table for the whole volume (its B1 range from every voxel to invert), then slab by slab

@@ -73,18 +73,19 @@ def _check_protocol(te, window, chi2_factor, n_t2, t2_range) -> float:
         esp = echo_spacing(te)
     except InputError:
         shown = ",".join(f"{1e3 * t:g}ms" for t in te)
-        raise InputError(f"--te: t2-spectrum needs equally spaced echoes at TE_k = k x ESP (a CPMG train), got "
-                         f"{shown}; give the whole train in acquisition order") from None
+        raise InputError(f"echo times {shown} (te= or the sidecars' EchoTime): t2-spectrum needs equally spaced "
+                         f"echoes at TE_k = k x ESP (a CPMG train); give the whole train in acquisition order") from None
     lo, hi = window
     if not (0 < lo < hi):
-        raise UsageError(f"--window {lo:g},{hi:g} s: give LO,HI with 0 < LO < HI, e.g. --window 10ms,40ms")
+        raise UsageError(f"window=({lo:g}, {hi:g}) s: give (LO, HI) with 0 < LO < HI, e.g. window=(0.01, 0.04)")
     if not chi2_factor >= 1.0:
-        raise UsageError(f"--chi2-factor {chi2_factor:g}: must be >= 1 (1.02 allows 2% more misfit; 1 = no "
+        raise UsageError(f"chi2_factor={chi2_factor:g}: must be >= 1 (1.02 allows 2% more misfit; 1 = no "
                          f"regularisation)")
     if int(n_t2) < 10:
-        raise UsageError(f"--n-t2 {n_t2}: use at least 10 T2 values (default {DEFAULT_N_T2})")
+        raise UsageError(f"n_t2={n_t2}: use at least 10 T2 values (default {DEFAULT_N_T2})")
     if not (0 < t2_range[0] < t2_range[1]):
-        raise UsageError("--t2-range LO,HI: give 0 < LO < HI, e.g. 10ms,2s")
+        raise UsageError(f"t2_range=({t2_range[0]:g}, {t2_range[1]:g}) s: give (LO, HI) with 0 < LO < HI, e.g. "
+                         f"t2_range=(0.01, 2)")
     return esp
 
 
@@ -94,17 +95,17 @@ def _refocus_angle(series, given: float | None) -> float:
              if isinstance(sc, dict) and isinstance(sc.get("RefocusingFlipAngle"), (int, float))}
     if given is not None:
         if found and any(abs(v - given) > 0.5 for v in found):
-            warn(f"--refocus {given:g} deg differs from the sidecar RefocusingFlipAngle "
+            warn(f"refocus_deg={given:g} differs from the sidecar RefocusingFlipAngle "
                  f"{', '.join(f'{v:g}' for v in sorted(found))}; using {given:g}")
         return float(given)
     if len(found) > 1:
         raise InputError(f"the sidecars give different RefocusingFlipAngle values ({sorted(found)}); give the nominal "
-                         f"angle with --refocus DEG")
+                         f"angle as refocus_deg=DEG")
     if found:
         value = found.pop()
         if not 60.0 <= value <= 180.0:
             raise InputError(f"sidecar RefocusingFlipAngle {value:g} is not a refocusing angle in degrees (60-180); "
-                             f"give the nominal angle with --refocus DEG")
+                             f"give the nominal angle as refocus_deg=DEG")
         return value
     return 180.0
 
