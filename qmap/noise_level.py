@@ -715,7 +715,11 @@ def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
     r = m4 / (m2 * m2)
     # delta method for r = m4 / m2^2 with the sample covariance of (x^2, x^4)
     g = np.array([-2.0 * m4 / m2**3, 1.0 / m2**2])
-    cov = np.cov(xs) / bg.size
+    if bg.size < 2:
+        cov = np.cov(xs) / bg.size
+    else:  # np.cov(xs) in place on xs (np.cov centres a copy of it): its operations, so its values to the bit
+        xs -= np.average(xs, axis=1)[:, None]
+        cov = np.dot(xs, xs.T) * np.true_divide(1, bg.size - 1) / bg.size
     se_r = float(np.sqrt(max(g @ cov @ g, 0.0)))
     if r <= 1.0:
         return float("inf"), se_r
@@ -756,7 +760,7 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
         n_bg = int(np.count_nonzero(bgs))
         any_fin = np.zeros(n_bg, bool)
         any_nz = np.zeros(n_bg, bool)
-        n_fin = np.zeros(n_bg, np.int32)
+        n_fin: np.ndarray = np.zeros(n_bg, np.uint8 if block.shape[-1] < 256 else np.int32)  # finite samples a voxel
         for v in range(block.shape[-1]):
             b = block[..., v][bgs]
             fin = np.isfinite(b)

@@ -211,7 +211,7 @@ def resample_blocks(data: np.ndarray, src_affine: np.ndarray, dst_shape: tuple[i
 
 
 #: destination voxels resampled at a time by :func:`resample_to_grid` (its coordinates: 24 bytes a voxel)
-RESAMPLE_BLOCK = 1 << 16
+RESAMPLE_BLOCK = 1 << 18
 
 
 def _resample_block(data: np.ndarray, mat: np.ndarray, dst_shape: tuple[int, ...], x0: int, x1: int,
