@@ -56,7 +56,8 @@ R2_WARN = 0.5
 PROFILE_VOXELS = 20000
 #: slabs of a series read from disk that the profile reads (the extra reading stays small)
 PROFILE_SLABS = 3
-OVERRIDE = "--no-series-check"
+#: the argument that turns the series checks off (the command line shows it as --no-series-check)
+OVERRIDE = "series_check=False"
 
 
 # ----------------------------------------------------------------------------- negatives

@@ -394,3 +394,20 @@ def _common(tmp_path):
     from qmap.pipeline import CommonOptions
 
     return CommonOptions(out_dir=tmp_path / "o")
+
+
+def test_series_check_and_mp2rage_timing_name_arguments(tmp_path, capsys):
+    from qmap.checks import check_reordered
+    from qmap.models.mp2rage import MP2RAGEProtocol
+
+    with pytest.raises(InputError) as exc:
+        check_reordered([0.02, 0.01, 0.03], [0.01, 0.02, 0.03], option="te", key="EchoTime", where="3 files")
+    assert exc.value.args[0].endswith("or pass series_check=False to use te as given")
+    assert as_options(str(exc.value)).endswith("or pass --no-series-check to use te as given")
+    # an impossible timing (the second inversion before the first block ends)
+    with pytest.raises(InputError) as exc2:
+        MP2RAGEProtocol(ti=(0.7, 0.75), fa=(4.0, 5.0), tr_prep=5.0, tr_exc=0.007, shots=176).check()
+    msg = str(exc2.value)
+    assert msg.endswith("check ti= / shots= / tr_exc= / tr_prep= or the sidecar"), msg
+    _no_option(msg)
+    assert as_options(msg).endswith("check --ti / --shots / --tr-exc / --tr-prep or the sidecar")

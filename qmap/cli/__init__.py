@@ -252,6 +252,8 @@ ARGUMENT_OPTIONS = {
     "t2_range": "--t2-range",
     "ti": "--ti",
     "shots": "--shots",
+    "tr_exc": "--tr-exc",
+    "tr_prep": "--tr-prep",
     "efficiency": "--inversion-efficiency",
     "inv1": "--inv1",
     "inv2": "--inv2",
@@ -259,15 +261,17 @@ ARGUMENT_OPTIONS = {
     "inv2_phase": "--inv2-phase",
     "signal": "--signal",
     "phase": "--phase",
+    # a flag that turns a check off: series_check=False (CommonOptions) is --no-series-check
+    "series_check": "--no-series-check",
 }
-_ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b)?")
+_ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b|False\b)?")
 
 
 def as_options(message: str) -> str:
     """A library message as the command line says it: ``name=value`` of an argument -> ``--option value``.
 
     A quoted string loses its quotes, a tuple or list becomes a comma separated list, and
-    ``flag=True`` becomes the bare flag.
+    ``flag=True`` becomes the bare flag (as does ``check=False`` of a ``--no-...`` option).
 
     Examples
     --------
@@ -284,7 +288,7 @@ def as_options(message: str) -> str:
         opt, value = ARGUMENT_OPTIONS[m.group(1)], m.group(2)
         if value is None:
             return opt + " "
-        if value == "True":
+        if value in ("True", "False"):
             return opt
         if value[0] == "'":
             return f"{opt} {value[1:-1]}"

@@ -174,7 +174,7 @@ class MP2RAGEProtocol:
                     f"MP2RAGE timing: delay {name} = {value * 1e3:.4g} ms is negative -- {what[name]}; with "
                     f"TI {self.ti[0] * 1e3:g},{self.ti[1] * 1e3:g} ms, {self.shots} shots spaced "
                     f"{self.tr_exc * 1e3:g} ms and RepetitionTimePreparation {self.tr_prep * 1e3:g} ms; check "
-                    f"--ti/--shots/--tr-exc/--tr-prep or the sidecar"
+                    f"ti= / shots= / tr_exc= / tr_prep= or the sidecar"
                 )
         return self
 
