@@ -411,3 +411,13 @@ def test_series_check_and_mp2rage_timing_name_arguments(tmp_path, capsys):
     assert msg.endswith("check ti= / shots= / tr_exc= / tr_prep= or the sidecar"), msg
     _no_option(msg)
     assert as_options(msg).endswith("check --ti / --shots / --tr-exc / --tr-prep or the sidecar")
+
+
+def test_ir_phase_and_timing_messages_read_as_options():
+    # qmap.workflows.ir's phase and timing messages in the command line's words
+    assert (as_options("phase=: 3 phase volumes for 6 magnitude volumes; give one phase image per inversion time")
+            == "--phase: 3 phase volumes for 6 magnitude volumes; give one phase image per inversion time")
+    assert (as_options("InversionTime up to 4 s is not shorter than RepetitionTime 3 s; check ti= / tr= and their "
+                       "units (seconds, e.g. tr=6.0)")
+            == "InversionTime up to 4 s is not shorter than RepetitionTime 3 s; check --ti / --tr and their units "
+               "(seconds, e.g. --tr 6.0)")

@@ -81,22 +81,22 @@ def _load_phase(paths, series: Series) -> np.ndarray:
     paths = [Path(p).expanduser().absolute() for p in paths]
     vols = []
     for p in paths:
-        img = load_image(p, what="--phase")
+        img = load_image(p, what="phase=")
         check_same_grid(series.data.shape, series.affine, img.shape, img.affine, ref_name=str(series.paths[0]),
-                        name=f"--phase {p}")
+                        name=f"phase={p}")
         data = image_data(img, p, dtype=np.float32)
         vols.append(data.reshape(data.shape[:3] + (-1,)))
     phase = np.concatenate(vols, axis=-1)
     if phase.shape[-1] != series.n:
         raise InputError(
-            f"--phase: {phase.shape[-1]} phase volumes for {series.n} magnitude volumes; give one phase image "
-            f"per inversion time, in the same order as SERIES"
+            f"phase=: {phase.shape[-1]} phase volumes for {series.n} magnitude volumes; give one phase image "
+            f"per inversion time, in the same order as the series"
         )
     finite = phase[np.isfinite(phase)]
     peak = float(np.max(np.abs(finite))) if finite.size else 0.0
     if peak > 2 * np.pi + 1e-3:
         raise InputError(
-            f"--phase {paths[0]}: values reach {peak:g}, expected radians in [-pi, pi]; convert the phase "
+            f"phase={paths[0]}: values reach {peak:g}, expected radians in [-pi, pi]; convert the phase "
             f"images first (e.g. integer-coded phase in -4096..4095: multiply by pi/4096)"
         )
     return phase
@@ -186,7 +186,7 @@ def run_t1_ir(
             and series.sources.get("RepetitionTime") == "sidecar"):
         # exports often store the readout's TR (a few ms) as RepetitionTime; the fit does not need TR
         warn(f"sidecar RepetitionTime {tr_used:g} s is shorter than the inversion times (up to {ti_used.max():g} s): "
-             f"it is the readout's TR, not the time between inversions; ignored (the fit does not need it; --tr "
+             f"it is the readout's TR, not the time between inversions; ignored (the fit does not need it; tr= "
              f"records the inversion repetition time)")
         del series.acquisition["RepetitionTime"]
         series.sources.pop("RepetitionTime", None)
@@ -194,7 +194,7 @@ def run_t1_ir(
     if tr_used is not None and not look_locker and ti_used.max() >= tr_used:
         raise InputError(
             f"InversionTime up to {ti_used.max():g} s is not shorter than RepetitionTime {tr_used:g} s; "
-            f"check --ti / --tr and their units (e.g. --tr 6s or --tr 6000ms)"
+            f"check ti= / tr= and their units (seconds, e.g. tr=6.0)"
         )
     model, _ = build_model("t1-ir", None, ti_used, signal=signal, look_locker=look_locker)
     model_info = {"name": model.name, "equation": EQUATION, "signal": signal, "look_locker": bool(look_locker),
