@@ -421,3 +421,17 @@ def test_ir_phase_and_timing_messages_read_as_options():
                        "units (seconds, e.g. tr=6.0)")
             == "InversionTime up to 4 s is not shorter than RepetitionTime 3 s; check --ti / --tr and their units "
                "(seconds, e.g. --tr 6.0)")
+
+
+def test_batch_config_message_names_the_argument(tmp_path, capsys):
+    from qmap.batch.run import fit_options
+
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[DWI]\nsigma = 3\n")
+    with pytest.raises(UsageError) as exc:
+        fit_options(None, bad)
+    assert str(exc.value).startswith(f"config={bad}: unknown table [DWI]; expected all, ")
+    _no_option(str(exc.value).split("; expected")[0])
+    (tmp_path / "bids").mkdir()
+    assert main(["batch", str(tmp_path / "bids"), "-o", str(tmp_path / "d"), "--config", str(bad)]) == 2
+    assert _one_error(capsys).startswith(f"qmap: error: --config {bad}: unknown table [DWI]; expected all, ")

@@ -396,13 +396,13 @@ def fit_options(options: dict | None = None, config=None) -> dict:
             with open(config, "rb") as fh:
                 doc = tomllib.load(fh)
         except (OSError, tomllib.TOMLDecodeError) as exc:
-            raise UsageError(f"--config {config}: cannot read it as TOML ({exc})") from None
+            raise UsageError(f"config={config}: cannot read it as TOML ({exc})") from None
         for name in doc:
             if name != "all" and name not in FIT_KINDS:
-                raise UsageError(f"--config {config}: unknown table [{name}]; expected all, "
+                raise UsageError(f"config={config}: unknown table [{name}]; expected all, "
                                  f"{', '.join(sorted(FIT_KINDS))}")
             if not isinstance(doc[name], dict):
-                raise UsageError(f"--config {config}: {name} must be a table ([{name}]) of options")
+                raise UsageError(f"config={config}: {name} must be a table ([{name}]) of options")
         if "all" in doc:
             layers.append(("all", doc["all"]))
         layers += [(t, v) for t, v in doc.items() if t != "all"]

@@ -263,6 +263,8 @@ ARGUMENT_OPTIONS = {
     "phase": "--phase",
     # a flag that turns a check off: series_check=False (CommonOptions) is --no-series-check
     "series_check": "--no-series-check",
+    # qmap.batch.run_batch
+    "config": "--config",
 }
 _ARGUMENT = re.compile(r"\b(" + "|".join(ARGUMENT_OPTIONS) + r")=('[^']*'|\([^)]*\)|\[[^\]]*\]|True\b|False\b)?")
 
