@@ -78,7 +78,7 @@ def clip_small_negatives(series, lo: float, hi: float, n_negative: int) -> None:
         raise InputError(
             f"{series.paths[0]}: holds negative values (min {lo:g}, {100 * -lo / max(hi, 1e-300):.3g} % of the "
             f"maximum {hi:g}) but magnitude images are >= 0 (undershoot of up to {100 * NEGATIVE_TOLERANCE:g} % is "
-            f"clipped); is this a real/phase image? (t1-ir takes real data with --signal real)"
+            f"clipped); is this a real/phase image? (t1-ir takes real data with signal='real')"
         )
     warn(f"{series.paths[0].name}: {n_negative} negative samples (min {lo:g}, {100 * -lo / hi:.2g} % of the maximum "
          f"{hi:g}): interpolation undershoot of a resampled magnitude export; set to 0 (negatives down to "
@@ -287,7 +287,7 @@ def warn_fit_quality(maps, mask: np.ndarray, mask_spec) -> list[str]:
                    f"the maps")
     if spec == "auto" and np.asarray(mask, bool).all() and np.asarray(mask).size >= 1000:
         out.append("the automatic mask covers the whole image (no background found): the maps include every "
-                   "voxel; give a mask with --mask FILE if the image has background")
+                   "voxel; give a mask with mask=FILE if the image has background")
     for w in out:
         warn(w)
     return out

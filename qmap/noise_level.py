@@ -890,7 +890,7 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
             sigma, outliers = _clipped_sigma(bg, use, quantum)
             notes.append(f"the background is not Rayleigh: its moments fit a sum of squares over {n_round} coils "
                          f"(effective {n_eff:.1f}); sigma and the Rician fit use {n_round} coils (override with "
-                         "--coils N)")
+                         "coils=N)")
         elif coils is not None and abs(n_eff - coils) > max(0.5, 3.0 * se_r * n_eff * n_eff) and n_round != coils:
             warns.append(f"the background's moments fit a sum of squares over about {n_eff:.1f} coils, not the "
                          f"coils={coils} given; check coils=")
@@ -1210,7 +1210,7 @@ def estimate_noise(
             raise InputError(_failure_message(errors, model is not None, obj))
         chosen = min(ok, key=lambda e: e.relative_precision or 0.0)
         chosen.notes.append(f"the noise level is known to only {100 * (chosen.relative_precision or 0):.0f} % "
-                            f"(from the {chosen.source}); give --sigma VALUE if you know it better")
+                            f"(from the {chosen.source}); give sigma=VALUE if you know it better")
     if bg is not None and res is not None:
         chosen.details["background_sigma"] = bg.value
         chosen.details["residual_sigma"] = res.value

@@ -314,7 +314,7 @@ ESTIMATED_SIGMA = ("auto", "local")
 #: what happens to the standard errors without a noise level (most commands: the residual variance)
 RESIDUAL_FALLBACK = ("the standard errors use the per-voxel residual variance instead",
                      ("standard errors from the per-voxel residual variance: the noise level could not be "
-                      "estimated (give --sigma VALUE)"))
+                      "estimated (give sigma=VALUE)"))
 
 
 def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float | None = None,
@@ -346,7 +346,7 @@ def sigma_for_stderr(spec, series: Series, *, coils: int = 1, max_bytes: float |
         warn(f"{reason}; the standard errors use the per-voxel residual variance (give sigma=VALUE for "
              "noise-based ones)")
         if notes is not None:
-            notes.append("standard errors from the per-voxel residual variance (signed data: give --sigma VALUE)")
+            notes.append("standard errors from the per-voxel residual variance (signed data: give sigma=VALUE)")
         return None, {"sigma": None, "stderr_fallback": reason}
     fallback_text, fallback_note = fallback
     try:
@@ -535,7 +535,7 @@ class PreparedRun:
         """
         self.series._peak = None  # only the mask and the noise estimate needed it
         if len(slabs) > 1 and self.series.lazy:
-            self.notes.append(f"read in {len(slabs)} slabs to stay within --max-memory")
+            self.notes.append(f"read in {len(slabs)} slabs to stay within max_memory=")
         for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
             sigma = self.sigma
             if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from qmap.cli import COMMANDS, main
+from qmap.cli import COMMANDS, as_options, main
 from qmap.pipeline import default_prefix
 
 
@@ -116,7 +116,9 @@ def test_provenance_records_date_versions_and_warnings(megre, tmp_path, capsys):
                                "numpy": numpy.__version__, "scipy": scipy.__version__, "nibabel": nibabel.__version__}
     assert run["date"][:4].isdigit() and run["date"].endswith("+00:00")
     warned = [ln.removeprefix("qmap: warning: ") for ln in err.splitlines() if ln.startswith("qmap: warning:")]
-    assert warned and run["warnings"] == warned and "EchoTime" in run["warnings"][0]
+    # the provenance keeps the library's wording (te=), the command line printed it as options (--te)
+    assert warned and [as_options(w) for w in run["warnings"]] == warned and "EchoTime" in run["warnings"][0]
+    assert run["warnings"][0].startswith("te= ") and warned[0].startswith("--te ")
     # a second run in the same process records only its own warnings
     assert main(["t2star", str(path), "-o", str(tmp_path / "p"), "--sigma", "5", "-q"]) == 0
     assert json.loads((tmp_path / "p" / "sub-01_acq-megre_provenance.json").read_text())["options"]["run"][

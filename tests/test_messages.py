@@ -435,3 +435,48 @@ def test_batch_config_message_names_the_argument(tmp_path, capsys):
     (tmp_path / "bids").mkdir()
     assert main(["batch", str(tmp_path / "bids"), "-o", str(tmp_path / "d"), "--config", str(bad)]) == 2
     assert _one_error(capsys).startswith(f"qmap: error: --config {bad}: unknown table [DWI]; expected all, ")
+
+
+# --------------------------------------------------------------------- acquisition values, outputs, EPG spacing
+def test_series_values_outputs_and_echo_spacing_name_arguments(tmp_path, capsys):
+    from qmap.pipeline import CommonOptions
+    from qmap.workflows.t2 import fit_t2
+    from qmap.workflows.vfa import run_t1_vfa
+
+    files = _vfa(tmp_path)
+    # a wrong number of flip angles: the library says fa=, the command line --fa
+    with pytest.raises(InputError) as exc:
+        run_t1_vfa(files, fa=(3.0, 8.0, 15.0), common=CommonOptions(out_dir=tmp_path / "v"))
+    assert str(exc.value).startswith("fa=: 3 values given for a series of 4 volumes"), str(exc.value)
+    _no_option(str(exc.value))
+    assert main(["t1-vfa", *files, "--fa", "3,8,15", "-o", str(tmp_path / "v"), "-q"]) == 2
+    assert _one_error(capsys).startswith("qmap: error: --fa: 3 values given for a series of 4 volumes")
+    # outputs that exist: overwrite=True / out_dir= in the library, --overwrite / -o on the command line
+    assert main(["t1-vfa", *files, "--sigma", "5", "-o", str(tmp_path / "v"), "-q"]) == 0
+    with pytest.raises(OutputExistsError) as oexc:
+        run_t1_vfa(files, sigma=5.0, common=CommonOptions(out_dir=tmp_path / "v"))
+    assert str(oexc.value).endswith("pass overwrite=True to replace them, or choose another out_dir= / prefix=")
+    assert main(["t1-vfa", *files, "--sigma", "5", "-o", str(tmp_path / "v"), "-q"]) == 2
+    assert _one_error(capsys).endswith("pass --overwrite to replace them, or choose another -o / --prefix")
+    # the writer's own check (an output that appeared after the up-front check)
+    from qmap.io.writer import AtomicWriter
+
+    with pytest.raises(OutputExistsError) as wexc:
+        AtomicWriter(tmp_path / "v").stage_json("vfa_M0map.json", {})
+    assert str(wexc.value).endswith("exists already; pass overwrite=True to replace it, or choose another out_dir=")
+    _no_option(str(wexc.value).split(" exists already")[1])
+    assert as_options(str(wexc.value)).endswith("exists already; pass --overwrite to replace it, or choose another -o")
+    # unevenly spaced echoes for the EPG model (a CPMG train has TE_k = k x ESP: common practice)
+    te = np.array([0.01, 0.02, 0.035, 0.04])
+    with pytest.raises(InputError) as eexc:
+        fit_t2(np.tile(1000.0 * np.exp(-te / 0.08), (2, 1)), te, epg=True)
+    assert str(eexc.value).startswith("te=: epg=True needs equally spaced echoes")
+    assert str(eexc.value).endswith("or fit without epg=True")
+    assert as_options(str(eexc.value)).startswith("--te: --epg needs equally spaced echoes")
+    # the run summary's notes are printed in option words (library: max_memory=, sigma=VALUE)
+    assert as_options("read in 3 slabs to stay within max_memory=") == "read in 3 slabs to stay within --max-memory"
+    assert as_options("(give sigma=VALUE)") == "(give --sigma VALUE)"
+    # and a note from a real run is printed that way (a VFA run without a B1 map notes b1=B1MAP)
+    assert main(["t1-vfa", *files, "--sigma", "5", "-o", str(tmp_path / "w")]) == 0
+    out = capsys.readouterr().out
+    assert "--b1 B1MAP" in out and "b1=" not in out, out

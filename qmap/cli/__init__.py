@@ -238,6 +238,7 @@ ARGUMENT_OPTIONS = {
     "engine": "--engine",
     "prefix": "--prefix",
     "noise_floor": "--noise-floor",
+    "max_memory": "--max-memory",
     # qmap.workflows.inspect (inspect_voxel), t1-vfa and b1 (run_t1_vfa, run_b1)
     "voxel": "--voxel",
     "world": "--world",

@@ -7,6 +7,7 @@ import sys
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..errors import warn
+from . import as_options
 from .common import add_execution
 
 
@@ -81,5 +82,5 @@ def run(args) -> int:
             sys.stderr.write(f"qmap: series failed: sub-{p.subject}"
                              f"{' ses-' + p.session if p.session else ''} {p.label}: {res.reason}\n")
     else:
-        print(report.summary())
+        print(as_options(report.summary()))  # the library's notes name arguments
     return report.exit_code

@@ -9,6 +9,7 @@ from ..defaults import B1_SCALES, DEFAULT_CHUNK
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..errors import UsageError, warn
+from . import as_options
 
 if TYPE_CHECKING:
     from ..pipeline import CommonOptions
@@ -248,5 +249,5 @@ def angles(text, option="--fa"):
 def finish(report, args) -> int:
     """Print the run summary (unless quiet) and return exit code 0."""
     if not args.quiet:
-        print(report.summary())
+        print(as_options(report.summary()))  # the library's notes name arguments
     return 0

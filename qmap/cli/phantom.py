@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 
 from ..errors import UsageError
+from . import as_options
 
 
 class _MapAction(argparse.Action):
@@ -123,5 +124,5 @@ def run(args) -> int:
         command_line=getattr(args, "argv", None),
     )
     if not args.quiet:
-        print(report.summary())
+        print(as_options(report.summary()))  # the library's notes name arguments
     return report.exit_code

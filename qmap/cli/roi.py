@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from . import as_options
 from .phantom import _MapAction, _ParamAction
 
 EXAMPLE = """example:
@@ -56,5 +57,5 @@ def run(args) -> int:
                      names=args.names, erode=args.erode, per_slice=args.per_slice, use_status=not args.all_voxels,
                      overwrite=args.overwrite, command_line=getattr(args, "argv", None))
     if not args.quiet:
-        print(report.summary())
+        print(as_options(report.summary()))  # the library's notes name arguments
     return 0

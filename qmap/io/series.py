@@ -215,7 +215,7 @@ def _usable_sidecar_values(paths, sidecars, key, n, cli, option, *, what: str):
     except InputError as exc:
         if cli is None:
             raise
-        warn(f"{str(exc).split('; expected')[0]} -- ignored: using {option} from the command line")
+        warn(f"{str(exc).split('; expected')[0]} -- ignored: using the {option} given")
         return None
 
 
@@ -281,7 +281,7 @@ def resolve_parameter(
             ref = np.broadcast_to(sidecar, value.shape)
             if not np.allclose(value, ref, rtol=AGREE_RTOL, atol=1e-9):
                 warn(f"{option} {_fmt(value, key)} differs from the sidecar {key} {_fmt(ref, key)}; "
-                     "using the command line")
+                     f"using the {option} given")
     elif sidecar is not None:
         value = sidecar if n is None or sidecar.size == n else np.broadcast_to(sidecar, (n,)).copy()
         src = "sidecar"

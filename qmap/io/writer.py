@@ -327,16 +327,16 @@ class AtomicWriter:
             p = p.parent
         if not p.is_dir():
             raise OutputError(f"cannot use {self.out_dir} as the output folder: {p} is a file, not a folder; "
-                              f"choose another -o")
+                              f"choose another out_dir=")
         self._created = missing  # deepest first; removed again if anything fails, even mkdir half-way
         try:
             self.out_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             self._remove_created()
-            raise OutputError(f"cannot create the output folder {self.out_dir} ({exc.strerror}); choose another -o") from None
+            raise OutputError(f"cannot create the output folder {self.out_dir} ({exc.strerror}); choose another out_dir=") from None
         if not os.access(self.out_dir, os.W_OK | os.X_OK):
             self._remove_created()
-            raise OutputError(f"the output folder {self.out_dir} is not writable; choose another -o or fix permissions")
+            raise OutputError(f"the output folder {self.out_dir} is not writable; choose another out_dir= or fix permissions")
         if self.lock_at_commit:
             return self
         try:
@@ -375,7 +375,7 @@ class AtomicWriter:
                 if time.monotonic() >= deadline:
                     raise OutputError(
                         f"another qmap process{_lock_owner(path)} is writing into {self.out_dir} and did not finish "
-                        f"within {LOCK_WAIT_S:g} s; wait for it to finish, or choose another -o"
+                        f"within {LOCK_WAIT_S:g} s; wait for it to finish, or choose another out_dir="
                     ) from None
                 time.sleep(0.05)
                 continue
@@ -412,7 +412,7 @@ class AtomicWriter:
     def _final(self, name: str) -> Path:
         final = self.out_dir / name
         if final.exists() and not self.overwrite:
-            raise OutputExistsError(f"{final} exists already; pass --overwrite to replace it, or choose another -o")
+            raise OutputExistsError(f"{final} exists already; pass overwrite=True to replace it, or choose another out_dir=")
         return final
 
     def stage_bytes(self, name: str, payload: bytes) -> Path:
@@ -535,8 +535,8 @@ class AtomicWriter:
             if not self.overwrite:  # staged while the folder was not locked: another run may have written since
                 for _, final in self._pending:
                     if final.exists():
-                        raise OutputExistsError(f"{final} exists already; pass --overwrite to replace it, or "
-                                                f"choose another -o")
+                        raise OutputExistsError(f"{final} exists already; pass overwrite=True to replace it, or "
+                                                f"choose another out_dir=")
         try:
             for tmp, final in self._pending:
                 if final.exists():

@@ -75,7 +75,7 @@ ESP_RTOL = 1e-3
 TE_ROUNDING_S = 6e-5
 
 
-def echo_spacing(te, *, where: str = "--te") -> float:
+def echo_spacing(te, *, where: str = "te=") -> float:
     """Echo spacing ESP (s) of a CPMG train whose echo times are TE_k = k * ESP, k = 1..n.
 
     Parameters
@@ -113,9 +113,9 @@ def echo_spacing(te, *, where: str = "--te") -> float:
         i = int(np.argmax(dev)) if te.size else 0
         shown = ",".join(f"{1e3 * t:g}ms" for t in te)
         raise InputError(
-            f"{where}: --epg needs equally spaced echoes at TE_k = k x ESP (a CPMG train starting one spacing "
+            f"{where}: epg=True needs equally spaced echoes at TE_k = k x ESP (a CPMG train starting one spacing "
             f"after excitation), got {shown} (echo {i + 1} is at {1e3 * te[i]:g} ms, expected "
-            f"{1e3 * (i + 1) * esp0:g} ms); give the whole train in acquisition order, or fit without --epg"
+            f"{1e3 * (i + 1) * esp0:g} ms); give the whole train in acquisition order, or fit without epg=True"
         )
     esp = float(np.sum(k * te) / np.sum(k * k))
     if rounded:

@@ -30,7 +30,7 @@ EQUATIONS = {
 }
 #: (warning, summary note) when the noise level cannot be estimated: no residual to fall back on
 NAN_FALLBACK = ("the TB1 standard errors are NaN (give sigma=VALUE)",
-                "standard errors are NaN: the noise could not be estimated (give --sigma VALUE)")
+                "standard errors are NaN: the noise could not be estimated (give sigma=VALUE)")
 #: DAM needs full recovery; below this TR (s) the summary reminds the user (TR >= ~5 T1, common practice)
 DAM_TR_NOTE_S = 5.0
 
@@ -51,10 +51,10 @@ class _Pair:
     scalar_noun: str
 
 
-_AFI = _Pair(name="AFI", title="AFI", images="TR1 and TR2", what="AFI images", key="RepetitionTime", option="--tr",
-             scalar="FlipAngle", scalar_option="--fa", scalar_required=True, scalar_noun="nominal flip angle")
+_AFI = _Pair(name="AFI", title="AFI", images="TR1 and TR2", what="AFI images", key="RepetitionTime", option="tr=",
+             scalar="FlipAngle", scalar_option="fa=", scalar_required=True, scalar_noun="nominal flip angle")
 _DAM = _Pair(name="DAM", title="the double-angle method", images="a and 2a", what="double-angle images",
-             key="FlipAngle", option="--fa", scalar="RepetitionTime", scalar_option="--tr", scalar_required=False,
+             key="FlipAngle", option="fa=", scalar="RepetitionTime", scalar_option="tr=", scalar_required=False,
              scalar_noun="repetition time")
 
 
@@ -173,7 +173,7 @@ def run_b1(
     ok = maps.status == 0
     fitted = maps.status != st.MASKED
     if fitted.any() and np.mean(maps.status[fitted] == st.NO_VALID_ANGLE) > 0.5:
-        swap = ("the two images (or --tr TR1,TR2) are probably in the wrong order" if method == "afi"
+        swap = ("the two images (or tr=(TR1, TR2)) are probably in the wrong order" if method == "afi"
                 else "the two images are probably in the wrong order (give S(a) first, then S(2a))")
         run.discard(maps)  # the maps streamed into the output folder go again
         raise InputError(

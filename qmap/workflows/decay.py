@@ -118,7 +118,7 @@ class DecaySettings:
 
 def load_echoes(inputs, *, te, drop_first: bool, common: CommonOptions, min_volumes: int = 2):
     """Load a multi-echo series (``EchoTime``), optionally without its first echo; returns (series, notes)."""
-    series = load_series(inputs, key="EchoTime", value=te, option="--te",
+    series = load_series(inputs, key="EchoTime", value=te, option="te=",
                          min_volumes=min_volumes + 1 if drop_first else min_volumes, max_bytes=common.max_memory,
                          check_order=common.series_check)
     notes = []

@@ -246,7 +246,7 @@ def run_demo(out_dir, *, n_jobs: int | None = None, overwrite: bool = False, qui
     if not overwrite:
         found = [p for p in (data, maps_dir, out / "phantom", out / "pools-data", out / "commands.sh") if p.exists()]
         if found:
-            raise OutputExistsError(f"{found[0]} exists already (an earlier demo); pass --overwrite to replace it, or "
+            raise OutputExistsError(f"{found[0]} exists already (an earlier demo); pass overwrite=True to replace it, or "
                                     f"choose another -o")
     with ExitStack() as stack:
         bundled = sample_data_dir(stack)

@@ -159,8 +159,8 @@ def run_t1_ir(
     if phase and signal != "complex":
         raise UsageError("phase= is for complex data: add signal='complex' (or leave phase= out)")
     series = load_series(
-        inputs, key="InversionTime", value=ti, option="--ti",
-        scalars={"RepetitionTime": (tr, "--tr", False, "RepetitionTime")},
+        inputs, key="InversionTime", value=ti, option="ti=",
+        scalars={"RepetitionTime": (tr, "tr=", False, "RepetitionTime")},
         allow_complex=signal == "complex", sort=not phase, min_volumes=MIN_TIS,
         max_bytes=None if signal == "complex" else common.max_memory, check_order=common.series_check,
     )

@@ -55,9 +55,9 @@ UNI_ENCODINGS = {
 _H = 1e-4
 #: what the standard errors become when the inversion images' noise level cannot be estimated (warning, note)
 _NO_NOISE = ("M0 is written, the standard errors are not",
-             "no standard errors: the noise level of the inversion images could not be estimated (give --sigma VALUE)")
+             "no standard errors: the noise level of the inversion images could not be estimated (give sigma=VALUE)")
 NO_B1_NOTE = ("no B1 correction: nominal flip angles assumed (UNI depends on the transmit field, most for long "
-              "T1; pass --b1 B1MAP to correct)")
+              "T1; pass b1=B1MAP to correct)")
 EQUATION = ("UNI = S1 S2/(S1^2 + S2^2), S1, S2 the k-space-centre signals of the periodic steady state of "
             "inversion (efficiency e) + two gradient-echo blocks with angles B1 x FlipAngle (Marques et al. 2010)")
 
@@ -175,15 +175,15 @@ def resolve_protocol(sidecar: dict, where: str, **given: Unpack[ProtocolOverride
                          f"got {np.size(ti)}")
     sources = {}
     tiv, sources["InversionTime"] = resolve_parameter("InversionTime", ti, _numbers(sidecar, "InversionTime", where),
-                                                      2, option="--ti", where=where)
+                                                      2, option="ti=", where=where)
     fav, sources["FlipAngle"] = resolve_parameter("FlipAngle", fa, _numbers(sidecar, "FlipAngle", where), 2,
-                                                  option="--fa", where=where)
+                                                  option="fa=", where=where)
     tp, sources["RepetitionTimePreparation"] = resolve_parameter(
         "RepetitionTimePreparation", tr_prep, _numbers(sidecar, "RepetitionTimePreparation", where), None,
-        option="--tr-prep", where=where, check_key="RepetitionTime")
+        option="tr_prep=", where=where, check_key="RepetitionTime")
     te, sources["RepetitionTimeExcitation"] = resolve_parameter(
         "RepetitionTimeExcitation", tr_exc, _numbers(sidecar, "RepetitionTimeExcitation", where), None,
-        option="--tr-exc", where=where, check_key="RepetitionTimeSpoiled")
+        option="tr_exc=", where=where, check_key="RepetitionTimeSpoiled")
     side_shots = _numbers(sidecar, "NumberShots", where)
     if side_shots is not None and (side_shots.size != 1 or side_shots[0] != int(side_shots[0])):
         raise InputError(f"{where}: sidecar NumberShots {sidecar['NumberShots']!r}; expected one whole number "
@@ -594,7 +594,7 @@ def run_t1_mp2rage(
         # no usable object contrast: its background is noise spread over the whole range)
         run_series: Series = uni_series
         auto = (finite & ~zero_filled, ("auto without inversion images: every voxel with a finite UNI whose stored "
-                                        "value is not 0 (zero-filled background) (pass --mask or --inv1/--inv2 to "
+                                        "value is not 0 (zero-filled background) (pass mask= or inv1= and inv2= to "
                                         "exclude the background)"))
     else:
         first, second = inversions

@@ -101,7 +101,7 @@ def describe_failure(r: RoiResult) -> str:
     if r.n_voxels == 0:
         return f"{who}: no usable voxels in the ROI"
     if r.too_small:
-        return f"{who}: ROI too small to judge ({r.n_voxels} voxels, minimum set by --min-voxels)"
+        return f"{who}: ROI too small to judge ({r.n_voxels} voxels, minimum set by min_voxels=)"
     return (f"{who}: median {r.median:.4g} {r.unit} vs reference {r.reference:.4g} {r.unit}, "
             f"{r.error_pct:+.1f}% (tolerance \u00b1{r.tolerance_pct:g}%)")
 
@@ -294,7 +294,7 @@ def run_phantom(
                and abs(e.temperature_C - temperature) > 0.5]
         if off:
             notes.append(f"vial(s) {_list(off)} have reference values at one temperature only, which differs from "
-                         f"--temperature {temperature:g} C; they were used without temperature correction")
+                         f"temperature={temperature:g} C; they were used without temperature correction")
     rows, views = _measure(loaded, lab, lab_aff, table, entries, tolerance=tolerance, erode=erode,
                            min_voxels=min_voxels, notes=notes)
     passed = all(r.pass_ for r in rows)
@@ -368,7 +368,7 @@ def _measure(loaded, lab, lab_aff, table, entries, *, tolerance, erode, min_voxe
             rows.append(r)
             if r.too_small:
                 notes.append(f"vial {k} {m.key}: {r.n_voxels} usable voxels in the ROI, fewer than the minimum "
-                             f"{min_voxels}; counted as not passed -- check the ROI figure, the label image or --erode")
+                             f"{min_voxels}; counted as not passed -- check the ROI figure, the label image or erode=")
             elif r.n_nonfinite + r.n_excluded > 0.1 * (r.n_voxels + r.n_nonfinite + r.n_excluded):
                 notes.append(f"vial {k} {m.key}: {r.n_nonfinite + r.n_excluded} of "
                              f"{r.n_voxels + r.n_nonfinite + r.n_excluded} ROI voxels have no value in {m.path.name} "
@@ -399,7 +399,7 @@ def _update_history(history, old_history, rows, session, entries, notes):
         notes.append(f"the history {history} already held this session ({session.date}, {session.scanner}, "
                      f"{session.protocol}); its rows were replaced")
     if session.sources["date"] == "today":
-        notes.append(f"no --date and no acquisition date in the sidecar: the history records today's date "
+        notes.append(f"no date= and no acquisition date in the sidecar: the history records today's date "
                      f"{session.date}")
     trends = find_trends(history_rows, session.scanner, session.protocol,
                          [(r.label, r.key) for r in rows],

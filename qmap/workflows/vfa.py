@@ -51,7 +51,7 @@ METHODS = COMMAND_MODELS["t1-vfa"].values
 #: the CRLB of T1 may be this many times that of the optimal two-angle protocol before the note is printed
 PROTOCOL_RATIO = 1.5
 NO_B1_NOTE = ("no B1 correction applied: nominal flip angles assumed (T1 errs roughly in proportion to B1^2 "
-              "where the transmit field is off; pass --b1 B1MAP to correct)")
+              "where the transmit field is off; pass b1=B1MAP to correct)")
 EQUATION = "S = M0 sin(a) (1-E1)/(1 - E1 cos(a)), E1 = exp(-TR/T1), a = B1 x nominal flip angle"
 LINEAR_DESC = (f"linearised regression (Deoni et al. 2003) S/sin a = E1 S/tan a + M0 (1-E1), unweighted first pass then {LINEAR_PASSES} "
                "passes weighted by (sin a / (1 - E1 cos a))^2 (inverse variance of the line's residual); standard "
@@ -87,7 +87,7 @@ def protocol_check(fa, tr: float, t1_typical: float = T1_TYPICAL) -> tuple[dict,
         note = (f"protocol: for T1 ~ {t1_typical:g} s at TR {tr * 1e3:g} ms the Ernst angle is {ae:.1f} deg and the "
                 f"two angles giving 0.71 of its signal are {pair[0]:.1f} and {pair[1]:.1f} deg (Deoni 2003); your "
                 f"angles {shown} deg give a {ratio:.1f}x larger T1 standard deviation than those for the same number "
-                f"of images (--t1-typical sets the T1 assumed)")
+                f"of images (t1_typical= sets the T1 assumed)")
     return info, note
 
 
@@ -228,8 +228,8 @@ def run_t1_vfa(
                          f"different flip angles")
     if not (np.isfinite(t1_typical) and t1_typical > 0):
         raise UsageError(f"t1_typical={t1_typical}: give a positive time, e.g. 1s or 900ms")
-    series = load_series(inputs, key="FlipAngle", value=fa, option="--fa",
-                         scalars={"RepetitionTime": (tr, "--tr", True, "RepetitionTimeSpoiled")}, min_volumes=2,
+    series = load_series(inputs, key="FlipAngle", value=fa, option="fa=",
+                         scalars={"RepetitionTime": (tr, "tr=", True, "RepetitionTimeSpoiled")}, min_volumes=2,
                          max_bytes=common.max_memory, check_order=common.series_check)
     fa_used = np.asarray(series.acquisition["FlipAngle"], float)
     tr_used = float(series.acquisition["RepetitionTime"])

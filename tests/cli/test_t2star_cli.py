@@ -81,7 +81,7 @@ def test_command_line_overrides_sidecar_with_warning(megre, tmp_path, capsys):
     other = ",".join(f"{1000 * t * 1.1:g}ms" for t in te)
     assert _run(path, "-o", tmp_path / "o", "--te", other, "--noise-floor", "none") == 0
     err = capsys.readouterr().err
-    assert "differs from the sidecar" in err and "using the command line" in err
+    assert "differs from the sidecar" in err and "using the --te given" in err
     prov = json.loads((tmp_path / "o/sub-01_acq-megre_provenance.json").read_text())
     np.testing.assert_allclose(prov["acquisition"]["EchoTime"], te * 1.1, rtol=1e-9)
 
