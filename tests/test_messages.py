@@ -30,6 +30,18 @@ def _no_option(message: str) -> None:
     assert not re.search(r"(?<![\w-])--?[a-z]", message), message
 
 
+def _usage_cases(cases) -> None:
+    """Each ``(call, library, cli)``: ``call()`` raises a UsageError that starts with ``library`` (no option
+    named) and reads as ``cli`` on the command line."""
+    for call, library, cli in cases:
+        with pytest.raises(UsageError) as exc:
+            call()
+        msg = str(exc.value)
+        assert msg.startswith(library), msg
+        _no_option(msg)
+        assert as_options(msg).startswith(cli), as_options(msg)
+
+
 def _vfa(d):
     """A small VFA series (SPGR signal, Fram et al. 1987), one 3D file per flip angle with its sidecar."""
     a = np.deg2rad(np.asarray(FA))
@@ -341,13 +353,7 @@ def test_inspect_vfa_and_b1_messages_name_arguments(tmp_path, capsys):
         (lambda: run_b1(files[:2], common=CommonOptions(out_dir=tmp_path / "o", units="ms"), method="dam"),
          "units='ms' does not apply to B1 maps", "--units ms does not apply to B1 maps"),
     ]
-    for call, library, cli in cases:
-        with pytest.raises(UsageError) as exc:
-            call()
-        msg = str(exc.value)
-        assert msg.startswith(library), msg
-        _no_option(msg)
-        assert as_options(msg).startswith(cli), as_options(msg)
+    _usage_cases(cases)
     assert main(["t1-vfa", *files, "--method", "linear", "--engine", "lmfit", "-o", str(tmp_path / "o"), "-q"]) == 2
     assert _one_error(capsys) == ("qmap: error: --engine lmfit applies to --method nonlinear; the linear method is a "
                                   "closed-form regression")
@@ -381,13 +387,7 @@ def test_spectrum_mp2rage_and_ir_messages_name_arguments(tmp_path):
          "phase= is for complex data: add signal='complex' (or leave phase= out)",
          "--phase is for complex data: add --signal complex (or leave --phase out)"),
     ]
-    for call, library, cli in cases:
-        with pytest.raises(UsageError) as exc:
-            call()
-        msg = str(exc.value)
-        assert msg.startswith(library), msg
-        _no_option(msg)
-        assert as_options(msg).startswith(cli), as_options(msg)
+    _usage_cases(cases)
 
 
 def _common(tmp_path):
