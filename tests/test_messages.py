@@ -480,3 +480,19 @@ def test_series_values_outputs_and_echo_spacing_name_arguments(tmp_path, capsys)
     assert main(["t1-vfa", *files, "--sigma", "5", "-o", str(tmp_path / "w")]) == 0
     out = capsys.readouterr().out
     assert "--b1 B1MAP" in out and "b1=" not in out, out
+
+
+def test_mp2rage_inversion_images_name_their_arguments(tmp_path, capsys):
+    from qmap.pipeline import CommonOptions
+    from qmap.workflows.mp2rage import run_t1_mp2rage
+
+    data = Path(__file__).resolve().parents[1] / "sample_data" / "sub-phantom" / "anat"
+    uni, inv2 = data / "sub-phantom_UNIT1.nii.gz", data / "sub-phantom_inv-2_MP2RAGE.nii.gz"
+    four_d = write_nifti(tmp_path / "inv1.nii.gz", np.ones((48, 48, 4, 3)))  # not one 3D volume
+    with pytest.raises(InputError) as exc:
+        run_t1_mp2rage(uni, inv1=four_d, inv2=inv2, common=CommonOptions(out_dir=tmp_path / "o"))
+    assert str(exc.value) == f"inv1={four_d}: has shape (48, 48, 4, 3); expected one 3D volume"
+    _no_option(str(exc.value).replace(str(four_d), ""))
+    assert main(["t1-mp2rage", str(uni), "--inv1", str(four_d), "--inv2", str(inv2), "-o", str(tmp_path / "o"),
+                 "-q"]) == 2
+    assert _one_error(capsys) == f"qmap: error: --inv1 {four_d}: has shape (48, 48, 4, 3); expected one 3D volume"

@@ -444,7 +444,8 @@ def _open_3d(path, what: str):
     img = load_image(path, what=what)
     shape = img.shape
     if len(shape) > 3 and not all(s == 1 for s in shape[3:]):
-        raise InputError(f"{what} {path}: has shape {shape}; expected one 3D volume")
+        named = what if what.endswith("=") else f"{what} "  # an argument (inv1=PATH) or a noun (UNI PATH)
+        raise InputError(f"{named}{path}: has shape {shape}; expected one 3D volume")
     return img
 
 
@@ -457,34 +458,35 @@ def _read_3d(img, path, z0: int, z1: int, *, allow_complex: bool = False) -> np.
 class _Inversion:
     """One inversion image (magnitude or complex, or a magnitude with its phase), read slab by slab."""
 
-    def __init__(self, path, phase, what: str, ref_img):
-        self.path, self.phase, self.what = path, phase, what
-        self.img = _open_3d(path, what)
+    def __init__(self, path, phase, arg: str, ref_img):
+        """``arg``: the argument that gave the image (``inv1`` / ``inv2``; its phase is ``{arg}_phase``)."""
+        self.path, self.phase, self.arg = path, phase, arg
+        self.img = _open_3d(path, f"{arg}=")
         check_same_grid(ref_img.shape, ref_img.affine, self.img.shape, self.img.affine, ref_name="the UNI image",
-                        name=f"{what} {path}")
+                        name=f"{arg}={path}")
         self.pimg = None
         if phase is not None:
             if self.img.get_data_dtype().kind == "c":
-                raise UsageError(f"{what}-phase: {path} already holds complex data; give a complex image or a "
+                raise UsageError(f"{arg}_phase=: {path} already holds complex data; give a complex image or a "
                                  f"magnitude with its phase, not both")
-            self.pimg = _open_3d(phase, f"{what}-phase")
+            self.pimg = _open_3d(phase, f"{arg}_phase=")
             check_same_grid(ref_img.shape, ref_img.affine, self.pimg.shape, self.pimg.affine,
-                            ref_name="the UNI image", name=f"{what}-phase {phase}")
+                            ref_name="the UNI image", name=f"{arg}_phase={phase}")
 
     def magnitude(self, z0: int, z1: int) -> np.ndarray:
         """(X, Y, z1 - z0) float32 magnitudes of the slices ``z0:z1``."""
         data = _read_3d(self.img, self.path, z0, z1, allow_complex=True)
-        what = self.what
+        arg = self.arg
         if self.pimg is not None:
             ph = _read_3d(self.pimg, self.phase, z0, z1)
             peak = float(np.nanmax(np.abs(ph))) if np.isfinite(ph).any() else 0.0
             if peak > 3.1416:
-                raise InputError(f"{what}-phase {self.phase}: values reach {peak:g}, expected radians in [-pi, pi]; "
+                raise InputError(f"{arg}_phase={self.phase}: values reach {peak:g}, expected radians in [-pi, pi]; "
                                  f"convert the phase first (e.g. integer-coded -4096..4095: multiply by pi/4096)")
             data = np.abs(data) * np.exp(1j * ph.astype(np.float32))
         elif not np.iscomplexobj(data) and (data < 0).any():
-            raise InputError(f"{what} {self.path}: holds negative values but a magnitude image is >= 0; give the "
-                             f"magnitude, a complex image, or the magnitude with --{what.lstrip('-')}-phase")
+            raise InputError(f"{arg}={self.path}: holds negative values but a magnitude image is >= 0; give the "
+                             f"magnitude, a complex image, or the magnitude with {arg}_phase=")
         return np.abs(data)
 
 
@@ -563,7 +565,7 @@ def run_t1_mp2rage(
     budget = common.max_memory
     inversions = None
     if inv1 is not None:
-        inversions = (_Inversion(inv1, inv1_phase, "--inv1", img), _Inversion(inv2, inv2_phase, "--inv2", img))
+        inversions = (_Inversion(inv1, inv1_phase, "inv1", img), _Inversion(inv2, inv2_phase, "inv2", img))
     acq = {"acquisition": protocol.as_acquisition(), "sources": sources, "affine": affine, "header": img.header}
     files = [upath] + [Path(p).expanduser().absolute() for p in (inv1, inv2, inv1_phase, inv2_phase) if p is not None]
 
