@@ -69,6 +69,8 @@ MASK_NOISE_FACTOR = 3.0
 #: background samples collected for ``--sigma auto`` (every k-th voxel by flat index, so that the
 #: choice does not depend on how the volume is read)
 SIGMA_SAMPLES = 400_000
+#: values handled at a time where the noise estimate gathers or filters its samples (bounds the temporaries)
+_BLOCK = 1 << 16
 
 
 
@@ -76,7 +78,7 @@ class VolumeSource(Protocol):
     """What the mask and noise estimates read: a series of volumes, slab by slab along z."""
 
     _object_mask: np.ndarray | None
-    _peak: np.ndarray | None
+    _object_peak: np.ndarray | None
 
     @property
     def shape(self) -> tuple[int, int, int]: ...
@@ -100,7 +102,7 @@ class ArraySource:
             raise InputError(f"expected a 3D volume or 4D series, got shape {np.shape(data)}")
         self.data = a
         self._object_mask: np.ndarray | None = None
-        self._peak: np.ndarray | None = None
+        self._object_peak: np.ndarray | None = None
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -301,13 +303,22 @@ def dilate_cross(a: np.ndarray, iterations: int = 1) -> np.ndarray:
 def object_mask(source: VolumeSource, max_bytes: float | None = None) -> np.ndarray:
     """The automatically detected object of a series, read slab by slab (see :func:`auto_mask`).
 
-    The mask and the peak image are cached on ``source`` (used by ``--mask auto`` and
-    ``--sigma auto``).
+    The mask is cached on ``source`` (used by ``--mask auto`` and ``--sigma auto``), and so are the
+    object voxels' peaks (C order), which the background noise estimate compares its median with;
+    the peak image itself is dropped once the mask is made.
     """
     if source._object_mask is None:
-        peak = np.concatenate([peak_image(source.read(z0, z1)) for z0, z1 in source.slabs(max_bytes)], axis=2)
-        source._object_mask = mask_from_peak(peak)
-        source._peak = peak
+        slabs = source.slabs(max_bytes)
+        if len(slabs) == 1:
+            peak = peak_image(source.read(*slabs[0]))
+        else:  # filled slab by slab (no list of slab peaks and concatenated copy)
+            peak = np.empty(source.shape, np.float32)
+            for z0, z1 in slabs:
+                peak[:, :, z0:z1] = peak_image(source.read(z0, z1))
+        mask = mask_from_peak(peak)
+        source._object_peak = peak[mask]
+        del peak
+        source._object_mask = mask
     return source._object_mask
 
 
@@ -513,7 +524,7 @@ def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[fl
     new = sigma
     for _ in range(20):
         size = kept.size
-        kept = bg[bg <= tail * sigma]
+        kept = bg[bg <= np.float64(tail * sigma)]  # float32 values compared in float64, as a float64 copy was
         if kept.size == size:  # {x <= limit} with as many values: the same values, the same median
             new = sigma
             break
@@ -656,7 +667,7 @@ def median_relative_se(coils: int = 1) -> float:
 
 def _quantum(values: np.ndarray) -> float:
     """The storage step of quantised (integer, or integer x slope) values; 0 for continuous data."""
-    v = values[: 200_000]
+    v = values[: 200_000].astype(np.float64, copy=False)  # float32 samples: their exact float64 values
     if v.size < 20:
         return 0.0
     u = np.unique(v)
@@ -682,8 +693,8 @@ def _median_sigma(values: np.ndarray, quantum: float, coils: int) -> float:
     where ``F`` is closest to 1/2 (the median's own precision).
     """
     if quantum <= 0:
-        return float(np.median(values)) / _chi_median(coils)
-    k = np.round(values / quantum).astype(np.int64)
+        return _median64(values) / _chi_median(coils)
+    k = np.round(np.divide(values, quantum, dtype=np.float64)).astype(np.int64)
     k0 = int(k.min())
     frac = np.cumsum(np.bincount(k - k0)) / values.size
     j = int(np.argmin(np.abs(frac - 0.5)))
@@ -691,18 +702,29 @@ def _median_sigma(values: np.ndarray, quantum: float, coils: int) -> float:
     return (j + k0 + 0.5) * quantum / math.sqrt(_chi2_ppf(f, 2.0 * coils))
 
 
-def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
+def _moments_coils(bg: np.ndarray, quantum: float, keep: np.ndarray | None = None) -> tuple[float, float]:
     """Effective number of coils from the background's moments, and its standard error.
 
     For :math:`M = \\sigma \\chi_{2N}`: :math:`E[M^2] = 2N\\sigma^2` and :math:`E[M^4] =
     4N(N+1)\\sigma^4`, so :math:`r = E[M^4]/E[M^2]^2 = 1 + 1/N` (Constantinides et al. 1997 give
     the chi densities). Quantised values get Sheppard's corrections for grouping (Sheppard 1898:
     :math:`\\mu_2 = m_2 - h^2/12`, :math:`\\mu_4 = m_4 - m_2 h^2/2 + 7h^4/240`; from memory).
-    The standard error of ``r`` is the delta-method one from the sample moments.
+    The standard error of ``r`` is the delta-method one from the sample moments. ``keep`` ((k,) bool):
+    the values of ``bg`` to use (default all), taken a block at a time (no copy of them). The moments
+    are taken in float64 whatever the storage of ``bg`` (float32 samples: their exact float64 values).
     """
-    xs = np.empty((2, bg.size))  # rows x^2 and x^4, made in place (no separate arrays and stacked copy)
+    n = bg.size if keep is None else int(np.count_nonzero(keep))
+    xs = np.empty((2, n))  # rows x^2 and x^4, made in place (no separate arrays and stacked copy)
     x2, x4 = xs
-    np.multiply(bg, bg, out=x2)
+    if keep is None:
+        x2[...] = bg
+    else:
+        j = 0
+        for i in range(0, bg.size, _BLOCK):
+            part = bg[i:i + _BLOCK][keep[i:i + _BLOCK]]
+            x2[j:j + part.size] = part
+            j += part.size
+    np.multiply(x2, x2, out=x2)
     np.multiply(x2, x2, out=x4)
     m2 = float(np.mean(x2))
     m4 = float(np.mean(x4))
@@ -715,11 +737,11 @@ def _moments_coils(bg: np.ndarray, quantum: float) -> tuple[float, float]:
     r = m4 / (m2 * m2)
     # delta method for r = m4 / m2^2 with the sample covariance of (x^2, x^4)
     g = np.array([-2.0 * m4 / m2**3, 1.0 / m2**2])
-    if bg.size < 2:
-        cov = np.cov(xs) / bg.size
+    if n < 2:
+        cov = np.cov(xs) / n
     else:  # np.cov(xs) in place on xs (np.cov centres a copy of it): its operations, so its values to the bit
         xs -= np.average(xs, axis=1)[:, None]
-        cov = np.dot(xs, xs.T) * np.true_divide(1, bg.size - 1) / bg.size
+        cov = np.dot(xs, xs.T) * np.true_divide(1, n - 1) / n
     se_r = float(np.sqrt(max(g @ cov @ g, 0.0)))
     if r <= 1.0:
         return float("inf"), se_r
@@ -731,8 +753,8 @@ class _Background:
     """Background samples of a series (see :func:`_collect_background`)."""
 
     values: np.ndarray  # (k, n) magnitudes of a strided subsample of the background voxels
-    index: np.ndarray  # (k,) flat voxel index of each row
-    obj_peak: np.ndarray  # (j,) each object voxel's peak
+    index: np.ndarray  # (k,) flat voxel index of each row (int32 for volumes under 2**31 voxels)
+    obj_median: float  # the median (float64) of the object voxels' finite peaks, 0 without any
     n_outside: int  # voxels outside the grown object
     n_usable: int  # of which with a usable (finite, not zero-filled) sample
     n_zero: int  # ... zero in every volume (zero filling)
@@ -749,8 +771,15 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
     k = max(1, -(-n_out * source.n // SIGMA_SAMPLES))
     # the sampled background voxels: every k-th flat (C-order) index, without a volume of indices
     kept = np.flatnonzero(bg.reshape(-1)[::k]) * k  # the background's flat (C-order) indices that are multiples of k
-    kept_z = kept % bg.shape[2]
-    values, index, peaks = [], [], []
+    if bg.size <= np.iinfo(np.int32).max:  # half the memory of int64
+        kept = kept.astype(np.int32)
+    nz = bg.shape[2]
+    n = source.n
+    values: np.ndarray | None = None  # (kept.size, n), filled slab by slab
+    index = np.empty(kept.size, kept.dtype)  # the flat index of each row of values
+    row = 0
+    peaks = []
+    cached = source._object_peak is not None and obj is source._object_mask
     n_usable = n_zero = n_nonfinite = n_samples = 0
     for z0, z1 in source.slabs(max_bytes):
         block = source.read(z0, z1)
@@ -767,44 +796,71 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
             any_fin |= fin
             any_nz |= fin & (b != 0)
             n_fin += fin
+        del b, fin
         n_nonfinite += int(np.count_nonzero(~any_fin))
         n_zero += int(np.count_nonzero(any_fin & ~any_nz))
         n_usable += int(np.count_nonzero(any_nz))
         n_samples += int(n_fin[any_nz].sum())
-        at = kept[(kept_z >= z0) & (kept_z < z1)]  # in C order, as boolean indexing of the slab takes them
-        x, y, z = np.unravel_index(at, bg.shape)
-        values.append(block[x, y, z - z0])
-        index.append(at)
-        if source._peak is None:
+        del any_fin, any_nz, n_fin
+        if values is None:
+            values = np.empty((kept.size, n), block.dtype)
+        # the slab's sampled voxels in C order (as boolean indexing of the slab takes them), a block of
+        # indices at a time (no coordinate arrays for all of them)
+        for i in range(0, kept.size, _BLOCK):
+            part = kept[i:i + _BLOCK]
+            zz = part % nz
+            at = part[(zz >= z0) & (zz < z1)]
+            x, y, z = np.unravel_index(at, bg.shape)
+            values[row:row + at.size] = block[x, y, z - z0].reshape(-1, n)
+            index[row:row + at.size] = at
+            row += at.size
+        if not cached:
             peaks.append(peak_image(block)[obj[:, :, z0:z1]])
-    obj_peak = source._peak[obj] if source._peak is not None else np.concatenate(peaks) if peaks else np.zeros(0)
-    n = source.n
+    # the object's peaks (cached by object_mask for its own mask), finite ones, for the plausibility check
+    obj_peak: np.ndarray = np.zeros(0, np.float32)
+    if cached and source._object_peak is not None:
+        obj_peak = source._object_peak
+    elif peaks:
+        obj_peak = np.concatenate(peaks)
+    del peaks
+    finite_peak = obj_peak[np.isfinite(obj_peak)]  # a copy: partitioned in place below
+    obj_median = _median64(finite_peak, overwrite=True) if finite_peak.size else 0.0
+    del obj_peak, finite_peak
     return _Background(
-        values=np.concatenate(values, axis=0).reshape(-1, n) if values else np.zeros((0, n)),
-        index=np.concatenate(index) if index else np.zeros(0, np.int64),
-        obj_peak=np.asarray(obj_peak), n_outside=n_out, n_usable=n_usable, n_zero=n_zero,
+        values=values[:row] if values is not None else np.zeros((0, n)),
+        index=index[:row],
+        obj_median=obj_median, n_outside=n_out, n_usable=n_usable, n_zero=n_zero,
         n_nonfinite=n_nonfinite, n_samples=n_samples, mask_fraction=float(obj.mean()) if obj.size else 0.0,
         shape=tuple(obj.shape),
     )
 
 
-def _median64(values: np.ndarray) -> float:
-    """``np.median`` of ``values`` taken in float64, without a float64 copy of them (the peak image is float32).
+def _median64(values: np.ndarray, overwrite: bool = False) -> float:
+    """``np.median`` of ``values`` taken in float64, without a float64 copy of them (float32 samples, peaks).
 
     The median is one order statistic (odd count) or the float64 mean of two; both are exact whatever the
-    storage type, so this is ``float(np.median(values.astype(np.float64)))`` to the bit.
+    storage type, so this is ``float(np.median(values.astype(np.float64)))`` to the bit (for float64
+    values: ``float(np.median(values))``). ``overwrite``: partition ``values`` (a 1-D array) in place
+    instead of a copy of it.
     """
     n = values.size
     k = n // 2
+    kth = k if n % 2 else [k - 1, k]
+    if overwrite:
+        values.partition(kth)
+        part = values
+    else:
+        part = np.partition(values, kth)
     if n % 2:
-        return float(np.partition(values, k)[k])
-    part = np.partition(values, [k - 1, k])
+        return float(part[k])
     return float((np.float64(part[k - 1]) + np.float64(part[k])) / 2.0)
 
 
 def _background_samples(values: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
-    """Usable background values (flat float64), their storage step, and the row of each value.
+    """Usable background values (flat), their storage step, and the row of each value.
 
+    float32 samples stay float32 (half the memory; every statistic of them is taken in float64 from their
+    exact values: :func:`_median64`, float64 limits, :func:`_moments_coils`), other types become float64.
     Voxels that are zero (or not finite) in every volume are zero filling, not noise. In continuous data
     an exact zero elsewhere is zero filling too; in quantised data (integer storage) a zero is the lowest
     bin of the noise and is kept.
@@ -818,7 +874,9 @@ def _background_samples(values: np.ndarray) -> tuple[np.ndarray, float, np.ndarr
     rows = np.broadcast_to(np.arange(values.shape[0], dtype=rtype)[:, None], values.shape)
     sel = fin & live[:, None]
     del fin, live
-    bg = values[sel].astype(np.float64)
+    bg = values[sel]
+    if bg.dtype != np.float32:
+        bg = bg.astype(np.float64)
     row = rows[sel]
     del sel
     nz = bg != 0
@@ -855,10 +913,8 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
     if np.count_nonzero(bg < 0) > 0.01 * bg.size:
         raise InputError("cannot estimate the noise from the background: it holds negative values, so this is not "
                          "a magnitude image (a real-valued or phase export?)")
-    med_bg = float(np.median(bg))
-    obj = b.obj_peak[np.isfinite(b.obj_peak)]
-    med_obj = _median64(obj) if obj.size else 0.0
-    del obj
+    med_bg = _median64(bg)
+    med_obj = b.obj_median
     if not med_bg * 3.0 <= med_obj:
         raise InputError(
             f"cannot estimate the noise from the background: it is not pure noise (background median {med_bg:.4g} "
@@ -873,8 +929,9 @@ def _assess_background(b: _Background, coils: int | None, need_samples: int, nee
             f"cannot estimate the noise from the background: it is not pure noise ({100 * outliers:.0f} % of it is "
             f"far brighter than noise, expected below {100 * _MAX_OUTLIER_FRACTION:.0f} %; unmasked signal or "
             "strong artefacts)")
-    kept = bg <= _chi_tail(use) * sigma
-    n_eff, se_r = _moments_coils(bg[kept], quantum)
+    kept = bg <= np.float64(_chi_tail(use) * sigma)  # compared in float64 (float32 samples)
+    n_eff, se_r = _moments_coils(bg, quantum, kept)
+    del kept
     details["background_coils_estimate"] = None if not np.isfinite(n_eff) else round(n_eff, 2)
     if not np.isfinite(n_eff) or n_eff > 64:
         raise InputError(

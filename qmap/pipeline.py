@@ -533,7 +533,7 @@ class PreparedRun:
         (Reading slab k + 1 in a thread while slab k fits was measured: no gain on 2 cores, whose both
         cores the fit uses, and one more slab in memory; so the slabs are read in turn.)
         """
-        self.series._peak = None  # only the mask and the noise estimate needed it
+        self.series._object_peak = None  # only the noise estimate needed it
         if len(slabs) > 1 and self.series.lazy:
             self.notes.append(f"read in {len(slabs)} slabs to stay within max_memory=")
         for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy

@@ -53,7 +53,7 @@ class Series:
     paths: list = field(default_factory=list)
     sidecars: list = field(default_factory=list)
     _object_mask: np.ndarray | None = field(default=None, repr=False)
-    _peak: np.ndarray | None = field(default=None, repr=False)  # per-voxel maximum, kept while the mask is made
+    _object_peak: np.ndarray | None = field(default=None, repr=False)  # the object voxels' peaks (noise estimate)
     _proxies: list | None = field(default=None, repr=False)  # lazy: [4D proxy] or [3D proxies]
     _order: np.ndarray | None = field(default=None, repr=False)  # volume order applied on reading
     _shape4: tuple | None = field(default=None, repr=False)

@@ -1,0 +1,97 @@
+"""The noise estimate and the automatic mask on float32 samples: the same numbers as on float64, less memory.
+
+The background noise estimate keeps float32 samples as float32 and takes every statistic of them in float64
+(the median's one or two order statistics, float64 limits, the moments from their exact float64 values), so
+its result on a float32 series must equal, to the bit, its result on the float64 copy of the same series
+(which goes the plain float64 way). The reference values are recomputed with numpy directly
+(``np.median``, ``np.cov``) in the tests below.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from qmap.noise_level import (
+    ArraySource,
+    _median64,
+    _moments_coils,
+    background_estimate,
+    object_mask,
+    peak_image,
+)
+from tests.conftest import rician
+
+TE = np.linspace(0.003, 0.036, 8)
+
+
+def _series(seed: int, *, coils: int = 1, quantum: float = 0.0, scale: float = 1.0) -> np.ndarray:
+    """A 24 x 26 x 6 x 8 magnitude decay with an ellipsoidal object in noise (sigma 10 per channel)."""
+    rng = np.random.default_rng(seed)
+    shape = (24, 26, 6)
+    x, y, z = np.indices(shape)
+    obj = ((x - 12) / 8.0) ** 2 + ((y - 13) / 9.0) ** 2 + ((z - 2.5) / 4.0) ** 2 < 1
+    s = np.where(obj, 600.0, 0.0)[..., None] * np.exp(-TE / 0.03)
+    acc = np.zeros(s.shape)
+    for _ in range(coils):  # sum of squares over coils: chi with 2 * coils degrees of freedom
+        acc += (s / np.sqrt(coils) + rng.normal(0, 10.0, s.shape)) ** 2 + rng.normal(0, 10.0, s.shape) ** 2
+    m = np.sqrt(acc) if coils > 1 else rician(s, 10.0, rng)
+    if quantum:
+        m = np.round(m / quantum) * quantum  # integer storage with a slope
+    return (m * scale).astype(np.float32)
+
+
+@pytest.mark.parametrize("kind", ["plain", "quantised", "coils", "scaled"])
+def test_float32_samples_give_the_float64_estimate_to_the_bit(kind):
+    data = _series(3, coils=4 if kind == "coils" else 1, quantum=0.5 if kind == "quantised" else 0.0,
+                   scale=1e6 if kind == "scaled" else 1.0)
+    e32 = background_estimate(ArraySource(data), coils=None)
+    e64 = background_estimate(ArraySource(data.astype(np.float64)), coils=None)
+    assert e32.sigma == e64.sigma  # the same float, not approximately
+    assert (e32.coils, e32.n_voxels, e32.relative_precision) == (e64.coils, e64.n_voxels, e64.relative_precision)
+    assert e32.details == e64.details and e32.notes == e64.notes and e32.warnings == e64.warnings
+    # and the values are right: sigma 10 per channel (x 1e6 for the scaled series) within the estimate's precision
+    assert e32.sigma == pytest.approx(10.0 * (1e6 if kind == "scaled" else 1.0), rel=5 * e32.relative_precision)
+    assert e32.coils == (4 if kind == "coils" else 1)
+    if kind == "quantised":
+        assert e32.details["quantum"] == 0.5
+
+
+def test_median64_is_numpys_median_of_the_float64_values():
+    rng = np.random.default_rng(5)
+    for n in (1, 2, 7, 1000, 1001):
+        v = rng.rayleigh(3.0, n).astype(np.float32)
+        ref = float(np.median(v.astype(np.float64)))  # numpy's median of the exact float64 values
+        assert _median64(v) == ref
+        w = v.copy()
+        assert _median64(w, overwrite=True) == ref  # partitioned in place, same value
+        assert sorted(w.tolist()) == sorted(v.tolist())
+
+
+def test_moments_of_the_kept_values_without_copying_them():
+    rng = np.random.default_rng(9)
+    bg = rng.rayleigh(10.0, 150_001).astype(np.float32)
+    keep = bg <= np.float64(52.0)
+    assert _moments_coils(bg, 0.0, keep) == _moments_coils(bg[keep].astype(np.float64), 0.0)
+    # one coil: r = E[M^4] / E[M^2]^2 = 2 for the Rayleigh distribution (Constantinides et al. 1997), N = 1
+    n_eff, se = _moments_coils(bg, 0.0)
+    assert n_eff == pytest.approx(1.0, abs=4 * se)
+    # the delta-method covariance is numpy's np.cov of (x^2, x^4)
+    x2 = bg.astype(np.float64) ** 2
+    m2, m4 = x2.mean(), (x2 * x2).mean()
+    g = np.array([-2.0 * m4 / m2**3, 1.0 / m2**2])
+    se_ref = float(np.sqrt(g @ (np.cov(np.stack([x2, x2 * x2])) / x2.size) @ g))
+    assert se == pytest.approx(se_ref, rel=1e-12)
+
+
+def test_object_mask_keeps_the_object_peaks_not_the_peak_image():
+    data = _series(4)
+    src = ArraySource(data)
+    mask = object_mask(src)
+    peak = peak_image(data)
+    assert np.array_equal(src._object_peak, peak[mask])  # the object's peaks in C order
+    # the estimate from the cached peaks equals the one from a source that computes them from the data
+    a = background_estimate(src, obj=mask)
+    fresh = ArraySource(data)
+    b = background_estimate(fresh, obj=mask.copy())  # not the cached mask: peaks taken from the data
+    assert fresh._object_peak is None and a.sigma == b.sigma and a.details == b.details
