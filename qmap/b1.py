@@ -48,8 +48,9 @@ from .io.nifti import image_data, load_image, read_sidecar, resample_blocks
 if TYPE_CHECKING:
     from nibabel.spatialimages import SpatialImage
 
-__all__ = ["B1_METHODS", "B1_SCALES", "B1_UNITS", "B1ClosedForm", "afi_angle", "afi_b1", "afi_ratio", "b1_maps",
-           "b1_stderr_beside", "b1_units_scale", "dam_angle", "dam_b1", "load_b1_map", "load_b1_stderr"]
+__all__ = ["B1_METHODS", "B1_SCALES", "B1_UNITS", "B1ClosedForm", "B1OnGrid", "afi_angle", "afi_b1", "afi_ratio",
+           "b1_maps", "b1_stderr_beside", "b1_units_scale", "dam_angle", "dam_b1", "load_b1_map", "load_b1_stderr",
+           "open_b1_map", "open_b1_stderr"]
 
 #: plausible median of a relative B1 map (fraction)
 B1_MEDIAN_RANGE = (0.2, 5.0)
@@ -382,20 +383,49 @@ def load_b1_map(
     are normalised by the resampled coverage (value x valid and valid
     interpolated alike, a voxel kept where at least half of its
     interpolation weight is valid), so the edge of a masked B1 map is not
-    pulled towards 0.
+    pulled towards 0. :func:`open_b1_map` gives the same values slab by slab.
 
     Messages name these arguments (``b1=PATH``, ``b1_scale='percent'``); the command line shows
     its options (``--b1``, ``--b1-scale``, ``--b1-smooth``) instead.
+    """
+    grid, info = open_b1_map(b1, shape=shape, affine=affine, b1_scale=b1_scale, b1_smooth=b1_smooth)
+    b1 = grid.slab(0, grid.shape[2], dtype)
+    info["b1_grid_coverage"] = grid.coverage(int(np.count_nonzero(np.isfinite(b1))))
+    return b1, info
+
+
+def open_b1_map(
+    b1,
+    *,
+    shape: tuple,
+    affine: np.ndarray,
+    b1_scale: str | None = None,
+    b1_smooth: float | None = None,
+) -> tuple[B1OnGrid, dict]:
+    """:func:`load_b1_map` that resamples on demand: the map checked (and smoothed) on its own grid.
+
+    Parameters are those of :func:`load_b1_map`.
+
+    Returns
+    -------
+    grid : B1OnGrid
+        ``grid.slab(z0, z1)`` resamples the slices ``z0:z1`` of the data grid (the values
+        :func:`load_b1_map` gives there, bit for bit); ``grid.coverage(n)`` checks the overlap.
+    info : dict
+        For provenance (without ``b1_grid_coverage``: the caller counts the covered voxels).
     """
     path = Path(b1)
     smooth_fwhm_mm = b1_smooth
     img, data = _load_3d(path, "b1=", "one 3D relative B1 map (for AFI/DAM raw images run qmap b1 first and "
                                       "pass its TB1map)")
     scale, source = _b1_scale(path, b1_scale)
-    values = data / 100.0 if scale == "percent" else data.astype(float, copy=True)
+    grid_shape = data.shape
+    values = data / 100.0 if scale == "percent" else data  # (float64, read for this call; never written to)
+    del data
     nz = values[np.isfinite(values) & (values != 0)]
-    med = float(np.median(nz)) if nz.size else float("nan")
-    if not nz.size or not med > 0:
+    med = float(np.median(nz, overwrite_input=True)) if nz.size else float("nan")  # (nz is a copy)
+    del nz
+    if not med > 0:
         raise InputError(f"b1={path}: median value {med:g} is not positive; a relative B1 map holds values near 1 "
                          f"(fraction) or 100 (percent) -- check the file")
     lo, hi = B1_MEDIAN_RANGE
@@ -421,26 +451,80 @@ def load_b1_map(
         sw = ndimage.gaussian_filter(valid.astype(float), sig, mode="constant", cval=0.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             values = np.where(valid, sv / sw, np.nan)
-    b1 = _resample_valid(values, valid, src_affine, shape, affine, dtype)
-    covered = np.isfinite(b1)
-    if not covered.any():
-        raise InputError(
-            f"b1={path}: does not overlap the data (its field of view spans {_extent(src_affine, data.shape)} mm, "
-            f"the series {_extent(affine, shape)} mm in world coordinates); is it from another session or "
-            f"coordinate frame?"
-        )
+    grid = B1OnGrid(values, valid, src_affine, shape, affine,
+                    no_overlap=(f"b1={path}: does not overlap the data (its field of view spans "
+                                f"{_extent(src_affine, grid_shape)} mm, the series {_extent(affine, shape)} mm in "
+                                f"world coordinates); is it from another session or coordinate frame?"))
     info = {
         "b1": str(path.absolute()),
         "b1_scale": scale,
         "b1_scale_source": source,
         "b1_smooth_fwhm_mm": float(smooth_fwhm_mm) if smooth_fwhm_mm else None,
-        "b1_grid": [int(s) for s in data.shape],
+        "b1_grid": [int(s) for s in grid_shape],
         "b1_voxel_mm": [round(float(v), 4) for v in voxel_mm],
         "b1_median": med,
         "b1_resampling": "trilinear through the affines, normalised by coverage",
-        "b1_grid_coverage": float(covered.mean()),
     }
-    return b1, info
+    return grid, info
+
+
+class B1OnGrid:
+    """A map on its own grid (a B1 map or its standard error), resampled onto a data grid slab by slab.
+
+    Trilinear through the two affines, normalised by the resampled coverage of ``valid`` (a voxel is kept,
+    NaN elsewhere, where at least half of its interpolation weight is valid, so the edge of a masked map is
+    not pulled towards 0). The resampling is pointwise (each data voxel's source coordinates, then the
+    interpolation at them): :meth:`slab` gives each voxel the value the whole grid gives it, so a run that
+    resamples one slab at a time holds only that slab.
+
+    Parameters
+    ----------
+    values : (I, J, K) ndarray
+        The map on its grid (float; invalid voxels may hold anything).
+    valid : (I, J, K) bool ndarray
+    src_affine : (4, 4) ndarray
+        Its voxel-to-world affine.
+    shape, affine
+        The data grid (X, Y, Z) and its affine.
+    no_overlap : str
+        The message of :meth:`coverage` when no data voxel is covered.
+    """
+
+    def __init__(self, values: np.ndarray, valid: np.ndarray, src_affine: np.ndarray, shape: tuple,
+                 affine: np.ndarray, no_overlap: str = "the map does not overlap the data"):
+        valid = np.asarray(valid, bool)
+        self.values = np.where(valid, values, 0.0)  # (float64: as resample_blocks interpolates)
+        self.weights = valid.astype(float)
+        self.src_affine = np.asarray(src_affine, float)
+        self.shape = tuple(int(s) for s in shape[:3])
+        self.affine = np.asarray(affine, float)
+        self.no_overlap = no_overlap
+
+    def slab(self, z0: int, z1: int, dtype: np.dtype | type = float) -> np.ndarray:
+        """The map on the data grid's slices ``z0:z1``: (X, Y, z1 - z0), NaN where not covered."""
+        shape = (self.shape[0], self.shape[1], z1 - z0)
+        out = np.empty(int(np.prod(shape)), dtype)
+        # block by block (qmap.io.nifti.resample_blocks): never the coordinates or the two resampled images whole
+        blocks_v = resample_blocks(self.values, self.src_affine, self.shape, self.affine, order=1, cval=np.nan,
+                                   z=(z0, z1))
+        blocks_w = resample_blocks(self.weights, self.src_affine, self.shape, self.affine, order=1, cval=np.nan,
+                                   z=(z0, z1))
+        for (start, rv), (_, rw) in zip(blocks_v, blocks_w, strict=True):
+            with np.errstate(divide="ignore", invalid="ignore"):
+                out[start:start + rv.size] = np.where(rw >= 0.5, rv / rw, np.nan)
+        return out.reshape(shape)
+
+    def coverage(self, covered: int) -> float:
+        """The fraction of the data grid covered, from the number of voxels :meth:`slab` gave a value.
+
+        Raises
+        ------
+        InputError
+            No voxel is covered (the map is elsewhere in world coordinates).
+        """
+        if covered <= 0:
+            raise InputError(self.no_overlap)
+        return covered / float(np.prod(self.shape))
 
 
 def _load_3d(path: Path, argument: str, expected: str) -> tuple[SpatialImage, np.ndarray]:
@@ -452,23 +536,6 @@ def _load_3d(path: Path, argument: str, expected: str) -> tuple[SpatialImage, np
     if data.ndim != 3:
         raise InputError(f"{argument}{path}: has shape {data.shape}, expected {expected}")
     return img, data
-
-
-def _resample_valid(values: np.ndarray, valid: np.ndarray, src_affine: np.ndarray, shape: tuple,
-                    affine: np.ndarray, dtype=float) -> np.ndarray:
-    """Trilinear resampling of ``values`` onto a grid, normalised by the resampled coverage of ``valid``.
-
-    A voxel is kept (NaN elsewhere) where at least half of its interpolation weight is valid, so the edge of
-    a masked map is not pulled towards 0.
-    """
-    out = np.empty(int(np.prod(shape[:3])), dtype)
-    # block by block (qmap.io.nifti.resample_blocks): never the coordinates or the two resampled images whole
-    blocks_v = resample_blocks(np.where(valid, values, 0.0), src_affine, shape, affine, order=1, cval=np.nan)
-    blocks_w = resample_blocks(valid.astype(float), src_affine, shape, affine, order=1, cval=np.nan)
-    for (start, rv), (_, rw) in zip(blocks_v, blocks_w, strict=True):
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out[start:start + rv.size] = np.where(rw >= 0.5, rv / rw, np.nan)
-    return out.reshape(tuple(int(s) for s in shape[:3]))
 
 
 def b1_stderr_beside(b1_path) -> Path | None:
@@ -499,7 +566,14 @@ def load_b1_stderr(b1_se, *, shape: tuple, affine: np.ndarray, b1_scale: str = "
         For provenance.
 
     Messages name the argument (``b1_se=PATH``; on the command line ``--b1-stderr``).
+    :func:`open_b1_stderr` gives the same values slab by slab.
     """
+    grid, info = open_b1_stderr(b1_se, shape=shape, affine=affine, b1_scale=b1_scale)
+    return grid.slab(0, grid.shape[2]), info
+
+
+def open_b1_stderr(b1_se, *, shape: tuple, affine: np.ndarray, b1_scale: str = "fraction") -> tuple[B1OnGrid, dict]:
+    """:func:`load_b1_stderr` that resamples on demand (:class:`B1OnGrid`; same parameters and checks)."""
     path = Path(b1_se)
     scale = b1_scale
     img, data = _load_3d(path, "b1_se=", "one 3D standard-error map")
@@ -513,8 +587,8 @@ def load_b1_stderr(b1_se, *, shape: tuple, affine: np.ndarray, b1_scale: str = "
         raise InputError(f"b1_se={path}: median {med:.3g} ({scale}) is not a plausible standard error of a "
                          f"relative B1 map (expected about 0.005-0.1); is it the B1 map itself, or percent?")
     src_affine = np.asarray(img.affine, float)
-    se = _resample_valid(values, valid, src_affine, shape, affine)
-    return se, {"b1_stderr_median": med, "b1_stderr_resampling": "trilinear through the affines"}
+    grid = B1OnGrid(values, valid, src_affine, shape, affine)
+    return grid, {"b1_stderr_median": med, "b1_stderr_resampling": "trilinear through the affines"}
 
 
 #: sidecar ``Units`` of a B1 map (lower case, stripped) -> its scale

@@ -32,6 +32,10 @@ from .streaming import MapStream, StreamedMaps
 #: voxels per slab of a run whose series is in memory: its maps are fitted and written one slab at a time
 #: (peak memory: the series, the slab's maps and the fit's work arrays; results do not depend on it)
 AUTO_SLAB_VOXELS = 1 << 17
+#: voxels per slab (at most) of a run that reads its series slab by slab in file order (``slab_lazy``: one open
+#: stream, nothing read twice): smaller slabs hold fewer work arrays (1M-voxel t1-mp2rage --b1: peak RSS above
+#: the imports about 30 MB in 131k-voxel slabs, 16 MB in 32k-voxel slabs, the same time)
+LAZY_SLAB_VOXELS = 1 << 15
 
 __all__ = ["QMRI_SUFFIXES", "RESIDUAL_FALLBACK", "CommonOptions", "PreparedRun", "RunReport", "Slab",
            "check_outputs_free", "check_signal", "default_prefix", "prepare_run", "resolve_mask", "resolve_sigma",
@@ -502,8 +506,9 @@ class PreparedRun:
     t0: float
     extra_outputs: list = field(default_factory=list)  # e.g. the --sigma local noise map
     noise: NoiseFloor | None = None  # the noise floor as resolved (coils from the background)
-    #: a lazy series whose reader reads any z range cheaply (e.g. one 3D image): fitted and written in
-    #: :data:`AUTO_SLAB_VOXELS` slabs (at least 1/16 of the volume each) also without ``--max-memory``
+    #: a lazy series whose reader reads the z ranges of a pass in file order cheaply (e.g. one 3D image through
+    #: :class:`qmap.io.nifti.SlabReader`): fitted and written in slabs of at most :data:`AUTO_SLAB_VOXELS` and
+    #: :data:`LAZY_SLAB_VOXELS` voxels also without ``--max-memory``
     slab_lazy: bool = False
 
     @property
@@ -514,13 +519,13 @@ class PreparedRun:
     @property
     def fit_slabs(self) -> list[tuple[int, int]]:
         """The z ranges fitted and written one at a time: ``--max-memory`` slabs for a series read in slabs,
-        else slabs of about :data:`AUTO_SLAB_VOXELS` voxels (one range on a Dask cluster)."""
+        else slabs of about :data:`AUTO_SLAB_VOXELS` voxels (:data:`LAZY_SLAB_VOXELS` for ``slab_lazy``; one range
+        on a Dask cluster)."""
         if self.common.scheduler or (self.series.lazy and not (self.slab_lazy and self.common.max_memory is None)):
             return self.slabs
         nx, ny, nz = self.series.shape
-        k = max(1, AUTO_SLAB_VOXELS // max(1, nx * ny))
-        if self.series.lazy:  # each slab is read anew from the file: not more than 16 reads
-            k = max(k, -(-nz // 16))
+        voxels = min(AUTO_SLAB_VOXELS, LAZY_SLAB_VOXELS) if self.slab_lazy else AUTO_SLAB_VOXELS
+        k = max(1, voxels // max(1, nx * ny))
         return [(z, min(z + k, nz)) for z in range(0, nz, k)]
 
     def for_slabs(self, fn, slabs: list[tuple[int, int]] | None = None, progress=None) -> list:

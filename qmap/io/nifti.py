@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
 import gzip
 import json
 import re
+import weakref
 import zlib
 from pathlib import Path
+from typing import Any
 
 import nibabel as nib
 import numpy as np
@@ -15,6 +18,7 @@ from ..errors import InputError
 from . import gz as _gz  # noqa: F401  (registers ISA-L as nibabel's .gz opener)
 
 __all__ = [
+    "SlabReader",
     "check_same_grid",
     "image_data",
     "load_image",
@@ -191,23 +195,31 @@ def resample_to_grid(
 
 
 def resample_blocks(data: np.ndarray, src_affine: np.ndarray, dst_shape: tuple[int, ...], dst_affine: np.ndarray, *,
-                    order: int = 1, cval: float = np.nan):
+                    order: int = 1, cval: float = np.nan, z: tuple[int, int] | None = None):
     """:func:`resample_to_grid` (``order`` >= 1) block by block: yields ``(start, values)``.
 
     ``values`` (float64, flat) are the resampled image's C-order elements ``start:start + values.size``: whole
     planes of the first axis, about :data:`RESAMPLE_BLOCK` voxels a block, so that the coordinates
     ((3, voxels) float64, 24 bytes a voxel) are never those of the whole grid. The values are the same as
     those of one call on the whole grid.
+
+    With ``z = (z0, z1)`` only the destination slices ``z0:z1`` are resampled: the blocks are then the C-order
+    elements of the (X, Y, z1 - z0) slab, each value the same as that voxel's in the whole grid (the
+    resampling is pointwise: each voxel's source coordinates, then trilinear interpolation at them).
     """
     data = np.asarray(data, float)
     if data.ndim != 3:
         raise InputError(f"expected a 3D image to resample, got shape {data.shape}")
     dst_shape = tuple(int(s) for s in dst_shape[:3])
+    z0, z1 = (0, dst_shape[2]) if z is None else (int(z[0]), int(z[1]))
+    if not 0 <= z0 <= z1 <= dst_shape[2]:
+        raise ValueError(f"z={z}: not a range of slices of a grid of {dst_shape[2]}")
     mat = np.linalg.inv(np.asarray(src_affine, float)) @ np.asarray(dst_affine, float)
-    plane = dst_shape[1] * dst_shape[2]
+    plane = dst_shape[1] * (z1 - z0)
     step = max(1, RESAMPLE_BLOCK // max(1, plane))
     for x0 in range(0, dst_shape[0], step):
-        yield x0 * plane, _resample_block(data, mat, dst_shape, x0, min(x0 + step, dst_shape[0]), order, cval)
+        yield x0 * plane, _resample_block(data, mat, dst_shape, x0, min(x0 + step, dst_shape[0]), order, cval,
+                                          z0, z1)
 
 
 #: destination voxels resampled at a time by :func:`resample_to_grid` (its coordinates: 24 bytes a voxel)
@@ -215,10 +227,12 @@ RESAMPLE_BLOCK = 1 << 18
 
 
 def _resample_block(data: np.ndarray, mat: np.ndarray, dst_shape: tuple[int, ...], x0: int, x1: int,
-                    order: int, cval: float) -> np.ndarray:
-    """The destination planes ``x0:x1`` (first axis) of :func:`resample_to_grid`, flat in C order."""
-    idx = np.indices((x1 - x0, dst_shape[1], dst_shape[2]), dtype=float)
+                    order: int, cval: float, z0: int = 0, z1: int | None = None) -> np.ndarray:
+    """The destination voxels ``[x0:x1, :, z0:z1]`` of :func:`resample_to_grid`, flat in C order."""
+    z1 = dst_shape[2] if z1 is None else z1
+    idx = np.indices((x1 - x0, dst_shape[1], z1 - z0), dtype=float)
     idx[0] += x0
+    idx[2] += z0
     idx = idx.reshape(3, -1)
     src = mat[:3, :3] @ idx
     del idx
@@ -239,3 +253,116 @@ def _resample_block(data: np.ndarray, mat: np.ndarray, dst_shape: tuple[int, ...
             out = out.astype(float)
         out[~inside] = cval
     return out
+
+
+class SlabReader:
+    """The z slabs of one NIfTI image, read in file order through one open gzip stream.
+
+    nibabel reads each slice range of a ``.nii.gz`` image by opening the file and decompressing it from the
+    start up to the range: reading a volume in ``n`` slabs decompresses it about ``n / 2`` times. This reader
+    keeps the stream open between calls of :meth:`read` and decompresses forward only, as long as the slabs
+    come in file order (a slab before the last one read opens the file again). The values are nibabel's
+    (the same :class:`nibabel.arrayproxy.ArrayProxy` slicing and scaling -- ``scl_slope`` / ``scl_inter``,
+    integer storage -- on the open stream). Reading the last slice closes the stream, which checks the gzip
+    CRC-32 and length (:mod:`qmap.io.gz`): a corrupt or truncated file raises as it does with nibabel.
+    Uncompressed files are read through the image's own proxy (a seek is cheap there).
+
+    Parameters
+    ----------
+    img : nibabel image
+        A NIfTI image loaded from a file (:func:`load_image`), 3D or with trailing axes of length 1.
+
+    Examples
+    --------
+    ``reader.read(z0, z1)`` is ``np.asanyarray(img.dataobj[:, :, z0:z1])`` (with ``[..., 0]`` for each
+    trailing axis), decompressed once for a pass over the slabs in z order.
+    """
+
+    def __init__(self, img) -> None:
+        from nibabel.arrayproxy import ArrayProxy
+
+        self.img = img
+        proxy = img.dataobj
+        self.nz = int(img.shape[2]) if len(img.shape) > 2 else 1
+        self._extra = (0,) * max(0, len(img.shape) - 3)  # trailing axes of length 1
+        file_like = getattr(proxy, "file_like", None)
+        self._gz = (type(proxy) is ArrayProxy and isinstance(file_like, str) and file_like.endswith(".gz"))
+        self._spec: tuple = ()
+        self._order = "F"
+        self._path = ""
+        if self._gz:
+            self._spec = (tuple(proxy.shape), proxy.dtype, proxy.offset, proxy.slope, proxy.inter)
+            self._order = proxy.order
+            self._path = str(file_like)
+        self._stream: tuple[Any, Any] | None = None  # (open gzip file, ArrayProxy on it)
+        self._next = 0  # the slice the open stream is at
+        self._finalizer: weakref.finalize | None = None
+
+    def read(self, z0: int, z1: int) -> np.ndarray:
+        """The slices ``z0:z1`` as nibabel gives them (scaled; shape (X, Y, z1 - z0)).
+
+        Raises what nibabel raises for a corrupt file (``OSError``, ``EOFError``, ``zlib.error``, ...;
+        :func:`image_data` turns them into one clear :class:`~qmap.errors.InputError`).
+        """
+        slicer = (slice(None), slice(None), slice(z0, z1), *self._extra)
+        if not self._gz:
+            return np.asanyarray(self.img.dataobj[slicer])
+        if self._stream is None or z0 < self._next:
+            self._reopen()
+        assert self._stream is not None
+        try:
+            raw = np.asanyarray(self._stream[1][slicer])
+            self._next = z1
+            if z1 >= self.nz:  # the whole data block was read: closing checks the CRC-32 and length
+                self.close()
+        except BaseException:
+            self._drop()
+            raise
+        return raw
+
+    def _reopen(self) -> None:
+        from nibabel.arrayproxy import ArrayProxy
+
+        from .gz import gzip_open
+
+        self._drop()
+        fh = gzip_open(self._path, "rb")
+        self._stream = (fh, ArrayProxy(fh, self._spec, mmap=False, order=self._order))
+        self._next = 0
+        # a reader dropped before its last slab (an error elsewhere) closes its file without a word
+        self._finalizer = weakref.finalize(self, _close_quietly, fh)
+
+    def close(self) -> None:
+        """Close the stream (after the last slice: checks the gzip CRC-32 and length; raises on a mismatch)."""
+        if self._stream is not None:
+            fh = self._stream[0]
+            self._stream = None
+            if self._finalizer is not None:
+                self._finalizer.detach()
+                self._finalizer = None
+            try:
+                fh.close()
+            finally:
+                if not fh.closed:
+                    _close_quietly(fh)
+
+    def _drop(self) -> None:
+        """Close the stream without checking anything (a rewind, or after an error)."""
+        if self._stream is not None:
+            fh = self._stream[0]
+            self._stream = None
+            if self._finalizer is not None:
+                self._finalizer.detach()
+                self._finalizer = None
+            _close_quietly(fh)
+
+
+def _close_quietly(fh) -> None:
+    """Close a gzip file opened for reading and its file, whatever state it is in (no CRC check)."""
+    raw = getattr(fh, "myfileobj", None)
+    if hasattr(fh, "_isize"):
+        fh._isize = -1  # qmap.io.gz: no check of the rest of the stream
+    with contextlib.suppress(Exception):  # closing after an error: the first error is the one reported
+        fh.close()
+    if raw is not None and not raw.closed:
+        raw.close()

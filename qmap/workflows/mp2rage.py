@@ -21,15 +21,18 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TypedDict, Unpack
+from typing import TYPE_CHECKING, TypedDict, Unpack
 
 import numpy as np
 from numpy.typing import ArrayLike
 
+if TYPE_CHECKING:
+    from ..b1 import B1OnGrid
+
 from .. import status as st
 from ..docstrings import shared_parameters
 from ..errors import InputError, UsageError, warn
-from ..io.nifti import check_same_grid, image_data, load_image, read_sidecar
+from ..io.nifti import SlabReader, check_same_grid, image_data, load_image, read_sidecar
 from ..io.series import Series, resolve_parameter
 from ..maps import MapSet
 from ..models.mp2rage import (
@@ -338,18 +341,23 @@ def lookup_for(protocol: MP2RAGEProtocol, b1=None) -> Mp2rageLookup:
     return Mp2rageLookup(protocol, b1_range=(lo, hi))
 
 
-def _b1_range(b1: np.ndarray, select: np.ndarray) -> tuple[float, float]:
-    """The B1 range :func:`lookup_for` takes from the finite values of ``b1[select]``, plane by plane.
+def _b1_range(b1: B1OnGrid, select: np.ndarray, slabs: list[tuple[int, int]]) -> tuple[tuple[float, float], int]:
+    """The B1 range :func:`lookup_for` takes from the finite values of ``b1`` at ``select``, and the number of
+    data voxels the map covers, resampling ``b1`` one slab at a time.
 
-    (The same range as ``lookup_for(protocol, b1[select & finite])``, without that whole copy.)
+    (The same range as ``lookup_for(protocol, b1_whole[select & finite])``, without the whole map.)
     """
     lo, hi = np.inf, -np.inf
-    for z in range(b1.shape[2]):
-        b = b1[:, :, z][select[:, :, z]].astype(float)
-        b = b[np.isfinite(b) & (b >= B1_TABLE_RANGE[0]) & (b <= B1_TABLE_RANGE[1])]
+    covered = 0
+    for z0, z1 in slabs:
+        part = b1.slab(z0, z1, np.float32)
+        ok = np.isfinite(part)
+        covered += int(np.count_nonzero(ok))
+        b = part[select[:, :, z0:z1] & ok].astype(float)
+        b = b[(b >= B1_TABLE_RANGE[0]) & (b <= B1_TABLE_RANGE[1])]
         if b.size:
             lo, hi = min(lo, float(b.min())), max(hi, float(b.max()))
-    return (lo, hi) if np.isfinite(lo) else (1.0, 1.0)
+    return ((lo, hi) if np.isfinite(lo) else (1.0, 1.0)), covered
 
 
 def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma, b1_se=None):
@@ -407,9 +415,10 @@ def _m0_and_errors(t1, b1, protocol, inv1, inv2, sigma, b1_se=None):
     return {"M0": m0, "rmse": rmse}, se
 
 
-def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[np.ndarray | None, dict, Path | None]:
-    """The B1 map's standard error on the data grid for ``--b1-stderr auto|none|FILE`` (as ``t1-vfa``)."""
-    from ..b1 import b1_stderr_beside, load_b1_stderr
+def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[B1OnGrid | None, dict, Path | None]:
+    """The B1 map's standard error for ``--b1-stderr auto|none|FILE`` (as ``t1-vfa``), resampled onto the data
+    grid slab by slab."""
+    from ..b1 import b1_stderr_beside, open_b1_stderr
 
     spec = "auto" if spec is None else str(spec)
     if spec == "none":
@@ -418,7 +427,7 @@ def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[np.ndarray | None, 
     if path is None:
         return None, {"propagated": False, "reason": "no standard-error map beside the B1 map"}, None
     try:
-        se, info = load_b1_stderr(path, shape=shape, affine=affine, b1_scale=scale)
+        se, info = open_b1_stderr(path, shape=shape, affine=affine, b1_scale=scale)
     except InputError as exc:
         if spec != "auto":
             raise
@@ -430,13 +439,12 @@ def _b1_stderr(b1, spec, shape, affine, scale: str) -> tuple[np.ndarray | None, 
 class _Slices:
     """The slices ``z0:z1`` of a 3D image, read when ``dataobj`` is touched (for :func:`image_data`)."""
 
-    def __init__(self, img, z0: int, z1: int):
-        self.img, self.z0, self.z1 = img, z0, z1
+    def __init__(self, reader: SlabReader, z0: int, z1: int):
+        self.reader, self.z0, self.z1 = reader, z0, z1
 
     @property
     def dataobj(self):
-        extra = (0,) * (len(self.img.shape) - 3)  # trailing axes of length 1
-        return self.img.dataobj[(slice(None), slice(None), slice(self.z0, self.z1), *extra)]
+        return self.reader.read(self.z0, self.z1)
 
 
 def _open_3d(path, what: str):
@@ -449,10 +457,13 @@ def _open_3d(path, what: str):
     return img
 
 
-def _read_3d(img, path, z0: int, z1: int, *, allow_complex: bool = False) -> np.ndarray:
-    """The slices ``z0:z1`` of a 3D image as float32 (complex64), scaling applied."""
-    data = image_data(_Slices(img, z0, z1), path, dtype=np.float32, allow_complex=allow_complex)
-    return data.reshape(img.shape[:2] + (z1 - z0,))
+def _read_3d(reader: SlabReader, path, z0: int, z1: int, *, allow_complex: bool = False) -> np.ndarray:
+    """The slices ``z0:z1`` of a 3D image as float32 (complex64), scaling applied.
+
+    ``reader`` (one per file) decompresses a ``.nii.gz`` once for the slabs of a pass in z order.
+    """
+    data = image_data(_Slices(reader, z0, z1), path, dtype=np.float32, allow_complex=allow_complex)
+    return data.reshape(reader.img.shape[:2] + (z1 - z0,))
 
 
 class _Inversion:
@@ -462,23 +473,26 @@ class _Inversion:
         """``arg``: the argument that gave the image (``inv1`` / ``inv2``; its phase is ``{arg}_phase``)."""
         self.path, self.phase, self.arg = path, phase, arg
         self.img = _open_3d(path, f"{arg}=")
+        self.reader = SlabReader(self.img)
         check_same_grid(ref_img.shape, ref_img.affine, self.img.shape, self.img.affine, ref_name="the UNI image",
                         name=f"{arg}={path}")
         self.pimg = None
+        self.preader: SlabReader | None = None
         if phase is not None:
             if self.img.get_data_dtype().kind == "c":
                 raise UsageError(f"{arg}_phase=: {path} already holds complex data; give a complex image or a "
                                  f"magnitude with its phase, not both")
             self.pimg = _open_3d(phase, f"{arg}_phase=")
+            self.preader = SlabReader(self.pimg)
             check_same_grid(ref_img.shape, ref_img.affine, self.pimg.shape, self.pimg.affine,
                             ref_name="the UNI image", name=f"{arg}_phase={phase}")
 
     def magnitude(self, z0: int, z1: int) -> np.ndarray:
         """(X, Y, z1 - z0) float32 magnitudes of the slices ``z0:z1``."""
-        data = _read_3d(self.img, self.path, z0, z1, allow_complex=True)
+        data = _read_3d(self.reader, self.path, z0, z1, allow_complex=True)
         arg = self.arg
-        if self.pimg is not None:
-            ph = _read_3d(self.pimg, self.phase, z0, z1)
+        if self.preader is not None:
+            ph = _read_3d(self.preader, self.phase, z0, z1)
             peak = float(np.nanmax(np.abs(ph))) if np.isfinite(ph).any() else 0.0
             if peak > 3.1416:
                 raise InputError(f"{arg}_phase={self.phase}: values reach {peak:g}, expected radians in [-pi, pi]; "
@@ -569,8 +583,10 @@ def run_t1_mp2rage(
     acq = {"acquisition": protocol.as_acquisition(), "sources": sources, "affine": affine, "header": img.header}
     files = [upath] + [Path(p).expanduser().absolute() for p in (inv1, inv2, inv1_phase, inv2_phase) if p is not None]
 
+    uni_reader = SlabReader(img)
+
     def read_uni(z0: int, z1: int) -> np.ndarray:
-        return _read_3d(img, upath, z0, z1)[..., None]
+        return _read_3d(uni_reader, upath, z0, z1)[..., None]
 
     uni_series = _Images(_data=None, _proxies=[], paths=files, _shape4=shape + (1,), reader=read_uni, **acq)
     # UNI's encoding (float or 12-bit) from the range of the whole image, read slab by slab; a stored 0 is a
@@ -615,6 +631,7 @@ def run_t1_mp2rage(
                       "auto (object of the inversion images: 0.5 x Otsu threshold of their maximum, opened, holes "
                       "filled)")
     run.slab_lazy = True  # UNI (and the inversion images) are read, inverted and written slab by slab
+    del auto  # (the mask is run.mask)
     notes = run.notes
     noise_info = None
     if inversions is not None:
@@ -627,14 +644,21 @@ def run_t1_mp2rage(
         if sinfo.get("noise_map"):
             noise_info["noise_map"] = sinfo["noise_map"]
     extra = run.inputs
-    b1_map: np.ndarray | None = None
-    b1_se: np.ndarray | None = None
+    # one lookup table for the whole volume (its B1 range from every voxel to invert), then slab by slab
+    slabs = run.fit_slabs
+    b1_grid: B1OnGrid | None = None
+    b1_se: B1OnGrid | None = None
     b1_info: dict = {"b1": None}
+    b1_range = (1.0, 1.0)
     if b1 is not None:
-        from ..b1 import load_b1_map
+        from ..b1 import open_b1_map
 
-        b1_map, b1_info = load_b1_map(b1, shape=shape, affine=affine, b1_scale=b1_scale, b1_smooth=b1_smooth,
-                                      dtype=np.float32)
+        # the B1 map stays on its own grid: resampled onto the data slab by slab (each voxel's value the same
+        # as when the whole grid is resampled), once here for its coverage and the lookup's B1 range, once
+        # in the slab's inversion (never whole on the data grid)
+        b1_grid, b1_info = open_b1_map(b1, shape=shape, affine=affine, b1_scale=b1_scale, b1_smooth=b1_smooth)
+        b1_range, covered = _b1_range(b1_grid, run.mask & finite, slabs)
+        b1_info["b1_grid_coverage"] = b1_grid.coverage(covered)
         extra.append(Path(b1).expanduser().absolute())
         b1_desc = (f"B1 correction applied from {Path(b1).name} ({b1_info['b1_scale']}, "
                    f"{'x'.join(map(str, b1_info['b1_grid']))} grid resampled onto the data)")
@@ -648,19 +672,17 @@ def run_t1_mp2rage(
             raise UsageError("b1_se=FILE: standard errors need the inversion images (inv1= / inv2=)")
     else:
         b1_desc = NO_B1_NOTE
-    # one lookup table for the whole volume (its B1 range from every voxel to invert), then slab by slab
-    to_invert = run.mask & finite
-    # the B1 map is held as float32 only: fit_t1_mp2rage reads it as float32 in any case
-    b32 = None if b1_map is None else np.asarray(b1_map, np.float32)
-    lut = lookup_for(protocol) if b32 is None else Mp2rageLookup(protocol, b1_range=_b1_range(b32, to_invert))
+    del finite
+    lut = lookup_for(protocol) if b1_grid is None else Mp2rageLookup(protocol, b1_range=b1_range)
 
     def one(slab: Slab) -> MapSet:
-        z = slice(slab.z0, slab.z1)
-        u = _decode(read_uni(slab.z0, slab.z1)[..., 0], encoding)
+        # the slab's UNI: the run's series itself without inversion images (read once, in file order)
+        u = _decode((slab.data if inversions is None else read_uni(slab.z0, slab.z1))[..., 0], encoding)
         mags = (None, None) if inversions is None else (slab.data[..., 0], slab.data[..., 1])
-        return fit_t1_mp2rage(u, protocol, b1=None if b32 is None else b32[:, :, z], mask=slab.mask,
-                              inv1=mags[0], inv2=mags[1], sigma=slab.sigma,
-                              b1_se=None if b1_se is None else np.asarray(b1_se)[:, :, z], lut=lut)
+        # B1 as float32 (the precision fit_t1_mp2rage computes in), its standard error as float64
+        return fit_t1_mp2rage(u, protocol, b1=None if b1_grid is None else b1_grid.slab(slab.z0, slab.z1, np.float32),
+                              mask=slab.mask, inv1=mags[0], inv2=mags[1], sigma=slab.sigma,
+                              b1_se=None if b1_se is None else b1_se.slab(slab.z0, slab.z1), lut=lut)
 
     maps = run.map_slabs(one)
     delays = {k: round(v, 6) for k, v in protocol.delays().items()}
