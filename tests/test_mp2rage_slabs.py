@@ -305,3 +305,19 @@ def test_corrupt_input_still_exits_2(large_set, tmp_path, capsys, damage, which)
         assert snapshot(tmp_path) == before
     with gzip.open(bad) as fh, pytest.raises((OSError, EOFError)):  # the standard library agrees it is damaged
         fh.read()
+
+
+def test_lookup_table_does_not_depend_on_rows_at_a_time(monkeypatch):
+    """Mp2rageLookup computes UNI over its T1 grid a few B1 rows at a time (memory): the table is the same,
+    bit for bit, computed one row at a time or all rows at once, over a wide B1 range."""
+    import qmap.models.mp2rage as model
+
+    tables = []
+    for rows in (1, 3, 10**6):
+        monkeypatch.setattr(model, "_B1_ROWS", rows)
+        lut = model.Mp2rageLookup(PROTO, b1_range=(0.37, 1.93))
+        tables.append((lut.log_t1, lut.limits))
+    assert tables[0][0].shape == (157, model.UNI_POINTS)  # B1 0.37..1.93 in steps of 0.01
+    for log_t1, limits in tables[1:]:
+        assert np.array_equal(log_t1, tables[0][0], equal_nan=True)
+        assert np.array_equal(limits, tables[0][1], equal_nan=True)

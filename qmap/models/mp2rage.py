@@ -318,6 +318,8 @@ def monotonic_run(values: NDArray[np.float64]) -> tuple[int, int]:
 T1_POINTS = 1500
 UNI_POINTS = 2001
 B1_STEP = 0.01
+#: B1 rows of the lookup table computed at a time (Mp2rageLookup)
+_B1_ROWS = 8
 
 
 class Mp2rageLookup:
@@ -364,15 +366,19 @@ class Mp2rageLookup:
             k0, k1 = int(np.floor(lo / B1_STEP)), int(np.ceil(hi / B1_STEP))
             self.b1 = np.arange(max(k0, 1), max(k1, k0 + 1) + 1) * B1_STEP
         t1 = np.geomspace(t1_range[0], t1_range[1], T1_POINTS)
-        u = mp2rage_uni(t1[None, :], protocol, self.b1[:, None])
         self.uni = np.linspace(-0.5, 0.5, UNI_POINTS)
         self.log_t1 = np.full((self.b1.size, UNI_POINTS), np.nan)
         self.limits = np.full((self.b1.size, 2), np.nan)
+        u = np.empty((0, T1_POINTS))
         for i in range(self.b1.size):
-            i0, i1 = monotonic_run(u[i])
+            if i % _B1_ROWS == 0:
+                # UNI over the T1 grid, a few B1 rows at a time (the model's work arrays are rows x T1_POINTS;
+                # each entry is computed element by element, the same as for the whole table)
+                u = mp2rage_uni(t1[None, :], protocol, self.b1[i:i + _B1_ROWS, None])
+            i0, i1 = monotonic_run(u[i % _B1_ROWS])
             if i1 <= i0:
                 continue
-            uu, lt = u[i, i0 : i1 + 1], np.log(t1[i0 : i1 + 1])
+            uu, lt = u[i % _B1_ROWS, i0 : i1 + 1], np.log(t1[i0 : i1 + 1])
             if uu[-1] < uu[0]:
                 uu, lt = uu[::-1], lt[::-1]
             inside = (self.uni >= uu[0]) & (self.uni <= uu[-1])
