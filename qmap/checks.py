@@ -120,7 +120,10 @@ def series_profile(series, mask: np.ndarray, max_bytes: float | None = None) -> 
     """
     sel = np.asarray(mask, bool)
     k = max(1, -(-int(sel.sum()) // PROFILE_VOXELS))
-    keep = sel & (np.arange(sel.size).reshape(sel.shape) % k == 0)
+    stride = np.zeros(sel.size, bool)  # every k-th flat index (no volume of int64 indices)
+    stride[::k] = True
+    keep = sel & stride.reshape(sel.shape)
+    del stride
     rows = []
     slabs = series.slabs(max_bytes)
     if len(slabs) > PROFILE_SLABS:  # a series read from disk: the slabs richest in object voxels only

@@ -116,6 +116,30 @@ def test_maps_do_not_depend_on_the_slab_size_or_the_writing_thread(noise, series
             assert header == ref[name][1], (label, name)
 
 
+def test_a_series_of_few_volumes_is_fitted_in_smaller_slabs_with_the_same_maps(tmp_path, monkeypatch):
+    # fewer volumes than FIT_SLAB_VOLUMES: slabs shrink in proportion (at most to half), the maps do not change
+    data, te, *_ = decay_phantom(shape=(24, 20, 9), te=[0.004, 0.012, 0.024, 0.040])
+    path = write_nifti(tmp_path / "sub-01_MEGRE.nii.gz", data, affine=AFFINE, sidecar={"EchoTime": te.tolist()})
+    seen = []
+    spied = pipeline_mod.PreparedRun.map_slabs
+
+    def spy(self, fn, **kw):
+        seen.append(kw.get("slabs"))
+        return spied(self, fn, **kw)
+
+    monkeypatch.setattr(pipeline_mod.PreparedRun, "map_slabs", spy)
+    runs = {}
+    for label, voxels in (("one", 1 << 30), ("slabs", 4 * 24 * 20)):
+        monkeypatch.setattr(pipeline_mod, "AUTO_SLAB_VOXELS", voxels)
+        assert main(["t2star", str(path), "-o", str(tmp_path / label), "-q", "-j", "1"]) == 0
+        runs[label] = _maps(tmp_path / label)
+    assert seen[0] == [(0, 9)]
+    assert seen[1] == [(0, 2), (2, 4), (4, 6), (6, 8), (8, 9)]  # 4 volumes of 8: half of 4 slices a slab
+    for name, (arr, header) in runs["slabs"].items():
+        assert np.array_equal(arr, runs["one"][name][0], equal_nan=True), name
+        assert header == runs["one"][name][1], name
+
+
 def test_run_report_reads_the_maps_from_the_files(series, tmp_path, monkeypatch):
     from qmap.pipeline import CommonOptions
     from qmap.streaming import StreamedMaps
