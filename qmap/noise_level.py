@@ -244,13 +244,51 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
 def fill_holes(mask: np.ndarray) -> np.ndarray:
     """``mask`` with every region of False not 6-connected to the array's faces set True, (X, Y, Z) bool.
 
-    The same as ``scipy.ndimage.binary_fill_holes(mask)`` (its default cross): the background is
-    labelled once (``scipy.ndimage.label``) and the components touching a face are kept as
-    background, about twice as fast as the iterated dilation of ``binary_fill_holes``.
+    The same as ``scipy.ndimage.binary_fill_holes(mask)`` (its default cross; tested equal), without
+    scipy (whose import costs a fitting run more start-up time than this takes). The background
+    reached from the faces grows along whole runs of background voxels, one axis after another,
+    until it stops changing: a run (a line of consecutive background voxels along an axis) touched
+    by the reached set is reached entirely, which is 6-connectivity exactly. Each sweep costs a few
+    milliseconds on 1M voxels; a head-shaped mask needs a handful.
     """
+    mask = np.asarray(mask, dtype=bool)
+    if mask.ndim == 0 or mask.size == 0:
+        return mask.copy()
+    bg = ~mask
+    reached = np.zeros_like(bg)
+    for axis in range(bg.ndim):
+        for k in (0, -1):
+            idx: list[slice | int] = [slice(None)] * bg.ndim
+            idx[axis] = k
+            reached[tuple(idx)] = bg[tuple(idx)]
+    runs = [_background_runs(bg, axis) for axis in range(bg.ndim)]
+    stable = 0
+    axis = 0
+    for _ in range(FILL_SWEEPS):
+        if stable == bg.ndim:  # a sweep along every axis in turn has added nothing
+            return ~reached
+        ids, n = runs[axis]
+        hit = np.zeros(n + 1, bool)
+        hit[ids[reached]] = True
+        hit[0] = False  # id 0: not background
+        grown = hit[ids]
+        if np.array_equal(grown, reached):
+            stable += 1
+        else:
+            stable = 1
+            reached = grown
+        axis = (axis + 1) % bg.ndim
+    return _fill_holes_by_labels(mask)  # a maze-like background: labelling is cheaper than more sweeps
+
+
+#: sweeps of :func:`fill_holes` before it labels the background instead (a head-shaped mask needs 4-8)
+FILL_SWEEPS = 15
+
+
+def _fill_holes_by_labels(mask: np.ndarray) -> np.ndarray:
+    """:func:`fill_holes` by labelling the background's 6-connected components (``scipy.ndimage.label``)."""
     from scipy import ndimage  # imported on use (start-up time)
 
-    mask = np.asarray(mask, dtype=bool)
     lab, n = ndimage.label(~mask)
     outside = np.zeros(n + 1, bool)
     outside[0] = True  # label 0: the mask itself
@@ -258,6 +296,21 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
         for k in (0, -1):
             outside[np.take(lab, k, axis=axis).ravel()] = True
     return mask | ~outside[lab]
+
+
+def _background_runs(bg: np.ndarray, axis: int) -> tuple[np.ndarray, int]:
+    """A label per voxel of ``bg`` naming its run of consecutive True voxels along ``axis`` (0 off ``bg``)."""
+    start = bg.copy()
+    lo: list[slice] = [slice(None)] * bg.ndim
+    hi: list[slice] = [slice(None)] * bg.ndim
+    lo[axis], hi[axis] = slice(None, -1), slice(1, None)
+    start[tuple(hi)] &= ~bg[tuple(lo)]  # a run starts where the previous voxel along the axis is not background
+    # number the starts in the order that walks each line along ``axis`` (the axis moved last), so that
+    # every voxel of a run gets the count of starts up to it: its run's number
+    moved = np.moveaxis(start, axis, -1)
+    ids_moved = np.cumsum(moved, axis=None, dtype=np.int32).reshape(moved.shape)
+    n = int(ids_moved.reshape(-1)[-1])
+    return np.where(bg, np.moveaxis(ids_moved, -1, axis), 0), n
 
 
 def erode_cross(a: np.ndarray) -> np.ndarray:

@@ -517,6 +517,28 @@ def test_fill_holes_matches_scipy_on_a_shell_with_cavities():
     assert not fill_holes(np.zeros((3, 4, 5), bool)).any() and fill_holes(np.ones((3, 4, 5), bool)).all()
 
 
+@pytest.mark.parametrize("sweeps", [1, 15, 1000])
+def test_fill_holes_matches_scipy_along_a_winding_channel(monkeypatch, sweeps):
+    # reference: scipy.ndimage.binary_fill_holes. A channel open to one face that turns 9 times needs many
+    # sweeps along whole runs; past FILL_SWEEPS the background is labelled instead (1: at once; 1000: never)
+    from scipy import ndimage
+
+    import qmap.noise_level as nl
+
+    monkeypatch.setattr(nl, "FILL_SWEEPS", sweeps)
+    block = np.ones((23, 21, 6), bool)
+    for k, y in enumerate(range(1, 20, 2)):  # rows of the channel at y = 1, 3, ..., 19, joined at alternate ends
+        block[1:22, y, 1:3] = False
+        end = 21 if k % 2 == 0 else 1
+        if y + 2 < 20:
+            block[end, y:y + 3, 1:3] = False
+    block[0, 1, 1:3] = False  # the channel's mouth on the x = 0 face
+    block[11, 10, 4] = False  # a pocket above the channel, sealed from it: a hole
+    out = nl.fill_holes(block)
+    assert np.array_equal(out, ndimage.binary_fill_holes(block))
+    assert not out[21, 19, 1] and out[11, 10, 4]  # the channel's far end still background; the pocket filled
+
+
 def test_median64_is_numpys_float64_median_to_the_bit():
     # the object's peak stays float32 (memory); its median must be np.median of the float64 values exactly
     from qmap.noise_level import _median64
