@@ -319,6 +319,7 @@ def _main(argv: list[str]) -> int:
             parser.print_help(sys.stderr)
             return 2
         args.argv = ["qmap"] + argv
+        _read_ahead(args)
         if getattr(args, "_silence_stdout", False) and args.quiet:
             with open(os.devnull, "w") as devnull, contextlib.redirect_stdout(devnull):
                 return int(args.run(args) or 0)
@@ -350,8 +351,27 @@ def _main(argv: list[str]) -> int:
         sys.stderr.write(f"qmap: internal error (a bug in qmap {__version__}); please report it with the traceback above\n")
         return 1
     finally:
+        if "qmap.io.readahead" in sys.modules:  # what the run did not take is freed
+            sys.modules["qmap.io.readahead"].discard()
         if previous_handler is not None:
             signal.signal(signal.SIGTERM, previous_handler)
+
+
+def _read_ahead(args) -> None:
+    """Start reading a fitting command's series while the command's modules are imported.
+
+    (:mod:`qmap.io.readahead`; not when ``--max-memory`` cannot be read: the command reports that.)
+    """
+    if not getattr(args, "read_ahead", False):
+        return
+    from ..io import readahead
+    from .common import parse_size
+
+    try:
+        budget = parse_size(getattr(args, "max_memory", None))
+    except QmapError:
+        return
+    readahead.start(args.series, max_bytes=budget)
 
 
 if __name__ == "__main__":  # pragma: no cover

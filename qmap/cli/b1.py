@@ -18,6 +18,7 @@ def add_parser(sub) -> None:
     )
     p.add_argument("series", nargs="+", metavar="SERIES",
                    help="two 3D NIfTIs or one 4D NIfTI with two volumes: afi in the order TR1, TR2; dam at a, 2a")
+    p.set_defaults(read_ahead=True)  # read while the command starts up (qmap.io.readahead)
     add_model_option(p, "b1")  # --method afi|dam, from the model registry
     p.add_argument("--fa", metavar="DEG[,DEG]",
                    help="nominal flip angle in degrees: afi one angle; dam a or a,2a (default: sidecar FlipAngle)")

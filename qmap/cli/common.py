@@ -22,6 +22,7 @@ __all__ = ["add_b1", "add_common", "add_execution", "add_model_option", "add_noi
 def add_series(p: argparse.ArgumentParser, per: str) -> None:
     """The positional SERIES of a fitting command: one 4D NIfTI or several 3D NIfTIs, ``per`` saying of what."""
     p.add_argument("series", nargs="+", metavar="SERIES", help=f"one 4D NIfTI or several 3D NIfTIs{per}")
+    p.set_defaults(read_ahead=True)  # read while the command starts up (qmap.io.readahead)
 
 
 def add_model_option(p, command: str) -> None:

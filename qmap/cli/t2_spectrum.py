@@ -33,6 +33,7 @@ def add_parser(sub) -> None:
         "practice).",
     )
     p.add_argument("series", nargs="+", metavar="SERIES", help="one 4D NIfTI or several 3D NIfTIs (one per echo)")
+    p.set_defaults(read_ahead=True)  # read while the command starts up (qmap.io.readahead)
     p.add_argument("--te", metavar="LIST", help="echo times, e.g. 10ms,20ms,...,320ms (default: sidecar EchoTime)")
     p.add_argument("--refocus", metavar="DEG",
                    help=f"nominal refocusing angle in degrees (default: the sidecar's RefocusingFlipAngle, else "
