@@ -13,6 +13,7 @@ writes its provenance, or removes them when anything fails: all or nothing, as b
 from __future__ import annotations
 
 import dataclasses
+import os
 import weakref
 from collections.abc import Callable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -101,6 +102,8 @@ class MapStream:
         if background is None:
             background = BACKGROUND_WRITES
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="qmap-write") if background else None
+        #: files completed and re-read at a time at the end (:meth:`AtomicWriter.complete_streams`)
+        self.workers = min(2, os.cpu_count() or 1) if background else 1
         self._pending: Future | None = None
         self._open = False
         self._done = False
@@ -174,8 +177,8 @@ class MapStream:
             by_name = {o.name: o for o in outs}
             if set(self.streams) - set(by_name):
                 raise ValueError(f"streamed outputs {sorted(set(self.streams) - set(by_name))} not described")
-            for name, stream in self.streams.items():
-                self.writer.finish_stream(stream, by_name[name], self.status)
+            self.writer.complete_streams([(stream, by_name[name]) for name, stream in self.streams.items()],
+                                         self.status, workers=self.workers)
             stage_rest(self.writer)
             written = self.writer.commit()
         except BaseException:
