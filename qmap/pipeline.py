@@ -548,7 +548,8 @@ class PreparedRun:
         cores the fit uses, and one more slab in memory; so the slabs are read in turn.)
         """
         self.series._object_peak = None  # only the noise estimate needed it
-        if len(slabs) > 1 and self.series.lazy:
+        if len(slabs) > 1 and self.series.lazy and self.common.max_memory is not None:
+            # (a slab_lazy run is read in slabs whatever the budget: nothing to say without one)
             self.notes.append(f"read in {len(slabs)} slabs to stay within max_memory=")
         for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
             sigma = self.sigma

@@ -218,12 +218,12 @@ def _maps(out):
             for p in sorted(out.glob("*.nii.gz"))}
 
 
-def test_t1_mp2rage_maps_do_not_depend_on_the_slabs(mp2rage_set, tmp_path, monkeypatch):
+def test_t1_mp2rage_maps_do_not_depend_on_the_slabs(mp2rage_set, tmp_path, monkeypatch, capsys):
     """With the inversion images, an oblique B1 map and its standard error: one slab, one slice a slab
     (LAZY_SLAB_VOXELS), and --max-memory slabs give the same files bit for bit; each input .nii.gz is
     decompressed a fixed number of times whatever the number of slabs (one stream per pass)."""
     p = mp2rage_set
-    argv = ["t1-mp2rage", p["uni"], "--inv1", p["inv1"], "--inv2", p["inv2"], "--b1", p["b1"], "--sigma", "2", "-q"]
+    argv = ["t1-mp2rage", p["uni"], "--inv1", p["inv1"], "--inv2", p["inv2"], "--b1", p["b1"], "--sigma", "2"]
     runs, opens = {}, {}
     for label, voxels, extra in (("one", 1 << 30, []), ("slices", 20 * 18, []), ("budget", 1 << 30,
                                                                                 ["--max-memory", "9KB"])):
@@ -233,6 +233,8 @@ def test_t1_mp2rage_maps_do_not_depend_on_the_slabs(mp2rage_set, tmp_path, monke
             opened = _count_opens(m)
             out = tmp_path / label
             assert main([*argv, *extra, "-o", str(out)]) == 0
+        # the summary mentions --max-memory only when it was given (the slabs are the norm without it)
+        assert ("--max-memory" in capsys.readouterr().out) == bool(extra), label
         runs[label] = _maps(out)
         opens[label] = dict(opened)
         prov = json.loads(next(out.glob("*_provenance.json")).read_text())
