@@ -195,7 +195,7 @@ def dam_b1(s_a, s_2a, fa_nominal: float, *, mask=None, sigma=None):
 
 
 #: voxels per block of :func:`b1_maps`
-_B1_BLOCK = 1 << 16
+_B1_BLOCK = 1 << 14
 
 
 def b1_maps(data, *, method: str, fa: float, n: float | None = None, mask=None, sigma=None, info: dict | None = None,

@@ -528,6 +528,12 @@ class PreparedRun:
         on a Dask cluster)."""
         return self._slabs_of(AUTO_SLAB_VOXELS)
 
+    def fit_slabs_for(self, volumes: int) -> list[tuple[int, int]]:
+        """:attr:`fit_slabs` for maps made from ``volumes`` volumes: smaller slabs below
+        :data:`FIT_SLAB_VOLUMES` volumes (down to half of :data:`AUTO_SLAB_VOXELS`)."""
+        return self._slabs_of(max(AUTO_SLAB_VOXELS // 2,
+                                  min(AUTO_SLAB_VOXELS, AUTO_SLAB_VOXELS * volumes // FIT_SLAB_VOLUMES)))
+
     def _slabs_of(self, voxels: int) -> list[tuple[int, int]]:
         """:attr:`fit_slabs` with slabs of about ``voxels`` voxels where the slab size is free."""
         if self.common.scheduler or (self.series.lazy and not (self.slab_lazy and self.common.max_memory is None)):
@@ -615,8 +621,7 @@ class PreparedRun:
                 dtype=np.float32, stderr=common.stderr, input_se=_cut(input_se, slab), progress=slab.progress,
             )
 
-        voxels = max(AUTO_SLAB_VOXELS // 2, min(AUTO_SLAB_VOXELS, AUTO_SLAB_VOXELS * self.series.n // FIT_SLAB_VOLUMES))
-        return self.map_slabs(one, progress=progress, slabs=self._slabs_of(voxels))
+        return self.map_slabs(one, progress=progress, slabs=self.fit_slabs_for(self.series.n))
 
     def write(self, maps: MapSet, *, options: dict | None = None, model_info: dict) -> RunReport:
         """Write the maps and the provenance (see :func:`write_run`)."""

@@ -68,20 +68,37 @@ def test_median64_is_numpys_median_of_the_float64_values():
         assert sorted(w.tolist()) == sorted(v.tolist())
 
 
-def test_moments_of_the_kept_values_without_copying_them():
-    rng = np.random.default_rng(9)
-    bg = rng.rayleigh(10.0, 150_001).astype(np.float32)
-    keep = bg <= np.float64(52.0)
-    assert _moments_coils(bg, 0.0, keep) == _moments_coils(bg[keep].astype(np.float64), 0.0)
-    # one coil: r = E[M^4] / E[M^2]^2 = 2 for the Rayleigh distribution (Constantinides et al. 1997), N = 1
-    n_eff, se = _moments_coils(bg, 0.0)
-    assert n_eff == pytest.approx(1.0, abs=4 * se)
-    # the delta-method covariance is numpy's np.cov of (x^2, x^4)
-    x2 = bg.astype(np.float64) ** 2
-    m2, m4 = x2.mean(), (x2 * x2).mean()
+def _moments_whole(x: np.ndarray, quantum: float) -> tuple[float, float]:
+    """The coil moments on whole float64 arrays: np.mean and np.cov of (x^2, x^4) (the reference)."""
+    x2 = x.astype(np.float64) ** 2
+    xs = np.stack([x2, x2 * x2])
+    m2, m4 = float(np.mean(xs[0])), float(np.mean(xs[1]))
+    if quantum > 0:  # Sheppard's corrections for grouping (Sheppard 1898; from memory)
+        h2 = quantum * quantum
+        m2, m4 = m2 - h2 / 12, m4 - m2 * h2 / 2 + 7 * h2 * h2 / 240
     g = np.array([-2.0 * m4 / m2**3, 1.0 / m2**2])
-    se_ref = float(np.sqrt(g @ (np.cov(np.stack([x2, x2 * x2])) / x2.size) @ g))
-    assert se == pytest.approx(se_ref, rel=1e-12)
+    se = float(np.sqrt(g @ (np.cov(xs) / x.size) @ g))
+    return 1.0 / (m4 / (m2 * m2) - 1.0), se
+
+
+@pytest.mark.parametrize("quantum", [0.0, 0.5])
+def test_moments_in_blocks_match_numpy_on_the_whole_arrays(quantum):
+    rng = np.random.default_rng(9)
+    bg = rng.rayleigh(10.0, 150_001).astype(np.float32)  # several blocks and a partial one
+    if quantum:
+        bg = (np.round(bg / quantum) * quantum).astype(np.float32)
+    keep = bg <= np.float64(52.0)
+    n_eff, se = _moments_coils(bg, quantum, keep)
+    ref = _moments_whole(bg[keep], quantum)
+    assert n_eff == pytest.approx(ref[0], rel=1e-12) and se == pytest.approx(ref[1], rel=1e-12)
+    assert _moments_coils(bg[keep], quantum) == pytest.approx((n_eff, se), rel=1e-12)
+    # one coil: r = E[M^4] / E[M^2]^2 = 2 for the Rayleigh distribution (Constantinides et al. 1997), N = 1
+    assert n_eff == pytest.approx(1.0, abs=4 * se * n_eff**2)
+    # four coils: chi with 8 degrees of freedom (the magnitude of a sum of squares), N = 4
+    chi8 = np.sqrt(np.sum(rng.normal(0, 10.0, (8, 100_000)) ** 2, axis=0))
+    n4, se4 = _moments_coils(chi8, 0.0)
+    assert (n4, se4) == pytest.approx(_moments_whole(chi8, 0.0), rel=1e-12)
+    assert n4 == pytest.approx(4.0, abs=4 * se4 * n4**2)
 
 
 def test_object_mask_keeps_the_object_peaks_not_the_peak_image():

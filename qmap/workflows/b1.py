@@ -160,7 +160,8 @@ def run_b1(
     if n is not None:
         info["tr_ratio"] = n
     maps = run.map_slabs(lambda slab: b1_maps(slab.data, method=method, fa=fa_nom, n=n, mask=slab.mask,
-                                              sigma=slab.sigma, info=info, dtype=np.float32))
+                                              sigma=slab.sigma, info=info, dtype=np.float32),
+                         slabs=run.fit_slabs_for(series.n))
     if run.sigma is not None:  # two images, no residual: the standard error is the noise propagated
         maps.info["stderr"] = {"convention": "noise", "meaning": noise_info["stderr"]}
         if isinstance(run.sigma, np.ndarray):
@@ -181,7 +182,9 @@ def run_b1(
             f"ratio that corresponds to no flip angle; {swap}"
         )
     if ok.any():
-        q = np.percentile(maps["TB1"][ok], [5, 50, 95])
+        values = maps["TB1"][ok]  # the map read back from its file is dropped at once
+        q = np.percentile(values, [5, 50, 95], overwrite_input=True)  # partitioned in place: the same values
+        del values
         notes.insert(0, f"TB1 (fraction): median {q[1]:.4g} (5-95%: {q[0]:.4g}-{q[2]:.4g})")
     if method == "dam":
         trv = series.acquisition.get("RepetitionTime")
