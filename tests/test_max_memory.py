@@ -46,3 +46,23 @@ def test_bad_size_is_a_usage_error(megre, tmp_path, capsys):
     path, *_ = megre
     assert main(["t2star", str(path), "-o", str(tmp_path / "o"), "--max-memory", "lots"]) == 2
     assert "--max-memory" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("suffix", [".nii", ".nii.gz"])
+def test_a_slab_read_is_private_and_leaves_the_file_as_it_is(tmp_path, suffix):
+    # an uncompressed slab is used as nibabel maps it (copy-on-write, no second copy): changing it in place --
+    # as the reader's own clipping of small negative values does -- must never reach the file
+    data, te, *_ = decay_phantom(shape=(8, 8, 6), sigma=0)
+    data = data.astype(np.float32)
+    data[2, 3, 1, 0] = -1.5
+    path = write_nifti(tmp_path / f"s{suffix}", data, sidecar={"EchoTime": te.tolist()})
+    lazy = load_series([path], key="EchoTime", option="--te", max_bytes=100)
+    assert lazy.lazy
+    lazy.clip_negative = True
+    slab = lazy.read(0, 3)
+    assert slab.dtype == np.float32 and slab[2, 3, 1, 0] == 0.0
+    expected = np.maximum(data[:, :, 0:3], 0)
+    np.testing.assert_array_equal(slab, expected)
+    slab[...] = 7.0  # a fit may scribble on its slab
+    np.testing.assert_array_equal(np.asanyarray(nib.load(str(path)).dataobj), data)  # the file is unchanged
+    np.testing.assert_array_equal(lazy.read(0, 3), expected)  # and read again as it was

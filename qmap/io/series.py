@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import importlib
+import mmap
 import sys
 import threading
 from dataclasses import dataclass, field
@@ -119,7 +120,9 @@ class Series:
                             .reshape(p.shape[:2] + (z1 - z0,)) for p in proxies], axis=-1)
         if np.iscomplexobj(raw) and not self._allow_complex:
             raise InputError(f"{self.paths[0]}: holds complex data but this fit expects magnitude images")
-        out = raw.astype(dtype, copy=True)
+        # the slab as read, when it is of the right type and its memory is private to it (no second copy of the
+        # slab); anything else (another type, a read-only view) is copied / converted
+        out = raw if raw.dtype == dtype and _private(raw) else raw.astype(dtype, copy=True)
         if self.clip_negative:
             np.maximum(out, 0, out=out)
         return out if self._order is None else out[..., self._order]
@@ -132,6 +135,18 @@ class Series:
         per_z = self.shape[0] * self.shape[1] * self.n * (8 if self._allow_complex else 4)
         k = max(1, int(max_bytes / (2.5 * per_z)))
         return [(z, min(z + k, nz)) for z in range(0, nz, k)]
+
+
+def _private(a: np.ndarray) -> bool:
+    """True when ``a`` may be used (and changed) as a slab: a writeable array whose memory is an array read for
+    it, or nibabel's copy-on-write memory map of an uncompressed file (``nib.load``'s default ``mmap=True`` maps
+    with mode ``"c"``: writes stay private; a read-only map gives a read-only array, which is copied)."""
+    if type(a) is not np.ndarray or not a.flags.writeable:
+        return False
+    base = a
+    while isinstance(base, np.ndarray) and base.base is not None:
+        base = base.base
+    return isinstance(base, (np.ndarray, mmap.mmap))
 
 
 def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
