@@ -323,3 +323,29 @@ def test_lookup_table_does_not_depend_on_rows_at_a_time(monkeypatch):
     for log_t1, limits in tables[1:]:
         assert np.array_equal(log_t1, tables[0][0], equal_nan=True)
         assert np.array_equal(limits, tables[0][1], equal_nan=True)
+
+
+def test_a_single_slice_2d_uni_is_one_slice(tmp_path):
+    """A UNI exported as a 2D image (X, Y) -- one slice -- is inverted as the (X, Y, 1) volume it is: the same
+    maps as the same slice stored as 3D (a traceback before)."""
+    rng = np.random.default_rng(31)
+    t1 = rng.uniform(0.6, 2.6, (14, 12))
+    raw = np.clip(np.round((mp2rage_uni(t1, PROTO) + 0.5) * 4095), 0, 4095).astype(np.uint16)
+    b1 = tmp_path / "b1.nii.gz"
+    nib.save(nib.Nifti1Image(0.9 + 0.2 * rng.random((6, 5, 3)), _oblique(3.0, (-16.0, -14.0, -12.0))), str(b1))
+    outs = {}
+    for label, data in (("2d", raw), ("3d", raw[:, :, None])):
+        uni = tmp_path / f"{label}_UNIT1.nii.gz"
+        nib.save(nib.Nifti1Image(data, AFFINE), str(uni))
+        (tmp_path / f"{label}_UNIT1.json").write_text(json.dumps(PROTO.as_acquisition()))
+        reader = SlabReader(load_image(uni))
+        assert np.array_equal(reader.read(0, 1), raw[:, :, None])
+        assert main(["t1-mp2rage", str(uni), "--b1", str(b1), "-o", str(tmp_path / label), "-q",
+                     "--prefix", "x"]) == 0
+        outs[label] = _maps(tmp_path / label)
+    for name, (arr, _header) in outs["3d"].items():
+        assert outs["2d"][name][0].shape == (14, 12, 1)
+        assert np.array_equal(outs["2d"][name][0], arr, equal_nan=True), name
+    t1_map = outs["3d"]["x_T1map.nii.gz"][0][..., 0]
+    ok = np.isfinite(t1_map)
+    assert ok.mean() > 0.3  # (the oblique B1 map covers part of the slice)

@@ -315,8 +315,9 @@ class SlabReader:
 
         self.img = img
         proxy = img.dataobj
-        self.nz = int(img.shape[2]) if len(img.shape) > 2 else 1
+        self.nz = int(img.shape[2]) if len(img.shape) > 2 else 1  # a 2D image: one slice
         self._extra = (0,) * max(0, len(img.shape) - 3)  # trailing axes of length 1
+        self._flat = len(img.shape) == 2
         file_like = getattr(proxy, "file_like", None)
         self._gz = (type(proxy) is ArrayProxy and isinstance(file_like, str) and file_like.endswith(".gz"))
         self._spec: tuple = ()
@@ -331,19 +332,24 @@ class SlabReader:
         self._finalizer: weakref.finalize | None = None
 
     def read(self, z0: int, z1: int) -> np.ndarray:
-        """The slices ``z0:z1`` as nibabel gives them (scaled; shape (X, Y, z1 - z0)).
+        """The slices ``z0:z1`` as nibabel gives them (scaled; shape (X, Y, z1 - z0); a 2D image is one slice).
 
         Raises what nibabel raises for a corrupt file (``OSError``, ``EOFError``, ``zlib.error``, ...;
         :func:`image_data` turns them into one clear :class:`~qmap.errors.InputError`).
         """
         slicer = (slice(None), slice(None), slice(z0, z1), *self._extra)
+        if self._flat:  # (X, Y): its one slice
+            slicer = (slice(None), slice(None)) if (z0, z1) == (0, 1) else (slice(None), slice(0, 0))
         if not self._gz:
-            return np.asanyarray(self.img.dataobj[slicer])
+            raw = np.asanyarray(self.img.dataobj[slicer])
+            return raw[:, :, None] if self._flat else raw
         if self._stream is None or z0 < self._next:
             self._reopen()
         assert self._stream is not None
         try:
             raw = np.asanyarray(self._stream[1][slicer])
+            if self._flat:
+                raw = raw[:, :, None]
             self._next = z1
             if z1 >= self.nz:  # the whole data block was read: closing checks the CRC-32 and length
                 self.close()

@@ -575,7 +575,7 @@ def run_t1_mp2rage(
     img = _open_3d(upath, "UNI")
     sidecar, where = _merged_sidecar(upath, inv1, inv2)
     protocol, sources = resolve_protocol(sidecar, where, **overrides)
-    shape, affine = tuple(img.shape[:3]), np.asarray(img.affine, float)
+    shape, affine = (tuple(img.shape[:3]) + (1,))[:3], np.asarray(img.affine, float)  # a 2D image: one slice
     budget = common.max_memory
     inversions = None
     if inv1 is not None:
