@@ -9,6 +9,7 @@ from __future__ import annotations
 import re
 import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -575,10 +576,7 @@ class PreparedRun:
         slabs = self.fit_slabs if slabs is None else slabs
         if not slabs:
             raise InputError(f"{self.series.paths[0]}: the series has no slice to fit")
-        series = self.series
-        stream = MapStream(self.common.out_dir, overwrite=self.common.overwrite,
-                           specs=lambda m: _outputs_for(m, self.prefix, self.common.units), shape=series.shape,
-                           affine=series.affine, ref_header=series.header)
+        stream = self.map_stream()
         try:
             for (z0, z1), part in zip(slabs, self._each_slab(fn, slabs, progress), strict=True):
                 stream.add(part, z0, z1)
@@ -591,6 +589,22 @@ class PreparedRun:
             if progress is not None:
                 progress.finish()
         return maps
+
+    def map_stream(self, extra: Callable[[MapSet], list[OutputFile]] | None = None) -> MapStream:
+        """The stream of this run's maps into their output files (what :meth:`map_slabs` fills).
+
+        For a command that makes each slab's maps itself: ``stream.add(part, z0, z1)`` slab by slab, then
+        ``stream.maps()`` (:meth:`write` commits; ``stream.abort()`` on failure). ``extra(part)`` gives other
+        files streamed with each slab (e.g. maps with names of their own); :meth:`write` must describe them
+        (``extra_outputs``).
+        """
+        series = self.series
+
+        def specs(m: MapSet) -> list[OutputFile]:
+            return _outputs_for(m, self.prefix, self.common.units) + (extra(m) if extra is not None else [])
+
+        return MapStream(self.common.out_dir, overwrite=self.common.overwrite, specs=specs, shape=series.shape,
+                         affine=series.affine, ref_header=series.header)
 
     def discard(self, maps: MapSet) -> None:
         """Remove the files a :meth:`map_slabs` run streamed, when it stops before :meth:`write`."""

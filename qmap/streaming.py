@@ -15,7 +15,7 @@ from __future__ import annotations
 import dataclasses
 import os
 import weakref
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -79,7 +79,8 @@ class MapStream:
     overwrite : bool
     specs : callable
         ``specs(maps) -> list of OutputFile``: the NIfTI outputs of a MapSet (names, kinds, units, scale);
-        called on the first slab (its ``data`` are not used).
+        called on the first slab (its ``data`` are not used). It may add other 3D files of each slab (e.g.
+        maps with names of their own); those are streamed too but are not among the maps of :meth:`maps`.
     shape : (X, Y, Z) tuple
     affine : (4, 4) ndarray
     ref_header : nibabel header
@@ -98,6 +99,7 @@ class MapStream:
         self.outputs: list[OutputFile] = []  # the streamed files (without data), in the order of specs()
         self.status = np.zeros(self.shape, np.uint8)
         self.first: MapSet | None = None
+        self._names: dict[str, set] = {}  # the maps of the MapSet per kind (specs() may give other files too)
         self.info: dict | None = None  # the first slab's, with the counts summed over the slabs
         if background is None:
             background = BACKGROUND_WRITES
@@ -117,6 +119,7 @@ class MapStream:
             # what the maps are (names, units, descriptions, info), without the first slab's arrays
             self.first = MapSet({}, {}, dict(part.units), dict(part.descriptions), part.time_params, {},
                                 np.zeros(0, np.uint8), dict(part.info))
+            self._names = {"estimate": set(part.estimates), "stderr": set(part.stderr), "quality": set(part.quality)}
             self.writer.__enter__()
             self._open = True
             for out in self.specs(part):
@@ -129,6 +132,23 @@ class MapStream:
             self._write(part)
         else:
             self._pending = self._pool.submit(self._write, part)
+
+    def add_file(self, out: OutputFile, shape: tuple, blocks: Iterable[np.ndarray]) -> None:
+        """Another output of the run written block by block along its last axis (e.g. a 4D image of shape
+        (X, Y, Z, n), one (X, Y, Z) volume at a time), after the slabs (:meth:`add`) and before :meth:`maps`.
+
+        ``out`` describes the file (its ``data`` is not used); the run's final descriptions must name it, like
+        the maps (:meth:`write`). It is not one of the maps of :meth:`maps`.
+        """
+        if not self._open:
+            raise RuntimeError("add_file() after the first slab (add())")
+        self._wait()
+        stream = self.writer.open_stream(dataclasses.replace(out, data=None), tuple(shape), self.affine,
+                                         self.ref_header)
+        self.streams[out.name] = stream
+        for block in blocks:
+            stream.append(block)
+        stream.finish()
 
     def _write(self, part: MapSet) -> None:
         for out in self.specs(part):
@@ -151,7 +171,7 @@ class MapStream:
 
         groups: dict[str, dict] = {"estimate": {}, "stderr": {}, "quality": {}}
         for out in self.outputs:
-            if out.kind in groups:
+            if out.parameter in self._names.get(out.kind, ()):
                 groups[out.kind][out.parameter] = (self._where(out.name), out.scale)
         est, se, qual = (FileMaps(groups[k]) for k in ("estimate", "stderr", "quality"))
         return StreamedMaps(est, se, dict(first.units), dict(first.descriptions), first.time_params, qual,

@@ -199,7 +199,8 @@ class NiftiStream:
         The temporary file.
     out : OutputFile
         What is written (name, kind, parameter, units, scale); its ``data`` is not used.
-    shape : (X, Y, Z) tuple
+    shape : (X, Y, Z) or (X, Y, Z, n) tuple
+        A 4D image is written along its last axis (whole 3D volumes: NIfTI stores each one contiguously).
     affine : (4, 4) ndarray
     ref_header : nibabel header or None
         The input's header (qform / sform codes, voxel sizes).
@@ -235,11 +236,14 @@ class NiftiStream:
         self._fh.write(bytes(NIFTI1_OFFSET))  # the header's place
 
     def append(self, block: np.ndarray) -> None:
-        """Write the next slab (X, Y, k) of the map (values as the fit gives them; ``out.scale`` applied here)."""
+        """Write the next slab (X, Y, k) of the map (values as the fit gives them; ``out.scale`` applied here).
+
+        A 4D image (X, Y, Z, n) is appended along its last axis likewise: blocks (X, Y, Z, k), or (X, Y, Z).
+        """
         block = np.asarray(block)
-        if block.ndim == 2:
-            block = block[:, :, None]
-        if block.shape[:2] != self.shape[:2] or self.z + block.shape[2] > self.shape[2]:
+        if block.ndim == len(self.shape) - 1:
+            block = block[..., None]
+        if block.shape[:-1] != self.shape[:-1] or self.z + block.shape[-1] > self.shape[-1]:
             raise ValueError(f"{self.out.name}: slab {block.shape} does not continue a map of shape {self.shape}")
         data = block if self.out.scale == 1.0 else block * self.out.scale
         arr = np.asarray(data, dtype=self.dtype)
@@ -253,7 +257,7 @@ class NiftiStream:
         except OSError as exc:
             raise OutputError(f"cannot write {self.path.parent / self.out.name} ({exc.strerror}); check free space "
                               f"and permissions") from None
-        self.z += block.shape[2]
+        self.z += block.shape[-1]
 
     def _put(self, raw: bytes) -> None:
         """Compress (``.gz``) and write bytes of the data block."""
@@ -267,8 +271,8 @@ class NiftiStream:
         """Complete the file: the rest of the deflate stream, the header (with the display range), the trailer."""
         if self.finished:
             return
-        if self.z != self.shape[2]:
-            raise ValueError(f"{self.out.name}: {self.z} of {self.shape[2]} slices written")
+        if self.z != self.shape[-1]:
+            raise ValueError(f"{self.out.name}: {self.z} of {self.shape[-1]} slices written")
         if self._lo <= self._hi:
             self.header["cal_min"] = self._lo
             self.header["cal_max"] = self._hi

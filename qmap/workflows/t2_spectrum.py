@@ -10,6 +10,9 @@ through the same machinery as every fitting command.
 
 from __future__ import annotations
 
+import dataclasses
+import os
+import tempfile
 import time
 from dataclasses import dataclass
 from typing import TypedDict, Unpack
@@ -19,8 +22,8 @@ import numpy as np
 from .. import status as st
 from ..checks import check_series_shape
 from ..docstrings import shared_parameters
-from ..engine import fit_voxels, resolve_jobs
-from ..errors import InputError, UsageError, warn
+from ..engine import Progress, fit_voxels, resolve_jobs
+from ..errors import InputError, OutputError, UsageError, warn
 from ..io.writer import OutputFile
 from ..maps import QUALITY_DESCRIPTIONS, MapSet, _Gather
 from ..models.epg_t2 import echo_spacing
@@ -58,6 +61,9 @@ SE_SUBSAMPLE = 100
 SPECTRUM_CHUNK = 4096
 #: noisy replicates per subsample voxel
 SE_REPLICATES = 10
+#: voxels fitted, and written, per slab of a run (at least one slice): a voxel's results with its spectrum
+#: (52 float32 with the default grid) are held for one slab only (results do not depend on it)
+SLAB_VOXELS = 1 << 15
 
 #: summary note when the noise level cannot be estimated from the background
 _NO_BACKGROUND = "noise level from the fit residuals (no usable image background)"
@@ -168,24 +174,115 @@ class SpectrumSettings:
 
 
 class _Collect:
-    """Flat per-voxel result arrays filled chunk by chunk."""
+    """Flat (C-order) per-voxel result arrays filled chunk by chunk; ``spectra=False``: without the spectra."""
 
     names = ("fraction", "angle", "angle_se", "t2_short", "t2_long", "chi2", "mu", "rmse", "rsquared", "snr",
              "sigma", "dof")
 
-    def __init__(self, nvox: int, n_t2: int):
+    def __init__(self, nvox: int, n_t2: int, *, spectra: bool = True):
         self.arr = {k: np.full(nvox, np.nan, np.float32) for k in self.names}
-        self.spectrum = np.full((nvox, n_t2), np.nan, np.float32)
+        self.spectrum = np.full((nvox, n_t2), np.nan, np.float32) if spectra else None
         self.status = np.full(nvox, st.MASKED, np.uint8)
 
     def put(self, sub, fit) -> None:
         self.status[sub] = fit.status
         for k in self.names:
             self.arr[k][sub] = getattr(fit, k)
-        self.spectrum[sub] = fit.spectrum
+        if self.spectrum is not None:
+            self.spectrum[sub] = fit.spectrum
+
+    def place(self, part: _Collect, shape: tuple, box: tuple[slice, slice, slice]) -> None:
+        """Copy ``part`` (the results of the voxels ``box`` of the volume ``shape``, flat over the box) into these."""
+        dims = self.status.reshape(shape)[box].shape
+        self.status.reshape(shape)[box] = part.status.reshape(dims)
+        for name in self.names:
+            self.arr[name].reshape(shape)[box] = part.arr[name].reshape(dims)
+
+    def slab(self, shape: tuple, z0: int, z1: int) -> _Collect:
+        """The results of the slices ``z0:z1`` of the volume ``shape`` (copies, flat over the slab; no spectra)."""
+        part = _Collect(0, 0, spectra=False)
+        part.arr = {k: v.reshape(shape)[:, :, z0:z1].reshape(-1) for k, v in self.arr.items()}
+        part.status = self.status.reshape(shape)[:, :, z0:z1].reshape(-1)
+        return part
 
 
-def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet, label, out: _Collect) -> int:
+class _SpectrumFile:
+    """The spectra of a run, (X, Y, Z, n) float32, in an unnamed temporary file (gone when closed).
+
+    The 4D output cannot be appended slab by slab as the maps are: NIfTI stores the whole 3D volume of
+    one T2 value after the other. So each fitted slab's spectra go, uncompressed, to their place in that
+    order; the output is compressed from here a volume at a time (:meth:`volumes`), and the standard-error
+    bootstrap reads its subsample's spectra (:meth:`rows`). The spectra are never held whole in memory.
+    """
+
+    def __init__(self, shape: tuple, n: int):
+        self.shape = tuple(int(v) for v in shape)
+        self.n = int(n)
+        self._plane = self.shape[0] * self.shape[1]
+        self._volume = self._plane * self.shape[2]
+        try:
+            self._fh = tempfile.TemporaryFile(prefix="qmap-spectra-")  # noqa: SIM115 - closed by close()
+        except OSError as exc:
+            raise OutputError(self._failed(exc)) from None
+
+    def _failed(self, exc: OSError) -> str:
+        return (f"cannot write the spectra's temporary file in {tempfile.gettempdir()} ({exc.strerror}); check "
+                f"free space there, or set TMPDIR to a folder with room for {4 * self._volume * self.n / 2**20:.0f} MB")
+
+    def put(self, spectra: np.ndarray, kept: np.ndarray, y0: int, z0: int) -> None:
+        """The spectra (X, ky, kz, n) of the voxels ``[:, y0:y0 + ky, z0:z0 + kz]`` (whole slices, or rows of
+        one slice: one byte range per T2 value), NaN where not ``kept`` (X, ky, kz)."""
+        if spectra.shape[1] != self.shape[1] and spectra.shape[2] != 1:
+            raise ValueError(f"spectra {spectra.shape}: whole slices or rows of one slice")
+        try:
+            for j in range(self.n):
+                raw = memoryview(np.where(kept, spectra[..., j], np.nan).astype(np.float32).tobytes(order="F"))
+                at = 4 * (j * self._volume + z0 * self._plane + y0 * self.shape[0])
+                while raw:
+                    done = os.pwrite(self._fh.fileno(), raw, at)
+                    raw, at = raw[done:], at + done
+        except OSError as exc:
+            raise OutputError(self._failed(exc)) from None
+
+    def _read(self, count: int, at: int) -> bytes:
+        parts = []
+        while count > 0:
+            got = os.pread(self._fh.fileno(), count, at)
+            if not got:
+                raise OutputError("the spectra's temporary file is shorter than written (internal check failed)")
+            parts.append(got)
+            count -= len(got)
+            at += len(got)
+        return b"".join(parts)
+
+    def rows(self, idx: np.ndarray) -> np.ndarray:
+        """The spectra (len(idx), n) of the voxels ``idx`` (flat C-order indices of the volume)."""
+        x, y, z = np.unravel_index(np.asarray(idx, np.intp), self.shape)
+        rows = np.empty((x.size, self.n), np.float32)
+        for i, at in enumerate(x + self.shape[0] * (y + self.shape[1] * z)):  # NIfTI order within a volume
+            for j in range(self.n):
+                rows[i, j] = np.frombuffer(self._read(4, 4 * (j * self._volume + int(at))), np.float32)[0]
+        return rows
+
+    def volumes(self):
+        """The (X, Y, Z) volume of each T2 value in turn."""
+        for j in range(self.n):
+            raw = self._read(4 * self._volume, 4 * j * self._volume)
+            yield np.frombuffer(raw, np.float32).reshape(self.shape, order="F")
+
+    def close(self) -> None:
+        self._fh.close()
+
+
+@dataclass
+class _SlabMaps(MapSet):
+    """A slab's maps and its other 3D outputs (``extra``: the desc-short / desc-long T2 maps)."""
+
+    extra: list = dataclasses.field(default_factory=list)
+
+
+def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet, label, out: _Collect,
+              progress: Progress | None = None) -> int:
     """Fit the voxels of ``data`` (X, Y, Z, m) inside ``mask`` into ``out`` (flat C-order voxel index)."""
     shape = data.shape[:-1]
     finite = np.ones(shape, bool)
@@ -209,7 +306,8 @@ def _fit_flat(model, data, mask, sigma, *, n_jobs, chunk_size, scheduler, quiet,
 
     fit_voxels(model, _Gather(data, idx),  # rows gathered a chunk at a time
                sigma=None if sig is None else sig[idx], n_jobs=n_jobs,
-               chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, label=label, on_chunk=on_chunk)
+               chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, label=label, on_chunk=on_chunk,
+               progress=progress)
     return idx.size
 
 
@@ -271,12 +369,18 @@ def _local_sigma(out: _Collect, series, mask, budget, min_snr: float):
     return sig_map, est
 
 
-def _calibrate(model, out: _Collect, *, n_sub: int, replicates: int) -> dict:
+def _calibrate(model, out: _Collect, *, n_sub: int, replicates: int, spectra: _SpectrumFile | None = None) -> dict:
+    """The standard-error calibration on a subsample of fitted voxels (their spectra from ``out``, or ``spectra``)."""
     good = np.flatnonzero((out.status == st.FITTED) & np.isfinite(out.arr["snr"]) & (out.arr["snr"] > 0))
     if good.size == 0:
         return {"k0": float("nan"), "k1": 0.0, "n_voxels": 0, "replicates": replicates}
     pick = good[np.unique(np.linspace(0, good.size - 1, min(n_sub, good.size)).astype(int))]
-    cal = calibrate_fraction_se(model, out.spectrum[pick].astype(float), out.arr["angle"][pick].astype(float),
+    if spectra is not None:
+        rows = spectra.rows(pick)
+    else:
+        assert out.spectrum is not None, "the spectra are held"
+        rows = out.spectrum[pick]
+    cal = calibrate_fraction_se(model, rows.astype(float), out.arr["angle"][pick].astype(float),
                                 out.arr["sigma"][pick].astype(float), replicates=replicates)
     return cal
 
@@ -305,26 +409,41 @@ def _mapset(model, out: _Collect, shape, se, n_fitted: int) -> MapSet:
     return MapSet(estimates, stderr, units, descriptions, (), quality, out.status.reshape(shape), info)
 
 
-def _extra_outputs(model, out: _Collect, shape, prefix: str, units: str) -> list[OutputFile]:
-    kept = np.isin(out.status, _KEPT)
+def _extra_outputs(model, prefix: str, units: str) -> list[OutputFile]:
+    """The desc-short and desc-long T2 maps and the 4D spectrum (descriptions: the files are streamed)."""
     f = 1e3 if units == "ms" else 1.0
     u = "ms" if units == "ms" else "s"
     lo, hi = model.window
     res = []
     texts = (f"geometric-mean T2 of the spectrum inside [{1e3 * lo:g}, {1e3 * hi:g}] ms (NaN where that part is empty)",
              f"geometric-mean T2 of the spectrum above {1e3 * hi:g} ms (NaN where that part is empty)")
-    for key, desc, text in (("t2_short", "short", texts[0]), ("t2_long", "long", texts[1])):
-        data = np.where(kept, out.arr[key], np.nan).astype(np.float32).reshape(shape)
-        res.append(OutputFile(f"{prefix}_desc-{desc}_T2map.nii.gz", data, f"T2{desc}", "estimate", u, text, scale=f,
+    for desc, text in (("short", texts[0]), ("long", texts[1])):
+        res.append(OutputFile(f"{prefix}_desc-{desc}_T2map.nii.gz", None, f"T2{desc}", "estimate", u, text, scale=f,
                               allow_nonfinite=True))
-    spec = np.where(kept[:, None], out.spectrum, np.nan).astype(np.float32).reshape(*shape, -1)
     grid = model.basis.t2 * f
     res.append(OutputFile(
-        f"{prefix}_desc-spectrum_T2distmap.nii.gz", spec, "T2spectrum", "estimate", "a.u.",
+        f"{prefix}_desc-spectrum_T2distmap.nii.gz", None, "T2spectrum", "estimate", "a.u.",
         "regularised NNLS T2 spectrum: amplitude (signal units) at each T2 of the grid along the 4th axis",
         sidecar={"T2Values": [float(v) for v in grid], "T2Units": u}, allow_nonfinite=True,
     ))
     return res
+
+
+def _slab_steps(shape: tuple) -> list[tuple[int, int]]:
+    """Ranges of slices of about :data:`SLAB_VOXELS` voxels (at least one slice) of a volume ``shape``."""
+    k = max(1, SLAB_VOXELS // max(1, shape[0] * shape[1]))
+    return [(z, min(z + k, shape[2])) for z in range(0, shape[2], k)]
+
+
+def _fit_parts(shape: tuple, nz: int) -> list[tuple[slice, slice, slice]]:
+    """Boxes of about :data:`SLAB_VOXELS` voxels over ``nz`` slices of a volume ``shape``: whole slices, or the
+    rows of one slice when a slice is larger."""
+    nx, ny = shape[0], shape[1]
+    if nx * ny <= SLAB_VOXELS:
+        k = SLAB_VOXELS // max(1, nx * ny)
+        return [(slice(0, nx), slice(0, ny), slice(z, min(z + k, nz))) for z in range(0, nz, k)]
+    k = max(1, SLAB_VOXELS // nx)
+    return [(slice(0, nx), slice(y, min(y + k, ny)), slice(z, z + 1)) for z in range(nz) for y in range(0, ny, k)]
 
 
 @shared_parameters(keys=(SpectrumOptions,))
@@ -380,6 +499,7 @@ def fit_t2_spectrum(
     se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
     maps = _mapset(model, out, shape, se, n)
     kept = np.isin(out.status, _KEPT)
+    assert out.spectrum is not None, "the spectra are held"
     extra = {
         "t2_short": np.where(kept, out.arr["t2_short"], np.nan).reshape(shape),
         "t2_long": np.where(kept, out.arr["t2_long"], np.nan).reshape(shape),
@@ -441,28 +561,55 @@ def run_t2_spectrum(
         noise_info["noise_map"] = info["noise_map"]
     run.noise_info = noise_info
     shape = series.shape
-    out = _Collect(int(np.prod(shape)), model.basis.t2.size)
+    n_t2 = model.basis.t2.size
+    # the per-voxel results without the spectra are held whole (the noise level and the standard errors need
+    # them all); the spectra go to a temporary file slab by slab
+    out = _Collect(int(np.prod(shape)), n_t2, spectra=False)
     n_mask = int(np.count_nonzero(run.mask))
     workers = resolve_jobs(common.n_jobs)
     # chunks: at most SPECTRUM_CHUNK voxels, and at least one per worker (results do not depend on it)
     chunk = max(256, min(common.chunk_size, SPECTRUM_CHUNK, -(-n_mask // workers)))
+    spectra = _SpectrumFile(shape, n_t2)
+    try:
+        progress = Progress(n_mask, "fitting", quiet=common.quiet)
 
-    def fit_slab(slab: Slab) -> int:
-        if slab.count == 1:
-            return _fit_flat(model, slab.data, slab.mask, slab.sigma, n_jobs=common.n_jobs, chunk_size=chunk,
-                             scheduler=common.scheduler, quiet=common.quiet, label=slab.label, out=out)
-        # the flat C-order indices of a z-slab are not contiguous in the volume: fit it as its own volume
-        sub = _Collect(int(np.prod(slab.data.shape[:-1])), model.basis.t2.size)
-        n = _fit_flat(model, slab.data, slab.mask, slab.sigma, n_jobs=common.n_jobs, chunk_size=chunk,
-                      scheduler=common.scheduler, quiet=common.quiet, label=slab.label, out=sub)
-        dst = np.ravel_multi_index(np.nonzero(np.ones(slab.data.shape[:-1], bool)), shape) + slab.z0
-        out.status[dst] = sub.status
-        for name in out.names:
-            out.arr[name][dst] = sub.arr[name]
-        out.spectrum[dst] = sub.spectrum
-        return n
+        def fit_slab(slab: Slab) -> int:
+            """Fit a slab as read (``--max-memory``), in parts of about SLAB_VOXELS voxels (one part on Dask)."""
+            nz = slab.data.shape[2]
+            n = 0
+            whole = (slice(None), slice(None), slice(0, nz))
+            for box in [whole] if common.scheduler else _fit_parts(shape, nz):
+                data = slab.data[box]
+                dims = data.shape[:3]
+                sub = _Collect(int(np.prod(dims)), n_t2)
+                sig = slab.sigma
+                if isinstance(sig, np.ndarray) and sig.ndim == 3:
+                    sig = sig[box]
+                n += _fit_flat(model, data, slab.mask[box], sig, n_jobs=common.n_jobs, chunk_size=chunk,
+                               scheduler=common.scheduler, quiet=common.quiet, label=slab.label, out=sub,
+                               progress=progress)
+                y0, z0 = box[1].start or 0, slab.z0 + box[2].start
+                out.place(sub, shape, (box[0], box[1], slice(z0, z0 + dims[2])))
+                assert sub.spectrum is not None
+                kept = np.isin(sub.status, _KEPT)  # a new noise level below moves voxels only within _KEPT
+                spectra.put(sub.spectrum.reshape(*dims, n_t2), kept.reshape(dims), y0, z0)
+                del sub, data
+            return n
 
-    n_fitted = sum(run.for_slabs(fit_slab))
+        n_fitted = sum(run.for_slabs(fit_slab))
+        progress.finish()
+        return _finish_run(run, model, settings, out, spectra, n_fitted, local=local, sigma=sigma,
+                           refocus_deg=refocus_deg)
+    finally:
+        spectra.close()
+
+
+def _finish_run(run, model, settings: SpectrumSettings, out: _Collect, spectra: _SpectrumFile, n_fitted: int, *,
+                local: bool, sigma, refocus_deg: float) -> RunReport:
+    """The noise level (``local`` / from the residuals), the standard errors, and the outputs written slab by slab."""
+    common, series, shape = run.common, run.series, run.series.shape
+    sig = run.sigma
+    noise_info = run.noise_info
     if local:
         sig_map, est = _local_sigma(out, series, run.mask, common.max_memory, model.min_snr)
         name = f"{run.prefix}_desc-noise_sigmamap.nii.gz"
@@ -483,9 +630,7 @@ def run_t2_spectrum(
             noise_info.update(sigma=pooled, sigma_source="median of the per-voxel residual sd sqrt(RSS/(echoes - "
                                                          "peaks)) of the unregularised spectra (no usable background)")
             run.notes.append(f"noise sigma {pooled:.4g} from the fit residuals (no usable image background)")
-    cal = _calibrate(model, out, n_sub=settings.se_subsample, replicates=SE_REPLICATES)
-    se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
-    maps = _mapset(model, out, shape, se, n_fitted)
+    cal = _calibrate(model, out, n_sub=settings.se_subsample, replicates=SE_REPLICATES, spectra=spectra)
     b = model.basis
     provenance = {"refocus_deg": float(refocus_deg), **settings.provenance(),
                   "sigma": None if sigma is None else str(sigma)}
@@ -509,9 +654,29 @@ def run_t2_spectrum(
     if np.isfinite(cal.get("k0", np.nan)):
         run.notes.append(f"standard error of MWF calibrated on {cal['n_voxels']} voxels x {cal['replicates']} replicates "
                      f"(median SD {cal['median_sd']:.3g})")
-    extra = _extra_outputs(model, out, shape, run.prefix, common.units)
-    run.extra_outputs.extend(extra)
-    return run.write(maps, options=provenance, model_info=dict(model_info, parameters=list(model.param_names)))
+    extra = _extra_outputs(model, run.prefix, common.units)
+    run.extra_outputs.extend(extra)  # descriptions: the files are streamed
+    stream = run.map_stream(extra=lambda part: part.extra)
+    try:
+        kept_all = np.isin(out.status, _KEPT)
+        for z0, z1 in [(0, shape[2])] if common.scheduler else _slab_steps(shape):
+            part = out.slab(shape, z0, z1)
+            dims = (shape[0], shape[1], z1 - z0)
+            se = fraction_se(cal, part.arr["fraction"], part.arr["snr"])
+            maps = _mapset(model, part, dims, se, n_fitted if z0 == 0 else 0)  # n_fitted: summed over the slabs
+            kept = kept_all.reshape(shape)[:, :, z0:z1].reshape(-1)
+            t2s = [dataclasses.replace(o, data=np.where(kept, part.arr[key], np.nan).astype(np.float32).reshape(dims))
+                   for o, key in zip(extra[:2], ("t2_short", "t2_long"), strict=True)]
+            stream.add(_SlabMaps(**{f.name: getattr(maps, f.name) for f in dataclasses.fields(MapSet)}, extra=t2s),
+                       z0, z1)
+            del maps, t2s, part, se
+        del kept_all
+        stream.add_file(extra[2], (*shape, model.basis.t2.size), spectra.volumes())
+        streamed = stream.maps()
+    except BaseException:
+        stream.abort()
+        raise
+    return run.write(streamed, options=provenance, model_info=dict(model_info, parameters=list(model.param_names)))
 
 
 # documented quality maps of this command (for the README and --help)

@@ -252,3 +252,66 @@ def test_noise_map_with_holes_skips_those_voxels(tmp_path):
     assert prov["status_counts"]["2"] == 2
     entry = prov["noise"]["noise_map"]
     assert entry["path"] == str((tmp_path / "holed.nii.gz").absolute()) and len(entry["sha256"]) == 64
+
+
+def _images(folder) -> dict:
+    """File name -> (header bytes, voxel bytes) of every NIfTI below ``folder``; sidecars as parsed JSON."""
+    res: dict = {}
+    for p in sorted(folder.iterdir()):
+        if p.name.endswith(".nii.gz"):
+            img = nib.load(p)
+            res[p.name] = (img.header.binaryblock, np.asarray(img.dataobj).tobytes())
+        elif p.name.endswith(".json") and not p.name.endswith("provenance.json"):
+            res[p.name] = json.loads(p.read_text())
+    return res
+
+
+@pytest.mark.parametrize("sigma", ["auto", "local"])
+def test_streamed_in_many_slabs_bit_identical_to_one_slab(series, tmp_path, monkeypatch, capsys, sigma):
+    """The run fits and writes in slabs of about SLAB_VOXELS voxels (the spectra through a temporary file, the
+    4D spectrum compressed a T2 value at a time): one slice per slab with --max-memory reading the series in
+    slabs and -j 1 gives the same files, bit for bit, as one slab with -j 2, for the noise level from the pooled
+    residuals (this series has a zero-filled background: the noise level and every voxel's SNR, chi2 and
+    standard errors are set after the fit) and from the local map. The spectrum and the maps are those of the
+    array API, which holds every voxel's results in memory."""
+    import qmap.workflows.t2_spectrum as wf
+
+    path, *_ = series
+    args = ["t2-spectrum", str(path), "--se-subsample", "24", "--sigma", sigma, "--mask", "none", "--prefix", "x"]
+    monkeypatch.setattr(wf, "SLAB_VOXELS", 10**9)
+    assert main([*args, "-q", "-o", str(tmp_path / "one"), "-j", "2"]) == 0
+    monkeypatch.setattr(wf, "SLAB_VOXELS", 1)  # one slice per slab
+    capsys.readouterr()
+    assert main([*args, "-o", str(tmp_path / "many"), "-j", "1", "--max-memory", "4K"]) == 0
+    assert "read in 2 slabs" in capsys.readouterr().out  # the series is read a slice at a time too
+    one, many = _images(tmp_path / "one"), _images(tmp_path / "many")
+    assert len(one) == (28 if sigma == "local" else 26) and one.keys() == many.keys()  # 13 or 14 maps + sidecars
+    for name in one:
+        assert one[name] == many[name], name
+    if sigma == "auto":  # the array API with the pooled noise level the run found
+        data = np.asarray(nib.load(path).dataobj, np.float32)
+        pooled = json.loads((tmp_path / "one" / "x_provenance.json").read_text())["noise"]["sigma"]
+        maps, extra = wf.fit_t2_spectrum(data, TE, sigma=pooled, se_subsample=24, n_jobs=1)
+        spec = nib.load(tmp_path / "many" / "x_desc-spectrum_T2distmap.nii.gz").get_fdata(dtype=np.float32)
+        fitted = maps.status == 0
+        np.testing.assert_array_equal(spec[fitted], extra["spectrum"][fitted])
+        mwf = nib.load(tmp_path / "many" / "x_MWFmap.nii.gz").get_fdata(dtype=np.float32)
+        np.testing.assert_allclose(mwf[fitted], maps["MWF"][fitted], rtol=0, atol=1e-6)
+
+
+def test_a_failure_after_the_fit_leaves_nothing(series, tmp_path, monkeypatch, capsys):
+    """All or nothing: the maps streamed so far are removed when the run fails while writing."""
+    import qmap.workflows.t2_spectrum as wf
+    from qmap.errors import OutputError
+
+    path, *_ = series
+
+    def broken(self):
+        yield np.zeros(self.shape, np.float32)
+        raise OutputError("the disk is full (a test)")
+
+    monkeypatch.setattr(wf._SpectrumFile, "volumes", broken)
+    out = tmp_path / "out"
+    code = main(["t2-spectrum", str(path), "-o", str(out), "-q", "--sigma", str(SIGMA), "--se-subsample", "8"])
+    assert code == 2 and "the disk is full (a test)" in capsys.readouterr().err
+    assert snapshot(out) == {}
