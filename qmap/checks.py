@@ -86,7 +86,7 @@ def clip_small_negatives(series, lo: float, hi: float, n_negative: int) -> None:
     if series.lazy:
         series.clip_negative = True  # applied to every slab read
     else:
-        np.maximum(series.data, 0, out=series.data)
+        series.data = np.maximum(series.data, 0, out=series.data if series.data.flags.writeable else None)
 
 
 # ----------------------------------------------------------------------------- order of values

@@ -113,7 +113,9 @@ def image_data(img, path: str | Path, *, dtype=np.float64, allow_complex: bool =
 
     try:
         content = readahead.take(path)  # the file decompressed while the process started, or None
-        raw = np.asanyarray(img.dataobj) if content is None else _scaled_from(img, content)
+        raw = None if content is None else _scaled_from(img, content)
+        if raw is None:
+            raw = np.asanyarray(img.dataobj)
     except (EOFError, OSError, ValueError, zlib.error, gzip.BadGzipFile) as exc:
         raise InputError(f"{path}: the image data cannot be read ({_short(exc)}); the file is truncated or corrupt") from None
     if np.iscomplexobj(raw):
@@ -128,25 +130,25 @@ def image_data(img, path: str | Path, *, dtype=np.float64, allow_complex: bool =
     return raw.astype(dtype, copy=False)
 
 
-def _scaled_from(img, content: bytearray) -> np.ndarray:
+def _scaled_from(img, content: bytes) -> np.ndarray | None:
     """The voxel data of ``img`` from its file's decompressed ``content``: what ``np.asanyarray(img.dataobj)`` gives.
 
-    The array is a view of ``content`` (no copy), with the header's scaling applied exactly as nibabel's
-    ``ArrayProxy`` applies it (the same steps, through nibabel's ``apply_read_scaling``; tested equal
-    for integer data with slopes, floats and complex). An image whose data nibabel would not read this
-    way (not a plain array proxy) is read by nibabel from the file as usual.
+    The array is a read-only view of ``content`` (no copy) when no scaling applies, with the header's
+    scaling applied otherwise exactly as nibabel's ``ArrayProxy`` applies it (the same steps, through
+    nibabel's ``apply_read_scaling``; tested equal for integer data with slopes, floats and complex).
+    None when nibabel would not read the data this way (not a plain array proxy) or ``content`` does
+    not hold them all: the caller then reads the file as usual.
     """
     from nibabel.arrayproxy import ArrayProxy
     from nibabel.volumeutils import apply_read_scaling
 
     proxy = img.dataobj
     if type(proxy) is not ArrayProxy:
-        return np.asanyarray(img.dataobj)
+        return None
     shape, dtype, offset = proxy.shape, np.dtype(proxy.dtype), int(proxy.offset)
     n_bytes = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
-    if len(content) < offset + n_bytes:  # nibabel's own wording for a short file
-        raise OSError(f"Expected {n_bytes} bytes, got {max(0, len(content) - offset)} bytes from {img.get_filename()}"
-                      f"\n - could the file be damaged?")
+    if len(content) < offset + n_bytes:  # not the whole image (the first of several gzip members): nibabel reads
+        return None
     unscaled = np.ndarray(shape, dtype, buffer=content, offset=offset, order=proxy.order)
     # nibabel's ArrayProxy._get_scaled(dtype=None): scale factors cast to their own dtype where they fit
     slope, inter = np.asanyarray(proxy.slope), np.asanyarray(proxy.inter)
