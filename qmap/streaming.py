@@ -198,7 +198,7 @@ class MapStream:
             if set(self.streams) - set(by_name):
                 raise ValueError(f"streamed outputs {sorted(set(self.streams) - set(by_name))} not described")
             self.writer.complete_streams([(stream, by_name[name]) for name, stream in self.streams.items()],
-                                         self.status, workers=self.workers)
+                                         self.status, workers=self.workers, pool=self._pool)
             stage_rest(self.writer)
             written = self.writer.commit()
         except BaseException:

@@ -18,7 +18,7 @@ import time
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import nibabel as nib
 import numpy as np
@@ -26,6 +26,9 @@ from nibabel.openers import ImageOpener
 
 from ..errors import OutputError, OutputExistsError
 from .nifti import sidecar_path
+
+if TYPE_CHECKING:
+    from concurrent.futures import Executor
 
 __all__ = ["AtomicWriter", "NiftiStream", "OutputFile", "existing_outputs", "is_output_of", "map_filename", "nifti_for",
            "nifti_header", "sha256_file"]
@@ -487,23 +490,44 @@ class AtomicWriter:
         return self.out_dir / out.name
 
     def complete_streams(self, items: list[tuple[NiftiStream, OutputFile]], status: np.ndarray | None = None, *,
-                         workers: int = 2) -> None:
+                         workers: int = 2, pool: Executor | None = None) -> None:
         """:meth:`finish_stream` for several streams; the files are completed and re-read ``workers`` at a time.
 
         Completing (the last deflate block and the gzip trailer) and re-reading (inflating the whole file)
         release the GIL: two files at a time take about half as long on two cores. The sidecars are staged
-        afterwards, in order.
+        afterwards, in order. With ``pool`` (a one-thread executor the run already has, e.g. its background
+        writer) every second file is done there while this thread does the others: two at a time without
+        new threads (each new thread gets its own C-library memory arena, which keeps what it freed: about
+        8 MB more peak memory on a 1M-voxel run).
         """
+        # the fitted voxels in the files' voxel order, once for all the files (not one copy per file and thread)
+        fitted = None if status is None else (np.asarray(status) == 0).ravel(order="F")
+
         def complete(item: tuple[NiftiStream, OutputFile]) -> None:
             stream, out = item
             stream.finish()
-            self._verify(stream.path, out, stream.shape, stream.affine, status)
+            self._verify(stream.path, out, stream.shape, stream.affine, status, fitted=fitted)
 
-        if workers > 1 and len(items) > 1:
+        if workers > 1 and len(items) > 1 and pool is not None:
+            from concurrent.futures import wait
+
+            futures = [pool.submit(complete, item) for item in items[1::2]]
+            try:
+                for item in items[::2]:
+                    complete(item)
+            except BaseException:
+                for fut in futures:
+                    fut.cancel()
+                raise
+            finally:
+                wait(futures)  # the others end first
+            for fut in futures:
+                fut.result()  # the first failure is raised
+        elif workers > 1 and len(items) > 1:
             from concurrent.futures import ThreadPoolExecutor
 
-            with ThreadPoolExecutor(max_workers=min(workers, len(items)), thread_name_prefix="qmap-check") as pool:
-                for _ in pool.map(complete, items):  # the first failure is raised (after the others ended)
+            with ThreadPoolExecutor(max_workers=min(workers, len(items)), thread_name_prefix="qmap-check") as checkers:
+                for _ in checkers.map(complete, items):  # the first failure is raised (after the others ended)
                     pass
         else:
             for item in items:
@@ -516,10 +540,10 @@ class AtomicWriter:
                                                       "Parameter": out.parameter, "Kind": out.kind,
                                                       **(out.sidecar or {})})
 
-    def _verify(self, path: Path, out: OutputFile, shape: tuple, affine, status):
+    def _verify(self, path: Path, out: OutputFile, shape: tuple, affine, status, fitted: np.ndarray | None = None):
         """Re-read the written file: header (shape, affine), the whole stream, and the estimates of fitted voxels.
 
-        The voxel values are read back in blocks of 1 MB and checked against the status (finite where it
+        The voxel values are read back in blocks of 256 kB and checked against the status (finite where it
         is 0) without holding the map: re-reading every map as an array doubled the memory of the writing
         stage. A gzip stream's CRC-32 and length are checked at its end.
         """
@@ -532,12 +556,12 @@ class AtomicWriter:
         dtype = np.dtype(proxy.dtype)
         good = None
         if status is not None and out.kind == "estimate" and not out.allow_nonfinite:
-            good = (np.asarray(status) == 0).ravel(order="F")  # the file's voxel order
+            good = (np.asarray(status) == 0).ravel(order="F") if fitted is None else fitted  # the file's voxel order
         count = 0
         try:
             with ImageOpener(str(path), "rb") as fh:
                 fh.seek(int(proxy.offset))
-                step = (1 << 20) // dtype.itemsize * dtype.itemsize
+                step = (1 << 18) // dtype.itemsize * dtype.itemsize
                 while block := fh.read(step):
                     values = np.frombuffer(block, dtype, count=len(block) // dtype.itemsize)
                     if good is not None and (good[count:count + values.size] & ~np.isfinite(values)).any():
