@@ -72,7 +72,7 @@ def test_distribution_name_is_our_own():
     root = Path(__file__).resolve().parents[1]
     conf = tomllib.loads((root / "pyproject.toml").read_text())
     assert conf["project"]["name"] == "qmap-relaxometry"
-    assert conf["project"]["scripts"] == {"qmap": "qmap.cli:main"}
+    assert conf["project"]["scripts"] == {"qmap": "qmap.cli:console"}
     assert "qmap-relaxometry" in (root / "README.md").read_text()
 
 
@@ -140,3 +140,19 @@ def test_an_option_the_command_does_not_take_is_named_with_the_command_help(argv
     assert err.rstrip().endswith(f"(see qmap {argv[0]} --help)")
     assert not (tmp_path / "out").exists()
 
+
+
+def test_the_program_flushes_its_output_and_keeps_its_exit_codes(tmp_path):
+    # the program ends a successful run at once (os._exit after flushing): what it printed must still
+    # reach a pipe, and a failed run keeps its exit code and message
+    import subprocess
+    import sys
+
+    ok = subprocess.run([sys.executable, "-m", "qmap", "--version"], capture_output=True, text=True, check=False)
+    assert ok.returncode == 0 and ok.stdout.startswith("qmap ")
+    demo = subprocess.run([sys.executable, "-m", "qmap", "t2star", "--help"], capture_output=True, text=True,
+                          check=False)
+    assert demo.returncode == 0 and demo.stdout.count("\n") > 20 and "--te" in demo.stdout
+    bad = subprocess.run([sys.executable, "-m", "qmap", "t2star", str(tmp_path / "missing.nii.gz"), "-o",
+                          str(tmp_path / "o")], capture_output=True, text=True, check=False)
+    assert bad.returncode == 2 and "no such file" in bad.stderr

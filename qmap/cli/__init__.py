@@ -178,6 +178,25 @@ def main(argv: list[str] | None = None) -> int:
         return _main(argv)
 
 
+def console() -> None:
+    """The ``qmap`` program: :func:`main`, then exit with its code.
+
+    After a successful run every output is written, committed and closed, so the process ends at once
+    (``os._exit`` after flushing stdout and stderr) instead of tearing the interpreter down module by
+    module: numpy's, scipy's and nibabel's teardown took 0.05-0.1 s of a 1.6 s run on the 2-core
+    development machine. A failed run exits the ordinary way (its clean-up handlers run).
+    """
+    rc = main()
+    if rc == 0:
+        try:
+            sys.stdout.flush()
+            sys.stderr.flush()
+        except (BrokenPipeError, OSError):  # a reader that went away: not an error of ours
+            pass
+        os._exit(0)
+    sys.exit(rc)
+
+
 #: library argument -> command-line option: the array API's messages name arguments (``sigma=``), the
 #: command line shows the option the user typed (``--sigma``)
 ARGUMENT_OPTIONS = {
