@@ -156,3 +156,14 @@ def test_the_program_flushes_its_output_and_keeps_its_exit_codes(tmp_path):
     bad = subprocess.run([sys.executable, "-m", "qmap", "t2star", str(tmp_path / "missing.nii.gz"), "-o",
                           str(tmp_path / "o")], capture_output=True, text=True, check=False)
     assert bad.returncode == 2 and "no such file" in bad.stderr
+
+
+def test_a_profiled_run_still_writes_its_profile(tmp_path):
+    # under a profiler the program exits the ordinary way, so that the profiler writes its file at exit
+    import subprocess
+    import sys
+
+    out = tmp_path / "run.prof"
+    res = subprocess.run([sys.executable, "-m", "cProfile", "-o", str(out), "-m", "qmap", "--version"],
+                         capture_output=True, text=True, check=False)
+    assert res.returncode == 0 and out.stat().st_size > 1000
