@@ -308,9 +308,17 @@ def _background_runs(bg: np.ndarray, axis: int) -> tuple[np.ndarray, int]:
     # number the starts in the order that walks each line along ``axis`` (the axis moved last), so that
     # every voxel of a run gets the count of starts up to it: its run's number
     moved = np.moveaxis(start, axis, -1)
-    ids_moved = np.cumsum(moved, axis=None, dtype=np.int32).reshape(moved.shape)
-    n = int(ids_moved.reshape(-1)[-1])
-    return np.where(bg, np.moveaxis(ids_moved, -1, axis), 0), n
+    n = int(np.count_nonzero(start))
+    # the smallest type that holds the run numbers (a head-shaped 1M-voxel mask has ~10-30k runs an axis:
+    # 2 bytes a voxel instead of 4 for each axis' labels, which fill_holes holds for all three axes)
+    dtype = np.uint16 if n < 2**16 else np.int32 if n < 2**31 else np.int64
+    ids_moved = np.cumsum(moved, axis=None, dtype=dtype).reshape(moved.shape)
+    del start, moved
+    ids = np.empty(bg.shape, dtype)
+    ids[...] = np.moveaxis(ids_moved, -1, axis)  # back in the array's order (C-contiguous, as np.where gave it)
+    del ids_moved
+    ids *= bg  # 0 off the background (in place)
+    return ids, n
 
 
 def erode_cross(a: np.ndarray) -> np.ndarray:

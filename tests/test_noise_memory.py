@@ -112,3 +112,19 @@ def test_object_mask_keeps_the_object_peaks_not_the_peak_image():
     fresh = ArraySource(data)
     b = background_estimate(fresh, obj=mask.copy())  # not the cached mask: peaks taken from the data
     assert fresh._object_peak is None and a.sigma == b.sigma and a.details == b.details
+
+
+@pytest.mark.parametrize("density", [0.1, 0.5])
+def test_hole_filling_labels_runs_in_the_smallest_type_with_scipys_result(density):
+    from scipy import ndimage
+
+    from qmap.noise_level import _background_runs, fill_holes
+
+    rng = np.random.default_rng(12)
+    mask = rng.uniform(size=(100, 80, 40)) < density  # 0.5: over 65535 runs along z (int32 labels), 0.1: fewer
+    ids, n = _background_runs(~mask, 2)
+    assert ids.dtype == (np.uint16 if n < 2**16 else np.int32) and ids.flags.c_contiguous
+    assert (n >= 2**16) == (density == 0.5)
+    assert np.array_equal(ids == 0, mask) and int(ids.max()) == n  # every background voxel in a numbered run
+    # scipy.ndimage.binary_fill_holes (6-connected background reached from the faces) as the reference
+    assert np.array_equal(fill_holes(mask), ndimage.binary_fill_holes(mask))

@@ -186,6 +186,7 @@ def run_b1(
         q = np.percentile(values, [5, 50, 95], overwrite_input=True)  # partitioned in place: the same values
         del values
         notes.insert(0, f"TB1 (fraction): median {q[1]:.4g} (5-95%: {q[0]:.4g}-{q[2]:.4g})")
+    del ok, fitted
     if method == "dam":
         trv = series.acquisition.get("RepetitionTime")
         if trv is None:
