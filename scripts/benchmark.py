@@ -647,8 +647,17 @@ def case_memory(nvox, work: Path, rng, series_gz: Path, tiles: int = 4):
           f"above the baseline);  slabs: {t_slab:.2f} s, peak RSS {rss_slab:.0f} MB")
     print(f"  import-only baseline {base_rss:.0f} MB; the output maps (float32, written slab by slab, not held) "
           f"{maps_mb:.0f} MB")
-    print(f"  slab peak above baseline = {rss_slab - base_rss:.0f} MB vs 1.5 x budget + status map = "
-          f"{1.5 * budget + status_mb:.0f} MB;  maps identical to the in-memory run: {same}")
+    # what --max-memory sizes (qmap.io.series.Series.slabs): slabs whose data x 2.5 (the slab and the fit's
+    # work on it) fit the budget; beyond it, the maps of two slabs (the one being compressed and written, the
+    # one being fitted) and the whole volume's mask and status map (1 byte a voxel each)
+    per_z = shape[0] * shape[1] * 12 * 4
+    slab_vox = min(shape[2], max(1, int(budget * 2**20 / (2.5 * per_z)))) * shape[0] * shape[1]
+    two_slabs_mb = 2 * (n_maps - 1) * 4 * slab_vox / 2**20
+    whole_mb = 2 * status_mb
+    print(f"  slab peak above baseline = {rss_slab - base_rss:.0f} MB vs the budget (a slab's data x 2.5: the slab "
+          f"and the fit's work) {budget:.0f} MB + the maps of two slabs ({n_maps - 1} float32 maps of {slab_vox} "
+          f"voxels each) {two_slabs_mb:.0f} MB + mask and status map {whole_mb:.0f} MB = "
+          f"{budget + two_slabs_mb + whole_mb:.0f} MB;  maps identical to the in-memory run: {same}")
 
 
 def case_mp2rage(nvox, work: Path, rng):
