@@ -374,12 +374,8 @@ class SlabReader:
 
     def close(self) -> None:
         """Close the stream (after the last slice: checks the gzip CRC-32 and length; raises on a mismatch)."""
-        if self._stream is not None:
-            fh = self._stream[0]
-            self._stream = None
-            if self._finalizer is not None:
-                self._finalizer.detach()
-                self._finalizer = None
+        fh = self._forget()
+        if fh is not None:
             try:
                 fh.close()
             finally:
@@ -388,13 +384,20 @@ class SlabReader:
 
     def _drop(self) -> None:
         """Close the stream without checking anything (a rewind, or after an error)."""
-        if self._stream is not None:
-            fh = self._stream[0]
-            self._stream = None
-            if self._finalizer is not None:
-                self._finalizer.detach()
-                self._finalizer = None
+        fh = self._forget()
+        if fh is not None:
             _close_quietly(fh)
+
+    def _forget(self):
+        """The open file (None if none), no longer the reader's (its finaliser detached)."""
+        if self._stream is None:
+            return None
+        fh = self._stream[0]
+        self._stream = None
+        if self._finalizer is not None:
+            self._finalizer.detach()
+            self._finalizer = None
+        return fh
 
 
 def _close_quietly(fh) -> None:
