@@ -174,12 +174,15 @@ class SpectrumSettings:
 
 
 class _Collect:
-    """Flat (C-order) per-voxel result arrays filled chunk by chunk; ``spectra=False``: without the spectra."""
+    """Flat (C-order) per-voxel result arrays filled chunk by chunk; ``spectra=False``: without the spectra;
+    ``names``: only these results (default: all)."""
 
-    names = ("fraction", "angle", "angle_se", "t2_short", "t2_long", "chi2", "mu", "rmse", "rsquared", "snr",
-             "sigma", "dof")
+    names: tuple[str, ...] = ("fraction", "angle", "angle_se", "t2_short", "t2_long", "chi2", "mu", "rmse",
+                              "rsquared", "snr", "sigma", "dof")
 
-    def __init__(self, nvox: int, n_t2: int, *, spectra: bool = True):
+    def __init__(self, nvox: int, n_t2: int, *, spectra: bool = True, names: tuple[str, ...] | None = None):
+        if names is not None:
+            self.names = names
         self.arr = {k: np.full(nvox, np.nan, np.float32) for k in self.names}
         self.spectrum = np.full((nvox, n_t2), np.nan, np.float32) if spectra else None
         self.status = np.full(nvox, st.MASKED, np.uint8)
@@ -192,7 +195,8 @@ class _Collect:
             self.spectrum[sub] = fit.spectrum
 
     def place(self, part: _Collect, shape: tuple, box: tuple[slice, slice, slice]) -> None:
-        """Copy ``part`` (the results of the voxels ``box`` of the volume ``shape``, flat over the box) into these."""
+        """Copy ``part`` (the results of the voxels ``box`` of the volume ``shape``, flat over the box) into these
+        (the results these hold)."""
         dims = self.status.reshape(shape)[box].shape
         self.status.reshape(shape)[box] = part.status.reshape(dims)
         for name in self.names:
@@ -200,24 +204,32 @@ class _Collect:
 
     def slab(self, shape: tuple, z0: int, z1: int) -> _Collect:
         """The results of the slices ``z0:z1`` of the volume ``shape`` (copies, flat over the slab; no spectra)."""
-        part = _Collect(0, 0, spectra=False)
+        part = _Collect(0, 0, spectra=False, names=self.names)
         part.arr = {k: v.reshape(shape)[:, :, z0:z1].reshape(-1) for k, v in self.arr.items()}
         part.status = self.status.reshape(shape)[:, :, z0:z1].reshape(-1)
         return part
 
 
+#: per-voxel results that no whole-volume step changes (the noise level rescales SNR, chi2 and the angle's SE
+#: only): a run keeps them in its temporary file with the spectra, not in memory
+_SPILLED = ("fraction", "angle", "t2_short", "t2_long", "mu", "rmse", "rsquared")
+
+
 class _SpectrumFile:
-    """The spectra of a run, (X, Y, Z, n) float32, in an unnamed temporary file (gone when closed).
+    """The spectra of a run, (X, Y, Z, n) float32, and the 3D results ``names``, in an unnamed temporary file
+    (gone when closed).
 
     The 4D output cannot be appended slab by slab as the maps are: NIfTI stores the whole 3D volume of
     one T2 value after the other. So each fitted slab's spectra go, uncompressed, to their place in that
     order; the output is compressed from here a volume at a time (:meth:`volumes`), and the standard-error
-    bootstrap reads its subsample's spectra (:meth:`rows`). The spectra are never held whole in memory.
+    bootstrap reads its subsample's spectra (:meth:`rows`). The results ``names`` follow as volumes of
+    their own (:meth:`values`, :meth:`slab`). None of it is held whole in memory.
     """
 
-    def __init__(self, shape: tuple, n: int):
+    def __init__(self, shape: tuple, n: int, names: tuple[str, ...] = ()):
         self.shape = tuple(int(v) for v in shape)
         self.n = int(n)
+        self.names = tuple(names)
         self._plane = self.shape[0] * self.shape[1]
         self._volume = self._plane * self.shape[2]
         try:
@@ -227,17 +239,21 @@ class _SpectrumFile:
 
     def _failed(self, exc: OSError) -> str:
         return (f"cannot write the spectra's temporary file in {tempfile.gettempdir()} ({exc.strerror}); check "
-                f"free space there, or set TMPDIR to a folder with room for {4 * self._volume * self.n / 2**20:.0f} MB")
+                f"free space there, or set TMPDIR to a folder with room for "
+                f"{4 * self._volume * (self.n + len(self.names)) / 2**20:.0f} MB")
 
-    def put(self, spectra: np.ndarray, kept: np.ndarray, y0: int, z0: int) -> None:
+    def put(self, spectra: np.ndarray, kept: np.ndarray, y0: int, z0: int, results: dict | None = None) -> None:
         """The spectra (X, ky, kz, n) of the voxels ``[:, y0:y0 + ky, z0:z0 + kz]`` (whole slices, or rows of
-        one slice: one byte range per T2 value), NaN where not ``kept`` (X, ky, kz)."""
+        one slice: one byte range per volume), NaN where not ``kept`` (X, ky, kz); ``results[name]`` (X, ky, kz)
+        for each of ``names``."""
         if spectra.shape[1] != self.shape[1] and spectra.shape[2] != 1:
             raise ValueError(f"spectra {spectra.shape}: whole slices or rows of one slice")
+        blocks = [np.where(kept, spectra[..., j], np.nan) for j in range(self.n)]
+        blocks += [(results or {})[name] for name in self.names]
         try:
-            for j in range(self.n):
-                raw = memoryview(np.where(kept, spectra[..., j], np.nan).astype(np.float32).tobytes(order="F"))
-                at = 4 * (j * self._volume + z0 * self._plane + y0 * self.shape[0])
+            for v, block in enumerate(blocks):
+                raw = memoryview(np.asarray(block, np.float32).tobytes(order="F"))
+                at = 4 * (v * self._volume + z0 * self._plane + y0 * self.shape[0])
                 while raw:
                     done = os.pwrite(self._fh.fileno(), raw, at)
                     raw, at = raw[done:], at + done
@@ -263,6 +279,20 @@ class _SpectrumFile:
             for j in range(self.n):
                 rows[i, j] = np.frombuffer(self._read(4, 4 * (j * self._volume + int(at))), np.float32)[0]
         return rows
+
+    def values(self, name: str, idx: np.ndarray) -> np.ndarray:
+        """The result ``name`` (one of ``names``) of the voxels ``idx`` (flat C-order indices), float32."""
+        v = self.n + self.names.index(name)
+        x, y, z = np.unravel_index(np.asarray(idx, np.intp), self.shape)
+        at = x + self.shape[0] * (y + self.shape[1] * z)
+        return np.array([np.frombuffer(self._read(4, 4 * (v * self._volume + int(a))), np.float32)[0] for a in at],
+                        np.float32)
+
+    def slab(self, name: str, z0: int, z1: int) -> np.ndarray:
+        """The result ``name`` of the slices ``z0:z1``, flat in C order (as :class:`_Collect` holds them)."""
+        v = self.n + self.names.index(name)
+        raw = self._read(4 * self._plane * (z1 - z0), 4 * (v * self._volume + z0 * self._plane))
+        return np.frombuffer(raw, np.float32).reshape((*self.shape[:2], z1 - z0), order="F").reshape(-1)
 
     def volumes(self):
         """The (X, Y, Z) volume of each T2 value in turn."""
@@ -377,10 +407,12 @@ def _calibrate(model, out: _Collect, *, n_sub: int, replicates: int, spectra: _S
     pick = good[np.unique(np.linspace(0, good.size - 1, min(n_sub, good.size)).astype(int))]
     if spectra is not None:
         rows = spectra.rows(pick)
+        angle = spectra.values("angle", pick) if "angle" in spectra.names else out.arr["angle"][pick]
     else:
+        angle = out.arr["angle"][pick]
         assert out.spectrum is not None, "the spectra are held"
         rows = out.spectrum[pick]
-    cal = calibrate_fraction_se(model, rows.astype(float), out.arr["angle"][pick].astype(float),
+    cal = calibrate_fraction_se(model, rows.astype(float), angle.astype(float),
                                 out.arr["sigma"][pick].astype(float), replicates=replicates)
     return cal
 
@@ -562,14 +594,15 @@ def run_t2_spectrum(
     run.noise_info = noise_info
     shape = series.shape
     n_t2 = model.basis.t2.size
-    # the per-voxel results without the spectra are held whole (the noise level and the standard errors need
-    # them all); the spectra go to a temporary file slab by slab
-    out = _Collect(int(np.prod(shape)), n_t2, spectra=False)
+    # what the noise level and the standard errors need of every voxel is held whole (status, sigma, SNR, chi2,
+    # the angle's SE, dof: 21 bytes a voxel); the spectra and the other results go to a temporary file
+    out = _Collect(int(np.prod(shape)), n_t2, spectra=False,
+                   names=tuple(k for k in _Collect.names if k not in _SPILLED))
     n_mask = int(np.count_nonzero(run.mask))
     workers = resolve_jobs(common.n_jobs)
     # chunks: at most SPECTRUM_CHUNK voxels, and at least one per worker (results do not depend on it)
     chunk = max(256, min(common.chunk_size, SPECTRUM_CHUNK, -(-n_mask // workers)))
-    spectra = _SpectrumFile(shape, n_t2)
+    spectra = _SpectrumFile(shape, n_t2, _SPILLED)
     try:
         progress = Progress(n_mask, "fitting", quiet=common.quiet)
 
@@ -592,7 +625,8 @@ def run_t2_spectrum(
                 out.place(sub, shape, (box[0], box[1], slice(z0, z0 + dims[2])))
                 assert sub.spectrum is not None
                 kept = np.isin(sub.status, _KEPT)  # a new noise level below moves voxels only within _KEPT
-                spectra.put(sub.spectrum.reshape(*dims, n_t2), kept.reshape(dims), y0, z0)
+                spectra.put(sub.spectrum.reshape(*dims, n_t2), kept.reshape(dims), y0, z0,
+                            {k: sub.arr[k].reshape(dims) for k in _SPILLED})
                 del sub, data
             return n
 
@@ -661,6 +695,8 @@ def _finish_run(run, model, settings: SpectrumSettings, out: _Collect, spectra: 
         kept_all = np.isin(out.status, _KEPT)
         for z0, z1 in [(0, shape[2])] if common.scheduler else _slab_steps(shape):
             part = out.slab(shape, z0, z1)
+            for k in _SPILLED:
+                part.arr[k] = spectra.slab(k, z0, z1)
             dims = (shape[0], shape[1], z1 - z0)
             se = fraction_se(cal, part.arr["fraction"], part.arr["snr"])
             maps = _mapset(model, part, dims, se, n_fitted if z0 == 0 else 0)  # n_fitted: summed over the slabs
