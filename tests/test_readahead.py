@@ -118,3 +118,17 @@ def test_outputs_are_the_same_with_and_without_reading_ahead(tmp_path, monkeypat
     assert len(maps) >= 8
     for name in maps:
         assert a[name] == b[name], name
+
+
+def test_several_files_are_read_one_ahead_and_in_any_order(tmp_path):
+    # 3D files of a series: the next is decompressed only once the one before was taken (memory), and
+    # taking them out of turn does not wait forever (reference for the content: the standard library)
+    paths = [write_nifti(tmp_path / f"v{k}.nii.gz", np.full((6, 5, 4), float(k), np.float32)) for k in range(3)]
+    readahead.start(paths)
+    first = readahead._PENDING[str(paths[0])]
+    first.done.wait(5)
+    time.sleep(0.05)
+    assert not readahead._PENDING[str(paths[1])].done.is_set()  # waits for the first to be taken
+    assert readahead.take(paths[2]) == gzip.decompress(paths[2].read_bytes())  # out of turn: no deadlock
+    assert readahead.take(paths[0]) == gzip.decompress(paths[0].read_bytes())
+    assert readahead.take(paths[1]) == gzip.decompress(paths[1].read_bytes())

@@ -28,6 +28,7 @@ ahead.
 
 from __future__ import annotations
 
+import itertools
 import os
 import threading
 from pathlib import Path
@@ -48,6 +49,8 @@ class _ReadAhead:
         self.done = threading.Event()
         self.data: bytes | None = None
         self.cancelled = False
+        self.taken = threading.Event()  # given out (or forgotten): the next file may be decompressed
+        self.before: _ReadAhead | None = None  # the file read before this one
 
     def read(self) -> None:
         try:
@@ -59,7 +62,17 @@ class _ReadAhead:
 
 
 def _read_all(todo: list[_ReadAhead]) -> None:
-    for ahead in todo:
+    """Decompress the files in turn, each once the one before was taken.
+
+    Several 3D files are copied one by one into the series: holding them all decompressed beside it
+    would double the memory of the loading. One file ahead of the loader is what the overlap needs.
+    """
+    for k, ahead in enumerate(todo):
+        if k:
+            todo[k - 1].taken.wait()
+        if ahead.cancelled:
+            ahead.done.set()
+            continue
         ahead.read()
 
 
@@ -119,6 +132,8 @@ def start(paths, *, max_bytes: float | None = None) -> None:
                 if key not in _PENDING and key.endswith(".gz") and os.path.isfile(key):
                     _PENDING[key] = ahead = _ReadAhead(key)
                     todo.append(ahead)
+    for earlier, later in itertools.pairwise(todo):
+        later.before = earlier
     if todo:
         threading.Thread(target=_read_all, args=(todo,), name="qmap-readahead", daemon=True).start()
 
@@ -134,6 +149,10 @@ def take(path) -> bytes | None:
         ahead = _PENDING.pop(_key(path), None)
     if ahead is None:
         return None
+    earlier: _ReadAhead | None = ahead
+    while earlier is not None:  # asked for out of turn: the files before it are not waited for any longer
+        earlier.taken.set()
+        earlier = earlier.before
     ahead.done.wait()
     if ahead.stat is None or _stat(ahead.path) != ahead.stat:
         return None
@@ -145,4 +164,5 @@ def discard() -> None:
     with _LOCK:
         for ahead in _PENDING.values():
             ahead.cancelled = True
+            ahead.taken.set()
         _PENDING.clear()
