@@ -132,3 +132,20 @@ def test_several_files_are_read_one_ahead_and_in_any_order(tmp_path):
     assert readahead.take(paths[2]) == gzip.decompress(paths[2].read_bytes())  # out of turn: no deadlock
     assert readahead.take(paths[0]) == gzip.decompress(paths[0].read_bytes())
     assert readahead.take(paths[1]) == gzip.decompress(paths[1].read_bytes())
+
+
+def test_the_provenance_hash_of_a_file_read_ahead_is_its_sha256(tmp_path):
+    # reference: hashlib over the file's bytes (standard library)
+    import hashlib
+
+    from qmap.io.writer import sha256_file
+
+    path = write_nifti(tmp_path / "a.nii.gz", np.arange(4 * 4 * 3 * 2, dtype=np.float32).reshape(4, 4, 3, 2))
+    readahead.start([path])
+    assert readahead.take(path) is not None
+    assert readahead.sha256(path) == sha256_file(path) == hashlib.sha256(path.read_bytes()).hexdigest()
+    time.sleep(0.01)
+    write_nifti(path, np.zeros((4, 4, 3, 2), np.float32))  # changed since: hashed anew
+    assert readahead.sha256(path) is None
+    assert sha256_file(path) == hashlib.sha256(path.read_bytes()).hexdigest()
+    readahead.discard()

@@ -37,6 +37,8 @@ __all__ = ["discard", "start", "take"]
 
 #: absolute path -> its read-ahead (one per file)
 _PENDING: dict[str, _ReadAhead] = {}
+#: absolute path -> its read-ahead, kept after the data were taken (for :func:`sha256`)
+_HASHED: dict[str, _ReadAhead] = {}
 _LOCK = threading.Lock()
 
 
@@ -51,6 +53,8 @@ class _ReadAhead:
         self.cancelled = False
         self.taken = threading.Event()  # given out (or forgotten): the next file may be decompressed
         self.before: _ReadAhead | None = None  # the file read before this one
+        self.digest: str | None = None  # SHA-256 of the file (for the provenance), once ``hashed``
+        self.hashed = threading.Event()
 
     def read(self) -> None:
         try:
@@ -59,6 +63,11 @@ class _ReadAhead:
                 self.data = data
         finally:
             self.done.set()
+        try:  # after the data are given out: the loader does not wait for this
+            if not self.cancelled:
+                self.digest = _sha256(self.path)
+        finally:
+            self.hashed.set()
 
 
 def _read_all(todo: list[_ReadAhead]) -> None:
@@ -100,6 +109,18 @@ def _decompress(path: str) -> bytes | None:
         return None
 
 
+def _sha256(path: str) -> str | None:
+    """SHA-256 of the file (hex), hashed from the mapped file (hashlib releases the lock), or None."""
+    import hashlib
+    import mmap
+
+    try:
+        with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as packed:
+            return hashlib.sha256(packed).hexdigest()
+    except (OSError, ValueError):
+        return None
+
+
 def _stat(path: str) -> tuple[int, int] | None:
     try:
         st = os.stat(path)
@@ -130,7 +151,7 @@ def start(paths, *, max_bytes: float | None = None) -> None:
             for p in paths:
                 key = _key(p)
                 if key not in _PENDING and key.endswith(".gz") and os.path.isfile(key):
-                    _PENDING[key] = ahead = _ReadAhead(key)
+                    _PENDING[key] = _HASHED[key] = ahead = _ReadAhead(key)
                     todo.append(ahead)
     for earlier, later in itertools.pairwise(todo):
         later.before = earlier
@@ -159,10 +180,29 @@ def take(path) -> bytes | None:
     return ahead.data
 
 
+def sha256(path) -> str | None:
+    """SHA-256 (hex) of ``path`` as the read-ahead hashed it (waiting for it), or None (then hash the file).
+
+    None when the file was not read ahead or has changed since.
+    """
+    with _LOCK:
+        ahead = _HASHED.get(_key(path))
+    if ahead is None:
+        return None
+    ahead.hashed.wait()
+    if ahead.stat is None or _stat(ahead.path) != ahead.stat:
+        return None
+    return ahead.digest
+
+
 def discard() -> None:
     """Forget every read-ahead not taken (its data are freed; a reading still running drops its result)."""
     with _LOCK:
         for ahead in _PENDING.values():
             ahead.cancelled = True
             ahead.taken.set()
+        for ahead in _HASHED.values():
+            ahead.cancelled = True
+            ahead.taken.set()
         _PENDING.clear()
+        _HASHED.clear()

@@ -100,6 +100,12 @@ class OutputFile:
 
 
 def sha256_file(path: str | Path, bufsize: int = 1 << 20) -> str:
+    """SHA-256 (hex) of the file ``path`` (an input read ahead was hashed meanwhile: :mod:`qmap.io.readahead`)."""
+    from . import readahead
+
+    known = readahead.sha256(path)
+    if known is not None:
+        return known
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(bufsize), b""):
