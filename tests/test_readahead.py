@@ -149,3 +149,15 @@ def test_the_provenance_hash_of_a_file_read_ahead_is_its_sha256(tmp_path):
     assert readahead.sha256(path) is None
     assert sha256_file(path) == hashlib.sha256(path.read_bytes()).hexdigest()
     readahead.discard()
+
+
+def test_the_bytes_given_out_are_not_kept(tmp_path):
+    # a series of several 3D files is copied file by file into one array: a decompressed file kept after
+    # it was taken (its entry stays for the digest) would hold the whole series a second time
+    paths = [write_nifti(tmp_path / f"v{k}.nii.gz", np.full((6, 5, 4), float(k), np.float32)) for k in range(2)]
+    readahead.start(paths)
+    for p in paths:
+        assert readahead.take(p) is not None
+        assert readahead._HASHED[str(p)].data is None
+    assert readahead.sha256(paths[1]) is not None  # the digest is still there
+    readahead.discard()

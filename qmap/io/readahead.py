@@ -177,7 +177,8 @@ def take(path) -> bytes | None:
     ahead.done.wait()
     if ahead.stat is None or _stat(ahead.path) != ahead.stat:
         return None
-    return ahead.data
+    data, ahead.data = ahead.data, None  # kept for its digest (sha256) only: the bytes are the caller's now
+    return data
 
 
 def sha256(path) -> str | None:
