@@ -28,7 +28,6 @@ ahead.
 
 from __future__ import annotations
 
-import itertools
 import os
 import threading
 from pathlib import Path
@@ -51,8 +50,6 @@ class _ReadAhead:
         self.done = threading.Event()
         self.data: bytes | None = None
         self.cancelled = False
-        self.taken = threading.Event()  # given out (or forgotten): the next file may be decompressed
-        self.before: _ReadAhead | None = None  # the file read before this one
         self.digest: str | None = None  # SHA-256 of the file (for the provenance), once ``hashed``
         self.hashed = threading.Event()
 
@@ -68,21 +65,6 @@ class _ReadAhead:
                 self.digest = _sha256(self.path)
         finally:
             self.hashed.set()
-
-
-def _read_all(todo: list[_ReadAhead]) -> None:
-    """Decompress the files in turn, each once the one before was taken.
-
-    Several 3D files are copied one by one into the series: holding them all decompressed beside it
-    would double the memory of the loading. One file ahead of the loader is what the overlap needs.
-    """
-    for k, ahead in enumerate(todo):
-        if k:
-            todo[k - 1].taken.wait()
-        if ahead.cancelled:
-            ahead.done.set()
-            continue
-        ahead.read()
 
 
 def _decompress(path: str) -> bytes | None:
@@ -134,29 +116,28 @@ def _key(path) -> str:
 
 
 def start(paths, *, max_bytes: float | None = None) -> None:
-    """Begin decompressing the ``.nii.gz`` files ``paths`` in a background thread.
+    """Begin decompressing the series' ``.nii.gz`` file in a background thread.
 
     Parameters
     ----------
     paths : list of path-like
-        The series' files (one 4D NIfTI or several 3D NIfTIs), in order. Uncompressed ``.nii`` files
-        are not read ahead (nibabel maps them into memory: nothing to gain).
+        The series' files (one 4D NIfTI or several 3D NIfTIs), in order. Of several files only the
+        first is read ahead: the loader copies the files one by one into the series, and a second file
+        decompressed beside them would raise the memory of the loading (by one file). An uncompressed
+        ``.nii`` is not read ahead (nibabel maps it into memory: nothing to gain).
     max_bytes : float, optional
         The run's memory budget (``--max-memory``): with a budget nothing is read ahead (the series may
         be read in slabs, and the read-ahead would be held beside them).
     """
-    todo = []
-    if max_bytes is None:
-        with _LOCK:
-            for p in paths:
-                key = _key(p)
-                if key not in _PENDING and key.endswith(".gz") and os.path.isfile(key):
-                    _PENDING[key] = _HASHED[key] = ahead = _ReadAhead(key)
-                    todo.append(ahead)
-    for earlier, later in itertools.pairwise(todo):
-        later.before = earlier
-    if todo:
-        threading.Thread(target=_read_all, args=(todo,), name="qmap-readahead", daemon=True).start()
+    paths = list(paths)[:1]
+    if max_bytes is not None or not paths:
+        return
+    key = _key(paths[0])
+    with _LOCK:
+        if key in _PENDING or not key.endswith(".gz") or not os.path.isfile(key):
+            return
+        _PENDING[key] = _HASHED[key] = ahead = _ReadAhead(key)
+    threading.Thread(target=ahead.read, name="qmap-readahead", daemon=True).start()
 
 
 def take(path) -> bytes | None:
@@ -170,10 +151,6 @@ def take(path) -> bytes | None:
         ahead = _PENDING.pop(_key(path), None)
     if ahead is None:
         return None
-    earlier: _ReadAhead | None = ahead
-    while earlier is not None:  # asked for out of turn: the files before it are not waited for any longer
-        earlier.taken.set()
-        earlier = earlier.before
     ahead.done.wait()
     if ahead.stat is None or _stat(ahead.path) != ahead.stat:
         return None
@@ -201,9 +178,7 @@ def discard() -> None:
     with _LOCK:
         for ahead in _PENDING.values():
             ahead.cancelled = True
-            ahead.taken.set()
         for ahead in _HASHED.values():
             ahead.cancelled = True
-            ahead.taken.set()
         _PENDING.clear()
         _HASHED.clear()
