@@ -47,6 +47,7 @@ import numpy as np
 from .. import status as st
 from ..linalg import chol_inverse, chol_solve
 from ..models.base import SeparableModel
+from .exponential import fit_exponential
 from .noise_floor import RICIAN_SWITCH, NoiseFloor
 from .optimizer import gram as _normal
 from .optimizer import levenberg_marquardt, row_all, row_any, row_max, row_min
@@ -298,7 +299,6 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     # all-ones weights are skipped in the hot loop (and only made for the grid search, which takes them)
     wl = noise.weights(y, sigma) if noise.weighted else None
     n_used = np.full(n, y.shape[1]) if wl is None else wl.sum(axis=1).astype(int)
-    P = len(fit_model.param_names)
     L = len(fit_model.linear)
     lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
     lo = np.concatenate([noise.linear_lower(fit_model), lo_nl])
@@ -320,6 +320,55 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
     def evaluate(p, idx):
         return run_model.signal_jacobian(p, _take(ctx, idx))
 
+    JTJ = None
+    if _one_exponential(model, fit_model, wl, guide, ctx):
+        p, rss, JTJ, conv, nit = _fit_one_exponential(model, y, lo, hi, max_iter)
+        J = None
+        yfit = y
+    else:
+        p, rss, J, conv, nit, yfit = _fit_general(model, run_model, y, wl, ctx, lo, hi, lo_nl, hi_nl, evaluate,
+                                                  max_iter, loose)
+    return _finish(model, fit_model, run_model, guide, finish_model, noise, y, yfit, wl, ctx, sigma, stderr, lo, hi,
+                   lo_nl, hi_nl, max_iter, n_used, loose, p, rss, J, JTJ, conv, nit)
+
+
+def _one_exponential(model, fit_model, wl, guide, ctx) -> bool:
+    """The fit takes the one-exponential Newton path (:mod:`qmap.fitting.exponential`): a model that is one
+    decaying exponential, fitted as it is (no offset column, no stand-in), every sample weighted equally."""
+    return (getattr(model, "one_exponential", False) and fit_model is model and wl is None and guide is None
+            and not ctx and not getattr(model, "sign_ambiguous", False))
+
+
+def _fit_one_exponential(model, y, lo, hi, max_iter) -> tuple:
+    """:func:`~qmap.fitting.exponential.fit_exponential`, with the voxels it leaves fitted by the general
+    Levenberg-Marquardt iteration from the same start; returns ``p, rss, J^T J, converged, n_iter``."""
+    fast = fit_exponential(model, y)
+    p, rss, JTJ, conv, nit = fast.params, fast.rss, fast.jtj, fast.converged, fast.n_iter
+    hard = fast.hard
+    if hard.size:
+        lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
+        yh = y[hard]
+        theta0 = np.clip(p[hard, 1:], lo_nl, hi_nl)
+        c0 = linear_amplitudes(model, yh, None, theta0, None)
+        c0 = np.maximum(np.where(np.isfinite(c0), c0, 0.0), lo[:1])
+
+        def evaluate(pp, idx):
+            return model.signal_jacobian(pp, None)
+
+        ph, rssh, Jh, convh, nith = levenberg_marquardt(evaluate, yh, None, np.concatenate([c0, theta0], 1), lo, hi,
+                                                        max_iter=max_iter)
+        p[hard], rss[hard], conv[hard], nit[hard] = ph, rssh, convh, nith
+        JTJ[hard] = _normal(Jh, None)
+    return p, rss, JTJ, conv, nit
+
+
+def _fit_general(model, run_model, y, wl, ctx, lo, hi, lo_nl, hi_nl, evaluate, max_iter, loose) -> tuple:
+    """Start (closed form or grid search) and Levenberg-Marquardt of every start candidate; the best per voxel.
+
+    Returns ``p, rss, J, converged, n_iter`` and the data variant each voxel was fitted to.
+    """
+    n = y.shape[0]
+    L = len(run_model.linear)
     starts = []
     for yc in model.candidates(y):
         theta0 = model.initial_guess(yc, wl, ctx)
@@ -359,12 +408,33 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
                 best[k][take] = v[take]
     assert best is not None, "a model offers at least one start candidate"
     p, rss, J, conv, nit, yfit = best
+    return p, rss, J, conv, nit, yfit
 
+
+def _finish(model, fit_model, run_model, guide, finish_model, noise, y, yfit, wl, ctx, sigma, stderr, lo, hi, lo_nl,
+            hi_nl, max_iter, n_used, loose, p, rss, J, JTJ, conv, nit) -> ChunkFit:
+    """The Rician refinement, the exact model's finish after a stand-in, the covariance, quality and status.
+
+    ``J`` is the Jacobian of the fit (n, P, m), or None when the fit gave ``JTJ`` (its ``J^T J``) instead.
+    """
+    n = y.shape[0]
+    P = len(fit_model.param_names)
+    L = len(fit_model.linear)
     sel = noise.rician_select(run_model, p, sigma, ctx) if noise.rician else np.zeros(0, np.intp)
     if loose and sel.size < n:
         p, rss, J, conv, nit = _refine_rows(run_model, np.setdiff1d(np.arange(n), sel), yfit, wl, (p, rss, J, conv, nit),
                                             ctx, lo, hi, max_iter)
-    if sel.size:
+    if sel.size and J is None:  # the one-exponential path: the Jacobian of the selected voxels only
+        assert JTJ is not None and guide is None and not ctx, "the one-exponential path gives J^T J"
+        sig_sel = sigma if np.ndim(sigma) == 0 else np.asarray(sigma)[sel]
+        p_s, rss_s, J_s, conv_s, nit_s = noise.rician_refine(
+            run_model, yfit[sel], None, p[sel], rss[sel], run_model.signal_jacobian(p[sel], None)[1], conv[sel],
+            nit[sel], sig_sel, None, lo, hi, max_iter=max_iter, select=np.arange(sel.size), se_tol=1e-3)
+        p[sel], rss[sel], conv[sel], nit[sel] = p_s, rss_s, conv_s, nit_s
+        JTJ[sel] = _normal(J_s, None)
+        J = np.empty((n, P, y.shape[1]))  # only the selected rows are read (the Rician covariance below)
+        J[sel] = J_s
+    elif sel.size:
         p, rss, J, conv, nit = noise.rician_refine(run_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
                                                    max_iter=max_iter, select=sel,
                                                    se_tol=1e-3 if guide is None else FINISH_SE_TOL)
@@ -378,7 +448,8 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
                                                        hi, max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
 
     # covariance (see qmap.fitting.uncertainty for the two conventions)
-    JTJ = _normal(J, wl)
+    if JTJ is None:
+        JTJ = _normal(J, wl)
     inv = chol_inverse(JTJ)
     dof = n_used - P
     with np.errstate(divide="ignore", invalid="ignore"):

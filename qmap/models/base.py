@@ -82,6 +82,10 @@ class SeparableModel(ABC):
     #: :meth:`initial_guess` (when it gives a start) is already the least-squares optimum: with several
     #: :meth:`candidates` the solver keeps each voxel's candidate of lowest start RSS and refines that one only
     exact_start: bool = False
+    #: the signal is one decaying exponential ``M0 exp(-x / theta)`` (one amplitude, one non-linear parameter, no
+    #: voxel inputs, one candidate) and the model has ``decay(rate)`` = ``exp(-x rate)`` (n, m): an unweighted fit
+    #: then runs by Newton's method on the rate (:mod:`qmap.fitting.exponential`), to the same minimum
+    one_exponential: bool = False
     #: the sample-axis values the model is evaluated at (seconds / degrees)
     x: np.ndarray
 

@@ -38,6 +38,7 @@ class MonoExponential(SeparableModel):
 
     name = "monoexp"
     linear = ("M0",)
+    one_exponential = True
 
     @classmethod
     def from_provenance(cls, model: dict, acquisition: dict, x) -> MonoExponential:
