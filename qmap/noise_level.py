@@ -41,6 +41,7 @@ import numpy.typing as npt
 from .docstrings import shared_parameters
 from .errors import InputError
 from .noise import _check_coils
+from .special import chi2_isf, chi2_pdf, chi2_ppf
 
 __all__ = [
     "ArraySource",
@@ -596,41 +597,15 @@ def _clipped_sigma(bg: np.ndarray, coils: int, quantum: float = 0.0) -> tuple[fl
     return new, 1.0 - kept.size / bg.size
 
 
-# chi-squared quantiles and densities through scipy.special (scipy.stats costs ~0.7 s to import)
-
-
-def _chi2_ppf(p, k):
-    """Quantile of the chi-squared distribution with ``k`` degrees of freedom (array_like k).
-
-    ``X / 2`` of a chi-squared variable with ``k`` degrees of freedom is Gamma(k/2, 1) distributed, so the
-    quantiles come from the inverse regularised incomplete gamma functions (DLMF 8.2.4;
-    ``scipy.special.gammaincinv`` / ``gammainccinv``).
-    """
-    from scipy import special
-    return 2.0 * special.gammaincinv(np.asarray(k, float) / 2.0, p)
-
-
-def _chi2_isf(p, k):
-    """Upper-tail quantile (the x with P(X > x) = p) of chi-squared with ``k`` degrees of freedom."""
-    from scipy import special
-    return 2.0 * special.gammainccinv(np.asarray(k, float) / 2.0, p)
-
-
-def _chi2_pdf(x: float, k: float) -> float:
-    """Density of chi-squared with ``k`` degrees of freedom at ``x``."""
-    from scipy import special
-    return math.exp((k / 2 - 1) * math.log(x) - x / 2 - (k / 2) * math.log(2.0) - special.gammaln(k / 2))
-
-
 def _chi_pdf(x: float, k: int) -> float:
     """Density of the chi distribution with ``k`` degrees of freedom at ``x`` (2 x chi2_pdf(x^2) x)."""
-    return 2.0 * x * _chi2_pdf(x * x, float(k))
+    return 2.0 * x * float(chi2_pdf(x * x, float(k)))
 
 
 @functools.lru_cache(maxsize=64)
 def _chi_tail(coils: int) -> float:
     """The ``1 - 1e-6`` quantile of the chi distribution with ``2 * coils`` dof."""
-    return math.sqrt(_chi2_isf(1e-6, 2.0 * int(coils)))
+    return math.sqrt(chi2_isf(1e-6, 2.0 * int(coils)))
 
 
 @functools.lru_cache(maxsize=64)
@@ -638,7 +613,7 @@ def _chi_median(coils: int) -> float:
     """Median of the chi distribution with ``2 * coils`` degrees of freedom."""
     if coils == 1:
         return math.sqrt(2.0 * math.log(2.0))
-    return math.sqrt(_chi2_ppf(0.5, 2.0 * int(coils)))
+    return math.sqrt(chi2_ppf(0.5, 2.0 * int(coils)))
 
 
 # ---------------------------------------------------------------------------
@@ -761,7 +736,7 @@ def _median_sigma(values: np.ndarray, quantum: float, coils: int) -> float:
     frac = np.cumsum(np.bincount(k - k0)) / values.size
     j = int(np.argmin(np.abs(frac - 0.5)))
     f = min(max(float(frac[j]), 1e-9), 1 - 1e-9)
-    return (j + k0 + 0.5) * quantum / math.sqrt(_chi2_ppf(f, 2.0 * coils))
+    return (j + k0 + 0.5) * quantum / math.sqrt(chi2_ppf(f, 2.0 * coils))
 
 
 def _moments_coils(bg: np.ndarray, quantum: float, keep: np.ndarray | None = None) -> tuple[float, float]:
@@ -1132,14 +1107,14 @@ def pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
     their pool: sigma is the square root of the median of the ``u_i``. A minority of voxels where the
     model does not fit (edges, partial volume) moves the median little.
     """
-    return math.sqrt(float(np.median(rss / _chi2_ppf(0.5, dof))))
+    return math.sqrt(float(np.median(rss / chi2_ppf(0.5, dof))))
 
 
 def pooled_relative_se(dof: np.ndarray) -> float:
     """Relative standard error of :func:`pooled_sigma` (sample-median asymptotics, median dof)."""
     k = float(np.median(dof))
-    q = float(_chi2_ppf(0.5, k))
-    return 1.0 / (4.0 * _chi2_pdf(q, k) * q * math.sqrt(dof.size))
+    q = float(chi2_ppf(0.5, k))
+    return 1.0 / (4.0 * float(chi2_pdf(q, k)) * q * math.sqrt(dof.size))
 
 
 def _fitted_data(model, y: np.ndarray, pred: np.ndarray) -> np.ndarray:
@@ -1490,7 +1465,7 @@ def smooth_noise_map(
     s2 = np.zeros(idx.size)
     s2[use] = rss[use] / dof[use]
     # misfits: far above what a 3x higher noise would give by chance
-    limit = 9.0 * g * g * _chi2_isf(1e-4, np.maximum(dof, 1.0)) / np.maximum(dof, 1.0)
+    limit = 9.0 * g * g * chi2_isf(1e-4, np.maximum(dof, 1.0)) / np.maximum(dof, 1.0)
     use &= s2 <= limit
     w = np.zeros(int(np.prod(shape)))
     v = np.zeros_like(w)

@@ -9,11 +9,10 @@ thread import nothing but the standard library and ``isal``), so the two
 overlap; the loader (:func:`qmap.io.nifti.image_data`) then makes the voxel
 array from the decompressed bytes (:func:`take`; no copy, so the array is
 read-only: the one change a run makes to its series, clipping small negative
-values, makes a copy) instead of reading the file again. ``scipy.special``,
-which the noise-level estimate and Rician fits need, is imported in a thread
-once the loading starts (:func:`qmap.io.series.load_series`): started earlier,
-its long-held interpreter lock slowed the main thread's imports more than the
-overlap gained.
+values, makes a copy) instead of reading the file again. A run with one coil
+does not import ``scipy.special`` at all (:mod:`qmap.special`): its import
+holds the interpreter lock for ~0.1 s, which stalled the imports and the
+loading beside it wherever it was placed (measured).
 
 Measured on the 1M-voxel x 12-echo series of ``scripts/benchmark.py`` with the
 machine otherwise idle: the series is in memory 0.2 s after the start instead

@@ -2,10 +2,7 @@
 
 from __future__ import annotations
 
-import importlib
 import mmap
-import sys
-import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -382,7 +379,6 @@ def load_series(
         data = None
         n = shape4[3]
     else:
-        _import_meanwhile("scipy.special")
         data, first = _load_volumes(paths, allow_complex=allow_complex, what=what)
         n = data.shape[3]
     sidecars = [read_sidecar(p) for p in paths]
@@ -399,7 +395,7 @@ def load_series(
             sources[skey] = s
     if n < min_volumes:
         raise InputError(f"{where}: {n} volumes; this fit needs at least {min_volumes}")
-    if np.unique(vals).size != vals.size:
+    if len(set(np.asarray(vals).tolist())) != vals.size:  # (not np.unique: it imports numpy.ma, ~10 ms of start-up)
         raise InputError(
             f"{where}: repeated {key} values {_fmt(vals, key)}; every volume must have its own value "
             f"(check the converter's sidecars, or average repeated volumes first)"
@@ -426,19 +422,6 @@ def load_series(
     if order is not None:
         series.select_volumes(order)
     return series
-
-
-def _import_meanwhile(module: str) -> None:
-    """Import ``module`` in a thread while the series is read (the decompression releases the GIL).
-
-    The noise-level estimate of a fitting run (and a Rician fit) use scipy.special, whose import
-    (~0.15 s) otherwise runs after the reading. The command line starts this import earlier still,
-    with the reading itself (:mod:`qmap.io.readahead`); then it is under way here already. The thread
-    is not a daemon: a run that fails early waits for the import to finish instead of exiting under it.
-    """
-    if module in sys.modules:
-        return
-    threading.Thread(target=importlib.import_module, args=(module,), name=f"qmap-import-{module}").start()
 
 
 def _in_memory_bytes(paths, allow_complex: bool) -> float:
