@@ -260,15 +260,17 @@ def check_series_shape(series, model, mask: np.ndarray, *, enabled: bool = True,
 
 
 # ----------------------------------------------------------------------------- after the fit
-def warn_fit_quality(maps, mask: np.ndarray, mask_spec) -> list[str]:
+def warn_fit_quality(maps, mask: np.ndarray, mask_spec, r2: np.ndarray | None = None) -> list[str]:
     """Warnings after a fit: low median R-squared of the fitted voxels; an automatic mask covering everything.
 
-    Returns the warnings issued (also logged).
+    ``r2``: the R-squared map when the caller has read it already (a streamed map is read from its file on
+    each access). Returns the warnings issued (also logged).
     """
     out = []
     spec = "auto" if mask_spec is None else str(mask_spec)
     good = maps.status == 0
-    r2 = maps.quality.get("rsquared")
+    if r2 is None:
+        r2 = maps.quality.get("rsquared")
     v = np.asarray(r2)[good] if r2 is not None else np.zeros(0)
     v = v[np.isfinite(v)]  # closed-form maps (b1) have no R-squared
     if v.size and spec != "none":

@@ -905,11 +905,12 @@ def write_run(
 
 def _write_run(series, maps, stream, *, common, prefix, noise_info, options, model_info, extra_inputs, notes, t0,
                mask_desc, extra_outputs) -> RunReport:
-    warn_fit_quality(maps, maps.status != st.MASKED, common.mask)
+    r2 = maps.quality.get("rsquared")  # read once (a streamed map is read from its file on each access)
+    warn_fit_quality(maps, maps.status != st.MASKED, common.mask, r2=r2)
     outs = _outputs_for(maps, prefix, common.units, data=stream is None) + list(extra_outputs or [])
     notes = list(notes or [])
     good = maps.status == st.FITTED
-    if "rsquared" in maps.quality and good.any() and not np.isfinite(maps.quality["rsquared"][good]).any():
+    if r2 is not None and good.any() and not np.isfinite(np.asarray(r2)[good]).any():
         model_info = dict(model_info, quality=f"R-squared and RMS residual: {EXACTLY_DETERMINED}")
         notes.append("R-squared and RMS residual are NaN: as many samples as free parameters, the fit is exactly "
                      "determined and its quality is not measurable")
