@@ -233,10 +233,21 @@ def fit_volume(
     fit_model = noise.wrap(model)
     se_in = {k: np.broadcast_to(np.asarray(v, float), shape).reshape(-1)[idx] for k, v in (input_se or {}).items()}
 
+    kept = np.zeros(256, bool)
+    kept[list(kept_codes)] = True
+
     def on_chunk(a: int, b: int, fit) -> None:
         status[idx[a:b]] = fit.status
-        keep = np.isin(fit.status, kept_codes)
-        at = a + np.flatnonzero(keep)  # positions in the fitted-voxel maps
+        keep_mask = kept[fit.status]
+        # the chunk's voxels that keep their values, and their positions in the fitted-voxel maps: slices when
+        # all do (the rule; no fancy indexing), else indices
+        keep: slice | np.ndarray
+        at: slice | np.ndarray
+        if keep_mask.all():
+            keep, at = slice(None), slice(a, b)
+        else:
+            keep = np.flatnonzero(keep_mask)
+            at = a + keep
         cov = fit.cov
         for name, se in se_in.items():  # an input's own uncertainty (e.g. the B1 map's), to first order
             assert ctx is not None, "an input with a standard error is one of the model inputs"
