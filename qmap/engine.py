@@ -25,7 +25,7 @@ from .fitting.noise_floor import NoiseFloor
 from .fitting.problem import FitProblem
 from .fitting.solver import ChunkFit, fit_chunk
 
-__all__ = ["DEFAULT_CHUNK", "Progress", "dask_client", "fit_voxels", "resolve_jobs"]
+__all__ = ["DEFAULT_CHUNK", "Progress", "dask_client", "fit_voxels", "resolve_jobs", "worker_pool"]
 
 
 class SampleRows(Protocol):
@@ -244,6 +244,11 @@ def fit_voxels(
 
 
 _POOLS: dict = {}
+
+
+def worker_pool(jobs: int):
+    """The fit's thread pool of ``jobs`` workers (:func:`_pool`), for other work of a run that can use it."""
+    return _pool(jobs)
 
 
 def _pool(jobs: int):
