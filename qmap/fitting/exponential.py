@@ -98,12 +98,14 @@ def fit_exponential(model, y: np.ndarray, *, se_tol: float = 1e-3, xtol: float =
             g = -2.0 * c * a1 + c * c * b1
             h = -2.0 * dc * a1 - 2.0 * c * a2 + 2.0 * c * dc * b1 + c * c * b2
             step = -g / h
-            r = ya - c[:, None] * e
-            f = np.einsum("nm,nm->n", r, r)
+            # the RSS from the sums, y.y - c a: to rounding of y.y (enough to tell uphill steps and for the
+            # tolerance below); the RSS reported is summed from the residuals
+            f = yy[act] - c * a
             new = rate + step
             # converged: the step is negligible against a lower bound of the rate's standard error
             # (s / sqrt(J_R^T J_R), J_R = -c x e the rate column) or relative to the rate itself
-            se_floor = np.sqrt(f / dof) / (np.abs(c) * np.sqrt(0.25 * b2)) if dof > 0 else np.zeros_like(f)
+            se_floor = (np.sqrt(np.maximum(f, 0.0) / dof) / (np.abs(c) * np.sqrt(0.25 * b2)) if dof > 0
+                        else np.zeros_like(f))
             small = (np.abs(step) <= se_tol * se_floor) | (np.abs(step) <= xtol * (rate + xtol))
         n_iter[act] += 1
         ok = (h > 0) & np.isfinite(step) & np.isfinite(f) & (b > 0) & (f <= last + RSS_ROUNDING * yy[act])
@@ -113,7 +115,9 @@ def fit_exponential(model, y: np.ndarray, *, se_tol: float = 1e-3, xtol: float =
         if k.size:
             rd, cd = new[done], c[done] + dc[done] * step[done]  # the last, negligible step taken unevaluated
             params[k, 0], params[k, 1] = cd, 1.0 / rd
-            rss[k] = f[done]
+            every = k.size == act.size
+            r = (ya if every else ya[done]) - c[done, None] * (e if every else e[done])
+            rss[k] = np.einsum("nm,nm->n", r, r)  # at the evaluated point (as the general iteration reports)
             # J^T J of [c, T] at the evaluated point: dS/dc = e, dS/dT = c x e R^2 (T = 1/R)
             ra = rate[done]
             cr2 = c[done] * ra * ra
