@@ -193,7 +193,7 @@ def fit_voxels(
     n_jobs : int, optional
         Local worker threads (default: all cores). Ignored with ``scheduler``.
     chunk_size : int
-        Voxels per chunk. Results do not depend on it (the EPG model: up to the last float32 bit).
+        Voxels per chunk. Results do not depend on it.
     scheduler : str, optional
         Address of a Dask distributed scheduler (``tcp://host:8786``).
     quiet : bool

@@ -140,16 +140,31 @@ def _dictionary_match(phi: np.ndarray, y: np.ndarray) -> np.ndarray:
     With a single amplitude the projection score ``b^2 / a`` of the grid search
     is the squared normalised inner product, so the atoms are normalised once
     and the match is one single-precision matrix product per block of atoms
-    (the scores only choose an index; atoms of zero norm never win).
+    (atoms of zero norm never win).
+
+    The product's rounding depends on how many voxels are multiplied at once (BLAS blocks the rows
+    differently; measured: the same row gives other float32 scores in another block), and a grid of
+    nearly identical trains (short T2: only the first echo; long T2: flat) puts several atoms within
+    that rounding of a voxel's best. So the product only nominates: every atom whose single-precision
+    score is within :func:`_match_margin` (an upper bound of twice its rounding error) of the voxel's
+    best is scored again exactly, voxel by voxel in double precision, and the exact best wins (the
+    lowest index among equals). The choice is then the voxel's own, for any chunk size, number of
+    workers or BLAS (measured on the sample data: 2.8 candidates a voxel, 88 % of voxels more than one).
     """
     norm = np.sqrt(np.einsum("gm,gm->g", phi, phi))
     with np.errstate(divide="ignore", invalid="ignore"):
-        atoms = np.where((norm > 0)[:, None] & np.isfinite(phi), phi / norm[:, None], 0.0).astype(np.float32)
-    y32 = np.ascontiguousarray(y, dtype=np.float32)
+        atoms64 = np.where((norm > 0)[:, None] & np.isfinite(phi), phi / norm[:, None], 0.0)
+    atoms = atoms64.astype(np.float32)
+    y64 = np.asarray(y, dtype=np.float64)
+    y32 = np.ascontiguousarray(y64, dtype=np.float32)
     n = y.shape[0]
+    margin = _match_margin(y64)
     best = np.full(n, -1.0, np.float32)
     best_idx = np.zeros(n, np.intp)
     rows = np.arange(n)
+    cand_rows: list[np.ndarray] = []
+    cand_atoms: list[np.ndarray] = []
+    cand_scores: list[np.ndarray] = []
     for g0 in range(0, atoms.shape[0], MATCH_BLOCK):
         score = y32 @ atoms[g0 : g0 + MATCH_BLOCK].T  # (n, block)
         np.abs(score, out=score)
@@ -158,7 +173,40 @@ def _dictionary_match(phi: np.ndarray, y: np.ndarray) -> np.ndarray:
         better = s > best
         best[better] = s[better]
         best_idx[better] = i[better] + g0
+        # the atoms within the margin of the best so far (a superset of those within it of the final best)
+        flat = np.flatnonzero(score >= (best - margin)[:, None])  # (10x faster than a 2-D np.nonzero here)
+        r, a = np.divmod(flat, score.shape[1])
+        cand_rows.append(r)
+        cand_atoms.append(a + g0)
+        cand_scores.append(score.reshape(-1)[flat])
+    r, a, sc = (np.concatenate(c) for c in (cand_rows, cand_atoms, cand_scores))
+    keep = sc >= best[r] - margin[r]
+    r, a = r[keep], a[keep]
+    several = np.bincount(r, minlength=n) > 1
+    pick = several[r]
+    if pick.any():
+        r, a = r[pick], a[pick]
+        exact = np.abs(np.einsum("km,km->k", y64[r], atoms64[a]))  # per voxel and atom: no BLAS blocking
+        order = np.lexsort((a, -exact, r))  # by voxel, then the best exact score, then the lowest index
+        r, a = r[order], a[order]
+        first = np.ones(r.size, bool)
+        first[1:] = r[1:] != r[:-1]
+        best_idx[r[first]] = a[first]
     return best_idx
+
+
+def _match_margin(y64: np.ndarray) -> np.ndarray:
+    """Twice an upper bound of the error of a single-precision score ``|<y, atom>|`` of a unit atom, (n,).
+
+    Summing m products in float32 errs by at most ``gamma_m sum|y_k a_k| <= gamma_m ||y||`` (Higham,
+    Accuracy and Stability of Numerical Algorithms, 2nd ed. 2002, section 3.1; ``gamma_m = m u / (1 - m u)``,
+    ``u = 2^-24``), and rounding ``y`` and the atom to float32 adds ``2 u ||y||``; two scores compared
+    differ by at most twice that; one more factor 2 of margin.
+    """
+    u = 2.0**-24
+    m = y64.shape[1]
+    gamma = m * u / (1.0 - m * u)
+    return (4.0 * (gamma + 2.0 * u) * np.sqrt(np.einsum("nm,nm->n", y64, y64))).astype(np.float32)
 
 
 def _projection_score(a: np.ndarray, b: np.ndarray) -> np.ndarray:
