@@ -11,6 +11,7 @@ result is identical for any number of workers, chunk size and backend.
 
 from __future__ import annotations
 
+import itertools
 import os
 import sys
 import time
@@ -214,8 +215,7 @@ def fit_voxels(
     problem = FitProblem.create(model, noise=noise, sigma=sigma, stderr=stderr, method=method, max_iter=max_iter)
     noise = problem.noise
     n = y.shape[0]
-    chunk_size = max(1, int(chunk_size))
-    chunks = [_Chunk(i, min(i + chunk_size, n)) for i in range(0, n, chunk_size)]
+    chunks = split_chunks(n, chunk_size, 1 if scheduler else resolve_jobs(n_jobs))
     sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), (n,))
     shared = progress is not None
     progress = progress if progress is not None else Progress(len(chunks), label, quiet=quiet)
@@ -241,6 +241,26 @@ def fit_voxels(
     else:
         _run_local(chunks, args, min(resolve_jobs(n_jobs), len(chunks)), consume)
     return _concat(results, model, noise, n, y.shape[1]) if on_chunk is None else None
+
+
+#: fewest rows per chunk when rows are split between workers
+MIN_SPLIT = 512
+
+
+def split_chunks(n: int, chunk_size: int, jobs: int = 1) -> list[_Chunk]:
+    """``n`` rows in chunks of at most ``chunk_size``, for ``jobs`` local workers.
+
+    One worker: chunks of ``chunk_size`` (the last one shorter). Several: a multiple of ``jobs`` chunks of
+    nearly equal size, so that the workers finish together instead of one fitting the short last chunk
+    while the others wait (a call fits one slab of a run; every slab would end with that wait).
+    Results do not depend on the chunks (every voxel's arithmetic is its own).
+    """
+    chunk_size = max(1, int(chunk_size))
+    if jobs <= 1 or n < jobs * MIN_SPLIT:
+        return [_Chunk(i, min(i + chunk_size, n)) for i in range(0, n, chunk_size)]
+    count = jobs * -(-n // (jobs * chunk_size))
+    bounds = [n * k // count for k in range(count + 1)]
+    return [_Chunk(a, b) for a, b in itertools.pairwise(bounds) if b > a]
 
 
 _POOLS: dict = {}

@@ -290,3 +290,32 @@ def test_maps_are_bit_identical_for_any_chunking(shape, seed, chunk, jobs, mode)
         assert a.keys() == b.keys()
         for k in a:
             assert np.array_equal(a[k], b[k], equal_nan=True), (group, k)
+
+
+@pytest.mark.parametrize(("chunk", "jobs"), [(700, 2), (8192, 2), (1000, 3)])
+def test_maps_are_bit_identical_when_the_voxels_are_split_between_workers(chunk, jobs):
+    # several workers share each call's voxels in equal chunks (engine.split_chunks); same maps as one chunk
+    te = np.arange(1, 9) * 0.006
+    y = _volume(7, (40, 40, 2), te)
+    model = MonoExponential(te, param="T2")
+    kw = {"noise": NoiseFloor("rician"), "sigma": 10.0}
+    ref = fit_volume(model, y, n_jobs=1, chunk_size=10**6, **kw)
+    got = fit_volume(model, y, n_jobs=jobs, chunk_size=chunk, **kw)
+    np.testing.assert_array_equal(got.status, ref.status)
+    for group in ("estimates", "stderr", "quality"):
+        for k, a in getattr(ref, group).items():
+            assert np.array_equal(a, getattr(got, group)[k], equal_nan=True), (group, k)
+
+
+@given(n=st.integers(0, 50_000), chunk=st.integers(1, 9000), jobs=st.integers(1, 4))
+@settings(max_examples=200, derandomize=True)
+def test_chunks_cover_every_row_once_and_keep_the_workers_even(n, chunk, jobs):
+    from qmap.engine import MIN_SPLIT, split_chunks
+
+    parts = split_chunks(n, chunk, jobs)
+    assert [c.start for c in parts[1:]] == [c.stop for c in parts[:-1]]  # contiguous, in order
+    assert (parts[0].start if parts else 0) == 0 and (parts[-1].stop if parts else 0) == n
+    sizes = [c.stop - c.start for c in parts]
+    assert all(0 < s <= chunk for s in sizes)
+    if jobs > 1 and n >= jobs * MIN_SPLIT and chunk >= jobs:  # (a chunk of 1 row cannot be shared)
+        assert len(parts) % jobs == 0 and max(sizes) - min(sizes) <= 1  # every worker gets the same share

@@ -109,7 +109,7 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
         g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
                        help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
     g.add_argument("--chunk-size", type=int, default=DEFAULT_CHUNK, metavar="N",
-                   help=f"voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
+                   help=f"at most N voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
     g.add_argument("--no-series-check", dest="series_check", action="store_false",
                    help="fit even when the series does not behave like the model (a decay that does not fall with "
                         "echo time, ...); qmap refuses such a series by default, naming the likely cause")
