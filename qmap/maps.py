@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, TypedDict
+from typing import Any, Literal, TypedDict
 
 import numpy as np
 
@@ -119,19 +119,26 @@ QUALITY_DESCRIPTIONS = {
 }
 
 
+#: the order of the voxels of a volume as fit_volume visits them and lays out its maps: Fortran order, the
+#: order of a NIfTI file's voxels (its arrays' flat views; a slab's maps are appended to the files as they
+#: are, without a transposed copy). The results do not depend on it: every voxel's arithmetic is its own.
+VOXEL_ORDER: Literal["F"] = "F"
+
+
 class _Gather:
-    """Rows ``idx`` (flat C-order voxel indices) of a (..., m) array, gathered a chunk at a time.
+    """Rows ``idx`` (flat voxel indices in ``order``, "C" or "F") of a (..., m) array, gathered a chunk at a time.
 
     Avoids holding a copy of every selected voxel's samples: the engine asks for ``rows[a:b]``.
     """
 
-    def __init__(self, data: np.ndarray, idx: np.ndarray):
+    def __init__(self, data: np.ndarray, idx: np.ndarray, order: Literal["C", "F"] = "C"):
         self.data = data
         self.idx = idx
+        self.order = order
         self.shape = (idx.size, data.shape[-1])
 
     def __getitem__(self, sl: slice) -> np.ndarray:
-        return self.data[np.unravel_index(self.idx[sl], self.data.shape[:-1])]
+        return self.data[np.unravel_index(self.idx[sl], self.data.shape[:-1], order=self.order)]
 
 
 def fit_volume(
@@ -185,25 +192,26 @@ def fit_volume(
         # (one convention per map, never sigma in some voxels of a map labelled "residual")
         stderr = "noise"
     nvox = int(np.prod(shape))
-    # no reshaped copy of the series: NIfTI arrays are Fortran-ordered, so data.reshape(-1, m) would
-    # copy it all; only the selected voxels are gathered below (in C order, matching ``idx``)
-    finite: np.ndarray = np.ones(shape, bool)
+    # no reshaped copy of the series: only the selected voxels are gathered below, in VOXEL_ORDER (the
+    # files' order: a NIfTI volume's flat view, the maps written without transposing)
+    finite: np.ndarray = np.ones(shape, bool, order=VOXEL_ORDER)
     for k in range(m):  # one volume at a time: no (voxels x samples) temporary
         finite &= np.isfinite(data[..., k])
-    finite = finite.reshape(-1)
-    sel = np.ones(nvox, bool) if mask is None else np.asarray(mask, bool).reshape(-1).copy()
+    finite = finite.reshape(-1, order=VOXEL_ORDER)
+    sel = (np.ones(nvox, bool) if mask is None
+           else np.asarray(mask, bool).reshape(-1, order=VOXEL_ORDER).copy())
     status = np.full(nvox, st.MASKED, np.uint8)
     status[sel & ~finite] = st.NONFINITE
     sel &= finite
     ctx = None
     if ctx_maps:
-        ctx_flat = {k: np.asarray(v, float).reshape(-1) for k, v in ctx_maps.items()}
+        ctx_flat = {k: np.asarray(v, float).reshape(-1, order=VOXEL_ORDER) for k, v in ctx_maps.items()}
         ok = np.all([np.isfinite(v) for v in ctx_flat.values()], axis=0)
         status[sel & ~ok] = invalid_ctx_status
         sel &= ok
     sig_flat = None
     if sigma is not None:
-        sig_flat = np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1)
+        sig_flat = np.broadcast_to(np.asarray(sigma, float), shape).reshape(-1, order=VOXEL_ORDER)
         ok_sigma = np.isfinite(sig_flat) & (sig_flat > 0)
         if noise.needs_sigma:
             status[sel & ~ok_sigma] = st.NONFINITE
@@ -231,7 +239,8 @@ def fit_volume(
     # values are kept where a fit was made (status 0, at bound, not converged, ill-conditioned)
     kept_codes = (st.FITTED, st.AT_BOUND, st.NOT_CONVERGED, st.ILL_CONDITIONED)
     fit_model = noise.wrap(model)
-    se_in = {k: np.broadcast_to(np.asarray(v, float), shape).reshape(-1)[idx] for k, v in (input_se or {}).items()}
+    se_in = {k: np.broadcast_to(np.asarray(v, float), shape).reshape(-1, order=VOXEL_ORDER)[idx]
+             for k, v in (input_se or {}).items()}
 
     kept = np.zeros(256, bool)
     kept[list(kept_codes)] = True
@@ -266,7 +275,7 @@ def fit_volume(
             quality["nsamples"][a:b] = fit.n_used
 
     fit_voxels(
-        model, _Gather(data, idx), ctx=ctx, noise=noise, sigma=_per_voxel(sigma, sig_flat, idx),
+        model, _Gather(data, idx, VOXEL_ORDER), ctx=ctx, noise=noise, sigma=_per_voxel(sigma, sig_flat, idx),
         n_jobs=n_jobs, chunk_size=chunk_size, scheduler=scheduler, quiet=quiet, method=method, label=label,
         on_chunk=on_chunk, stderr=stderr, progress=progress,
     )
@@ -274,7 +283,7 @@ def fit_volume(
         for key in list(maps_):  # replaced one at a time: the fitted-voxel array is freed as its volume is made
             full = np.full(nvox, 0 if key == "nsamples" else np.nan, dtype)
             full[idx] = maps_[key]
-            maps_[key] = full.reshape(shape)
+            maps_[key] = full.reshape(shape, order=VOXEL_ORDER)
     stderr_out = stderr_maps
     info: dict[str, Any] = {
         "model": model.name,
@@ -290,7 +299,8 @@ def fit_volume(
         info["stderr"]["no_noise_level_voxels"] = int(np.count_nonzero(~ok_sigma[idx]))
     if se_in:
         info["stderr"]["propagated_inputs"] = sorted(se_in)
-    return MapSet(estimates, stderr_out, units, descriptions, tuple(times), quality, status.reshape(shape), info)
+    return MapSet(estimates, stderr_out, units, descriptions, tuple(times), quality,
+                  status.reshape(shape, order=VOXEL_ORDER), info)
 
 
 def _per_voxel(sigma, sig_flat: np.ndarray | None, idx: np.ndarray):
