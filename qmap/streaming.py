@@ -12,8 +12,10 @@ writes its provenance, or removes them when anything fails: all or nothing, as b
 
 from __future__ import annotations
 
+import collections
 import dataclasses
 import os
+import threading
 import weakref
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -107,6 +109,10 @@ class MapStream:
         #: files completed and re-read at a time at the end (:meth:`AtomicWriter.complete_streams`)
         self.workers = min(2, os.cpu_count() or 1) if background else 1
         self._pending: Future | None = None
+        self._checked: Future | None = None  # the re-reading of the completed files (maps())
+        self._to_check: collections.deque = collections.deque()
+        self._check_lock = threading.Lock()
+        self._fitted: np.ndarray | None = None
         self._open = False
         self._done = False
         # a run abandoned between its fit and its writing (an error in the command's own checks) leaves nothing
@@ -161,11 +167,19 @@ class MapStream:
             pending.result()  # re-raises a failure of the writing thread
 
     def maps(self) -> StreamedMaps:
-        """Complete the files after the last slab; the maps, read from them on access."""
+        """Complete the files after the last slab; the maps, read from them on access.
+
+        With a background thread, the files are re-read there (the check :meth:`write` needs) while the
+        run goes on with what it does before writing (reading maps back for its warnings, the provenance).
+        """
         self._wait()
         for stream in self.streams.values():
             stream.finish()
         self._done = True
+        if self._pool is not None:
+            self._to_check = collections.deque((stream, stream.out) for stream in self.streams.values())
+            self._fitted = (self.status == 0).ravel(order="F")
+            self._checked = self._pool.submit(self._check_some)
         first = self.first
         assert first is not None, "at least one slab was added"
 
@@ -176,6 +190,15 @@ class MapStream:
         est, se, qual = (FileMaps(groups[k]) for k in ("estimate", "stderr", "quality"))
         return StreamedMaps(est, se, dict(first.units), dict(first.descriptions), first.time_params, qual,
                             self.status, dict(self.info or {}), stream=self)
+
+    def _check_some(self) -> None:
+        """Complete and re-read the files not yet taken, one at a time (the writer thread and the main thread)."""
+        while True:
+            with self._check_lock:
+                if not self._to_check:
+                    return
+                item = self._to_check.popleft()
+            self.writer.check_streams([item], self.status, self._fitted)
 
     def _where(self, name: str) -> Callable[[], Path]:
         stream = self.streams[name]
@@ -197,8 +220,13 @@ class MapStream:
             by_name = {o.name: o for o in outs}
             if set(self.streams) - set(by_name):
                 raise ValueError(f"streamed outputs {sorted(set(self.streams) - set(by_name))} not described")
-            self.writer.complete_streams([(stream, by_name[name]) for name, stream in self.streams.items()],
-                                         self.status, workers=self.workers, pool=self._pool)
+            items = [(stream, by_name[name]) for name, stream in self.streams.items()]
+            if self._checked is not None:  # being re-read since maps(): this thread takes the files left
+                self._check_some()
+                self._checked.result()  # re-raises a failed check
+                self.writer.complete_streams(items, self.status, workers=1, checked=True)
+            else:
+                self.writer.complete_streams(items, self.status, workers=self.workers, pool=self._pool)
             stage_rest(self.writer)
             written = self.writer.commit()
         except BaseException:

@@ -495,8 +495,20 @@ class AtomicWriter:
         self.complete_streams([(stream, out)], status, workers=1)
         return self.out_dir / out.name
 
+    def check_streams(self, items: list[tuple[NiftiStream, OutputFile]], status: np.ndarray | None,
+                      fitted: np.ndarray | None = None) -> None:
+        """Complete and re-read streamed files one after the other (:meth:`complete_streams` without the sidecars).
+
+        ``fitted``: ``status == 0`` in the files' (Fortran) voxel order, when the caller has it.
+        """
+        if fitted is None and status is not None:
+            fitted = (np.asarray(status) == 0).ravel(order="F")
+        for stream, out in items:
+            stream.finish()
+            self._verify(stream.path, out, stream.shape, stream.affine, status, fitted=fitted)
+
     def complete_streams(self, items: list[tuple[NiftiStream, OutputFile]], status: np.ndarray | None = None, *,
-                         workers: int = 2, pool: Executor | None = None) -> None:
+                         workers: int = 2, pool: Executor | None = None, checked: bool = False) -> None:
         """:meth:`finish_stream` for several streams; the files are completed and re-read ``workers`` at a time.
 
         Completing (the last deflate block and the gzip trailer) and re-reading (inflating the whole file)
@@ -506,6 +518,10 @@ class AtomicWriter:
         new threads (each new thread gets its own C-library memory arena, which keeps what it freed: about
         8 MB more peak memory on a 1M-voxel run).
         """
+        if checked:  # completed and re-read already (check_streams): the sidecars only
+            for _, out in items:
+                self._stage_sidecar(out)
+            return
         # the fitted voxels in the files' voxel order, once for all the files (not one copy per file and thread)
         fitted = None if status is None else (np.asarray(status) == 0).ravel(order="F")
 
