@@ -83,13 +83,16 @@ def fit_exponential(model, y: np.ndarray, *, se_tol: float = 1e-3, xtol: float =
     act = np.flatnonzero(~hard)
     rate = 1.0 / t0[act]
     last = np.full(act.size, np.inf)  # RSS at the previous evaluation of each active voxel
+    # the evaluations' (voxels x samples) arrays, allocated once per chunk (the active voxels use their first rows)
+    buf_e, buf_ye, buf_ee = np.empty((act.size, m)), np.empty((act.size, m)), np.empty((act.size, m))
     for _ in range(max_steps):
         if act.size == 0:
             break
-        ya = y if act.size == n else y[act]
-        e = model.decay(rate)
-        ye = ya * e
-        ee = e * e
+        k = act.size
+        ya = y if k == n else y[act]
+        e = model.decay(rate, out=buf_e[:k])
+        ye = np.multiply(ya, e, out=buf_ye[:k])
+        ee = np.multiply(e, e, out=buf_ee[:k])
         a, a1, a2 = np.einsum("nm->n", ye), -np.einsum("nm,m->n", ye, x), np.einsum("nm,m->n", ye, x2)
         b, b1, b2 = np.einsum("nm->n", ee), -2.0 * np.einsum("nm,m->n", ee, x), 4.0 * np.einsum("nm,m->n", ee, x2)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
