@@ -217,6 +217,28 @@ def peak_image(block: npt.ArrayLike) -> np.ndarray:
     return peak.astype(np.float32, copy=False)
 
 
+def percentile_inplace(values: np.ndarray, q: float):
+    """``np.percentile(values, q, overwrite_input=True)`` of a 1-D float array (its linear method), bit for bit.
+
+    One partition at the lower of the two order statistics the linear method interpolates between; the
+    upper one is the smallest value above it. numpy partitions at both and at the ends (1.2 against 6.8 ms
+    for the 99.9th percentile of 1M float32 values). ``values`` is reordered. NaN: numpy's own.
+    """
+    n = values.size
+    if n == 0 or np.isnan(values).any():
+        return np.percentile(values, q, overwrite_input=True)
+    virtual = (n - 1) * np.true_divide(q, 100)  # Hyndman & Fan (1996) definition 7, numpy's 'linear'
+    below = np.floor(virtual)
+    i0 = min(max(int(below), 0), n - 1)
+    values.partition(i0)
+    lo = values[i0]
+    hi = values[i0 + 1:].min() if i0 + 1 < n else lo
+    gamma = float(virtual - below)
+    diff = hi - lo
+    # numpy's lerp, with its weak (Python float) gamma: in the values' own precision
+    return hi - diff * (1 - gamma) if gamma >= 0.5 else lo + diff * gamma
+
+
 def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     """The object mask from a peak image (see :func:`auto_mask`)."""
     nonzero = peak[peak != 0]
@@ -226,7 +248,7 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
         nonzero = nonzero[:: -(-nonzero.size // _MASK_SAMPLES)].copy()
     # in place on this copy of the values: the percentile, Otsu's histogram and the median depend on the
     # values, not on their order
-    clipped = np.minimum(nonzero, np.percentile(nonzero, 99.9, overwrite_input=True), out=nonzero)
+    clipped = np.minimum(nonzero, percentile_inplace(nonzero, 99.9), out=nonzero)
     t_otsu = otsu_threshold(clipped)
     # dim regions clearly above the noise stay in: the threshold is at most NOISE_FACTOR x the median of
     # the class below Otsu's threshold (the noise where the image has background)

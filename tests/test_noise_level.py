@@ -547,3 +547,26 @@ def test_median64_is_numpys_float64_median_to_the_bit():
     for n in (1, 2, 3, 10, 1001, 20000):
         x = (rng.lognormal(5.0, 1.0, n)).astype(np.float32)
         assert _median64(x) == float(np.median(x.astype(np.float64))), n
+
+
+def test_percentile_inplace_is_numpys_bit_for_bit():
+    """The automatic mask's clip level (99.9th percentile) by one partition: numpy's value to the bit
+    (reference: np.percentile, default linear method), ties, integer values, NaN and the ends included."""
+    from qmap.noise_level import percentile_inplace
+
+    rng = np.random.default_rng(12)
+    for t in range(3000):
+        n = int(rng.integers(1, 2000))
+        a = rng.gamma(2.0, 100.0, n).astype([np.float32, np.float64][t % 2])
+        if t % 5 == 0:
+            a[: n // 2] = a[0]
+        if t % 7 == 0:
+            a = np.round(a)
+        if t % 11 == 0:
+            a[rng.integers(0, n)] = np.nan
+        q = [99.9, 50.0, 1.0, 99.99, 0.0, 100.0, 37.3][t % 7]
+        with np.errstate(invalid="ignore"):
+            ref = np.percentile(a.copy(), q, overwrite_input=True)
+        got = percentile_inplace(a.copy(), q)
+        assert np.asarray(got).dtype == np.asarray(ref).dtype
+        assert got == ref or (np.isnan(got) and np.isnan(ref)), (t, n, q)
