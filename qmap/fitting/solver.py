@@ -370,14 +370,90 @@ def _fit_unit(model: SeparableModel, y: np.ndarray, ctx: dict | None, noise: Noi
 
     JTJ = None
     if _one_exponential(model, fit_model, wl, guide, ctx):
-        p, rss, JTJ, conv, nit = _fit_one_exponential(model, y, lo, hi, max_iter)
+        p, rss, JTJ, conv, nit = _fit_one_exponential(model, y, lo, hi, lo_nl, hi_nl, max_iter)
         J = None
         yfit = y
     else:
         p, rss, J, conv, nit, yfit = _fit_general(model, run_model, y, wl, ctx, lo, hi, lo_nl, hi_nl, evaluate,
                                                   max_iter, loose)
-    return _finish(model, fit_model, run_model, guide, finish_model, noise, y, yfit, wl, ctx, sigma, stderr, lo, hi,
-                   lo_nl, hi_nl, max_iter, n_used, loose, p, rss, J, JTJ, conv, nit)
+    # with the one-exponential path ``J`` is None and ``JTJ`` (its J^T J) is given instead
+    P = len(fit_model.param_names)
+    sel = noise.rician_select(run_model, p, sigma, ctx) if noise.rician else np.zeros(0, np.intp)
+    if loose and sel.size < n:
+        p, rss, J, conv, nit = _refine_rows(run_model, np.setdiff1d(np.arange(n), sel), yfit, wl, (p, rss, J, conv, nit),
+                                            ctx, lo, hi, max_iter)
+    if sel.size and J is None:  # the one-exponential path: the Jacobian of the selected voxels only
+        assert JTJ is not None and guide is None and not ctx, "the one-exponential path gives J^T J"
+        assert sigma is not None, "a Rician fit has a noise level"
+        sig_sel = sigma if np.ndim(sigma) == 0 else np.asarray(sigma)[sel]
+        p_s, rss_s, J_s, conv_s, nit_s = noise.rician_refine(
+            run_model, yfit[sel], None, p[sel], rss[sel], run_model.signal_jacobian(p[sel], None)[1], conv[sel],
+            nit[sel], sig_sel, None, lo, hi, max_iter=max_iter, select=np.arange(sel.size), se_tol=1e-3)
+        p[sel], rss[sel], conv[sel], nit[sel] = p_s, rss_s, conv_s, nit_s
+        JTJ[sel] = _normal(J_s, None)
+        J = np.empty((n, P, y.shape[1]))  # only the selected rows are read (the Rician covariance below)
+        J[sel] = J_s
+    elif sel.size:
+        p, rss, J, conv, nit = noise.rician_refine(run_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
+                                                   max_iter=max_iter, select=sel,
+                                                   se_tol=1e-3 if guide is None else FINISH_SE_TOL)
+    if guide is not None:
+        # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
+        # for the near-floor voxels): the minimum and RSS are the exact model's
+        p, rss, J, conv, nit = _refine_rows(finish_model, np.setdiff1d(np.arange(n), sel), yfit, wl,
+                                            (p, rss, J, conv, nit), ctx, lo, hi, max_iter)
+        if sel.size:
+            p, rss, J, conv, nit = noise.rician_refine(finish_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo,
+                                                       hi, max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
+
+    # covariance (see qmap.fitting.uncertainty for the two conventions)
+    if JTJ is None:
+        assert J is not None, "the general path gives the Jacobian"
+        JTJ = _normal(J, wl)
+    inv = chol_inverse(JTJ)
+    dof = n_used - P
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
+    if sigma is not None:
+        sig = np.broadcast_to(np.asarray(sigma, float), (n,))
+        sig2 = sig**2
+        if stderr == "noise":  # one convention per map: no usable sigma (a noise map's hole) -> no standard error
+            s2 = np.where(np.isfinite(sig) & (sig > 0), sig2, np.nan)
+        # "residual": a voxel without residual degrees of freedom has no standard error (NaN, as s2 is);
+        # an exactly determined fit as a whole is given the noise convention by the caller (fit_volume)
+    cov = inv * s2[:, None, None]
+    if sigma is not None and stderr == "noise":
+        if noise.rician:
+            # without a stand-in the voxels not refined by the Rician fit kept the parameters whose lowest
+            # sample was found above the floor: only the refined ones can be near it
+            cov = _rician_covariance(fit_model, p, J, inv, cov, wl, sigma, ctx, noise.coils,
+                                     rows=sel if guide is None else None)
+        if getattr(model, "sign_ambiguous", False):
+            cov = _widen_near_null(fit_model, p, J, cov, wl, s2, ctx)
+    # quality
+    ybar = np.einsum("nm->n", yfit if wl is None else wl * yfit) / np.maximum(n_used, 1)
+    dev = yfit - ybar[:, None]
+    tss = np.einsum("nm,nm->n", dev if wl is None else wl * dev, dev)
+    with np.errstate(divide="ignore", invalid="ignore"):  # exactly determined (dof 0): no quality (NaN)
+        r2 = np.where((tss > 0) & (dof > 0), 1.0 - rss / tss, np.nan)
+        rmse = np.where(dof > 0, np.sqrt(rss / np.maximum(n_used, 1)), np.nan)
+    status = np.zeros(n, np.uint8)
+    status[~conv] = st.NOT_CONVERGED
+    theta = p[:, L:]
+    span = hi_nl - lo_nl
+    at_bound = row_any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span))
+    status[at_bound] = st.AT_BOUND
+    cov[at_bound] = np.inf  # never a small standard error for an estimate pinned at a bound
+    diag = np.einsum("npp->np", inv)
+    ill = ~row_all(np.isfinite(diag) & (diag >= 0))
+    status[ill & (status == 0)] = st.ILL_CONDITIONED
+    # all samples equal: the non-linear parameters are not determined by the data at all
+    status[(tss == 0) & (status == 0)] = st.ILL_CONDITIONED
+    cov[ill] = np.inf
+    too_few = n_used < P
+    status[too_few] = st.TOO_FEW_SAMPLES
+    return ChunkFit(params=p, cov=cov, rss=rss, r2=r2, rmse=rmse, n_used=n_used, status=status, n_iter=nit)
+
 
 
 def _one_exponential(model, fit_model, wl, guide, ctx) -> bool:
@@ -387,24 +463,18 @@ def _one_exponential(model, fit_model, wl, guide, ctx) -> bool:
             and not ctx and not getattr(model, "sign_ambiguous", False))
 
 
-def _fit_one_exponential(model, y, lo, hi, max_iter) -> tuple:
+def _fit_one_exponential(model, y, lo, hi, lo_nl, hi_nl, max_iter) -> tuple:
     """:func:`~qmap.fitting.exponential.fit_exponential`, with the voxels it leaves fitted by the general
-    Levenberg-Marquardt iteration from the same start; returns ``p, rss, J^T J, converged, n_iter``."""
+    path (:func:`_fit_general`: the same start, Levenberg-Marquardt); returns ``p, rss, J^T J, converged, n_iter``."""
     fast = fit_exponential(model, y)
     p, rss, JTJ, conv, nit = fast.params, fast.rss, fast.jtj, fast.converged, fast.n_iter
     hard = fast.hard
     if hard.size:
-        lo_nl, hi_nl = (np.asarray(b, float) for b in model.bounds())
-        yh = y[hard]
-        theta0 = np.clip(p[hard, 1:], lo_nl, hi_nl)
-        c0 = linear_amplitudes(model, yh, None, theta0, None)
-        c0 = np.maximum(np.where(np.isfinite(c0), c0, 0.0), lo[:1])
-
         def evaluate(pp, idx):
             return model.signal_jacobian(pp, None)
 
-        ph, rssh, Jh, convh, nith = levenberg_marquardt(evaluate, yh, None, np.concatenate([c0, theta0], 1), lo, hi,
-                                                        max_iter=max_iter)
+        ph, rssh, Jh, convh, nith, _ = _fit_general(model, model, y[hard], None, None, lo, hi, lo_nl, hi_nl, evaluate,
+                                                   max_iter, loose=False)
         p[hard], rss[hard], conv[hard], nit[hard] = ph, rssh, convh, nith
         JTJ[hard] = _normal(Jh, None)
     return p, rss, JTJ, conv, nit
@@ -457,90 +527,6 @@ def _fit_general(model, run_model, y, wl, ctx, lo, hi, lo_nl, hi_nl, evaluate, m
     assert best is not None, "a model offers at least one start candidate"
     p, rss, J, conv, nit, yfit = best
     return p, rss, J, conv, nit, yfit
-
-
-def _finish(model, fit_model, run_model, guide, finish_model, noise, y, yfit, wl, ctx, sigma, stderr, lo, hi, lo_nl,
-            hi_nl, max_iter, n_used, loose, p, rss, J, JTJ, conv, nit) -> ChunkFit:
-    """The Rician refinement, the exact model's finish after a stand-in, the covariance, quality and status.
-
-    ``J`` is the Jacobian of the fit (n, P, m), or None when the fit gave ``JTJ`` (its ``J^T J``) instead.
-    """
-    n = y.shape[0]
-    P = len(fit_model.param_names)
-    L = len(fit_model.linear)
-    sel = noise.rician_select(run_model, p, sigma, ctx) if noise.rician else np.zeros(0, np.intp)
-    if loose and sel.size < n:
-        p, rss, J, conv, nit = _refine_rows(run_model, np.setdiff1d(np.arange(n), sel), yfit, wl, (p, rss, J, conv, nit),
-                                            ctx, lo, hi, max_iter)
-    if sel.size and J is None:  # the one-exponential path: the Jacobian of the selected voxels only
-        assert JTJ is not None and guide is None and not ctx, "the one-exponential path gives J^T J"
-        sig_sel = sigma if np.ndim(sigma) == 0 else np.asarray(sigma)[sel]
-        p_s, rss_s, J_s, conv_s, nit_s = noise.rician_refine(
-            run_model, yfit[sel], None, p[sel], rss[sel], run_model.signal_jacobian(p[sel], None)[1], conv[sel],
-            nit[sel], sig_sel, None, lo, hi, max_iter=max_iter, select=np.arange(sel.size), se_tol=1e-3)
-        p[sel], rss[sel], conv[sel], nit[sel] = p_s, rss_s, conv_s, nit_s
-        JTJ[sel] = _normal(J_s, None)
-        J = np.empty((n, P, y.shape[1]))  # only the selected rows are read (the Rician covariance below)
-        J[sel] = J_s
-    elif sel.size:
-        p, rss, J, conv, nit = noise.rician_refine(run_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo, hi,
-                                                   max_iter=max_iter, select=sel,
-                                                   se_tol=1e-3 if guide is None else FINISH_SE_TOL)
-    if guide is not None:
-        # finish on the exact model from the stand-in's minimum (plain least squares, or the Rician objective
-        # for the near-floor voxels): the minimum and RSS are the exact model's
-        p, rss, J, conv, nit = _refine_rows(finish_model, np.setdiff1d(np.arange(n), sel), yfit, wl,
-                                            (p, rss, J, conv, nit), ctx, lo, hi, max_iter)
-        if sel.size:
-            p, rss, J, conv, nit = noise.rician_refine(finish_model, yfit, wl, p, rss, J, conv, nit, sigma, ctx, lo,
-                                                       hi, max_iter=max_iter, select=sel, se_tol=FINISH_SE_TOL)
-
-    # covariance (see qmap.fitting.uncertainty for the two conventions)
-    if JTJ is None:
-        JTJ = _normal(J, wl)
-    inv = chol_inverse(JTJ)
-    dof = n_used - P
-    with np.errstate(divide="ignore", invalid="ignore"):
-        s2 = np.where(dof > 0, rss / np.maximum(dof, 1), np.nan)
-    if sigma is not None:
-        sig = np.broadcast_to(np.asarray(sigma, float), (n,))
-        sig2 = sig**2
-        if stderr == "noise":  # one convention per map: no usable sigma (a noise map's hole) -> no standard error
-            s2 = np.where(np.isfinite(sig) & (sig > 0), sig2, np.nan)
-        # "residual": a voxel without residual degrees of freedom has no standard error (NaN, as s2 is);
-        # an exactly determined fit as a whole is given the noise convention by the caller (fit_volume)
-    cov = inv * s2[:, None, None]
-    if sigma is not None and stderr == "noise":
-        if noise.rician:
-            # without a stand-in the voxels not refined by the Rician fit kept the parameters whose lowest
-            # sample was found above the floor: only the refined ones can be near it
-            cov = _rician_covariance(fit_model, p, J, inv, cov, wl, sigma, ctx, noise.coils,
-                                     rows=sel if guide is None else None)
-        if getattr(model, "sign_ambiguous", False):
-            cov = _widen_near_null(fit_model, p, J, cov, wl, s2, ctx)
-    # quality
-    ybar = np.einsum("nm->n", yfit if wl is None else wl * yfit) / np.maximum(n_used, 1)
-    dev = yfit - ybar[:, None]
-    tss = np.einsum("nm,nm->n", dev if wl is None else wl * dev, dev)
-    with np.errstate(divide="ignore", invalid="ignore"):  # exactly determined (dof 0): no quality (NaN)
-        r2 = np.where((tss > 0) & (dof > 0), 1.0 - rss / tss, np.nan)
-        rmse = np.where(dof > 0, np.sqrt(rss / np.maximum(n_used, 1)), np.nan)
-    status = np.zeros(n, np.uint8)
-    status[~conv] = st.NOT_CONVERGED
-    theta = p[:, L:]
-    span = hi_nl - lo_nl
-    at_bound = row_any((theta <= lo_nl + 1e-9 * span) | (theta >= hi_nl - 1e-9 * span))
-    status[at_bound] = st.AT_BOUND
-    cov[at_bound] = np.inf  # never a small standard error for an estimate pinned at a bound
-    diag = np.einsum("npp->np", inv)
-    ill = ~row_all(np.isfinite(diag) & (diag >= 0))
-    status[ill & (status == 0)] = st.ILL_CONDITIONED
-    # all samples equal: the non-linear parameters are not determined by the data at all
-    status[(tss == 0) & (status == 0)] = st.ILL_CONDITIONED
-    cov[ill] = np.inf
-    too_few = n_used < P
-    status[too_few] = st.TOO_FEW_SAMPLES
-    return ChunkFit(params=p, cov=cov, rss=rss, r2=r2, rmse=rmse, n_used=n_used, status=status, n_iter=nit)
 
 
 def _refine_rows(model, rows: np.ndarray, y: np.ndarray, w: np.ndarray | None, state: tuple, ctx: dict | None,
