@@ -33,7 +33,7 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass, field
-from typing import Literal, Protocol
+from typing import Protocol
 
 import numpy as np
 import numpy.typing as npt
@@ -72,6 +72,8 @@ MASK_NOISE_FACTOR = 3.0
 SIGMA_SAMPLES = 400_000
 #: values handled at a time where the noise estimate gathers or filters its samples (bounds the temporaries)
 _BLOCK = 1 << 16
+#: voxels a run of the background counts covers (its temporaries: a few bytes a voxel)
+_COUNT_BLOCK = 1 << 17
 
 
 
@@ -79,7 +81,7 @@ class VolumeSource(Protocol):
     """What the mask and noise estimates read: a series of volumes, slab by slab along z."""
 
     _object_mask: np.ndarray | None
-    _object_peak: np.ndarray | None
+    _object_median: float | None
 
     @property
     def shape(self) -> tuple[int, int, int]: ...
@@ -103,7 +105,7 @@ class ArraySource:
             raise InputError(f"expected a 3D volume or 4D series, got shape {np.shape(data)}")
         self.data = a
         self._object_mask: np.ndarray | None = None
-        self._object_peak: np.ndarray | None = None
+        self._object_median: float | None = None
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -241,6 +243,11 @@ def percentile_inplace(values: np.ndarray, q: float):
 
 def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     """The object mask from a peak image (see :func:`auto_mask`)."""
+    return fill_holes(_mask_before_filling(peak))
+
+
+def _mask_before_filling(peak: np.ndarray) -> np.ndarray:
+    """:func:`mask_from_peak` before its holes are filled: the threshold, eroded and dilated."""
     nonzero = peak[peak != 0]
     if nonzero.size == 0:
         return np.zeros(peak.shape, dtype=bool)
@@ -260,8 +267,7 @@ def mask_from_peak(peak: np.ndarray) -> np.ndarray:
     del lower
     # pad by repeating the edge so that the image border does not erode the object
     # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
-    mask = dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
-    return fill_holes(mask)
+    return dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
@@ -273,6 +279,11 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     until it stops changing: a run (a line of consecutive background voxels along an axis) touched
     by the reached set is reached entirely, which is 6-connectivity exactly. Each sweep costs a few
     milliseconds on 1M voxels; a head-shaped mask needs a handful.
+
+    The first sweep along each axis runs on the whole array with that axis' run labels only; the
+    sweeps after it run in the box around the background still unreached, with one voxel of margin
+    (every background voxel outside the box is reached, so every path out of the box meets a reached
+    voxel in its margin: the same result). The labels of the three axes are held for that box only.
     """
     mask = np.asarray(mask, dtype=bool)
     if mask.ndim == 0 or mask.size == 0:
@@ -284,24 +295,48 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
             idx: list[slice | int] = [slice(None)] * bg.ndim
             idx[axis] = k
             reached[tuple(idx)] = bg[tuple(idx)]
-    runs = [_background_runs(bg, axis) for axis in range(bg.ndim)]
+    for axis in range(bg.ndim):  # one sweep along each axis, on the whole array (one axis' labels at a time)
+        reached = _sweep(_background_runs(bg, axis), reached)
+    left = bg > reached
+    if not left.any():
+        return ~reached
+    box = _box_around(left)
+    del left
+    sub_bg = bg[box]
+    sub = reached[box]  # a copy: the box's reached voxels (its margin: all of its background)
+    runs = [_background_runs(sub_bg, axis) for axis in range(bg.ndim)]
     stable = 0
     axis = 0
-    for _ in range(FILL_SWEEPS):
+    for _ in range(FILL_SWEEPS - bg.ndim):
         if stable == bg.ndim:  # a sweep along every axis in turn has added nothing
+            reached[box] = sub
             return ~reached
-        ids, n = runs[axis]
-        hit = np.zeros(n + 1, bool)
-        hit[ids[reached]] = True
-        hit[0] = False  # id 0: not background
-        grown = hit[ids]
-        if np.array_equal(grown, reached):
+        grown = _sweep(runs[axis], sub)
+        if np.array_equal(grown, sub):
             stable += 1
         else:
             stable = 1
-            reached = grown
+            sub = grown
         axis = (axis + 1) % bg.ndim
     return _fill_holes_by_labels(mask)  # a maze-like background: labelling is cheaper than more sweeps
+
+
+def _box_around(a: np.ndarray) -> tuple[slice, ...]:
+    """The bounding box of the True voxels of ``a`` (at least one), with one voxel of margin inside the array."""
+    box = []
+    for axis in range(a.ndim):
+        along = np.flatnonzero(np.any(a, axis=tuple(k for k in range(a.ndim) if k != axis)))
+        box.append(slice(max(int(along[0]) - 1, 0), int(along[-1]) + 2))
+    return tuple(box)
+
+
+def _sweep(runs: tuple[np.ndarray, int], reached: np.ndarray) -> np.ndarray:
+    """``reached`` grown by every run of ``runs`` (labels from :func:`_background_runs`) it touches."""
+    ids, n = runs
+    hit = np.zeros(n + 1, bool)
+    hit[ids[reached]] = True
+    hit[0] = False  # id 0: not background
+    return hit[ids]
 
 
 #: sweeps of :func:`fill_holes` before it labels the background instead (a head-shaped mask needs 4-8)
@@ -322,24 +357,31 @@ def _fill_holes_by_labels(mask: np.ndarray) -> np.ndarray:
 
 
 def _background_runs(bg: np.ndarray, axis: int) -> tuple[np.ndarray, int]:
-    """A label per voxel of ``bg`` naming its run of consecutive True voxels along ``axis`` (0 off ``bg``)."""
+    """A label per voxel of ``bg`` naming its run of consecutive True voxels along ``axis`` (0 off ``bg``).
+
+    The runs are numbered in the order that walks each line along ``axis`` (the axis moved last), so
+    every voxel of a run gets the count of run starts up to it: a count along each line, plus the
+    starts of the lines before it. Built in the labels' own array (no flattened copies: the labels
+    and one boolean volume of run starts are all it holds).
+    """
     start = bg.copy()
     lo: list[slice] = [slice(None)] * bg.ndim
     hi: list[slice] = [slice(None)] * bg.ndim
     lo[axis], hi[axis] = slice(None, -1), slice(1, None)
-    start[tuple(hi)] &= ~bg[tuple(lo)]  # a run starts where the previous voxel along the axis is not background
-    # number the starts in the order that walks each line along ``axis`` (the axis moved last), so that
-    # every voxel of a run gets the count of starts up to it: its run's number
-    moved = np.moveaxis(start, axis, -1)
+    # a run starts where the previous voxel along the axis is not background (True > False, no temporary)
+    np.greater(bg[tuple(hi)], bg[tuple(lo)], out=start[tuple(hi)])
     n = int(np.count_nonzero(start))
     # the smallest type that holds the run numbers (a head-shaped 1M-voxel mask has ~10-30k runs an axis:
     # 2 bytes a voxel instead of 4 for each axis' labels, which fill_holes holds for all three axes)
     dtype = np.uint16 if n < 2**16 else np.int32 if n < 2**31 else np.int64
-    ids_moved = np.cumsum(moved, axis=None, dtype=dtype).reshape(moved.shape)
-    del start, moved
-    ids = np.empty(bg.shape, dtype)
-    ids[...] = np.moveaxis(ids_moved, -1, axis)  # back in the array's order (C-contiguous, as np.where gave it)
-    del ids_moved
+    ids = np.empty(bg.shape, dtype)  # C-contiguous, as the masks it is indexed with
+    along = np.moveaxis(ids, axis, -1)  # a view: each line along ``axis`` is its last axis
+    np.cumsum(np.moveaxis(start, axis, -1), axis=-1, dtype=dtype, out=along)
+    del start
+    last = along[..., -1]  # the starts in each line
+    before: np.ndarray = np.cumsum(last, axis=None, dtype=dtype).reshape(last.shape)
+    before -= last  # the starts in the lines before each line
+    along += before[..., None]
     ids *= bg  # 0 off the background (in place)
     return ids, n
 
@@ -387,21 +429,40 @@ def dilate_cross(a: np.ndarray, iterations: int = 1) -> np.ndarray:
 def object_mask(source: VolumeSource, max_bytes: float | None = None) -> np.ndarray:
     """The automatically detected object of a series, read slab by slab (see :func:`auto_mask`).
 
-    The mask is cached on ``source`` (used by ``--mask auto`` and ``--sigma auto``), and so are the
-    object voxels' peaks (C order), which the background noise estimate compares its median with;
-    the peak image itself is dropped once the mask is made.
+    The mask is cached on ``source`` (used by ``--mask auto`` and ``--sigma auto``), and so is the
+    median of the object voxels' finite peaks, which the background noise estimate compares its own
+    median with; the peak image itself is dropped once the mask is made. For a series in memory it is
+    dropped before the holes are filled (the peaks of the few voxels filling adds are taken from the
+    data again): the peak image and the hole filling's labels are not held together.
     """
     if source._object_mask is None:
         slabs = source.slabs(max_bytes)
+        in_memory = len(slabs) == 1 and not getattr(source, "lazy", False)
         if len(slabs) == 1:
             peak = peak_image(source.read(*slabs[0]))
         else:  # filled slab by slab (no list of slab peaks and concatenated copy)
             peak = np.empty(source.shape, np.float32)
             for z0, z1 in slabs:
                 peak[:, :, z0:z1] = peak_image(source.read(z0, z1))
-        mask = mask_from_peak(peak)
-        source._object_peak = peak[mask]
-        del peak
+        before = _mask_before_filling(peak)
+        if in_memory:
+            peaks = [peak[before]]
+            del peak
+            mask = fill_holes(before)
+            added = mask > before
+            if added.any():  # the filled voxels' peaks, from the data (the same values: one voxel at a time)
+                peaks.append(peak_image(source.read(*slabs[0])[added][:, None, None, :]).ravel())
+            del added
+            obj_peak = np.concatenate(peaks) if len(peaks) > 1 else peaks[0]
+            del peaks
+        else:
+            mask = fill_holes(before)
+            obj_peak = peak[mask]
+            del peak
+        del before
+        finite = obj_peak[np.isfinite(obj_peak)]  # a copy: partitioned in place
+        del obj_peak
+        source._object_median = _median64(finite, overwrite=True) if finite.size else 0.0
         source._object_mask = mask
     return source._object_mask
 
@@ -851,34 +912,44 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
     index = np.empty(kept.size, kept.dtype)  # the flat index of each row of values
     row = 0
     peaks = []
-    cached = source._object_peak is not None and obj is source._object_mask
+    cached = source._object_median is not None and obj is source._object_mask
     n_usable = n_zero = n_nonfinite = n_samples = 0
     for z0, z1 in source.slabs(max_bytes):
         block = source.read(z0, z1)
         block = np.abs(block) if np.iscomplexobj(block) else block
-        # counts over the whole background, one volume at a time (no copy of the background's samples)
+        # counts over the whole background, one volume and one run of voxels at a time (no copy of the
+        # background's samples, nor of one volume's)
         bgs = bg[:, :, z0:z1]
-        n_bg = int(np.count_nonzero(bgs))
-        any_fin = np.zeros(n_bg, bool)
-        any_nz = np.zeros(n_bg, bool)
-        n_fin: np.ndarray = np.zeros(n_bg, np.uint8 if block.shape[-1] < 256 else np.int32)  # finite samples a voxel
-        # the volumes' flat views in their memory order (NIfTI data: Fortran) with the mask raveled alike:
-        # counts do not depend on the order, and the gather reads memory in sequence (18 -> 7 ms on 12
-        # volumes of 1M voxels, against boolean indexing of a Fortran volume by a C-ordered mask)
-        order: Literal["C", "F"] = "F" if block.flags.f_contiguous else "C"
-        bg_flat = bgs.ravel(order=order)
-        for v in range(block.shape[-1]):
-            b = block[..., v].ravel(order=order)[bg_flat]
-            fin = np.isfinite(b)
-            any_fin |= fin
-            any_nz |= fin & (b != 0)
-            n_fin += fin
-        del b, fin, bg_flat
-        n_nonfinite += int(np.count_nonzero(~any_fin))
-        n_zero += int(np.count_nonzero(any_fin & ~any_nz))
-        n_usable += int(np.count_nonzero(any_nz))
-        n_samples += int(n_fin[any_nz].sum())
-        del any_fin, any_nz, n_fin
+        # the volumes' flat views in their memory order (NIfTI data: Fortran volumes) with the mask raveled
+        # alike: counts do not depend on the order, and the gather reads memory in sequence (18 -> 7 ms on
+        # 12 volumes of 1M voxels, against boolean indexing of a Fortran volume by a C-ordered mask); a
+        # C-ordered series (volumes interleaved) is gathered a run of voxels at a time, all volumes at once
+        by_volume = all(block[..., v].flags.f_contiguous for v in range(block.shape[-1]))
+        if not by_volume and not block.flags.c_contiguous:
+            block = np.ascontiguousarray(block)  # a series neither way (not one qmap reads): one copy
+        bg_flat = bgs.ravel(order="F" if by_volume else "C")
+        flats = [block[..., v].ravel(order="F") for v in range(block.shape[-1])] if by_volume else []
+        rows = None if by_volume else block.reshape(-1, block.shape[-1])
+        for i in range(0, bg_flat.size, _COUNT_BLOCK):
+            sel = bg_flat[i:i + _COUNT_BLOCK]
+            n_bg = int(np.count_nonzero(sel))
+            if n_bg == 0:
+                continue
+            any_fin = np.zeros(n_bg, bool)
+            any_nz = np.zeros(n_bg, bool)
+            n_fin: np.ndarray = np.zeros(n_bg, np.uint8 if block.shape[-1] < 256 else np.int32)  # finite samples
+            part = None if rows is None else rows[i:i + _COUNT_BLOCK][sel]
+            for v in range(block.shape[-1]):
+                b = flats[v][i:i + _COUNT_BLOCK][sel] if part is None else part[:, v]
+                fin = np.isfinite(b)
+                any_fin |= fin
+                any_nz |= fin & (b != 0)
+                n_fin += fin
+            n_nonfinite += int(np.count_nonzero(~any_fin))
+            n_zero += int(np.count_nonzero(any_fin & ~any_nz))
+            n_usable += int(np.count_nonzero(any_nz))
+            n_samples += int(n_fin[any_nz].sum())
+        del flats, rows, bg_flat
         if values is None:
             values = np.empty((kept.size, n), block.dtype)
         # the slab's sampled voxels in C order (as boolean indexing of the slab takes them), a block of
@@ -893,16 +964,15 @@ def _collect_background(source: VolumeSource, obj: np.ndarray, max_bytes: float 
             row += at.size
         if not cached:
             peaks.append(peak_image(block)[obj[:, :, z0:z1]])
-    # the object's peaks (cached by object_mask for its own mask), finite ones, for the plausibility check
-    obj_peak: np.ndarray = np.zeros(0, np.float32)
-    if cached and source._object_peak is not None:
-        obj_peak = source._object_peak
-    elif peaks:
-        obj_peak = np.concatenate(peaks)
-    del peaks
-    finite_peak = obj_peak[np.isfinite(obj_peak)]  # a copy: partitioned in place below
-    obj_median = _median64(finite_peak, overwrite=True) if finite_peak.size else 0.0
-    del obj_peak, finite_peak
+    # the median of the object's finite peaks (cached by object_mask for its own mask), for the plausibility check
+    if cached and source._object_median is not None:
+        obj_median = source._object_median
+    else:
+        obj_peak = np.concatenate(peaks) if peaks else np.zeros(0, np.float32)
+        del peaks
+        finite_peak = obj_peak[np.isfinite(obj_peak)]  # a copy: partitioned in place below
+        obj_median = _median64(finite_peak, overwrite=True) if finite_peak.size else 0.0
+        del obj_peak, finite_peak
     return _Background(
         values=values[:row] if values is not None else np.zeros((0, n)),
         index=index[:row],
@@ -1044,12 +1114,12 @@ def _uneven_background(bg, rows, index, shape, coils, quantum) -> str:
     """A note when the background noise differs between halves of the image along x or y (else "")."""
     if bg.size < 4 * _MIN_COIL_SAMPLES or index.size == 0:
         return ""
-    flat = (index.astype(np.int32) if np.prod(shape) < 2**31 else index)[rows]  # half the memory of int64
     worst = (1.0, "")
     for axis in (0, 1):  # the voxel's x, then y (C order), one at a time: np.unravel_index's coordinates
-        key = flat // (shape[1] * shape[2]) if axis == 0 else (flat // shape[2]) % shape[1]
+        # the half of each sampled voxel, then of each sample (no index or coordinate per sample)
+        key = index // (shape[1] * shape[2]) if axis == 0 else (index // shape[2]) % shape[1]
         cut = 0.5 * (shape[axis] - 1)
-        lo, hi = key < cut, key > cut
+        lo, hi = (key < cut)[rows], (key > cut)[rows]
         del key
         a, b2 = bg[lo], bg[hi]
         del lo, hi

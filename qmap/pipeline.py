@@ -555,7 +555,6 @@ class PreparedRun:
         (Reading slab k + 1 in a thread while slab k fits was measured: no gain on 2 cores, whose both
         cores the fit uses, and one more slab in memory; so the slabs are read in turn.)
         """
-        self.series._object_peak = None  # only the noise estimate needed it
         if len(slabs) > 1 and self.series.lazy and self.common.max_memory is not None:
             # (a slab_lazy run is read in slabs whatever the budget: nothing to say without one)
             self.notes.append(f"read in {len(slabs)} slabs to stay within max_memory=")
@@ -582,6 +581,8 @@ class PreparedRun:
             for (z0, z1), part in zip(slabs, self._each_slab(fn, slabs, progress), strict=True):
                 stream.add(part, z0, z1)
                 del part
+            if slabs[0][0] == 0 and slabs[-1][1] == self.series.shape[2]:
+                self.series.release()  # every slice fitted: the end of the run holds maps, not the series
             maps = stream.maps()
             release_freed_memory()  # the fit's work arrays, before the files are completed and checked
         except BaseException:
@@ -759,6 +760,7 @@ def prepare_run(
         mask, mask_desc = resolve_mask(common.mask, series, budget)
         if str(common.mask or "auto") == "auto" and auto_mask_desc:
             mask_desc = auto_mask_desc
+        release_freed_memory()  # the mask's temporaries, before the noise estimate's
     # files that shape the result are inputs too (provenance lists them with their SHA-256)
     file_inputs = list(extra_inputs or [])
     if common.mask is not None and str(common.mask) not in ("auto", "none"):

@@ -79,7 +79,7 @@ def _open_interrupting(k, suffix=".json"):
 STAGES = {
     "opening-the-3rd-file": (series_mod, "load_image", 3, None),
     "reading-voxel-data": (series_mod, "image_data", 5, None),
-    "automatic-mask": (noise_mod, "mask_from_peak", 1, None),
+    "automatic-mask": (noise_mod, "fill_holes", 1, None),
     "fit-chunk-3": (engine_mod, "fit_chunk", 3, None),
     "fit-last-chunk": (engine_mod, "fit_chunk", 9, None),
     # the maps are streamed into their files as they are fitted (one slab here: one write per map), and
@@ -238,7 +238,7 @@ def others(tmp_path_factory):
 
 # command -> (module, attribute, k): where the interrupt is injected
 OTHER_STAGES = {
-    "t1-vfa-resampling-b1": ("t1-vfa", "qmap.b1", "resample_blocks", 1),
+    "t1-vfa-resampling-b1": ("t1-vfa", "qmap.b1", "resample_blocks_of", 1),
     "t1-vfa-fit": ("t1-vfa", "qmap.engine", "fit_chunk", 1),
     "t1-vfa-3rd-nifti": ("t1-vfa", "qmap.io.writer", "NiftiStream._put", 3),
     "b1-2nd-nifti": ("b1", "qmap.io.writer", "NiftiStream._put", 2),

@@ -17,6 +17,7 @@ from qmap.noise_level import (
     _median64,
     _moments_coils,
     background_estimate,
+    mask_from_peak,
     object_mask,
     peak_image,
 )
@@ -101,17 +102,25 @@ def test_moments_in_blocks_match_numpy_on_the_whole_arrays(quantum):
     assert n4 == pytest.approx(4.0, abs=4 * se4 * n4**2)
 
 
-def test_object_mask_keeps_the_object_peaks_not_the_peak_image():
+@pytest.mark.parametrize("holes", [False, True])
+def test_object_mask_keeps_the_median_object_peak_not_the_peak_image(holes):
     data = _series(4)
+    if holes:  # dark voxels inside the object: hole filling adds them, their peaks are read from the data again
+        data[11:14, 12:15, 2:4] = 0.5
+        data[12, 13, 2, 1] = np.inf  # a filled voxel with an inf sample keeps the peak of its finite ones
     src = ArraySource(data)
     mask = object_mask(src)
     peak = peak_image(data)
-    assert np.array_equal(src._object_peak, peak[mask])  # the object's peaks in C order
-    # the estimate from the cached peaks equals the one from a source that computes them from the data
+    assert np.array_equal(mask, mask_from_peak(peak))
+    if holes:
+        assert mask[12, 13, 2] and peak[12, 13, 2] < 1
+    finite = peak[mask][np.isfinite(peak[mask])].astype(np.float64)
+    assert src._object_median == np.median(finite)  # exact: one order statistic or the mean of two
+    # the estimate from the cached median equals the one from a source that computes it from the data
     a = background_estimate(src, obj=mask)
     fresh = ArraySource(data)
     b = background_estimate(fresh, obj=mask.copy())  # not the cached mask: peaks taken from the data
-    assert fresh._object_peak is None and a.sigma == b.sigma and a.details == b.details
+    assert fresh._object_median is None and a.sigma == b.sigma and a.details == b.details
 
 
 @pytest.mark.parametrize("density", [0.1, 0.5])

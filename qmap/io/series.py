@@ -52,7 +52,7 @@ class Series:
     paths: list = field(default_factory=list)
     sidecars: list = field(default_factory=list)
     _object_mask: np.ndarray | None = field(default=None, repr=False)
-    _object_peak: np.ndarray | None = field(default=None, repr=False)  # the object voxels' peaks (noise estimate)
+    _object_median: float | None = field(default=None, repr=False)  # the object voxels' median peak (noise estimate)
     _proxies: list | None = field(default=None, repr=False)  # lazy: [4D proxy] or [3D proxies]
     _order: np.ndarray | None = field(default=None, repr=False)  # volume order applied on reading
     _shape4: tuple | None = field(default=None, repr=False)
@@ -77,6 +77,16 @@ class Series:
     @property
     def lazy(self) -> bool:
         return self._data is None
+
+    def release(self) -> None:
+        """Drop the voxel data once every slab has been fitted (the write stage needs only the grid, header and
+        acquisition): the end of a run then does not hold the series beside the maps it reads back. Reading
+        the data afterwards is an error."""
+        if self._data is not None:
+            self._shape4 = tuple(self._data.shape)
+            self._data = None
+        self._proxies = []
+        self._order = None
 
     def _lazy_state(self) -> tuple[list, tuple]:
         """The image proxies and 4D shape of a lazy series (``load_series`` sets both with ``_data`` None)."""
@@ -108,6 +118,8 @@ class Series:
             return self._data[:, :, z0:z1]
         dtype = np.complex64 if self._allow_complex else np.float32
         proxies = self._lazy_state()[0]
+        if not proxies:
+            raise RuntimeError(f"{self.paths[0]}: the series' data were released after the fit")
         if len(proxies) == 1:
             raw = np.asanyarray(proxies[0][:, :, z0:z1, :])
             if raw.ndim == 3:
@@ -177,8 +189,8 @@ def _load_volumes(paths: list[Path], *, allow_complex: bool, what: str):
         for v, (p, img) in enumerate(zip(paths, imgs)):
             # a single-slice 2D file (x, y) is one slice: (x, y, 1)
             vol = image_data(img, p, dtype=np.float32, allow_complex=allow_complex).reshape(_as_3d(img.shape))
-            if data is None:
-                data = np.empty(vol.shape + (len(paths),), vol.dtype)
+            if data is None:  # volume after volume in memory, as a 4D NIfTI file holds them (each volume contiguous)
+                data = np.empty(vol.shape + (len(paths),), vol.dtype, order="F")
             elif vol.dtype != data.dtype:  # a complex file after real ones: the series becomes complex
                 data = data.astype(np.result_type(data, vol))
             data[..., v] = vol
