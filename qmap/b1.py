@@ -43,7 +43,7 @@ import numpy as np
 from .defaults import B1_METHODS, B1_SCALES
 from .errors import InputError, UsageError, warn
 from .fitting import status as st
-from .io.nifti import image_data, load_image, read_sidecar, resample_blocks
+from .io.nifti import image_data, load_image, read_sidecar, resample_blocks_of
 
 if TYPE_CHECKING:
     from nibabel.spatialimages import SpatialImage
@@ -504,12 +504,10 @@ class B1OnGrid:
         """The map on the data grid's slices ``z0:z1``: (X, Y, z1 - z0), NaN where not covered."""
         shape = (self.shape[0], self.shape[1], z1 - z0)
         out = np.empty(int(np.prod(shape)), dtype)
-        # block by block (qmap.io.nifti.resample_blocks): never the coordinates or the two resampled images whole
-        blocks_v = resample_blocks(self.values, self.src_affine, self.shape, self.affine, order=1, cval=np.nan,
-                                   z=(z0, z1))
-        blocks_w = resample_blocks(self.weights, self.src_affine, self.shape, self.affine, order=1, cval=np.nan,
-                                   z=(z0, z1))
-        for (start, rv), (_, rw) in zip(blocks_v, blocks_w, strict=True):
+        # block by block, the map and its coverage at the same coordinates (qmap.io.nifti.resample_blocks_of):
+        # never the coordinates or the two resampled images whole
+        for start, (rv, rw) in resample_blocks_of([self.values, self.weights], self.src_affine, self.shape,
+                                                  self.affine, order=1, cval=np.nan, z=(z0, z1)):
             with np.errstate(divide="ignore", invalid="ignore"):
                 out[start:start + rv.size] = np.where(rw >= 0.5, rv / rw, np.nan)
         return out.reshape(shape)

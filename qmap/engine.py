@@ -355,8 +355,8 @@ def status_counts(status: np.ndarray) -> dict[str, int]:
     flat = np.asarray(status, np.uint8).reshape(-1)
     counts = np.zeros(256, np.int64)
     # no sort (np.unique sorts); in parts: bincount casts its input to intp, 8 bytes a voxel
-    for i in range(0, flat.size, 1 << 18):
-        counts += np.bincount(flat[i:i + (1 << 18)], minlength=256)
+    for i in range(0, flat.size, 1 << 16):
+        counts += np.bincount(flat[i:i + (1 << 16)], minlength=256)
     return {str(c): int(counts[c]) for c in np.flatnonzero(counts)}
 
 

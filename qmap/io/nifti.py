@@ -24,6 +24,7 @@ __all__ = [
     "load_image",
     "read_sidecar",
     "resample_blocks",
+    "resample_blocks_of",
     "resample_to_grid",
     "same_grid",
     "sidecar_path",
@@ -241,9 +242,21 @@ def resample_blocks(data: np.ndarray, src_affine: np.ndarray, dst_shape: tuple[i
     elements of the (X, Y, z1 - z0) slab, each value the same as that voxel's in the whole grid (the
     resampling is pointwise: each voxel's source coordinates, then trilinear interpolation at them).
     """
-    data = np.asarray(data, float)
-    if data.ndim != 3:
-        raise InputError(f"expected a 3D image to resample, got shape {data.shape}")
+    for start, (values,) in resample_blocks_of([data], src_affine, dst_shape, dst_affine, order=order, cval=cval, z=z):
+        yield start, values
+
+
+def resample_blocks_of(images: list, src_affine: np.ndarray, dst_shape: tuple[int, ...], dst_affine: np.ndarray, *,
+                       order: int = 1, cval: float = np.nan, z: tuple[int, int] | None = None):
+    """:func:`resample_blocks` of several images on one source grid: yields ``(start, [values of each])``.
+
+    Each block's source coordinates are computed once for all the images (a B1 map and its coverage).
+    """
+    images = [np.asarray(d, float) for d in images]
+    if any(d.ndim != 3 for d in images):
+        raise InputError(f"expected a 3D image to resample, got shape {next(d.shape for d in images if d.ndim != 3)}")
+    if any(d.shape != images[0].shape for d in images):
+        raise ValueError("images resampled together share one grid")
     dst_shape = tuple(int(s) for s in dst_shape[:3])
     z0, z1 = (0, dst_shape[2]) if z is None else (int(z[0]), int(z[1]))
     if not 0 <= z0 <= z1 <= dst_shape[2]:
@@ -252,18 +265,25 @@ def resample_blocks(data: np.ndarray, src_affine: np.ndarray, dst_shape: tuple[i
     plane = dst_shape[1] * (z1 - z0)
     step = max(1, RESAMPLE_BLOCK // max(1, plane))
     for x0 in range(0, dst_shape[0], step):
-        yield x0 * plane, _resample_block(data, mat, dst_shape, x0, min(x0 + step, dst_shape[0]), order, cval,
-                                          z0, z1)
+        coords, inside = _block_coordinates(mat, images[0].shape, dst_shape, x0, min(x0 + step, dst_shape[0]), z0, z1)
+        yield x0 * plane, [_interpolate(d, coords, inside, order, cval) for d in images]
 
 
-#: destination voxels resampled at a time by :func:`resample_to_grid` (its coordinates: 24 bytes a voxel)
-RESAMPLE_BLOCK = 1 << 18
+#: destination voxels resampled at a time by :func:`resample_blocks` (their coordinates: 24 bytes a voxel, 1.5 MB)
+RESAMPLE_BLOCK = 1 << 16
 
 
 def _resample_block(data: np.ndarray, mat: np.ndarray, dst_shape: tuple[int, ...], x0: int, x1: int,
                     order: int, cval: float, z0: int = 0, z1: int | None = None) -> np.ndarray:
     """The destination voxels ``[x0:x1, :, z0:z1]`` of :func:`resample_to_grid`, flat in C order."""
-    z1 = dst_shape[2] if z1 is None else z1
+    coords, inside = _block_coordinates(mat, data.shape, dst_shape, x0, x1, z0, dst_shape[2] if z1 is None else z1)
+    return _interpolate(data, coords, inside, order, cval)
+
+
+def _block_coordinates(mat: np.ndarray, src_shape: tuple[int, ...], dst_shape: tuple[int, ...], x0: int, x1: int,
+                       z0: int, z1: int) -> tuple[np.ndarray, np.ndarray]:
+    """The source coordinates of the destination voxels ``[x0:x1, :, z0:z1]`` (C order), clamped to the edge
+    voxel centres, and whether each lies inside the source field of view (within half a voxel of it)."""
     idx = np.indices((x1 - x0, dst_shape[1], z1 - z0), dtype=float)
     idx[0] += x0
     idx[2] += z0
@@ -271,17 +291,21 @@ def _resample_block(data: np.ndarray, mat: np.ndarray, dst_shape: tuple[int, ...
     src = mat[:3, :3] @ idx
     del idx
     src += mat[:3, 3:4]  # in place
-    src_shape = np.array(data.shape, float)[:, None]
-    inside = np.all((src >= -0.5) & (src <= src_shape - 0.5), axis=0)
+    edge = np.array(src_shape, float)[:, None]
+    inside = np.all((src >= -0.5) & (src <= edge - 0.5), axis=0)
     # clamp to the edge voxel centres so edge voxels are not blended with cval
-    srcc = np.clip(src, 0, src_shape - 1, out=src)
+    return np.clip(src, 0, edge - 1, out=src), inside
+
+
+def _interpolate(data: np.ndarray, coords: np.ndarray, inside: np.ndarray, order: int, cval: float) -> np.ndarray:
+    """``data`` at the clamped source coordinates ``coords``; ``cval`` where not ``inside``."""
     if order == 0:
-        ii = np.rint(srcc).astype(np.intp)
+        ii = np.rint(coords).astype(np.intp)
         out = data[ii[0], ii[1], ii[2]]
     else:
         from scipy import ndimage  # imported on use (start-up time)
 
-        out = ndimage.map_coordinates(data, srcc, order=order, mode="nearest")
+        out = ndimage.map_coordinates(data, coords, order=order, mode="nearest")
     if not inside.all():
         if np.isnan(cval) and not np.issubdtype(out.dtype, np.floating):
             out = out.astype(float)
