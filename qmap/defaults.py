@@ -17,6 +17,7 @@ __all__ = [
     "DEFAULT_NOISE_MODE",
     "DEFAULT_REFOCUS",
     "DEFAULT_T1",
+    "EXPONENTIAL_CHUNK",
     "IR_SIGNALS",
     "NOISE_MODES",
     "T1_TYPICAL",
@@ -25,6 +26,10 @@ __all__ = [
 
 #: voxels per work unit of the fitting engine (results do not depend on it)
 DEFAULT_CHUNK = 8192
+#: ... for a one-exponential fit (t2star, t2 without EPG), whose solver (Newton on the rate) holds a few arrays
+#: of the chunk: twice the voxels halve the per-chunk Python work (about 0.8 ms a chunk; 7 % of a 1M-voxel
+#: t2star run on two cores, measured) for 3 MB more memory, where other fits' work arrays would take 30 MB more
+EXPONENTIAL_CHUNK = 16384
 #: noise-floor handling of magnitude data (t2, t2star)
 NOISE_MODES = ("none", "offset", "truncate", "rician")
 #: default for t2 and t2star: the mode that stays unbiased on low-SNR magnitude data

@@ -169,7 +169,7 @@ def fit_voxels(
     noise: NoiseFloor | None = None,
     sigma: np.ndarray | None = None,
     n_jobs: int | None = None,
-    chunk_size: int = DEFAULT_CHUNK,
+    chunk_size: int | None = None,
     scheduler: str | None = None,
     quiet: bool = True,
     label: str = "fitting",
@@ -193,8 +193,9 @@ def fit_voxels(
         Noise sd per voxel.
     n_jobs : int, optional
         Local worker threads (default: all cores). Ignored with ``scheduler``.
-    chunk_size : int
-        Voxels per chunk. Results do not depend on it.
+    chunk_size : int, optional
+        Voxels per chunk (default: :attr:`FitProblem.default_chunk <qmap.fitting.problem.FitProblem.default_chunk>`).
+        Results do not depend on it.
     scheduler : str, optional
         Address of a Dask distributed scheduler (``tcp://host:8786``).
     quiet : bool
@@ -215,7 +216,8 @@ def fit_voxels(
     problem = FitProblem.create(model, noise=noise, sigma=sigma, stderr=stderr, method=method, max_iter=max_iter)
     noise = problem.noise
     n = y.shape[0]
-    chunks = split_chunks(n, chunk_size, 1 if scheduler else resolve_jobs(n_jobs))
+    chunks = split_chunks(n, problem.default_chunk if chunk_size is None else chunk_size,
+                          1 if scheduler else resolve_jobs(n_jobs))
     sig = None if sigma is None else np.broadcast_to(np.asarray(sigma, float), (n,))
     shared = progress is not None
     progress = progress if progress is not None else Progress(len(chunks), label, quiet=quiet)

@@ -8,7 +8,7 @@ from typing import Any, Literal, TypedDict
 
 import numpy as np
 
-from .engine import DEFAULT_CHUNK, fit_voxels, status_counts
+from .engine import fit_voxels, status_counts
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
 from .fitting.problem import FitProblem
@@ -27,7 +27,8 @@ class Execution(TypedDict, total=False):
     engine : {"fast", "lmfit"}
         The vectorised solver (default) or per-voxel lmfit reference fits.
     chunk_size : int or None
-        Voxels per work unit (default :data:`~qmap.engine.DEFAULT_CHUNK`); results do not depend on it.
+        Voxels per work unit (default :data:`~qmap.defaults.DEFAULT_CHUNK`, for one-exponential fits
+        :data:`~qmap.defaults.EXPONENTIAL_CHUNK`); results do not depend on it.
     scheduler : str or None
         Address of an existing Dask distributed cluster that runs the chunks.
     """
@@ -50,9 +51,8 @@ def execution_kwargs(execution: Mapping[str, Any]) -> dict[str, Any]:
     if unknown:
         raise TypeError(f"unexpected keyword argument(s) {', '.join(map(repr, unknown))}; the execution options are "
                         f"{', '.join(sorted(Execution.__optional_keys__))}")
-    chunk = execution.get("chunk_size")
     return {"n_jobs": execution.get("n_jobs"), "method": execution.get("engine", "fast"),
-            "scheduler": execution.get("scheduler"), "chunk_size": DEFAULT_CHUNK if chunk is None else chunk}
+            "scheduler": execution.get("scheduler"), "chunk_size": execution.get("chunk_size")}
 
 
 @dataclass
@@ -150,7 +150,7 @@ def fit_volume(
     noise: NoiseFloor | None = None,
     sigma=None,
     n_jobs: int | None = None,
-    chunk_size: int = DEFAULT_CHUNK,
+    chunk_size: int | None = None,
     scheduler: str | None = None,
     quiet: bool = True,
     invalid_ctx_status: int = st.OUTSIDE_B1,

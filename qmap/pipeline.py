@@ -19,7 +19,6 @@ import numpy as np
 
 from . import __version__
 from .checks import check_series_shape, clip_small_negatives, warn_fit_quality
-from .engine import DEFAULT_CHUNK
 from .errors import InputError, OutputExistsError, UsageError, warn
 from .fitting import status as st
 from .fitting.noise_floor import NoiseFloor
@@ -63,7 +62,7 @@ class CommonOptions:
     quiet: bool = True
     preview: bool = False
     engine: str = "fast"
-    chunk_size: int = DEFAULT_CHUNK
+    chunk_size: int | None = None  # None: the fit's own default (FitProblem.default_chunk)
     command_line: list | None = None
     max_memory: float | None = None  # bytes; larger inputs are read in slabs
     stderr: str = "noise"  # covariance convention with a known noise level (qmap.fitting.uncertainty)

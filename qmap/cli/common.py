@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import TYPE_CHECKING
 
-from ..defaults import B1_SCALES, DEFAULT_CHUNK
+from ..defaults import B1_SCALES, DEFAULT_CHUNK, EXPONENTIAL_CHUNK
 from ..defaults import DEFAULT_NOISE_MODE as DEFAULT_MODE
 from ..defaults import NOISE_MODES as MODES
 from ..errors import UsageError, warn
@@ -108,8 +108,9 @@ def add_common(p: argparse.ArgumentParser, *, time_maps: bool = True, engine: bo
     if engine:
         g.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
                        help="fast: vectorised solver (default); lmfit: per-voxel reference fits (slow, small jobs)")
-    g.add_argument("--chunk-size", type=int, default=DEFAULT_CHUNK, metavar="N",
-                   help=f"at most N voxels per work unit (default {DEFAULT_CHUNK}); results do not depend on it")
+    g.add_argument("--chunk-size", type=int, default=None, metavar="N",
+                   help=f"at most N voxels per work unit (default {DEFAULT_CHUNK}, {EXPONENTIAL_CHUNK} for a "
+                        f"one-exponential fit); results do not depend on it")
     g.add_argument("--no-series-check", dest="series_check", action="store_false",
                    help="fit even when the series does not behave like the model (a decay that does not fall with "
                         "echo time, ...); qmap refuses such a series by default, naming the likely cause")
@@ -153,7 +154,7 @@ def common_from_args(args) -> CommonOptions:
 
     if args.jobs is not None and args.jobs == 0:
         raise UsageError("-j 0: give a positive number of workers (or leave -j out for all cores)")
-    if args.chunk_size < 1:
+    if args.chunk_size is not None and args.chunk_size < 1:
         raise UsageError("--chunk-size must be a positive number of voxels")
     if args.scheduler and args.jobs is not None:
         warn("-j is ignored with --scheduler (the cluster's workers do the work)")

@@ -50,6 +50,15 @@ class FitProblem:
     method: str = "fast"
     max_iter: int = 60
 
+    @property
+    def default_chunk(self) -> int:
+        """Voxels per work unit when none is asked for (:data:`~qmap.defaults.DEFAULT_CHUNK`;
+        :data:`~qmap.defaults.EXPONENTIAL_CHUNK` for the one-exponential solver's lean work arrays)."""
+        from ..defaults import DEFAULT_CHUNK, EXPONENTIAL_CHUNK
+
+        lean = self.method == "fast" and getattr(self.model, "one_exponential", False)
+        return EXPONENTIAL_CHUNK if lean else DEFAULT_CHUNK
+
     @classmethod
     def create(cls, model, *, noise: NoiseFloor | None = None, sigma=None, stderr: str = "noise",
                method: str = "fast", max_iter: int = 60) -> FitProblem:

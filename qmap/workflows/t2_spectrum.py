@@ -601,7 +601,7 @@ def run_t2_spectrum(
     n_mask = int(np.count_nonzero(run.mask))
     workers = resolve_jobs(common.n_jobs)
     # chunks: at most SPECTRUM_CHUNK voxels, and at least one per worker (results do not depend on it)
-    chunk = max(256, min(common.chunk_size, SPECTRUM_CHUNK, -(-n_mask // workers)))
+    chunk = max(256, min(common.chunk_size or SPECTRUM_CHUNK, SPECTRUM_CHUNK, -(-n_mask // workers)))
     spectra = _SpectrumFile(shape, n_t2, _SPILLED)
     try:
         progress = Progress(n_mask, "fitting", quiet=common.quiet)
