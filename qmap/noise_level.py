@@ -286,8 +286,20 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     voxel in its margin: the same result). The labels of the three axes are held for that box only.
     """
     mask = np.asarray(mask, dtype=bool)
-    if mask.ndim == 0 or mask.size == 0:
+    if mask.ndim == 0 or mask.size == 0 or not mask.any():
         return mask.copy()
+    # outside the object's bounding box every voxel is background with a straight line to a face: the work
+    # is done in the box with one voxel of margin (whose background is reached), the same result
+    box = _box_around(mask)
+    if any(b.stop - b.start < n for b, n in zip(box, mask.shape)):
+        out = mask.copy()
+        out[box] = _fill_holes_in(mask[box])
+        return out
+    return _fill_holes_in(mask)
+
+
+def _fill_holes_in(mask: np.ndarray) -> np.ndarray:
+    """:func:`fill_holes` of a non-empty boolean array (on the whole array)."""
     bg = ~mask
     reached = np.zeros_like(bg)
     for axis in range(bg.ndim):

@@ -384,7 +384,6 @@ def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | N
     for z0, z1 in series.slabs(max_bytes):
         block = series.read(z0, z1)
         d = np.abs(block) if np.iscomplexobj(block) else block
-        n_negative += int(np.count_nonzero(d < 0))
         with np.errstate(invalid="ignore"):
             blo, bhi = float(np.fmin.reduce(d, axis=None)), float(np.fmax.reduce(d, axis=None))  # skip NaN, no copy
         if not (np.isfinite(blo) and np.isfinite(bhi)):
@@ -392,6 +391,8 @@ def check_signal(series: Series, *, magnitude: bool = True, max_bytes: float | N
             if finite.size == 0:
                 continue
             blo, bhi = float(finite.min()), float(finite.max())
+        if blo < 0:  # counted only where there is a negative sample (a pass over the data saved otherwise)
+            n_negative += int(np.count_nonzero(d < 0))
         lo, hi = min(lo, blo), max(hi, bhi)
     if not np.isfinite(lo):
         raise InputError(f"{series.paths[0]}: every sample is NaN or infinite; nothing to fit")

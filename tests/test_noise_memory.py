@@ -137,3 +137,31 @@ def test_hole_filling_labels_runs_in_the_smallest_type_with_scipys_result(densit
     assert np.array_equal(ids == 0, mask) and int(ids.max()) == n  # every background voxel in a numbered run
     # scipy.ndimage.binary_fill_holes (6-connected background reached from the faces) as the reference
     assert np.array_equal(fill_holes(mask), ndimage.binary_fill_holes(mask))
+
+
+def test_hole_filling_in_a_box_and_around_bends_as_scipy():
+    """The object's bounding box, and the box of background still unreached after one sweep per axis: both
+    give scipy.ndimage.binary_fill_holes' result (6-connected background reached from the faces)."""
+    from scipy import ndimage
+
+    from qmap.noise_level import fill_holes
+
+    # a hollow shell with a bent tunnel out of it: its inside is reached only through the bend (the y-run of
+    # the tunnel, then the z-column into the cavity, then the cavity across: more sweeps than one per axis),
+    # and a closed hollow cube beside it (a true hole)
+    m = np.zeros((30, 28, 26), bool)
+    m[3:15, 3:15, 3:15] = True
+    m[5:13, 5:13, 5:13] = False  # the cavity (z 5-12), under a lid of two layers (z 13, 14)
+    m[9, 9:15, 13] = False  # the tunnel: up from the cavity into the lid's lower layer, then along y out of the shell
+    m[18:26, 16:24, 6:14] = True
+    m[20:24, 18:22, 8:12] = False  # a closed cavity: filled
+    ref = ndimage.binary_fill_holes(m)
+    assert ref[22, 20, 10] and not ref[9, 9, 9]  # the closed one is filled, the tunnelled one is not
+    assert np.array_equal(fill_holes(m), ref)
+    rng = np.random.default_rng(5)
+    for _ in range(200):  # random objects inside a background margin, and filling the whole array
+        inner = rng.uniform(size=tuple(rng.integers(1, 12, 3))) < rng.uniform(0.3, 0.9)
+        pad = [(int(rng.integers(0, 3)), int(rng.integers(0, 3))) for _ in range(3)]
+        mask = np.pad(inner, pad)
+        assert np.array_equal(fill_holes(mask), ndimage.binary_fill_holes(mask))
+    assert not fill_holes(np.zeros((4, 5, 6), bool)).any()
