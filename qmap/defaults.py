@@ -26,7 +26,8 @@ __all__ = [
 
 #: voxels per work unit of the fitting engine (results do not depend on it)
 DEFAULT_CHUNK = 8192
-#: ... for a one-exponential fit (t2star, t2 without EPG), whose solver (Newton on the rate) holds a few arrays
+#: ... for a one-exponential fit (t2star, t2 without EPG; no noise floor or the Rician one: qmap.fitting.problem.
+#: lean_fit), whose solver (Newton on the rate) holds a few arrays
 #: of the chunk: twice the voxels halve the per-chunk Python work (about 0.8 ms a chunk; 7 % of a 1M-voxel
 #: t2star run on two cores, measured) for 3 MB more memory, where other fits' work arrays would take 30 MB more
 EXPONENTIAL_CHUNK = 16384

@@ -14,6 +14,7 @@ from __future__ import annotations
 import itertools
 import os
 import sys
+import threading
 import time
 from dataclasses import dataclass
 from typing import Protocol
@@ -69,6 +70,7 @@ class Progress:
         self.quiet = quiet or not (self.tty or log)
         self.t0 = time.perf_counter()
         self._last = -1.0
+        self._lock = threading.Lock()  # updated by the fits of two slabs at a time (PreparedRun.fit)
 
     def finish(self) -> None:
         """Show the display complete (e.g. when fewer items than announced were left to do)."""
@@ -77,7 +79,8 @@ class Progress:
 
     def update(self, k: int = 1, *, detail: str = "", line: str | None = None) -> None:
         """``k`` more items done; ``detail`` follows the bar, ``line`` is the log line (``log=True``, no terminal)."""
-        self.done += k
+        with self._lock:
+            self.done += k
         if self.quiet:
             return
         if not self.tty:

@@ -549,36 +549,64 @@ class PreparedRun:
         """Call ``fn(slab)`` for each :class:`Slab` in turn (read one at a time); returns the results in z order."""
         return list(self._each_slab(fn, self.slabs if slabs is None else slabs, progress))
 
-    def _each_slab(self, fn, slabs: list[tuple[int, int]], progress=None):
+    def _each_slab(self, fn, slabs: list[tuple[int, int]], progress=None, ahead: bool = False):
         """``fn(slab)`` for each slab, in z order, each read when it is its turn.
 
         (Reading slab k + 1 in a thread while slab k fits was measured: no gain on 2 cores, whose both
         cores the fit uses, and one more slab in memory; so the slabs are read in turn.)
+
+        ``ahead`` (a series in memory, whose slabs are views): ``fn`` of the next slab starts in a helper
+        thread while the current one finishes, so that a fit's workers do not wait at the end of each slab
+        for its last chunk and the next slab's preparation (measured on a 1M-voxel t2star run in 8 slabs:
+        the two workers were busy 60-70 % of the fit). The results come in z order as without it.
         """
         if len(slabs) > 1 and self.series.lazy and self.common.max_memory is not None:
             # (a slab_lazy run is read in slabs whatever the budget: nothing to say without one)
             self.notes.append(f"read in {len(slabs)} slabs to stay within max_memory=")
-        for k, (z0, z1) in enumerate(slabs):  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
+
+        def slab(k: int) -> Slab:  # magnitude data were checked to be >= 0 (check_signal): no abs() copy
+            z0, z1 = slabs[k]
             sigma = self.sigma
             if isinstance(sigma, np.ndarray) and sigma.ndim == 3:  # a noise map: the slab's part
                 sigma = sigma[:, :, z0:z1]
-            yield fn(Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs), progress))
+            return Slab(self.series.read(z0, z1), self.mask[:, :, z0:z1], sigma, z0, z1, k, len(slabs), progress)
 
-    def map_slabs(self, fn, *, progress=None, slabs: list[tuple[int, int]] | None = None) -> MapSet:
+        if not ahead or len(slabs) < 2 or self.series.lazy:
+            for k in range(len(slabs)):
+                yield fn(slab(k))
+            return
+        from collections import deque
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(2, thread_name_prefix="qmap-slab") as helper:
+            running = deque(helper.submit(fn, slab(k)) for k in range(2))
+            try:
+                for k in range(len(slabs)):
+                    part = running.popleft().result()
+                    if k + 2 < len(slabs):
+                        running.append(helper.submit(fn, slab(k + 2)))
+                    yield part
+                    del part
+            finally:
+                for f in running:
+                    f.cancel()
+
+    def map_slabs(self, fn, *, progress=None, slabs: list[tuple[int, int]] | None = None,
+                  ahead: bool = False) -> MapSet:
         """Apply ``fn(slab) -> MapSet`` to each :class:`Slab` in turn, streaming the maps into the output files.
 
         The slabs are :attr:`fit_slabs`; each slab's maps are appended to the run's output files (in a
         background thread, while the next slab is fitted) and dropped, so the maps are never held whole.
         Returns a :class:`~qmap.streaming.StreamedMaps` (the status map held, the others read from the files
         on access); :meth:`write` completes and commits the files. ``slabs``: other z ranges (default
-        :attr:`fit_slabs`).
+        :attr:`fit_slabs`). ``ahead``: two slabs in ``fn`` at a time (see :meth:`_each_slab`).
         """
         slabs = self.fit_slabs if slabs is None else slabs
         if not slabs:
             raise InputError(f"{self.series.paths[0]}: the series has no slice to fit")
         stream = self.map_stream()
         try:
-            for (z0, z1), part in zip(slabs, self._each_slab(fn, slabs, progress), strict=True):
+            for (z0, z1), part in zip(slabs, self._each_slab(fn, slabs, progress, ahead), strict=True):
                 stream.add(part, z0, z1)
                 del part
             if slabs[0][0] == 0 and slabs[-1][1] == self.series.shape[2]:
@@ -623,7 +651,8 @@ class PreparedRun:
         as B1) and ``input_se`` (their standard errors, propagated to first order) are volumes cut to
         each slab. The maps are streamed into the output files (:meth:`map_slabs`).
         """
-        from .engine import Progress
+        from .engine import Progress, resolve_jobs
+        from .fitting.problem import lean_fit
 
         common = self.common
         check_series_shape(self.series, model, self.mask, enabled=common.series_check, max_bytes=common.max_memory)
@@ -638,7 +667,11 @@ class PreparedRun:
                 dtype=np.float32, stderr=common.stderr, input_se=_cut(input_se, slab), progress=slab.progress,
             )
 
-        return self.map_slabs(one, progress=progress, slabs=self.fit_slabs_for(self.series.n))
+        # two slabs at a time for a lean fit spread over local workers (a scheduler's cluster has its own queue):
+        # 1M-voxel t2star 3 % faster over alternating runs, for 15 MB more (the maps of one more slab)
+        lean = lean_fit(model, method or common.engine, noise)
+        ahead = lean and common.scheduler is None and resolve_jobs(common.n_jobs) > 1
+        return self.map_slabs(one, progress=progress, slabs=self.fit_slabs_for(self.series.n), ahead=ahead)
 
     def write(self, maps: MapSet, *, options: dict | None = None, model_info: dict) -> RunReport:
         """Write the maps and the provenance (see :func:`write_run`)."""

@@ -61,3 +61,26 @@ def test_the_mode_is_checked_once_and_is_a_string():
     assert NoiseFloor("truncate").provenance() == {"truncate_factor": 3.0, "min_samples": 3}
     with pytest.raises(ValueError, match="noise-floor mode 'gaussian'"):
         NoiseFloor("gaussian")
+
+
+@pytest.mark.parametrize(("mode", "method", "lean"), [
+    ("none", "fast", True), ("rician", "fast", True), ("offset", "fast", False), ("truncate", "fast", False),
+    ("none", "lmfit", False),
+])
+def test_the_one_exponential_fit_takes_larger_chunks(mode, method, lean):
+    from qmap.defaults import DEFAULT_CHUNK, EXPONENTIAL_CHUNK
+    from qmap.fitting.problem import lean_fit
+    from qmap.models.ir import InversionRecovery
+
+    sigma = 1.0 if mode in ("rician", "truncate") else None
+    problem = FitProblem.create(MonoExponential(TE), noise=NoiseFloor(mode), sigma=sigma, method=method)
+    assert lean_fit(problem.model, method, problem.noise) is lean
+    assert problem.default_chunk == (EXPONENTIAL_CHUNK if lean else DEFAULT_CHUNK)
+    # a model with more work per voxel keeps the default chunk
+    assert FitProblem.create(InversionRecovery(np.array([0.1, 0.5, 1.0, 2.0]))).default_chunk == DEFAULT_CHUNK
+    # the chunk does not change the fit (the engine splits by it; a row's result depends on the row alone)
+    rng = np.random.default_rng(3)
+    y = 100 * np.exp(-TE / rng.uniform(0.01, 0.05, (300, 1))) + rng.normal(0, 1, (300, TE.size))
+    a = fit_voxels(problem.model, y, noise=problem.noise, sigma=sigma, method=method, n_jobs=1)
+    b = fit_voxels(problem.model, y, noise=problem.noise, sigma=sigma, method=method, n_jobs=1, chunk_size=7)
+    assert np.array_equal(a.params, b.params, equal_nan=True) and np.array_equal(a.status, b.status)
