@@ -263,11 +263,27 @@ def _mask_before_filling(peak: np.ndarray) -> np.ndarray:
     del clipped, nonzero
     threshold = 0.5 * t_otsu
     if lower.size:
-        threshold = min(threshold, MASK_NOISE_FACTOR * float(np.median(lower, overwrite_input=True)))
+        threshold = min(threshold, MASK_NOISE_FACTOR * float(median_inplace(lower)))
     del lower
     # pad by repeating the edge so that the image border does not erode the object
-    # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice)
-    return dilate_cross(erode_cross(np.pad(peak > threshold, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
+    # (thin slabs and 2D multi-slice data would lose the rim of the first and last slice); in C order
+    # (a peak image of NIfTI data is Fortran-ordered: the morphology's shifted views are 6x slower on it)
+    above = np.ascontiguousarray(peak > threshold)
+    return dilate_cross(erode_cross(np.pad(above, 1, mode="edge")))[1:-1, 1:-1, 1:-1]
+
+
+def median_inplace(values: np.ndarray):
+    """``np.median(values, overwrite_input=True)`` of a 1-D array, bit for bit, by one partition (numpy's
+    median partitions at both middle order statistics; the lower one is the largest value below the upper).
+    ``values`` is reordered. NaN: numpy's own."""
+    n = values.size
+    if n == 0 or np.isnan(values).any():
+        return np.median(values, overwrite_input=True)
+    k = n // 2
+    values.partition(k)
+    if n % 2:
+        return np.mean(values[k:k + 1])
+    return np.mean(np.array([values[:k].max(), values[k]], values.dtype))  # numpy's mean of the two
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
@@ -405,7 +421,7 @@ def erode_cross(a: np.ndarray) -> np.ndarray:
     views: a few milliseconds on 1M voxels instead of tens.
     """
     a = np.asarray(a, dtype=bool)
-    out = a.copy()
+    out = a.copy(order="K")  # in the input's memory order (a transposing copy costs more than the erosion)
     for axis in range(a.ndim):
         lo = [slice(None)] * a.ndim
         hi = [slice(None)] * a.ndim
@@ -428,7 +444,7 @@ def dilate_cross(a: np.ndarray, iterations: int = 1) -> np.ndarray:
     out = np.asarray(a, dtype=bool)
     for _ in range(iterations):
         src = out
-        out = src.copy()
+        out = src.copy(order="K")
         for axis in range(src.ndim):
             lo = [slice(None)] * src.ndim
             hi = [slice(None)] * src.ndim
@@ -1004,15 +1020,15 @@ def _median64(values: np.ndarray, overwrite: bool = False) -> float:
     """
     n = values.size
     k = n // 2
-    kth = k if n % 2 else [k - 1, k]
     if overwrite:
-        values.partition(kth)
+        values.partition(k)
         part = values
     else:
-        part = np.partition(values, kth)
+        part = np.partition(values, k)
     if n % 2:
         return float(part[k])
-    return float((np.float64(part[k - 1]) + np.float64(part[k])) / 2.0)
+    # the lower middle value: the largest below the upper one (one partition instead of numpy's two)
+    return float((np.float64(part[:k].max()) + np.float64(part[k])) / 2.0)
 
 
 def _background_samples(values: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:

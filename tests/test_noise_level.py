@@ -547,6 +547,8 @@ def test_median64_is_numpys_float64_median_to_the_bit():
     for n in (1, 2, 3, 10, 1001, 20000):
         x = (rng.lognormal(5.0, 1.0, n)).astype(np.float32)
         assert _median64(x) == float(np.median(x.astype(np.float64))), n
+        ties = np.round(x / 50) * 50  # one partition for both middle values: ties around the middle too
+        assert _median64(ties.copy(), overwrite=True) == float(np.median(ties.astype(np.float64))), n
 
 
 def test_percentile_inplace_is_numpys_bit_for_bit():
@@ -570,3 +572,25 @@ def test_percentile_inplace_is_numpys_bit_for_bit():
         got = percentile_inplace(a.copy(), q)
         assert np.asarray(got).dtype == np.asarray(ref).dtype
         assert got == ref or (np.isnan(got) and np.isnan(ref)), (t, n, q)
+
+
+def test_median_inplace_is_numpys_bit_for_bit():
+    """The automatic mask's noise-class median by one partition: np.median's value and type to the bit
+    (the mean of the two middle values for an even count, in the values' precision), ties and NaN included."""
+    from qmap.noise_level import median_inplace
+
+    rng = np.random.default_rng(13)
+    for t in range(3000):
+        n = int(rng.integers(1, 2000))
+        a = (rng.rayleigh(10.0, n) * 10 ** rng.uniform(-3, 3)).astype([np.float32, np.float64][t % 2])
+        if t % 5 == 0:
+            a[: n // 2] = a[0]
+        if t % 7 == 0:
+            a = np.round(a)
+        if t % 11 == 0:
+            a[rng.integers(0, n)] = np.nan
+        with np.errstate(invalid="ignore"):
+            ref = np.median(a.copy(), overwrite_input=True)
+        got = median_inplace(a.copy())
+        assert type(got) is type(ref), (t, n)
+        assert got == ref or (np.isnan(got) and np.isnan(ref)), (t, n)
