@@ -1232,7 +1232,9 @@ def pooled_sigma(rss: np.ndarray, dof: np.ndarray) -> float:
     their pool: sigma is the square root of the median of the ``u_i``. A minority of voxels where the
     model does not fit (edges, partial volume) moves the median little.
     """
-    return math.sqrt(float(np.median(rss / chi2_ppf(0.5, dof))))
+    # the median of chi2(dof) once per distinct dof (most voxels share one: the quantile is a Newton search)
+    levels, which = np.unique(np.asarray(dof, float), return_inverse=True)
+    return math.sqrt(float(np.median(rss / chi2_ppf(0.5, levels)[which.reshape(np.shape(dof))])))
 
 
 def pooled_relative_se(dof: np.ndarray) -> float:
