@@ -131,11 +131,14 @@ def _exact(nu: np.ndarray, sigma, coils: int, grad: bool) -> tuple[np.ndarray, n
     return e, de
 
 
-def _block(nu: np.ndarray, sigma, coils: int, out_e: np.ndarray, out_d: np.ndarray | None) -> None:
+def _block(nu: np.ndarray, sigma, coils: int, out_e: np.ndarray, out_d: np.ndarray | None,
+           low_out: np.ndarray | None = None) -> None:
     """Evaluate one block: series everywhere, exact form where the SNR is low.
 
     ``sigma`` is a float or an array (possibly a broadcast view) of the shape
-    of ``nu``; results go into ``out_e`` / ``out_d`` (same shape).
+    of ``nu``; results go into ``out_e`` / ``out_d`` (same shape). With
+    ``low_out`` (bool, same shape) the low-SNR elements are only marked there,
+    for one exact evaluation of all of them afterwards (:func:`_evaluate`).
     """
     c, d, t_switch = _series(coils)
     a = np.abs(nu)
@@ -149,7 +152,9 @@ def _block(nu: np.ndarray, sigma, coils: int, out_e: np.ndarray, out_d: np.ndarr
     if out_d is not None:
         _horner(d, t, out_d)
         np.copysign(out_d, nu, out=out_d)
-    if not high.all():
+    if low_out is not None:
+        np.logical_not(high, out=low_out)
+    elif not high.all():
         low = ~high
         s_low = sigma if isinstance(sigma, float) else sigma[low]
         e, de = _exact(nu[low], s_low, coils, out_d is not None)
@@ -177,6 +182,11 @@ def _evaluate(nu: npt.ArrayLike, sigma: npt.ArrayLike, coils: int, grad: bool):
     s_b = float(sigma) if sigma.ndim == 0 else np.broadcast_to(sigma, work)
     out_e = np.empty(work)
     out_d = np.empty(work) if grad else None
+    # the series block by block (in cache); the low-SNR elements of all blocks marked, then their exact form in
+    # one call: its Bessel series is many numpy steps, which on the few low elements of one block were short
+    # enough to hold Python's interpreter lock throughout (two fit workers then took turns: t2 --epg, 32 echoes
+    # mostly at the floor, was no faster on two threads than on one). Each element's value is the same.
+    low = np.empty(work, bool)
     step = max(1, _BLOCK // max(1, math.prod(work[1:])))
     for start in range(0, work[0], step):
         sl = slice(start, start + step)
@@ -186,7 +196,13 @@ def _evaluate(nu: npt.ArrayLike, sigma: npt.ArrayLike, coils: int, grad: bool):
             coils,
             out_e[sl],
             None if out_d is None else out_d[sl],
+            low[sl],
         )
+    if low.any():
+        e, de = _exact(nu_b[low], s_b if isinstance(s_b, float) else s_b[low], coils, grad)
+        out_e[low] = e
+        if out_d is not None:
+            out_d[low] = de
     e = out_e.reshape(shape)[()]
     if out_d is None:
         return e
