@@ -81,3 +81,18 @@ def test_noise_estimates_unchanged_from_scipy():
     q = float(stats.chi2.median(k))
     assert pooled_relative_se(dof) == pytest.approx(1.0 / (4.0 * stats.chi2.pdf(q, k) * q * math.sqrt(dof.size)),
                                                     rel=1e-12)
+
+
+def test_bessel_values_do_not_depend_on_what_else_is_evaluated_with_them():
+    """A few values go through one series loop for all bands, many through one loop per band: each value's
+    result is the same to the bit either way (a fit's results must not depend on how its voxels are batched)."""
+    from qmap import special
+
+    rng = np.random.default_rng(4)
+    z = np.concatenate([[0.0, 1e-300, 2.0, 2.0000001, 6.0, 12.0, 20.0, 30.0, 30.5], rng.uniform(0, 32, 5000),
+                        rng.exponential(3.0, 5000)])
+    whole = special.i01e(z)  # banded: more values than special._FEW
+    assert z.size > special._FEW
+    for part in np.array_split(np.arange(z.size), 400):  # 25 values a call: one loop for every band
+        got = special.i01e(z[part])
+        assert np.array_equal(got[0], whole[0][part]) and np.array_equal(got[1], whole[1][part])
