@@ -317,3 +317,30 @@ def test_interrupted_simulate_creates_nothing(tmp_path, monkeypatch, capsys):
     capsys.readouterr()
     assert trap.fired and rc == 130
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("k", [1, 4, 9])
+def test_interrupt_while_two_slabs_are_fitted_at_once(k, tmp_path, inputs, monkeypatch, capsys):
+    """A lean fit (no noise floor) on two workers fits two slabs at a time, each in a helper thread: an
+    interrupt in any chunk leaves the folder as it was, and the same run uninterrupted gives the maps of a
+    run in one slab."""
+    import qmap.pipeline as pipeline_mod
+
+    shape = nib.load(str(inputs[0])).shape
+    monkeypatch.setattr(pipeline_mod, "AUTO_SLAB_VOXELS", shape[0] * shape[1] * 2)  # slabs of two slices
+    out = tmp_path / "new" / "out"
+    trap = _set_trap(monkeypatch, engine_mod, "fit_chunk", k)
+    rc = main(["t2star", *map(str, inputs), "-o", str(out), "-q", "--noise-floor", "none", "-j", "2",
+               "--chunk-size", "50"])
+    assert trap.fired and rc == 130
+    assert "no outputs were written" in capsys.readouterr().err
+    assert not (tmp_path / "new").exists()
+    monkeypatch.setattr(engine_mod, "fit_chunk", trap.fn)
+    assert main(["t2star", *map(str, inputs), "-o", str(tmp_path / "slabs"), "-q", "--noise-floor", "none",
+                 "-j", "2", "--chunk-size", "50"]) == 0
+    monkeypatch.setattr(pipeline_mod, "AUTO_SLAB_VOXELS", 1 << 30)
+    assert main(["t2star", *map(str, inputs), "-o", str(tmp_path / "one"), "-q", "--noise-floor", "none",
+                 "-j", "2", "--chunk-size", "50"]) == 0
+    for f in sorted((tmp_path / "one").glob("*.nii.gz")):
+        assert np.array_equal(np.asanyarray(nib.load(str(f)).dataobj),
+                              np.asanyarray(nib.load(str(tmp_path / "slabs" / f.name)).dataobj), equal_nan=True)
