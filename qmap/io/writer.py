@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import re
 import shutil
@@ -257,10 +258,15 @@ class NiftiStream:
         data = block if self.out.scale == 1.0 else block * self.out.scale
         arr = np.asarray(data, dtype=self.dtype)
         if self.out.kind != "status" and arr.size:
-            finite = np.isfinite(arr)
-            if finite.any():
-                self._lo = min(self._lo, float(np.min(arr, where=finite, initial=np.inf)))
-                self._hi = max(self._hi, float(np.max(arr, where=finite, initial=-np.inf)))
+            # the display range of the finite values: NaN-skipping reductions (no mask), which are that unless
+            # an infinity is the extreme (then the masked reductions)
+            lo, hi = float(np.fmin.reduce(arr, axis=None)), float(np.fmax.reduce(arr, axis=None))
+            if not (math.isfinite(lo) and math.isfinite(hi)):
+                finite = np.isfinite(arr)
+                lo = float(np.min(arr, where=finite, initial=np.inf)) if finite.any() else np.inf
+                hi = float(np.max(arr, where=finite, initial=-np.inf)) if finite.any() else -np.inf
+            self._lo = min(self._lo, lo)
+            self._hi = max(self._hi, hi)
         try:
             self._put(arr.tobytes(order="F"))
         except OSError as exc:
