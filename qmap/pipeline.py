@@ -578,7 +578,11 @@ class PreparedRun:
         from collections import deque
         from concurrent.futures import ThreadPoolExecutor
 
-        with ThreadPoolExecutor(2, thread_name_prefix="qmap-slab") as helper:
+        from threadpoolctl import threadpool_limits
+
+        # the BLAS limit of the two slabs' fits set once around both (each fit's own would restore the
+        # other's setting when it ends while the other runs)
+        with threadpool_limits(limits=1), ThreadPoolExecutor(2, thread_name_prefix="qmap-slab") as helper:
             running = deque(helper.submit(fn, slab(k)) for k in range(2))
             try:
                 for k in range(len(slabs)):

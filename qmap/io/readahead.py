@@ -154,8 +154,9 @@ def take(path) -> bytes | None:
 #: modules a fitting run imports later anyway, imported by the loader while it waits for the inflating (which
 #: releases the interpreter lock): numpy's median and percentile import numpy.ma on first use (~10 ms that
 #: would otherwise come after the loading; measured on the benchmark's 1M-voxel series, the main thread had
-#: finished its imports ~35 ms before the series was inflated)
-IMPORT_WHILE_WAITING = ("numpy.ma",)
+#: finished its imports ~35 ms before the series was inflated); threadpoolctl, which the fit's engine imports
+#: (4 ms)
+IMPORT_WHILE_WAITING = ("numpy.ma", "threadpoolctl")
 
 
 def _import_while_waiting(done: threading.Event) -> None:
