@@ -551,21 +551,28 @@ def test_median64_is_numpys_float64_median_to_the_bit():
         assert _median64(ties.copy(), overwrite=True) == float(np.median(ties.astype(np.float64))), n
 
 
-def test_percentile_inplace_is_numpys_bit_for_bit():
-    """The automatic mask's clip level (99.9th percentile) by one partition: numpy's value to the bit
-    (reference: np.percentile, default linear method), ties, integer values, NaN and the ends included."""
-    from qmap.noise_level import percentile_inplace
-
-    rng = np.random.default_rng(12)
+def _order_statistic_cases(seed: int, draw):
+    """3000 arrays of 1-2000 values ``draw(rng, n)``, float32 and float64 in turn, some with a run of ties,
+    some rounded to integers, some with a NaN: (index, size, array)."""
+    rng = np.random.default_rng(seed)
     for t in range(3000):
         n = int(rng.integers(1, 2000))
-        a = rng.gamma(2.0, 100.0, n).astype([np.float32, np.float64][t % 2])
+        a = draw(rng, n).astype([np.float32, np.float64][t % 2])
         if t % 5 == 0:
             a[: n // 2] = a[0]
         if t % 7 == 0:
             a = np.round(a)
         if t % 11 == 0:
             a[rng.integers(0, n)] = np.nan
+        yield t, n, a
+
+
+def test_percentile_inplace_is_numpys_bit_for_bit():
+    """The automatic mask's clip level (99.9th percentile) by one partition: numpy's value to the bit
+    (reference: np.percentile, default linear method), ties, integer values, NaN and the ends included."""
+    from qmap.noise_level import percentile_inplace
+
+    for t, n, a in _order_statistic_cases(12, lambda rng, n: rng.gamma(2.0, 100.0, n)):
         q = [99.9, 50.0, 1.0, 99.99, 0.0, 100.0, 37.3][t % 7]
         with np.errstate(invalid="ignore"):
             ref = np.percentile(a.copy(), q, overwrite_input=True)
@@ -579,16 +586,7 @@ def test_median_inplace_is_numpys_bit_for_bit():
     (the mean of the two middle values for an even count, in the values' precision), ties and NaN included."""
     from qmap.noise_level import median_inplace
 
-    rng = np.random.default_rng(13)
-    for t in range(3000):
-        n = int(rng.integers(1, 2000))
-        a = (rng.rayleigh(10.0, n) * 10 ** rng.uniform(-3, 3)).astype([np.float32, np.float64][t % 2])
-        if t % 5 == 0:
-            a[: n // 2] = a[0]
-        if t % 7 == 0:
-            a = np.round(a)
-        if t % 11 == 0:
-            a[rng.integers(0, n)] = np.nan
+    for t, n, a in _order_statistic_cases(13, lambda rng, n: rng.rayleigh(10.0, n) * 10 ** rng.uniform(-3, 3)):
         with np.errstate(invalid="ignore"):
             ref = np.median(a.copy(), overwrite_input=True)
         got = median_inplace(a.copy())
