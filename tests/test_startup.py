@@ -54,3 +54,33 @@ def test_a_fit_imports_no_stats_plotting_or_cluster(tmp_path):
     assert not {"scipy.stats", "matplotlib", "dask", "distributed", "lmfit"} & set(got["loaded"]), got["loaded"]
     # the noise level (background and residual estimates) and the Rician fit of one coil: no scipy.special
     assert "scipy.special" not in got["loaded"], got["loaded"]
+
+
+_BLAS_PROBE = """
+import json, os, sys
+from qmap.cli import _one_blas_thread
+_one_blas_thread()
+import numpy  # noqa: F401 (loads the BLAS library, which reads the setting)
+from threadpoolctl import threadpool_info
+blas = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas" and "numpy" in i["filepath"]]
+print(json.dumps({"env": os.environ.get("OPENBLAS_NUM_THREADS"), "threads": blas}))
+"""
+
+
+def _blas_probe(env: dict) -> dict:
+    import os
+
+    clean = {k: v for k, v in os.environ.items() if k not in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS")}
+    res = subprocess.run([sys.executable, "-c", _BLAS_PROBE], capture_output=True, text=True, check=True,
+                         env={**clean, **env})
+    return json.loads(res.stdout.strip().splitlines()[-1])
+
+
+def test_the_program_runs_one_blas_thread_unless_the_user_chose():
+    # qmap's own workers (-j) do the parallel work; the program's BLAS keeps to one thread
+    got = _blas_probe({})
+    assert got["env"] == "1"
+    assert got["threads"] in ([1], [])  # [] where numpy's BLAS is not OpenBLAS (threadpoolctl sees it as another)
+    # a setting of the user's is kept as it is
+    assert _blas_probe({"OPENBLAS_NUM_THREADS": "2"})["env"] == "2"
+    assert _blas_probe({"OMP_NUM_THREADS": "2"})["env"] is None
