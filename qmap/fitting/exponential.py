@@ -84,17 +84,27 @@ def fit_exponential(model, y: np.ndarray, *, se_tol: float = 1e-3, xtol: float =
     rate = 1.0 / t0[act]
     last = np.full(act.size, np.inf)  # RSS at the previous evaluation of each active voxel
     # the evaluations' (voxels x samples) arrays, allocated once per chunk (the active voxels use their first rows)
-    buf_e, buf_ye, buf_ee = np.empty((act.size, m)), np.empty((act.size, m)), np.empty((act.size, m))
+    buf_e, buf_ye, buf_ee = np.empty((n, m)), np.empty((n, m)), np.empty((n, m))
+    # while most voxels are active (the first two evaluations, as a rule) every row of ``y`` is evaluated, the
+    # rows no longer active at a rate of their own (wasted, but cheaper than gathering the active rows' samples)
+    rate_all = np.ones(n)
     for _ in range(max_steps):
         if act.size == 0:
             break
         k = act.size
-        ya = y if k == n else y[act]
-        e = model.decay(rate, out=buf_e[:k])
-        ye = np.multiply(ya, e, out=buf_ye[:k])
-        ee = np.multiply(e, e, out=buf_ee[:k])
+        whole = 2 * k > n
+        if whole:
+            rate_all[act] = rate
+            ya, rows = y, n
+        else:
+            ya, rows = (y if k == n else y[act]), k
+        e = model.decay(rate_all if whole else rate, out=buf_e[:rows])
+        ye = np.multiply(ya, e, out=buf_ye[:rows])
+        ee = np.multiply(e, e, out=buf_ee[:rows])
         a, a1, a2 = np.einsum("nm->n", ye), -np.einsum("nm,m->n", ye, x), np.einsum("nm,m->n", ye, x2)
         b, b1, b2 = np.einsum("nm->n", ee), -2.0 * np.einsum("nm,m->n", ee, x), 4.0 * np.einsum("nm,m->n", ee, x2)
+        if whole and k < n:  # the active rows' sums
+            a, a1, a2, b, b1, b2 = a[act], a1[act], a2[act], b[act], b1[act], b2[act]
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             c = a / b
             dc = (a1 - c * b1) / b
@@ -114,20 +124,32 @@ def fit_exponential(model, y: np.ndarray, *, se_tol: float = 1e-3, xtol: float =
         ok = (h > 0) & np.isfinite(step) & np.isfinite(f) & (b > 0) & (f <= last + RSS_ROUNDING * yy[act])
         ok &= (new > r_lo) & (new < r_hi)
         done = ok & small
-        k = act[done]
-        if k.size:
+        kd = act[done]
+        if kd.size:
             rd, cd = new[done], c[done] + dc[done] * step[done]  # the last, negligible step taken unevaluated
-            params[k, 0], params[k, 1] = cd, 1.0 / rd
-            every = k.size == act.size
-            r = (ya if every else ya[done]) - c[done, None] * (e if every else e[done])
-            rss[k] = np.einsum("nm,nm->n", r, r)  # at the evaluated point (as the general iteration reports)
+            params[kd, 0], params[kd, 1] = cd, 1.0 / rd
+            # the RSS at the evaluated point (as the general iteration reports), summed from the residuals: in
+            # the evaluation's own rows (``ee`` no longer needed) when most of them are done, else gathered
+            if 2 * kd.size > rows:
+                if whole:
+                    c_rows = np.zeros(n)
+                    c_rows[act] = c
+                else:
+                    c_rows = c
+                r = np.multiply(e, c_rows[:, None], out=ee)
+                np.subtract(ya, r, out=r)
+                rss_rows = np.einsum("nm,nm->n", r, r)
+                rss[kd] = rss_rows[kd] if whole else rss_rows[done]
+            else:
+                r = (ya[kd] if whole else ya[done]) - c[done, None] * (e[kd] if whole else e[done])
+                rss[kd] = np.einsum("nm,nm->n", r, r)
             # J^T J of [c, T] at the evaluated point: dS/dc = e, dS/dT = c x e R^2 (T = 1/R)
             ra = rate[done]
             cr2 = c[done] * ra * ra
-            jtj[k, 0, 0] = b[done]
-            jtj[k, 0, 1] = jtj[k, 1, 0] = -0.5 * b1[done] * cr2
-            jtj[k, 1, 1] = 0.25 * b2[done] * cr2 * cr2
-            converged[k] = True
+            jtj[kd, 0, 0] = b[done]
+            jtj[kd, 0, 1] = jtj[kd, 1, 0] = -0.5 * b1[done] * cr2
+            jtj[kd, 1, 1] = 0.25 * b2[done] * cr2 * cr2
+            converged[kd] = True
         hard[act[~ok]] = True
         go = ok & ~small
         act, rate, last = act[go], new[go], f[go]

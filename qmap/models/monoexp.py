@@ -125,10 +125,12 @@ class MonoExponential(SeparableModel):
         """
         x = self.x
         pos = y > 0
-        wt = np.where(pos, y * y, 0.0)
+        if pos.all():  # the rule (no temporaries of np.where's)
+            wt, ly = y * y, np.log(y)
+        else:
+            wt, ly = np.where(pos, y * y, 0.0), np.log(np.where(pos, y, 1.0))
         if w is not None:
             wt = wt * w
-        ly = np.log(np.where(pos, y, 1.0))
         wl = wt * ly
         s0 = np.einsum("nm->n", wt)
         s1 = np.einsum("nm,m->n", wt, x)
