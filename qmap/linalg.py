@@ -63,16 +63,43 @@ def chol_solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def chol_inverse(a: np.ndarray) -> np.ndarray:
-    """Inverse of a batch of SPD matrices (n, p, p); NaN where not SPD."""
+    """Inverse of a batch of SPD matrices (n, p, p); NaN where not SPD.
+
+    The arithmetic of :func:`cholesky` and the two triangular solves against each column of the identity,
+    done on contiguous copies of the entries (each a vector over the batch) instead of strided views:
+    the same operations in the same order, so the same numbers, in a third of the time for p = 2.
+    """
     n, p, _ = a.shape
-    low = cholesky(a)
+    ent = [[np.ascontiguousarray(a[:, i, j]) for j in range(p)] for i in range(p)]
+    low: list[list[np.ndarray]] = [[None] * p for _ in range(p)]  # type: ignore[list-item]
     out = np.empty_like(a)
-    eye = np.zeros((n, p))
     with np.errstate(invalid="ignore", divide="ignore"):
-        for j in range(p):
-            eye[:] = 0.0
-            eye[:, j] = 1.0
-            out[:, :, j] = _backward(low, _forward(low, eye))
+        for j in range(p):  # as cholesky()
+            s = ent[j][j].copy()
+            for k in range(j):
+                s -= low[j][k] * low[j][k]
+            s = np.where(s > 0, s, np.nan)
+            d = np.sqrt(s)
+            low[j][j] = d
+            for i in range(j + 1, p):
+                t = ent[i][j].copy()
+                for k in range(j):
+                    t -= low[i][k] * low[j][k]
+                low[i][j] = t / d
+        for j in range(p):  # column j of the inverse: L z = e_j, then L^T x = z (as _forward, _backward)
+            z: list[np.ndarray] = []
+            for i in range(p):
+                t = np.full(n, 1.0 if i == j else 0.0)
+                for k in range(i):
+                    t -= low[i][k] * z[k]
+                z.append(t / low[i][i])
+            x: list[np.ndarray] = [None] * p  # type: ignore[list-item]
+            for i in range(p - 1, -1, -1):
+                t = z[i].copy()
+                for k in range(i + 1, p):
+                    t -= low[k][i] * x[k]
+                x[i] = t / low[i][i]
+                out[:, i, j] = x[i]
     return out
 
 
