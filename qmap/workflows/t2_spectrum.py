@@ -40,6 +40,7 @@ from ..models.t2_spectrum import (
 )
 from ..noise_level import (
     MIN_RESIDUAL_VOXELS,
+    ArraySource,
     NoiseEstimate,
     estimate_noise,
     object_mask,
@@ -500,8 +501,10 @@ def fit_t2_spectrum(
         Echo times, s, equally spaced at TE_k = k * ESP.
     refocus_deg : float
         Nominal refocusing angle, degrees (searched from half of it to 180).
-    sigma : float or (X, Y, Z) ndarray, optional
-        Noise sd, signal units; default: per voxel from the unregularised residuals.
+    sigma : "auto", float or (X, Y, Z) ndarray, optional
+        Noise sd, signal units. ``"auto"``: as the command's default, from the image background (a 4D
+        ``data`` with background around the object), else the median of the per-voxel residual sd of the
+        unregularised spectra. Default (None): per voxel from the unregularised residuals.
     mask : (X, Y, Z) array_like of bool, optional
     n_jobs, chunk_size
         Execution (results do not depend on them).
@@ -515,7 +518,7 @@ def fit_t2_spectrum(
         standard errors, quality maps and status.
     extra : dict
         ``t2_short``, ``t2_long`` (s), ``spectrum`` (X, Y, Z, n), ``t2`` (the
-        grid, s) and ``se_calibration``.
+        grid, s), ``se_calibration`` and, with ``sigma="auto"``, ``noise`` (the value and its source).
     """
     data = np.asarray(data)
     if data.ndim == 2:
@@ -523,10 +526,20 @@ def fit_t2_spectrum(
     settings = SpectrumSettings(**options)
     model = settings.model(te, refocus_deg)
     shape = data.shape[:-1]
+    noise = None
+    if isinstance(sigma, str):
+        if sigma != "auto":
+            raise ValueError(f"sigma={sigma!r}: expected 'auto', a positive number or an array of them (a local "
+                             f"noise map: the command line's --sigma local)")
+        noise = _array_background_sigma(data, mask)
+        sigma = noise["sigma"]  # None: pooled from the residuals after the fit
     mask = np.ones(shape, bool) if mask is None else np.asarray(mask, bool)
     out = _Collect(int(np.prod(shape)), model.basis.t2.size)
     n = _fit_flat(model, data, mask, sigma, n_jobs=n_jobs, chunk_size=chunk_size, scheduler=None, quiet=True,
                   label="fitting", out=out)
+    if noise is not None and noise["sigma"] is None:
+        noise.update(sigma=_pool_sigma(out, model.min_snr),
+                     source="median of the per-voxel residual sd of the unregularised spectra (no usable background)")
     cal = _calibrate(model, out, n_sub=settings.se_subsample, replicates=SE_REPLICATES)
     se = fraction_se(cal, out.arr["fraction"], out.arr["snr"])
     maps = _mapset(model, out, shape, se, n)
@@ -539,7 +552,22 @@ def fit_t2_spectrum(
         "t2": model.basis.t2.copy(),
         "se_calibration": cal,
     }
+    if noise is not None:
+        extra["noise"] = noise
     return maps, extra
+
+
+def _array_background_sigma(data: np.ndarray, mask) -> dict:
+    """``sigma="auto"`` of the array API: the background's noise level (as the command), or None (no usable
+    background: the caller pools the fit residuals) with the reason."""
+    if data.ndim != 4:
+        return {"sigma": None, "background": "no image geometry (data of voxel rows)"}
+    try:
+        est = estimate_noise(ArraySource(data), mask=None if mask is None else np.asarray(mask, bool))
+    except InputError as exc:
+        return {"sigma": None, "background": str(exc)}
+    return {"sigma": float(est.sigma), "source": est.source, "relative_precision": est.relative_precision,
+            "notes": list(est.notes)}
 
 
 @recorded
