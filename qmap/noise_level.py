@@ -898,9 +898,11 @@ def _moments_coils(bg: np.ndarray, quantum: float, keep: np.ndarray | None = Non
             d4 = x2 * x2
             d4 -= a4
             x2 -= a2
-            c22.append(float(np.dot(x2, x2)))
-            c24.append(float(np.dot(x2, d4)))
-            c44.append(float(np.dot(d4, d4)))
+            # (einsum, not np.dot: BLAS runs a dot this long on its threads, whose idle spinning then competed
+            # with the fit's workers for ~0.1 s of CPU; a library must not set its caller's BLAS threads)
+            c22.append(float(np.einsum("i,i->", x2, x2)))
+            c24.append(float(np.einsum("i,i->", x2, d4)))
+            c44.append(float(np.einsum("i,i->", d4, d4)))
         c = np.array([[math.fsum(c22), math.fsum(c24)], [math.fsum(c24), math.fsum(c44)]])
         cov = c / (n - 1) / n
     se_r = float(np.sqrt(max(g @ cov @ g, 0.0)))
