@@ -123,8 +123,13 @@ def _bessel_series_banded(z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         s *= qk
         s *= _SERIES_FACTORS[k]
         s += 1.0
-    scale = np.exp(-z)
-    s *= scale
+    return _scaled_orders(s, z)
+
+
+def _scaled_orders(s: np.ndarray, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The two orders' Horner sums ``s`` (2, ...) made into :math:`e^{-z} I_0(z)` and :math:`e^{-z} I_1(z)`
+    (the order-1 sum carries the factor :math:`z/2`), in place."""
+    s *= np.exp(-z)
     s[1] *= 0.5 * z
     return s[0], s[1]
 
@@ -143,10 +148,7 @@ def _bessel_series(z: np.ndarray, terms: int) -> tuple[np.ndarray, np.ndarray]:
         s *= q
         s *= _SERIES_FACTORS[k]
         s += 1.0
-    scale = np.exp(-z)
-    s *= scale
-    s[1] *= 0.5 * z
-    return s[0], s[1]
+    return _scaled_orders(s, z)
 
 
 #: the factors of the k-th Horner step of :func:`_bessel_series` for orders 0 and 1: 1/k^2, 1/(k(k+1)), (2, 1)
